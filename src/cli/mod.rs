@@ -1,0 +1,49 @@
+//! The `plumbline` command line. One file per command; each parses its
+//! arguments into a request and applies it.
+
+mod progress;
+mod render;
+mod score;
+mod simulate;
+
+use std::process::ExitCode;
+
+use clap::{Parser, Subcommand};
+
+pub use score::ScoreArgs;
+pub use simulate::SimulateArgs;
+
+#[derive(Debug, Parser)]
+#[command(
+    name = "plumbline",
+    version,
+    about = "Score treatment-effect (CATE / uplift) models against factual outcomes",
+    long_about = "plumbline scores treatment-effect models without counterfactuals: it cross-fits \
+                  propensity and outcome models, forms AIPW pseudo-outcomes, and reports each \
+                  model's influence-function-corrected error with honest standard errors."
+)]
+pub struct Cli {
+    #[command(subcommand)]
+    pub command: Command,
+}
+
+#[derive(Debug, Subcommand)]
+pub enum Command {
+    /// Score models offline from a units CSV and a predictions CSV.
+    Score(ScoreArgs),
+    /// Write a units / predictions CSV pair from a design with known effects.
+    Simulate(SimulateArgs),
+}
+
+/// Exit status for bad input (files, columns, values, arguments).
+pub const EXIT_BAD_INPUT: u8 = 2;
+/// Exit status when the data cannot support the estimates (named state).
+pub const EXIT_DEGENERATE: u8 = 3;
+
+pub fn run() -> ExitCode {
+    let cli = Cli::parse();
+    match cli.command {
+        Command::Score(args) => score::run(&args),
+        Command::Simulate(args) => simulate::run(&args),
+    }
+}

@@ -1,0 +1,247 @@
+//! The person-readable scoreboard: differences to constant-effect first,
+//! then the best set, overlap, nuisance fits and the caveat.
+
+use std::fmt::Write;
+
+use crate::estimate::crossfit::ComponentReport;
+use crate::estimate::overlap::{OverlapReport, CRUMP_LOW, SMD_FLAG};
+use crate::estimate::scoreboard::{ModelScore, Scoreboard};
+use crate::estimate::OutcomeKind;
+
+fn num(v: f64) -> String {
+    // Rounding residue of an exact zero (e.g. the AUTOC of a constant model).
+    let v = if v.abs() < 1e-12 { 0.0 } else { v };
+    let a = v.abs();
+    if a != 0.0 && !(1e-3..1e6).contains(&a) {
+        format!("{v:.3e}")
+    } else if a >= 1000.0 {
+        format!("{v:.1}")
+    } else {
+        format!("{v:.4}")
+    }
+}
+
+fn verdict(m: &ModelScore) -> &'static str {
+    if m.name == crate::estimate::CONSTANT_EFFECT {
+        "reference"
+    } else if m.vs_constant.ci_high < 0.0 {
+        "lower error"
+    } else if m.vs_constant.ci_low > 0.0 {
+        "higher error"
+    } else {
+        "not distinguishable"
+    }
+}
+
+fn pct(v: f64) -> String {
+    format!("{:.1}%", 100.0 * v)
+}
+
+/// Renders the scoreboard as text.
+pub fn table(b: &Scoreboard, kind: OutcomeKind, folds: usize) -> String {
+    let mut s = String::new();
+    let kind = match kind {
+        OutcomeKind::Continuous => "continuous",
+        OutcomeKind::Binary => "binary",
+    };
+    let _ = writeln!(
+        s,
+        "{} units ({} treated, {} control), {kind} outcome, {folds}-fold cross-fit",
+        b.n_units, b.n_treated, b.n_control
+    );
+    let _ = writeln!(
+        s,
+        "ATE (AIPW)  {}  se {}  95% CI [{}, {}]",
+        num(b.ate.estimate),
+        num(b.ate.se),
+        num(b.ate.ci_low),
+        num(b.ate.ci_high)
+    );
+    let _ = writeln!(s);
+    let _ = writeln!(
+        s,
+        "Error against constant-effect: corrected PEHE of the model minus that of constant-effect \
+         (below 0 = lower error)"
+    );
+    let name_w = b
+        .models
+        .iter()
+        .map(|m| m.name.len())
+        .max()
+        .unwrap_or(5)
+        .max(5);
+    let _ = writeln!(
+        s,
+        "  {:>4}  {:<name_w$}  {:>12}  {:>27}  {:>6}  {:>4}  verdict",
+        "rank", "model", "difference", "95% CI", "p_best", "best"
+    );
+    for m in &b.models {
+        let ci = format!(
+            "[{}, {}]",
+            num(m.vs_constant.ci_low),
+            num(m.vs_constant.ci_high)
+        );
+        let _ = writeln!(
+            s,
+            "  {:>4}  {:<name_w$}  {:>12}  {:>27}  {:>6.3}  {:>4}  {}",
+            m.rank,
+            m.name,
+            num(m.vs_constant.estimate),
+            ci,
+            m.p_best,
+            if m.in_best_set { "yes" } else { "" },
+            verdict(m)
+        );
+    }
+    let _ = writeln!(s);
+    let _ = writeln!(
+        s,
+        "Leader: {}. Best set at alpha {} (Holm-corrected): {}.",
+        b.leader,
+        b.alpha,
+        b.best_set.join(", ")
+    );
+    if b.no_detectable_heterogeneity {
+        let _ = writeln!(
+            s,
+            "No detectable heterogeneity: no model has significantly lower error than \
+             constant-effect, so targeting on these models adds nothing measurable here."
+        );
+    }
+    let _ = writeln!(s);
+    let _ = writeln!(s, "Per-model scores (mean, se in parentheses)");
+    let _ = writeln!(
+        s,
+        "  {:<name_w$}  {:>22}  {:>10}  {:>10}  {:>10}  {:>10}  {:>22}  {:>7}  {:>20}  {:>18}",
+        "model",
+        "corrected PEHE (lower)",
+        "plug-in",
+        "DR loss",
+        "R-loss",
+        "IPW loss",
+        "policy gain",
+        "treats",
+        "AUTOC",
+        "BLP slope"
+    );
+    for m in &b.models {
+        let slope = match &m.blp_slope {
+            Some(e) => format!("{} ({})", num(e.estimate), num(e.se)),
+            None => "no variation".to_string(),
+        };
+        let _ =
+            writeln!(
+            s,
+            "  {:<name_w$}  {:>22}  {:>10}  {:>10}  {:>10}  {:>10}  {:>22}  {:>7}  {:>20}  {:>18}",
+            m.name,
+            format!("{} ({})", num(m.corrected_pehe.estimate), num(m.corrected_pehe.se)),
+            num(m.plugin_pehe.estimate),
+            num(m.dr_loss.estimate),
+            num(m.r_loss.estimate),
+            num(m.ipw_loss.estimate),
+            format!("{} ({})", num(m.policy_gain.estimate), num(m.policy_gain.se)),
+            pct(m.policy_gain.treated_share),
+            format!("{} ({})", num(m.autoc.estimate), num(m.autoc.se)),
+            slope
+        );
+    }
+    let _ = writeln!(
+        s,
+        "  policy gain: per unit over treating nobody, at cost {}",
+        b.cost
+    );
+    let _ = writeln!(s);
+    overlap(&mut s, &b.overlap);
+    if let Some(n) = &b.nuisance {
+        let _ = writeln!(s);
+        let _ = writeln!(
+            s,
+            "Nuisance models ({}-fold cross-fit, seed {})",
+            n.folds, n.seed
+        );
+        match &n.propensity.fit {
+            Some(c) => component(&mut s, "propensity", c),
+            None => {
+                let _ = writeln!(s, "  {:<18}  logged (not fitted)", "propensity");
+            }
+        }
+        let _ = writeln!(
+            s,
+            "  {:<18}  AUC {:.3}; clipped {} units to [{}, {}]",
+            "",
+            n.propensity.auc,
+            n.propensity.clipped,
+            n.propensity.clip,
+            1.0 - n.propensity.clip
+        );
+        component(&mut s, "outcome, control", &n.outcome_control);
+        component(&mut s, "outcome, treated", &n.outcome_treated);
+    }
+    let _ = writeln!(s);
+    let _ = writeln!(s, "Note: {}", b.caveat);
+    s
+}
+
+fn component(s: &mut String, label: &str, c: &ComponentReport) {
+    let others: Vec<String> = c
+        .candidates
+        .iter()
+        .map(|k| format!("{} {}", k.learner, num(k.oof_loss)))
+        .collect();
+    let _ = writeln!(
+        s,
+        "  {label:<18}  {:<8} out-of-fold {} {}  (candidates: {})",
+        c.learner,
+        c.loss.replace('_', " "),
+        num(c.oof_loss),
+        others.join(", ")
+    );
+}
+
+fn overlap(s: &mut String, o: &OverlapReport) {
+    let _ = writeln!(s, "Overlap");
+    let _ = writeln!(
+        s,
+        "  propensity outside [{}, {}]: {} of units; outside [{CRUMP_LOW}, {}] (Crump et al. rule of thumb): {}",
+        o.eps,
+        1.0 - o.eps,
+        pct(o.share_outside_eps),
+        1.0 - CRUMP_LOW,
+        pct(o.share_outside_crump)
+    );
+    for (label, arm) in [("treated", &o.treated), ("control", &o.control)] {
+        let q = |p: f64| {
+            arm.quantiles
+                .iter()
+                .find(|(k, _)| *k == p)
+                .map(|(_, v)| format!("{v:.3}"))
+                .unwrap_or_default()
+        };
+        let _ = writeln!(
+            s,
+            "  {label:<8} propensity min {} / median {} / max {}; effective sample size {:.0} of {} ({}); largest weight {} of the arm's total",
+            q(0.0),
+            q(0.5),
+            q(1.0),
+            arm.effective_sample_size,
+            arm.units,
+            pct(arm.effective_share),
+            pct(arm.max_normalized_weight)
+        );
+    }
+    let flagged: Vec<String> = o
+        .balance
+        .iter()
+        .filter(|f| f.flagged)
+        .map(|f| format!("{} ({:.2})", f.feature, f.smd_weighted))
+        .collect();
+    let _ = writeln!(
+        s,
+        "  features with weighted |SMD| > {SMD_FLAG} (Austin rule of thumb): {}",
+        if flagged.is_empty() {
+            "none".to_string()
+        } else {
+            flagged.join(", ")
+        }
+    );
+}

@@ -1,0 +1,117 @@
+//! `plumbline score`: the offline scoreboard from two CSV files.
+
+use std::path::PathBuf;
+use std::process::ExitCode;
+
+use clap::{Args, ValueEnum};
+
+use super::progress::StderrProgress;
+use super::{render, EXIT_BAD_INPUT, EXIT_DEGENERATE};
+use crate::estimate::crossfit::NuisanceSettings;
+use crate::estimate::{evaluate, EstimateError, OutcomeKind, Settings};
+use crate::input::{align, read_predictions, read_units};
+
+#[derive(Debug, Clone, Copy, ValueEnum)]
+pub enum Format {
+    /// A ranked report for a person.
+    Table,
+    /// The full scoreboard as JSON (schema in the README).
+    Json,
+}
+
+#[derive(Debug, Clone, Copy, ValueEnum)]
+pub enum KindArg {
+    Continuous,
+    Binary,
+}
+
+#[derive(Debug, Args)]
+pub struct ScoreArgs {
+    /// Units CSV: unit_id, treatment (0/1), outcome, optional propensity; other columns are numeric features.
+    #[arg(long, value_name = "FILE")]
+    pub units: PathBuf,
+    /// Predictions CSV: unit_id, then one column of predicted effects per model.
+    #[arg(long, value_name = "FILE")]
+    pub predictions: PathBuf,
+    /// Outcome kind; detected from the data when omitted (binary if every outcome is 0 or 1).
+    #[arg(long, value_enum)]
+    pub outcome_kind: Option<KindArg>,
+    /// Number of cross-fitting folds.
+    #[arg(long, default_value_t = 5)]
+    pub folds: usize,
+    /// Seed for folds, inner splits, bootstrap and p_best draws.
+    #[arg(long, default_value_t = 0)]
+    pub seed: u64,
+    /// Cost of treating one unit, in outcome units (for policy gain).
+    #[arg(long, default_value_t = 0.0)]
+    pub cost: f64,
+    /// Family-wise level of the best set and the heterogeneity test.
+    #[arg(long, default_value_t = 0.05)]
+    pub alpha: f64,
+    #[arg(long, value_enum, default_value_t = Format::Table)]
+    pub format: Format,
+}
+
+pub fn run(args: &ScoreArgs) -> ExitCode {
+    let kind = args.outcome_kind.map(|k| match k {
+        KindArg::Continuous => OutcomeKind::Continuous,
+        KindArg::Binary => OutcomeKind::Binary,
+    });
+    let loaded = read_units(&args.units, kind).and_then(|units| {
+        let preds = read_predictions(&args.predictions)?;
+        let models = align(&units, &args.units, &preds, &args.predictions)?;
+        Ok((units, models))
+    });
+    let (units, models) = match loaded {
+        Ok(v) => v,
+        Err(e) => {
+            eprintln!("plumbline score: {e}");
+            return ExitCode::from(EXIT_BAD_INPUT);
+        }
+    };
+    let settings = Settings {
+        nuisance: NuisanceSettings {
+            folds: args.folds,
+            seed: args.seed,
+            ..NuisanceSettings::default()
+        },
+        cost: args.cost,
+        alpha: args.alpha,
+        ..Settings::default()
+    };
+    let progress = StderrProgress::start();
+    let result = evaluate(
+        &units.table,
+        &units.feature_names,
+        &models,
+        &settings,
+        &progress,
+    );
+    progress.finish();
+    let board = match result {
+        Ok(b) => b,
+        Err(EstimateError::Degenerate(state)) => {
+            eprintln!(
+                "plumbline score: {}: the data cannot support the estimates: {state}",
+                args.units.display()
+            );
+            return ExitCode::from(EXIT_DEGENERATE);
+        }
+        Err(e) => {
+            eprintln!("plumbline score: {e}");
+            return ExitCode::from(EXIT_BAD_INPUT);
+        }
+    };
+    let out = match args.format {
+        Format::Json => match serde_json::to_string_pretty(&board) {
+            Ok(s) => s,
+            Err(e) => {
+                eprintln!("plumbline score: cannot encode JSON: {e}");
+                return ExitCode::FAILURE;
+            }
+        },
+        Format::Table => render::table(&board, units.table.outcome_kind(), args.folds),
+    };
+    println!("{out}");
+    ExitCode::SUCCESS
+}

@@ -1,0 +1,124 @@
+//! Calibration of a model's effect predictions: the best linear predictor
+//! (BLP) of Chernozhukov, Demirer, Duflo & Fernandez-Val ("Generic machine
+//! learning inference on heterogeneous treatment effects") and group ATEs by
+//! quintile of the prediction.
+//!
+//! OLS of phi on [1, tau_hat - mean tau_hat]: a slope of 1 means the
+//! predictions are calibrated in scale, 0 means they carry no signal about
+//! the effect. Standard errors are heteroskedasticity-robust (HC1).
+
+use serde::Serialize;
+
+use super::stats::{average_ranks, mean_se, Estimate};
+
+#[derive(Debug, Clone, Serialize)]
+pub struct GroupAte {
+    /// 1 = lowest fifth of predictions.
+    pub quintile: usize,
+    pub units: usize,
+    pub mean_prediction: f64,
+    pub ate: Estimate,
+}
+
+#[derive(Debug, Clone, Serialize)]
+pub struct Calibration {
+    /// None when the predictions do not vary (state says so).
+    pub slope: Option<Estimate>,
+    pub intercept: Estimate,
+    /// "ok" or "constant_predictions".
+    pub state: &'static str,
+    pub groups: Vec<GroupAte>,
+}
+
+pub fn calibration(phi: &[f64], tau_hat: &[f64]) -> Calibration {
+    let n = phi.len();
+    let nf = n as f64;
+    let mean_tau = tau_hat.iter().sum::<f64>() / nf;
+    let centered: Vec<f64> = tau_hat.iter().map(|t| t - mean_tau).collect();
+    let sxx: f64 = centered.iter().map(|c| c * c).sum();
+    let ate = mean_se(phi);
+    let scale = tau_hat
+        .iter()
+        .map(|t| t.abs())
+        .fold(0.0, f64::max)
+        .max(1e-300);
+    if n < 3 || sxx <= (1e-12 * scale).powi(2) * nf {
+        return Calibration {
+            slope: None,
+            intercept: ate,
+            state: "constant_predictions",
+            groups: Vec::new(),
+        };
+    }
+    let slope = centered.iter().zip(phi).map(|(c, p)| c * p).sum::<f64>() / sxx;
+    let intercept = ate.estimate;
+    // HC1 sandwich; X'X is diagonal because the regressor is centered.
+    let (mut meat_b, mut meat_a) = (0.0, 0.0);
+    for i in 0..n {
+        let e = phi[i] - intercept - slope * centered[i];
+        meat_b += (e * centered[i]).powi(2);
+        meat_a += e * e;
+    }
+    let hc1 = nf / (nf - 2.0);
+    let se_slope = (hc1 * meat_b).sqrt() / sxx;
+    let se_intercept = (hc1 * meat_a).sqrt() / nf;
+
+    Calibration {
+        slope: Some(Estimate::new(slope, se_slope)),
+        intercept: Estimate::new(intercept, se_intercept),
+        state: "ok",
+        groups: quintile_groups(phi, tau_hat),
+    }
+}
+
+/// Group ATEs by quintile of the prediction. Tied predictions stay in one
+/// group (the group of their average rank), so groups can be uneven or empty
+/// when predictions take few values; empty groups are omitted.
+fn quintile_groups(phi: &[f64], tau_hat: &[f64]) -> Vec<GroupAte> {
+    let n = phi.len();
+    let ranks = average_ranks(tau_hat);
+    let mut members: Vec<Vec<usize>> = vec![Vec::new(); 5];
+    for (i, r) in ranks.iter().enumerate() {
+        let g = (((r - 0.5) / n as f64) * 5.0).floor() as usize;
+        members[g.min(4)].push(i);
+    }
+    members
+        .into_iter()
+        .enumerate()
+        .filter(|(_, m)| !m.is_empty())
+        .map(|(g, m)| {
+            let values: Vec<f64> = m.iter().map(|&i| phi[i]).collect();
+            GroupAte {
+                quintile: g + 1,
+                units: m.len(),
+                mean_prediction: m.iter().map(|&i| tau_hat[i]).sum::<f64>() / m.len() as f64,
+                ate: mean_se(&values),
+            }
+        })
+        .collect()
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn exact_linear_signal_has_slope_one() {
+        let tau_hat: Vec<f64> = (0..100).map(|i| i as f64 / 10.0).collect();
+        let phi: Vec<f64> = tau_hat.iter().map(|t| 2.0 + (t - 4.95)).collect();
+        let c = calibration(&phi, &tau_hat);
+        let s = c.slope.expect("varying predictions");
+        assert!((s.estimate - 1.0).abs() < 1e-12);
+        assert!(s.se < 1e-9);
+        assert_eq!(c.groups.len(), 5);
+        assert!(c.groups.iter().all(|g| g.units == 20));
+        assert!((c.intercept.estimate - 2.0).abs() < 1e-12);
+    }
+
+    #[test]
+    fn constant_predictions_are_a_named_state() {
+        let c = calibration(&[1.0, 2.0, 3.0], &[0.5, 0.5, 0.5]);
+        assert!(c.slope.is_none());
+        assert_eq!(c.state, "constant_predictions");
+    }
+}

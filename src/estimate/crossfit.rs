@@ -1,0 +1,425 @@
+//! K-fold cross-fitting of the nuisance components (Chernozhukov et al.
+//! 2018, "Double/debiased machine learning").
+//!
+//! A unit's propensity and outcome-regression values always come from fits
+//! that did not see it. Folds are stratified by arm so that each holds the
+//! dataset's treated share. Each component tries every learner of its library
+//! on the same folds and keeps the one with the lowest out-of-fold loss.
+
+use ndarray::{ArrayView2, Axis};
+use rand::seq::SliceRandom;
+use rand::SeedableRng;
+use rand_chacha::ChaCha8Rng;
+use rayon::prelude::*;
+use serde::Serialize;
+
+use super::data::{OutcomeKind, UnitTable};
+use super::error::{Degenerate, EstimateError};
+use super::learner::{default_library, mean_loss, Learner, Task};
+use super::stats::auc;
+
+/// How the nuisance components are fitted.
+#[derive(Debug)]
+pub struct NuisanceSettings {
+    pub folds: usize,
+    pub seed: u64,
+    /// Propensities are clipped to [clip, 1 - clip] for weighting.
+    pub clip: f64,
+    pub propensity_learners: Vec<Box<dyn Learner>>,
+    pub outcome_learners: Vec<Box<dyn Learner>>,
+    /// Each fold must hold at least this many units of each arm.
+    pub min_units_per_fold: usize,
+    /// A propensity AUC at or above this means the arms are separated.
+    pub separation_auc: f64,
+}
+
+impl Default for NuisanceSettings {
+    fn default() -> Self {
+        Self {
+            folds: 5,
+            seed: 0,
+            clip: 0.01,
+            propensity_learners: default_library(),
+            outcome_learners: default_library(),
+            min_units_per_fold: 3,
+            separation_auc: 0.995,
+        }
+    }
+}
+
+impl NuisanceSettings {
+    pub fn check(&self) -> Result<(), EstimateError> {
+        if self.folds < 2 {
+            return Err(EstimateError::invalid(format!(
+                "folds must be at least 2 (got {})",
+                self.folds
+            )));
+        }
+        if !(self.clip >= 0.0 && self.clip < 0.5) {
+            return Err(EstimateError::invalid(format!(
+                "propensity clip must lie in [0, 0.5) (got {})",
+                self.clip
+            )));
+        }
+        if self.propensity_learners.is_empty() || self.outcome_learners.is_empty() {
+            return Err(EstimateError::invalid("every component needs a learner"));
+        }
+        for l in self
+            .propensity_learners
+            .iter()
+            .chain(&self.outcome_learners)
+        {
+            l.check()?;
+        }
+        Ok(())
+    }
+}
+
+/// Cross-fitted nuisance values, one per unit.
+#[derive(Debug, Clone)]
+pub struct Nuisance {
+    /// P(W = 1 | x), clipped to [clip, 1 - clip].
+    pub propensity: Vec<f64>,
+    /// E[Y | x, W = 0].
+    pub mu0: Vec<f64>,
+    /// E[Y | x, W = 1].
+    pub mu1: Vec<f64>,
+}
+
+impl Nuisance {
+    /// Builds nuisance values from raw propensities, clipping them; returns
+    /// the values and how many propensities were clipped.
+    pub fn from_parts(
+        propensity: Vec<f64>,
+        mu0: Vec<f64>,
+        mu1: Vec<f64>,
+        clip: f64,
+    ) -> (Self, usize) {
+        let (propensity, clipped) = clip_propensity(propensity, clip);
+        (
+            Self {
+                propensity,
+                mu0,
+                mu1,
+            },
+            clipped,
+        )
+    }
+
+    /// The plug-in effect tau_tilde = mu1 - mu0 of unit `i`.
+    pub fn tau_tilde(&self, i: usize) -> f64 {
+        self.mu1[i] - self.mu0[i]
+    }
+
+    /// The plug-in outcome mean m_tilde = pi mu1 + (1 - pi) mu0 of unit `i`.
+    pub fn m_tilde(&self, i: usize) -> f64 {
+        let p = self.propensity[i];
+        p * self.mu1[i] + (1.0 - p) * self.mu0[i]
+    }
+}
+
+fn clip_propensity(mut p: Vec<f64>, clip: f64) -> (Vec<f64>, usize) {
+    let mut clipped = 0;
+    for v in &mut p {
+        let c = v.clamp(clip, 1.0 - clip);
+        if c != *v {
+            clipped += 1;
+            *v = c;
+        }
+    }
+    (p, clipped)
+}
+
+/// One learner's out-of-fold loss for a component.
+#[derive(Debug, Clone, Serialize)]
+pub struct CandidateLoss {
+    pub learner: String,
+    pub oof_loss: f64,
+}
+
+/// Which learner a component chose and how well it did out of fold.
+#[derive(Debug, Clone, Serialize)]
+pub struct ComponentReport {
+    pub learner: String,
+    /// "log_loss" or "squared_error".
+    pub loss: &'static str,
+    pub oof_loss: f64,
+    pub candidates: Vec<CandidateLoss>,
+    /// Units whose outcome the loss was computed on.
+    pub units: usize,
+}
+
+/// Where the propensities came from and how they behave.
+#[derive(Debug, Clone, Serialize)]
+pub struct PropensityReport {
+    /// "fitted" or "logged".
+    pub source: &'static str,
+    /// Present when the propensity was fitted.
+    pub fit: Option<ComponentReport>,
+    /// AUC of the (unclipped) propensity for the treatment.
+    pub auc: f64,
+    pub clip: f64,
+    pub clipped: usize,
+}
+
+#[derive(Debug, Clone, Serialize)]
+pub struct NuisanceReport {
+    pub folds: usize,
+    pub seed: u64,
+    pub propensity: PropensityReport,
+    pub outcome_control: ComponentReport,
+    pub outcome_treated: ComponentReport,
+}
+
+/// Assigns each unit a fold in 0..k, stratified by arm, reproducibly for a seed.
+pub fn assign_folds(treatment: &[f64], k: usize, seed: u64) -> Vec<usize> {
+    let mut rng = ChaCha8Rng::seed_from_u64(seed);
+    let mut folds = vec![0; treatment.len()];
+    for arm in [0.0, 1.0] {
+        let mut idx: Vec<usize> = (0..treatment.len())
+            .filter(|&i| treatment[i] == arm)
+            .collect();
+        idx.shuffle(&mut rng);
+        for (pos, &i) in idx.iter().enumerate() {
+            folds[i] = pos % k;
+        }
+    }
+    folds
+}
+
+/// The folds of one cross-fit: which fold each unit is in, and how many.
+struct Folds<'a> {
+    of_unit: &'a [usize],
+    count: usize,
+}
+
+/// Held-out rows of one fold and one learner's predictions for them.
+type FoldPredictions = (usize, Vec<usize>, Vec<f64>);
+
+/// Out-of-fold predictions for every unit from every learner, where fold `f`
+/// is predicted by a fit on the units of `train_mask` outside fold `f`.
+/// Returns one prediction vector per learner.
+fn out_of_fold(
+    x: ArrayView2<'_, f64>,
+    target: &[f64],
+    train_mask: &[bool],
+    folds: &Folds<'_>,
+    learners: &[Box<dyn Learner>],
+    task: Task,
+    seed: u64,
+) -> Result<Vec<Vec<f64>>, EstimateError> {
+    let (k, folds) = (folds.count, folds.of_unit);
+    let jobs: Vec<(usize, usize)> = (0..learners.len())
+        .flat_map(|l| (0..k).map(move |f| (l, f)))
+        .collect();
+    let results: Vec<Result<FoldPredictions, EstimateError>> = jobs
+        .par_iter()
+        .map(|&(l, f)| {
+            let train: Vec<usize> = (0..folds.len())
+                .filter(|&i| folds[i] != f && train_mask[i])
+                .collect();
+            let held: Vec<usize> = (0..folds.len()).filter(|&i| folds[i] == f).collect();
+            let xt = x.select(Axis(0), &train);
+            let yt: Vec<f64> = train.iter().map(|&i| target[i]).collect();
+            let fit_seed = seed ^ ((f as u64 + 1) << 32) ^ (l as u64 + 1);
+            let model = learners[l].fit(xt.view(), &yt, task, fit_seed)?;
+            let pred = model.predict(x.select(Axis(0), &held).view());
+            Ok((l, held, pred))
+        })
+        .collect();
+    let mut out = vec![vec![0.0; folds.len()]; learners.len()];
+    for r in results {
+        let (l, held, pred) = r?;
+        for (i, p) in held.into_iter().zip(pred) {
+            out[l][i] = p;
+        }
+    }
+    Ok(out)
+}
+
+/// Picks the learner with the lowest out-of-fold loss on the `scored` units.
+fn choose(
+    learners: &[Box<dyn Learner>],
+    predictions: Vec<Vec<f64>>,
+    target: &[f64],
+    scored: &[bool],
+    task: Task,
+) -> (Vec<f64>, ComponentReport) {
+    let idx: Vec<usize> = (0..target.len()).filter(|&i| scored[i]).collect();
+    let y: Vec<f64> = idx.iter().map(|&i| target[i]).collect();
+    let candidates: Vec<CandidateLoss> = learners
+        .iter()
+        .zip(&predictions)
+        .map(|(l, p)| {
+            let pv: Vec<f64> = idx.iter().map(|&i| p[i]).collect();
+            CandidateLoss {
+                learner: l.name().to_string(),
+                oof_loss: mean_loss(task, &y, &pv),
+            }
+        })
+        .collect();
+    let best = candidates
+        .iter()
+        .enumerate()
+        .min_by(|a, b| a.1.oof_loss.total_cmp(&b.1.oof_loss))
+        .map(|(i, _)| i)
+        .unwrap_or(0);
+    let report = ComponentReport {
+        learner: candidates[best].learner.clone(),
+        loss: match task {
+            Task::Regression => "squared_error",
+            Task::Classification => "log_loss",
+        },
+        oof_loss: candidates[best].oof_loss,
+        candidates,
+        units: idx.len(),
+    };
+    let chosen = predictions.into_iter().nth(best).unwrap_or_default();
+    (chosen, report)
+}
+
+/// Cross-fits propensity (unless logged) and both outcome regressions.
+pub fn fit_nuisance(
+    table: &UnitTable,
+    settings: &NuisanceSettings,
+) -> Result<(Nuisance, NuisanceReport), EstimateError> {
+    settings.check()?;
+    table.check_estimable(settings.folds, settings.min_units_per_fold)?;
+    let k = settings.folds;
+    let x = table.features();
+    let w = table.treatment();
+    let y = table.outcome();
+    let fold_of_unit = assign_folds(w, k, settings.seed);
+    let folds = Folds {
+        of_unit: &fold_of_unit,
+        count: k,
+    };
+    let everyone = vec![true; table.len()];
+
+    let (raw_propensity, propensity_fit) = match table.logged_propensity() {
+        Some(p) => (p.to_vec(), None),
+        None => {
+            let preds = out_of_fold(
+                x,
+                w,
+                &everyone,
+                &folds,
+                &settings.propensity_learners,
+                Task::Classification,
+                settings.seed,
+            )?;
+            let (p, report) = choose(
+                &settings.propensity_learners,
+                preds,
+                w,
+                &everyone,
+                Task::Classification,
+            );
+            (p, Some(report))
+        }
+    };
+    let propensity_auc = auc(&raw_propensity, w);
+    if propensity_auc >= settings.separation_auc {
+        return Err(Degenerate::SeparatedArms {
+            auc: propensity_auc,
+            limit: settings.separation_auc,
+        }
+        .into());
+    }
+
+    let outcome_task = match table.outcome_kind() {
+        OutcomeKind::Continuous => Task::Regression,
+        OutcomeKind::Binary => Task::Classification,
+    };
+    let mut arms = Vec::with_capacity(2);
+    for arm in [0.0, 1.0] {
+        let in_arm: Vec<bool> = w.iter().map(|&v| v == arm).collect();
+        let preds = out_of_fold(
+            x,
+            y,
+            &in_arm,
+            &folds,
+            &settings.outcome_learners,
+            outcome_task,
+            settings.seed.wrapping_add(1 + arm as u64),
+        )?;
+        arms.push(choose(
+            &settings.outcome_learners,
+            preds,
+            y,
+            &in_arm,
+            outcome_task,
+        ));
+    }
+    let (mu1, outcome_treated) = arms.pop().unwrap_or_default_pair();
+    let (mu0, outcome_control) = arms.pop().unwrap_or_default_pair();
+
+    let (nuisance, clipped) = Nuisance::from_parts(raw_propensity, mu0, mu1, settings.clip);
+    let report = NuisanceReport {
+        folds: k,
+        seed: settings.seed,
+        propensity: PropensityReport {
+            source: if propensity_fit.is_some() {
+                "fitted"
+            } else {
+                "logged"
+            },
+            fit: propensity_fit,
+            auc: propensity_auc,
+            clip: settings.clip,
+            clipped,
+        },
+        outcome_control,
+        outcome_treated,
+    };
+    Ok((nuisance, report))
+}
+
+trait PairOrDefault {
+    fn unwrap_or_default_pair(self) -> (Vec<f64>, ComponentReport);
+}
+
+impl PairOrDefault for Option<(Vec<f64>, ComponentReport)> {
+    fn unwrap_or_default_pair(self) -> (Vec<f64>, ComponentReport) {
+        self.unwrap_or_else(|| {
+            (
+                Vec::new(),
+                ComponentReport {
+                    learner: String::new(),
+                    loss: "squared_error",
+                    oof_loss: 0.0,
+                    candidates: Vec::new(),
+                    units: 0,
+                },
+            )
+        })
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn folds_are_stratified_and_reproducible() {
+        let w: Vec<f64> = (0..103)
+            .map(|i| if i % 3 == 0 { 1.0 } else { 0.0 })
+            .collect();
+        let a = assign_folds(&w, 5, 7);
+        assert_eq!(a, assign_folds(&w, 5, 7));
+        assert_ne!(a, assign_folds(&w, 5, 8));
+        for f in 0..5 {
+            let treated = (0..w.len()).filter(|&i| a[i] == f && w[i] == 1.0).count();
+            // 35 treated over 5 folds: exactly 7 each.
+            assert_eq!(treated, 7);
+        }
+    }
+
+    #[test]
+    fn clipping_counts_clipped_units() {
+        let (n, clipped) =
+            Nuisance::from_parts(vec![0.001, 0.5, 0.999], vec![0.0; 3], vec![0.0; 3], 0.01);
+        assert_eq!(clipped, 2);
+        assert_eq!(n.propensity, vec![0.01, 0.5, 0.99]);
+    }
+}

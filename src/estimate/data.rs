@@ -1,0 +1,201 @@
+//! The arrays the estimation core works on, and the checks that make them
+//! safe to compute with.
+
+use ndarray::{Array2, ArrayView2};
+use serde::{Deserialize, Serialize};
+
+use super::error::{Degenerate, EstimateError};
+
+/// Whether the outcome is a real number or an event (0/1).
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize, Default)]
+#[serde(rename_all = "snake_case")]
+pub enum OutcomeKind {
+    #[default]
+    Continuous,
+    Binary,
+}
+
+impl std::str::FromStr for OutcomeKind {
+    type Err = String;
+    fn from_str(s: &str) -> Result<Self, String> {
+        match s {
+            "continuous" => Ok(Self::Continuous),
+            "binary" => Ok(Self::Binary),
+            other => Err(format!(
+                "unknown outcome kind {other:?} (expected continuous or binary)"
+            )),
+        }
+    }
+}
+
+/// Units with a factual outcome, one row each.
+///
+/// Invariant (checked by [`UnitTable::new`]): all columns have `n` rows, every
+/// value is finite, treatment is 0 or 1, logged propensities lie strictly in
+/// (0, 1), and a binary outcome is 0 or 1.
+#[derive(Debug, Clone)]
+pub struct UnitTable {
+    features: Array2<f64>,
+    treatment: Vec<f64>,
+    outcome: Vec<f64>,
+    logged_propensity: Option<Vec<f64>>,
+    outcome_kind: OutcomeKind,
+}
+
+impl UnitTable {
+    pub fn new(
+        features: Array2<f64>,
+        treatment: Vec<f64>,
+        outcome: Vec<f64>,
+        logged_propensity: Option<Vec<f64>>,
+        outcome_kind: OutcomeKind,
+    ) -> Result<Self, EstimateError> {
+        let n = features.nrows();
+        if treatment.len() != n || outcome.len() != n {
+            return Err(EstimateError::invalid(format!(
+                "column lengths differ: {n} feature rows, {} treatments, {} outcomes",
+                treatment.len(),
+                outcome.len()
+            )));
+        }
+        if let Some(p) = &logged_propensity {
+            if p.len() != n {
+                return Err(EstimateError::invalid(format!(
+                    "{} logged propensities for {n} units",
+                    p.len()
+                )));
+            }
+        }
+        for (row, x) in features.outer_iter().enumerate() {
+            if let Some(col) = x.iter().position(|v| !v.is_finite()) {
+                return Err(EstimateError::invalid(format!(
+                    "row {row}: feature {col} is not finite"
+                )));
+            }
+        }
+        for (row, &w) in treatment.iter().enumerate() {
+            if w != 0.0 && w != 1.0 {
+                return Err(EstimateError::invalid(format!(
+                    "row {row}: treatment {w} is not 0 or 1"
+                )));
+            }
+        }
+        for (row, &y) in outcome.iter().enumerate() {
+            if !y.is_finite() {
+                return Err(EstimateError::invalid(format!(
+                    "row {row}: outcome is not finite"
+                )));
+            }
+            if outcome_kind == OutcomeKind::Binary && y != 0.0 && y != 1.0 {
+                return Err(EstimateError::invalid(format!(
+                    "row {row}: outcome {y} is not 0 or 1 for a binary outcome"
+                )));
+            }
+        }
+        if let Some(p) = &logged_propensity {
+            for (row, &v) in p.iter().enumerate() {
+                if !(v > 0.0 && v < 1.0) {
+                    return Err(EstimateError::invalid(format!(
+                        "row {row}: logged propensity {v} is outside (0, 1)"
+                    )));
+                }
+            }
+        }
+        Ok(Self {
+            features,
+            treatment,
+            outcome,
+            logged_propensity,
+            outcome_kind,
+        })
+    }
+
+    pub fn len(&self) -> usize {
+        self.outcome.len()
+    }
+
+    pub fn is_empty(&self) -> bool {
+        self.outcome.is_empty()
+    }
+
+    pub fn n_features(&self) -> usize {
+        self.features.ncols()
+    }
+
+    pub fn features(&self) -> ArrayView2<'_, f64> {
+        self.features.view()
+    }
+
+    /// Treatment as 0.0 / 1.0, so it enters formulas directly.
+    pub fn treatment(&self) -> &[f64] {
+        &self.treatment
+    }
+
+    pub fn outcome(&self) -> &[f64] {
+        &self.outcome
+    }
+
+    pub fn logged_propensity(&self) -> Option<&[f64]> {
+        self.logged_propensity.as_deref()
+    }
+
+    pub fn outcome_kind(&self) -> OutcomeKind {
+        self.outcome_kind
+    }
+
+    pub fn n_treated(&self) -> usize {
+        self.treatment.iter().filter(|&&w| w == 1.0).count()
+    }
+
+    /// The states that make every estimate meaningless, checked up front.
+    pub fn check_estimable(&self, folds: usize, per_fold: usize) -> Result<(), Degenerate> {
+        let treated = self.n_treated();
+        let control = self.len() - treated;
+        for (arm, units) in [("treated", treated), ("control", control)] {
+            if units == 0 {
+                return Err(Degenerate::EmptyArm { arm: arm.into() });
+            }
+        }
+        for (arm, units) in [("treated", treated), ("control", control)] {
+            let needed = folds * per_fold;
+            if units < needed {
+                return Err(Degenerate::TooFewUnitsPerFold {
+                    arm: arm.into(),
+                    units,
+                    folds,
+                    per_fold,
+                    needed,
+                });
+            }
+        }
+        let first = self.outcome[0];
+        if self.outcome.iter().all(|&y| y == first) {
+            return Err(Degenerate::ConstantOutcome { value: first });
+        }
+        Ok(())
+    }
+}
+
+/// One model's predicted effects, aligned with the rows of a [`UnitTable`].
+#[derive(Debug, Clone)]
+pub struct ModelPredictions {
+    pub name: String,
+    pub effects: Vec<f64>,
+    /// Built-in reference models are scored like any other but labelled.
+    pub baseline: bool,
+}
+
+impl ModelPredictions {
+    pub fn new(name: impl Into<String>, effects: Vec<f64>) -> Self {
+        Self {
+            name: name.into(),
+            effects,
+            baseline: false,
+        }
+    }
+}
+
+/// Name of the built-in model that predicts no effect for anyone.
+pub const ZERO_EFFECT: &str = "zero-effect";
+/// Name of the built-in model that predicts the dataset's AIPW ATE for everyone.
+pub const CONSTANT_EFFECT: &str = "constant-effect";

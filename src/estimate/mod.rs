@@ -1,0 +1,27 @@
+//! The estimation core: pure functions over arrays, no I/O, no async.
+//!
+//! Read in this order: [`data`] (the unit table and its checks),
+//! [`learner`] and [`crossfit`] (nuisance models), [`pseudo`] (the AIPW
+//! pseudo-outcome), [`estimators`] (per-unit contributions, one file each),
+//! [`sums`] and [`compare`] (mergeable aggregates, ranking, best set),
+//! [`policy`], [`targeting`], [`calibration`] and [`overlap`] (the other
+//! reports), and [`scoreboard`], which runs a whole pass.
+
+pub mod calibration;
+pub mod compare;
+pub mod crossfit;
+pub mod data;
+pub mod error;
+pub mod estimators;
+pub mod learner;
+pub mod overlap;
+pub mod policy;
+pub mod pseudo;
+pub mod scoreboard;
+pub mod stats;
+pub mod sums;
+pub mod targeting;
+
+pub use data::{ModelPredictions, OutcomeKind, UnitTable, CONSTANT_EFFECT, ZERO_EFFECT};
+pub use error::{Degenerate, EstimateError};
+pub use scoreboard::{evaluate, score, Scoreboard, Settings};

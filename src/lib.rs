@@ -1,0 +1,22 @@
+//! plumbline keeps scoring deployed treatment-effect (CATE / uplift) models
+//! against the factual outcomes that arrive after their predictions, without
+//! ever seeing a counterfactual.
+//!
+//! A map of the modules, in the order a newcomer should meet them:
+//!
+//! - [`estimate`]: the statistics, as pure functions over arrays. Cross-fitted
+//!   nuisance models, the AIPW pseudo-outcome, one file per error estimator
+//!   (corrected PEHE, plug-in PEHE, DR loss, R-loss, IPW loss), mergeable
+//!   aggregates, ranking with a best set, policy gain, targeting curves,
+//!   calibration and overlap. Knows nothing of files, networks or threads
+//!   beyond a parallel fold loop.
+//! - [`input`]: reading units and predictions from CSV files, with errors that
+//!   name the file, row and column.
+//! - [`synth`]: published simulation designs with known effects, used by the
+//!   checks, the benchmarks and `plumbline simulate`.
+//! - [`cli`]: the `plumbline` command line (`score`, `simulate`).
+
+pub mod cli;
+pub mod estimate;
+pub mod input;
+pub mod synth;

@@ -1,0 +1,225 @@
+//! Published simulation designs with known effects, for checks and
+//! benchmarks.
+//!
+//! Outcome model in every design: Y = b(X) + (W - 1/2) tau(X) + sigma eps,
+//! eps ~ N(0, 1), so mu0 = b - tau/2 and mu1 = b + tau/2.
+//!
+//! - Nie & Wager (2021), "Quasi-oracle estimation of heterogeneous treatment
+//!   effects", setups A to D (recalled from memory of the paper):
+//!   A: X ~ U(0,1)^d, b = sin(pi X1 X2) + 2 (X3 - 1/2)^2 + X4 + X5/2,
+//!   e = clamp(sin(pi X1 X2), 0.1, 0.9), tau = (X1 + X2)/2.
+//!   B: X ~ N(0, I), b = max(X1 + X2, X3, 0) + max(X4 + X5, 0), e = 1/2,
+//!   tau = X1 + log(1 + exp(X2)).
+//!   C: X ~ N(0, I), b = 2 log(1 + exp(X1 + X2 + X3)),
+//!   e = 1/(1 + exp(X2 + X3)), tau = 1.
+//!   D: X ~ N(0, I), b = (max(X1 + X2 + X3, 0) + max(X4 + X5, 0))/2,
+//!   e = 1/(1 + exp(-X1) + exp(-X2)), tau = max(X1 + X2 + X3, 0) - max(X4 + X5, 0).
+//! - Wager & Athey (2018), "Estimation and inference of heterogeneous
+//!   treatment effects using random forests", section 5 (from memory):
+//!   heterogeneous design: X ~ U(0,1)^d, e = 1/2, b = 0,
+//!   tau = s(X1) s(X2) with s(x) = 1 + 1/(1 + exp(-20 (x - 1/3)));
+//!   confounded design: e = (1 + beta_{2,4}(X1))/4, b = 2 X1 - 1, tau = 0.
+//!
+//! Candidate "models" are fixed distortions of the true effect with known
+//! PEHE, so a ranking's truth is known exactly.
+
+use ndarray::Array2;
+use rand::{Rng, SeedableRng};
+use rand_chacha::ChaCha8Rng;
+
+use crate::estimate::ModelPredictions;
+
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Design {
+    NieWagerA,
+    NieWagerB,
+    NieWagerC,
+    NieWagerD,
+    WagerAtheyHeterogeneous,
+    WagerAtheyConfounded,
+}
+
+impl Design {
+    pub const ALL: [Design; 6] = [
+        Design::NieWagerA,
+        Design::NieWagerB,
+        Design::NieWagerC,
+        Design::NieWagerD,
+        Design::WagerAtheyHeterogeneous,
+        Design::WagerAtheyConfounded,
+    ];
+
+    pub fn key(&self) -> &'static str {
+        match self {
+            Design::NieWagerA => "nie-wager-a",
+            Design::NieWagerB => "nie-wager-b",
+            Design::NieWagerC => "nie-wager-c",
+            Design::NieWagerD => "nie-wager-d",
+            Design::WagerAtheyHeterogeneous => "wager-athey-heterogeneous",
+            Design::WagerAtheyConfounded => "wager-athey-confounded",
+        }
+    }
+
+    pub fn from_key(key: &str) -> Option<Design> {
+        Self::ALL.iter().copied().find(|d| d.key() == key)
+    }
+
+    fn uniform_features(&self) -> bool {
+        matches!(
+            self,
+            Design::NieWagerA | Design::WagerAtheyHeterogeneous | Design::WagerAtheyConfounded
+        )
+    }
+
+    /// (b, e, tau) at x.
+    pub fn functions(&self, x: &[f64]) -> (f64, f64, f64) {
+        use std::f64::consts::PI;
+        let pos = |v: f64| v.max(0.0);
+        let softplus = |v: f64| (1.0 + v.exp()).ln();
+        match self {
+            Design::NieWagerA => {
+                let s = (PI * x[0] * x[1]).sin();
+                let b = s + 2.0 * (x[2] - 0.5).powi(2) + x[3] + 0.5 * x[4];
+                (b, s.clamp(0.1, 0.9), (x[0] + x[1]) / 2.0)
+            }
+            Design::NieWagerB => {
+                let b = (x[0] + x[1]).max(x[2]).max(0.0) + pos(x[3] + x[4]);
+                (b, 0.5, x[0] + softplus(x[1]))
+            }
+            Design::NieWagerC => {
+                let b = 2.0 * softplus(x[0] + x[1] + x[2]);
+                (b, 1.0 / (1.0 + (x[1] + x[2]).exp()), 1.0)
+            }
+            Design::NieWagerD => {
+                let b = (pos(x[0] + x[1] + x[2]) + pos(x[3] + x[4])) / 2.0;
+                let e = 1.0 / (1.0 + (-x[0]).exp() + (-x[1]).exp());
+                (b, e, pos(x[0] + x[1] + x[2]) - pos(x[3] + x[4]))
+            }
+            Design::WagerAtheyHeterogeneous => {
+                let s = |v: f64| 1.0 + 1.0 / (1.0 + (-20.0 * (v - 1.0 / 3.0)).exp());
+                (0.0, 0.5, s(x[0]) * s(x[1]))
+            }
+            Design::WagerAtheyConfounded => {
+                let beta24 = 20.0 * x[0] * (1.0 - x[0]).powi(3);
+                (2.0 * x[0] - 1.0, (1.0 + beta24) / 4.0, 0.0)
+            }
+        }
+    }
+}
+
+/// One simulated dataset with its truth.
+#[derive(Debug, Clone)]
+pub struct Draw {
+    pub features: Array2<f64>,
+    pub treatment: Vec<f64>,
+    pub outcome: Vec<f64>,
+    pub propensity: Vec<f64>,
+    pub tau: Vec<f64>,
+}
+
+pub fn standard_normal(rng: &mut impl Rng) -> f64 {
+    let u1: f64 = rng.gen_range(f64::EPSILON..1.0);
+    let u2: f64 = rng.gen();
+    (-2.0 * u1.ln()).sqrt() * (std::f64::consts::TAU * u2).cos()
+}
+
+/// Draws n units with d >= 5 features.
+pub fn draw(design: Design, n: usize, d: usize, sigma: f64, seed: u64) -> Draw {
+    let d = d.max(5);
+    let mut rng = ChaCha8Rng::seed_from_u64(seed);
+    let mut features = Array2::zeros((n, d));
+    let (mut treatment, mut outcome, mut propensity, mut tau) = (
+        Vec::with_capacity(n),
+        Vec::with_capacity(n),
+        Vec::with_capacity(n),
+        Vec::with_capacity(n),
+    );
+    let mut x = vec![0.0; d];
+    for i in 0..n {
+        for v in x.iter_mut() {
+            *v = if design.uniform_features() {
+                rng.gen::<f64>()
+            } else {
+                standard_normal(&mut rng)
+            };
+        }
+        let (b, e, t) = design.functions(&x);
+        let w = if rng.gen::<f64>() < e { 1.0 } else { 0.0 };
+        let y = b + (w - 0.5) * t + sigma * standard_normal(&mut rng);
+        for (j, v) in x.iter().enumerate() {
+            features[[i, j]] = *v;
+        }
+        treatment.push(w);
+        outcome.push(y);
+        propensity.push(e);
+        tau.push(t);
+    }
+    Draw {
+        features,
+        treatment,
+        outcome,
+        propensity,
+        tau,
+    }
+}
+
+/// Population mean and variance of tau, by Monte Carlo with `n` draws.
+pub fn effect_moments(design: Design, n: usize, seed: u64) -> (f64, f64) {
+    let t = draw(design, n, 5, 0.0, seed).tau;
+    let mean = t.iter().sum::<f64>() / n as f64;
+    let var = t.iter().map(|v| (v - mean).powi(2)).sum::<f64>() / n as f64;
+    (mean, var)
+}
+
+/// A candidate model and its population PEHE given the effect moments.
+pub struct Candidate {
+    pub predictions: ModelPredictions,
+    pub true_pehe: f64,
+}
+
+/// Candidate models of graded quality: tau plus independent noise of sd
+/// `scale * c` for several c, a shrunk version and a shifted one. `scale`
+/// is the sd of tau (or 1 where tau is constant). Their population PEHEs
+/// are exact: noise c -> (scale c)^2; shrink a -> (1-a)^2 Var(tau);
+/// shift s -> (scale s)^2.
+pub fn candidates(tau: &[f64], var_tau: f64, count: usize, seed: u64) -> Vec<Candidate> {
+    let scale = if var_tau > 1e-12 { var_tau.sqrt() } else { 1.0 };
+    let mean = tau.iter().sum::<f64>() / tau.len().max(1) as f64;
+    let mut rng = ChaCha8Rng::seed_from_u64(seed);
+    // (name, kind, parameter); kinds: 0 noise, 1 shrink towards the mean, 2 shift.
+    let specs: [(&str, u8, f64); 10] = [
+        ("sharp", 0, 0.25),
+        ("shrunk", 1, 0.5),
+        ("noisy", 0, 0.6),
+        ("shifted", 2, 0.8),
+        ("rough", 0, 1.3),
+        ("very-noisy", 0, 2.0),
+        ("sharp-b", 0, 0.35),
+        ("shifted-b", 2, 0.45),
+        ("rough-b", 0, 1.6),
+        ("shrunk-b", 1, 0.2),
+    ];
+    specs
+        .iter()
+        .take(count)
+        .map(|&(name, kind, p)| {
+            let effects: Vec<f64> = tau
+                .iter()
+                .map(|&t| match kind {
+                    0 => t + scale * p * standard_normal(&mut rng),
+                    1 => p * t + (1.0 - p) * mean,
+                    _ => t + scale * p,
+                })
+                .collect();
+            let true_pehe = match kind {
+                0 => (scale * p).powi(2),
+                1 => (1.0 - p).powi(2) * var_tau,
+                _ => (scale * p).powi(2),
+            };
+            Candidate {
+                predictions: ModelPredictions::new(name, effects),
+                true_pehe,
+            }
+        })
+        .collect()
+}
