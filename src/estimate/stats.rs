@@ -194,16 +194,16 @@ mod tests {
     fn holm_steps_down_and_stops() {
         // alpha 0.05, m = 3: thresholds 0.0167, 0.025, 0.05.
         assert_eq!(
-            holm_reject(&[0.01, 0.04, 0.03], 0.05),
+            holm_reject(&[0.01, 0.04, 0.02], 0.05),
             vec![true, true, true]
         );
         assert_eq!(
-            holm_reject(&[0.01, 0.04, 0.026], 0.05),
+            holm_reject(&[0.01, 0.04, 0.03], 0.05),
             vec![true, false, false]
         );
         assert_eq!(
             holm_reject(&[0.02, 0.01, 0.5], 0.05),
-            vec![false, true, false]
+            vec![true, true, false]
         );
     }
 

@@ -123,10 +123,13 @@ pub fn logistic_fit(
             learner: "logistic".into(),
             reason: e.to_string(),
         })?;
-    // linfa orders the two labels and models P(larger label) = P(true).
+    // linfa models the probability of its "positive" class, which is the
+    // more frequent label, not the label `true`. Flip the signs when the
+    // events are the minority so the fit always models P(Y = 1).
+    let sign = if fitted.labels().pos.class { 1.0 } else { -1.0 };
     Ok(LinearFit {
-        intercept: fitted.intercept(),
-        coef: fitted.params().to_vec(),
+        intercept: sign * fitted.intercept(),
+        coef: fitted.params().iter().map(|b| sign * b).collect(),
         task: Task::Classification,
     })
 }
@@ -156,6 +159,37 @@ impl Default for Linear {
     }
 }
 
+impl Linear {
+    /// Fits on standardized features and returns raw-scale coefficients.
+    /// With alpha = 0 this is plain least squares / maximum likelihood, and
+    /// standardizing only improves the solver's conditioning.
+    pub fn fit_coefficients(
+        &self,
+        x: ArrayView2<'_, f64>,
+        y: &[f64],
+        task: Task,
+    ) -> Result<LinearFit, EstimateError> {
+        let (mean, sd) = column_scales(x);
+        let xs: Array2<f64> = (&x - &mean) / &sd;
+        let fit = match task {
+            Task::Regression => ridge_fit(xs.view(), y, self.alpha)?,
+            Task::Classification => logistic_fit(xs.view(), y, self.alpha)?,
+        };
+        let coef: Vec<f64> = fit.coef.iter().zip(sd.iter()).map(|(b, s)| b / s).collect();
+        let intercept = fit.intercept
+            - coef
+                .iter()
+                .zip(mean.iter())
+                .map(|(b, m)| b * m)
+                .sum::<f64>();
+        Ok(LinearFit {
+            intercept,
+            coef,
+            task,
+        })
+    }
+}
+
 impl Learner for Linear {
     fn name(&self) -> &'static str {
         "linear"
@@ -182,23 +216,6 @@ impl Learner for Linear {
         if let Some(c) = constant_if_degenerate(y, task) {
             return Ok(c);
         }
-        let (mean, sd) = column_scales(x);
-        let xs: Array2<f64> = (&x - &mean) / &sd;
-        let fit = match task {
-            Task::Regression => ridge_fit(xs.view(), y, self.alpha)?,
-            Task::Classification => logistic_fit(xs.view(), y, self.alpha)?,
-        };
-        let coef: Vec<f64> = fit.coef.iter().zip(sd.iter()).map(|(b, s)| b / s).collect();
-        let intercept = fit.intercept
-            - coef
-                .iter()
-                .zip(mean.iter())
-                .map(|(b, m)| b * m)
-                .sum::<f64>();
-        Ok(Box::new(LinearFit {
-            intercept,
-            coef,
-            task,
-        }))
+        Ok(Box::new(self.fit_coefficients(x, y, task)?))
     }
 }
