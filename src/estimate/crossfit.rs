@@ -19,6 +19,9 @@ use super::learner::{default_library, mean_loss, Learner, Task};
 use super::stats::auc;
 
 /// How the nuisance components are fitted.
+///
+/// Empty learner lists mean "the default library for this data"
+/// ([`default_library`]), chosen once the number of features is known.
 #[derive(Debug)]
 pub struct NuisanceSettings {
     pub folds: usize,
@@ -39,8 +42,8 @@ impl Default for NuisanceSettings {
             folds: 5,
             seed: 0,
             clip: 0.01,
-            propensity_learners: default_library(),
-            outcome_learners: default_library(),
+            propensity_learners: Vec::new(),
+            outcome_learners: Vec::new(),
             min_units_per_fold: 3,
             separation_auc: 0.995,
         }
@@ -60,9 +63,6 @@ impl NuisanceSettings {
                 "propensity clip must lie in [0, 0.5) (got {})",
                 self.clip
             )));
-        }
-        if self.propensity_learners.is_empty() || self.outcome_learners.is_empty() {
-            return Err(EstimateError::invalid("every component needs a learner"));
         }
         for l in self
             .propensity_learners
@@ -285,6 +285,15 @@ pub fn fit_nuisance(
 ) -> Result<(Nuisance, NuisanceReport), EstimateError> {
     settings.check()?;
     table.check_estimable(settings.folds, settings.min_units_per_fold)?;
+    let library = |given: &[Box<dyn Learner>]| -> Vec<Box<dyn Learner>> {
+        if given.is_empty() {
+            default_library(table.n_features())
+        } else {
+            given.iter().map(|l| l.boxed_clone()).collect()
+        }
+    };
+    let propensity_learners = library(&settings.propensity_learners);
+    let outcome_learners = library(&settings.outcome_learners);
     let k = settings.folds;
     let x = table.features();
     let w = table.treatment();
@@ -304,12 +313,12 @@ pub fn fit_nuisance(
                 w,
                 &everyone,
                 &folds,
-                &settings.propensity_learners,
+                &propensity_learners,
                 Task::Classification,
                 settings.seed,
             )?;
             let (p, report) = choose(
-                &settings.propensity_learners,
+                &propensity_learners,
                 preds,
                 w,
                 &everyone,
@@ -339,17 +348,11 @@ pub fn fit_nuisance(
             y,
             &in_arm,
             &folds,
-            &settings.outcome_learners,
+            &outcome_learners,
             outcome_task,
             settings.seed.wrapping_add(1 + arm as u64),
         )?;
-        arms.push(choose(
-            &settings.outcome_learners,
-            preds,
-            y,
-            &in_arm,
-            outcome_task,
-        ));
+        arms.push(choose(&outcome_learners, preds, y, &in_arm, outcome_task));
     }
     let (mu1, outcome_treated) = arms.pop().unwrap_or_default_pair();
     let (mu0, outcome_control) = arms.pop().unwrap_or_default_pair();

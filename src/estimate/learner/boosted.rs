@@ -84,6 +84,10 @@ impl Learner for Boosted {
         "boosted"
     }
 
+    fn boxed_clone(&self) -> Box<dyn Learner> {
+        Box::new(*self)
+    }
+
     fn check(&self) -> Result<(), EstimateError> {
         let bad = |what: &str| {
             Err(EstimateError::invalid(format!(

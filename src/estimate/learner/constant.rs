@@ -39,6 +39,10 @@ impl Learner for Constant {
         "constant"
     }
 
+    fn boxed_clone(&self) -> Box<dyn Learner> {
+        Box::new(*self)
+    }
+
     fn check(&self) -> Result<(), EstimateError> {
         Ok(())
     }

@@ -195,6 +195,10 @@ impl Learner for Linear {
         "linear"
     }
 
+    fn boxed_clone(&self) -> Box<dyn Learner> {
+        Box::new(*self)
+    }
+
     fn check(&self) -> Result<(), EstimateError> {
         if self.alpha.is_finite() && self.alpha >= 0.0 {
             Ok(())

@@ -10,10 +10,12 @@
 mod boosted;
 mod constant;
 mod linear;
+mod quadratic;
 
 pub use boosted::Boosted;
 pub use constant::Constant;
 pub use linear::{logistic_fit, ridge_fit, Linear, LinearFit};
+pub use quadratic::Quadratic;
 
 use ndarray::ArrayView2;
 
@@ -36,6 +38,9 @@ pub trait Learner: Send + Sync + std::fmt::Debug {
     /// Rejects hyperparameters that cannot work, before any data is touched.
     fn check(&self) -> Result<(), EstimateError>;
 
+    /// A boxed copy, so settings can hand learners to several fits.
+    fn boxed_clone(&self) -> Box<dyn Learner>;
+
     /// Fits on rows `x` (n x d) and targets `y`; `seed` drives any internal
     /// randomness (inner validation splits), so fits are reproducible.
     fn fit(
@@ -53,9 +58,16 @@ pub trait Fitted: Send + Sync {
     fn predict(&self, x: ArrayView2<'_, f64>) -> Vec<f64>;
 }
 
-/// The learners every component chooses from by default.
-pub fn default_library() -> Vec<Box<dyn Learner>> {
-    vec![Box::new(Linear::default()), Box::new(Boosted::default())]
+/// The learners every component chooses from by default for data with
+/// `features` columns: linear, the second-degree expansion while it stays
+/// small (at most [`quadratic::MAX_FEATURES`] inputs), and boosted trees.
+pub fn default_library(features: usize) -> Vec<Box<dyn Learner>> {
+    let mut library: Vec<Box<dyn Learner>> = vec![Box::new(Linear::default())];
+    if features <= quadratic::MAX_FEATURES {
+        library.push(Box::new(Quadratic::default()));
+    }
+    library.push(Box::new(Boosted::default()));
+    library
 }
 
 /// Probabilities are kept this far from 0 and 1 when scoring log-loss.
