@@ -190,7 +190,7 @@ fn component(s: &mut String, label: &str, c: &ComponentReport) {
         .collect();
     let _ = writeln!(
         s,
-        "  {label:<18}  {:<8} out-of-fold {} {}  (candidates: {})",
+        "  {label:<18}  {:<9} out-of-fold {} {}  (candidates: {})",
         c.learner,
         c.loss.replace('_', " "),
         num(c.oof_loss),

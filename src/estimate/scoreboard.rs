@@ -2,6 +2,7 @@
 //! estimator for every model, comparisons, targeting, calibration and the
 //! overlap report, gathered into one serializable [`Scoreboard`].
 
+use rayon::prelude::*;
 use serde::Serialize;
 
 use super::calibration::{calibration, Calibration};
@@ -279,8 +280,10 @@ pub fn score(
         .collect();
     let no_detectable_heterogeneity = !holm_reject(&p_beats, settings.alpha).iter().any(|&r| r);
 
+    // Targeting bootstraps and calibration sorts are per model and
+    // independent: run them in parallel, results in model order.
     let model_scores: Vec<ModelScore> = all
-        .iter()
+        .par_iter()
         .enumerate()
         .map(|(k, model)| {
             let d = corrected.difference(k, constant);
