@@ -76,12 +76,14 @@ fn parse_number(cell: &str) -> Result<f64, String> {
     }
 }
 
+/// An open CSV file whose header has been read and checked. Records are
+/// parsed one at a time, so a file is never held in memory as text.
 struct Sheet {
     header: Vec<String>,
-    rows: Vec<csv::StringRecord>,
+    reader: csv::Reader<std::fs::File>,
 }
 
-fn read_sheet(file: &Path) -> Result<Sheet, InputError> {
+fn open_sheet(file: &Path) -> Result<Sheet, InputError> {
     let at = Located { file };
     let mut reader = csv::ReaderBuilder::new()
         .has_headers(true)
@@ -103,18 +105,40 @@ fn read_sheet(file: &Path) -> Result<Sheet, InputError> {
             return Err(at.err(None, Some(h), "duplicate column in the header row"));
         }
     }
-    let mut rows = Vec::new();
-    for (i, record) in reader.records().enumerate() {
-        let record = record.map_err(|e| {
-            let row = e.position().map(|p| p.line() as usize - 1).unwrap_or(i + 1);
-            at.err(Some(row), None, format!("malformed CSV record: {e}"))
-        })?;
-        rows.push(record);
+    Ok(Sheet { header, reader })
+}
+
+impl Sheet {
+    /// Calls `each(row, record)` for every data row (1-based), stopping at
+    /// the first error. Fails on a file with no data rows.
+    fn for_each(
+        &mut self,
+        at: &Located<'_>,
+        mut each: impl FnMut(usize, &csv::StringRecord) -> Result<(), InputError>,
+    ) -> Result<usize, InputError> {
+        let mut record = csv::StringRecord::new();
+        let mut row = 0;
+        loop {
+            match self.reader.read_record(&mut record) {
+                Ok(true) => {
+                    row += 1;
+                    each(row, &record)?;
+                }
+                Ok(false) => break,
+                Err(e) => {
+                    let at_row = e
+                        .position()
+                        .map(|p| (p.line() as usize).saturating_sub(1))
+                        .unwrap_or(row + 1);
+                    return Err(at.err(Some(at_row), None, format!("malformed CSV record: {e}")));
+                }
+            }
+        }
+        if row == 0 {
+            return Err(at.err(None, None, "no data rows"));
+        }
+        Ok(row)
     }
-    if rows.is_empty() {
-        return Err(at.err(None, None, "no data rows"));
-    }
-    Ok(Sheet { header, rows })
 }
 
 fn column_index(sheet: &Sheet, at: &Located<'_>, name: &str) -> Result<usize, InputError> {
@@ -125,25 +149,27 @@ fn column_index(sheet: &Sheet, at: &Located<'_>, name: &str) -> Result<usize, In
         .ok_or_else(|| at.err(None, Some(name), "required column is missing"))
 }
 
-fn read_ids(sheet: &Sheet, at: &Located<'_>, id_col: usize) -> Result<Vec<String>, InputError> {
-    let mut seen: HashMap<&str, usize> = HashMap::new();
-    let mut ids = Vec::with_capacity(sheet.rows.len());
-    for (i, rec) in sheet.rows.iter().enumerate() {
-        let row = i + 1;
-        let id = rec.get(id_col).unwrap_or("").trim();
-        if id.is_empty() {
-            return Err(at.err(Some(row), Some(UNIT_ID), "empty unit id"));
-        }
-        if let Some(first) = seen.insert(id, row) {
-            return Err(at.err(
-                Some(row),
-                Some(UNIT_ID),
-                format!("unit id {id:?} already appeared in row {first}"),
-            ));
-        }
-        ids.push(id.to_string());
+/// Checks a unit id cell and records it; ids must be non-empty and unique.
+fn take_id(
+    ids: &mut Vec<String>,
+    seen: &mut HashMap<String, usize>,
+    at: &Located<'_>,
+    row: usize,
+    cell: Option<&str>,
+) -> Result<(), InputError> {
+    let id = cell.unwrap_or("").trim();
+    if id.is_empty() {
+        return Err(at.err(Some(row), Some(UNIT_ID), "empty unit id"));
     }
-    Ok(ids)
+    if let Some(first) = seen.insert(id.to_string(), row) {
+        return Err(at.err(
+            Some(row),
+            Some(UNIT_ID),
+            format!("unit id {id:?} already appeared in row {first}"),
+        ));
+    }
+    ids.push(id.to_string());
+    Ok(())
 }
 
 /// A units file: ids, features and factual data.
@@ -158,7 +184,7 @@ pub struct UnitsFile {
 /// outcome is 0 or 1.
 pub fn read_units(file: &Path, kind: Option<OutcomeKind>) -> Result<UnitsFile, InputError> {
     let at = Located { file };
-    let sheet = read_sheet(file)?;
+    let mut sheet = open_sheet(file)?;
     let id_col = column_index(&sheet, &at, UNIT_ID)?;
     let w_col = column_index(&sheet, &at, TREATMENT)?;
     let y_col = column_index(&sheet, &at, OUTCOME)?;
@@ -170,19 +196,18 @@ pub fn read_units(file: &Path, kind: Option<OutcomeKind>) -> Result<UnitsFile, I
         .iter()
         .map(|&c| sheet.header[c].clone())
         .collect();
-    let ids = read_ids(&sheet, &at, id_col)?;
+    let header = sheet.header.clone();
 
-    let n = sheet.rows.len();
     let d = feature_cols.len();
-    let mut features = Vec::with_capacity(n * d);
-    let mut treatment = Vec::with_capacity(n);
-    let mut outcome = Vec::with_capacity(n);
-    let mut propensity = p_col.map(|_| Vec::with_capacity(n));
-    for (i, rec) in sheet.rows.iter().enumerate() {
-        let row = i + 1;
+    let (mut ids, mut seen) = (Vec::new(), HashMap::new());
+    let mut features = Vec::new();
+    let mut treatment = Vec::new();
+    let mut outcome = Vec::new();
+    let mut propensity = p_col.map(|_| Vec::new());
+    let n = sheet.for_each(&at, |row, rec| {
+        take_id(&mut ids, &mut seen, &at, row, rec.get(id_col))?;
         let cell = |c: usize| -> Result<f64, InputError> {
-            parse_number(rec.get(c).unwrap_or(""))
-                .map_err(|m| at.err(Some(row), Some(&sheet.header[c]), m))
+            parse_number(rec.get(c).unwrap_or("")).map_err(|m| at.err(Some(row), Some(&header[c]), m))
         };
         for &c in &feature_cols {
             features.push(cell(c)?);
@@ -204,7 +229,8 @@ pub fn read_units(file: &Path, kind: Option<OutcomeKind>) -> Result<UnitsFile, I
             }
             p.push(v);
         }
-    }
+        Ok(())
+    })?;
     let binary_values = outcome.iter().all(|&y| y == 0.0 || y == 1.0);
     let kind = match kind {
         Some(k) => k,
@@ -245,7 +271,7 @@ pub struct PredictionsFile {
 
 pub fn read_predictions(file: &Path) -> Result<PredictionsFile, InputError> {
     let at = Located { file };
-    let sheet = read_sheet(file)?;
+    let mut sheet = open_sheet(file)?;
     let id_col = column_index(&sheet, &at, UNIT_ID)?;
     let model_cols: Vec<usize> = (0..sheet.header.len()).filter(|&c| c != id_col).collect();
     if model_cols.is_empty() {
@@ -255,15 +281,18 @@ pub fn read_predictions(file: &Path) -> Result<PredictionsFile, InputError> {
             "no model columns: after unit_id, each column holds one model's predicted effects",
         ));
     }
-    let ids = read_ids(&sheet, &at, id_col)?;
-    let mut values = vec![Vec::with_capacity(sheet.rows.len()); model_cols.len()];
-    for (i, rec) in sheet.rows.iter().enumerate() {
+    let header = sheet.header.clone();
+    let (mut ids, mut seen) = (Vec::new(), HashMap::new());
+    let mut values = vec![Vec::new(); model_cols.len()];
+    sheet.for_each(&at, |row, rec| {
+        take_id(&mut ids, &mut seen, &at, row, rec.get(id_col))?;
         for (m, &c) in model_cols.iter().enumerate() {
             let v = parse_number(rec.get(c).unwrap_or(""))
-                .map_err(|msg| at.err(Some(i + 1), Some(&sheet.header[c]), msg))?;
+                .map_err(|msg| at.err(Some(row), Some(&header[c]), msg))?;
             values[m].push(v);
         }
-    }
+        Ok(())
+    })?;
     Ok(PredictionsFile {
         ids,
         models: model_cols

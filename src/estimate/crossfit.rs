@@ -418,6 +418,55 @@ mod tests {
         }
     }
 
+    fn table(x: Vec<f64>, w: Vec<f64>, y: Vec<f64>) -> UnitTable {
+        let n = w.len();
+        let x = ndarray::Array2::from_shape_vec((n, x.len() / n), x).expect("shape");
+        UnitTable::new(x, w, y, None, OutcomeKind::Continuous).expect("table")
+    }
+
+    #[test]
+    fn degenerate_data_gets_named_states() {
+        let n = 60;
+        let x: Vec<f64> = (0..n).map(|i| i as f64).collect();
+        let y: Vec<f64> = (0..n).map(|i| (i % 7) as f64).collect();
+        let settings = NuisanceSettings::default();
+        let state = |t: &UnitTable| match fit_nuisance(t, &settings) {
+            Err(EstimateError::Degenerate(d)) => d,
+            other => panic!("expected a degenerate state, got {:?}", other.map(|_| ())),
+        };
+        // Treated exactly when x >= 200 of 400: the propensity separates
+        // the arms (out-of-fold AUC 0.999 here).
+        let big = 400;
+        let bx: Vec<f64> = (0..big).map(|i| i as f64).collect();
+        let by: Vec<f64> = (0..big).map(|i| (i % 7) as f64).collect();
+        let bw: Vec<f64> = (0..big).map(|i| if i >= 200 { 1.0 } else { 0.0 }).collect();
+        assert!(matches!(
+            state(&table(bx, bw, by)),
+            Degenerate::SeparatedArms { .. }
+        ));
+        // Nobody treated.
+        assert!(matches!(
+            state(&table(x.clone(), vec![0.0; n], y.clone())),
+            Degenerate::EmptyArm { .. }
+        ));
+        // Alternating arms but a constant outcome.
+        let alt: Vec<f64> = (0..n).map(|i| (i % 2) as f64).collect();
+        assert!(matches!(
+            state(&table(x.clone(), alt.clone(), vec![2.5; n])),
+            Degenerate::ConstantOutcome { .. }
+        ));
+        // Only 10 treated: 5 folds need at least 3 per fold, 15 in all.
+        let few: Vec<f64> = (0..n).map(|i| if i % 6 == 0 { 1.0 } else { 0.0 }).collect();
+        assert!(matches!(
+            state(&table(x, few, y)),
+            Degenerate::TooFewUnitsPerFold {
+                needed: 15,
+                units: 10,
+                ..
+            }
+        ));
+    }
+
     #[test]
     fn clipping_counts_clipped_units() {
         let (n, clipped) =
