@@ -16,7 +16,10 @@
 //!   checks, the benchmarks and `plumbline simulate`.
 //! - [`cli`]: the `plumbline` command line (`score`, `simulate`).
 
+pub mod api;
 pub mod cli;
 pub mod estimate;
 pub mod input;
+pub mod monitor;
+pub mod store;
 pub mod synth;

@@ -15,7 +15,7 @@ use serde::Serialize;
 
 use super::data::{OutcomeKind, UnitTable};
 use super::error::{Degenerate, EstimateError};
-use super::learner::{default_library, mean_loss, Learner, Task};
+use super::learner::{default_library, mean_loss, Fitted, Learner, Task};
 use super::stats::auc;
 
 /// How the nuisance components are fitted.
@@ -193,8 +193,16 @@ struct Folds<'a> {
     count: usize,
 }
 
-/// Held-out rows of one fold and one learner's predictions for them.
-type FoldPredictions = (usize, Vec<usize>, Vec<f64>);
+/// One fold's fit of one learner: the learner, the fold, the model, and
+/// its predictions for the held-out rows.
+type FoldFit = (usize, usize, Box<dyn Fitted>, Vec<usize>, Vec<f64>);
+
+/// Out-of-fold predictions of every learner, and every learner's fold models
+/// (models[learner][fold]).
+struct OutOfFold {
+    predictions: Vec<Vec<f64>>,
+    models: Vec<Vec<Box<dyn Fitted>>>,
+}
 
 /// Out-of-fold predictions for every unit from every learner, where fold `f`
 /// is predicted by a fit on the units of `train_mask` outside fold `f`.
@@ -207,12 +215,12 @@ fn out_of_fold(
     learners: &[Box<dyn Learner>],
     task: Task,
     seed: u64,
-) -> Result<Vec<Vec<f64>>, EstimateError> {
+) -> Result<OutOfFold, EstimateError> {
     let (k, folds) = (folds.count, folds.of_unit);
     let jobs: Vec<(usize, usize)> = (0..learners.len())
         .flat_map(|l| (0..k).map(move |f| (l, f)))
         .collect();
-    let results: Vec<Result<FoldPredictions, EstimateError>> = jobs
+    let results: Vec<Result<FoldFit, EstimateError>> = jobs
         .par_iter()
         .map(|&(l, f)| {
             let train: Vec<usize> = (0..folds.len())
@@ -224,27 +232,89 @@ fn out_of_fold(
             let fit_seed = seed ^ ((f as u64 + 1) << 32) ^ (l as u64 + 1);
             let model = learners[l].fit(xt.view(), &yt, task, fit_seed)?;
             let pred = model.predict(x.select(Axis(0), &held).view());
-            Ok((l, held, pred))
+            Ok((l, f, model, held, pred))
         })
         .collect();
-    let mut out = vec![vec![0.0; folds.len()]; learners.len()];
+    let mut predictions = vec![vec![0.0; folds.len()]; learners.len()];
+    let mut slots: Vec<Vec<Option<Box<dyn Fitted>>>> =
+        (0..learners.len()).map(|_| (0..k).map(|_| None).collect()).collect();
     for r in results {
-        let (l, held, pred) = r?;
+        let (l, f, model, held, pred) = r?;
         for (i, p) in held.into_iter().zip(pred) {
-            out[l][i] = p;
+            predictions[l][i] = p;
+        }
+        slots[l][f] = Some(model);
+    }
+    let models = slots
+        .into_iter()
+        .map(|fold_models| fold_models.into_iter().flatten().collect())
+        .collect();
+    Ok(OutOfFold {
+        predictions,
+        models,
+    })
+}
+
+/// The fold models of the chosen learner of every component, kept so that
+/// units that arrive after a fit can be scored by models that never saw
+/// them: a new unit gets the average of the K fold models' predictions.
+pub struct FittedNuisance {
+    /// None when the propensity was logged rather than fitted.
+    pub propensity: Option<Vec<Box<dyn Fitted>>>,
+    pub mu0: Vec<Box<dyn Fitted>>,
+    pub mu1: Vec<Box<dyn Fitted>>,
+    pub clip: f64,
+}
+
+fn fold_average(models: &[Box<dyn Fitted>], x: ArrayView2<'_, f64>) -> Vec<f64> {
+    let mut sum = vec![0.0; x.nrows()];
+    for m in models {
+        for (s, p) in sum.iter_mut().zip(m.predict(x)) {
+            *s += p;
         }
     }
-    Ok(out)
+    let k = models.len().max(1) as f64;
+    sum.iter().map(|s| s / k).collect()
+}
+
+impl FittedNuisance {
+    /// Nuisance values for new units. `logged` propensities are used as
+    /// given (clipped); without them a fitted propensity is required.
+    pub fn predict(
+        &self,
+        x: ArrayView2<'_, f64>,
+        logged: Option<&[f64]>,
+    ) -> Result<(Nuisance, usize), EstimateError> {
+        let propensity = match (logged, &self.propensity) {
+            (Some(p), _) => p.to_vec(),
+            (None, Some(models)) => fold_average(models, x),
+            (None, None) => {
+                return Err(EstimateError::invalid(
+                    "the nuisance fit used logged propensities, and these units have none",
+                ))
+            }
+        };
+        Ok(Nuisance::from_parts(
+            propensity,
+            fold_average(&self.mu0, x),
+            fold_average(&self.mu1, x),
+            self.clip,
+        ))
+    }
 }
 
 /// Picks the learner with the lowest out-of-fold loss on the `scored` units.
 fn choose(
     learners: &[Box<dyn Learner>],
-    predictions: Vec<Vec<f64>>,
+    oof: OutOfFold,
     target: &[f64],
     scored: &[bool],
     task: Task,
-) -> (Vec<f64>, ComponentReport) {
+) -> (Vec<f64>, Vec<Box<dyn Fitted>>, ComponentReport) {
+    let OutOfFold {
+        predictions,
+        models,
+    } = oof;
     let idx: Vec<usize> = (0..target.len()).filter(|&i| scored[i]).collect();
     let y: Vec<f64> = idx.iter().map(|&i| target[i]).collect();
     let candidates: Vec<CandidateLoss> = learners
@@ -275,7 +345,8 @@ fn choose(
         units: idx.len(),
     };
     let chosen = predictions.into_iter().nth(best).unwrap_or_default();
-    (chosen, report)
+    let chosen_models = models.into_iter().nth(best).unwrap_or_default();
+    (chosen, chosen_models, report)
 }
 
 /// Cross-fits propensity (unless logged) and both outcome regressions.
@@ -283,6 +354,15 @@ pub fn fit_nuisance(
     table: &UnitTable,
     settings: &NuisanceSettings,
 ) -> Result<(Nuisance, NuisanceReport), EstimateError> {
+    fit_nuisance_models(table, settings).map(|(n, r, _)| (n, r))
+}
+
+/// As [`fit_nuisance`], also returning the fold models for scoring units
+/// that arrive later.
+pub fn fit_nuisance_models(
+    table: &UnitTable,
+    settings: &NuisanceSettings,
+) -> Result<(Nuisance, NuisanceReport, FittedNuisance), EstimateError> {
     settings.check()?;
     table.check_estimable(settings.folds, settings.min_units_per_fold)?;
     let library = |given: &[Box<dyn Learner>]| -> Vec<Box<dyn Learner>> {
@@ -305,8 +385,8 @@ pub fn fit_nuisance(
     };
     let everyone = vec![true; table.len()];
 
-    let (raw_propensity, propensity_fit) = match table.logged_propensity() {
-        Some(p) => (p.to_vec(), None),
+    let (raw_propensity, propensity_fit, propensity_models) = match table.logged_propensity() {
+        Some(p) => (p.to_vec(), None, None),
         None => {
             let preds = out_of_fold(
                 x,
@@ -317,14 +397,14 @@ pub fn fit_nuisance(
                 Task::Classification,
                 settings.seed,
             )?;
-            let (p, report) = choose(
+            let (p, models, report) = choose(
                 &propensity_learners,
                 preds,
                 w,
                 &everyone,
                 Task::Classification,
             );
-            (p, Some(report))
+            (p, Some(report), Some(models))
         }
     };
     let propensity_auc = auc(&raw_propensity, w);
@@ -354,8 +434,8 @@ pub fn fit_nuisance(
         )?;
         arms.push(choose(&outcome_learners, preds, y, &in_arm, outcome_task));
     }
-    let (mu1, outcome_treated) = arms.pop().unwrap_or_default_pair();
-    let (mu0, outcome_control) = arms.pop().unwrap_or_default_pair();
+    let (mu1, mu1_models, outcome_treated) = arms.pop().unwrap_or_default_triple();
+    let (mu0, mu0_models, outcome_control) = arms.pop().unwrap_or_default_triple();
 
     let (nuisance, clipped) = Nuisance::from_parts(raw_propensity, mu0, mu1, settings.clip);
     let report = NuisanceReport {
@@ -375,17 +455,26 @@ pub fn fit_nuisance(
         outcome_control,
         outcome_treated,
     };
-    Ok((nuisance, report))
+    let fitted = FittedNuisance {
+        propensity: propensity_models,
+        mu0: mu0_models,
+        mu1: mu1_models,
+        clip: settings.clip,
+    };
+    Ok((nuisance, report, fitted))
 }
 
-trait PairOrDefault {
-    fn unwrap_or_default_pair(self) -> (Vec<f64>, ComponentReport);
+type Chosen = (Vec<f64>, Vec<Box<dyn Fitted>>, ComponentReport);
+
+trait ChosenOrDefault {
+    fn unwrap_or_default_triple(self) -> Chosen;
 }
 
-impl PairOrDefault for Option<(Vec<f64>, ComponentReport)> {
-    fn unwrap_or_default_pair(self) -> (Vec<f64>, ComponentReport) {
+impl ChosenOrDefault for Option<Chosen> {
+    fn unwrap_or_default_triple(self) -> Chosen {
         self.unwrap_or_else(|| {
             (
+                Vec::new(),
                 Vec::new(),
                 ComponentReport {
                     learner: String::new(),

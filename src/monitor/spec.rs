@@ -1,0 +1,141 @@
+//! A dataset's settings as the service keeps them, with defaults and checks.
+
+use serde::{Deserialize, Serialize};
+
+use crate::estimate::OutcomeKind;
+
+/// Settings of one dataset. Zero values on the wire mean "default"; once
+/// stored, every field holds the value in force.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct DatasetSpec {
+    pub name: String,
+    pub feature_names: Vec<String>,
+    pub outcome_kind: OutcomeKind,
+    pub treatment_cost: f64,
+    pub folds: u32,
+    pub overlap_eps: f64,
+    pub overlap_max_extreme_share: f64,
+    pub overlap_min_effective_share: f64,
+    pub recent_last_outcomes: u32,
+    pub recent_last_days: u32,
+    pub recompute_every_outcomes: u32,
+    pub recompute_every_seconds: u32,
+    pub refit_growth: f64,
+    pub refit_every_seconds: u32,
+    pub min_coverage: f64,
+    pub alpha: f64,
+    pub seed: u64,
+}
+
+pub const DEFAULT_FOLDS: u32 = 5;
+pub const DEFAULT_EPS: f64 = 0.05;
+pub const DEFAULT_MAX_EXTREME_SHARE: f64 = 0.10;
+pub const DEFAULT_MIN_EFFECTIVE_SHARE: f64 = 0.20;
+pub const DEFAULT_RECENT_OUTCOMES: u32 = 5000;
+pub const DEFAULT_EVERY_OUTCOMES: u32 = 1000;
+pub const DEFAULT_EVERY_SECONDS: u32 = 60;
+pub const DEFAULT_REFIT_GROWTH: f64 = 0.5;
+pub const DEFAULT_MIN_COVERAGE: f64 = 0.95;
+pub const DEFAULT_ALPHA: f64 = 0.05;
+
+/// Longest dataset or model name.
+pub const MAX_NAME_LEN: usize = 128;
+
+/// Names are 1 to 128 characters of [A-Za-z0-9._-]: safe in URLs, metric
+/// labels, file names and logs.
+pub fn check_name(what: &str, name: &str) -> Result<(), String> {
+    if name.is_empty() {
+        return Err(format!("{what} is empty"));
+    }
+    if name.len() > MAX_NAME_LEN {
+        return Err(format!(
+            "{what} is {} characters long (at most {MAX_NAME_LEN})",
+            name.len()
+        ));
+    }
+    if let Some(c) = name
+        .chars()
+        .find(|c| !(c.is_ascii_alphanumeric() || matches!(c, '.' | '_' | '-')))
+    {
+        return Err(format!(
+            "{what} contains {c:?}; use letters, digits, '.', '_' and '-'"
+        ));
+    }
+    Ok(())
+}
+
+fn or_default<T: PartialEq + Default>(v: T, default: T) -> T {
+    if v == T::default() {
+        default
+    } else {
+        v
+    }
+}
+
+impl DatasetSpec {
+    /// Fills zero values with defaults and checks every field. The error
+    /// names the field.
+    pub fn normalized(mut self) -> Result<Self, (String, String)> {
+        let bad = |field: &str, why: String| Err((field.to_string(), why));
+        if let Err(e) = check_name("name", &self.name) {
+            return bad("name", e);
+        }
+        if self.feature_names.is_empty() {
+            return bad("feature_names", "at least one feature is required".into());
+        }
+        let mut seen = std::collections::HashSet::new();
+        for (i, f) in self.feature_names.iter().enumerate() {
+            if f.is_empty() || f.len() > MAX_NAME_LEN || f.chars().any(char::is_control) {
+                return bad(
+                    &format!("feature_names[{i}]"),
+                    "must be 1 to 128 printable characters".into(),
+                );
+            }
+            if !seen.insert(f.as_str()) {
+                return bad(&format!("feature_names[{i}]"), format!("duplicate feature {f:?}"));
+            }
+        }
+        self.folds = or_default(self.folds, DEFAULT_FOLDS);
+        self.overlap_eps = or_default(self.overlap_eps, DEFAULT_EPS);
+        self.overlap_max_extreme_share =
+            or_default(self.overlap_max_extreme_share, DEFAULT_MAX_EXTREME_SHARE);
+        self.overlap_min_effective_share =
+            or_default(self.overlap_min_effective_share, DEFAULT_MIN_EFFECTIVE_SHARE);
+        if self.recent_last_outcomes == 0 && self.recent_last_days == 0 {
+            self.recent_last_outcomes = DEFAULT_RECENT_OUTCOMES;
+        }
+        self.recompute_every_outcomes =
+            or_default(self.recompute_every_outcomes, DEFAULT_EVERY_OUTCOMES);
+        self.recompute_every_seconds =
+            or_default(self.recompute_every_seconds, DEFAULT_EVERY_SECONDS);
+        self.refit_growth = or_default(self.refit_growth, DEFAULT_REFIT_GROWTH);
+        self.min_coverage = or_default(self.min_coverage, DEFAULT_MIN_COVERAGE);
+        self.alpha = or_default(self.alpha, DEFAULT_ALPHA);
+
+        if !self.treatment_cost.is_finite() {
+            return bad("treatment_cost", "must be finite".into());
+        }
+        if !(2..=20).contains(&self.folds) {
+            return bad("folds", format!("{} is outside 2..=20", self.folds));
+        }
+        if !(self.overlap_eps > 0.0 && self.overlap_eps < 0.5) {
+            return bad("overlap.eps", format!("{} is outside (0, 0.5)", self.overlap_eps));
+        }
+        for (field, v) in [
+            ("overlap.max_extreme_share", self.overlap_max_extreme_share),
+            ("overlap.min_effective_share", self.overlap_min_effective_share),
+            ("min_coverage", self.min_coverage),
+        ] {
+            if !(v > 0.0 && v <= 1.0) {
+                return bad(field, format!("{v} is outside (0, 1]"));
+            }
+        }
+        if !(self.refit_growth > 0.0 && self.refit_growth.is_finite()) {
+            return bad("recompute.refit_growth", format!("{} must be > 0", self.refit_growth));
+        }
+        if !(self.alpha > 0.0 && self.alpha < 1.0) {
+            return bad("alpha", format!("{} is outside (0, 1)", self.alpha));
+        }
+        Ok(self)
+    }
+}
