@@ -18,8 +18,12 @@
 
 pub mod api;
 pub mod cli;
+pub mod config;
 pub mod estimate;
 pub mod input;
+pub mod metrics;
 pub mod monitor;
+pub mod server;
+pub mod shutdown;
 pub mod store;
 pub mod synth;

@@ -4,6 +4,7 @@
 mod progress;
 mod render;
 mod score;
+mod serve;
 mod simulate;
 
 use std::process::ExitCode;
@@ -11,6 +12,7 @@ use std::process::ExitCode;
 use clap::{Parser, Subcommand};
 
 pub use score::ScoreArgs;
+pub use serve::ServeArgs;
 pub use simulate::SimulateArgs;
 
 #[derive(Debug, Parser)]
@@ -33,6 +35,8 @@ pub enum Command {
     Score(ScoreArgs),
     /// Write a units / predictions CSV pair from a design with known effects.
     Simulate(SimulateArgs),
+    /// Run the service: gRPC API, SQLite store, recomputes, alerts and metrics.
+    Serve(ServeArgs),
 }
 
 /// Exit status for bad input (files, columns, values, arguments).
@@ -45,5 +49,6 @@ pub fn run() -> ExitCode {
     match cli.command {
         Command::Score(args) => score::run(&args),
         Command::Simulate(args) => simulate::run(&args),
+        Command::Serve(args) => serve::run(&args),
     }
 }

@@ -236,8 +236,9 @@ fn out_of_fold(
         })
         .collect();
     let mut predictions = vec![vec![0.0; folds.len()]; learners.len()];
-    let mut slots: Vec<Vec<Option<Box<dyn Fitted>>>> =
-        (0..learners.len()).map(|_| (0..k).map(|_| None).collect()).collect();
+    let mut slots: Vec<Vec<Option<Box<dyn Fitted>>>> = (0..learners.len())
+        .map(|_| (0..k).map(|_| None).collect())
+        .collect();
     for r in results {
         let (l, f, model, held, pred) = r?;
         for (i, p) in held.into_iter().zip(pred) {

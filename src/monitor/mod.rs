@@ -1,1 +1,995 @@
+//! Per-dataset state and everything that changes it: the registry, intake,
+//! the recompute scheduler and the alert rules. Data flows one way:
+//! api -> monitor -> (store, estimate) -> snapshot -> metrics and events.
+//!
+//! Each dataset has a cache guarded by an async mutex. Intake validates a
+//! batch against the cache, commits it to the store, and only then appends it
+//! to the cache and replies. A recompute copies what it needs out of the
+//! cache, runs on the blocking pool (never on the RPC threads), stores a
+//! snapshot, then installs the results and evaluates the alert rules.
+
+pub mod alerts;
+pub mod board;
+pub mod cache;
+pub mod ingest;
+pub mod recompute;
 pub mod spec;
+
+use std::collections::{BTreeMap, HashMap};
+use std::sync::atomic::{AtomicBool, AtomicI64, Ordering};
+use std::sync::{Arc, RwLock};
+use std::time::{Duration, Instant, SystemTime, UNIX_EPOCH};
+
+use prost::Message;
+use tokio::sync::{broadcast, Mutex, Notify};
+use tracing::{info, info_span, warn, Instrument};
+
+use crate::api::pb;
+use crate::estimate::data::{CONSTANT_EFFECT, ZERO_EFFECT};
+use crate::estimate::EstimateError;
+use crate::metrics::{
+    ArmLabels, ComponentLabels, DatasetLabels, IngestLabels, KindLabels, Metrics, ModelLabels,
+    ScoreLabels, WindowLabels,
+};
+use crate::shutdown::Shutdown;
+use crate::store::{ScoreRow, Store, StoreError, StoredDataset, StoredModel};
+use alerts::{AlertState, Raised};
+use cache::DatasetCache;
+use ingest::{Fault, OutcomeIn, PredictionIn, Rejection, UnitIn};
+use recompute::{Frame, NuisanceState};
+use spec::DatasetSpec;
+
+/// Errors of the monitor; api/status.rs maps each to a gRPC code, once.
+#[derive(Debug, thiserror::Error)]
+pub enum MonitorError {
+    #[error("{0}")]
+    NotFound(String),
+    #[error("{0}")]
+    AlreadyExists(String),
+    #[error("{field}: {reason}")]
+    Invalid { field: String, reason: String },
+    #[error("{0}")]
+    FailedPrecondition(String),
+    /// A refused batch: nothing of it was written.
+    #[error("batch refused")]
+    Rejected(Vec<Rejection>),
+    #[error(transparent)]
+    Store(#[from] StoreError),
+    #[error(transparent)]
+    Estimate(#[from] EstimateError),
+    #[error("internal error: {0}")]
+    Internal(String),
+}
+
+pub type MonitorResult<T> = Result<T, MonitorError>;
+
+pub fn now_ms() -> i64 {
+    SystemTime::now()
+        .duration_since(UNIX_EPOCH)
+        .map(|d| d.as_millis() as i64)
+        .unwrap_or(0)
+}
+
+/// Counts of one committed batch.
+#[derive(Debug, Clone, Copy, Default, PartialEq, Eq)]
+pub struct BatchCounts {
+    pub accepted: usize,
+    pub duplicate: usize,
+}
+
+/// A dataset with its counts, for the registry API.
+#[derive(Debug, Clone)]
+pub struct DatasetInfo {
+    pub stored: StoredDataset,
+    pub units: u64,
+    pub outcomes: u64,
+    pub predictions: u64,
+    pub active_models: u32,
+}
+
+/// What a recompute did.
+#[derive(Debug, Clone, Copy)]
+pub struct RecomputeSummary {
+    pub snapshot_id: u64,
+    pub refitted: bool,
+    pub units: u64,
+    pub millis: f64,
+}
+
+struct DatasetState {
+    stored: StoredDataset,
+    cache: DatasetCache,
+    nuisance: Option<NuisanceState>,
+    latest: BTreeMap<String, pb::Scoreboard>,
+    alerts: AlertState,
+    /// Outcomes accepted since the last recompute started.
+    pending_outcomes: u64,
+}
+
+impl DatasetState {
+    fn info(&self) -> DatasetInfo {
+        DatasetInfo {
+            stored: self.stored.clone(),
+            units: self.cache.units() as u64,
+            outcomes: self.cache.outcomes() as u64,
+            predictions: self.cache.predictions(),
+            active_models: self.cache.models.iter().filter(|m| m.active()).count() as u32,
+        }
+    }
+
+    fn frame(&self, now: i64) -> Frame {
+        let c = &self.cache;
+        Frame {
+            spec: self.stored.spec.clone(),
+            features_per_unit: c.features_per_unit,
+            features: c.features.clone(),
+            treatment: c.treatment.clone(),
+            propensity: c.propensity.clone(),
+            cohort: c.cohort.clone(),
+            cohort_names: c.cohort_names.clone(),
+            outcome: c.outcome.clone(),
+            outcome_seq: c.outcome_seq.clone(),
+            observed_at_ms: c.observed_at_ms.clone(),
+            outcome_order: c.outcome_order.clone(),
+            models: c
+                .models
+                .iter()
+                .filter(|m| m.active())
+                .map(|m| (m.model.name.clone(), m.effects.clone()))
+                .collect(),
+            nuisance: self.nuisance.clone(),
+            now_ms: now,
+        }
+    }
+}
+
+pub struct DatasetHandle {
+    pub id: i64,
+    pub name: String,
+    state: Mutex<DatasetState>,
+    /// One recompute at a time per dataset.
+    recompute: Mutex<()>,
+    /// Wakes the scheduler when enough outcomes are waiting.
+    wake: Notify,
+}
+
+pub struct Monitor {
+    store: Store,
+    metrics: Arc<Metrics>,
+    datasets: RwLock<HashMap<String, Arc<DatasetHandle>>>,
+    /// Serializes dataset creation so names stay unique.
+    create: Mutex<()>,
+    events: broadcast::Sender<pb::Event>,
+    next_snapshot: AtomicI64,
+    ready: Arc<AtomicBool>,
+    shutdown: crate::shutdown::ShutdownSignal,
+}
+
+fn reserved(name: &str) -> bool {
+    name == ZERO_EFFECT || name == CONSTANT_EFFECT
+}
+
+impl Monitor {
+    /// Rebuilds every dataset's cache from the store, reproduces the latest
+    /// nuisance fit of each, and restores the latest scoreboards.
+    pub async fn open(
+        store: Store,
+        metrics: Arc<Metrics>,
+        ready: Arc<AtomicBool>,
+        shutdown: crate::shutdown::ShutdownSignal,
+    ) -> MonitorResult<Arc<Self>> {
+        let (events, _) = broadcast::channel(1024);
+        let monitor = Arc::new(Self {
+            next_snapshot: AtomicI64::new(store.max_snapshot_id().await? + 1),
+            store,
+            metrics,
+            datasets: RwLock::new(HashMap::new()),
+            create: Mutex::new(()),
+            events,
+            ready,
+            shutdown,
+        });
+        for stored in monitor.store.datasets().await? {
+            let state = monitor.rebuild(stored).await?;
+            monitor.install(state);
+        }
+        monitor.ready.store(true, Ordering::Release);
+        Ok(monitor)
+    }
+
+    async fn rebuild(&self, stored: StoredDataset) -> MonitorResult<DatasetState> {
+        let span = info_span!("rebuild", dataset = %stored.spec.name);
+        async {
+            let mut cache = DatasetCache::new(stored.spec.feature_names.len());
+            for u in self.store.load_units(stored.id).await? {
+                cache.add_unit(&u);
+            }
+            for o in self.store.load_outcomes(stored.id).await? {
+                cache.add_outcome(&o);
+            }
+            for m in self.store.models(stored.id).await? {
+                cache.add_model(m);
+            }
+            for p in self.store.load_predictions(stored.id).await? {
+                if let Some(m) = cache.model_by_id(p.model_id) {
+                    cache.add_prediction(m, &p);
+                }
+            }
+            let mut state = DatasetState {
+                stored: stored.clone(),
+                cache,
+                nuisance: None,
+                latest: BTreeMap::new(),
+                alerts: AlertState::default(),
+                pending_outcomes: 0,
+            };
+            if let Some(fit) = self.store.latest_fit(stored.id).await? {
+                let frame = state.frame(now_ms());
+                let limit = fit.last_outcome_seq;
+                let reproduced = tokio::task::spawn_blocking(move || frame.reproduce_fit(limit))
+                    .await
+                    .map_err(|e| MonitorError::Internal(e.to_string()))??;
+                state.nuisance = Some(NuisanceState {
+                    fit_id: fit.id,
+                    fitted_at_ms: fit.fitted_at_ms,
+                    ..reproduced
+                });
+            }
+            if let Some((_, boards)) = self.store.latest_boards(stored.id).await? {
+                for (key, bytes) in boards {
+                    let board = pb::Scoreboard::decode(bytes.as_slice())
+                        .map_err(|e| StoreError::Corrupt(format!("scoreboard {key}: {e}")))?;
+                    state.latest.insert(key, board);
+                }
+            }
+            if let Some(recent) = state.latest.get("recent") {
+                state.alerts = AlertState::from_board(recent);
+            }
+            state.pending_outcomes = state
+                .cache
+                .outcomes()
+                .saturating_sub(state.nuisance.as_ref().map(|n| n.fit_units).unwrap_or(0))
+                as u64;
+            info!(
+                units = state.cache.units(),
+                outcomes = state.cache.outcomes(),
+                models = state.cache.models.len(),
+                "dataset restored"
+            );
+            self.update_counts(&state);
+            Ok(state)
+        }
+        .instrument(span)
+        .await
+    }
+
+    fn install(&self, state: DatasetState) -> Arc<DatasetHandle> {
+        let handle = Arc::new(DatasetHandle {
+            id: state.stored.id,
+            name: state.stored.spec.name.clone(),
+            state: Mutex::new(state),
+            recompute: Mutex::new(()),
+            wake: Notify::new(),
+        });
+        if let Ok(mut map) = self.datasets.write() {
+            map.insert(handle.name.clone(), Arc::clone(&handle));
+        }
+        handle
+    }
+
+    pub fn ready(&self) -> bool {
+        self.ready.load(Ordering::Acquire)
+    }
+
+    fn handle(&self, name: &str) -> MonitorResult<Arc<DatasetHandle>> {
+        self.datasets
+            .read()
+            .map_err(|_| MonitorError::Internal("dataset registry lock poisoned".into()))?
+            .get(name)
+            .cloned()
+            .ok_or_else(|| MonitorError::NotFound(format!("dataset {name:?} does not exist")))
+    }
+
+    pub fn handles(&self) -> Vec<Arc<DatasetHandle>> {
+        let mut v: Vec<_> = self
+            .datasets
+            .read()
+            .map(|m| m.values().cloned().collect())
+            .unwrap_or_default();
+        v.sort_by_key(|h| h.id);
+        v
+    }
+
+    pub fn subscribe(&self) -> broadcast::Receiver<pb::Event> {
+        self.events.subscribe()
+    }
+
+    pub fn store(&self) -> &Store {
+        &self.store
+    }
+
+    /// The server's shutdown signal, for tasks that must end with it.
+    pub fn shutdown_signal(&self) -> &crate::shutdown::ShutdownSignal {
+        &self.shutdown
+    }
+
+    // ----------------------------------------------------------- registry
+
+    pub async fn create_dataset(self: &Arc<Self>, spec: DatasetSpec) -> MonitorResult<DatasetInfo> {
+        let spec = spec
+            .normalized()
+            .map_err(|(field, reason)| MonitorError::Invalid { field, reason })?;
+        let _guard = self.create.lock().await;
+        if let Ok(h) = self.handle(&spec.name) {
+            let st = h.state.lock().await;
+            return if st.stored.spec == spec {
+                Ok(st.info())
+            } else {
+                Err(MonitorError::AlreadyExists(format!(
+                    "dataset {:?} exists with other settings",
+                    spec.name
+                )))
+            };
+        }
+        let stored = self.store.create_dataset(&spec, now_ms()).await?;
+        let state = DatasetState {
+            cache: DatasetCache::new(spec.feature_names.len()),
+            stored,
+            nuisance: None,
+            latest: BTreeMap::new(),
+            alerts: AlertState::default(),
+            pending_outcomes: 0,
+        };
+        let info = state.info();
+        let handle = self.install(state);
+        self.spawn_scheduler(handle);
+        info!(dataset = %spec.name, features = spec.feature_names.len(), "dataset created");
+        Ok(info)
+    }
+
+    pub async fn dataset(&self, name: &str) -> MonitorResult<DatasetInfo> {
+        Ok(self.handle(name)?.state.lock().await.info())
+    }
+
+    pub async fn datasets(&self) -> Vec<DatasetInfo> {
+        let mut out = Vec::new();
+        for h in self.handles() {
+            out.push(h.state.lock().await.info());
+        }
+        out
+    }
+
+    pub async fn register_model(
+        &self,
+        dataset: &str,
+        name: &str,
+        version: &str,
+        description: &str,
+    ) -> MonitorResult<(StoredModel, u64)> {
+        spec::check_name("name", name).map_err(|reason| MonitorError::Invalid {
+            field: "name".into(),
+            reason,
+        })?;
+        if reserved(name) {
+            return Err(MonitorError::Invalid {
+                field: "name".into(),
+                reason: format!("{name:?} is reserved for a built-in baseline"),
+            });
+        }
+        for (field, v) in [("version", version), ("description", description)] {
+            if v.len() > 4096 || v.chars().any(|c| c.is_control() && c != '\n') {
+                return Err(MonitorError::Invalid {
+                    field: field.into(),
+                    reason: "must be at most 4096 bytes without control characters".into(),
+                });
+            }
+        }
+        let h = self.handle(dataset)?;
+        let mut st = h.state.lock().await;
+        if let Some(&m) = st.cache.model_index.get(name) {
+            let col = &st.cache.models[m];
+            return if col.model.version == version && col.model.description == description {
+                Ok((col.model.clone(), col.count))
+            } else {
+                Err(MonitorError::AlreadyExists(format!(
+                    "model {name:?} is registered with another version or description"
+                )))
+            };
+        }
+        let model = self
+            .store
+            .register_model(h.id, name, version, description, now_ms())
+            .await?;
+        st.cache.add_model(model.clone());
+        drop(st);
+        self.raise(
+            &h,
+            0,
+            Raised {
+                kind: "model_registered",
+                summary: format!("{dataset}: model {name} registered (version {version:?})"),
+                details: serde_json::json!({ "model": name, "version": version }),
+            },
+        )
+        .await;
+        Ok((model, 0))
+    }
+
+    pub async fn models(
+        &self,
+        dataset: &str,
+        include_retired: bool,
+    ) -> MonitorResult<Vec<(StoredModel, u64)>> {
+        let h = self.handle(dataset)?;
+        let st = h.state.lock().await;
+        Ok(st
+            .cache
+            .models
+            .iter()
+            .filter(|m| include_retired || m.active())
+            .map(|m| (m.model.clone(), m.count))
+            .collect())
+    }
+
+    pub async fn retire_model(
+        &self,
+        dataset: &str,
+        name: &str,
+    ) -> MonitorResult<(StoredModel, u64)> {
+        let h = self.handle(dataset)?;
+        let mut st = h.state.lock().await;
+        let Some(&m) = st.cache.model_index.get(name) else {
+            return Err(MonitorError::NotFound(format!(
+                "model {name:?} is not registered"
+            )));
+        };
+        if !st.cache.models[m].active() {
+            let col = &st.cache.models[m];
+            return Ok((col.model.clone(), col.count));
+        }
+        let at = now_ms();
+        self.store
+            .retire_model(st.cache.models[m].model.id, at)
+            .await?;
+        st.cache.models[m].model.retired_at_ms = at;
+        let out = (st.cache.models[m].model.clone(), st.cache.models[m].count);
+        drop(st);
+        self.raise(
+            &h,
+            0,
+            Raised {
+                kind: "model_retired",
+                summary: format!("{dataset}: model {name} retired"),
+                details: serde_json::json!({ "model": name }),
+            },
+        )
+        .await;
+        Ok(out)
+    }
+
+    // ------------------------------------------------------------- intake
+
+    fn count_ingest(&self, dataset: &str, kind: &str, result: &str, n: usize) {
+        if n > 0 {
+            self.metrics
+                .ingest_rows
+                .get_or_create(&IngestLabels {
+                    dataset: dataset.into(),
+                    kind: kind.into(),
+                    result: result.into(),
+                })
+                .inc_by(n as u64);
+        }
+    }
+
+    fn refused(
+        &self,
+        dataset: &str,
+        kind: &str,
+        faults: Vec<Rejection>,
+        rows: usize,
+    ) -> MonitorError {
+        self.count_ingest(dataset, kind, "rejected", rows);
+        MonitorError::Rejected(faults)
+    }
+
+    pub async fn ingest_units(&self, dataset: &str, rows: &[UnitIn]) -> MonitorResult<BatchCounts> {
+        let h = self.handle(dataset)?;
+        let mut st = h.state.lock().await;
+        let checked = ingest::check_units(&st.cache, rows)
+            .map_err(|f| self.refused(dataset, "units", f, rows.len()))?;
+        if !checked.new_rows.is_empty() {
+            self.store
+                .insert_units(h.id, &checked.new_rows, now_ms())
+                .await?;
+            for u in &checked.new_rows {
+                st.cache.add_unit(u);
+            }
+        }
+        self.update_counts(&st);
+        drop(st);
+        self.count_ingest(dataset, "units", "accepted", checked.new_rows.len());
+        self.count_ingest(dataset, "units", "duplicate", checked.duplicate);
+        Ok(BatchCounts {
+            accepted: checked.new_rows.len(),
+            duplicate: checked.duplicate,
+        })
+    }
+
+    pub async fn ingest_outcomes(
+        &self,
+        dataset: &str,
+        rows: &[OutcomeIn],
+    ) -> MonitorResult<BatchCounts> {
+        let h = self.handle(dataset)?;
+        let mut st = h.state.lock().await;
+        let kind = st.stored.spec.outcome_kind;
+        let checked = ingest::check_outcomes(&st.cache, kind, rows)
+            .map_err(|f| self.refused(dataset, "outcomes", f, rows.len()))?;
+        if !checked.new_rows.is_empty() {
+            self.store
+                .insert_outcomes(h.id, &checked.new_rows, now_ms())
+                .await?;
+            for o in &checked.new_rows {
+                st.cache.add_outcome(o);
+            }
+            st.pending_outcomes += checked.new_rows.len() as u64;
+            self.metrics
+                .last_outcome_seconds
+                .get_or_create(&DatasetLabels {
+                    dataset: dataset.into(),
+                })
+                .set(now_ms() as f64 / 1000.0);
+        }
+        let due = st.pending_outcomes >= u64::from(st.stored.spec.recompute_every_outcomes);
+        self.update_counts(&st);
+        drop(st);
+        if due {
+            h.wake.notify_one();
+        }
+        self.count_ingest(dataset, "outcomes", "accepted", checked.new_rows.len());
+        self.count_ingest(dataset, "outcomes", "duplicate", checked.duplicate);
+        Ok(BatchCounts {
+            accepted: checked.new_rows.len(),
+            duplicate: checked.duplicate,
+        })
+    }
+
+    pub async fn ingest_predictions(
+        &self,
+        dataset: &str,
+        rows: &[PredictionIn],
+    ) -> MonitorResult<BatchCounts> {
+        let h = self.handle(dataset)?;
+        let mut st = h.state.lock().await;
+        let checked = ingest::check_predictions(&st.cache, rows)
+            .map_err(|f| self.refused(dataset, "predictions", f, rows.len()))?;
+        if !checked.new_rows.is_empty() {
+            self.store
+                .insert_predictions(h.id, &checked.new_rows, now_ms())
+                .await?;
+            for p in &checked.new_rows {
+                if let Some(m) = st.cache.model_by_id(p.model_id) {
+                    st.cache.add_prediction(m, p);
+                }
+            }
+        }
+        drop(st);
+        self.count_ingest(dataset, "predictions", "accepted", checked.new_rows.len());
+        self.count_ingest(dataset, "predictions", "duplicate", checked.duplicate);
+        Ok(BatchCounts {
+            accepted: checked.new_rows.len(),
+            duplicate: checked.duplicate,
+        })
+    }
+
+    fn update_counts(&self, st: &DatasetState) {
+        let l = DatasetLabels {
+            dataset: st.stored.spec.name.clone(),
+        };
+        self.metrics
+            .units
+            .get_or_create(&l)
+            .set(st.cache.units() as f64);
+        self.metrics
+            .outcomes
+            .get_or_create(&l)
+            .set(st.cache.outcomes() as f64);
+    }
+
+    // ---------------------------------------------------------- recompute
+
+    /// Recomputes a dataset now; `refit` forces a full cross-fitted refit.
+    pub async fn recompute(&self, dataset: &str, refit: bool) -> MonitorResult<RecomputeSummary> {
+        let h = self.handle(dataset)?;
+        let span = info_span!("recompute", dataset = %dataset, refit_requested = refit);
+        let result = self.recompute_handle(&h, refit).instrument(span).await;
+        if let Err(e) = &result {
+            warn!(dataset = %dataset, error = %e, "recompute failed");
+            self.metrics
+                .recompute_failures
+                .get_or_create(&DatasetLabels {
+                    dataset: dataset.into(),
+                })
+                .inc();
+        }
+        result
+    }
+
+    async fn recompute_handle(
+        &self,
+        h: &Arc<DatasetHandle>,
+        refit: bool,
+    ) -> MonitorResult<RecomputeSummary> {
+        let _one_at_a_time = h.recompute.lock().await;
+        let started = Instant::now();
+        let now = now_ms();
+        let (frame, outcomes_in_frame) = {
+            let mut st = h.state.lock().await;
+            st.pending_outcomes = 0;
+            (st.frame(now), st.cache.outcomes())
+        };
+        if outcomes_in_frame == 0 {
+            return Err(MonitorError::FailedPrecondition(format!(
+                "dataset {:?} has no outcomes yet",
+                h.name
+            )));
+        }
+        let spec = frame.spec.clone();
+        let computed = tokio::task::spawn_blocking(move || frame.compute(refit))
+            .await
+            .map_err(|e| MonitorError::Internal(e.to_string()))??;
+        let mut nuisance = computed.nuisance;
+        if let Some(reason) = computed.refit {
+            let report = serde_json::to_string(&nuisance.report).unwrap_or_default();
+            nuisance.fit_id = self
+                .store
+                .insert_fit(
+                    h.id,
+                    now,
+                    nuisance.fit_units as i64,
+                    nuisance.last_outcome_seq,
+                    spec.seed as i64,
+                    &report,
+                )
+                .await?;
+            nuisance.fitted_at_ms = now;
+            let _ = reason;
+        }
+        let snapshot_id = self.next_snapshot.fetch_add(1, Ordering::SeqCst);
+        let mut boards = BTreeMap::new();
+        let mut encoded = Vec::new();
+        let mut scores = Vec::new();
+        let mut recent_board = None;
+        for w in &computed.windows {
+            let parts = board::BoardParts {
+                dataset: &h.name,
+                window: w.window.clone(),
+                snapshot_id: snapshot_id as u64,
+                computed_at_ms: now,
+                incomplete: w.incomplete.clone(),
+                max_extreme_share: spec.overlap_max_extreme_share,
+                min_effective_share: spec.overlap_min_effective_share,
+            };
+            let b = match &w.board {
+                Ok(b) => {
+                    if w.key == "recent" {
+                        recent_board = Some(b);
+                    }
+                    board::scoreboard(parts, b)
+                }
+                Err(state) => board::degenerate(parts, w.units as u64, state.clone()),
+            };
+            for m in &b.models {
+                for (estimator, e) in board::estimator_values(m) {
+                    scores.push(ScoreRow {
+                        model: m.name.clone(),
+                        estimator: estimator.into(),
+                        window: w.key.clone(),
+                        estimate: e.estimate,
+                        se: e.se,
+                        rank: i64::from(m.rank),
+                        units: b.units as i64,
+                    });
+                }
+            }
+            encoded.push((w.key.clone(), b.encode_to_vec()));
+            boards.insert(w.key.clone(), b);
+        }
+        let millis = started.elapsed().as_secs_f64() * 1000.0;
+        self.store
+            .insert_snapshot(
+                snapshot_id,
+                h.id,
+                now,
+                Some(nuisance.fit_id),
+                computed.refit.is_some(),
+                millis,
+                &encoded,
+                &scores,
+            )
+            .await?;
+
+        // Install, then alert.
+        let cumulative_units = boards.get("cumulative").map(|b| b.units).unwrap_or(0);
+        let (raised, previous) = {
+            let mut st = h.state.lock().await;
+            let previous: BTreeMap<String, String> = st
+                .latest
+                .iter()
+                .map(|(k, b)| (k.clone(), b.leader.clone()))
+                .collect();
+            st.nuisance = Some(nuisance.clone());
+            let mut raised = Vec::new();
+            if let (Some(b), Some(pbb)) = (recent_board, boards.get("recent")) {
+                if let Some(overlap) = &pbb.overlap {
+                    raised = st.alerts.evaluate(&h.name, "recent", b, overlap);
+                }
+            }
+            st.latest = boards.clone();
+            (raised, previous)
+        };
+        if let Some(reason) = computed.refit {
+            let report = &nuisance.report;
+            self.raise(
+                h,
+                snapshot_id as u64,
+                Raised {
+                    kind: "nuisance_refit",
+                    summary: format!(
+                        "{}: nuisance models refitted on {} units ({reason:?}); propensity AUC {:.3}",
+                        h.name, nuisance.fit_units, report.propensity.auc
+                    ),
+                    details: serde_json::json!({
+                        "reason": format!("{reason:?}"),
+                        "units": nuisance.fit_units,
+                        "report": report,
+                    }),
+                },
+            )
+            .await;
+        }
+        for r in raised {
+            if r.kind == "leader_changed" {
+                self.metrics
+                    .leader_changes
+                    .get_or_create(&WindowLabels {
+                        dataset: h.name.clone(),
+                        window: "recent".into(),
+                    })
+                    .inc();
+            }
+            self.raise(h, snapshot_id as u64, r).await;
+        }
+        let seconds = started.elapsed().as_secs_f64();
+        self.metrics
+            .recompute_seconds
+            .get_or_create(&KindLabels {
+                dataset: h.name.clone(),
+                kind: if computed.refit.is_some() {
+                    "refit"
+                } else {
+                    "incremental"
+                }
+                .into(),
+            })
+            .observe(seconds);
+        self.export_boards(&h.name, &boards, &previous, &nuisance);
+        info!(
+            snapshot = snapshot_id,
+            refitted = computed.refit.is_some(),
+            newly_scored = computed.newly_scored,
+            millis = seconds * 1000.0,
+            "recompute done"
+        );
+        Ok(RecomputeSummary {
+            snapshot_id: snapshot_id as u64,
+            refitted: computed.refit.is_some(),
+            units: cumulative_units,
+            millis: seconds * 1000.0,
+        })
+    }
+
+    fn export_boards(
+        &self,
+        dataset: &str,
+        boards: &BTreeMap<String, pb::Scoreboard>,
+        previous: &BTreeMap<String, String>,
+        n: &NuisanceState,
+    ) {
+        let m = &self.metrics;
+        for window in ["cumulative", "recent"] {
+            let Some(b) = boards.get(window) else {
+                continue;
+            };
+            let wl = WindowLabels {
+                dataset: dataset.into(),
+                window: window.into(),
+            };
+            // Forget the previous leader's label so exactly one series is 1.
+            if let Some(old) = previous.get(window) {
+                m.leader_info.remove(&ModelLabels {
+                    dataset: dataset.into(),
+                    model: old.clone(),
+                    window: window.into(),
+                });
+            }
+            if !b.leader.is_empty() {
+                m.leader_info
+                    .get_or_create(&ModelLabels {
+                        dataset: dataset.into(),
+                        model: b.leader.clone(),
+                        window: window.into(),
+                    })
+                    .set(1.0);
+            }
+            let _ = m.leader_changes.get_or_create(&wl);
+            m.leader_uncertain
+                .get_or_create(&wl)
+                .set(if b.best_set.len() > 1 { 1.0 } else { 0.0 });
+            m.no_heterogeneity
+                .get_or_create(&wl)
+                .set(if b.no_detectable_heterogeneity {
+                    1.0
+                } else {
+                    0.0
+                });
+            if let Some(o) = &b.overlap {
+                m.overlap_degraded
+                    .get_or_create(&wl)
+                    .set(if o.degraded { 1.0 } else { 0.0 });
+                m.overlap_extreme_share
+                    .get_or_create(&wl)
+                    .set(o.extreme_share);
+                for (arm, v) in [
+                    ("treated", o.treated_effective_share),
+                    ("control", o.control_effective_share),
+                ] {
+                    m.overlap_effective_share
+                        .get_or_create(&ArmLabels {
+                            dataset: dataset.into(),
+                            window: window.into(),
+                            arm: arm.into(),
+                        })
+                        .set(v);
+                }
+            }
+            for model in &b.models {
+                let ml = ModelLabels {
+                    dataset: dataset.into(),
+                    model: model.name.clone(),
+                    window: window.into(),
+                };
+                m.model_rank.get_or_create(&ml).set(f64::from(model.rank));
+                m.model_p_best.get_or_create(&ml).set(model.p_best);
+                for (estimator, e) in board::estimator_values(model) {
+                    let sl = ScoreLabels {
+                        dataset: dataset.into(),
+                        model: model.name.clone(),
+                        estimator: estimator.into(),
+                        window: window.into(),
+                    };
+                    m.model_score.get_or_create(&sl).set(e.estimate);
+                    m.model_score_se.get_or_create(&sl).set(e.se);
+                }
+            }
+        }
+        let r = &n.report;
+        let mut losses = vec![
+            ("outcome_control", r.outcome_control.oof_loss),
+            ("outcome_treated", r.outcome_treated.oof_loss),
+        ];
+        if let Some(p) = &r.propensity.fit {
+            losses.push(("propensity", p.oof_loss));
+        }
+        for (component, loss) in losses {
+            m.nuisance_loss
+                .get_or_create(&ComponentLabels {
+                    dataset: dataset.into(),
+                    component: component.into(),
+                })
+                .set(loss);
+        }
+    }
+
+    async fn raise(&self, h: &DatasetHandle, snapshot_id: u64, r: Raised) {
+        let at = now_ms();
+        let details = r.details.to_string();
+        match self
+            .store
+            .insert_event(h.id, r.kind, at, snapshot_id as i64, &r.summary, &details)
+            .await
+        {
+            Ok(id) => {
+                info!(dataset = %h.name, kind = r.kind, event = id, "{}", r.summary);
+                self.metrics
+                    .events
+                    .get_or_create(&KindLabels {
+                        dataset: h.name.clone(),
+                        kind: r.kind.into(),
+                    })
+                    .inc();
+                let _ = self.events.send(pb::Event {
+                    id: id as u64,
+                    dataset: h.name.clone(),
+                    kind: r.kind.into(),
+                    at_ms: at,
+                    snapshot_id,
+                    summary: r.summary,
+                    details_json: details,
+                });
+            }
+            Err(e) => warn!(dataset = %h.name, error = %e, "could not store an event"),
+        }
+    }
+
+    // -------------------------------------------------------------- reads
+
+    pub async fn scoreboard(&self, dataset: &str, window: &str) -> MonitorResult<pb::Scoreboard> {
+        let h = self.handle(dataset)?;
+        let st = h.state.lock().await;
+        if st.latest.is_empty() {
+            return Err(MonitorError::FailedPrecondition(format!(
+                "dataset {dataset:?} has not been scored yet: send outcomes or call Recompute"
+            )));
+        }
+        st.latest
+            .get(window)
+            .cloned()
+            .ok_or_else(|| MonitorError::NotFound(format!("no scoreboard for window {window:?}")))
+    }
+
+    pub fn dataset_id(&self, dataset: &str) -> MonitorResult<i64> {
+        Ok(self.handle(dataset)?.id)
+    }
+
+    // ---------------------------------------------------------- scheduler
+
+    /// Starts the recompute scheduler of every dataset.
+    pub fn start_schedulers(self: &Arc<Self>) {
+        for h in self.handles() {
+            self.spawn_scheduler(h);
+        }
+    }
+
+    fn spawn_scheduler(self: &Arc<Self>, h: Arc<DatasetHandle>) {
+        let monitor = Arc::clone(self);
+        let shutdown = self.shutdown.subscribe();
+        tokio::spawn(async move { monitor.schedule(h, shutdown).await });
+    }
+
+    /// Recomputes when enough outcomes are waiting (woken by intake, then
+    /// debounced for a moment so a burst of batches becomes one recompute),
+    /// or when outcomes have waited for the dataset's interval.
+    async fn schedule(self: Arc<Self>, h: Arc<DatasetHandle>, mut shutdown: Shutdown) {
+        loop {
+            let interval = {
+                let st = h.state.lock().await;
+                Duration::from_secs(u64::from(st.stored.spec.recompute_every_seconds.max(1)))
+            };
+            tokio::select! {
+                _ = shutdown.recv() => return,
+                _ = h.wake.notified() => {
+                    tokio::time::sleep(Duration::from_millis(200)).await;
+                }
+                _ = tokio::time::sleep(interval) => {}
+            }
+            if shutdown.is_shutdown() {
+                return;
+            }
+            let pending = h.state.lock().await.pending_outcomes;
+            if pending == 0 {
+                continue;
+            }
+            let _ = self.recompute(&h.name, false).await;
+        }
+    }
+}
+
+/// Status code of a refused batch: the fault of its first problem row.
+pub fn fault_code(rejections: &[Rejection]) -> Fault {
+    rejections
+        .first()
+        .map(|r| r.fault)
+        .unwrap_or(Fault::Invalid)
+}

@@ -92,15 +92,20 @@ impl DatasetSpec {
                 );
             }
             if !seen.insert(f.as_str()) {
-                return bad(&format!("feature_names[{i}]"), format!("duplicate feature {f:?}"));
+                return bad(
+                    &format!("feature_names[{i}]"),
+                    format!("duplicate feature {f:?}"),
+                );
             }
         }
         self.folds = or_default(self.folds, DEFAULT_FOLDS);
         self.overlap_eps = or_default(self.overlap_eps, DEFAULT_EPS);
         self.overlap_max_extreme_share =
             or_default(self.overlap_max_extreme_share, DEFAULT_MAX_EXTREME_SHARE);
-        self.overlap_min_effective_share =
-            or_default(self.overlap_min_effective_share, DEFAULT_MIN_EFFECTIVE_SHARE);
+        self.overlap_min_effective_share = or_default(
+            self.overlap_min_effective_share,
+            DEFAULT_MIN_EFFECTIVE_SHARE,
+        );
         if self.recent_last_outcomes == 0 && self.recent_last_days == 0 {
             self.recent_last_outcomes = DEFAULT_RECENT_OUTCOMES;
         }
@@ -119,11 +124,17 @@ impl DatasetSpec {
             return bad("folds", format!("{} is outside 2..=20", self.folds));
         }
         if !(self.overlap_eps > 0.0 && self.overlap_eps < 0.5) {
-            return bad("overlap.eps", format!("{} is outside (0, 0.5)", self.overlap_eps));
+            return bad(
+                "overlap.eps",
+                format!("{} is outside (0, 0.5)", self.overlap_eps),
+            );
         }
         for (field, v) in [
             ("overlap.max_extreme_share", self.overlap_max_extreme_share),
-            ("overlap.min_effective_share", self.overlap_min_effective_share),
+            (
+                "overlap.min_effective_share",
+                self.overlap_min_effective_share,
+            ),
             ("min_coverage", self.min_coverage),
         ] {
             if !(v > 0.0 && v <= 1.0) {
@@ -131,7 +142,10 @@ impl DatasetSpec {
             }
         }
         if !(self.refit_growth > 0.0 && self.refit_growth.is_finite()) {
-            return bad("recompute.refit_growth", format!("{} must be > 0", self.refit_growth));
+            return bad(
+                "recompute.refit_growth",
+                format!("{} must be > 0", self.refit_growth),
+            );
         }
         if !(self.alpha > 0.0 && self.alpha < 1.0) {
             return bad("alpha", format!("{} is outside (0, 1)", self.alpha));

@@ -184,7 +184,11 @@ impl Store {
 
     // ------------------------------------------------------------ datasets
 
-    pub async fn create_dataset(&self, spec: &DatasetSpec, now_ms: i64) -> StoreResult<StoredDataset> {
+    pub async fn create_dataset(
+        &self,
+        spec: &DatasetSpec,
+        now_ms: i64,
+    ) -> StoreResult<StoredDataset> {
         let json = serde_json::to_string(spec).map_err(|e| StoreError::Corrupt(e.to_string()))?;
         let id: i64 = sqlx::query_scalar(
             "INSERT INTO datasets (name, spec_json, created_at_ms) VALUES (?, ?, ?) RETURNING id",
@@ -284,7 +288,12 @@ impl Store {
     // ---------------------------------------------------------------- data
 
     /// Writes a batch of new units in one transaction.
-    pub async fn insert_units(&self, dataset_id: i64, rows: &[UnitRecord], now_ms: i64) -> StoreResult<()> {
+    pub async fn insert_units(
+        &self,
+        dataset_id: i64,
+        rows: &[UnitRecord],
+        now_ms: i64,
+    ) -> StoreResult<()> {
         let mut tx = self.pool.begin().await?;
         for chunk in rows.chunks(INSERT_CHUNK) {
             let mut q: QueryBuilder<Sqlite> = QueryBuilder::new(
@@ -468,6 +477,7 @@ impl Store {
     #[allow(clippy::too_many_arguments)]
     pub async fn insert_snapshot(
         &self,
+        id: i64,
         dataset_id: i64,
         now_ms: i64,
         fit_id: Option<i64>,
@@ -477,24 +487,27 @@ impl Store {
         scores: &[ScoreRow],
     ) -> StoreResult<i64> {
         let mut tx = self.pool.begin().await?;
-        let id: i64 = sqlx::query_scalar(
-            "INSERT INTO snapshots (dataset_id, computed_at_ms, fit_id, refitted, millis) \
-             VALUES (?, ?, ?, ?, ?) RETURNING id",
+        sqlx::query(
+            "INSERT INTO snapshots (id, dataset_id, computed_at_ms, fit_id, refitted, millis) \
+             VALUES (?, ?, ?, ?, ?, ?)",
         )
+        .bind(id)
         .bind(dataset_id)
         .bind(now_ms)
         .bind(fit_id)
         .bind(refitted)
         .bind(millis)
-        .fetch_one(&mut *tx)
+        .execute(&mut *tx)
         .await?;
         for (window, board) in boards {
-            sqlx::query("INSERT INTO snapshot_boards (snapshot_id, window, board) VALUES (?, ?, ?)")
-                .bind(id)
-                .bind(window)
-                .bind(board)
-                .execute(&mut *tx)
-                .await?;
+            sqlx::query(
+                "INSERT INTO snapshot_boards (snapshot_id, window, board) VALUES (?, ?, ?)",
+            )
+            .bind(id)
+            .bind(window)
+            .bind(board)
+            .execute(&mut *tx)
+            .await?;
         }
         for chunk in scores.chunks(INSERT_CHUNK) {
             let mut q: QueryBuilder<Sqlite> = QueryBuilder::new(
@@ -520,7 +533,10 @@ impl Store {
     }
 
     /// The boards of the latest snapshot, by window key.
-    pub async fn latest_boards(&self, dataset_id: i64) -> StoreResult<Option<(i64, Vec<(String, Vec<u8>)>)>> {
+    pub async fn latest_boards(
+        &self,
+        dataset_id: i64,
+    ) -> StoreResult<Option<(i64, Vec<(String, Vec<u8>)>)>> {
         let id: Option<i64> = sqlx::query_scalar(
             "SELECT id FROM snapshots WHERE dataset_id = ? ORDER BY id DESC LIMIT 1",
         )
@@ -538,11 +554,22 @@ impl Store {
         )))
     }
 
+    /// Largest snapshot id in the store (0 when none).
+    pub async fn max_snapshot_id(&self) -> StoreResult<i64> {
+        Ok(
+            sqlx::query_scalar("SELECT COALESCE(MAX(id), 0) FROM snapshots")
+                .fetch_one(&self.pool)
+                .await?,
+        )
+    }
+
     pub async fn snapshot_count(&self, dataset_id: i64) -> StoreResult<i64> {
-        Ok(sqlx::query_scalar("SELECT COUNT(*) FROM snapshots WHERE dataset_id = ?")
-            .bind(dataset_id)
-            .fetch_one(&self.pool)
-            .await?)
+        Ok(
+            sqlx::query_scalar("SELECT COUNT(*) FROM snapshots WHERE dataset_id = ?")
+                .bind(dataset_id)
+                .fetch_one(&self.pool)
+                .await?,
+        )
     }
 
     pub async fn history(
@@ -643,10 +670,11 @@ impl Store {
             .bind(dataset_id)
             .fetch_one(&self.pool)
             .await?;
-        let outcomes: i64 = sqlx::query_scalar("SELECT COUNT(*) FROM outcomes WHERE dataset_id = ?")
-            .bind(dataset_id)
-            .fetch_one(&self.pool)
-            .await?;
+        let outcomes: i64 =
+            sqlx::query_scalar("SELECT COUNT(*) FROM outcomes WHERE dataset_id = ?")
+                .bind(dataset_id)
+                .fetch_one(&self.pool)
+                .await?;
         let predictions: i64 =
             sqlx::query_scalar("SELECT COUNT(*) FROM predictions WHERE dataset_id = ?")
                 .bind(dataset_id)

@@ -1,6 +1,8 @@
 //! Helpers shared by the integration tests.
 #![allow(dead_code)]
 
+pub mod service;
+
 use std::path::PathBuf;
 
 use ndarray::Array2;

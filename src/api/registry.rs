@@ -1,0 +1,212 @@
+//! DatasetRegistry and ModelRegistry.
+
+use std::sync::Arc;
+
+use tonic::{Request, Response, Status};
+
+use super::pb;
+use super::status::{from_monitor, missing};
+use crate::estimate::OutcomeKind;
+use crate::monitor::spec::DatasetSpec;
+use crate::monitor::{DatasetInfo, Monitor};
+use crate::store::StoredModel;
+
+pub struct Datasets {
+    pub monitor: Arc<Monitor>,
+}
+
+pub struct Models {
+    pub monitor: Arc<Monitor>,
+}
+
+impl TryFrom<pb::DatasetSpec> for DatasetSpec {
+    type Error = Status;
+    fn try_from(s: pb::DatasetSpec) -> Result<Self, Status> {
+        let outcome_kind = match pb::OutcomeKind::try_from(s.outcome_kind) {
+            Ok(pb::OutcomeKind::Continuous) => OutcomeKind::Continuous,
+            Ok(pb::OutcomeKind::Binary) => OutcomeKind::Binary,
+            _ => {
+                return Err(Status::invalid_argument(
+                    "outcome_kind: required (continuous or binary)",
+                ))
+            }
+        };
+        let overlap = s.overlap.unwrap_or_default();
+        let recent = s.recent.unwrap_or_default();
+        let recompute = s.recompute.unwrap_or_default();
+        Ok(DatasetSpec {
+            name: s.name,
+            feature_names: s.feature_names,
+            outcome_kind,
+            treatment_cost: s.treatment_cost,
+            folds: s.folds,
+            overlap_eps: overlap.eps,
+            overlap_max_extreme_share: overlap.max_extreme_share,
+            overlap_min_effective_share: overlap.min_effective_share,
+            recent_last_outcomes: recent.last_outcomes,
+            recent_last_days: recent.last_days,
+            recompute_every_outcomes: recompute.every_outcomes,
+            recompute_every_seconds: recompute.every_seconds,
+            refit_growth: recompute.refit_growth,
+            refit_every_seconds: recompute.refit_every_seconds,
+            min_coverage: s.min_coverage,
+            alpha: s.alpha,
+            seed: s.seed,
+        })
+    }
+}
+
+impl From<&DatasetSpec> for pb::DatasetSpec {
+    fn from(s: &DatasetSpec) -> Self {
+        pb::DatasetSpec {
+            name: s.name.clone(),
+            feature_names: s.feature_names.clone(),
+            outcome_kind: match s.outcome_kind {
+                OutcomeKind::Continuous => pb::OutcomeKind::Continuous as i32,
+                OutcomeKind::Binary => pb::OutcomeKind::Binary as i32,
+            },
+            treatment_cost: s.treatment_cost,
+            folds: s.folds,
+            overlap: Some(pb::OverlapThresholds {
+                eps: s.overlap_eps,
+                max_extreme_share: s.overlap_max_extreme_share,
+                min_effective_share: s.overlap_min_effective_share,
+            }),
+            recent: Some(pb::RecentWindow {
+                last_outcomes: s.recent_last_outcomes,
+                last_days: s.recent_last_days,
+            }),
+            recompute: Some(pb::RecomputePolicy {
+                every_outcomes: s.recompute_every_outcomes,
+                every_seconds: s.recompute_every_seconds,
+                refit_growth: s.refit_growth,
+                refit_every_seconds: s.refit_every_seconds,
+            }),
+            min_coverage: s.min_coverage,
+            alpha: s.alpha,
+            seed: s.seed,
+        }
+    }
+}
+
+impl From<DatasetInfo> for pb::Dataset {
+    fn from(d: DatasetInfo) -> Self {
+        pb::Dataset {
+            spec: Some((&d.stored.spec).into()),
+            created_at_ms: d.stored.created_at_ms,
+            units: d.units,
+            outcomes: d.outcomes,
+            predictions: d.predictions,
+            active_models: d.active_models,
+        }
+    }
+}
+
+fn model_pb(dataset: &str, (m, count): (StoredModel, u64)) -> pb::Model {
+    pb::Model {
+        dataset: dataset.into(),
+        name: m.name,
+        version: m.version,
+        description: m.description,
+        registered_at_ms: m.registered_at_ms,
+        retired_at_ms: m.retired_at_ms,
+        predictions: count,
+    }
+}
+
+#[tonic::async_trait]
+impl pb::dataset_registry_server::DatasetRegistry for Datasets {
+    #[tracing::instrument(skip_all, fields(rpc = "CreateDataset"))]
+    async fn create_dataset(
+        &self,
+        request: Request<pb::CreateDatasetRequest>,
+    ) -> Result<Response<pb::Dataset>, Status> {
+        let spec: DatasetSpec = request
+            .into_inner()
+            .spec
+            .ok_or_else(|| missing("spec"))?
+            .try_into()?;
+        let info = self
+            .monitor
+            .create_dataset(spec)
+            .await
+            .map_err(from_monitor)?;
+        Ok(Response::new(info.into()))
+    }
+
+    #[tracing::instrument(skip_all, fields(rpc = "GetDataset"))]
+    async fn get_dataset(
+        &self,
+        request: Request<pb::GetDatasetRequest>,
+    ) -> Result<Response<pb::Dataset>, Status> {
+        let info = self
+            .monitor
+            .dataset(&request.into_inner().name)
+            .await
+            .map_err(from_monitor)?;
+        Ok(Response::new(info.into()))
+    }
+
+    #[tracing::instrument(skip_all, fields(rpc = "ListDatasets"))]
+    async fn list_datasets(
+        &self,
+        _request: Request<pb::ListDatasetsRequest>,
+    ) -> Result<Response<pb::ListDatasetsResponse>, Status> {
+        let datasets = self
+            .monitor
+            .datasets()
+            .await
+            .into_iter()
+            .map(Into::into)
+            .collect();
+        Ok(Response::new(pb::ListDatasetsResponse { datasets }))
+    }
+}
+
+#[tonic::async_trait]
+impl pb::model_registry_server::ModelRegistry for Models {
+    #[tracing::instrument(skip_all, fields(rpc = "RegisterModel"))]
+    async fn register_model(
+        &self,
+        request: Request<pb::RegisterModelRequest>,
+    ) -> Result<Response<pb::Model>, Status> {
+        let r = request.into_inner();
+        let m = self
+            .monitor
+            .register_model(&r.dataset, &r.name, &r.version, &r.description)
+            .await
+            .map_err(from_monitor)?;
+        Ok(Response::new(model_pb(&r.dataset, m)))
+    }
+
+    #[tracing::instrument(skip_all, fields(rpc = "ListModels"))]
+    async fn list_models(
+        &self,
+        request: Request<pb::ListModelsRequest>,
+    ) -> Result<Response<pb::ListModelsResponse>, Status> {
+        let r = request.into_inner();
+        let models = self
+            .monitor
+            .models(&r.dataset, r.include_retired)
+            .await
+            .map_err(from_monitor)?
+            .into_iter()
+            .map(|m| model_pb(&r.dataset, m))
+            .collect();
+        Ok(Response::new(pb::ListModelsResponse { models }))
+    }
+
+    #[tracing::instrument(skip_all, fields(rpc = "RetireModel"))]
+    async fn retire_model(
+        &self,
+        request: Request<pb::RetireModelRequest>,
+    ) -> Result<Response<pb::Model>, Status> {
+        let r = request.into_inner();
+        let m = self
+            .monitor
+            .retire_model(&r.dataset, &r.name)
+            .await
+            .map_err(from_monitor)?;
+        Ok(Response::new(model_pb(&r.dataset, m)))
+    }
+}

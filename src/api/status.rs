@@ -1,0 +1,83 @@
+//! The one mapping from monitor errors to gRPC status codes.
+
+use prost::Message;
+use tonic::{Code, Status};
+
+use super::pb;
+use crate::monitor::ingest::{Fault, Rejection};
+use crate::monitor::MonitorError;
+
+/// Status for a refused intake batch: the code of its first problem, a
+/// message naming the batch, row and field, and the receipt (what was
+/// committed before, and the row-level reasons) in the status details.
+pub fn refused(batch: u32, rejections: &[Rejection], mut receipt: pb::IntakeReceipt) -> Status {
+    let code = match rejections
+        .first()
+        .map(|r| r.fault)
+        .unwrap_or(Fault::Invalid)
+    {
+        Fault::Invalid => Code::InvalidArgument,
+        Fault::Conflict => Code::AlreadyExists,
+        Fault::Unknown => Code::NotFound,
+        Fault::Order => Code::FailedPrecondition,
+    };
+    receipt.rejected = rejections.len() as u64;
+    receipt.rejections = rejections
+        .iter()
+        .map(|r| pb::RowRejection {
+            batch,
+            row: r.row as u32,
+            field: r.field.clone(),
+            reason: r.reason.clone(),
+        })
+        .collect();
+    let message = match rejections.first() {
+        Some(r) => format!(
+            "batch {batch} refused, nothing of it written: row {} field {}: {}{} ({} batches committed before it)",
+            r.row,
+            r.field,
+            r.reason,
+            if rejections.len() > 1 {
+                format!("; and {} more problem rows", rejections.len() - 1)
+            } else {
+                String::new()
+            },
+            receipt.batches
+        ),
+        None => format!("batch {batch} refused"),
+    };
+    Status::with_details(code, message, receipt.encode_to_vec().into())
+}
+
+pub fn from_monitor(e: MonitorError) -> Status {
+    match e {
+        MonitorError::NotFound(m) => Status::not_found(m),
+        MonitorError::AlreadyExists(m) => Status::already_exists(m),
+        MonitorError::Invalid { field, reason } => {
+            Status::invalid_argument(format!("{field}: {reason}"))
+        }
+        MonitorError::FailedPrecondition(m) => Status::failed_precondition(m),
+        MonitorError::Rejected(r) => refused(0, &r, pb::IntakeReceipt::default()),
+        MonitorError::Estimate(crate::estimate::EstimateError::Degenerate(d)) => {
+            Status::failed_precondition(format!("the data cannot support the estimates: {d}"))
+        }
+        MonitorError::Estimate(e) => Status::internal(e.to_string()),
+        MonitorError::Store(e) => {
+            tracing::error!(error = %e, "store error");
+            Status::unavailable(format!("store error: {e}"))
+        }
+        MonitorError::Internal(m) => Status::internal(m),
+    }
+}
+
+/// A required field was left empty.
+pub fn missing(field: &str) -> Status {
+    Status::invalid_argument(format!("{field}: required"))
+}
+
+/// Decodes the receipt carried in a refused intake's status details.
+pub fn receipt_of(status: &Status) -> Option<pb::IntakeReceipt> {
+    pb::IntakeReceipt::decode(status.details()).ok()
+}
+
+pub use tonic::Code as StatusCode;

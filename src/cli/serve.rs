@@ -1,0 +1,119 @@
+//! `plumbline serve`: the long-running service.
+
+use std::path::PathBuf;
+use std::process::ExitCode;
+
+use clap::Args;
+use tracing_subscriber::EnvFilter;
+
+use super::EXIT_BAD_INPUT;
+use crate::config::{Config, LogFormat};
+
+#[derive(Debug, Args)]
+pub struct ServeArgs {
+    /// TOML configuration file (keys: listen, metrics_listen, data_dir, durability, log_format, log_level).
+    #[arg(long, value_name = "FILE")]
+    pub config: Option<PathBuf>,
+    /// gRPC address [default: 127.0.0.1:7070].
+    #[arg(long, value_name = "ADDR")]
+    pub listen: Option<String>,
+    /// Address of /metrics, /healthz and /readyz [default: 127.0.0.1:7071].
+    #[arg(long, value_name = "ADDR")]
+    pub metrics_listen: Option<String>,
+    /// Directory of the SQLite database [default: ./plumbline-data].
+    #[arg(long, value_name = "DIR")]
+    pub data_dir: Option<PathBuf>,
+}
+
+pub fn init_logging(format: LogFormat, level: &str) {
+    let filter = EnvFilter::try_new(level).unwrap_or_else(|_| EnvFilter::new("info"));
+    let builder = tracing_subscriber::fmt()
+        .with_env_filter(filter)
+        .with_writer(std::io::stderr);
+    let _ = match format {
+        LogFormat::Json => builder.json().try_init(),
+        LogFormat::Human => builder.try_init(),
+    };
+}
+
+fn config(args: &ServeArgs) -> Result<Config, String> {
+    let flags = |key: &str| -> Option<String> {
+        match key {
+            "PLUMBLINE_LISTEN" => args.listen.clone(),
+            "PLUMBLINE_METRICS_LISTEN" => args.metrics_listen.clone(),
+            "PLUMBLINE_DATA_DIR" => args.data_dir.as_ref().map(|p| p.display().to_string()),
+            _ => None,
+        }
+    };
+    // Flags win over the environment, which wins over the file.
+    Config::load(args.config.as_deref(), |k| {
+        flags(k).or_else(|| std::env::var(k).ok())
+    })
+}
+
+async fn wait_for_signal() {
+    #[cfg(unix)]
+    {
+        use tokio::signal::unix::{signal, SignalKind};
+        match signal(SignalKind::terminate()) {
+            Ok(mut term) => {
+                tokio::select! {
+                    _ = term.recv() => {}
+                    _ = tokio::signal::ctrl_c() => {}
+                }
+            }
+            Err(_) => {
+                let _ = tokio::signal::ctrl_c().await;
+            }
+        }
+    }
+    #[cfg(not(unix))]
+    {
+        let _ = tokio::signal::ctrl_c().await;
+    }
+}
+
+pub fn run(args: &ServeArgs) -> ExitCode {
+    let config = match config(args) {
+        Ok(c) => c,
+        Err(e) => {
+            eprintln!("plumbline serve: {e}");
+            return ExitCode::from(EXIT_BAD_INPUT);
+        }
+    };
+    init_logging(config.log_format, &config.log_level);
+    let runtime = match tokio::runtime::Builder::new_multi_thread()
+        .enable_all()
+        .build()
+    {
+        Ok(r) => r,
+        Err(e) => {
+            eprintln!("plumbline serve: cannot start the runtime: {e}");
+            return ExitCode::FAILURE;
+        }
+    };
+    runtime.block_on(async {
+        let running = match crate::server::start(&config).await {
+            Ok(r) => r,
+            Err(e) => {
+                tracing::error!("{e}");
+                return ExitCode::FAILURE;
+            }
+        };
+        eprintln!(
+            "plumbline serve: gRPC on {}, metrics on http://{}/metrics, data in {}",
+            running.grpc_addr,
+            running.metrics_addr,
+            config.database_path().display()
+        );
+        wait_for_signal().await;
+        tracing::info!("signal received: draining in-flight requests");
+        match running.stop().await {
+            Ok(()) => ExitCode::SUCCESS,
+            Err(e) => {
+                tracing::error!("shutdown: {e}");
+                ExitCode::FAILURE
+            }
+        }
+    })
+}

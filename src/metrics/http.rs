@@ -1,0 +1,66 @@
+//! The second listener: `/metrics`, `/healthz` (the process is up) and
+//! `/readyz` (start-up finished: stores open, caches and fits rebuilt).
+
+use std::net::SocketAddr;
+use std::sync::atomic::{AtomicBool, Ordering};
+use std::sync::Arc;
+
+use axum::extract::State;
+use axum::http::{header, StatusCode};
+use axum::response::IntoResponse;
+use axum::routing::get;
+use axum::Router;
+
+use super::Metrics;
+use crate::shutdown::Shutdown;
+
+#[derive(Clone)]
+pub struct HttpState {
+    pub metrics: Arc<Metrics>,
+    pub ready: Arc<AtomicBool>,
+}
+
+async fn metrics(State(s): State<HttpState>) -> impl IntoResponse {
+    (
+        [(
+            header::CONTENT_TYPE,
+            "application/openmetrics-text; version=1.0.0; charset=utf-8",
+        )],
+        s.metrics.render(),
+    )
+}
+
+async fn healthz() -> impl IntoResponse {
+    (StatusCode::OK, "ok\n")
+}
+
+async fn readyz(State(s): State<HttpState>) -> impl IntoResponse {
+    if s.ready.load(Ordering::Acquire) {
+        (StatusCode::OK, "ready\n")
+    } else {
+        (StatusCode::SERVICE_UNAVAILABLE, "starting\n")
+    }
+}
+
+pub fn router(state: HttpState) -> Router {
+    Router::new()
+        .route("/metrics", get(metrics))
+        .route("/healthz", get(healthz))
+        .route("/readyz", get(readyz))
+        .with_state(state)
+}
+
+/// Serves until `shutdown` fires.
+pub async fn serve(
+    listener: tokio::net::TcpListener,
+    state: HttpState,
+    mut shutdown: Shutdown,
+) -> std::io::Result<()> {
+    axum::serve(listener, router(state))
+        .with_graceful_shutdown(async move { shutdown.recv().await })
+        .await
+}
+
+pub fn describe(addr: SocketAddr) -> String {
+    format!("http://{addr}/metrics")
+}

@@ -1,0 +1,234 @@
+//! Prometheus metrics (prefix `plumbline_`) and the HTTP listener that
+//! serves them with the health probes.
+//!
+//! Series, all labelled by `dataset`:
+//! - `plumbline_model_score` / `plumbline_model_score_se` {model, estimator, window}
+//! - `plumbline_model_rank`, `plumbline_model_p_best` {model, window}
+//! - `plumbline_leader_info` {window, model} = 1 for the current leader
+//! - `plumbline_leader_changes_total` {window}
+//! - `plumbline_leader_uncertain`, `plumbline_no_detectable_heterogeneity`,
+//!   `plumbline_overlap_degraded`, `plumbline_overlap_extreme_share` {window}
+//! - `plumbline_overlap_effective_share` {window, arm}
+//! - `plumbline_ingest_rows_total` {kind, result}
+//! - `plumbline_recompute_duration_seconds` {kind} (histogram),
+//!   `plumbline_recompute_failures_total`
+//! - `plumbline_nuisance_oof_loss` {component}
+//! - `plumbline_units`, `plumbline_outcomes`,
+//!   `plumbline_last_outcome_timestamp_seconds`
+//! - `plumbline_events_total` {kind}
+
+use std::sync::atomic::AtomicU64;
+use std::sync::Arc;
+
+use prometheus_client::encoding::EncodeLabelSet;
+use prometheus_client::metrics::counter::Counter;
+use prometheus_client::metrics::family::Family;
+use prometheus_client::metrics::gauge::Gauge;
+use prometheus_client::metrics::histogram::{exponential_buckets, Histogram};
+use prometheus_client::registry::Registry;
+
+pub mod http;
+
+pub type FloatGaugeType = Gauge<f64, AtomicU64>;
+type FloatGauge = FloatGaugeType;
+
+#[derive(Clone, Debug, Hash, PartialEq, Eq, EncodeLabelSet)]
+pub struct ScoreLabels {
+    pub dataset: String,
+    pub model: String,
+    pub estimator: String,
+    pub window: String,
+}
+
+#[derive(Clone, Debug, Hash, PartialEq, Eq, EncodeLabelSet)]
+pub struct ModelLabels {
+    pub dataset: String,
+    pub model: String,
+    pub window: String,
+}
+
+#[derive(Clone, Debug, Hash, PartialEq, Eq, EncodeLabelSet)]
+pub struct WindowLabels {
+    pub dataset: String,
+    pub window: String,
+}
+
+#[derive(Clone, Debug, Hash, PartialEq, Eq, EncodeLabelSet)]
+pub struct ArmLabels {
+    pub dataset: String,
+    pub window: String,
+    pub arm: String,
+}
+
+#[derive(Clone, Debug, Hash, PartialEq, Eq, EncodeLabelSet)]
+pub struct IngestLabels {
+    pub dataset: String,
+    pub kind: String,
+    pub result: String,
+}
+
+#[derive(Clone, Debug, Hash, PartialEq, Eq, EncodeLabelSet)]
+pub struct KindLabels {
+    pub dataset: String,
+    pub kind: String,
+}
+
+#[derive(Clone, Debug, Hash, PartialEq, Eq, EncodeLabelSet)]
+pub struct ComponentLabels {
+    pub dataset: String,
+    pub component: String,
+}
+
+#[derive(Clone, Debug, Hash, PartialEq, Eq, EncodeLabelSet)]
+pub struct DatasetLabels {
+    pub dataset: String,
+}
+
+/// Every series the service exports.
+pub struct Metrics {
+    registry: Registry,
+    pub model_score: Family<ScoreLabels, FloatGauge>,
+    pub model_score_se: Family<ScoreLabels, FloatGauge>,
+    pub model_rank: Family<ModelLabels, FloatGauge>,
+    pub model_p_best: Family<ModelLabels, FloatGauge>,
+    pub leader_info: Family<ModelLabels, FloatGauge>,
+    pub leader_changes: Family<WindowLabels, Counter>,
+    pub leader_uncertain: Family<WindowLabels, FloatGauge>,
+    pub no_heterogeneity: Family<WindowLabels, FloatGauge>,
+    pub overlap_degraded: Family<WindowLabels, FloatGauge>,
+    pub overlap_extreme_share: Family<WindowLabels, FloatGauge>,
+    pub overlap_effective_share: Family<ArmLabels, FloatGauge>,
+    pub ingest_rows: Family<IngestLabels, Counter>,
+    pub recompute_seconds: Family<KindLabels, Histogram>,
+    pub recompute_failures: Family<DatasetLabels, Counter>,
+    pub nuisance_loss: Family<ComponentLabels, FloatGauge>,
+    pub units: Family<DatasetLabels, FloatGauge>,
+    pub outcomes: Family<DatasetLabels, FloatGauge>,
+    pub last_outcome_seconds: Family<DatasetLabels, FloatGauge>,
+    pub events: Family<KindLabels, Counter>,
+}
+
+impl Metrics {
+    pub fn new() -> Arc<Self> {
+        let mut registry = Registry::with_prefix("plumbline");
+        let m = Metrics {
+            model_score: Family::default(),
+            model_score_se: Family::default(),
+            model_rank: Family::default(),
+            model_p_best: Family::default(),
+            leader_info: Family::default(),
+            leader_changes: Family::default(),
+            leader_uncertain: Family::default(),
+            no_heterogeneity: Family::default(),
+            overlap_degraded: Family::default(),
+            overlap_extreme_share: Family::default(),
+            overlap_effective_share: Family::default(),
+            ingest_rows: Family::default(),
+            recompute_seconds: Family::new_with_constructor(|| {
+                Histogram::new(exponential_buckets(0.005, 2.0, 16))
+            }),
+            recompute_failures: Family::default(),
+            nuisance_loss: Family::default(),
+            units: Family::default(),
+            outcomes: Family::default(),
+            last_outcome_seconds: Family::default(),
+            events: Family::default(),
+            registry: Registry::default(),
+        };
+        registry.register(
+            "model_score",
+            "Model score by estimator and window (lower error is better; corrected_pehe is a lower estimate)",
+            m.model_score.clone(),
+        );
+        registry.register(
+            "model_score_se",
+            "Standard error of plumbline_model_score",
+            m.model_score_se.clone(),
+        );
+        registry.register(
+            "model_rank",
+            "Rank of the model by corrected PEHE (1 = best)",
+            m.model_rank.clone(),
+        );
+        registry.register(
+            "model_p_best",
+            "Probability that the model is best",
+            m.model_p_best.clone(),
+        );
+        registry.register(
+            "leader_info",
+            "1 for the current leader of each window",
+            m.leader_info.clone(),
+        );
+        registry.register(
+            "leader_changes",
+            "Leader-changed events raised",
+            m.leader_changes.clone(),
+        );
+        registry.register(
+            "leader_uncertain",
+            "1 while the best set holds more than one model",
+            m.leader_uncertain.clone(),
+        );
+        registry.register(
+            "no_detectable_heterogeneity",
+            "1 while no model beats constant-effect significantly",
+            m.no_heterogeneity.clone(),
+        );
+        registry.register(
+            "overlap_degraded",
+            "1 while an overlap threshold is crossed",
+            m.overlap_degraded.clone(),
+        );
+        registry.register(
+            "overlap_extreme_share",
+            "Share of units with propensity outside [eps, 1 - eps]",
+            m.overlap_extreme_share.clone(),
+        );
+        registry.register(
+            "overlap_effective_share",
+            "Kish effective sample size as a share of the arm",
+            m.overlap_effective_share.clone(),
+        );
+        registry.register(
+            "ingest_rows",
+            "Rows received by kind and result",
+            m.ingest_rows.clone(),
+        );
+        registry.register(
+            "recompute_duration_seconds",
+            "Wall time of recomputes by kind (incremental or refit)",
+            m.recompute_seconds.clone(),
+        );
+        registry.register(
+            "recompute_failures",
+            "Recomputes that failed",
+            m.recompute_failures.clone(),
+        );
+        registry.register(
+            "nuisance_oof_loss",
+            "Out-of-fold loss of each nuisance component",
+            m.nuisance_loss.clone(),
+        );
+        registry.register("units", "Units stored", m.units.clone());
+        registry.register("outcomes", "Outcomes stored", m.outcomes.clone());
+        registry.register(
+            "last_outcome_timestamp_seconds",
+            "Unix time of the last accepted outcome",
+            m.last_outcome_seconds.clone(),
+        );
+        registry.register("events", "Events raised by kind", m.events.clone());
+        let mut m = m;
+        m.registry = registry;
+        Arc::new(m)
+    }
+
+    /// The exposition text (OpenMetrics, which Prometheus scrapes natively).
+    pub fn render(&self) -> String {
+        let mut out = String::new();
+        if prometheus_client::encoding::text::encode(&mut out, &self.registry).is_err() {
+            out.clear();
+        }
+        out
+    }
+}

@@ -1,0 +1,202 @@
+//! Converts a window's estimation result into the scoreboard message that is
+//! served, stored with each snapshot and read back after a restart.
+
+use crate::api::pb;
+use crate::estimate::scoreboard::{ModelScore, Scoreboard};
+use crate::estimate::stats::Estimate;
+
+fn est(e: &Estimate) -> pb::Estimate {
+    pb::Estimate {
+        estimate: e.estimate,
+        se: e.se,
+    }
+}
+
+fn model(m: &ModelScore) -> pb::ModelScore {
+    pb::ModelScore {
+        name: m.name.clone(),
+        baseline: m.baseline,
+        rank: m.rank as u32,
+        corrected_pehe: Some(est(&m.corrected_pehe)),
+        vs_constant: Some(pb::Difference {
+            estimate: m.vs_constant.estimate,
+            se: m.vs_constant.se,
+            ci_low: m.vs_constant.ci_low,
+            ci_high: m.vs_constant.ci_high,
+            p_value: m.vs_constant.p_value,
+        }),
+        plugin_pehe: Some(est(&m.plugin_pehe)),
+        dr_loss: Some(est(&m.dr_loss)),
+        r_loss: Some(est(&m.r_loss)),
+        ipw_loss: Some(est(&m.ipw_loss)),
+        p_best: m.p_best,
+        in_best_set: m.in_best_set,
+        policy_gain: Some(pb::Estimate {
+            estimate: m.policy_gain.estimate,
+            se: m.policy_gain.se,
+        }),
+        treated_share: m.policy_gain.treated_share,
+        autoc: Some(est(&m.autoc)),
+        qini: Some(est(&m.qini)),
+        blp_slope: m.blp_slope.as_ref().map(est),
+    }
+}
+
+/// Overlap summary of a scoreboard, with the dataset's thresholds applied.
+pub fn overlap_summary(
+    b: &Scoreboard,
+    max_extreme_share: f64,
+    min_effective_share: f64,
+) -> pb::OverlapSummary {
+    let o = &b.overlap;
+    let (auc, clipped) = b
+        .nuisance
+        .as_ref()
+        .map(|n| (n.propensity.auc, n.propensity.clipped as u64))
+        .unwrap_or((0.5, 0));
+    let degraded = o.share_outside_eps > max_extreme_share
+        || o.treated.effective_share < min_effective_share
+        || o.control.effective_share < min_effective_share;
+    pb::OverlapSummary {
+        eps: o.eps,
+        extreme_share: o.share_outside_eps,
+        outside_crump_share: o.share_outside_crump,
+        treated_effective_share: o.treated.effective_share,
+        control_effective_share: o.control.effective_share,
+        treated_max_weight: o.treated.max_normalized_weight,
+        control_max_weight: o.control.max_normalized_weight,
+        imbalanced_features: o
+            .balance
+            .iter()
+            .filter(|f| f.flagged)
+            .map(|f| f.feature.clone())
+            .collect(),
+        propensity_auc: auc,
+        clipped,
+        degraded,
+    }
+}
+
+/// Everything of a window's result except identity and time.
+pub struct BoardParts<'a> {
+    pub dataset: &'a str,
+    pub window: pb::Window,
+    pub snapshot_id: u64,
+    pub computed_at_ms: i64,
+    pub incomplete: Vec<pb::IncompleteModel>,
+    pub max_extreme_share: f64,
+    pub min_effective_share: f64,
+}
+
+pub fn scoreboard(parts: BoardParts<'_>, b: &Scoreboard) -> pb::Scoreboard {
+    let nuisance = b
+        .nuisance
+        .as_ref()
+        .map(|n| {
+            let mut v = Vec::new();
+            match &n.propensity.fit {
+                Some(f) => v.push(pb::NuisanceComponent {
+                    component: "propensity".into(),
+                    learner: f.learner.clone(),
+                    oof_loss: f.oof_loss,
+                    loss: f.loss.into(),
+                }),
+                None => v.push(pb::NuisanceComponent {
+                    component: "propensity".into(),
+                    learner: "logged".into(),
+                    oof_loss: 0.0,
+                    loss: String::new(),
+                }),
+            }
+            for (name, c) in [
+                ("outcome_control", &n.outcome_control),
+                ("outcome_treated", &n.outcome_treated),
+            ] {
+                v.push(pb::NuisanceComponent {
+                    component: name.into(),
+                    learner: c.learner.clone(),
+                    oof_loss: c.oof_loss,
+                    loss: c.loss.into(),
+                });
+            }
+            v
+        })
+        .unwrap_or_default();
+    pb::Scoreboard {
+        dataset: parts.dataset.into(),
+        window: Some(parts.window),
+        snapshot_id: parts.snapshot_id,
+        computed_at_ms: parts.computed_at_ms,
+        units: b.n_units as u64,
+        ate: Some(pb::Estimate {
+            estimate: b.ate.estimate,
+            se: b.ate.se,
+        }),
+        leader: b.leader.clone(),
+        best_set: b.best_set.clone(),
+        no_detectable_heterogeneity: b.no_detectable_heterogeneity,
+        models: b.models.iter().map(model).collect(),
+        incomplete: parts.incomplete,
+        overlap: Some(overlap_summary(
+            b,
+            parts.max_extreme_share,
+            parts.min_effective_share,
+        )),
+        nuisance,
+        degenerate: String::new(),
+        caveat: b.caveat.into(),
+        json: serde_json::to_string(b).unwrap_or_default(),
+    }
+}
+
+/// A board for a window whose data cannot support scores.
+pub fn degenerate(parts: BoardParts<'_>, units: u64, state: String) -> pb::Scoreboard {
+    pb::Scoreboard {
+        dataset: parts.dataset.into(),
+        window: Some(parts.window),
+        snapshot_id: parts.snapshot_id,
+        computed_at_ms: parts.computed_at_ms,
+        units,
+        incomplete: parts.incomplete,
+        degenerate: state,
+        caveat: crate::estimate::scoreboard::CORRECTED_PEHE_CAVEAT.into(),
+        ..Default::default()
+    }
+}
+
+/// The estimator values that history queries can ask for.
+pub fn estimator_values(m: &pb::ModelScore) -> Vec<(&'static str, pb::Estimate)> {
+    let mut out = Vec::new();
+    let mut push = |key: &'static str, e: &Option<pb::Estimate>| {
+        if let Some(e) = e {
+            out.push((key, *e));
+        }
+    };
+    push("corrected_pehe", &m.corrected_pehe);
+    push("plugin_pehe", &m.plugin_pehe);
+    push("dr_loss", &m.dr_loss);
+    push("r_loss", &m.r_loss);
+    push("ipw_loss", &m.ipw_loss);
+    push("policy_gain", &m.policy_gain);
+    push("autoc", &m.autoc);
+    push("qini", &m.qini);
+    if let Some(v) = &m.vs_constant {
+        out.push((
+            "vs_constant",
+            pb::Estimate {
+                estimate: v.estimate,
+                se: v.se,
+            },
+        ));
+    }
+    out
+}
+
+/// Stable key of a window, used in storage and metric labels.
+pub fn window_key(w: &pb::Window) -> String {
+    match pb::window::Kind::try_from(w.kind).unwrap_or(pb::window::Kind::Cumulative) {
+        pb::window::Kind::Unspecified | pb::window::Kind::Cumulative => "cumulative".into(),
+        pb::window::Kind::Recent => "recent".into(),
+        pb::window::Kind::Cohort => format!("cohort:{}", w.cohort),
+    }
+}

@@ -1,0 +1,322 @@
+//! A real server on ephemeral loopback ports with a temporary SQLite file,
+//! and real tonic clients.
+#![allow(dead_code)]
+
+use std::io::{Read, Write};
+use std::net::{SocketAddr, TcpStream};
+use std::path::PathBuf;
+
+use plumbline::api::pb;
+use plumbline::config::{Config, LogFormat};
+use plumbline::server::{start, Running};
+use plumbline::store::Durability;
+use tonic::transport::Channel;
+
+pub struct TempDir(pub PathBuf);
+
+impl TempDir {
+    pub fn new(tag: &str) -> Self {
+        let p = std::env::temp_dir().join(format!(
+            "plumbline-{tag}-{}-{}",
+            std::process::id(),
+            std::time::SystemTime::now()
+                .duration_since(std::time::UNIX_EPOCH)
+                .map(|d| d.as_nanos())
+                .unwrap_or(0)
+        ));
+        std::fs::create_dir_all(&p).expect("temp dir");
+        TempDir(p)
+    }
+}
+
+impl Drop for TempDir {
+    fn drop(&mut self) {
+        let _ = std::fs::remove_dir_all(&self.0);
+    }
+}
+
+pub fn config(dir: &TempDir) -> Config {
+    Config {
+        listen: "127.0.0.1:0".parse().expect("addr"),
+        metrics_listen: "127.0.0.1:0".parse().expect("addr"),
+        data_dir: dir.0.clone(),
+        durability: Durability::Normal,
+        log_format: LogFormat::Human,
+        log_level: "warn".into(),
+    }
+}
+
+pub async fn server(dir: &TempDir) -> Running {
+    start(&config(dir)).await.expect("server starts")
+}
+
+pub struct Clients {
+    pub datasets: pb::dataset_registry_client::DatasetRegistryClient<Channel>,
+    pub models: pb::model_registry_client::ModelRegistryClient<Channel>,
+    pub intake: pb::intake_client::IntakeClient<Channel>,
+    pub scoring: pb::scoring_client::ScoringClient<Channel>,
+    pub events: pb::event_feed_client::EventFeedClient<Channel>,
+}
+
+pub async fn clients(addr: SocketAddr) -> Clients {
+    let channel = Channel::from_shared(format!("http://{addr}"))
+        .expect("uri")
+        .connect()
+        .await
+        .expect("connect");
+    Clients {
+        datasets: pb::dataset_registry_client::DatasetRegistryClient::new(channel.clone()),
+        models: pb::model_registry_client::ModelRegistryClient::new(channel.clone()),
+        intake: pb::intake_client::IntakeClient::new(channel.clone())
+            .max_decoding_message_size(64 << 20),
+        scoring: pb::scoring_client::ScoringClient::new(channel.clone())
+            .max_decoding_message_size(64 << 20),
+        events: pb::event_feed_client::EventFeedClient::new(channel),
+    }
+}
+
+/// A plain HTTP/1.1 GET (enough for /metrics and the probes).
+pub fn http_get(addr: SocketAddr, path: &str) -> (u16, String) {
+    let mut s = TcpStream::connect(addr).expect("connect");
+    write!(
+        s,
+        "GET {path} HTTP/1.1\r\nHost: {addr}\r\nConnection: close\r\n\r\n"
+    )
+    .expect("write");
+    let mut raw = String::new();
+    s.read_to_string(&mut raw).expect("read");
+    let status = raw
+        .split_whitespace()
+        .nth(1)
+        .and_then(|c| c.parse().ok())
+        .unwrap_or(0);
+    let body = raw
+        .split_once("\r\n\r\n")
+        .map(|(_, b)| b.to_string())
+        .unwrap_or_default();
+    // Undo chunked transfer encoding if present.
+    if raw
+        .to_ascii_lowercase()
+        .contains("transfer-encoding: chunked")
+    {
+        let mut out = String::new();
+        let mut rest = body.as_str();
+        while let Some((size, tail)) = rest.split_once("\r\n") {
+            let n = usize::from_str_radix(size.trim(), 16).unwrap_or(0);
+            if n == 0 || tail.len() < n {
+                break;
+            }
+            out.push_str(&tail[..n]);
+            rest = &tail[n..];
+            rest = rest.strip_prefix("\r\n").unwrap_or(rest);
+        }
+        return (status, out);
+    }
+    (status, body)
+}
+
+/// One sample: metric name, labels, value.
+pub type Sample = (String, Vec<(String, String)>, f64);
+
+/// Parses Prometheus / OpenMetrics text into samples.
+pub fn parse_metrics(text: &str) -> Vec<Sample> {
+    let mut out = Vec::new();
+    for line in text.lines() {
+        if line.is_empty() || line.starts_with('#') {
+            continue;
+        }
+        let (series, value) = match line.rsplit_once(' ') {
+            Some(p) => p,
+            None => panic!("malformed sample line: {line:?}"),
+        };
+        let value: f64 = match value {
+            "+Inf" => f64::INFINITY,
+            "-Inf" => f64::NEG_INFINITY,
+            v => v
+                .parse()
+                .unwrap_or_else(|_| panic!("bad value in {line:?}")),
+        };
+        let (name, labels) = match series.split_once('{') {
+            Some((n, rest)) => {
+                let inner = rest
+                    .strip_suffix('}')
+                    .unwrap_or_else(|| panic!("unclosed labels: {line:?}"));
+                let labels = inner
+                    .split("\",")
+                    .filter(|p| !p.is_empty())
+                    .map(|p| {
+                        let (k, v) = p
+                            .split_once("=\"")
+                            .unwrap_or_else(|| panic!("bad label in {line:?}"));
+                        (k.to_string(), v.trim_end_matches('"').to_string())
+                    })
+                    .collect();
+                (n.to_string(), labels)
+            }
+            None => (series.to_string(), Vec::new()),
+        };
+        assert!(
+            name.chars()
+                .all(|c| c.is_ascii_alphanumeric() || c == '_' || c == ':'),
+            "bad metric name {name:?}"
+        );
+        out.push((name, labels, value));
+    }
+    out
+}
+
+pub fn continuous_spec(name: &str, features: usize) -> pb::DatasetSpec {
+    pb::DatasetSpec {
+        name: name.into(),
+        feature_names: (1..=features).map(|j| format!("x{j}")).collect(),
+        outcome_kind: pb::OutcomeKind::Continuous as i32,
+        seed: 3,
+        recompute: Some(pb::RecomputePolicy {
+            // Tests drive recomputes explicitly.
+            every_outcomes: 1_000_000,
+            every_seconds: 3600,
+            ..Default::default()
+        }),
+        ..Default::default()
+    }
+}
+
+pub fn unit_row(key: &str, x: &[f64], w: f64, p: Option<f64>, cohort: &str) -> pb::UnitRow {
+    pb::UnitRow {
+        key: key.into(),
+        features: x.to_vec(),
+        treatment: w as u32,
+        propensity: p,
+        cohort: cohort.into(),
+        assigned_at_ms: 0,
+    }
+}
+
+pub async fn send_units(
+    c: &mut Clients,
+    dataset: &str,
+    rows: Vec<pb::UnitRow>,
+) -> pb::IntakeReceipt {
+    let batches: Vec<pb::UnitBatch> = rows
+        .chunks(1000)
+        .map(|r| pb::UnitBatch {
+            dataset: dataset.into(),
+            rows: r.to_vec(),
+        })
+        .collect();
+    c.intake
+        .send_units(tokio_stream::iter(batches))
+        .await
+        .expect("units accepted")
+        .into_inner()
+}
+
+pub async fn send_outcomes(
+    c: &mut Clients,
+    dataset: &str,
+    rows: Vec<pb::OutcomeRow>,
+) -> pb::IntakeReceipt {
+    let batches: Vec<pb::OutcomeBatch> = rows
+        .chunks(1000)
+        .map(|r| pb::OutcomeBatch {
+            dataset: dataset.into(),
+            rows: r.to_vec(),
+        })
+        .collect();
+    c.intake
+        .send_outcomes(tokio_stream::iter(batches))
+        .await
+        .expect("outcomes accepted")
+        .into_inner()
+}
+
+pub async fn send_predictions(
+    c: &mut Clients,
+    dataset: &str,
+    rows: Vec<pb::PredictionRow>,
+) -> pb::IntakeReceipt {
+    let batches: Vec<pb::PredictionBatch> = rows
+        .chunks(1000)
+        .map(|r| pb::PredictionBatch {
+            dataset: dataset.into(),
+            rows: r.to_vec(),
+        })
+        .collect();
+    c.intake
+        .send_predictions(tokio_stream::iter(batches))
+        .await
+        .expect("predictions accepted")
+        .into_inner()
+}
+
+pub async fn register(c: &mut Clients, dataset: &str, name: &str) {
+    c.models
+        .register_model(pb::RegisterModelRequest {
+            dataset: dataset.into(),
+            name: name.into(),
+            version: "1".into(),
+            description: String::new(),
+        })
+        .await
+        .expect("register");
+}
+
+pub async fn recompute(c: &mut Clients, dataset: &str, refit: bool) -> pb::RecomputeResponse {
+    c.scoring
+        .recompute(pb::RecomputeRequest {
+            dataset: dataset.into(),
+            refit,
+        })
+        .await
+        .expect("recompute")
+        .into_inner()
+}
+
+pub async fn board(c: &mut Clients, dataset: &str, kind: pb::window::Kind) -> pb::Scoreboard {
+    c.scoring
+        .get_scoreboard(pb::GetScoreboardRequest {
+            dataset: dataset.into(),
+            window: Some(pb::Window {
+                kind: kind as i32,
+                cohort: String::new(),
+            }),
+        })
+        .await
+        .expect("scoreboard")
+        .into_inner()
+}
+
+/// Every numeric leaf of two JSON documents agrees to `tol` (relative to
+/// max(1, |value|)); every key of one is in the other.
+pub fn assert_json_close(a: &serde_json::Value, b: &serde_json::Value, tol: f64, path: &str) {
+    use serde_json::Value::*;
+    match (a, b) {
+        (Number(x), Number(y)) => {
+            let (x, y) = (
+                x.as_f64().unwrap_or(f64::NAN),
+                y.as_f64().unwrap_or(f64::NAN),
+            );
+            assert!(
+                (x - y).abs() <= tol * x.abs().max(1.0),
+                "{path}: {x} vs {y}"
+            );
+        }
+        (Object(x), Object(y)) => {
+            assert_eq!(
+                x.keys().collect::<Vec<_>>(),
+                y.keys().collect::<Vec<_>>(),
+                "{path}: keys differ"
+            );
+            for (k, v) in x {
+                assert_json_close(v, &y[k], tol, &format!("{path}.{k}"));
+            }
+        }
+        (Array(x), Array(y)) => {
+            assert_eq!(x.len(), y.len(), "{path}: lengths differ");
+            for (i, (u, v)) in x.iter().zip(y).enumerate() {
+                assert_json_close(u, v, tol, &format!("{path}[{i}]"));
+            }
+        }
+        (x, y) => assert_eq!(x, y, "{path}"),
+    }
+}

@@ -1,0 +1,576 @@
+//! The service end to end: a real server on ephemeral loopback ports, a
+//! temporary SQLite file, real tonic clients.
+
+mod common;
+
+use common::service::*;
+use plumbline::api::pb;
+use plumbline::api::status::receipt_of;
+use plumbline::synth::{candidates, draw, effect_moments, Design};
+use tonic::Code;
+
+const COHORTS: usize = 5;
+const PER_COHORT: usize = 1000;
+
+/// Creates a dataset, registers three models, streams 5,000 units with
+/// predictions and outcomes in five cohorts (recomputing after each), then
+/// refits. The cumulative scoreboard must equal `plumbline score` on the same
+/// data exported to CSV with the same seed, to 1e-9. Then the server is
+/// restarted on the same data directory: everything is still there and a
+/// recompute gives the same numbers.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn lifecycle_matches_the_offline_score_and_survives_a_restart() {
+    let dir = TempDir::new("lifecycle");
+    let srv = server(&dir).await;
+    let mut c = clients(srv.grpc_addr).await;
+    let name = "reminders";
+    let d = 6;
+    c.datasets
+        .create_dataset(pb::CreateDatasetRequest {
+            spec: Some(continuous_spec(name, d)),
+        })
+        .await
+        .expect("create");
+    let n = COHORTS * PER_COHORT;
+    let data = draw(Design::NieWagerB, n, d, 1.0, 21);
+    let (_, var_tau) = effect_moments(Design::NieWagerB, 100_000, 5);
+    let models = candidates(&data.tau, var_tau, 3, 8);
+    for m in &models {
+        register(&mut c, name, &m.predictions.name).await;
+    }
+    for k in 0..COHORTS {
+        let range = k * PER_COHORT..(k + 1) * PER_COHORT;
+        let cohort = format!("2026-{:02}", k + 1);
+        let units: Vec<pb::UnitRow> = range
+            .clone()
+            .map(|i| {
+                let x: Vec<f64> = data.features.row(i).to_vec();
+                unit_row(&format!("u{i}"), &x, data.treatment[i], None, &cohort)
+            })
+            .collect();
+        let r = send_units(&mut c, name, units).await;
+        assert_eq!(r.accepted, PER_COHORT as u64);
+        let preds: Vec<pb::PredictionRow> = models
+            .iter()
+            .flat_map(|m| {
+                range.clone().map(move |i| pb::PredictionRow {
+                    model: m.predictions.name.clone(),
+                    unit_key: format!("u{i}"),
+                    effect: m.predictions.effects[i],
+                    predicted_at_ms: 0,
+                })
+            })
+            .collect();
+        send_predictions(&mut c, name, preds).await;
+        let outcomes: Vec<pb::OutcomeRow> = range
+            .map(|i| pb::OutcomeRow {
+                unit_key: format!("u{i}"),
+                value: data.outcome[i],
+                observed_at_ms: 0,
+            })
+            .collect();
+        send_outcomes(&mut c, name, outcomes).await;
+        recompute(&mut c, name, false).await;
+    }
+    let refit = recompute(&mut c, name, true).await;
+    assert!(refit.refitted);
+    assert_eq!(refit.units, n as u64);
+    let served = board(&mut c, name, pb::window::Kind::Cumulative).await;
+    assert_eq!(served.units, n as u64);
+    assert!(served.degenerate.is_empty(), "{}", served.degenerate);
+
+    // Export the same data, in the service's unit order, and score offline.
+    let csv = TempDir::new("lifecycle-csv");
+    let mut units = String::from("unit_id,treatment,outcome");
+    for j in 1..=d {
+        units.push_str(&format!(",x{j}"));
+    }
+    units.push('\n');
+    let mut preds = String::from("unit_id");
+    for m in &models {
+        preds.push_str(&format!(",{}", m.predictions.name));
+    }
+    preds.push('\n');
+    for i in 0..n {
+        units.push_str(&format!("u{i},{},{}", data.treatment[i], data.outcome[i]));
+        for v in data.features.row(i) {
+            units.push_str(&format!(",{v}"));
+        }
+        units.push('\n');
+        preds.push_str(&format!("u{i}"));
+        for m in &models {
+            preds.push_str(&format!(",{}", m.predictions.effects[i]));
+        }
+        preds.push('\n');
+    }
+    std::fs::write(csv.0.join("units.csv"), units).expect("units csv");
+    std::fs::write(csv.0.join("predictions.csv"), preds).expect("predictions csv");
+    let out = std::process::Command::new(env!("CARGO_BIN_EXE_plumbline"))
+        .args(["score", "--format", "json", "--seed", "3", "--folds", "5"])
+        .arg("--units")
+        .arg(csv.0.join("units.csv"))
+        .arg("--predictions")
+        .arg(csv.0.join("predictions.csv"))
+        .output()
+        .expect("score");
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    let offline: serde_json::Value = serde_json::from_slice(&out.stdout).expect("json");
+    let online: serde_json::Value = serde_json::from_str(&served.json).expect("json");
+    assert_json_close(&online, &offline, 1e-9, "scoreboard");
+
+    // History: one point per recompute.
+    let history = c
+        .scoring
+        .get_history(pb::GetHistoryRequest {
+            dataset: name.into(),
+            model: models[0].predictions.name.clone(),
+            estimator: "vs_constant".into(),
+            ..Default::default()
+        })
+        .await
+        .expect("history")
+        .into_inner();
+    assert_eq!(history.points.len(), COHORTS + 1);
+
+    // Restart on the same directory.
+    srv.stop().await.expect("stop");
+    let srv = server(&dir).await;
+    let mut c = clients(srv.grpc_addr).await;
+    let ds = c
+        .datasets
+        .get_dataset(pb::GetDatasetRequest { name: name.into() })
+        .await
+        .expect("dataset survives")
+        .into_inner();
+    assert_eq!(
+        (ds.units, ds.outcomes, ds.predictions),
+        (n as u64, n as u64, 3 * n as u64)
+    );
+    assert_eq!(ds.active_models, 3);
+    let listed = c
+        .models
+        .list_models(pb::ListModelsRequest {
+            dataset: name.into(),
+            include_retired: true,
+        })
+        .await
+        .expect("models")
+        .into_inner();
+    assert_eq!(listed.models.len(), 3);
+    let restored = board(&mut c, name, pb::window::Kind::Cumulative).await;
+    assert_eq!(restored.json, served.json, "latest scoreboard restored");
+    let history_after = c
+        .scoring
+        .get_history(pb::GetHistoryRequest {
+            dataset: name.into(),
+            model: models[0].predictions.name.clone(),
+            estimator: "vs_constant".into(),
+            ..Default::default()
+        })
+        .await
+        .expect("history")
+        .into_inner();
+    assert_eq!(history_after.points.len(), COHORTS + 1);
+    let again = recompute(&mut c, name, false).await;
+    assert!(!again.refitted, "the reproduced fit is current");
+    let recomputed = board(&mut c, name, pb::window::Kind::Cumulative).await;
+    let a: serde_json::Value = serde_json::from_str(&recomputed.json).expect("json");
+    assert_json_close(&a, &online, 1e-12, "after restart");
+    srv.stop().await.expect("stop");
+}
+
+/// Each integrity rule answers with its status code and writes nothing.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn integrity_rules_answer_with_their_codes_and_write_nothing() {
+    let dir = TempDir::new("integrity");
+    let srv = server(&dir).await;
+    let mut c = clients(srv.grpc_addr).await;
+    let name = "integrity";
+    c.datasets
+        .create_dataset(pb::CreateDatasetRequest {
+            spec: Some(continuous_spec(name, 2)),
+        })
+        .await
+        .expect("create");
+    register(&mut c, name, "m1").await;
+    let base: Vec<pb::UnitRow> = (0..10)
+        .map(|i| {
+            unit_row(
+                &format!("k{i}"),
+                &[i as f64, 1.0],
+                (i % 2) as f64,
+                None,
+                "c1",
+            )
+        })
+        .collect();
+    send_units(&mut c, name, base.clone()).await;
+    send_outcomes(
+        &mut c,
+        name,
+        vec![pb::OutcomeRow {
+            unit_key: "k0".into(),
+            value: 1.5,
+            observed_at_ms: 0,
+        }],
+    )
+    .await;
+    let id = srv.monitor.dataset_id(name).expect("id");
+    let counts = || async { srv.monitor.store().counts(id).await.expect("counts") };
+    let before = counts().await;
+    assert_eq!(before, (10, 1, 0));
+
+    // Identical re-send: a no-op, counted as duplicate.
+    let r = send_units(&mut c, name, base.clone()).await;
+    assert_eq!((r.accepted, r.duplicate), (0, 10));
+    assert_eq!(counts().await, before);
+
+    let intake = c.intake.clone();
+    let units_call = |rows: Vec<pb::UnitRow>| {
+        let mut intake = intake.clone();
+        async move {
+            intake
+                .send_units(tokio_stream::iter(vec![pb::UnitBatch {
+                    dataset: "integrity".into(),
+                    rows,
+                }]))
+                .await
+        }
+    };
+    // Conflicting row (same key, other features) beside a new valid row.
+    let err = units_call(vec![
+        unit_row("new-1", &[0.0, 0.0], 1.0, None, "c1"),
+        unit_row("k3", &[99.0, 1.0], 1.0, None, "c1"),
+    ])
+    .await
+    .expect_err("conflict");
+    assert_eq!(err.code(), Code::AlreadyExists, "{}", err.message());
+    assert!(
+        err.message().contains("row 1") && err.message().contains("key"),
+        "{}",
+        err.message()
+    );
+    let receipt = receipt_of(&err).expect("receipt in details");
+    assert_eq!(receipt.rejections[0].row, 1);
+    assert_eq!(counts().await, before, "nothing of the batch written");
+
+    // Malformed row: NaN feature, named by field and row index.
+    let err = units_call(vec![
+        unit_row("new-2", &[0.0, 0.0], 1.0, None, "c1"),
+        unit_row("new-3", &[0.0, f64::NAN], 0.0, None, "c1"),
+    ])
+    .await
+    .expect_err("malformed");
+    assert_eq!(err.code(), Code::InvalidArgument);
+    assert!(
+        err.message().contains("features[1]") && err.message().contains("row 1"),
+        "{}",
+        err.message()
+    );
+    assert_eq!(counts().await, before);
+
+    // Outcome for an unknown unit.
+    let err = c
+        .intake
+        .send_outcomes(tokio_stream::iter(vec![pb::OutcomeBatch {
+            dataset: name.into(),
+            rows: vec![
+                pb::OutcomeRow {
+                    unit_key: "k1".into(),
+                    value: 2.0,
+                    observed_at_ms: 0,
+                },
+                pb::OutcomeRow {
+                    unit_key: "nobody".into(),
+                    value: 2.0,
+                    observed_at_ms: 0,
+                },
+            ],
+        }]))
+        .await
+        .expect_err("unknown unit");
+    assert_eq!(err.code(), Code::NotFound);
+    assert!(err.message().contains("unit_key"), "{}", err.message());
+    assert_eq!(counts().await, before);
+
+    // Prediction after the unit's outcome.
+    let err = c
+        .intake
+        .send_predictions(tokio_stream::iter(vec![pb::PredictionBatch {
+            dataset: name.into(),
+            rows: vec![
+                pb::PredictionRow {
+                    model: "m1".into(),
+                    unit_key: "k2".into(),
+                    effect: 0.3,
+                    predicted_at_ms: 0,
+                },
+                pb::PredictionRow {
+                    model: "m1".into(),
+                    unit_key: "k0".into(),
+                    effect: 0.3,
+                    predicted_at_ms: 0,
+                },
+            ],
+        }]))
+        .await
+        .expect_err("after outcome");
+    assert_eq!(err.code(), Code::FailedPrecondition);
+    assert_eq!(counts().await, before);
+
+    // A stamped backfill made before the outcome is accepted.
+    send_units(
+        &mut c,
+        name,
+        vec![unit_row("late", &[1.0, 2.0], 1.0, None, "c1")],
+    )
+    .await;
+    send_outcomes(
+        &mut c,
+        name,
+        vec![pb::OutcomeRow {
+            unit_key: "late".into(),
+            value: 0.5,
+            observed_at_ms: 2_000,
+        }],
+    )
+    .await;
+    let ok = send_predictions(
+        &mut c,
+        name,
+        vec![pb::PredictionRow {
+            model: "m1".into(),
+            unit_key: "late".into(),
+            effect: 0.1,
+            predicted_at_ms: 1_000,
+        }],
+    )
+    .await;
+    assert_eq!(ok.accepted, 1);
+
+    // Unknown dataset.
+    let err = c
+        .intake
+        .send_units(tokio_stream::iter(vec![pb::UnitBatch {
+            dataset: "no-such-dataset".into(),
+            rows: vec![unit_row("x", &[0.0, 0.0], 1.0, None, "")],
+        }]))
+        .await
+        .expect_err("unknown dataset");
+    assert_eq!(err.code(), Code::NotFound);
+    srv.stop().await.expect("stop");
+}
+
+/// Streams cohorts of units whose effects follow `tau(cohort, x)`, with
+/// two models, and recomputes after each cohort.
+struct Scenario<'a> {
+    name: &'a str,
+    cohorts: usize,
+    per_cohort: usize,
+}
+
+fn normal_features(rng: &mut rand_chacha::ChaCha8Rng, d: usize) -> Vec<f64> {
+    (0..d)
+        .map(|_| plumbline::synth::standard_normal(rng))
+        .collect()
+}
+
+/// A challenger becomes best after cohort 3: exactly one significant
+/// leader-changed event, visible through watch and list, and the
+/// leader-change counter on /metrics moves.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn drift_raises_exactly_one_significant_leader_change() {
+    use rand::{Rng, SeedableRng};
+    let dir = TempDir::new("drift");
+    let srv = server(&dir).await;
+    let mut c = clients(srv.grpc_addr).await;
+    let s = Scenario {
+        name: "drift",
+        cohorts: 7,
+        per_cohort: 1000,
+    };
+    let mut spec = continuous_spec(s.name, 3);
+    spec.recent = Some(pb::RecentWindow {
+        last_outcomes: s.per_cohort as u32,
+        last_days: 0,
+    });
+    c.datasets
+        .create_dataset(pb::CreateDatasetRequest { spec: Some(spec) })
+        .await
+        .expect("create");
+    for m in ["incumbent", "challenger", "flat"] {
+        register(&mut c, s.name, m).await;
+    }
+    let mut watch = c
+        .events
+        .watch_events(pb::WatchEventsRequest {
+            dataset: s.name.into(),
+            after_id: 0,
+        })
+        .await
+        .expect("watch")
+        .into_inner();
+    let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(77);
+    for k in 0..s.cohorts {
+        let drifted = k >= 3;
+        let mut units = Vec::new();
+        let mut preds = Vec::new();
+        let mut outcomes = Vec::new();
+        for i in 0..s.per_cohort {
+            let key = format!("c{k}-{i}");
+            let x = normal_features(&mut rng, 3);
+            let old = 1.0 + x[0];
+            let new = 1.0 - x[0];
+            let tau = if drifted { new } else { old };
+            let w = if rng.gen::<f64>() < 0.5 { 1.0 } else { 0.0 };
+            let y = x[1] + w * tau + plumbline::synth::standard_normal(&mut rng);
+            units.push(unit_row(&key, &x, w, Some(0.5), &format!("c{k}")));
+            for (m, e) in [("incumbent", old), ("challenger", new), ("flat", 1.0)] {
+                preds.push(pb::PredictionRow {
+                    model: m.into(),
+                    unit_key: key.clone(),
+                    effect: e,
+                    predicted_at_ms: 0,
+                });
+            }
+            outcomes.push(pb::OutcomeRow {
+                unit_key: key,
+                value: y,
+                observed_at_ms: 0,
+            });
+        }
+        send_units(&mut c, s.name, units).await;
+        send_predictions(&mut c, s.name, preds).await;
+        send_outcomes(&mut c, s.name, outcomes).await;
+        recompute(&mut c, s.name, false).await;
+        let recent = board(&mut c, s.name, pb::window::Kind::Recent).await;
+        let expected = if drifted { "challenger" } else { "incumbent" };
+        assert_eq!(recent.leader, expected, "cohort {k}");
+    }
+    let events = c
+        .events
+        .list_events(pb::ListEventsRequest {
+            dataset: s.name.into(),
+            after_id: 0,
+            limit: 1000,
+        })
+        .await
+        .expect("list")
+        .into_inner()
+        .events;
+    let changes: Vec<&pb::Event> = events
+        .iter()
+        .filter(|e| e.kind == "leader_changed")
+        .collect();
+    assert_eq!(changes.len(), 1, "{changes:?}");
+    let details: serde_json::Value = serde_json::from_str(&changes[0].details_json).expect("json");
+    assert_eq!(details["significant"], true);
+    assert_eq!(details["old"], "incumbent");
+    assert_eq!(details["new"], "challenger");
+    assert_eq!(details["window"], "recent");
+    assert!(details["margin"].as_f64().unwrap_or(0.0) > 0.0);
+
+    // The watcher saw the same event.
+    let mut seen = Vec::new();
+    while let Ok(Some(e)) = tokio::time::timeout(std::time::Duration::from_secs(2), watch.message())
+        .await
+        .unwrap_or(Ok(None))
+    {
+        seen.push(e);
+        if seen.len() == events.len() {
+            break;
+        }
+    }
+    assert!(seen
+        .iter()
+        .any(|e| e.id == changes[0].id && e.kind == "leader_changed"));
+
+    let (status, text) = http_get(srv.metrics_addr, "/metrics");
+    assert_eq!(status, 200);
+    let samples = parse_metrics(&text);
+    let counter = samples
+        .iter()
+        .find(|(n, l, _)| {
+            n == "plumbline_leader_changes_total"
+                && l.contains(&("dataset".into(), "drift".into()))
+                && l.contains(&("window".into(), "recent".into()))
+        })
+        .map(|(_, _, v)| *v);
+    assert_eq!(counter, Some(1.0));
+    srv.stop().await.expect("stop");
+}
+
+/// Assignment that becomes near-deterministic for a subgroup raises overlap
+/// degraded; its recovery raises overlap recovered.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn overlap_degrades_and_recovers() {
+    use rand::{Rng, SeedableRng};
+    let dir = TempDir::new("overlap");
+    let srv = server(&dir).await;
+    let mut c = clients(srv.grpc_addr).await;
+    let name = "overlap";
+    let mut spec = continuous_spec(name, 3);
+    spec.recent = Some(pb::RecentWindow {
+        last_outcomes: 1000,
+        last_days: 0,
+    });
+    c.datasets
+        .create_dataset(pb::CreateDatasetRequest { spec: Some(spec) })
+        .await
+        .expect("create");
+    register(&mut c, name, "m").await;
+    let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(5);
+    let mut degraded_flags = Vec::new();
+    for k in 0..5 {
+        // Cohort 2: units with x1 > 0 are treated with probability 0.995.
+        let narrow = k == 2;
+        let (mut units, mut preds, mut outcomes) = (Vec::new(), Vec::new(), Vec::new());
+        for i in 0..1000 {
+            let key = format!("c{k}-{i}");
+            let x = normal_features(&mut rng, 3);
+            let p = if narrow && x[0] > 0.0 { 0.995 } else { 0.5 };
+            let w = if rng.gen::<f64>() < p { 1.0 } else { 0.0 };
+            let y = x[1] + w * (1.0 + x[2]) + plumbline::synth::standard_normal(&mut rng);
+            units.push(unit_row(&key, &x, w, Some(p), &format!("c{k}")));
+            preds.push(pb::PredictionRow {
+                model: "m".into(),
+                unit_key: key.clone(),
+                effect: 1.0 + x[2],
+                predicted_at_ms: 0,
+            });
+            outcomes.push(pb::OutcomeRow {
+                unit_key: key,
+                value: y,
+                observed_at_ms: 0,
+            });
+        }
+        send_units(&mut c, name, units).await;
+        send_predictions(&mut c, name, preds).await;
+        send_outcomes(&mut c, name, outcomes).await;
+        recompute(&mut c, name, false).await;
+        let recent = board(&mut c, name, pb::window::Kind::Recent).await;
+        degraded_flags.push(recent.overlap.map(|o| o.degraded).unwrap_or(false));
+    }
+    assert_eq!(degraded_flags, vec![false, false, true, false, false]);
+    let kinds: Vec<String> = c
+        .events
+        .list_events(pb::ListEventsRequest {
+            dataset: name.into(),
+            after_id: 0,
+            limit: 100,
+        })
+        .await
+        .expect("list")
+        .into_inner()
+        .events
+        .into_iter()
+        .map(|e| e.kind)
+        .filter(|k| k.starts_with("overlap"))
+        .collect();
+    assert_eq!(kinds, vec!["overlap_degraded", "overlap_recovered"]);
+    srv.stop().await.expect("stop");
+}
