@@ -574,3 +574,259 @@ async fn overlap_degrades_and_recovers() {
     assert_eq!(kinds, vec!["overlap_degraded", "overlap_recovered"]);
     srv.stop().await.expect("stop");
 }
+
+/// /metrics parses as Prometheus text and carries every documented series
+/// with its labels.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn metrics_carry_every_series_with_its_labels() {
+    use rand::{Rng, SeedableRng};
+    let dir = TempDir::new("metrics");
+    let srv = server(&dir).await;
+    let mut c = clients(srv.grpc_addr).await;
+    let name = "metered";
+    c.datasets
+        .create_dataset(pb::CreateDatasetRequest {
+            spec: Some(continuous_spec(name, 2)),
+        })
+        .await
+        .expect("create");
+    register(&mut c, name, "m").await;
+    let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(9);
+    let (mut units, mut preds, mut outcomes) = (Vec::new(), Vec::new(), Vec::new());
+    for i in 0..600 {
+        let key = format!("u{i}");
+        let x = normal_features(&mut rng, 2);
+        let w = if rng.gen::<f64>() < 0.5 { 1.0 } else { 0.0 };
+        units.push(unit_row(&key, &x, w, None, "c"));
+        preds.push(pb::PredictionRow {
+            model: "m".into(),
+            unit_key: key.clone(),
+            effect: x[0],
+            predicted_at_ms: 0,
+        });
+        outcomes.push(pb::OutcomeRow {
+            unit_key: key,
+            value: x[1] + w * x[0] + plumbline::synth::standard_normal(&mut rng),
+            observed_at_ms: 0,
+        });
+    }
+    send_units(&mut c, name, units.clone()).await;
+    send_units(&mut c, name, units).await; // duplicates
+    send_predictions(&mut c, name, preds).await;
+    send_outcomes(&mut c, name, outcomes).await;
+    recompute(&mut c, name, false).await;
+
+    let (status, text) = http_get(srv.metrics_addr, "/metrics");
+    assert_eq!(status, 200);
+    let samples = parse_metrics(&text);
+    let has = |metric: &str, labels: &[(&str, &str)]| {
+        samples.iter().any(|(n, l, v)| {
+            n == metric
+                && v.is_finite()
+                && labels.iter().all(|(k, want)| {
+                    l.iter()
+                        .any(|(lk, lv)| lk == k && (want.is_empty() || lv == want))
+                })
+        })
+    };
+    let d = ("dataset", name);
+    for (metric, labels) in [
+        (
+            "plumbline_model_score",
+            vec![
+                d,
+                ("model", "m"),
+                ("estimator", "corrected_pehe"),
+                ("window", "cumulative"),
+            ],
+        ),
+        (
+            "plumbline_model_score",
+            vec![
+                d,
+                ("model", "constant-effect"),
+                ("estimator", "r_loss"),
+                ("window", "recent"),
+            ],
+        ),
+        (
+            "plumbline_model_score_se",
+            vec![
+                d,
+                ("model", "m"),
+                ("estimator", "vs_constant"),
+                ("window", "recent"),
+            ],
+        ),
+        (
+            "plumbline_model_rank",
+            vec![d, ("model", "m"), ("window", "cumulative")],
+        ),
+        (
+            "plumbline_model_p_best",
+            vec![d, ("model", "m"), ("window", "recent")],
+        ),
+        (
+            "plumbline_leader_info",
+            vec![d, ("model", ""), ("window", "recent")],
+        ),
+        (
+            "plumbline_leader_changes_total",
+            vec![d, ("window", "recent")],
+        ),
+        ("plumbline_leader_uncertain", vec![d, ("window", "recent")]),
+        (
+            "plumbline_no_detectable_heterogeneity",
+            vec![d, ("window", "recent")],
+        ),
+        ("plumbline_overlap_degraded", vec![d, ("window", "recent")]),
+        (
+            "plumbline_overlap_extreme_share",
+            vec![d, ("window", "cumulative")],
+        ),
+        (
+            "plumbline_overlap_effective_share",
+            vec![d, ("window", "recent"), ("arm", "treated")],
+        ),
+        (
+            "plumbline_overlap_effective_share",
+            vec![d, ("window", "recent"), ("arm", "control")],
+        ),
+        (
+            "plumbline_ingest_rows_total",
+            vec![d, ("kind", "units"), ("result", "accepted")],
+        ),
+        (
+            "plumbline_ingest_rows_total",
+            vec![d, ("kind", "units"), ("result", "duplicate")],
+        ),
+        (
+            "plumbline_ingest_rows_total",
+            vec![d, ("kind", "outcomes"), ("result", "accepted")],
+        ),
+        (
+            "plumbline_recompute_duration_seconds_bucket",
+            vec![d, ("kind", "refit"), ("le", "")],
+        ),
+        (
+            "plumbline_recompute_duration_seconds_count",
+            vec![d, ("kind", "refit")],
+        ),
+        (
+            "plumbline_nuisance_oof_loss",
+            vec![d, ("component", "propensity")],
+        ),
+        (
+            "plumbline_nuisance_oof_loss",
+            vec![d, ("component", "outcome_treated")],
+        ),
+        ("plumbline_units", vec![d]),
+        ("plumbline_outcomes", vec![d]),
+        ("plumbline_last_outcome_timestamp_seconds", vec![d]),
+        (
+            "plumbline_events_total",
+            vec![d, ("kind", "nuisance_refit")],
+        ),
+    ] {
+        assert!(has(metric, &labels), "missing {metric} {labels:?}");
+    }
+    let leaders: Vec<_> = samples
+        .iter()
+        .filter(|(n, l, v)| {
+            n == "plumbline_leader_info"
+                && *v == 1.0
+                && l.contains(&("window".into(), "recent".into()))
+        })
+        .collect();
+    assert_eq!(leaders.len(), 1, "exactly one leader per window");
+    let accepted = samples
+        .iter()
+        .find(|(n, l, _)| {
+            n == "plumbline_ingest_rows_total"
+                && l.contains(&("kind".into(), "units".into()))
+                && l.contains(&("result".into(), "accepted".into()))
+        })
+        .map(|(_, _, v)| *v);
+    assert_eq!(accepted, Some(600.0));
+    let (status, _) = http_get(srv.metrics_addr, "/readyz");
+    assert_eq!(status, 200);
+    srv.stop().await.expect("stop");
+}
+
+/// The binary as an operator runs it: `plumbline serve --data-dir D --listen
+/// A --metrics-listen B` answers the standard health check SERVING, serves
+/// plumbline_ metrics, and exits 0 on SIGTERM.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn serve_binary_answers_health_and_metrics_and_drains_on_sigterm() {
+    let dir = TempDir::new("binary");
+    let free = || {
+        std::net::TcpListener::bind("127.0.0.1:0")
+            .and_then(|l| l.local_addr())
+            .expect("free port")
+    };
+    let (grpc, http) = (free(), free());
+    let mut child = std::process::Command::new(env!("CARGO_BIN_EXE_plumbline"))
+        .arg("serve")
+        .arg("--data-dir")
+        .arg(&dir.0)
+        .arg("--listen")
+        .arg(grpc.to_string())
+        .arg("--metrics-listen")
+        .arg(http.to_string())
+        .env("PLUMBLINE_LOG", "warn")
+        .spawn()
+        .expect("spawn");
+    let mut channel = None;
+    for _ in 0..100 {
+        if let Ok(ch) = tonic::transport::Channel::from_shared(format!("http://{grpc}"))
+            .expect("uri")
+            .connect()
+            .await
+        {
+            channel = Some(ch);
+            break;
+        }
+        tokio::time::sleep(std::time::Duration::from_millis(100)).await;
+    }
+    let channel = channel.expect("server came up");
+    let mut health = tonic_health::pb::health_client::HealthClient::new(channel.clone());
+    let status = health
+        .check(tonic_health::pb::HealthCheckRequest {
+            service: String::new(),
+        })
+        .await
+        .expect("health")
+        .into_inner()
+        .status;
+    assert_eq!(
+        status,
+        tonic_health::pb::health_check_response::ServingStatus::Serving as i32
+    );
+    let mut datasets = pb::dataset_registry_client::DatasetRegistryClient::new(channel.clone());
+    datasets
+        .create_dataset(pb::CreateDatasetRequest {
+            spec: Some(continuous_spec("bin", 1)),
+        })
+        .await
+        .expect("create");
+    let mut intake = pb::intake_client::IntakeClient::new(channel);
+    intake
+        .send_units(tokio_stream::iter(vec![pb::UnitBatch {
+            dataset: "bin".into(),
+            rows: vec![unit_row("a", &[1.0], 1.0, None, "")],
+        }]))
+        .await
+        .expect("units");
+    let (code, text) = http_get(http, "/metrics");
+    assert_eq!(code, 200);
+    assert!(text.contains("plumbline_ingest_rows_total{"), "{text}");
+    assert_eq!(http_get(http, "/healthz").0, 200);
+    let pid = child.id().to_string();
+    let killed = std::process::Command::new("kill")
+        .args(["-TERM", &pid])
+        .status()
+        .expect("kill");
+    assert!(killed.success());
+    let exit = child.wait().expect("wait");
+    assert_eq!(exit.code(), Some(0), "clean exit after SIGTERM");
+}
