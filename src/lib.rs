@@ -8,13 +8,23 @@
 //!   nuisance models, the AIPW pseudo-outcome, one file per error estimator
 //!   (corrected PEHE, plug-in PEHE, DR loss, R-loss, IPW loss), mergeable
 //!   aggregates, ranking with a best set, policy gain, targeting curves,
-//!   calibration and overlap. Knows nothing of files, networks or threads
-//!   beyond a parallel fold loop.
+//!   calibration and overlap. Knows nothing of files, networks or async.
+//! - [`store`]: the durable log in SQLite (datasets, models, units, outcomes,
+//!   predictions, nuisance fit records, score snapshots, events).
+//! - [`monitor`]: per-dataset state: the in-memory columnar cache, intake
+//!   validation and the integrity rules, the recompute job and its scheduler,
+//!   windows, snapshots and the alert rules.
+//! - [`api`]: the gRPC surface, thin adapters from the wire contract in
+//!   `proto/` to the monitor, with one mapping of errors to status codes.
+//! - [`metrics`]: Prometheus series and the HTTP listener for `/metrics`,
+//!   `/healthz` and `/readyz`.
+//! - [`server`], [`config`], [`shutdown`]: starting, configuring and
+//!   draining the service.
 //! - [`input`]: reading units and predictions from CSV files, with errors that
 //!   name the file, row and column.
 //! - [`synth`]: published simulation designs with known effects, used by the
 //!   checks, the benchmarks and `plumbline simulate`.
-//! - [`cli`]: the `plumbline` command line (`score`, `simulate`).
+//! - [`cli`]: the `plumbline` command line (`serve`, `score`, `simulate`).
 
 pub mod api;
 pub mod cli;
