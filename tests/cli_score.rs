@@ -322,3 +322,24 @@ fn five_thousand_units_ten_models_json_carries_every_key() {
     assert!(table.contains("Error against constant-effect"));
     assert!(table.contains("lower estimate"));
 }
+
+/// The quick-start demo finishes by itself and its summary shows both a
+/// leader change and an overlap alert.
+#[test]
+fn demo_summary_shows_a_leader_change_and_an_overlap_alert() {
+    let out = bin().arg("demo").output().expect("demo");
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    let text = String::from_utf8_lossy(&out.stdout);
+    let summary = text.split("\nsummary").nth(1).expect("a summary");
+    assert!(
+        summary.contains("leader changed from credit-gbm-v3 to commuter-rules"),
+        "{summary}"
+    );
+    assert!(summary.contains("overlap degraded"), "{summary}");
+    assert!(summary.contains("overlap recovered"), "{summary}");
+    assert!(summary.contains("/metrics"), "{summary}");
+}

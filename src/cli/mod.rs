@@ -1,6 +1,7 @@
 //! The `plumbline` command line. One file per command; each parses its
 //! arguments into a request and applies it.
 
+mod demo;
 mod progress;
 mod render;
 mod score;
@@ -11,6 +12,7 @@ use std::process::ExitCode;
 
 use clap::{Parser, Subcommand};
 
+pub use demo::DemoArgs;
 pub use score::ScoreArgs;
 pub use serve::ServeArgs;
 pub use simulate::SimulateArgs;
@@ -31,6 +33,8 @@ pub struct Cli {
 
 #[derive(Debug, Subcommand)]
 pub enum Command {
+    /// Run the service in-process on an invented scenario and drive it through the API.
+    Demo(DemoArgs),
     /// Score models offline from a units CSV and a predictions CSV.
     Score(ScoreArgs),
     /// Write a units / predictions CSV pair from a design with known effects.
@@ -47,6 +51,7 @@ pub const EXIT_DEGENERATE: u8 = 3;
 pub fn run() -> ExitCode {
     let cli = Cli::parse();
     match cli.command {
+        Command::Demo(args) => demo::run(&args),
         Command::Score(args) => score::run(&args),
         Command::Simulate(args) => simulate::run(&args),
         Command::Serve(args) => serve::run(&args),
