@@ -830,3 +830,102 @@ async fn serve_binary_answers_health_and_metrics_and_drains_on_sigterm() {
     let exit = child.wait().expect("wait");
     assert_eq!(exit.code(), Some(0), "clean exit after SIGTERM");
 }
+
+/// The client commands for people work against a live server, their JSON
+/// parses, and a CSV backfill can be re-run without changing anything.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn client_commands_work_and_backfills_resume() {
+    use rand::{Rng, SeedableRng};
+    let dir = TempDir::new("client");
+    let srv = server(&dir).await;
+    let mut c = clients(srv.grpc_addr).await;
+    let name = "clientside";
+    c.datasets
+        .create_dataset(pb::CreateDatasetRequest {
+            spec: Some(continuous_spec(name, 2)),
+        })
+        .await
+        .expect("create");
+    register(&mut c, name, "m").await;
+    let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(4);
+    let (mut units, mut preds, mut outcomes) = (
+        String::from("unit_id,treatment,cohort,x1,x2,outcome\n"),
+        String::from("unit_id,m\n"),
+        String::from("unit_id,outcome\n"),
+    );
+    for i in 0..800 {
+        let x = normal_features(&mut rng, 2);
+        let w = u8::from(rng.gen::<f64>() < 0.5);
+        let y = x[1] + f64::from(w) * x[0] + plumbline::synth::standard_normal(&mut rng);
+        units.push_str(&format!("u{i},{w},c{},{},{},{y}\n", i / 400, x[0], x[1]));
+        preds.push_str(&format!("u{i},{}\n", x[0]));
+        outcomes.push_str(&format!("u{i},{y}\n"));
+    }
+    let files = TempDir::new("client-csv");
+    for (f, text) in [
+        ("units.csv", &units),
+        ("preds.csv", &preds),
+        ("outcomes.csv", &outcomes),
+    ] {
+        std::fs::write(files.0.join(f), text).expect("write");
+    }
+    let server = format!("http://{}", srv.grpc_addr);
+    let run = |args: &[&str]| {
+        let out = std::process::Command::new(env!("CARGO_BIN_EXE_plumbline"))
+            .args(args)
+            .args(["--server", &server])
+            .output()
+            .expect("run");
+        assert!(
+            out.status.success(),
+            "{args:?}: {}",
+            String::from_utf8_lossy(&out.stderr)
+        );
+        (
+            String::from_utf8_lossy(&out.stdout).into_owned(),
+            String::from_utf8_lossy(&out.stderr).into_owned(),
+        )
+    };
+    let path = |f: &str| files.0.join(f).display().to_string();
+    let (_, first) = run(&["ingest", "units", "--dataset", name, &path("units.csv")]);
+    assert!(first.contains("800 rows new"), "{first}");
+    let (_, again) = run(&["ingest", "units", "--dataset", name, &path("units.csv")]);
+    assert!(again.contains("0 rows new, 800 already stored"), "{again}");
+    run(&[
+        "ingest",
+        "predictions",
+        "--dataset",
+        name,
+        &path("preds.csv"),
+    ]);
+    run(&[
+        "ingest",
+        "outcomes",
+        "--dataset",
+        name,
+        &path("outcomes.csv"),
+    ]);
+    recompute(&mut c, name, false).await;
+    for args in [
+        vec!["datasets"],
+        vec!["models", "--dataset", name],
+        vec!["scoreboard", "--dataset", name],
+        vec!["scoreboard", "--dataset", name, "--window", "cohort:c1"],
+        vec!["history", "--dataset", name, "--model", "m"],
+        vec!["events", "--dataset", name],
+        vec!["overlap", "--dataset", name, "--window", "recent"],
+    ] {
+        let (table, _) = run(&args);
+        assert!(!table.trim().is_empty(), "{args:?}: empty table");
+        let mut json_args = args.clone();
+        json_args.extend(["--format", "json"]);
+        let (text, _) = run(&json_args);
+        let v: serde_json::Value =
+            serde_json::from_str(&text).unwrap_or_else(|e| panic!("{args:?}: {e}: {text}"));
+        assert!(!v.is_null(), "{args:?}");
+    }
+    let (board_json, _) = run(&["scoreboard", "--dataset", name, "--format", "json"]);
+    let v: serde_json::Value = serde_json::from_str(&board_json).expect("json");
+    assert_eq!(v["scoreboard"]["n_units"], 800);
+    srv.stop().await.expect("stop");
+}

@@ -1,13 +1,14 @@
-"""Build hook: generate the gRPC stubs while the package is built.
+"""Build hook: generate the gRPC stubs before the package is built.
 
 `pip install clients/python` (from a checkout of the repository) runs this;
 it does what generate.sh does, so the generated files never need committing.
+The stubs are generated when this file is loaded, because setuptools needs
+the plumbline_client._pb package to exist already when it collects metadata.
 """
 
 import os
 
 from setuptools import setup
-from setuptools.command.build_py import build_py
 
 HERE = os.path.dirname(os.path.abspath(__file__))
 PROTO_DIR = os.path.normpath(os.path.join(HERE, "..", "..", "proto", "plumbline", "v1"))
@@ -45,10 +46,5 @@ def generate() -> None:
         f.write('"""Generated from proto/plumbline/v1/plumbline.proto; do not edit."""\n')
 
 
-class BuildWithStubs(build_py):
-    def run(self):
-        generate()
-        super().run()
-
-
-setup(cmdclass={"build_py": BuildWithStubs})
+generate()
+setup()

@@ -1,6 +1,8 @@
 //! The `plumbline` command line. One file per command; each parses its
 //! arguments into a request and applies it.
 
+mod backfill;
+mod client;
 mod demo;
 mod progress;
 mod render;
@@ -33,6 +35,60 @@ pub struct Cli {
 
 #[derive(Debug, Subcommand)]
 pub enum Command {
+    /// List the datasets of a running server.
+    Datasets {
+        #[command(flatten)]
+        connection: client::Connection,
+    },
+    /// List a dataset's models.
+    Models {
+        #[command(flatten)]
+        connection: client::Connection,
+        #[command(flatten)]
+        dataset: client::DatasetArg,
+        /// Include retired models.
+        #[arg(long)]
+        retired: bool,
+    },
+    /// The latest scoreboard of a window.
+    Scoreboard {
+        #[command(flatten)]
+        connection: client::Connection,
+        #[command(flatten)]
+        dataset: client::DatasetArg,
+        #[command(flatten)]
+        window: client::WindowArg,
+    },
+    /// One model's score over time.
+    History {
+        #[command(flatten)]
+        connection: client::Connection,
+        #[command(flatten)]
+        args: client::HistoryArgs,
+    },
+    /// Events; --follow keeps streaming.
+    Events {
+        #[command(flatten)]
+        connection: client::Connection,
+        #[command(flatten)]
+        args: client::EventsArgs,
+    },
+    /// The overlap report of a window.
+    Overlap {
+        #[command(flatten)]
+        connection: client::Connection,
+        #[command(flatten)]
+        dataset: client::DatasetArg,
+        #[command(flatten)]
+        window: client::WindowArg,
+    },
+    /// Backfill units, outcomes or predictions from a CSV file.
+    Ingest {
+        #[command(flatten)]
+        connection: client::Connection,
+        #[command(flatten)]
+        args: backfill::IngestArgs,
+    },
     /// Run the service in-process on an invented scenario and drive it through the API.
     Demo(DemoArgs),
     /// Score models offline from a units CSV and a predictions CSV.
@@ -52,6 +108,25 @@ pub fn run() -> ExitCode {
     let cli = Cli::parse();
     match cli.command {
         Command::Demo(args) => demo::run(&args),
+        Command::Datasets { connection } => client::datasets(&connection),
+        Command::Models {
+            connection,
+            dataset,
+            retired,
+        } => client::models(&connection, &dataset, retired),
+        Command::Scoreboard {
+            connection,
+            dataset,
+            window,
+        } => client::scoreboard(&connection, &dataset, &window),
+        Command::History { connection, args } => client::history(&connection, &args),
+        Command::Events { connection, args } => client::events(&connection, &args),
+        Command::Overlap {
+            connection,
+            dataset,
+            window,
+        } => client::overlap(&connection, &dataset, &window),
+        Command::Ingest { connection, args } => backfill::run(&connection, &args),
         Command::Score(args) => score::run(&args),
         Command::Simulate(args) => simulate::run(&args),
         Command::Serve(args) => serve::run(&args),

@@ -230,7 +230,8 @@ def _require(df: pd.DataFrame, columns: Iterable[str], what: str) -> None:
 def _millis(series: pd.Series) -> List[int]:
     """Unix milliseconds from a datetime column or a numeric one (already ms).
 
-    Missing values become 0, which the service reads as "unknown".
+    Timezone-naive datetimes are taken as UTC. Missing values become 0, which
+    the service reads as "unknown".
     """
     if pd.api.types.is_datetime64_any_dtype(series):
         s = series
@@ -419,9 +420,23 @@ class Client:
     # -- intake
 
     def _stream(self, rpc: str, fn: Callable[..., Any], batches: Iterator[Any], timeout: Optional[float]) -> Receipt:
+        # gRPC turns an exception raised while iterating the requests into a
+        # bare UNKNOWN status; keep the original and raise that instead. (The
+        # batches sent before it stay committed: each is its own transaction.)
+        raised: List[BaseException] = []
+
+        def guarded() -> Iterator[Any]:
+            try:
+                yield from batches
+            except Exception as e:
+                raised.append(e)
+                raise
+
         try:
-            reply = fn(batches, timeout=timeout)
+            reply = fn(guarded(), timeout=timeout)
         except grpc.RpcError as e:
+            if raised:
+                raise raised[0] from None
             raise PlumblineError.from_rpc_error(rpc, e) from None
         return Receipt.from_pb(reply)
 
@@ -450,8 +465,9 @@ class Client:
             propensity: optional column of logged assignment probabilities in
                 (0, 1); a missing value (NaN) means "unknown" for that unit.
             cohort: optional column of cohort labels (for per-cohort scoreboards).
-            assigned_at: optional column of assignment times: datetimes, or
-                integers already in Unix milliseconds.
+            assigned_at: optional column of assignment times: datetimes
+                (naive ones are taken as UTC), or integers already in Unix
+                milliseconds.
             batch_size: rows per batch (one server transaction each).
         """
         _check_batch(batch_size)
@@ -461,9 +477,9 @@ class Client:
         cols += [c for c in (propensity, cohort, assigned_at) if c is not None]
         _require(df, cols, "send_units")
         keys = df[key].astype(str).tolist()
-        treat = df[treatment].tolist()
+        treat = [_treatment(t, i) for i, t in enumerate(df[treatment].tolist())]
         feats = df[list(features)].to_numpy(dtype=float).tolist()
-        props = df[propensity].tolist() if propensity else None
+        props = df[propensity].astype(float).tolist() if propensity else None
         cohorts = df[cohort].astype(str).tolist() if cohort else None
         times = _millis(df[assigned_at]) if assigned_at else None
 
@@ -471,8 +487,8 @@ class Client:
             for idx in _chunks(len(keys), batch_size):
                 rows = []
                 for i in idx:
-                    row = pb.UnitRow(key=keys[i], features=feats[i], treatment=_treatment(treat[i], i))
-                    if props is not None and props[i] is not None and not pd.isna(props[i]):
+                    row = pb.UnitRow(key=keys[i], features=feats[i], treatment=treat[i])
+                    if props is not None and not math.isnan(props[i]):
                         row.propensity = float(props[i])
                     if cohorts is not None:
                         row.cohort = cohorts[i]

@@ -1,0 +1,535 @@
+//! Client commands for people talking to a running server: `datasets`,
+//! `models`, `scoreboard`, `history`, `events`, `overlap`. Each prints a
+//! readable table, or JSON with `--format json`.
+
+use std::process::ExitCode;
+
+use clap::{Args, ValueEnum};
+use serde_json::json;
+use tonic::metadata::MetadataValue;
+use tonic::transport::Channel;
+use tonic::{Request, Status};
+
+use crate::api::pb;
+
+#[derive(Debug, Clone, Copy, ValueEnum, PartialEq, Eq)]
+pub enum Output {
+    Table,
+    Json,
+}
+
+/// Where the server is and how to talk to it.
+#[derive(Debug, Args, Clone)]
+pub struct Connection {
+    /// Server address.
+    #[arg(long, default_value = "http://127.0.0.1:7070", global = true)]
+    pub server: String,
+    /// Bearer token, when the server requires one.
+    #[arg(long, env = "PLUMBLINE_TOKEN", global = true, hide_env_values = true)]
+    pub token: Option<String>,
+    #[arg(long, value_enum, default_value_t = Output::Table, global = true)]
+    pub format: Output,
+}
+
+pub async fn connect(c: &Connection) -> Result<Channel, String> {
+    let uri = if c.server.contains("://") {
+        c.server.clone()
+    } else {
+        format!("http://{}", c.server)
+    };
+    Channel::from_shared(uri.clone())
+        .map_err(|e| format!("{uri}: {e}"))?
+        .connect()
+        .await
+        .map_err(|e| format!("cannot reach {uri}: {e}"))
+}
+
+/// Wraps a message with the bearer token, if any.
+pub fn request<T>(c: &Connection, message: T) -> Result<Request<T>, String> {
+    let mut r = Request::new(message);
+    if let Some(t) = &c.token {
+        let v: MetadataValue<_> = format!("Bearer {t}")
+            .parse()
+            .map_err(|_| "the token contains characters not allowed in a header".to_string())?;
+        r.metadata_mut().insert("authorization", v);
+    }
+    Ok(r)
+}
+
+pub fn status(s: Status) -> String {
+    format!("{} ({:?})", s.message(), s.code())
+}
+
+#[derive(Debug, Args)]
+pub struct DatasetArg {
+    /// Dataset name.
+    #[arg(long)]
+    pub dataset: String,
+}
+
+#[derive(Debug, Args)]
+pub struct WindowArg {
+    /// cumulative, recent, or cohort:NAME.
+    #[arg(long, default_value = "cumulative")]
+    pub window: String,
+}
+
+fn window(w: &str) -> Result<pb::Window, String> {
+    use pb::window::Kind;
+    let (kind, cohort) = match w {
+        "cumulative" => (Kind::Cumulative, String::new()),
+        "recent" => (Kind::Recent, String::new()),
+        other => match other.strip_prefix("cohort:") {
+            Some(c) if !c.is_empty() => (Kind::Cohort, c.to_string()),
+            _ => {
+                return Err(format!(
+                    "--window {other:?}: use cumulative, recent or cohort:NAME"
+                ))
+            }
+        },
+    };
+    Ok(pb::Window {
+        kind: kind as i32,
+        cohort,
+    })
+}
+
+fn run_async(f: impl std::future::Future<Output = Result<(), String>>) -> ExitCode {
+    let runtime = match tokio::runtime::Builder::new_multi_thread()
+        .worker_threads(2)
+        .enable_all()
+        .build()
+    {
+        Ok(r) => r,
+        Err(e) => {
+            eprintln!("plumbline: {e}");
+            return ExitCode::FAILURE;
+        }
+    };
+    match runtime.block_on(f) {
+        Ok(()) => ExitCode::SUCCESS,
+        Err(e) => {
+            eprintln!("plumbline: {e}");
+            ExitCode::FAILURE
+        }
+    }
+}
+
+fn print_json(v: serde_json::Value) {
+    println!("{}", serde_json::to_string_pretty(&v).unwrap_or_default());
+}
+
+fn ms_to_text(ms: i64) -> String {
+    if ms <= 0 {
+        return "-".into();
+    }
+    let secs = ms / 1000;
+    let (days, rem) = (secs / 86_400, secs % 86_400);
+    // Civil date from days since 1970-01-01 (Howard Hinnant's algorithm).
+    let z = days + 719_468;
+    let era = z.div_euclid(146_097);
+    let doe = z - era * 146_097;
+    let yoe = (doe - doe / 1460 + doe / 36_524 - doe / 146_096) / 365;
+    let doy = doe - (365 * yoe + yoe / 4 - yoe / 100);
+    let mp = (5 * doy + 2) / 153;
+    let d = doy - (153 * mp + 2) / 5 + 1;
+    let m = if mp < 10 { mp + 3 } else { mp - 9 };
+    let y = yoe + era * 400 + i64::from(m <= 2);
+    format!(
+        "{y:04}-{m:02}-{d:02} {:02}:{:02}:{:02}Z",
+        rem / 3600,
+        rem % 3600 / 60,
+        rem % 60
+    )
+}
+
+pub fn datasets(c: &Connection) -> ExitCode {
+    run_async(async {
+        let mut client = pb::dataset_registry_client::DatasetRegistryClient::new(connect(c).await?);
+        let list = client
+            .list_datasets(request(c, pb::ListDatasetsRequest {})?)
+            .await
+            .map_err(status)?
+            .into_inner()
+            .datasets;
+        if c.format == Output::Json {
+            print_json(json!(list
+                .iter()
+                .map(|d| {
+                    let s = d.spec.clone().unwrap_or_default();
+                    json!({
+                        "name": s.name, "features": s.feature_names,
+                        "outcome_kind": pb::OutcomeKind::try_from(s.outcome_kind).map(|k| k.as_str_name()).unwrap_or(""),
+                        "units": d.units, "outcomes": d.outcomes, "predictions": d.predictions,
+                        "active_models": d.active_models, "created_at_ms": d.created_at_ms,
+                    })
+                })
+                .collect::<Vec<_>>()));
+            return Ok(());
+        }
+        println!(
+            "{:<24} {:>9} {:>9} {:>11} {:>7} {:>9}  created",
+            "dataset", "units", "outcomes", "predictions", "models", "features"
+        );
+        for d in list {
+            let s = d.spec.unwrap_or_default();
+            println!(
+                "{:<24} {:>9} {:>9} {:>11} {:>7} {:>9}  {}",
+                s.name,
+                d.units,
+                d.outcomes,
+                d.predictions,
+                d.active_models,
+                s.feature_names.len(),
+                ms_to_text(d.created_at_ms)
+            );
+        }
+        Ok(())
+    })
+}
+
+pub fn models(c: &Connection, d: &DatasetArg, include_retired: bool) -> ExitCode {
+    run_async(async {
+        let mut client = pb::model_registry_client::ModelRegistryClient::new(connect(c).await?);
+        let list = client
+            .list_models(request(
+                c,
+                pb::ListModelsRequest {
+                    dataset: d.dataset.clone(),
+                    include_retired,
+                },
+            )?)
+            .await
+            .map_err(status)?
+            .into_inner()
+            .models;
+        if c.format == Output::Json {
+            print_json(json!(list
+                .iter()
+                .map(|m| json!({
+                    "name": m.name, "version": m.version, "description": m.description,
+                    "predictions": m.predictions, "registered_at_ms": m.registered_at_ms,
+                    "retired_at_ms": m.retired_at_ms,
+                }))
+                .collect::<Vec<_>>()));
+            return Ok(());
+        }
+        println!(
+            "{:<24} {:<10} {:>11}  {:<20}  description",
+            "model", "version", "predictions", "registered"
+        );
+        for m in list {
+            println!(
+                "{:<24} {:<10} {:>11}  {:<20}  {}{}",
+                m.name,
+                m.version,
+                m.predictions,
+                ms_to_text(m.registered_at_ms),
+                m.description,
+                if m.retired_at_ms > 0 {
+                    " (retired)"
+                } else {
+                    ""
+                }
+            );
+        }
+        Ok(())
+    })
+}
+
+pub fn scoreboard(c: &Connection, d: &DatasetArg, w: &WindowArg) -> ExitCode {
+    run_async(async {
+        let mut client = pb::scoring_client::ScoringClient::new(connect(c).await?)
+            .max_decoding_message_size(256 << 20);
+        let b = client
+            .get_scoreboard(request(
+                c,
+                pb::GetScoreboardRequest {
+                    dataset: d.dataset.clone(),
+                    window: Some(window(&w.window)?),
+                },
+            )?)
+            .await
+            .map_err(status)?
+            .into_inner();
+        if c.format == Output::Json {
+            let full: serde_json::Value =
+                serde_json::from_str(&b.json).unwrap_or(serde_json::Value::Null);
+            print_json(json!({
+                "dataset": b.dataset, "window": w.window, "snapshot_id": b.snapshot_id,
+                "computed_at_ms": b.computed_at_ms, "degenerate": b.degenerate,
+                "incomplete": b.incomplete.iter().map(|i| json!({"name": i.name, "coverage": i.coverage})).collect::<Vec<_>>(),
+                "scoreboard": full,
+            }));
+            return Ok(());
+        }
+        println!(
+            "{} / {} window, snapshot {} at {}",
+            b.dataset,
+            w.window,
+            b.snapshot_id,
+            ms_to_text(b.computed_at_ms)
+        );
+        if !b.degenerate.is_empty() {
+            println!("no scores: {}", b.degenerate);
+            return Ok(());
+        }
+        let ate = b.ate.unwrap_or_default();
+        println!(
+            "{} units; ATE (AIPW) {:.4} (se {:.4})",
+            b.units, ate.estimate, ate.se
+        );
+        println!(
+            "{:>4}  {:<24} {:>11} {:>24} {:>7}  {:>22}  best",
+            "rank", "model", "vs constant", "95% CI", "p_best", "corrected PEHE (lower)"
+        );
+        for m in &b.models {
+            let v = m.vs_constant.unwrap_or_default();
+            let cp = m.corrected_pehe.unwrap_or_default();
+            println!(
+                "{:>4}  {:<24} {:>11.4} {:>24} {:>7.3}  {:>22}  {}",
+                m.rank,
+                m.name,
+                v.estimate,
+                format!("[{:.4}, {:.4}]", v.ci_low, v.ci_high),
+                m.p_best,
+                format!("{:.4} ({:.4})", cp.estimate, cp.se),
+                if m.in_best_set { "yes" } else { "" }
+            );
+        }
+        for i in &b.incomplete {
+            println!(
+                "      {:<24} not ranked: predicted {:.1}% of the window",
+                i.name,
+                100.0 * i.coverage
+            );
+        }
+        println!("leader {}; best set {}", b.leader, b.best_set.join(", "));
+        if b.no_detectable_heterogeneity {
+            println!("no detectable heterogeneity: no model beats constant-effect significantly");
+        }
+        println!("{}", b.caveat);
+        Ok(())
+    })
+}
+
+#[derive(Debug, Args)]
+pub struct HistoryArgs {
+    #[command(flatten)]
+    pub dataset: DatasetArg,
+    /// Model name (or a baseline: zero-effect, constant-effect).
+    #[arg(long)]
+    pub model: String,
+    /// corrected_pehe, vs_constant, plugin_pehe, dr_loss, r_loss, ipw_loss, policy_gain, autoc, qini.
+    #[arg(long, default_value = "vs_constant")]
+    pub estimator: String,
+    #[command(flatten)]
+    pub window: WindowArg,
+}
+
+pub fn history(c: &Connection, a: &HistoryArgs) -> ExitCode {
+    run_async(async {
+        let mut client = pb::scoring_client::ScoringClient::new(connect(c).await?);
+        let points = client
+            .get_history(request(
+                c,
+                pb::GetHistoryRequest {
+                    dataset: a.dataset.dataset.clone(),
+                    model: a.model.clone(),
+                    estimator: a.estimator.clone(),
+                    window: Some(window(&a.window.window)?),
+                    from_ms: 0,
+                    to_ms: 0,
+                },
+            )?)
+            .await
+            .map_err(status)?
+            .into_inner()
+            .points;
+        if c.format == Output::Json {
+            print_json(json!(points
+                .iter()
+                .map(|p| {
+                    let v = p.value.unwrap_or_default();
+                    json!({"snapshot_id": p.snapshot_id, "computed_at_ms": p.computed_at_ms,
+                           "estimate": v.estimate, "se": v.se, "rank": p.rank, "units": p.units})
+                })
+                .collect::<Vec<_>>()));
+            return Ok(());
+        }
+        println!(
+            "{} / {} / {} ({} window)",
+            a.dataset.dataset, a.model, a.estimator, a.window.window
+        );
+        println!(
+            "{:>8}  {:<20} {:>12} {:>10} {:>5} {:>9}",
+            "snapshot", "time", "estimate", "se", "rank", "units"
+        );
+        for p in points {
+            let v = p.value.unwrap_or_default();
+            println!(
+                "{:>8}  {:<20} {:>12.4} {:>10.4} {:>5} {:>9}",
+                p.snapshot_id,
+                ms_to_text(p.computed_at_ms),
+                v.estimate,
+                v.se,
+                p.rank,
+                p.units
+            );
+        }
+        Ok(())
+    })
+}
+
+#[derive(Debug, Args)]
+pub struct EventsArgs {
+    /// Dataset name; all datasets when omitted.
+    #[arg(long)]
+    pub dataset: Option<String>,
+    /// Only events after this id.
+    #[arg(long, default_value_t = 0)]
+    pub after: u64,
+    /// Keep streaming new events as they happen.
+    #[arg(long)]
+    pub follow: bool,
+}
+
+fn print_event(c: &Connection, e: &pb::Event) {
+    if c.format == Output::Json {
+        let details: serde_json::Value =
+            serde_json::from_str(&e.details_json).unwrap_or(serde_json::Value::Null);
+        println!(
+            "{}",
+            json!({"id": e.id, "dataset": e.dataset, "kind": e.kind, "at_ms": e.at_ms,
+                   "snapshot_id": e.snapshot_id, "summary": e.summary, "details": details})
+        );
+    } else {
+        println!(
+            "{:>6}  {:<20}  {:<28}  {}",
+            e.id,
+            ms_to_text(e.at_ms),
+            e.kind,
+            e.summary
+        );
+    }
+}
+
+pub fn events(c: &Connection, a: &EventsArgs) -> ExitCode {
+    run_async(async {
+        let mut client = pb::event_feed_client::EventFeedClient::new(connect(c).await?);
+        let dataset = a.dataset.clone().unwrap_or_default();
+        if a.follow {
+            let mut stream = client
+                .watch_events(request(
+                    c,
+                    pb::WatchEventsRequest {
+                        dataset,
+                        after_id: a.after,
+                    },
+                )?)
+                .await
+                .map_err(status)?
+                .into_inner();
+            while let Some(e) = stream.message().await.map_err(status)? {
+                print_event(c, &e);
+            }
+            return Ok(());
+        }
+        let list = client
+            .list_events(request(
+                c,
+                pb::ListEventsRequest {
+                    dataset,
+                    after_id: a.after,
+                    limit: 1000,
+                },
+            )?)
+            .await
+            .map_err(status)?
+            .into_inner()
+            .events;
+        if c.format == Output::Json {
+            let all: Vec<serde_json::Value> = list
+                .iter()
+                .map(|e| {
+                    let details: serde_json::Value =
+                        serde_json::from_str(&e.details_json).unwrap_or(serde_json::Value::Null);
+                    json!({"id": e.id, "dataset": e.dataset, "kind": e.kind, "at_ms": e.at_ms,
+                           "snapshot_id": e.snapshot_id, "summary": e.summary, "details": details})
+                })
+                .collect();
+            print_json(json!(all));
+        } else {
+            for e in &list {
+                print_event(c, e);
+            }
+        }
+        Ok(())
+    })
+}
+
+pub fn overlap(c: &Connection, d: &DatasetArg, w: &WindowArg) -> ExitCode {
+    run_async(async {
+        let mut client = pb::scoring_client::ScoringClient::new(connect(c).await?);
+        let r = client
+            .get_overlap(request(
+                c,
+                pb::GetOverlapRequest {
+                    dataset: d.dataset.clone(),
+                    window: Some(window(&w.window)?),
+                },
+            )?)
+            .await
+            .map_err(status)?
+            .into_inner();
+        let full: serde_json::Value =
+            serde_json::from_str(&r.json).unwrap_or(serde_json::Value::Null);
+        if c.format == Output::Json {
+            print_json(full);
+            return Ok(());
+        }
+        let s = r.summary.unwrap_or_default();
+        println!(
+            "{} / {} window{}",
+            d.dataset,
+            w.window,
+            if s.degraded { ": DEGRADED" } else { "" }
+        );
+        println!(
+            "  propensity outside [{}, {}]: {:.1}% (outside [0.1, 0.9], a rule of thumb: {:.1}%); AUC {:.3}; clipped {}",
+            s.eps,
+            1.0 - s.eps,
+            100.0 * s.extreme_share,
+            100.0 * s.outside_crump_share,
+            s.propensity_auc,
+            s.clipped
+        );
+        println!(
+            "  effective sample share: treated {:.1}%, control {:.1}%; largest weight {:.2}% / {:.2}%",
+            100.0 * s.treated_effective_share,
+            100.0 * s.control_effective_share,
+            100.0 * s.treated_max_weight,
+            100.0 * s.control_max_weight
+        );
+        if let Some(balance) = full.get("balance").and_then(|b| b.as_array()) {
+            println!(
+                "  {:<24} {:>12} {:>12}",
+                "feature", "SMD raw", "SMD weighted"
+            );
+            for f in balance {
+                println!(
+                    "  {:<24} {:>12.3} {:>12.3}{}",
+                    f["feature"].as_str().unwrap_or(""),
+                    f["smd_unweighted"].as_f64().unwrap_or(0.0),
+                    f["smd_weighted"].as_f64().unwrap_or(0.0),
+                    if f["flagged"].as_bool().unwrap_or(false) {
+                        "  > 0.1"
+                    } else {
+                        ""
+                    }
+                );
+            }
+        }
+        Ok(())
+    })
+}
