@@ -394,15 +394,16 @@ pub struct EventsArgs {
     pub follow: bool,
 }
 
+fn event_json(e: &pb::Event) -> serde_json::Value {
+    let details: serde_json::Value =
+        serde_json::from_str(&e.details_json).unwrap_or(serde_json::Value::Null);
+    json!({"id": e.id, "dataset": e.dataset, "kind": e.kind, "at_ms": e.at_ms,
+           "snapshot_id": e.snapshot_id, "summary": e.summary, "details": details})
+}
+
 fn print_event(c: &Connection, e: &pb::Event) {
     if c.format == Output::Json {
-        let details: serde_json::Value =
-            serde_json::from_str(&e.details_json).unwrap_or(serde_json::Value::Null);
-        println!(
-            "{}",
-            json!({"id": e.id, "dataset": e.dataset, "kind": e.kind, "at_ms": e.at_ms,
-                   "snapshot_id": e.snapshot_id, "summary": e.summary, "details": details})
-        );
+        println!("{}", event_json(e));
     } else {
         println!(
             "{:>6}  {:<20}  {:<28}  {}",
@@ -449,15 +450,7 @@ pub fn events(c: &Connection, a: &EventsArgs) -> ExitCode {
             .into_inner()
             .events;
         if c.format == Output::Json {
-            let all: Vec<serde_json::Value> = list
-                .iter()
-                .map(|e| {
-                    let details: serde_json::Value =
-                        serde_json::from_str(&e.details_json).unwrap_or(serde_json::Value::Null);
-                    json!({"id": e.id, "dataset": e.dataset, "kind": e.kind, "at_ms": e.at_ms,
-                           "snapshot_id": e.snapshot_id, "summary": e.summary, "details": details})
-                })
-                .collect();
+            let all: Vec<serde_json::Value> = list.iter().map(event_json).collect();
             print_json(json!(all));
         } else {
             for e in &list {

@@ -90,6 +90,15 @@ pub struct PredictionIn {
 struct Faults(Vec<Rejection>);
 
 impl Faults {
+    /// The batch if no row was at fault, else every recorded fault.
+    fn finish<T>(self, checked: Checked<T>) -> Result<Checked<T>, Vec<Rejection>> {
+        if self.0.is_empty() {
+            Ok(checked)
+        } else {
+            Err(self.0)
+        }
+    }
+
     fn add(
         &mut self,
         row: usize,
@@ -278,11 +287,7 @@ pub fn check_units(
             assigned_at_ms: r.assigned_at_ms,
         });
     }
-    if f.0.is_empty() {
-        Ok(out)
-    } else {
-        Err(f.0)
-    }
+    f.finish(out)
 }
 
 pub fn check_outcomes(
@@ -381,11 +386,7 @@ pub fn check_outcomes(
             observed_at_ms: r.observed_at_ms,
         });
     }
-    if f.0.is_empty() {
-        Ok(out)
-    } else {
-        Err(f.0)
-    }
+    f.finish(out)
 }
 
 pub fn check_predictions(
@@ -501,9 +502,5 @@ pub fn check_predictions(
             predicted_at_ms: r.predicted_at_ms,
         });
     }
-    if f.0.is_empty() {
-        Ok(out)
-    } else {
-        Err(f.0)
-    }
+    f.finish(out)
 }
