@@ -257,6 +257,14 @@ impl Monitor {
                 "dataset restored"
             );
             self.update_counts(&state);
+            if let Some(ms) = self.store.last_outcome_received_ms(stored.id).await? {
+                self.metrics
+                    .last_outcome_seconds
+                    .get_or_create(&DatasetLabels {
+                        dataset: stored.spec.name.clone(),
+                    })
+                    .set(ms as f64 / 1000.0);
+            }
             Ok(state)
         }
         .instrument(span)
@@ -341,6 +349,7 @@ impl Monitor {
             pending_outcomes: 0,
         };
         let info = state.info();
+        self.update_counts(&state);
         let handle = self.install(state);
         self.spawn_scheduler(handle);
         info!(dataset = %spec.name, features = spec.feature_names.len(), "dataset created");
@@ -587,6 +596,8 @@ impl Monitor {
         let l = DatasetLabels {
             dataset: st.stored.spec.name.clone(),
         };
+        // Created at 0 so alert rules see the first failure as an increase.
+        let _ = self.metrics.recompute_failures.get_or_create(&l);
         self.metrics
             .units
             .get_or_create(&l)

@@ -664,6 +664,16 @@ impl Store {
             .collect())
     }
 
+    /// When the dataset's last outcome was received (Unix ms), if any.
+    pub async fn last_outcome_received_ms(&self, dataset_id: i64) -> StoreResult<Option<i64>> {
+        Ok(
+            sqlx::query_scalar("SELECT MAX(received_at_ms) FROM outcomes WHERE dataset_id = ?")
+                .bind(dataset_id)
+                .fetch_one(&self.pool)
+                .await?,
+        )
+    }
+
     /// Row counts of units, outcomes and predictions for one dataset.
     pub async fn counts(&self, dataset_id: i64) -> StoreResult<(i64, i64, i64)> {
         let units: i64 = sqlx::query_scalar("SELECT COUNT(*) FROM units WHERE dataset_id = ?")
