@@ -114,14 +114,16 @@ fn run_design(design: Design, reps: u64, models: usize) -> (f64, f64, f64) {
 /// 95%; the 90% floor allows for the finite-sample nuisance error at
 /// n = 2,000 and for Monte Carlo error (binomial sd about 1.2 points).
 ///
-/// Setup A is the exception, with a floor of 0.80: there the propensity
+/// Setup A is the exception, with a floor of 0.85: there the propensity
 /// sin(pi X1 X2) also drives the outcome, and at n = 2,000 the product of
-/// the propensity and outcome-model errors is as large as a standard error.
-/// Measured with the same pipeline, even the plain AIPW ATE interval covers
-/// only about 83% there (mean z-bias about +1, at n = 2,000 and 10,000
-/// alike), and both the interval coverage and the ATE recover to nominal
-/// when either nuisance is replaced by the truth. The floor records that
-/// limitation instead of hiding it; the closing figures are printed.
+/// the propensity and outcome-model errors is about as large as a standard
+/// error. Measured with this pipeline: coverage 0.900 in setup A (0.871
+/// before the quadratic learner joined the library), and with the
+/// linear and boosted learners alone even the plain AIPW ATE interval
+/// covered only about 83% there (mean z-bias about +1 at n = 2,000 and
+/// 10,000 alike), recovering to nominal when either nuisance was replaced by
+/// the truth. The floor sits about three binomial standard errors below the
+/// measured value; the figures are printed.
 ///
 /// Kendall's tau between the estimated and the true ranking of all nine
 /// models (seven candidates and two baselines): the candidates' true PEHEs
@@ -135,7 +137,7 @@ fn run_design(design: Design, reps: u64, models: usize) -> (f64, f64, f64) {
 fn intervals_cover_and_rankings_agree_on_published_designs() {
     let mut failures = Vec::new();
     for (design, coverage_floor, tau_floor) in [
-        (Design::NieWagerA, 0.80, 0.3),
+        (Design::NieWagerA, 0.85, 0.3),
         (Design::NieWagerB, 0.90, 0.6),
         (Design::NieWagerD, 0.90, 0.6),
         (Design::WagerAtheyHeterogeneous, 0.90, 0.6),
