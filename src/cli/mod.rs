@@ -35,6 +35,14 @@ pub struct Cli {
 
 #[derive(Debug, Subcommand)]
 pub enum Command {
+    /// Run the service: gRPC API, SQLite store, recomputes, alerts and metrics.
+    Serve(ServeArgs),
+    /// Run the service in-process on an invented scenario and drive it through the API.
+    Demo(DemoArgs),
+    /// Score models offline from a units CSV and a predictions CSV.
+    Score(ScoreArgs),
+    /// Write a units / predictions CSV pair from a design with known effects.
+    Simulate(SimulateArgs),
     /// List the datasets of a running server.
     Datasets {
         #[command(flatten)]
@@ -89,14 +97,6 @@ pub enum Command {
         #[command(flatten)]
         args: backfill::IngestArgs,
     },
-    /// Run the service in-process on an invented scenario and drive it through the API.
-    Demo(DemoArgs),
-    /// Score models offline from a units CSV and a predictions CSV.
-    Score(ScoreArgs),
-    /// Write a units / predictions CSV pair from a design with known effects.
-    Simulate(SimulateArgs),
-    /// Run the service: gRPC API, SQLite store, recomputes, alerts and metrics.
-    Serve(ServeArgs),
 }
 
 /// Exit status for bad input (files, columns, values, arguments).
