@@ -23,6 +23,20 @@ fn key(w: &Option<pb::Window>) -> Result<String, Status> {
     Ok(window_key(&w))
 }
 
+impl ScoringService {
+    /// The latest scoreboard of a request's dataset and window.
+    async fn latest(
+        &self,
+        dataset: &str,
+        w: &Option<pb::Window>,
+    ) -> Result<pb::Scoreboard, Status> {
+        self.monitor
+            .scoreboard(dataset, &key(w)?)
+            .await
+            .map_err(from_monitor)
+    }
+}
+
 const ESTIMATORS: [&str; 9] = [
     "corrected_pehe",
     "vs_constant",
@@ -62,11 +76,7 @@ impl pb::scoring_server::Scoring for ScoringService {
         request: Request<pb::GetScoreboardRequest>,
     ) -> Result<Response<pb::Scoreboard>, Status> {
         let r = request.into_inner();
-        let board = self
-            .monitor
-            .scoreboard(&r.dataset, &key(&r.window)?)
-            .await
-            .map_err(from_monitor)?;
+        let board = self.latest(&r.dataset, &r.window).await?;
         Ok(Response::new(board))
     }
 
@@ -114,11 +124,7 @@ impl pb::scoring_server::Scoring for ScoringService {
         request: Request<pb::GetOverlapRequest>,
     ) -> Result<Response<pb::OverlapReport>, Status> {
         let r = request.into_inner();
-        let board = self
-            .monitor
-            .scoreboard(&r.dataset, &key(&r.window)?)
-            .await
-            .map_err(from_monitor)?;
+        let board = self.latest(&r.dataset, &r.window).await?;
         let json = serde_json::from_str::<serde_json::Value>(&board.json)
             .ok()
             .and_then(|v| v.get("overlap").map(|o| o.to_string()))
@@ -135,11 +141,7 @@ impl pb::scoring_server::Scoring for ScoringService {
         request: Request<pb::CompareModelsRequest>,
     ) -> Result<Response<pb::CompareModelsResponse>, Status> {
         let r = request.into_inner();
-        let board = self
-            .monitor
-            .scoreboard(&r.dataset, &key(&r.window)?)
-            .await
-            .map_err(from_monitor)?;
+        let board = self.latest(&r.dataset, &r.window).await?;
         let doc: serde_json::Value = serde_json::from_str(&board.json).map_err(|_| {
             Status::failed_precondition("the window has no scores (see its degenerate state)")
         })?;

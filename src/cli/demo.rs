@@ -402,8 +402,7 @@ async fn drive(
         .into_inner();
     println!("\nsummary after {:.1} s", started.elapsed().as_secs_f64());
     println!(
-        "  {} members, {} ride counts; leader over all weeks: {}; leader now (recent window): {}",
-        cumulative.units,
+        "  {} members with ride counts; leader over all weeks: {}; leader now (recent window): {}",
         cumulative.units,
         cumulative.leader,
         events
