@@ -79,5 +79,3 @@ pub fn missing(field: &str) -> Status {
 pub fn receipt_of(status: &Status) -> Option<pb::IntakeReceipt> {
     pb::IntakeReceipt::decode(status.details()).ok()
 }
-
-pub use tonic::Code as StatusCode;

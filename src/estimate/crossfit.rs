@@ -350,6 +350,9 @@ fn choose(
     (chosen, chosen_models, report)
 }
 
+/// One component's out-of-fold values, its fold models and its report.
+type Chosen = (Vec<f64>, Vec<Box<dyn Fitted>>, ComponentReport);
+
 /// Cross-fits propensity (unless logged) and both outcome regressions.
 pub fn fit_nuisance(
     table: &UnitTable,
@@ -421,8 +424,9 @@ pub fn fit_nuisance_models(
         OutcomeKind::Continuous => Task::Regression,
         OutcomeKind::Binary => Task::Classification,
     };
-    let mut arms = Vec::with_capacity(2);
-    for arm in [0.0, 1.0] {
+    // Each arm's outcome model is fitted on that arm only and predicted for
+    // every held-out unit, so both mu0 and mu1 exist for all units.
+    let fit_arm = |arm: f64| -> Result<Chosen, EstimateError> {
         let in_arm: Vec<bool> = w.iter().map(|&v| v == arm).collect();
         let preds = out_of_fold(
             x,
@@ -433,10 +437,10 @@ pub fn fit_nuisance_models(
             outcome_task,
             settings.seed.wrapping_add(1 + arm as u64),
         )?;
-        arms.push(choose(&outcome_learners, preds, y, &in_arm, outcome_task));
-    }
-    let (mu1, mu1_models, outcome_treated) = arms.pop().unwrap_or_default_triple();
-    let (mu0, mu0_models, outcome_control) = arms.pop().unwrap_or_default_triple();
+        Ok(choose(&outcome_learners, preds, y, &in_arm, outcome_task))
+    };
+    let (mu0, mu0_models, outcome_control) = fit_arm(0.0)?;
+    let (mu1, mu1_models, outcome_treated) = fit_arm(1.0)?;
 
     let (nuisance, clipped) = Nuisance::from_parts(raw_propensity, mu0, mu1, settings.clip);
     let report = NuisanceReport {
@@ -463,30 +467,6 @@ pub fn fit_nuisance_models(
         clip: settings.clip,
     };
     Ok((nuisance, report, fitted))
-}
-
-type Chosen = (Vec<f64>, Vec<Box<dyn Fitted>>, ComponentReport);
-
-trait ChosenOrDefault {
-    fn unwrap_or_default_triple(self) -> Chosen;
-}
-
-impl ChosenOrDefault for Option<Chosen> {
-    fn unwrap_or_default_triple(self) -> Chosen {
-        self.unwrap_or_else(|| {
-            (
-                Vec::new(),
-                Vec::new(),
-                ComponentReport {
-                    learner: String::new(),
-                    loss: "squared_error",
-                    oof_loss: 0.0,
-                    candidates: Vec::new(),
-                    units: 0,
-                },
-            )
-        })
-    }
 }
 
 #[cfg(test)]

@@ -35,7 +35,7 @@ use crate::shutdown::Shutdown;
 use crate::store::{ScoreRow, Store, StoreError, StoredDataset, StoredModel};
 use alerts::{AlertState, Raised};
 use cache::DatasetCache;
-use ingest::{Fault, OutcomeIn, PredictionIn, Rejection, UnitIn};
+use ingest::{OutcomeIn, PredictionIn, Rejection, UnitIn};
 use recompute::{Frame, NuisanceState};
 use spec::DatasetSpec;
 
@@ -651,7 +651,7 @@ impl Monitor {
             .await
             .map_err(|e| MonitorError::Internal(e.to_string()))??;
         let mut nuisance = computed.nuisance;
-        if let Some(reason) = computed.refit {
+        if computed.refit.is_some() {
             let report = serde_json::to_string(&nuisance.report).unwrap_or_default();
             nuisance.fit_id = self
                 .store
@@ -665,7 +665,6 @@ impl Monitor {
                 )
                 .await?;
             nuisance.fitted_at_ms = now;
-            let _ = reason;
         }
         let snapshot_id = self.next_snapshot.fetch_add(1, Ordering::SeqCst);
         let mut boards = BTreeMap::new();
@@ -995,12 +994,4 @@ impl Monitor {
             let _ = self.recompute(&h.name, false).await;
         }
     }
-}
-
-/// Status code of a refused batch: the fault of its first problem row.
-pub fn fault_code(rejections: &[Rejection]) -> Fault {
-    rejections
-        .first()
-        .map(|r| r.fault)
-        .unwrap_or(Fault::Invalid)
 }

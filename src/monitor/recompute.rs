@@ -13,7 +13,7 @@ use crate::estimate::crossfit::{
     fit_nuisance_models, FittedNuisance, Nuisance, NuisanceReport, NuisanceSettings,
 };
 use crate::estimate::scoreboard::{score, Scoreboard, Settings};
-use crate::estimate::{EstimateError, ModelPredictions, OutcomeKind, UnitTable};
+use crate::estimate::{EstimateError, ModelPredictions, UnitTable};
 
 /// Nuisance state of a dataset between recomputes.
 #[derive(Clone)]
@@ -402,13 +402,5 @@ impl Frame {
             windows,
             newly_scored,
         })
-    }
-}
-
-/// The outcome kind as the wire names it.
-pub fn outcome_kind_label(k: OutcomeKind) -> &'static str {
-    match k {
-        OutcomeKind::Continuous => "continuous",
-        OutcomeKind::Binary => "binary",
     }
 }

@@ -563,15 +563,6 @@ impl Store {
         )
     }
 
-    pub async fn snapshot_count(&self, dataset_id: i64) -> StoreResult<i64> {
-        Ok(
-            sqlx::query_scalar("SELECT COUNT(*) FROM snapshots WHERE dataset_id = ?")
-                .bind(dataset_id)
-                .fetch_one(&self.pool)
-                .await?,
-        )
-    }
-
     pub async fn history(
         &self,
         dataset_id: i64,
