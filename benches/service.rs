@@ -49,6 +49,9 @@ async fn main() {
         durability: Durability::Full,
         log_format: LogFormat::Human,
         log_level: "warn".into(),
+        require_token: None,
+        metrics_require_token: false,
+        tls: None,
     };
     let srv = plumbline::server::start(&config).await.expect("start");
     let channel = Channel::from_shared(format!("http://{}", srv.grpc_addr))

@@ -33,6 +33,24 @@ pub struct Config {
     pub log_format: LogFormat,
     /// A tracing filter, e.g. "info" or "plumbline=debug".
     pub log_level: String,
+    /// Whether RPCs need a bearer token; `None` means "yes unless the gRPC
+    /// address is a loopback address" (see [`Config::tokens_required`]).
+    pub require_token: Option<bool>,
+    /// Whether `/metrics` needs a bearer token with `admin` or `read:*`.
+    pub metrics_require_token: bool,
+    /// Serve gRPC over TLS with this certificate and key.
+    pub tls: Option<TlsConfig>,
+}
+
+/// TLS for the gRPC listener (PEM files).
+#[derive(Debug, Clone, PartialEq, Eq, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct TlsConfig {
+    /// Certificate chain, leaf first.
+    pub cert: PathBuf,
+    pub key: PathBuf,
+    /// When set, clients must present a certificate signed by this authority.
+    pub client_ca: Option<PathBuf>,
 }
 
 /// The file's shape: every key optional.
@@ -45,6 +63,17 @@ struct FileConfig {
     durability: Option<Durability>,
     log_format: Option<LogFormat>,
     log_level: Option<String>,
+    require_token: Option<bool>,
+    metrics_require_token: Option<bool>,
+    tls: Option<TlsConfig>,
+}
+
+fn flag(key: &str, v: &str) -> Result<bool, String> {
+    match v {
+        "true" | "1" | "yes" | "on" => Ok(true),
+        "false" | "0" | "no" | "off" => Ok(false),
+        other => Err(format!("{key}: {other:?} is not true or false")),
+    }
 }
 
 fn addr(key: &str, v: &str) -> Result<SocketAddr, String> {
@@ -106,6 +135,33 @@ impl Config {
             None => f.log_format.unwrap_or_default(),
         };
         let log_level = pick("PLUMBLINE_LOG", f.log_level, "info");
+        let require_token = match env("PLUMBLINE_REQUIRE_TOKEN") {
+            Some(v) => Some(flag("PLUMBLINE_REQUIRE_TOKEN", &v)?),
+            None => f.require_token,
+        };
+        let metrics_require_token = match env("PLUMBLINE_METRICS_REQUIRE_TOKEN") {
+            Some(v) => flag("PLUMBLINE_METRICS_REQUIRE_TOKEN", &v)?,
+            None => f.metrics_require_token.unwrap_or(false),
+        };
+        let tls = match (env("PLUMBLINE_TLS_CERT"), env("PLUMBLINE_TLS_KEY")) {
+            (Some(cert), Some(key)) => Some(TlsConfig {
+                cert: cert.into(),
+                key: key.into(),
+                client_ca: env("PLUMBLINE_TLS_CLIENT_CA").map(PathBuf::from),
+            }),
+            (None, None) => f.tls,
+            _ => {
+                return Err(
+                    "PLUMBLINE_TLS_CERT and PLUMBLINE_TLS_KEY must be set together".to_string(),
+                )
+            }
+        };
+        if metrics_require_token && require_token == Some(false) {
+            return Err(
+                "metrics_require_token needs tokens: it cannot be set with require_token = false"
+                    .to_string(),
+            );
+        }
         Ok(Self {
             listen,
             metrics_listen,
@@ -113,7 +169,18 @@ impl Config {
             durability,
             log_format,
             log_level,
+            require_token,
+            metrics_require_token,
+            tls,
         })
+    }
+
+    /// Tokens are required when asked for, and by default whenever the
+    /// gRPC listener is reachable from other machines.
+    pub fn tokens_required(&self) -> bool {
+        self.require_token
+            .unwrap_or(!self.listen.ip().is_loopback())
+            || self.metrics_require_token
     }
 
     pub fn database_path(&self) -> PathBuf {
@@ -143,6 +210,26 @@ mod tests {
         assert_eq!(c.metrics_listen.port(), 9001);
         assert_eq!(c.durability, Durability::Normal);
         assert_eq!(c.data_dir, PathBuf::from(DEFAULT_DATA_DIR));
+        assert!(
+            !c.tokens_required(),
+            "loopback without require_token is open"
+        );
+        std::fs::write(
+            &path,
+            "listen = \"0.0.0.0:9000\"\n[tls]\ncert = \"c.pem\"\nkey = \"k.pem\"\n",
+        )
+        .expect("write");
+        let c = Config::load(Some(&path), |_| None).expect("config");
+        assert!(c.tokens_required(), "a non-loopback listener needs tokens");
+        assert_eq!(c.tls.as_ref().map(|t| t.key.clone()), Some("k.pem".into()));
+        let c = Config::load(Some(&path), |k| {
+            (k == "PLUMBLINE_REQUIRE_TOKEN").then(|| "false".into())
+        })
+        .expect("config");
+        assert!(!c.tokens_required(), "explicitly turned off");
+        let err = Config::load(None, |k| (k == "PLUMBLINE_TLS_CERT").then(|| "c".into()))
+            .expect_err("cert without key");
+        assert!(err.contains("PLUMBLINE_TLS_KEY"), "{err}");
         std::fs::write(&path, "lisen = \"x\"\n").expect("write");
         let err = Config::load(Some(&path), |_| None).expect_err("typo is refused");
         assert!(err.contains("lisen"), "{err}");

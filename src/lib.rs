@@ -16,6 +16,9 @@
 //!   windows, snapshots and the alert rules.
 //! - [`api`]: the gRPC surface, thin adapters from the wire contract in
 //!   `proto/` to the monitor, with one mapping of errors to status codes.
+//! - [`auth`]: bearer tokens with `admin` / `read:<dataset>` /
+//!   `write:<dataset>` scopes, stored as digests, checked by a gRPC
+//!   interceptor and by each handler for its dataset.
 //! - [`metrics`]: Prometheus series and the HTTP listener for `/metrics`,
 //!   `/healthz` and `/readyz`.
 //! - [`server`], [`config`], [`shutdown`]: starting, configuring and
@@ -27,6 +30,7 @@
 //! - [`cli`]: the `plumbline` command line (`serve`, `score`, `simulate`).
 
 pub mod api;
+pub mod auth;
 pub mod cli;
 pub mod config;
 pub mod estimate;

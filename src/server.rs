@@ -8,15 +8,17 @@ use std::sync::Arc;
 use tokio::net::TcpListener;
 use tokio::task::JoinHandle;
 use tokio_stream::wrappers::TcpListenerStream;
-use tonic::transport::Server;
-use tracing::info;
+use tonic::service::interceptor::InterceptedService;
+use tonic::transport::{Certificate, Identity, Server, ServerTlsConfig};
+use tracing::{info, warn};
 
 use crate::api::events::EventService;
 use crate::api::intake::IntakeService;
 use crate::api::pb;
 use crate::api::registry::{Datasets, Models};
 use crate::api::scoring::ScoringService;
-use crate::config::Config;
+use crate::auth::{Gate, GateLayer};
+use crate::config::{Config, TlsConfig};
 use crate::metrics::http::{self, HttpState};
 use crate::metrics::Metrics;
 use crate::monitor::Monitor;
@@ -35,6 +37,7 @@ pub struct Running {
     grpc: JoinHandle<Result<(), tonic::transport::Error>>,
     http: JoinHandle<std::io::Result<()>>,
     store: Store,
+    refresher: Option<JoinHandle<()>>,
 }
 
 impl Running {
@@ -43,6 +46,9 @@ impl Running {
         self.signal.fire();
         let grpc = self.grpc.await.map_err(|e| e.to_string())?;
         let http = self.http.await.map_err(|e| e.to_string())?;
+        if let Some(r) = self.refresher {
+            r.await.map_err(|e| e.to_string())?;
+        }
         self.store.close().await;
         grpc.map_err(|e| e.to_string())?;
         http.map_err(|e| e.to_string())?;
@@ -55,6 +61,37 @@ impl Running {
     }
 }
 
+fn read_pem(what: &str, path: &std::path::Path) -> Result<Vec<u8>, String> {
+    std::fs::read(path).map_err(|e| format!("tls {what} {}: {e}", path.display()))
+}
+
+fn tls_settings(tls: &TlsConfig) -> Result<ServerTlsConfig, String> {
+    let identity = Identity::from_pem(read_pem("cert", &tls.cert)?, read_pem("key", &tls.key)?);
+    let mut settings = ServerTlsConfig::new().identity(identity);
+    if let Some(ca) = &tls.client_ca {
+        settings = settings.client_ca_root(Certificate::from_pem(read_pem("client_ca", ca)?));
+    }
+    Ok(settings)
+}
+
+fn gated<S>(gate: &Arc<Gate>, svc: S) -> InterceptedService<S, GateLayer> {
+    InterceptedService::new(svc, GateLayer(Arc::clone(gate)))
+}
+
+/// The gate for this configuration: tokens from the store, or open.
+async fn gate(config: &Config, store: &Store) -> Result<Arc<Gate>, String> {
+    if !config.tokens_required() {
+        if !config.listen.ip().is_loopback() {
+            warn!(listen = %config.listen, "tokens are turned off on a non-loopback address: any client that can reach it may read and write every dataset");
+        }
+        return Ok(Gate::open());
+    }
+    let gate = Gate::enforcing(store)
+        .await
+        .map_err(|e| format!("loading access tokens: {e}"))?;
+    Ok(gate)
+}
+
 /// Opens the store, rebuilds state and starts both listeners.
 pub async fn start(config: &Config) -> Result<Running, String> {
     std::fs::create_dir_all(&config.data_dir)
@@ -62,6 +99,7 @@ pub async fn start(config: &Config) -> Result<Running, String> {
     let store = Store::open(&config.database_path(), config.durability)
         .await
         .map_err(|e| format!("{}: {e}", config.database_path().display()))?;
+    let gate = gate(config, &store).await?;
     let metrics = Metrics::new();
     let ready = Arc::new(AtomicBool::new(false));
     let signal = ShutdownSignal::new();
@@ -81,6 +119,7 @@ pub async fn start(config: &Config) -> Result<Running, String> {
         HttpState {
             metrics: Arc::clone(&metrics),
             ready: Arc::clone(&ready),
+            gate: config.metrics_require_token.then(|| Arc::clone(&gate)),
         },
         signal.subscribe(),
     ));
@@ -110,43 +149,59 @@ pub async fn start(config: &Config) -> Result<Running, String> {
         .map_err(|e| e.to_string())?;
 
     let m = &monitor;
-    let router = Server::builder()
+    // Every plumbline service passes the gate; health and reflection do not,
+    // so probes and tooling work without a token.
+    let mut builder = Server::builder();
+    if let Some(tls) = &config.tls {
+        builder = builder
+            .tls_config(tls_settings(tls)?)
+            .map_err(|e| format!("tls: {e}"))?;
+    }
+    let router = builder
         .add_service(health_service)
         .add_service(reflection)
-        .add_service(
+        .add_service(gated(
+            &gate,
             pb::dataset_registry_server::DatasetRegistryServer::new(Datasets {
                 monitor: Arc::clone(m),
             })
             .max_decoding_message_size(MAX_MESSAGE_BYTES),
-        )
-        .add_service(
+        ))
+        .add_service(gated(
+            &gate,
             pb::model_registry_server::ModelRegistryServer::new(Models {
                 monitor: Arc::clone(m),
             })
             .max_decoding_message_size(MAX_MESSAGE_BYTES),
-        )
-        .add_service(
+        ))
+        .add_service(gated(
+            &gate,
             pb::intake_server::IntakeServer::new(IntakeService {
                 monitor: Arc::clone(m),
             })
             .max_decoding_message_size(MAX_MESSAGE_BYTES),
-        )
-        .add_service(
+        ))
+        .add_service(gated(
+            &gate,
             pb::scoring_server::ScoringServer::new(ScoringService {
                 monitor: Arc::clone(m),
             })
             .max_encoding_message_size(MAX_MESSAGE_BYTES * 4),
-        )
-        .add_service(pb::event_feed_server::EventFeedServer::new(EventService {
-            monitor: Arc::clone(m),
-        }));
+        ))
+        .add_service(gated(
+            &gate,
+            pb::event_feed_server::EventFeedServer::new(EventService {
+                monitor: Arc::clone(m),
+            }),
+        ));
+    let refresher = gate.spawn_refresher(store.clone(), signal.subscribe());
     let mut grpc_shutdown = signal.subscribe();
     let grpc = tokio::spawn(
         router.serve_with_incoming_shutdown(TcpListenerStream::new(grpc_listener), async move {
             grpc_shutdown.recv().await
         }),
     );
-    info!(grpc = %grpc_addr, metrics = %http::describe(metrics_addr), data = %config.database_path().display(), "serving");
+    info!(tls = config.tls.is_some(), tokens = gate.enabled(), grpc = %grpc_addr, metrics = %http::describe(metrics_addr), data = %config.database_path().display(), "serving");
     Ok(Running {
         grpc_addr,
         metrics_addr,
@@ -155,5 +210,6 @@ pub async fn start(config: &Config) -> Result<Running, String> {
         grpc,
         http,
         store,
+        refresher,
     })
 }

@@ -759,36 +759,9 @@ async fn metrics_carry_every_series_with_its_labels() {
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn serve_binary_answers_health_and_metrics_and_drains_on_sigterm() {
     let dir = TempDir::new("binary");
-    let free = || {
-        std::net::TcpListener::bind("127.0.0.1:0")
-            .and_then(|l| l.local_addr())
-            .expect("free port")
-    };
-    let (grpc, http) = (free(), free());
-    let mut child = std::process::Command::new(env!("CARGO_BIN_EXE_plumbline"))
-        .arg("serve")
-        .arg("--data-dir")
-        .arg(&dir.0)
-        .arg("--listen")
-        .arg(grpc.to_string())
-        .arg("--metrics-listen")
-        .arg(http.to_string())
-        .env("PLUMBLINE_LOG", "warn")
-        .spawn()
-        .expect("spawn");
-    let mut channel = None;
-    for _ in 0..100 {
-        if let Ok(ch) = tonic::transport::Channel::from_shared(format!("http://{grpc}"))
-            .expect("uri")
-            .connect()
-            .await
-        {
-            channel = Some(ch);
-            break;
-        }
-        tokio::time::sleep(std::time::Duration::from_millis(100)).await;
-    }
-    let channel = channel.expect("server came up");
+    let server = serve_binary(&dir, &[], "warn", false);
+    let (grpc, http) = (server.grpc, server.http);
+    let channel = server.channel().await;
     let mut health = tonic_health::pb::health_client::HealthClient::new(channel.clone());
     let status = health
         .check(tonic_health::pb::HealthCheckRequest {
@@ -821,14 +794,9 @@ async fn serve_binary_answers_health_and_metrics_and_drains_on_sigterm() {
     assert_eq!(code, 200);
     assert!(text.contains("plumbline_ingest_rows_total{"), "{text}");
     assert_eq!(http_get(http, "/healthz").0, 200);
-    let pid = child.id().to_string();
-    let killed = std::process::Command::new("kill")
-        .args(["-TERM", &pid])
-        .status()
-        .expect("kill");
-    assert!(killed.success());
-    let exit = child.wait().expect("wait");
-    assert_eq!(exit.code(), Some(0), "clean exit after SIGTERM");
+    let _ = grpc;
+    let exit = server.terminate();
+    assert_eq!(exit.status.code(), Some(0), "clean exit after SIGTERM");
 }
 
 /// The client commands for people work against a live server, their JSON

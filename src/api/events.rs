@@ -9,6 +9,7 @@ use tonic::{Request, Response, Status};
 
 use super::pb;
 use super::status::from_monitor;
+use crate::auth::caller;
 use crate::monitor::Monitor;
 use crate::store::EventRecord;
 
@@ -61,7 +62,9 @@ impl pb::event_feed_server::EventFeed for EventService {
         &self,
         request: Request<pb::ListEventsRequest>,
     ) -> Result<Response<pb::ListEventsResponse>, Status> {
+        let who = caller(&request)?;
         let r = request.into_inner();
+        who.require_read_filter(&r.dataset)?;
         let limit = match r.limit {
             0 => 100,
             n => n.min(1000),
@@ -80,7 +83,9 @@ impl pb::event_feed_server::EventFeed for EventService {
         &self,
         request: Request<pb::WatchEventsRequest>,
     ) -> Result<Response<Self::WatchEventsStream>, Status> {
+        let who = caller(&request)?;
         let r = request.into_inner();
+        who.require_read_filter(&r.dataset)?;
         // Subscribe before reading the store so nothing falls between the
         // replay and the live stream; duplicates are skipped by id.
         let mut live = self.monitor.subscribe();

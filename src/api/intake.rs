@@ -8,6 +8,7 @@ use tonic::{Request, Response, Status, Streaming};
 
 use super::pb;
 use super::status::{from_monitor, refused};
+use crate::auth::{caller, Access, Caller};
 use crate::monitor::ingest::{OutcomeIn, PredictionIn, UnitIn};
 use crate::monitor::{BatchCounts, Monitor, MonitorError};
 
@@ -52,6 +53,7 @@ impl From<pb::PredictionRow> for PredictionIn {
 /// Drives one intake stream: every message names the same dataset; each
 /// batch commits or is refused whole; the receipt counts what committed.
 async fn drain<M, R, F, Fut>(
+    who: Caller,
     mut stream: Streaming<M>,
     split: impl Fn(M) -> (String, Vec<R>),
     apply: F,
@@ -67,7 +69,10 @@ where
         let batch = receipt.batches;
         let (name, rows) = split(message);
         match &dataset {
-            None => dataset = Some(name.clone()),
+            None => {
+                who.require(Access::Write, &name)?;
+                dataset = Some(name.clone());
+            }
             Some(d) if *d != name => {
                 return Err(Status::invalid_argument(format!(
                     "batch {batch}: dataset {name:?} differs from the stream's dataset {d:?}"
@@ -96,7 +101,9 @@ impl pb::intake_server::Intake for IntakeService {
         request: Request<Streaming<pb::UnitBatch>>,
     ) -> Result<Response<pb::IntakeReceipt>, Status> {
         let m = &self.monitor;
+        let who = caller(&request)?;
         let receipt = drain(
+            who,
             request.into_inner(),
             |b: pb::UnitBatch| (b.dataset, b.rows.into_iter().map(UnitIn::from).collect()),
             |d, rows: Vec<UnitIn>| async move { m.ingest_units(&d, &rows).await },
@@ -111,7 +118,9 @@ impl pb::intake_server::Intake for IntakeService {
         request: Request<Streaming<pb::OutcomeBatch>>,
     ) -> Result<Response<pb::IntakeReceipt>, Status> {
         let m = &self.monitor;
+        let who = caller(&request)?;
         let receipt = drain(
+            who,
             request.into_inner(),
             |b: pb::OutcomeBatch| (b.dataset, b.rows.into_iter().map(OutcomeIn::from).collect()),
             |d, rows: Vec<OutcomeIn>| async move { m.ingest_outcomes(&d, &rows).await },
@@ -126,7 +135,9 @@ impl pb::intake_server::Intake for IntakeService {
         request: Request<Streaming<pb::PredictionBatch>>,
     ) -> Result<Response<pb::IntakeReceipt>, Status> {
         let m = &self.monitor;
+        let who = caller(&request)?;
         let receipt = drain(
+            who,
             request.into_inner(),
             |b: pb::PredictionBatch| {
                 (

@@ -6,6 +6,7 @@ use tonic::{Request, Response, Status};
 
 use super::pb;
 use super::status::{from_monitor, missing};
+use crate::auth::{caller, Access};
 use crate::estimate::OutcomeKind;
 use crate::monitor::spec::DatasetSpec;
 use crate::monitor::{DatasetInfo, Monitor};
@@ -121,6 +122,7 @@ impl pb::dataset_registry_server::DatasetRegistry for Datasets {
         &self,
         request: Request<pb::CreateDatasetRequest>,
     ) -> Result<Response<pb::Dataset>, Status> {
+        caller(&request)?.require_admin()?;
         let spec: DatasetSpec = request
             .into_inner()
             .spec
@@ -139,24 +141,26 @@ impl pb::dataset_registry_server::DatasetRegistry for Datasets {
         &self,
         request: Request<pb::GetDatasetRequest>,
     ) -> Result<Response<pb::Dataset>, Status> {
-        let info = self
-            .monitor
-            .dataset(&request.into_inner().name)
-            .await
-            .map_err(from_monitor)?;
+        let who = caller(&request)?;
+        let name = request.into_inner().name;
+        who.require(Access::Read, &name)?;
+        let info = self.monitor.dataset(&name).await.map_err(from_monitor)?;
         Ok(Response::new(info.into()))
     }
 
     #[tracing::instrument(skip_all, fields(rpc = "ListDatasets"))]
     async fn list_datasets(
         &self,
-        _request: Request<pb::ListDatasetsRequest>,
+        request: Request<pb::ListDatasetsRequest>,
     ) -> Result<Response<pb::ListDatasetsResponse>, Status> {
+        // Every caller may list; each sees the datasets it can read.
+        let who = caller(&request)?;
         let datasets = self
             .monitor
             .datasets()
             .await
             .into_iter()
+            .filter(|d| who.allows(Access::Read, &d.stored.spec.name))
             .map(Into::into)
             .collect();
         Ok(Response::new(pb::ListDatasetsResponse { datasets }))
@@ -170,7 +174,9 @@ impl pb::model_registry_server::ModelRegistry for Models {
         &self,
         request: Request<pb::RegisterModelRequest>,
     ) -> Result<Response<pb::Model>, Status> {
+        let who = caller(&request)?;
         let r = request.into_inner();
+        who.require(Access::Write, &r.dataset)?;
         let m = self
             .monitor
             .register_model(&r.dataset, &r.name, &r.version, &r.description)
@@ -184,7 +190,9 @@ impl pb::model_registry_server::ModelRegistry for Models {
         &self,
         request: Request<pb::ListModelsRequest>,
     ) -> Result<Response<pb::ListModelsResponse>, Status> {
+        let who = caller(&request)?;
         let r = request.into_inner();
+        who.require(Access::Read, &r.dataset)?;
         let models = self
             .monitor
             .models(&r.dataset, r.include_retired)
@@ -201,7 +209,9 @@ impl pb::model_registry_server::ModelRegistry for Models {
         &self,
         request: Request<pb::RetireModelRequest>,
     ) -> Result<Response<pb::Model>, Status> {
+        let who = caller(&request)?;
         let r = request.into_inner();
+        who.require(Access::Write, &r.dataset)?;
         let m = self
             .monitor
             .retire_model(&r.dataset, &r.name)

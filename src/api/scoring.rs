@@ -6,6 +6,7 @@ use tonic::{Request, Response, Status};
 
 use super::pb;
 use super::status::from_monitor;
+use crate::auth::{caller, Access};
 use crate::monitor::board::window_key;
 use crate::monitor::Monitor;
 
@@ -56,7 +57,9 @@ impl pb::scoring_server::Scoring for ScoringService {
         &self,
         request: Request<pb::RecomputeRequest>,
     ) -> Result<Response<pb::RecomputeResponse>, Status> {
+        let who = caller(&request)?;
         let r = request.into_inner();
+        who.require(Access::Write, &r.dataset)?;
         let s = self
             .monitor
             .recompute(&r.dataset, r.refit)
@@ -75,7 +78,9 @@ impl pb::scoring_server::Scoring for ScoringService {
         &self,
         request: Request<pb::GetScoreboardRequest>,
     ) -> Result<Response<pb::Scoreboard>, Status> {
+        let who = caller(&request)?;
         let r = request.into_inner();
+        who.require(Access::Read, &r.dataset)?;
         let board = self.latest(&r.dataset, &r.window).await?;
         Ok(Response::new(board))
     }
@@ -85,7 +90,9 @@ impl pb::scoring_server::Scoring for ScoringService {
         &self,
         request: Request<pb::GetHistoryRequest>,
     ) -> Result<Response<pb::GetHistoryResponse>, Status> {
+        let who = caller(&request)?;
         let r = request.into_inner();
+        who.require(Access::Read, &r.dataset)?;
         if !ESTIMATORS.contains(&r.estimator.as_str()) {
             return Err(Status::invalid_argument(format!(
                 "estimator: {:?} is not one of {}",
@@ -123,7 +130,9 @@ impl pb::scoring_server::Scoring for ScoringService {
         &self,
         request: Request<pb::GetOverlapRequest>,
     ) -> Result<Response<pb::OverlapReport>, Status> {
+        let who = caller(&request)?;
         let r = request.into_inner();
+        who.require(Access::Read, &r.dataset)?;
         let board = self.latest(&r.dataset, &r.window).await?;
         let json = serde_json::from_str::<serde_json::Value>(&board.json)
             .ok()
@@ -140,7 +149,9 @@ impl pb::scoring_server::Scoring for ScoringService {
         &self,
         request: Request<pb::CompareModelsRequest>,
     ) -> Result<Response<pb::CompareModelsResponse>, Status> {
+        let who = caller(&request)?;
         let r = request.into_inner();
+        who.require(Access::Read, &r.dataset)?;
         let board = self.latest(&r.dataset, &r.window).await?;
         let doc: serde_json::Value = serde_json::from_str(&board.json).map_err(|_| {
             Status::failed_precondition("the window has no scores (see its degenerate state)")

@@ -115,23 +115,14 @@ fn bar(total: u64, what: &str) -> ProgressBar {
 }
 
 pub fn run(c: &Connection, a: &IngestArgs) -> ExitCode {
-    let runtime = match tokio::runtime::Builder::new_multi_thread()
-        .worker_threads(2)
-        .enable_all()
-        .build()
-    {
-        Ok(r) => r,
-        Err(e) => {
-            eprintln!("plumbline ingest: {e}");
-            return ExitCode::FAILURE;
-        }
+    let work = async {
+        ingest(c, a)
+            .await
+            .map_err(|e| (1, format!("{}: {e}", a.file.display())))
     };
-    match runtime.block_on(ingest(c, a)) {
+    match super::client::block_on_command("plumbline ingest", work) {
         Ok(()) => ExitCode::SUCCESS,
-        Err(e) => {
-            eprintln!("plumbline ingest: {}: {e}", a.file.display());
-            ExitCode::FAILURE
-        }
+        Err(code) => code,
     }
 }
 

@@ -7,7 +7,7 @@ use std::process::ExitCode;
 use clap::{Args, ValueEnum};
 use serde_json::json;
 use tonic::metadata::MetadataValue;
-use tonic::transport::Channel;
+use tonic::transport::{Certificate, Channel, ClientTlsConfig, Identity};
 use tonic::{Request, Status};
 
 use crate::api::pb;
@@ -29,6 +29,45 @@ pub struct Connection {
     pub token: Option<String>,
     #[arg(long, value_enum, default_value_t = Output::Table, global = true)]
     pub format: Output,
+    /// PEM authority that signed the server's certificate (https:// servers).
+    #[arg(long, env = "PLUMBLINE_CA_CERT", value_name = "FILE", global = true)]
+    pub ca_cert: Option<std::path::PathBuf>,
+    /// PEM client certificate, for servers that verify clients.
+    #[arg(
+        long,
+        env = "PLUMBLINE_CLIENT_CERT",
+        value_name = "FILE",
+        global = true,
+        requires = "client_key"
+    )]
+    pub client_cert: Option<std::path::PathBuf>,
+    #[arg(
+        long,
+        env = "PLUMBLINE_CLIENT_KEY",
+        value_name = "FILE",
+        global = true,
+        requires = "client_cert"
+    )]
+    pub client_key: Option<std::path::PathBuf>,
+}
+
+fn pem(flag: &str, path: &std::path::Path) -> Result<Vec<u8>, String> {
+    std::fs::read(path).map_err(|e| format!("--{flag} {}: {e}", path.display()))
+}
+
+fn tls(c: &Connection) -> Result<ClientTlsConfig, String> {
+    let mut t = ClientTlsConfig::new();
+    t = match &c.ca_cert {
+        Some(ca) => t.ca_certificate(Certificate::from_pem(pem("ca-cert", ca)?)),
+        None => t.with_enabled_roots(),
+    };
+    if let (Some(cert), Some(key)) = (&c.client_cert, &c.client_key) {
+        t = t.identity(Identity::from_pem(
+            pem("client-cert", cert)?,
+            pem("client-key", key)?,
+        ));
+    }
+    Ok(t)
 }
 
 pub async fn connect(c: &Connection) -> Result<Channel, String> {
@@ -37,8 +76,13 @@ pub async fn connect(c: &Connection) -> Result<Channel, String> {
     } else {
         format!("http://{}", c.server)
     };
-    Channel::from_shared(uri.clone())
-        .map_err(|e| format!("{uri}: {e}"))?
+    let mut endpoint = Channel::from_shared(uri.clone()).map_err(|e| format!("{uri}: {e}"))?;
+    if uri.starts_with("https://") {
+        endpoint = endpoint
+            .tls_config(tls(c)?)
+            .map_err(|e| format!("{uri}: tls: {e}"))?;
+    }
+    endpoint
         .connect()
         .await
         .map_err(|e| format!("cannot reach {uri}: {e}"))
@@ -94,24 +138,31 @@ fn window(w: &str) -> Result<pb::Window, String> {
     })
 }
 
-fn run_async(f: impl std::future::Future<Output = Result<(), String>>) -> ExitCode {
-    let runtime = match tokio::runtime::Builder::new_multi_thread()
+/// Runs a command's future on a two-worker runtime; `Err((status, message))`
+/// prints `<prefix>: message` (prefix such as "plumbline ingest") and exits
+/// with that status.
+pub(super) fn block_on_command<T>(
+    prefix: &str,
+    f: impl std::future::Future<Output = Result<T, (u8, String)>>,
+) -> Result<T, ExitCode> {
+    let runtime = tokio::runtime::Builder::new_multi_thread()
         .worker_threads(2)
         .enable_all()
         .build()
-    {
-        Ok(r) => r,
-        Err(e) => {
-            eprintln!("plumbline: {e}");
-            return ExitCode::FAILURE;
-        }
-    };
-    match runtime.block_on(f) {
-        Ok(()) => ExitCode::SUCCESS,
-        Err(e) => {
-            eprintln!("plumbline: {e}");
+        .map_err(|e| {
+            eprintln!("{prefix}: {e}");
             ExitCode::FAILURE
-        }
+        })?;
+    runtime.block_on(f).map_err(|(code, message)| {
+        eprintln!("{prefix}: {message}");
+        ExitCode::from(code)
+    })
+}
+
+fn run_async(f: impl std::future::Future<Output = Result<(), String>>) -> ExitCode {
+    match block_on_command("plumbline", async { f.await.map_err(|e| (1, e)) }) {
+        Ok(()) => ExitCode::SUCCESS,
+        Err(code) => code,
     }
 }
 

@@ -498,6 +498,9 @@ pub fn run(args: &DemoArgs) -> ExitCode {
         durability: Durability::Normal,
         log_format: LogFormat::Human,
         log_level: "warn".into(),
+        require_token: None,
+        metrics_require_token: false,
+        tls: None,
     };
     let runtime = match tokio::runtime::Builder::new_multi_thread()
         .enable_all()

@@ -4,11 +4,13 @@
 mod backfill;
 mod client;
 mod demo;
+mod loadtest;
 mod progress;
 mod render;
 mod score;
 mod serve;
 mod simulate;
+mod token;
 
 use std::process::ExitCode;
 
@@ -90,6 +92,10 @@ pub enum Command {
         #[command(flatten)]
         window: client::WindowArg,
     },
+    /// Drive a server on this machine with concurrent clients, recomputes and a refit; report throughput and read latency.
+    Loadtest(loadtest::LoadtestArgs),
+    /// Create, revoke or list access tokens on a server's data directory.
+    Token(token::TokenArgs),
     /// Backfill units, outcomes or predictions from a CSV file.
     Ingest {
         #[command(flatten)]
@@ -130,5 +136,7 @@ pub fn run() -> ExitCode {
         Command::Score(args) => score::run(&args),
         Command::Simulate(args) => simulate::run(&args),
         Command::Serve(args) => serve::run(&args),
+        Command::Token(args) => token::run(&args),
+        Command::Loadtest(args) => loadtest::run(&args),
     }
 }

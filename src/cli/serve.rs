@@ -11,7 +11,7 @@ use crate::config::{Config, LogFormat};
 
 #[derive(Debug, Args)]
 pub struct ServeArgs {
-    /// TOML configuration file (keys: listen, metrics_listen, data_dir, durability, log_format, log_level).
+    /// TOML configuration file (keys: listen, metrics_listen, data_dir, durability, log_format, log_level, require_token, metrics_require_token, [tls] cert / key / client_ca).
     #[arg(long, value_name = "FILE")]
     pub config: Option<PathBuf>,
     /// gRPC address [default: 127.0.0.1:7070].
@@ -23,6 +23,9 @@ pub struct ServeArgs {
     /// Directory of the SQLite database [default: ./plumbline-data].
     #[arg(long, value_name = "DIR")]
     pub data_dir: Option<PathBuf>,
+    /// Require bearer tokens even on a loopback address (always required elsewhere unless the config turns them off).
+    #[arg(long)]
+    pub require_token: bool,
 }
 
 pub fn init_logging(format: LogFormat, level: &str) {
@@ -42,6 +45,7 @@ fn config(args: &ServeArgs) -> Result<Config, String> {
             "PLUMBLINE_LISTEN" => args.listen.clone(),
             "PLUMBLINE_METRICS_LISTEN" => args.metrics_listen.clone(),
             "PLUMBLINE_DATA_DIR" => args.data_dir.as_ref().map(|p| p.display().to_string()),
+            "PLUMBLINE_REQUIRE_TOKEN" => args.require_token.then(|| "true".to_string()),
             _ => None,
         }
     };

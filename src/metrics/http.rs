@@ -6,21 +6,46 @@ use std::sync::atomic::{AtomicBool, Ordering};
 use std::sync::Arc;
 
 use axum::extract::State;
-use axum::http::{header, StatusCode};
-use axum::response::IntoResponse;
+use axum::http::{header, HeaderMap, StatusCode};
+use axum::response::{IntoResponse, Response};
 use axum::routing::get;
 use axum::Router;
 
 use super::Metrics;
+use crate::auth::Gate;
 use crate::shutdown::Shutdown;
 
 #[derive(Clone)]
 pub struct HttpState {
     pub metrics: Arc<Metrics>,
     pub ready: Arc<AtomicBool>,
+    /// When set, `/metrics` needs a bearer token with `admin` or `read:*`
+    /// (the page shows every dataset). Probes stay open.
+    pub gate: Option<Arc<Gate>>,
 }
 
-async fn metrics(State(s): State<HttpState>) -> impl IntoResponse {
+async fn metrics(State(s): State<HttpState>, headers: HeaderMap) -> Response {
+    if let Some(gate) = &s.gate {
+        let header = headers
+            .get(header::AUTHORIZATION)
+            .and_then(|v| v.to_str().ok());
+        let refused = match gate.identify(header) {
+            Err(status) => Some((StatusCode::UNAUTHORIZED, status.message().to_string())),
+            Ok(caller) if !caller.reads_everything() => Some((
+                StatusCode::FORBIDDEN,
+                "authorization: /metrics shows every dataset and needs admin or read:*".into(),
+            )),
+            Ok(_) => None,
+        };
+        if let Some((code, message)) = refused {
+            return (
+                code,
+                [(header::WWW_AUTHENTICATE, "Bearer")],
+                format!("{message}\n"),
+            )
+                .into_response();
+        }
+    }
     (
         [(
             header::CONTENT_TYPE,
@@ -28,6 +53,7 @@ async fn metrics(State(s): State<HttpState>) -> impl IntoResponse {
         )],
         s.metrics.render(),
     )
+        .into_response()
 }
 
 async fn healthz() -> impl IntoResponse {

@@ -17,6 +17,9 @@ use sqlx::{QueryBuilder, Row, Sqlite};
 
 use crate::monitor::spec::DatasetSpec;
 
+mod tokens;
+pub use tokens::TokenRecord;
+
 #[derive(Debug, thiserror::Error)]
 pub enum StoreError {
     #[error("database error: {0}")]

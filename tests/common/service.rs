@@ -43,6 +43,9 @@ pub fn config(dir: &TempDir) -> Config {
         durability: Durability::Normal,
         log_format: LogFormat::Human,
         log_level: "warn".into(),
+        require_token: None,
+        metrics_require_token: false,
+        tls: None,
     }
 }
 
@@ -318,5 +321,69 @@ pub fn assert_json_close(a: &serde_json::Value, b: &serde_json::Value, tol: f64,
             }
         }
         (x, y) => assert_eq!(x, y, "{path}"),
+    }
+}
+
+/// The `plumbline serve` binary as a child process on free loopback ports.
+pub struct ServeBinary {
+    pub child: std::process::Child,
+    pub grpc: SocketAddr,
+    pub http: SocketAddr,
+}
+
+/// Starts `plumbline serve --data-dir dir` with `extra` arguments and the
+/// given log level (stderr piped when `capture_logs`), and waits until
+/// the gRPC port accepts connections.
+pub fn serve_binary(dir: &TempDir, extra: &[&str], log: &str, capture_logs: bool) -> ServeBinary {
+    let free = || {
+        std::net::TcpListener::bind("127.0.0.1:0")
+            .and_then(|l| l.local_addr())
+            .expect("free port")
+    };
+    let (grpc, http) = (free(), free());
+    let mut command = std::process::Command::new(env!("CARGO_BIN_EXE_plumbline"));
+    command
+        .arg("serve")
+        .arg("--data-dir")
+        .arg(&dir.0)
+        .arg("--listen")
+        .arg(grpc.to_string())
+        .arg("--metrics-listen")
+        .arg(http.to_string())
+        .args(extra)
+        .env("PLUMBLINE_LOG", log);
+    if capture_logs {
+        command.stderr(std::process::Stdio::piped());
+    }
+    let mut child = command.spawn().expect("spawn plumbline serve");
+    for _ in 0..200 {
+        if TcpStream::connect(grpc).is_ok() {
+            return ServeBinary { child, grpc, http };
+        }
+        std::thread::sleep(std::time::Duration::from_millis(50));
+    }
+    let _ = child.kill();
+    let _ = child.wait();
+    panic!("plumbline serve did not open {grpc} within 10 s");
+}
+
+impl ServeBinary {
+    pub async fn channel(&self) -> Channel {
+        Channel::from_shared(format!("http://{}", self.grpc))
+            .expect("uri")
+            .connect()
+            .await
+            .expect("connect to plumbline serve")
+    }
+
+    /// Sends SIGTERM and waits for the exit.
+    pub fn terminate(self) -> std::process::Output {
+        let pid = self.child.id().to_string();
+        let killed = std::process::Command::new("kill")
+            .args(["-TERM", &pid])
+            .status()
+            .expect("kill");
+        assert!(killed.success());
+        self.child.wait_with_output().expect("wait")
     }
 }
