@@ -49,6 +49,7 @@ async fn main() {
         durability: Durability::Full,
         log_format: LogFormat::Human,
         log_level: "warn".into(),
+        limits: Default::default(),
     };
     let srv = plumbline::server::start(&config).await.expect("start");
     let channel = Channel::from_shared(format!("http://{}", srv.grpc_addr))

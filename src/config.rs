@@ -6,6 +6,7 @@ use std::path::{Path, PathBuf};
 
 use serde::Deserialize;
 
+use crate::limits::Limits;
 use crate::store::Durability;
 
 pub const DEFAULT_LISTEN: &str = "127.0.0.1:7070";
@@ -33,6 +34,8 @@ pub struct Config {
     pub log_format: LogFormat,
     /// A tracing filter, e.g. "info" or "plumbline=debug".
     pub log_level: String,
+    /// Resource limits (the `[limits]` section).
+    pub limits: Limits,
 }
 
 /// The file's shape: every key optional.
@@ -45,6 +48,7 @@ struct FileConfig {
     durability: Option<Durability>,
     log_format: Option<LogFormat>,
     log_level: Option<String>,
+    limits: Option<Limits>,
 }
 
 fn addr(key: &str, v: &str) -> Result<SocketAddr, String> {
@@ -106,6 +110,8 @@ impl Config {
             None => f.log_format.unwrap_or_default(),
         };
         let log_level = pick("PLUMBLINE_LOG", f.log_level, "info");
+        let limits = f.limits.unwrap_or_default();
+        limits.check()?;
         Ok(Self {
             listen,
             metrics_listen,
@@ -113,6 +119,7 @@ impl Config {
             durability,
             log_format,
             log_level,
+            limits,
         })
     }
 
@@ -143,6 +150,9 @@ mod tests {
         assert_eq!(c.metrics_listen.port(), 9001);
         assert_eq!(c.durability, Durability::Normal);
         assert_eq!(c.data_dir, PathBuf::from(DEFAULT_DATA_DIR));
+        std::fs::write(&path, "[limits]\nmax_datasets = 3\n").expect("write");
+        let c = Config::load(Some(&path), |_| None).expect("limits section");
+        assert_eq!(c.limits.max_datasets, 3);
         std::fs::write(&path, "lisen = \"x\"\n").expect("write");
         let err = Config::load(Some(&path), |_| None).expect_err("typo is refused");
         assert!(err.contains("lisen"), "{err}");

@@ -498,6 +498,7 @@ pub fn run(args: &DemoArgs) -> ExitCode {
         durability: Durability::Normal,
         log_format: LogFormat::Human,
         log_level: "warn".into(),
+        limits: Default::default(),
     };
     let runtime = match tokio::runtime::Builder::new_multi_thread()
         .enable_all()
