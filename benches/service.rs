@@ -49,6 +49,7 @@ async fn main() {
         durability: Durability::Full,
         log_format: LogFormat::Human,
         log_level: "warn".into(),
+        limits: Default::default(),
         require_token: None,
         metrics_require_token: false,
         tls: None,

@@ -6,6 +6,7 @@ use std::path::{Path, PathBuf};
 
 use serde::Deserialize;
 
+use crate::limits::Limits;
 use crate::store::Durability;
 
 pub const DEFAULT_LISTEN: &str = "127.0.0.1:7070";
@@ -33,6 +34,8 @@ pub struct Config {
     pub log_format: LogFormat,
     /// A tracing filter, e.g. "info" or "plumbline=debug".
     pub log_level: String,
+    /// Resource limits (the `[limits]` section).
+    pub limits: Limits,
     /// Whether RPCs need a bearer token; `None` means "yes unless the gRPC
     /// address is a loopback address" (see [`Config::tokens_required`]).
     pub require_token: Option<bool>,
@@ -63,6 +66,7 @@ struct FileConfig {
     durability: Option<Durability>,
     log_format: Option<LogFormat>,
     log_level: Option<String>,
+    limits: Option<Limits>,
     require_token: Option<bool>,
     metrics_require_token: Option<bool>,
     tls: Option<TlsConfig>,
@@ -135,6 +139,8 @@ impl Config {
             None => f.log_format.unwrap_or_default(),
         };
         let log_level = pick("PLUMBLINE_LOG", f.log_level, "info");
+        let limits = f.limits.unwrap_or_default();
+        limits.check()?;
         let require_token = match env("PLUMBLINE_REQUIRE_TOKEN") {
             Some(v) => Some(flag("PLUMBLINE_REQUIRE_TOKEN", &v)?),
             None => f.require_token,
@@ -169,6 +175,7 @@ impl Config {
             durability,
             log_format,
             log_level,
+            limits,
             require_token,
             metrics_require_token,
             tls,
@@ -210,6 +217,9 @@ mod tests {
         assert_eq!(c.metrics_listen.port(), 9001);
         assert_eq!(c.durability, Durability::Normal);
         assert_eq!(c.data_dir, PathBuf::from(DEFAULT_DATA_DIR));
+        std::fs::write(&path, "[limits]\nmax_datasets = 3\n").expect("write");
+        let c = Config::load(Some(&path), |_| None).expect("limits section");
+        assert_eq!(c.limits.max_datasets, 3);
         assert!(
             !c.tokens_required(),
             "loopback without require_token is open"

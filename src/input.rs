@@ -126,11 +126,22 @@ impl Sheet {
                 }
                 Ok(false) => break,
                 Err(e) => {
+                    // The record index counts the header as record 0, so it
+                    // is the data row even when quoted cells span lines.
                     let at_row = e
                         .position()
-                        .map(|p| (p.line() as usize).saturating_sub(1))
+                        .map(|p| p.record() as usize)
+                        .filter(|&r| r > 0)
                         .unwrap_or(row + 1);
-                    return Err(at.err(Some(at_row), None, format!("malformed CSV record: {e}")));
+                    let column = match e.kind() {
+                        csv::ErrorKind::Utf8 { err, .. } => self.header.get(err.field()),
+                        _ => None,
+                    };
+                    return Err(at.err(
+                        Some(at_row),
+                        column.map(String::as_str),
+                        format!("malformed CSV record: {e}"),
+                    ));
                 }
             }
         }

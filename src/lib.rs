@@ -22,7 +22,7 @@
 //! - [`metrics`]: Prometheus series and the HTTP listener for `/metrics`,
 //!   `/healthz` and `/readyz`.
 //! - [`server`], [`config`], [`shutdown`]: starting, configuring and
-//!   draining the service.
+//!   draining the service; [`limits`]: what one client may ask of it.
 //! - [`input`]: reading units and predictions from CSV files, with errors that
 //!   name the file, row and column.
 //! - [`synth`]: published simulation designs with known effects, used by the
@@ -35,6 +35,7 @@ pub mod cli;
 pub mod config;
 pub mod estimate;
 pub mod input;
+pub mod limits;
 pub mod metrics;
 pub mod monitor;
 pub mod server;

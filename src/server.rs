@@ -25,9 +25,6 @@ use crate::monitor::Monitor;
 use crate::shutdown::ShutdownSignal;
 use crate::store::Store;
 
-/// Largest request message accepted (a batch of 10,000 units with 50 features fits).
-pub const MAX_MESSAGE_BYTES: usize = 16 * 1024 * 1024;
-
 /// A running server; dropping it does not stop it: call `stop`.
 pub struct Running {
     pub grpc_addr: SocketAddr,
@@ -148,10 +145,13 @@ pub async fn start(config: &Config) -> Result<Running, String> {
         .build_v1()
         .map_err(|e| e.to_string())?;
 
-    let m = &monitor;
-    // Every plumbline service passes the gate; health and reflection do not,
-    // so probes and tooling work without a token.
-    let mut builder = Server::builder();
+    // Limits: message sizes on every service, streams per connection, and
+    // the intake and registry checks (src/limits.rs). Every plumbline service
+    // passes the gate; health and reflection do not, so probes and tooling
+    // work without a token.
+    let (m, l) = (&monitor, &config.limits);
+    let (max_in, max_out) = (l.max_request_bytes, l.max_response_bytes);
+    let mut builder = Server::builder().max_concurrent_streams(l.max_concurrent_streams);
     if let Some(tls) = &config.tls {
         builder = builder
             .tls_config(tls_settings(tls)?)
@@ -164,35 +164,44 @@ pub async fn start(config: &Config) -> Result<Running, String> {
             &gate,
             pb::dataset_registry_server::DatasetRegistryServer::new(Datasets {
                 monitor: Arc::clone(m),
+                limits: l.clone(),
             })
-            .max_decoding_message_size(MAX_MESSAGE_BYTES),
+            .max_decoding_message_size(max_in)
+            .max_encoding_message_size(max_out),
         ))
         .add_service(gated(
             &gate,
             pb::model_registry_server::ModelRegistryServer::new(Models {
                 monitor: Arc::clone(m),
+                limits: l.clone(),
             })
-            .max_decoding_message_size(MAX_MESSAGE_BYTES),
+            .max_decoding_message_size(max_in)
+            .max_encoding_message_size(max_out),
         ))
         .add_service(gated(
             &gate,
             pb::intake_server::IntakeServer::new(IntakeService {
                 monitor: Arc::clone(m),
+                limits: l.clone(),
             })
-            .max_decoding_message_size(MAX_MESSAGE_BYTES),
+            .max_decoding_message_size(max_in)
+            .max_encoding_message_size(max_out),
         ))
         .add_service(gated(
             &gate,
             pb::scoring_server::ScoringServer::new(ScoringService {
                 monitor: Arc::clone(m),
             })
-            .max_encoding_message_size(MAX_MESSAGE_BYTES * 4),
+            .max_decoding_message_size(max_in)
+            .max_encoding_message_size(max_out),
         ))
         .add_service(gated(
             &gate,
             pb::event_feed_server::EventFeedServer::new(EventService {
                 monitor: Arc::clone(m),
-            }),
+            })
+            .max_decoding_message_size(max_in)
+            .max_encoding_message_size(max_out),
         ));
     let refresher = gate.spawn_refresher(store.clone(), signal.subscribe());
     let mut grpc_shutdown = signal.subscribe();

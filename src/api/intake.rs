@@ -1,19 +1,23 @@
 //! Intake: client-streaming batches, each validated and committed in one
 //! transaction before the next is read.
 
+use std::future::Future;
 use std::sync::Arc;
 
+use prost::Message;
 use tokio_stream::StreamExt;
-use tonic::{Request, Response, Status, Streaming};
+use tonic::{Code, Request, Response, Status, Streaming};
 
 use super::pb;
 use super::status::{from_monitor, refused};
 use crate::auth::{caller, Access, Caller};
-use crate::monitor::ingest::{OutcomeIn, PredictionIn, UnitIn};
+use crate::limits::{exceeded, Limits};
+use crate::monitor::ingest::{Fault, OutcomeIn, PredictionIn, Rejection, UnitIn};
 use crate::monitor::{BatchCounts, Monitor, MonitorError};
 
 pub struct IntakeService {
     pub monitor: Arc<Monitor>,
+    pub limits: Limits,
 }
 
 impl From<pb::UnitRow> for UnitIn {
@@ -50,24 +54,163 @@ impl From<pb::PredictionRow> for PredictionIn {
     }
 }
 
+/// The names and keys of a row that the configured length limits bound.
+trait Named {
+    /// (field, value, the limit's name, the limit).
+    fn names<'a>(&'a self, l: &Limits) -> Vec<(&'static str, &'a str, &'static str, usize)>;
+}
+
+impl Named for UnitIn {
+    fn names<'a>(&'a self, l: &Limits) -> Vec<(&'static str, &'a str, &'static str, usize)> {
+        vec![("key", &self.key, "max_key_bytes", l.max_key_bytes)]
+    }
+}
+
+impl Named for OutcomeIn {
+    fn names<'a>(&'a self, l: &Limits) -> Vec<(&'static str, &'a str, &'static str, usize)> {
+        vec![("unit_key", &self.unit_key, "max_key_bytes", l.max_key_bytes)]
+    }
+}
+
+impl Named for PredictionIn {
+    fn names<'a>(&'a self, l: &Limits) -> Vec<(&'static str, &'a str, &'static str, usize)> {
+        vec![
+            ("model", &self.model, "max_name_bytes", l.max_name_bytes),
+            ("unit_key", &self.unit_key, "max_key_bytes", l.max_key_bytes),
+        ]
+    }
+}
+
+/// The configured limits a batch must meet before the monitor sees it:
+/// its row count, and the length of every key and name.
+fn check_limits<R: Named>(l: &Limits, rows: &[R]) -> Result<(), Vec<Rejection>> {
+    let invalid = |row: usize, field: &str, reason: String| Rejection {
+        row,
+        field: field.into(),
+        reason,
+        fault: Fault::Invalid,
+    };
+    if rows.len() > l.max_batch_rows {
+        return Err(vec![invalid(
+            l.max_batch_rows,
+            "rows",
+            exceeded(
+                "max_batch_rows",
+                l.max_batch_rows,
+                format!("{} rows", rows.len()),
+            ),
+        )]);
+    }
+    let mut faults = Vec::new();
+    for (i, r) in rows.iter().enumerate() {
+        for (field, value, limit, max) in r.names(l) {
+            if value.len() > max && faults.len() < MAX_DETAIL_ROWS {
+                faults.push(invalid(
+                    i,
+                    field,
+                    exceeded(limit, max, format!("{} bytes", value.len())),
+                ));
+            }
+        }
+    }
+    if faults.is_empty() {
+        Ok(())
+    } else {
+        Err(faults)
+    }
+}
+
+/// The row-level reasons of a refused batch travel in a response header,
+/// which clients cap (16 KiB by default in the Rust and Go stacks); the
+/// reasons are cut to fit well inside it, the first one always kept.
+const MAX_DETAIL_BYTES: usize = 6 * 1024;
+const MAX_DETAIL_ROWS: usize = crate::monitor::ingest::MAX_REJECTIONS;
+
+fn fit_details(mut r: Vec<Rejection>) -> Vec<Rejection> {
+    let mut total = 0;
+    let keep = r
+        .iter()
+        .take_while(|x| {
+            total += x.field.len() + x.reason.len() + 16;
+            total <= MAX_DETAIL_BYTES
+        })
+        .count();
+    r.truncate(keep.max(1));
+    r
+}
+
+/// A stream-level failure after `receipt.batches` commits, with the receipt
+/// in the details so the client knows what is stored.
+fn with_receipt(code: Code, message: String, receipt: &pb::IntakeReceipt) -> Status {
+    Status::with_details(code, message, receipt.encode_to_vec().into())
+}
+
 /// Drives one intake stream: every message names the same dataset; each
 /// batch commits or is refused whole; the receipt counts what committed.
+///
+/// A message is decoded whole before its batch is validated, and the batch
+/// runs on its own task while the dataset's lock is held, so neither a slow
+/// client nor a cancelled call (deadline, disconnect) can stall the lock or
+/// leave a batch committed to disk but missing from the cache.
 async fn drain<M, R, F, Fut>(
     who: Caller,
+    monitor: &Arc<Monitor>,
+    limits: &Limits,
     mut stream: Streaming<M>,
     split: impl Fn(M) -> (String, Vec<R>),
     apply: F,
 ) -> Result<pb::IntakeReceipt, Status>
 where
-    F: Fn(String, Vec<R>) -> Fut,
-    Fut: std::future::Future<Output = Result<BatchCounts, MonitorError>>,
+    R: Named,
+    F: Fn(Arc<Monitor>, String, Vec<R>) -> Fut,
+    Fut: Future<Output = Result<BatchCounts, MonitorError>> + Send + 'static,
 {
     let mut receipt = pb::IntakeReceipt::default();
     let mut dataset: Option<String> = None;
-    while let Some(message) = stream.next().await {
-        let message = message?;
+    loop {
         let batch = receipt.batches;
+        let next = match tokio::time::timeout(limits.stream_idle(), stream.next()).await {
+            Ok(next) => next,
+            Err(_) => return Err(with_receipt(
+                Code::DeadlineExceeded,
+                format!(
+                    "no batch for {} s after batch {batch}: above limits.stream_idle_seconds = {}",
+                    limits.stream_idle_seconds, limits.stream_idle_seconds
+                ),
+                &receipt,
+            )),
+        };
+        let Some(message) = next else { break };
+        let message = match message {
+            Ok(m) => m,
+            Err(s) if s.code() == Code::OutOfRange && s.message().contains("too large") => {
+                return Err(with_receipt(
+                    Code::ResourceExhausted,
+                    format!(
+                        "batch {batch}: {}; limits.max_request_bytes = {}",
+                        s.message(),
+                        limits.max_request_bytes
+                    ),
+                    &receipt,
+                ))
+            }
+            Err(s) => return Err(with_receipt(s.code(), s.message().into(), &receipt)),
+        };
         let (name, rows) = split(message);
+        if name.len() > limits.max_name_bytes {
+            return Err(with_receipt(
+                Code::InvalidArgument,
+                format!(
+                    "batch {batch}: dataset: {}",
+                    exceeded(
+                        "max_name_bytes",
+                        limits.max_name_bytes,
+                        format!("{} bytes", name.len())
+                    )
+                ),
+                &receipt,
+            ));
+        }
         match &dataset {
             None => {
                 who.require(Access::Write, &name)?;
@@ -80,14 +223,27 @@ where
             }
             Some(_) => {}
         }
-        match apply(name, rows).await {
-            Ok(c) => {
+        if let Err(r) = check_limits(limits, &rows) {
+            return Err(refused(batch, &fit_details(r), receipt));
+        }
+        let task = tokio::spawn(apply(Arc::clone(monitor), name, rows));
+        match task.await {
+            Ok(Ok(c)) => {
                 receipt.batches += 1;
                 receipt.accepted += c.accepted as u64;
                 receipt.duplicate += c.duplicate as u64;
             }
-            Err(MonitorError::Rejected(r)) => return Err(refused(batch, &r, receipt)),
-            Err(e) => return Err(from_monitor(e)),
+            Ok(Err(MonitorError::Rejected(r))) => {
+                return Err(refused(batch, &fit_details(r), receipt))
+            }
+            Ok(Err(e)) => return Err(from_monitor(e)),
+            Err(e) => {
+                return Err(with_receipt(
+                    Code::Internal,
+                    format!("batch {batch}: {e}"),
+                    &receipt,
+                ))
+            }
         }
     }
     Ok(receipt)
@@ -100,13 +256,14 @@ impl pb::intake_server::Intake for IntakeService {
         &self,
         request: Request<Streaming<pb::UnitBatch>>,
     ) -> Result<Response<pb::IntakeReceipt>, Status> {
-        let m = &self.monitor;
         let who = caller(&request)?;
         let receipt = drain(
             who,
+            &self.monitor,
+            &self.limits,
             request.into_inner(),
             |b: pb::UnitBatch| (b.dataset, b.rows.into_iter().map(UnitIn::from).collect()),
-            |d, rows: Vec<UnitIn>| async move { m.ingest_units(&d, &rows).await },
+            |m, d, rows: Vec<UnitIn>| async move { m.ingest_units(&d, &rows).await },
         )
         .await?;
         Ok(Response::new(receipt))
@@ -117,13 +274,14 @@ impl pb::intake_server::Intake for IntakeService {
         &self,
         request: Request<Streaming<pb::OutcomeBatch>>,
     ) -> Result<Response<pb::IntakeReceipt>, Status> {
-        let m = &self.monitor;
         let who = caller(&request)?;
         let receipt = drain(
             who,
+            &self.monitor,
+            &self.limits,
             request.into_inner(),
             |b: pb::OutcomeBatch| (b.dataset, b.rows.into_iter().map(OutcomeIn::from).collect()),
-            |d, rows: Vec<OutcomeIn>| async move { m.ingest_outcomes(&d, &rows).await },
+            |m, d, rows: Vec<OutcomeIn>| async move { m.ingest_outcomes(&d, &rows).await },
         )
         .await?;
         Ok(Response::new(receipt))
@@ -134,10 +292,11 @@ impl pb::intake_server::Intake for IntakeService {
         &self,
         request: Request<Streaming<pb::PredictionBatch>>,
     ) -> Result<Response<pb::IntakeReceipt>, Status> {
-        let m = &self.monitor;
         let who = caller(&request)?;
         let receipt = drain(
             who,
+            &self.monitor,
+            &self.limits,
             request.into_inner(),
             |b: pb::PredictionBatch| {
                 (
@@ -145,7 +304,7 @@ impl pb::intake_server::Intake for IntakeService {
                     b.rows.into_iter().map(PredictionIn::from).collect(),
                 )
             },
-            |d, rows: Vec<PredictionIn>| async move { m.ingest_predictions(&d, &rows).await },
+            |m, d, rows: Vec<PredictionIn>| async move { m.ingest_predictions(&d, &rows).await },
         )
         .await?;
         Ok(Response::new(receipt))

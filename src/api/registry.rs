@@ -8,16 +8,35 @@ use super::pb;
 use super::status::{from_monitor, missing};
 use crate::auth::{caller, Access};
 use crate::estimate::OutcomeKind;
+use crate::limits::{exceeded, Limits};
 use crate::monitor::spec::DatasetSpec;
 use crate::monitor::{DatasetInfo, Monitor};
 use crate::store::StoredModel;
 
 pub struct Datasets {
     pub monitor: Arc<Monitor>,
+    pub limits: Limits,
 }
 
 pub struct Models {
     pub monitor: Arc<Monitor>,
+    pub limits: Limits,
+}
+
+/// A dataset or model name within `limits.max_name_bytes`, checked before
+/// the name is looked up (and echoed in a message).
+fn bounded(l: &Limits, field: &str, name: &str) -> Result<(), Status> {
+    if name.len() > l.max_name_bytes {
+        return Err(Status::invalid_argument(format!(
+            "{field}: {}",
+            exceeded(
+                "max_name_bytes",
+                l.max_name_bytes,
+                format!("{} bytes", name.len())
+            )
+        )));
+    }
+    Ok(())
 }
 
 impl TryFrom<pb::DatasetSpec> for DatasetSpec {
@@ -128,6 +147,31 @@ impl pb::dataset_registry_server::DatasetRegistry for Datasets {
             .spec
             .ok_or_else(|| missing("spec"))?
             .try_into()?;
+        let l = &self.limits;
+        bounded(l, "name", &spec.name)?;
+        if spec.feature_names.len() > l.max_features {
+            return Err(Status::invalid_argument(format!(
+                "feature_names: {}",
+                exceeded(
+                    "max_features",
+                    l.max_features,
+                    format!("{} features", spec.feature_names.len())
+                )
+            )));
+        }
+        // Counted before the creation, so concurrent creations of new names
+        // near the limit may pass it by a few.
+        let existing = self.monitor.handles();
+        if existing.len() >= l.max_datasets && !existing.iter().any(|h| h.name == spec.name) {
+            return Err(Status::resource_exhausted(format!(
+                "datasets: {}",
+                exceeded(
+                    "max_datasets",
+                    l.max_datasets,
+                    format!("a new dataset would be number {}", existing.len() + 1)
+                )
+            )));
+        }
         let info = self
             .monitor
             .create_dataset(spec)
@@ -144,6 +188,7 @@ impl pb::dataset_registry_server::DatasetRegistry for Datasets {
         let who = caller(&request)?;
         let name = request.into_inner().name;
         who.require(Access::Read, &name)?;
+        bounded(&self.limits, "name", &name)?;
         let info = self.monitor.dataset(&name).await.map_err(from_monitor)?;
         Ok(Response::new(info.into()))
     }
@@ -177,6 +222,26 @@ impl pb::model_registry_server::ModelRegistry for Models {
         let who = caller(&request)?;
         let r = request.into_inner();
         who.require(Access::Write, &r.dataset)?;
+        let l = &self.limits;
+        bounded(l, "dataset", &r.dataset)?;
+        bounded(l, "name", &r.name)?;
+        let registered = self
+            .monitor
+            .models(&r.dataset, true)
+            .await
+            .map_err(from_monitor)?;
+        if registered.len() >= l.max_models_per_dataset
+            && !registered.iter().any(|(m, _)| m.name == r.name)
+        {
+            return Err(Status::resource_exhausted(format!(
+                "models: {}",
+                exceeded(
+                    "max_models_per_dataset",
+                    l.max_models_per_dataset,
+                    format!("a new model would be number {}", registered.len() + 1)
+                )
+            )));
+        }
         let m = self
             .monitor
             .register_model(&r.dataset, &r.name, &r.version, &r.description)
@@ -193,6 +258,7 @@ impl pb::model_registry_server::ModelRegistry for Models {
         let who = caller(&request)?;
         let r = request.into_inner();
         who.require(Access::Read, &r.dataset)?;
+        bounded(&self.limits, "dataset", &r.dataset)?;
         let models = self
             .monitor
             .models(&r.dataset, r.include_retired)
@@ -212,6 +278,8 @@ impl pb::model_registry_server::ModelRegistry for Models {
         let who = caller(&request)?;
         let r = request.into_inner();
         who.require(Access::Write, &r.dataset)?;
+        bounded(&self.limits, "dataset", &r.dataset)?;
+        bounded(&self.limits, "name", &r.name)?;
         let m = self
             .monitor
             .retire_model(&r.dataset, &r.name)

@@ -498,6 +498,7 @@ pub fn run(args: &DemoArgs) -> ExitCode {
         durability: Durability::Normal,
         log_format: LogFormat::Human,
         log_level: "warn".into(),
+        limits: Default::default(),
         require_token: None,
         metrics_require_token: false,
         tls: None,

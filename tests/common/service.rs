@@ -43,6 +43,7 @@ pub fn config(dir: &TempDir) -> Config {
         durability: Durability::Normal,
         log_format: LogFormat::Human,
         log_level: "warn".into(),
+        limits: Default::default(),
         require_token: None,
         metrics_require_token: false,
         tls: None,

@@ -1,0 +1,147 @@
+//! Resource limits: how much one client may ask of the server at once.
+//!
+//! Every limit has a production default, can be changed in the `[limits]`
+//! section of the server's TOML file, and is reported by name and value when
+//! a request runs into it. Limits that the monitor also enforces as a fixed
+//! ceiling (batch rows, key and name lengths) may be lowered, never raised:
+//! `check` refuses a larger value at start-up.
+
+use std::time::Duration;
+
+use serde::Deserialize;
+
+use crate::monitor::ingest::{MAX_BATCH_ROWS, MAX_KEY_BYTES};
+use crate::monitor::spec::MAX_NAME_LEN;
+
+#[derive(Debug, Clone, PartialEq, Eq, Deserialize)]
+#[serde(default, deny_unknown_fields)]
+pub struct Limits {
+    /// Largest gRPC message a client may send, in bytes (after any
+    /// compression is undone). 16 MiB holds a batch of 10,000 units with
+    /// 200 features; wider units must come in smaller batches.
+    pub max_request_bytes: usize,
+    /// Largest gRPC message the server sends, in bytes. Scoreboards with many
+    /// models and long histories are the large replies; 64 MiB keeps a
+    /// runaway reply from exhausting a client.
+    pub max_response_bytes: usize,
+    /// Most rows in one intake batch (one transaction). Bounds the time the
+    /// dataset's write lock is held by one batch. At most 10,000.
+    pub max_batch_rows: usize,
+    /// Most features a dataset may declare. Every unit stores one double per
+    /// feature and the quadratic learners grow with its square.
+    pub max_features: usize,
+    /// Most datasets on one server. Each keeps its columnar cache in memory
+    /// and its own recompute scheduler.
+    pub max_datasets: usize,
+    /// Most models registered on one dataset, retired ones included (their
+    /// predictions stay stored). Each recompute scores every active model
+    /// and compares every pair, so the cost grows with the square.
+    pub max_models_per_dataset: usize,
+    /// Longest dataset or model name, in bytes. At most 128.
+    pub max_name_bytes: usize,
+    /// Longest unit key, in bytes. At most 256.
+    pub max_key_bytes: usize,
+    /// Most concurrent RPCs (HTTP/2 streams) one connection may hold open;
+    /// further calls on that connection wait for one to finish.
+    pub max_concurrent_streams: u32,
+    /// An intake stream that sends no message for this many seconds is ended
+    /// with DEADLINE_EXCEEDED, so a stalled client cannot hold a stream (and
+    /// its connection slot) forever. What it committed before stays.
+    pub stream_idle_seconds: u64,
+}
+
+impl Default for Limits {
+    fn default() -> Self {
+        Self {
+            max_request_bytes: 16 * 1024 * 1024,
+            max_response_bytes: 64 * 1024 * 1024,
+            max_batch_rows: MAX_BATCH_ROWS,
+            max_features: 256,
+            max_datasets: 256,
+            max_models_per_dataset: 100,
+            max_name_bytes: MAX_NAME_LEN,
+            max_key_bytes: MAX_KEY_BYTES,
+            max_concurrent_streams: 64,
+            stream_idle_seconds: 300,
+        }
+    }
+}
+
+/// A limit a request ran into: the limit's name, its value and what the
+/// request asked for, worded for the status message.
+pub fn exceeded(
+    limit: &str,
+    value: impl std::fmt::Display,
+    asked: impl std::fmt::Display,
+) -> String {
+    format!("{asked}, above limits.{limit} = {value}")
+}
+
+impl Limits {
+    /// Refuses zero values and values above the monitor's fixed ceilings.
+    pub fn check(&self) -> Result<(), String> {
+        let ceilings = [
+            ("max_batch_rows", self.max_batch_rows, MAX_BATCH_ROWS),
+            ("max_name_bytes", self.max_name_bytes, MAX_NAME_LEN),
+            ("max_key_bytes", self.max_key_bytes, MAX_KEY_BYTES),
+        ];
+        for (name, v, ceiling) in ceilings {
+            if v > ceiling {
+                return Err(format!("limits.{name}: {v} is above the ceiling {ceiling}"));
+            }
+        }
+        let positive = [
+            ("max_request_bytes", self.max_request_bytes as u64),
+            ("max_response_bytes", self.max_response_bytes as u64),
+            ("max_batch_rows", self.max_batch_rows as u64),
+            ("max_features", self.max_features as u64),
+            ("max_datasets", self.max_datasets as u64),
+            ("max_models_per_dataset", self.max_models_per_dataset as u64),
+            ("max_name_bytes", self.max_name_bytes as u64),
+            ("max_key_bytes", self.max_key_bytes as u64),
+            (
+                "max_concurrent_streams",
+                u64::from(self.max_concurrent_streams),
+            ),
+            ("stream_idle_seconds", self.stream_idle_seconds),
+        ];
+        for (name, v) in positive {
+            if v == 0 {
+                return Err(format!("limits.{name}: must be at least 1"));
+            }
+        }
+        Ok(())
+    }
+
+    pub fn stream_idle(&self) -> Duration {
+        Duration::from_secs(self.stream_idle_seconds)
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn defaults_pass_and_raised_ceilings_are_refused() {
+        assert_eq!(Limits::default().check(), Ok(()));
+        let raised = Limits {
+            max_key_bytes: MAX_KEY_BYTES + 1,
+            ..Limits::default()
+        };
+        let err = raised.check().expect_err("above the ceiling");
+        assert!(
+            err.contains("limits.max_key_bytes") && err.contains("257"),
+            "{err}"
+        );
+        let zero = Limits {
+            max_datasets: 0,
+            ..Limits::default()
+        };
+        assert!(zero.check().expect_err("zero").contains("max_datasets"));
+        let parsed: Limits = toml::from_str("max_datasets = 3\n").expect("toml");
+        assert_eq!(parsed.max_datasets, 3);
+        assert_eq!(parsed.max_batch_rows, MAX_BATCH_ROWS);
+        assert!(toml::from_str::<Limits>("max_dataset = 3\n").is_err());
+    }
+}
