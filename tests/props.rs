@@ -314,25 +314,26 @@ fn cache() -> DatasetCache {
     c
 }
 
-/// What a generated row is: valid, or broken in one named way.
+/// What a generated row is: valid, or broken in one of five ways; each
+/// validation property gives the five its own meaning in its match arms.
 #[derive(Debug, Clone, Copy)]
 enum Flaw {
     None,
-    A,
-    B,
-    C,
-    E,
-    F,
+    One,
+    Two,
+    Three,
+    Four,
+    Five,
 }
 
 fn flaw() -> impl Strategy<Value = Flaw> {
     prop_oneof![
         4 => Just(Flaw::None),
-        1 => Just(Flaw::A),
-        1 => Just(Flaw::B),
-        1 => Just(Flaw::C),
-        1 => Just(Flaw::E),
-        1 => Just(Flaw::F),
+        1 => Just(Flaw::One),
+        1 => Just(Flaw::Two),
+        1 => Just(Flaw::Three),
+        1 => Just(Flaw::Four),
+        1 => Just(Flaw::Five),
     ]
 }
 
@@ -386,12 +387,12 @@ proptest! {
             };
             let why = match f {
                 Flaw::None => None,
-                Flaw::A => { r.features[1] = f64::NAN; Some(("features[1]", Fault::Invalid)) }
-                Flaw::B => { r.features.push(1.0); Some(("features", Fault::Invalid)) }
-                Flaw::C => { r.treatment = 7; Some(("treatment", Fault::Invalid)) }
-                Flaw::E => { r.propensity = Some(1.0); Some(("propensity", Fault::Invalid)) }
+                Flaw::One => { r.features[1] = f64::NAN; Some(("features[1]", Fault::Invalid)) }
+                Flaw::Two => { r.features.push(1.0); Some(("features", Fault::Invalid)) }
+                Flaw::Three => { r.treatment = 7; Some(("treatment", Fault::Invalid)) }
+                Flaw::Four => { r.propensity = Some(1.0); Some(("propensity", Fault::Invalid)) }
                 // A stored key with other values.
-                Flaw::F => { r.key = "k3".into(); Some(("key", Fault::Conflict)) }
+                Flaw::Five => { r.key = "k3".into(); Some(("key", Fault::Conflict)) }
             };
             if let Some(w) = why { flawed.insert(i, w); }
             r
@@ -409,12 +410,12 @@ proptest! {
             let mut r = OutcomeIn { unit_key: format!("k{}", 10 + i), value: 1.0, observed_at_ms: 0 };
             let why = match f {
                 Flaw::None => None,
-                Flaw::A => { r.value = f64::INFINITY; Some(("value", Fault::Invalid)) }
-                Flaw::B => { r.value = 0.5; Some(("value", Fault::Invalid)) }
-                Flaw::C => { r.unit_key = "nobody".into(); Some(("unit_key", Fault::Unknown)) }
-                Flaw::E => { r.observed_at_ms = -1; Some(("observed_at_ms", Fault::Invalid)) }
+                Flaw::One => { r.value = f64::INFINITY; Some(("value", Fault::Invalid)) }
+                Flaw::Two => { r.value = 0.5; Some(("value", Fault::Invalid)) }
+                Flaw::Three => { r.unit_key = "nobody".into(); Some(("unit_key", Fault::Unknown)) }
+                Flaw::Four => { r.observed_at_ms = -1; Some(("observed_at_ms", Fault::Invalid)) }
                 // k0 already has outcome 1.0 (unstamped): another value conflicts.
-                Flaw::F => { r.unit_key = "k0".into(); r.value = 0.0; Some(("value", Fault::Conflict)) }
+                Flaw::Five => { r.unit_key = "k0".into(); r.value = 0.0; Some(("value", Fault::Conflict)) }
             };
             if let Some(w) = why { flawed.insert(i, w); }
             r
@@ -436,13 +437,13 @@ proptest! {
             let mut r = PredictionIn { model: "m1".into(), unit_key: format!("k{}", 12 + i), effect: 0.1, predicted_at_ms: 0 };
             let why = match f {
                 Flaw::None => None,
-                Flaw::A => { r.effect = f64::NAN; Some(("effect", Fault::Invalid)) }
-                Flaw::B => { r.model = "m2".into(); Some(("model", Fault::Order)) }
-                Flaw::C => { r.model = "ghost".into(); Some(("model", Fault::Unknown)) }
+                Flaw::One => { r.effect = f64::NAN; Some(("effect", Fault::Invalid)) }
+                Flaw::Two => { r.model = "m2".into(); Some(("model", Fault::Order)) }
+                Flaw::Three => { r.model = "ghost".into(); Some(("model", Fault::Unknown)) }
                 // k0 has an outcome: the prediction could have seen it.
-                Flaw::E => { r.unit_key = "k0".into(); Some(("unit_key", Fault::Order)) }
+                Flaw::Four => { r.unit_key = "k0".into(); Some(("unit_key", Fault::Order)) }
                 // m1 predicted 0.5 for k10 already.
-                Flaw::F => { r.unit_key = "k10".into(); Some(("effect", Fault::Conflict)) }
+                Flaw::Five => { r.unit_key = "k10".into(); Some(("effect", Fault::Conflict)) }
             };
             if let Some(w) = why { flawed.insert(i, w); }
             r

@@ -169,16 +169,12 @@ where
     let mut dataset: Option<String> = None;
     loop {
         let batch = receipt.batches;
-        let next = match tokio::time::timeout(limits.stream_idle(), stream.next()).await {
-            Ok(next) => next,
-            Err(_) => return Err(with_receipt(
-                Code::DeadlineExceeded,
-                format!(
-                    "no batch for {} s after batch {batch}: above limits.stream_idle_seconds = {}",
-                    limits.stream_idle_seconds, limits.stream_idle_seconds
-                ),
-                &receipt,
-            )),
+        let Ok(next) = tokio::time::timeout(limits.stream_idle(), stream.next()).await else {
+            let idle = limits.stream_idle_seconds;
+            let why = format!(
+                "no batch for {idle} s after batch {batch}: above limits.stream_idle_seconds = {idle}"
+            );
+            return Err(with_receipt(Code::DeadlineExceeded, why, &receipt));
         };
         let Some(message) = next else { break };
         let message = match message {
