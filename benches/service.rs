@@ -1,30 +1,64 @@
-//! End-to-end service figures on generated data, over loopback gRPC into
-//! SQLite: ingest throughput (batches of 1,000 units with 20 features,
-//! acknowledged after commit), a full cross-fitted refit, and an
-//! incremental recompute after a new cohort, next to a full refit on the
-//! same data.
+//! End-to-end service figures on generated data, with the real
+//! `plumbline serve` binary as a child process, over loopback gRPC into
+//! SQLite (durability full: every batch is fsynced before it is
+//! acknowledged). For each history size n:
 //!
-//! `cargo bench --bench service` (PLUMBLINE_BENCH_UNITS sets the history,
-//! default 200,000; the cohort is 10,000 units; 10 models).
+//! - ingest: n units with 20 features in batches of 1,000 on one client
+//!   stream, then 10 models' predictions and the outcomes;
+//! - a full cross-fitted refit and scoring of every window;
+//! - a new cohort of 10,000 units (predictions, outcomes) and the
+//!   incremental recompute that scores it with the current nuisance fit;
+//! - the server's peak resident memory (VmHWM) against the raw columns it
+//!   holds: per unit 20 features and one outcome as f64, the treatment as a
+//!   byte and 10 predictions as f64 (249 bytes).
+//!
+//! `cargo bench --bench service` runs n = 10,000 and 100,000 (about two
+//! minutes). `PLUMBLINE_BENCH_SIZES=10000,100000,1000000` adds the 1M run
+//! (several minutes); `PLUMBLINE_BENCH_SIZES=50000,100000,200000,400000`
+//! shows that the incremental recompute stays flat as the history grows.
 
-use std::time::Instant;
+use std::net::TcpListener;
+use std::path::PathBuf;
+use std::process::{Child, Command, Stdio};
+use std::time::{Duration, Instant};
 
 use plumbline::api::pb;
-use plumbline::config::{Config, LogFormat};
-use plumbline::store::Durability;
-use plumbline::synth::{candidates, draw, effect_moments, Design};
+use plumbline::synth::{candidates, draw, effect_moments, Candidate, Design, Draw};
 use tonic::transport::Channel;
 
 const FEATURES: usize = 20;
 const BATCH: usize = 1000;
 const MODELS: usize = 10;
 const COHORT: usize = 10_000;
+/// Raw bytes per unit: features and outcome as f64, treatment as a byte,
+/// one f64 per model's prediction.
+const RAW_BYTES_PER_UNIT: usize = 8 * FEATURES + 8 + 1 + 8 * MODELS;
+const NAME: &str = "bench";
 
-fn resident_mib() -> f64 {
-    std::fs::read_to_string("/proc/self/status")
+struct Row {
+    units: usize,
+    ingest_units_per_s: f64,
+    ingest_predictions_per_s: f64,
+    refit_s: f64,
+    incremental_s: f64,
+    incremental_server_ms: f64,
+    peak_mib: f64,
+    raw_mib: f64,
+}
+
+fn free_port() -> u16 {
+    TcpListener::bind("127.0.0.1:0")
+        .and_then(|l| l.local_addr())
+        .map(|a| a.port())
+        .expect("a free port")
+}
+
+/// Peak resident memory of a process, from /proc/PID/status.
+fn peak_mib(pid: u32) -> f64 {
+    std::fs::read_to_string(format!("/proc/{pid}/status"))
         .ok()
         .and_then(|s| {
-            s.lines().find(|l| l.starts_with("VmRSS:")).and_then(|l| {
+            s.lines().find(|l| l.starts_with("VmHWM:")).and_then(|l| {
                 l.split_whitespace()
                     .nth(1)
                     .and_then(|v| v.parse::<f64>().ok())
@@ -34,42 +68,133 @@ fn resident_mib() -> f64 {
         .unwrap_or(0.0)
 }
 
-#[tokio::main(flavor = "multi_thread", worker_threads = 2)]
-async fn main() {
-    let history: usize = std::env::var("PLUMBLINE_BENCH_UNITS")
-        .ok()
-        .and_then(|v| v.parse().ok())
-        .unwrap_or(200_000);
-    let dir = std::env::temp_dir().join(format!("plumbline-bench-{}", std::process::id()));
-    let _ = std::fs::remove_dir_all(&dir);
-    let config = Config {
-        listen: "127.0.0.1:0".parse().expect("addr"),
-        metrics_listen: "127.0.0.1:0".parse().expect("addr"),
-        data_dir: dir.clone(),
-        durability: Durability::Full,
-        log_format: LogFormat::Human,
-        log_level: "warn".into(),
-        limits: Default::default(),
-        require_token: None,
-        metrics_require_token: false,
-        tls: None,
-    };
-    let srv = plumbline::server::start(&config).await.expect("start");
-    let channel = Channel::from_shared(format!("http://{}", srv.grpc_addr))
-        .expect("uri")
-        .connect()
-        .await
-        .expect("connect");
+struct Server {
+    child: Child,
+    dir: PathBuf,
+    addr: String,
+}
+
+impl Server {
+    fn start(tag: usize) -> Server {
+        let dir =
+            std::env::temp_dir().join(format!("plumbline-bench-{}-{tag}", std::process::id()));
+        let _ = std::fs::remove_dir_all(&dir);
+        let addr = format!("127.0.0.1:{}", free_port());
+        let child = Command::new(env!("CARGO_BIN_EXE_plumbline"))
+            .arg("serve")
+            .args(["--listen", &addr])
+            .args(["--metrics-listen", &format!("127.0.0.1:{}", free_port())])
+            .arg("--data-dir")
+            .arg(&dir)
+            .env("PLUMBLINE_LOG", "warn")
+            .env("PLUMBLINE_DURABILITY", "full")
+            .stdout(Stdio::null())
+            .spawn()
+            .expect("start plumbline serve");
+        Server { child, dir, addr }
+    }
+
+    async fn connect(&self) -> Channel {
+        let deadline = Instant::now() + Duration::from_secs(60);
+        loop {
+            match Channel::from_shared(format!("http://{}", self.addr))
+                .expect("uri")
+                .connect()
+                .await
+            {
+                Ok(c) => return c,
+                Err(e) if Instant::now() > deadline => panic!("server did not start: {e}"),
+                Err(_) => tokio::time::sleep(Duration::from_millis(100)).await,
+            }
+        }
+    }
+}
+
+impl Drop for Server {
+    fn drop(&mut self) {
+        let _ = self.child.kill();
+        let _ = self.child.wait();
+        let _ = std::fs::remove_dir_all(&self.dir);
+    }
+}
+
+fn unit_batches(data: &Draw, range: std::ops::Range<usize>) -> Vec<pb::UnitBatch> {
+    range
+        .collect::<Vec<_>>()
+        .chunks(BATCH)
+        .map(|idx| pb::UnitBatch {
+            dataset: NAME.into(),
+            rows: idx
+                .iter()
+                .map(|&i| pb::UnitRow {
+                    key: format!("u{i}"),
+                    features: data.features.row(i).to_vec(),
+                    treatment: data.treatment[i] as u32,
+                    propensity: None,
+                    cohort: format!("c{}", i / COHORT),
+                    assigned_at_ms: 0,
+                })
+                .collect(),
+        })
+        .collect()
+}
+
+fn prediction_batches(
+    cands: &[Candidate],
+    range: std::ops::Range<usize>,
+) -> Vec<pb::PredictionBatch> {
+    let idx: Vec<usize> = range.collect();
+    cands
+        .iter()
+        .flat_map(|c| {
+            idx.chunks(BATCH)
+                .map(|chunk| pb::PredictionBatch {
+                    dataset: NAME.into(),
+                    rows: chunk
+                        .iter()
+                        .map(|&i| pb::PredictionRow {
+                            model: c.predictions.name.clone(),
+                            unit_key: format!("u{i}"),
+                            effect: c.predictions.effects[i],
+                            predicted_at_ms: 0,
+                        })
+                        .collect(),
+                })
+                .collect::<Vec<_>>()
+        })
+        .collect()
+}
+
+fn outcome_batches(data: &Draw, range: std::ops::Range<usize>) -> Vec<pb::OutcomeBatch> {
+    range
+        .collect::<Vec<_>>()
+        .chunks(BATCH)
+        .map(|idx| pb::OutcomeBatch {
+            dataset: NAME.into(),
+            rows: idx
+                .iter()
+                .map(|&i| pb::OutcomeRow {
+                    unit_key: format!("u{i}"),
+                    value: data.outcome[i],
+                    observed_at_ms: 0,
+                })
+                .collect(),
+        })
+        .collect()
+}
+
+async fn measure(history: usize) -> Row {
+    let server = Server::start(history);
+    let channel = server.connect().await;
     let mut datasets = pb::dataset_registry_client::DatasetRegistryClient::new(channel.clone());
     let mut models = pb::model_registry_client::ModelRegistryClient::new(channel.clone());
     let mut intake = pb::intake_client::IntakeClient::new(channel.clone());
     let mut scoring = pb::scoring_client::ScoringClient::new(channel.clone())
         .max_decoding_message_size(256 << 20);
-    let name = "bench";
     datasets
         .create_dataset(pb::CreateDatasetRequest {
             spec: Some(pb::DatasetSpec {
-                name: name.into(),
+                name: NAME.into(),
                 feature_names: (1..=FEATURES).map(|j| format!("x{j}")).collect(),
                 outcome_kind: pb::OutcomeKind::Continuous as i32,
                 recompute: Some(pb::RecomputePolicy {
@@ -90,7 +215,7 @@ async fn main() {
     for c in &cands {
         models
             .register_model(pb::RegisterModelRequest {
-                dataset: name.into(),
+                dataset: NAME.into(),
                 name: c.predictions.name.clone(),
                 version: "1".into(),
                 description: String::new(),
@@ -98,157 +223,120 @@ async fn main() {
             .await
             .expect("register");
     }
-    let unit_batches = |range: std::ops::Range<usize>| -> Vec<pb::UnitBatch> {
-        range
-            .collect::<Vec<_>>()
-            .chunks(BATCH)
-            .map(|idx| pb::UnitBatch {
-                dataset: name.into(),
-                rows: idx
-                    .iter()
-                    .map(|&i| pb::UnitRow {
-                        key: format!("u{i}"),
-                        features: data.features.row(i).to_vec(),
-                        treatment: data.treatment[i] as u32,
-                        propensity: None,
-                        cohort: format!("c{}", i / COHORT),
-                        assigned_at_ms: 0,
-                    })
-                    .collect(),
-            })
-            .collect()
-    };
-    let load = |range: std::ops::Range<usize>| {
-        let preds: Vec<pb::PredictionBatch> = cands
-            .iter()
-            .flat_map(|c| {
-                range
-                    .clone()
-                    .collect::<Vec<_>>()
-                    .chunks(BATCH)
-                    .map(|idx| pb::PredictionBatch {
-                        dataset: name.into(),
-                        rows: idx
-                            .iter()
-                            .map(|&i| pb::PredictionRow {
-                                model: c.predictions.name.clone(),
-                                unit_key: format!("u{i}"),
-                                effect: c.predictions.effects[i],
-                                predicted_at_ms: 0,
-                            })
-                            .collect(),
-                    })
-                    .collect::<Vec<_>>()
-            })
-            .collect();
-        let outcomes: Vec<pb::OutcomeBatch> = range
-            .collect::<Vec<_>>()
-            .chunks(BATCH)
-            .map(|idx| pb::OutcomeBatch {
-                dataset: name.into(),
-                rows: idx
-                    .iter()
-                    .map(|&i| pb::OutcomeRow {
-                        unit_key: format!("u{i}"),
-                        value: data.outcome[i],
-                        observed_at_ms: 0,
-                    })
-                    .collect(),
-            })
-            .collect();
-        (preds, outcomes)
-    };
 
-    // Ingest throughput: one client stream of 1,000-unit batches.
-    let batches = unit_batches(0..history);
+    let batches = unit_batches(&data, 0..history);
     let t = Instant::now();
     intake
         .send_units(tokio_stream::iter(batches))
         .await
         .expect("units");
-    let secs = t.elapsed().as_secs_f64();
-    println!(
-        "ingest units: {history} units with {FEATURES} features in {secs:.2} s = {:.0} units/s (batches of {BATCH}, durability full)",
-        history as f64 / secs
-    );
-    let (preds, outcomes) = load(0..history);
+    let ingest_units_per_s = history as f64 / t.elapsed().as_secs_f64();
+    let preds = prediction_batches(&cands, 0..history);
     let t = Instant::now();
     intake
         .send_predictions(tokio_stream::iter(preds))
         .await
         .expect("predictions");
-    let secs = t.elapsed().as_secs_f64();
-    println!(
-        "ingest predictions: {} rows in {secs:.2} s = {:.0} rows/s",
-        history * MODELS,
-        (history * MODELS) as f64 / secs
-    );
+    let ingest_predictions_per_s = (history * MODELS) as f64 / t.elapsed().as_secs_f64();
     intake
-        .send_outcomes(tokio_stream::iter(outcomes))
+        .send_outcomes(tokio_stream::iter(outcome_batches(&data, 0..history)))
         .await
         .expect("outcomes");
 
     let t = Instant::now();
     let r = scoring
         .recompute(pb::RecomputeRequest {
-            dataset: name.into(),
+            dataset: NAME.into(),
             refit: true,
         })
         .await
         .expect("refit")
         .into_inner();
-    println!(
-        "full refit + scoring on {} units, {MODELS} models: {:.2} s (server-side {:.0} ms); resident {:.0} MiB",
-        r.units,
-        t.elapsed().as_secs_f64(),
-        r.millis,
-        resident_mib()
-    );
+    assert!(r.refitted);
+    let refit_s = t.elapsed().as_secs_f64();
 
     intake
-        .send_units(tokio_stream::iter(unit_batches(history..total)))
+        .send_units(tokio_stream::iter(unit_batches(&data, history..total)))
         .await
         .expect("cohort units");
-    let (preds, outcomes) = load(history..total);
     intake
-        .send_predictions(tokio_stream::iter(preds))
+        .send_predictions(tokio_stream::iter(prediction_batches(
+            &cands,
+            history..total,
+        )))
         .await
         .expect("cohort predictions");
     intake
-        .send_outcomes(tokio_stream::iter(outcomes))
+        .send_outcomes(tokio_stream::iter(outcome_batches(&data, history..total)))
         .await
         .expect("cohort outcomes");
     let t = Instant::now();
     let r = scoring
         .recompute(pb::RecomputeRequest {
-            dataset: name.into(),
+            dataset: NAME.into(),
             refit: false,
         })
         .await
         .expect("incremental")
         .into_inner();
     assert!(!r.refitted);
+    assert_eq!(r.units, total as u64);
+    let incremental_s = t.elapsed().as_secs_f64();
+    Row {
+        units: history,
+        ingest_units_per_s,
+        ingest_predictions_per_s,
+        refit_s,
+        incremental_s,
+        incremental_server_ms: r.millis,
+        peak_mib: peak_mib(server.child.id()),
+        raw_mib: (total * RAW_BYTES_PER_UNIT) as f64 / (1024.0 * 1024.0),
+    }
+}
+
+#[tokio::main(flavor = "multi_thread", worker_threads = 2)]
+async fn main() {
+    let sizes: Vec<usize> = std::env::var("PLUMBLINE_BENCH_SIZES")
+        .unwrap_or_else(|_| "10000,100000".into())
+        .split(',')
+        .filter_map(|s| s.trim().replace('_', "").parse().ok())
+        .collect();
+    let mut rows = Vec::new();
+    for &n in &sizes {
+        let row = measure(n).await;
+        eprintln!(
+            "n = {n}: ingest {:.0} units/s, refit {:.2} s, incremental {:.3} s",
+            row.ingest_units_per_s, row.refit_s, row.incremental_s
+        );
+        rows.push(row);
+    }
     println!(
-        "incremental recompute after a {COHORT}-unit cohort on {history}: {:.2} s (server-side {:.0} ms)",
-        t.elapsed().as_secs_f64(),
-        r.millis
+        "\n{:>9} | {:>13} | {:>13} | {:>9} | {:>17} | {:>11} | {:>8} | {:>9}",
+        "history",
+        "units/s",
+        "predictions/s",
+        "refit s",
+        "incremental s (ms)",
+        "peak MiB",
+        "raw MiB",
+        "peak/raw"
     );
-    let t = Instant::now();
-    let r = scoring
-        .recompute(pb::RecomputeRequest {
-            dataset: name.into(),
-            refit: true,
-        })
-        .await
-        .expect("refit")
-        .into_inner();
+    for r in &rows {
+        println!(
+            "{:>9} | {:>13.0} | {:>13.0} | {:>9.2} | {:>9.3} ({:>6.0}) | {:>11.0} | {:>8.0} | {:>9.2}",
+            r.units,
+            r.ingest_units_per_s,
+            r.ingest_predictions_per_s,
+            r.refit_s,
+            r.incremental_s,
+            r.incremental_server_ms,
+            r.peak_mib,
+            r.raw_mib,
+            r.peak_mib / r.raw_mib
+        );
+    }
     println!(
-        "full refit on the same {} units: {:.2} s (server-side {:.0} ms); resident {:.0} MiB",
-        r.units,
-        t.elapsed().as_secs_f64(),
-        r.millis,
-        resident_mib()
+        "(refit: full cross-fitted refit and scoring of the history; incremental: recompute after a \
+{COHORT}-unit cohort with the current fit; raw: {RAW_BYTES_PER_UNIT} bytes per unit)"
     );
-    srv.stop().await.expect("stop");
-    let _ = std::fs::remove_dir_all(&dir);
 }

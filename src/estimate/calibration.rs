@@ -9,7 +9,8 @@
 
 use serde::Serialize;
 
-use super::stats::{average_ranks, mean_se, Estimate};
+use super::stats::{mean_se, Estimate};
+use super::targeting::{descending_order, tie_blocks};
 
 #[derive(Debug, Clone, Serialize)]
 pub struct GroupAte {
@@ -31,6 +32,12 @@ pub struct Calibration {
 }
 
 pub fn calibration(phi: &[f64], tau_hat: &[f64]) -> Calibration {
+    calibration_ordered(phi, tau_hat, &descending_order(tau_hat))
+}
+
+/// [`calibration`] given the units' descending order by `tau_hat` (shared
+/// with targeting, so the predictions are sorted once per pass).
+pub fn calibration_ordered(phi: &[f64], tau_hat: &[f64], order: &[u32]) -> Calibration {
     let n = phi.len();
     let nf = n as f64;
     let mean_tau = tau_hat.iter().sum::<f64>() / nf;
@@ -67,16 +74,24 @@ pub fn calibration(phi: &[f64], tau_hat: &[f64]) -> Calibration {
         slope: Some(Estimate::new(slope, se_slope)),
         intercept: Estimate::new(intercept, se_intercept),
         state: "ok",
-        groups: quintile_groups(phi, tau_hat),
+        groups: quintile_groups(phi, tau_hat, order),
     }
 }
 
 /// Group ATEs by quintile of the prediction. Tied predictions stay in one
 /// group (the group of their average rank), so groups can be uneven or empty
 /// when predictions take few values; empty groups are omitted.
-fn quintile_groups(phi: &[f64], tau_hat: &[f64]) -> Vec<GroupAte> {
+fn quintile_groups(phi: &[f64], tau_hat: &[f64], order: &[u32]) -> Vec<GroupAte> {
     let n = phi.len();
-    let ranks = average_ranks(tau_hat);
+    // Average ascending rank (1-based) per unit: a tie block at descending
+    // positions [s, e) holds ascending ranks n - e + 1 ..= n - s.
+    let mut ranks = vec![0.0; n];
+    for (s, e) in tie_blocks(order, tau_hat) {
+        let rank = (2 * n - s - e + 1) as f64 / 2.0;
+        for &i in &order[s..e] {
+            ranks[i as usize] = rank;
+        }
+    }
     let mut members: Vec<Vec<usize>> = vec![Vec::new(); 5];
     for (i, r) in ranks.iter().enumerate() {
         let g = (((r - 0.5) / n as f64) * 5.0).floor() as usize;

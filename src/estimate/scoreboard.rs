@@ -5,7 +5,7 @@
 use rayon::prelude::*;
 use serde::Serialize;
 
-use super::calibration::{calibration, Calibration};
+use super::calibration::{calibration_ordered, Calibration};
 use super::compare::{rank, Difference};
 use super::crossfit::{fit_nuisance, Nuisance, NuisanceReport, NuisanceSettings};
 use super::data::{ModelPredictions, UnitTable, CONSTANT_EFFECT, ZERO_EFFECT};
@@ -16,7 +16,7 @@ use super::policy::{policy_gain, PolicyGain};
 use super::pseudo::{aipw_ate, aipw_pseudo_outcome};
 use super::stats::{holm_reject, p_greater, Estimate};
 use super::sums::ScoreSums;
-use super::targeting::{targeting, Targeting};
+use super::targeting::{descending_order, targeting_ordered, Targeting};
 
 /// Everything that shapes a scoring pass besides the data.
 #[derive(Debug)]
@@ -29,6 +29,9 @@ pub struct Settings {
     pub alpha: f64,
     /// Overlap report threshold: share of propensities outside [eps, 1-eps].
     pub overlap_eps: f64,
+    /// 0 (the default): AUTOC and Qini standard errors by the infinitesimal
+    /// jackknife, one O(n) pass per model; otherwise the number of
+    /// nonparametric bootstrap replicates (see `targeting`).
     pub bootstrap_replicates: usize,
     pub p_best_draws: usize,
 }
@@ -40,7 +43,7 @@ impl Default for Settings {
             cost: 0.0,
             alpha: 0.05,
             overlap_eps: 0.05,
-            bootstrap_replicates: 200,
+            bootstrap_replicates: 0,
             p_best_draws: 4000,
         }
     }
@@ -208,6 +211,170 @@ fn check_predictions(table: &UnitTable, models: &[ModelPredictions]) -> Result<(
     Ok(())
 }
 
+/// Units per block of the contribution pass: a block's contributions for
+/// every model (m x 256 values) stay in cache while they are aggregated.
+const BLOCK: usize = 256;
+/// Units per parallel task. Fixed, and the partial aggregates are merged in
+/// order, so results do not depend on the number of threads.
+const CHUNK: usize = 1 << 15;
+
+/// The per-unit values every estimator reads, aligned by unit.
+#[derive(Debug, Clone, Copy)]
+pub struct UnitColumns<'a> {
+    pub outcome: &'a [f64],
+    pub treatment: &'a [f64],
+    /// Clipped propensity.
+    pub propensity: &'a [f64],
+    pub mu0: &'a [f64],
+    pub mu1: &'a [f64],
+    /// AIPW pseudo-outcome.
+    pub phi: &'a [f64],
+}
+
+impl UnitColumns<'_> {
+    pub fn len(&self) -> usize {
+        self.phi.len()
+    }
+
+    pub fn is_empty(&self) -> bool {
+        self.phi.is_empty()
+    }
+
+    fn view(&self, i: usize) -> UnitView {
+        UnitView {
+            outcome: self.outcome[i],
+            treatment: self.treatment[i],
+            propensity: self.propensity[i],
+            mu0: self.mu0[i],
+            mu1: self.mu1[i],
+            phi: self.phi[i],
+        }
+    }
+}
+
+/// The scoring pass proper: every estimator's contribution for every unit
+/// and model (`effects[k]` is model k's prediction per unit), gathered into
+/// one mergeable [`ScoreSums`] per estimator of [`estimators::ALL`]. Units
+/// go in blocks of [`BLOCK`] (one dynamic estimator call per block and
+/// model, the co-moments as vectorized dot products) and chunks of
+/// [`CHUNK`] in parallel.
+pub fn contribution_sums(units: &UnitColumns<'_>, effects: &[&[f64]]) -> Vec<ScoreSums> {
+    let n = units.len();
+    let m = effects.len();
+    let chunks: Vec<(usize, usize)> = (0..n)
+        .step_by(CHUNK)
+        .map(|s| (s, (s + CHUNK).min(n)))
+        .collect();
+    let parts: Vec<Vec<ScoreSums>> = chunks
+        .par_iter()
+        .map(|&(start, end)| chunk_sums(units, effects, start, end))
+        .collect();
+    let mut total: Vec<ScoreSums> = estimators::ALL.iter().map(|_| ScoreSums::new(m)).collect();
+    for part in &parts {
+        for (t, p) in total.iter_mut().zip(part) {
+            t.merge(p);
+        }
+    }
+    total
+}
+
+fn chunk_sums(
+    units: &UnitColumns<'_>,
+    effects: &[&[f64]],
+    start: usize,
+    end: usize,
+) -> Vec<ScoreSums> {
+    let m = effects.len();
+    let mut sums: Vec<ScoreSums> = estimators::ALL.iter().map(|_| ScoreSums::new(m)).collect();
+    let mut views: Vec<UnitView> = Vec::with_capacity(BLOCK);
+    let mut columns = vec![0.0; m * BLOCK];
+    let mut block_start = start;
+    while block_start < end {
+        let block_end = (block_start + BLOCK).min(end);
+        let len = block_end - block_start;
+        views.clear();
+        views.extend((block_start..block_end).map(|i| units.view(i)));
+        let columns = &mut columns[..m * len];
+        for (e, s) in estimators::ALL.iter().zip(sums.iter_mut()) {
+            for (column, tau_hat) in columns.chunks_exact_mut(len).zip(effects) {
+                e.contributions(&views, &tau_hat[block_start..block_end], column);
+            }
+            s.push_block(columns, len);
+        }
+        block_start = block_end;
+    }
+    sums
+}
+
+/// The aggregates of the constant-effect baseline, whose prediction (the
+/// window's ATE) changes as units join, kept as the aggregates of three
+/// fixed predictions 0, s and -s. Every estimator's contribution is a
+/// quadratic in the prediction (see [`Estimator`]), so by Lagrange
+/// interpolation through those nodes, with t = a / s,
+/// c(a) = c(0) (1 - t^2) + c(s) t (t + 1) / 2 + c(-s) t (t - 1) / 2
+/// for every unit, and a window's means and co-moments for prediction a are
+/// a linear map of the three columns' (exact up to rounding). The scale s is
+/// fixed when the aggregate starts (near the ATE then) so that t stays near
+/// one and the map does not amplify rounding.
+#[derive(Debug, Clone, Copy)]
+pub struct ConstantBasis {
+    pub scale: f64,
+}
+
+impl ConstantBasis {
+    pub fn new(ate: f64) -> Self {
+        Self {
+            scale: if ate.abs() > 1e-12 { ate.abs() } else { 1.0 },
+        }
+    }
+
+    /// The fixed predictions whose columns stand in for constant-effect:
+    /// the zero-effect column itself, then s and -s.
+    pub fn nodes(&self) -> [f64; 2] {
+        [self.scale, -self.scale]
+    }
+
+    /// Maps aggregates over the columns [0, s, -s, registered...] to the
+    /// scored columns [zero-effect, constant-effect at `ate`, registered...].
+    pub fn resolve(&self, sums: &ScoreSums, ate: f64) -> ScoreSums {
+        let m = sums.models();
+        let t = ate / self.scale;
+        let mut weights = Vec::with_capacity(m - 1);
+        let unit = |k: usize| {
+            let mut w = vec![0.0; m];
+            w[k] = 1.0;
+            w
+        };
+        weights.push(unit(0));
+        let mut constant = vec![0.0; m];
+        constant[0] = 1.0 - t * t;
+        constant[1] = t * (t + 1.0) / 2.0;
+        constant[2] = t * (t - 1.0) / 2.0;
+        weights.push(constant);
+        weights.extend((3..m).map(unit));
+        sums.linear_map(&weights)
+    }
+}
+
+/// Everything [`assemble`] turns into a scoreboard; each piece may come from
+/// a fresh pass over the units or from aggregates kept between passes.
+pub struct Parts<'a> {
+    /// Name and baseline flag per scored column: zero-effect, constant-effect,
+    /// then the registered models.
+    pub models: Vec<(String, bool)>,
+    /// Prediction per unit for each column.
+    pub effects: &'a [&'a [f64]],
+    pub phi: &'a [f64],
+    pub ate: Estimate,
+    pub n_treated: usize,
+    /// One per estimator of [`estimators::ALL`], over the same columns.
+    pub sums: Vec<ScoreSums>,
+    /// Each column's [`descending_order`].
+    pub orders: &'a [&'a [u32]],
+    pub overlap: OverlapReport,
+    pub nuisance: Option<NuisanceReport>,
+}
+
 /// Scores every model against given nuisance values. The built-in baselines
 /// are added first; `models` must not use their names.
 pub fn score(
@@ -218,44 +385,100 @@ pub fn score(
     models: &[ModelPredictions],
     settings: &Settings,
 ) -> Scoreboard {
+    score_keeping(
+        table,
+        feature_names,
+        nuisance,
+        nuisance_report,
+        models,
+        settings,
+    )
+    .board
+}
+
+/// A scoreboard with the per-unit values a later pass over more units can
+/// build on.
+pub struct Scored {
+    pub board: Scoreboard,
+    pub phi: Vec<f64>,
+    /// [`descending_order`] of each registered model, in `models` order.
+    pub orders: Vec<Vec<u32>>,
+}
+
+/// [`score`], keeping the pseudo-outcomes and the models' orders.
+pub fn score_keeping(
+    table: &UnitTable,
+    feature_names: &[String],
+    nuisance: &Nuisance,
+    nuisance_report: Option<NuisanceReport>,
+    models: &[ModelPredictions],
+    settings: &Settings,
+) -> Scored {
     let n = table.len();
     let (y, w) = (table.outcome(), table.treatment());
     let phi = aipw_pseudo_outcome(y, w, nuisance);
     let ate = aipw_ate(&phi);
+    let zero = vec![0.0; n];
+    let constant = vec![ate.estimate; n];
+    let mut effects: Vec<&[f64]> = vec![&zero, &constant];
+    effects.extend(models.iter().map(|m| m.effects.as_slice()));
+    let units = UnitColumns {
+        outcome: y,
+        treatment: w,
+        propensity: &nuisance.propensity,
+        mu0: &nuisance.mu0,
+        mu1: &nuisance.mu1,
+        phi: &phi,
+    };
+    let sums = contribution_sums(&units, &effects);
+    let orders: Vec<Vec<u32>> = effects.par_iter().map(|e| descending_order(e)).collect();
+    let order_slices: Vec<&[u32]> = orders.iter().map(Vec::as_slice).collect();
+    let mut names = vec![
+        (ZERO_EFFECT.to_string(), true),
+        (CONSTANT_EFFECT.to_string(), true),
+    ];
+    names.extend(models.iter().map(|m| (m.name.clone(), m.baseline)));
+    let board = assemble(
+        Parts {
+            models: names,
+            effects: &effects,
+            phi: &phi,
+            ate,
+            n_treated: table.n_treated(),
+            sums,
+            orders: &order_slices,
+            overlap: overlap_report(
+                table.features(),
+                feature_names,
+                w,
+                &nuisance.propensity,
+                settings.overlap_eps,
+            ),
+            nuisance: nuisance_report,
+        },
+        settings,
+    );
+    let mut orders = orders;
+    orders.drain(..2);
+    Scored { board, phi, orders }
+}
 
-    let mut all: Vec<ModelPredictions> = Vec::with_capacity(models.len() + 2);
-    all.push(ModelPredictions {
-        name: ZERO_EFFECT.into(),
-        effects: vec![0.0; n],
-        baseline: true,
-    });
-    all.push(ModelPredictions {
-        name: CONSTANT_EFFECT.into(),
-        effects: vec![ate.estimate; n],
-        baseline: true,
-    });
-    all.extend(models.iter().cloned());
+/// Ranks, compares and summarizes the models from a pass's parts.
+pub fn assemble(parts: Parts<'_>, settings: &Settings) -> Scoreboard {
+    let Parts {
+        models: all,
+        effects,
+        phi,
+        ate,
+        n_treated,
+        sums,
+        orders,
+        overlap,
+        nuisance: nuisance_report,
+    } = parts;
+    let n = phi.len();
     let constant = 1;
     let m = all.len();
-
-    let mut sums: Vec<ScoreSums> = estimators::ALL.iter().map(|_| ScoreSums::new(m)).collect();
-    let mut row = vec![0.0; m];
-    for i in 0..n {
-        let unit = UnitView {
-            outcome: y[i],
-            treatment: w[i],
-            propensity: nuisance.propensity[i],
-            mu0: nuisance.mu0[i],
-            mu1: nuisance.mu1[i],
-            phi: phi[i],
-        };
-        for (e, s) in estimators::ALL.iter().zip(sums.iter_mut()) {
-            for (k, model) in all.iter().enumerate() {
-                row[k] = e.contribution(&unit, model.effects[i]);
-            }
-            s.push(&row);
-        }
-    }
     let key_index = |key: &str| {
         estimators::ALL
             .iter()
@@ -280,24 +503,25 @@ pub fn score(
         .collect();
     let no_detectable_heterogeneity = !holm_reject(&p_beats, settings.alpha).iter().any(|&r| r);
 
-    // Targeting bootstraps and calibration sorts are per model and
-    // independent: run them in parallel, results in model order.
+    // Targeting and calibration are per model and independent: run them in
+    // parallel, results in model order.
     let model_scores: Vec<ModelScore> = all
         .par_iter()
         .enumerate()
-        .map(|(k, model)| {
+        .map(|(k, (name, baseline))| {
             let d = corrected.difference(k, constant);
             let (ci_low, ci_high) = d.interval(CI_LEVEL);
-            let t: Targeting = targeting(
-                &phi,
-                &model.effects,
+            let t: Targeting = targeting_ordered(
+                phi,
+                effects[k],
+                orders[k],
                 settings.bootstrap_replicates,
                 settings.nuisance.seed.wrapping_add(k as u64),
             );
-            let cal = calibration(&phi, &model.effects);
+            let cal = calibration_ordered(phi, effects[k], orders[k]);
             ModelScore {
-                name: model.name.clone(),
-                baseline: model.baseline,
+                name: name.clone(),
+                baseline: *baseline,
                 rank: ranking.rank[k],
                 corrected_pehe: corrected.estimate(k),
                 vs_constant: VsConstant {
@@ -313,7 +537,7 @@ pub fn score(
                 ipw_loss: sums[key_index("ipw_loss")].estimate(k),
                 p_best: ranking.p_best[k],
                 in_best_set: ranking.in_best_set[k],
-                policy_gain: policy_gain(&phi, &model.effects, settings.cost),
+                policy_gain: policy_gain(phi, effects[k], settings.cost),
                 autoc: t.autoc,
                 qini: t.qini,
                 blp_slope: cal.slope,
@@ -326,8 +550,8 @@ pub fn score(
     for a in 0..m {
         for b in (a + 1)..m {
             pairwise.push(PairwiseDifference {
-                first: all[a].name.clone(),
-                second: all[b].name.clone(),
+                first: all[a].0.clone(),
+                second: all[b].0.clone(),
                 difference: Difference::from_estimate(corrected.difference(a, b), CI_LEVEL),
             });
         }
@@ -341,7 +565,6 @@ pub fn score(
         .map(|s| s.name.clone())
         .collect();
     let (ci_low, ci_high) = ate.interval(CI_LEVEL);
-    let n_treated = table.n_treated();
     Scoreboard {
         n_units: n,
         n_treated,
@@ -352,20 +575,14 @@ pub fn score(
             ci_low,
             ci_high,
         },
-        leader: all[ranking.leader].name.clone(),
+        leader: all[ranking.leader].0.clone(),
         best_set,
         no_detectable_heterogeneity,
         alpha: settings.alpha,
         cost: settings.cost,
         models: ordered,
         pairwise,
-        overlap: overlap_report(
-            table.features(),
-            feature_names,
-            w,
-            &nuisance.propensity,
-            settings.overlap_eps,
-        ),
+        overlap,
         nuisance: nuisance_report,
         caveat: CORRECTED_PEHE_CAVEAT,
     }

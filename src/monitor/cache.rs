@@ -3,8 +3,98 @@
 //! on ingest. Units are indexed by their sequence number (arrival order).
 
 use std::collections::HashMap;
+use std::ops::{Index, IndexMut};
+use std::sync::Arc;
 
 use crate::store::{OutcomeRecord, PredictionRecord, StoredModel, UnitRecord};
+
+/// Rows per chunk of a [`Shared`] column.
+const CHUNK_ROWS: usize = 8192;
+
+/// An append-only column of rows of `width` values, kept in chunks that
+/// recompute jobs share instead of copying: a clone costs one pointer per
+/// 8,192 rows. A chunk is copied only when it is written (a new row, or a
+/// prediction for a stored unit) while a job still holds it, so a writer
+/// pays for at most one chunk per write and a recompute never copies the
+/// history.
+#[derive(Debug, Clone)]
+pub struct Shared<T> {
+    width: usize,
+    rows: usize,
+    chunks: Vec<Arc<Vec<T>>>,
+}
+
+impl<T: Clone> Shared<T> {
+    pub fn new(width: usize) -> Self {
+        Self {
+            width,
+            rows: 0,
+            chunks: Vec::new(),
+        }
+    }
+
+    /// A column holding `values`, `width` per row.
+    pub fn from_rows(width: usize, values: &[T]) -> Self {
+        let mut out = Self::new(width);
+        for row in values.chunks_exact(width.max(1)) {
+            out.push_row(row);
+        }
+        out
+    }
+
+    pub fn len(&self) -> usize {
+        self.rows
+    }
+
+    pub fn is_empty(&self) -> bool {
+        self.rows == 0
+    }
+
+    pub fn width(&self) -> usize {
+        self.width
+    }
+
+    pub fn row(&self, i: usize) -> &[T] {
+        let start = (i % CHUNK_ROWS) * self.width;
+        &self.chunks[i / CHUNK_ROWS][start..start + self.width]
+    }
+
+    pub fn push_row(&mut self, values: &[T]) {
+        debug_assert_eq!(values.len(), self.width);
+        if self.rows % CHUNK_ROWS == 0 {
+            self.chunks
+                .push(Arc::new(Vec::with_capacity(CHUNK_ROWS * self.width)));
+        }
+        if let Some(last) = self.chunks.last_mut() {
+            Arc::make_mut(last).extend_from_slice(values);
+        }
+        self.rows += 1;
+    }
+
+    /// Appends one value to a column of width one.
+    pub fn push(&mut self, value: T) {
+        self.push_row(std::slice::from_ref(&value));
+    }
+
+    pub fn get(&self, i: usize) -> Option<&T> {
+        (i < self.rows).then(|| &self[i])
+    }
+}
+
+impl<T> Index<usize> for Shared<T> {
+    type Output = T;
+
+    /// The value of row `i` in a column of width one.
+    fn index(&self, i: usize) -> &T {
+        &self.chunks[i / CHUNK_ROWS][i % CHUNK_ROWS]
+    }
+}
+
+impl<T: Clone> IndexMut<usize> for Shared<T> {
+    fn index_mut(&mut self, i: usize) -> &mut T {
+        &mut Arc::make_mut(&mut self.chunks[i / CHUNK_ROWS])[i % CHUNK_ROWS]
+    }
+}
 
 /// One model's predictions, aligned with the units.
 #[derive(Debug, Clone)]
@@ -12,7 +102,7 @@ pub struct ModelColumn {
     pub model: StoredModel,
     /// Predicted effect per unit; NaN marks "no prediction" (internal only:
     /// never scored, never shown).
-    pub effects: Vec<f64>,
+    pub effects: Shared<f64>,
     pub predicted_at_ms: Vec<i64>,
     pub count: u64,
 }
@@ -21,7 +111,7 @@ impl ModelColumn {
     pub fn new(model: StoredModel, units: usize) -> Self {
         Self {
             model,
-            effects: vec![f64::NAN; units],
+            effects: Shared::from_rows(1, &vec![f64::NAN; units]),
             predicted_at_ms: vec![0; units],
             count: 0,
         }
@@ -36,13 +126,13 @@ impl ModelColumn {
     }
 }
 
-#[derive(Debug, Clone, Default)]
+#[derive(Debug, Clone)]
 pub struct DatasetCache {
     pub features_per_unit: usize,
     pub key_to_unit: HashMap<String, usize>,
     pub keys: Vec<String>,
-    /// Row-major, units x features.
-    pub features: Vec<f64>,
+    /// One row of features per unit.
+    pub features: Shared<f64>,
     pub treatment: Vec<u8>,
     pub propensity: Vec<Option<f64>>,
     pub cohort: Vec<u32>,
@@ -56,13 +146,32 @@ pub struct DatasetCache {
     pub outcome_order: Vec<usize>,
     pub models: Vec<ModelColumn>,
     pub model_index: HashMap<String, usize>,
+    /// Bumped whenever a unit that already has an outcome gets a prediction
+    /// (a historical backfill): scores kept from earlier recomputes no
+    /// longer hold then.
+    pub revision: u64,
 }
 
 impl DatasetCache {
     pub fn new(features_per_unit: usize) -> Self {
         Self {
             features_per_unit,
-            ..Self::default()
+            key_to_unit: HashMap::new(),
+            keys: Vec::new(),
+            features: Shared::new(features_per_unit),
+            treatment: Vec::new(),
+            propensity: Vec::new(),
+            cohort: Vec::new(),
+            cohort_names: Vec::new(),
+            cohort_index: HashMap::new(),
+            assigned_at_ms: Vec::new(),
+            outcome: Vec::new(),
+            outcome_seq: Vec::new(),
+            observed_at_ms: Vec::new(),
+            outcome_order: Vec::new(),
+            models: Vec::new(),
+            model_index: HashMap::new(),
+            revision: 0,
         }
     }
 
@@ -79,8 +188,7 @@ impl DatasetCache {
     }
 
     pub fn unit_features(&self, unit: usize) -> &[f64] {
-        let d = self.features_per_unit;
-        &self.features[unit * d..(unit + 1) * d]
+        self.features.row(unit)
     }
 
     pub fn add_unit(&mut self, u: &UnitRecord) {
@@ -88,7 +196,7 @@ impl DatasetCache {
         debug_assert_eq!(u.seq as usize, idx);
         self.key_to_unit.insert(u.key.clone(), idx);
         self.keys.push(u.key.clone());
-        self.features.extend_from_slice(&u.features);
+        self.features.push_row(&u.features);
         self.treatment.push(u.treatment);
         self.propensity.push(u.propensity);
         let cohort = match self.cohort_index.get(&u.cohort) {
@@ -138,6 +246,9 @@ impl DatasetCache {
         }
         col.effects[u] = p.effect;
         col.predicted_at_ms[u] = p.predicted_at_ms;
+        if self.outcome_seq[u] >= 0 {
+            self.revision += 1;
+        }
     }
 
     /// Next outcome sequence number.

@@ -117,7 +117,14 @@ impl DatasetState {
         }
     }
 
-    fn frame(&self, now: i64) -> Frame {
+    /// What a recompute reads. The scoring memo moves into the frame (the
+    /// recompute installs its successor), so that the job owns it and can
+    /// extend it in place; if the job fails the next recompute starts over.
+    fn frame(&mut self, now: i64) -> Frame {
+        let nuisance = self.nuisance.as_mut().map(|n| NuisanceState {
+            memo: std::mem::take(&mut n.memo),
+            ..n.clone()
+        });
         let c = &self.cache;
         Frame {
             spec: self.stored.spec.clone(),
@@ -137,7 +144,8 @@ impl DatasetState {
                 .filter(|m| m.active())
                 .map(|m| (m.model.name.clone(), m.effects.clone()))
                 .collect(),
-            nuisance: self.nuisance.clone(),
+            revision: c.revision,
+            nuisance,
             now_ms: now,
         }
     }
@@ -638,7 +646,8 @@ impl Monitor {
         let (frame, outcomes_in_frame) = {
             let mut st = h.state.lock().await;
             st.pending_outcomes = 0;
-            (st.frame(now), st.cache.outcomes())
+            let outcomes = st.cache.outcomes();
+            (st.frame(now), outcomes)
         };
         if outcomes_in_frame == 0 {
             return Err(MonitorError::FailedPrecondition(format!(
