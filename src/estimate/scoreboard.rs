@@ -16,7 +16,7 @@ use super::policy::{policy_gain, PolicyGain};
 use super::pseudo::{aipw_ate, aipw_pseudo_outcome};
 use super::stats::{holm_reject, p_greater, Estimate};
 use super::sums::ScoreSums;
-use super::targeting::{targeting, Targeting};
+use super::targeting::{targeting_many, Targeting};
 
 /// Everything that shapes a scoring pass besides the data.
 #[derive(Debug)]
@@ -280,20 +280,23 @@ pub fn score(
         .collect();
     let no_detectable_heterogeneity = !holm_reject(&p_beats, settings.alpha).iter().any(|&r| r);
 
-    // Targeting bootstraps and calibration sorts are per model and
-    // independent: run them in parallel, results in model order.
+    // The targeting bootstrap draws its resamples once for every model.
+    let effects: Vec<&[f64]> = all.iter().map(|m| m.effects.as_slice()).collect();
+    let targets: Vec<Targeting> = targeting_many(
+        &phi,
+        &effects,
+        settings.bootstrap_replicates,
+        settings.nuisance.seed,
+    );
+    // Calibration sorts are per model and independent: run them in
+    // parallel, results in model order.
     let model_scores: Vec<ModelScore> = all
         .par_iter()
         .enumerate()
         .map(|(k, model)| {
             let d = corrected.difference(k, constant);
             let (ci_low, ci_high) = d.interval(CI_LEVEL);
-            let t: Targeting = targeting(
-                &phi,
-                &model.effects,
-                settings.bootstrap_replicates,
-                settings.nuisance.seed.wrapping_add(k as u64),
-            );
+            let t = &targets[k];
             let cal = calibration(&phi, &model.effects);
             ModelScore {
                 name: model.name.clone(),
