@@ -57,8 +57,18 @@ pub fn run(args: &ScoreArgs) -> ExitCode {
         KindArg::Continuous => OutcomeKind::Continuous,
         KindArg::Binary => OutcomeKind::Binary,
     });
-    let loaded = read_units(&args.units, kind).and_then(|units| {
-        let preds = read_predictions(&args.predictions)?;
+    // The two files are independent until they are aligned: read them at
+    // the same time.
+    let (units, preds) = std::thread::scope(|s| {
+        let preds = s.spawn(|| read_predictions(&args.predictions));
+        let units = read_units(&args.units, kind);
+        (units, preds.join())
+    });
+    let loaded = units.and_then(|units| {
+        let preds = match preds {
+            Ok(p) => p?,
+            Err(panic) => std::panic::resume_unwind(panic),
+        };
         let models = align(&units, &args.units, &preds, &args.predictions)?;
         Ok((units, models))
     });

@@ -6,7 +6,7 @@
 //! dataset's treated share. Each component tries every learner of its library
 //! on the same folds and keeps the one with the lowest out-of-fold loss.
 
-use ndarray::{ArrayView2, Axis};
+use ndarray::ArrayView2;
 use rand::seq::SliceRandom;
 use rand::SeedableRng;
 use rand_chacha::ChaCha8Rng;
@@ -15,7 +15,7 @@ use serde::Serialize;
 
 use super::data::{OutcomeKind, UnitTable};
 use super::error::{Degenerate, EstimateError};
-use super::learner::{default_library, mean_loss, Fitted, Learner, Task};
+use super::learner::{default_library, mean_loss, Fitted, Learner, SharedFeatures, Task};
 use super::stats::auc;
 
 /// How the nuisance components are fitted.
@@ -193,9 +193,19 @@ struct Folds<'a> {
     count: usize,
 }
 
-/// One fold's fit of one learner: the learner, the fold, the model, and
-/// its predictions for the held-out rows.
-type FoldFit = (usize, usize, Box<dyn Fitted>, Vec<usize>, Vec<f64>);
+/// One nuisance component to cross-fit: its target, the units its fits may
+/// train on, its learners, its task and its seed.
+struct Component<'a> {
+    target: &'a [f64],
+    train_mask: &'a [bool],
+    learners: &'a [Box<dyn Learner>],
+    task: Task,
+    seed: u64,
+}
+
+/// One fold's fit of one learner of one component: the model and its
+/// predictions for the held-out rows.
+type FoldFit = (Box<dyn Fitted>, Vec<f64>);
 
 /// Out-of-fold predictions of every learner, and every learner's fold models
 /// (models[learner][fold]).
@@ -204,56 +214,68 @@ struct OutOfFold {
     models: Vec<Vec<Box<dyn Fitted>>>,
 }
 
-/// Out-of-fold predictions for every unit from every learner, where fold `f`
-/// is predicted by a fit on the units of `train_mask` outside fold `f`.
-/// Returns one prediction vector per learner.
+/// Out-of-fold predictions for every unit from every learner of every
+/// component, where fold `f` is predicted by a fit on the units of the
+/// component's `train_mask` outside fold `f`. All fits of all components run
+/// as one parallel batch, so the largest fits never wait on a component
+/// boundary.
 fn out_of_fold(
-    x: ArrayView2<'_, f64>,
-    target: &[f64],
-    train_mask: &[bool],
+    x: &SharedFeatures<'_>,
     folds: &Folds<'_>,
-    learners: &[Box<dyn Learner>],
-    task: Task,
-    seed: u64,
-) -> Result<OutOfFold, EstimateError> {
-    let (k, folds) = (folds.count, folds.of_unit);
-    let jobs: Vec<(usize, usize)> = (0..learners.len())
-        .flat_map(|l| (0..k).map(move |f| (l, f)))
+    components: &[Component<'_>],
+) -> Vec<Result<OutOfFold, EstimateError>> {
+    let (k, fold_of) = (folds.count, folds.of_unit);
+    let held: Vec<Vec<usize>> = (0..k)
+        .map(|f| (0..fold_of.len()).filter(|&i| fold_of[i] == f).collect())
+        .collect();
+    let jobs: Vec<(usize, usize, usize)> = components
+        .iter()
+        .enumerate()
+        .flat_map(|(c, comp)| {
+            (0..comp.learners.len()).flat_map(move |l| (0..k).map(move |f| (c, l, f)))
+        })
         .collect();
     let results: Vec<Result<FoldFit, EstimateError>> = jobs
         .par_iter()
-        .map(|&(l, f)| {
-            let train: Vec<usize> = (0..folds.len())
-                .filter(|&i| folds[i] != f && train_mask[i])
+        .with_max_len(1)
+        .map(|&(c, l, f)| {
+            let comp = &components[c];
+            let train: Vec<usize> = (0..fold_of.len())
+                .filter(|&i| fold_of[i] != f && comp.train_mask[i])
                 .collect();
-            let held: Vec<usize> = (0..folds.len()).filter(|&i| folds[i] == f).collect();
-            let xt = x.select(Axis(0), &train);
-            let yt: Vec<f64> = train.iter().map(|&i| target[i]).collect();
-            let fit_seed = seed ^ ((f as u64 + 1) << 32) ^ (l as u64 + 1);
-            let model = learners[l].fit(xt.view(), &yt, task, fit_seed)?;
-            let pred = model.predict(x.select(Axis(0), &held).view());
-            Ok((l, f, model, held, pred))
+            let yt: Vec<f64> = train.iter().map(|&i| comp.target[i]).collect();
+            let fit_seed = comp.seed ^ ((f as u64 + 1) << 32) ^ (l as u64 + 1);
+            let model = comp.learners[l].fit_rows(x, &train, &yt, comp.task, fit_seed)?;
+            let pred = model.predict_rows(x, &held[f]);
+            Ok((model, pred))
         })
         .collect();
-    let mut predictions = vec![vec![0.0; folds.len()]; learners.len()];
-    let mut slots: Vec<Vec<Option<Box<dyn Fitted>>>> = (0..learners.len())
-        .map(|_| (0..k).map(|_| None).collect())
+    let mut out: Vec<Result<OutOfFold, EstimateError>> = components
+        .iter()
+        .map(|comp| {
+            Ok(OutOfFold {
+                predictions: vec![vec![0.0; fold_of.len()]; comp.learners.len()],
+                models: (0..comp.learners.len())
+                    .map(|_| Vec::with_capacity(k))
+                    .collect(),
+            })
+        })
         .collect();
-    for r in results {
-        let (l, f, model, held, pred) = r?;
-        for (i, p) in held.into_iter().zip(pred) {
-            predictions[l][i] = p;
+    // Jobs are in (component, learner, fold) order, so each learner's models
+    // are pushed in fold order; a component keeps its first error.
+    for (&(c, l, f), r) in jobs.iter().zip(results) {
+        match (&mut out[c], r) {
+            (Ok(oof), Ok((model, pred))) => {
+                for (&i, p) in held[f].iter().zip(pred) {
+                    oof.predictions[l][i] = p;
+                }
+                oof.models[l].push(model);
+            }
+            (Ok(_), Err(e)) => out[c] = Err(e),
+            (Err(_), _) => {}
         }
-        slots[l][f] = Some(model);
     }
-    let models = slots
-        .into_iter()
-        .map(|fold_models| fold_models.into_iter().flatten().collect())
-        .collect();
-    Ok(OutOfFold {
-        predictions,
-        models,
-    })
+    out
 }
 
 /// The fold models of the chosen learner of every component, kept so that
@@ -350,9 +372,6 @@ fn choose(
     (chosen, chosen_models, report)
 }
 
-/// One component's out-of-fold values, its fold models and its report.
-type Chosen = (Vec<f64>, Vec<Box<dyn Fitted>>, ComponentReport);
-
 /// Cross-fits propensity (unless logged) and both outcome regressions.
 pub fn fit_nuisance(
     table: &UnitTable,
@@ -379,7 +398,7 @@ pub fn fit_nuisance_models(
     let propensity_learners = library(&settings.propensity_learners);
     let outcome_learners = library(&settings.outcome_learners);
     let k = settings.folds;
-    let x = table.features();
+    let x = &SharedFeatures::new(table.features());
     let w = table.treatment();
     let y = table.outcome();
     let fold_of_unit = assign_folds(w, k, settings.seed);
@@ -388,22 +407,49 @@ pub fn fit_nuisance_models(
         count: k,
     };
     let everyone = vec![true; table.len()];
+    let outcome_task = match table.outcome_kind() {
+        OutcomeKind::Continuous => Task::Regression,
+        OutcomeKind::Binary => Task::Classification,
+    };
+    // Each arm's outcome model is fitted on that arm only and predicted for
+    // every held-out unit, so both mu0 and mu1 exist for all units.
+    let in_arm = |arm: f64| -> Vec<bool> { w.iter().map(|&v| v == arm).collect() };
+    let (control, treated) = (in_arm(0.0), in_arm(1.0));
+    let logged = table.logged_propensity();
+    let mut components = Vec::with_capacity(3);
+    if logged.is_none() {
+        components.push(Component {
+            target: w,
+            train_mask: &everyone,
+            learners: &propensity_learners,
+            task: Task::Classification,
+            seed: settings.seed,
+        });
+    }
+    for (arm, mask) in [(0u64, &control), (1, &treated)] {
+        components.push(Component {
+            target: y,
+            train_mask: mask,
+            learners: &outcome_learners,
+            task: outcome_task,
+            seed: settings.seed.wrapping_add(1 + arm),
+        });
+    }
+    // Errors surface in the order the components were once fitted one by
+    // one: the propensity's own, then separated arms, then the outcomes'.
+    let mut fitted = out_of_fold(x, &folds, &components).into_iter();
+    let mut next = || {
+        fitted
+            .next()
+            .unwrap_or_else(|| Err(EstimateError::invalid("missing cross-fit")))
+    };
 
-    let (raw_propensity, propensity_fit, propensity_models) = match table.logged_propensity() {
+    let (raw_propensity, propensity_fit, propensity_models) = match logged {
         Some(p) => (p.to_vec(), None, None),
         None => {
-            let preds = out_of_fold(
-                x,
-                w,
-                &everyone,
-                &folds,
-                &propensity_learners,
-                Task::Classification,
-                settings.seed,
-            )?;
             let (p, models, report) = choose(
                 &propensity_learners,
-                preds,
+                next()?,
                 w,
                 &everyone,
                 Task::Classification,
@@ -419,28 +465,10 @@ pub fn fit_nuisance_models(
         }
         .into());
     }
-
-    let outcome_task = match table.outcome_kind() {
-        OutcomeKind::Continuous => Task::Regression,
-        OutcomeKind::Binary => Task::Classification,
-    };
-    // Each arm's outcome model is fitted on that arm only and predicted for
-    // every held-out unit, so both mu0 and mu1 exist for all units.
-    let fit_arm = |arm: f64| -> Result<Chosen, EstimateError> {
-        let in_arm: Vec<bool> = w.iter().map(|&v| v == arm).collect();
-        let preds = out_of_fold(
-            x,
-            y,
-            &in_arm,
-            &folds,
-            &outcome_learners,
-            outcome_task,
-            settings.seed.wrapping_add(1 + arm as u64),
-        )?;
-        Ok(choose(&outcome_learners, preds, y, &in_arm, outcome_task))
-    };
-    let (mu0, mu0_models, outcome_control) = fit_arm(0.0)?;
-    let (mu1, mu1_models, outcome_treated) = fit_arm(1.0)?;
+    let (mu0, mu0_models, outcome_control) =
+        choose(&outcome_learners, next()?, y, &control, outcome_task);
+    let (mu1, mu1_models, outcome_treated) =
+        choose(&outcome_learners, next()?, y, &treated, outcome_task);
 
     let (nuisance, clipped) = Nuisance::from_parts(raw_propensity, mu0, mu1, settings.clip);
     let report = NuisanceReport {

@@ -2,14 +2,13 @@
 //!
 //! Ridge is solved in closed form through a Cholesky factorization of the
 //! penalized normal equations (linfa's linear algebra); logistic regression
-//! uses linfa's L-BFGS solver. As a nuisance learner both standardize the
+//! by Newton's method on the same normal-equation machinery, to full
+//! convergence. As a nuisance learner both standardize the
 //! features first, so one penalty works whatever the features' units; the
 //! raw-scale functions [`ridge_fit`] and [`logistic_fit`] are exposed for
 //! parametric specifications and reference checks.
 
-use linfa::prelude::*;
 use linfa_linalg::cholesky::SolveC;
-use linfa_logistic::LogisticRegression;
 use ndarray::{Array1, Array2, ArrayView2, Axis};
 
 use super::{constant_if_degenerate, Fitted, Learner, Task};
@@ -52,9 +51,88 @@ pub(crate) fn sigmoid(z: f64) -> f64 {
     }
 }
 
+/// Rows per block of the Gram accumulation: a block is copied column-major
+/// so that each entry of the Gram matrix is a contiguous dot product.
+const GRAM_BLOCK: usize = 64;
+
+/// Column means of `x`.
+fn column_means(x: ArrayView2<'_, f64>) -> Vec<f64> {
+    let n = x.nrows().max(1) as f64;
+    let mut mean = vec![0.0; x.ncols()];
+    for row in x.outer_iter() {
+        for (m, v) in mean.iter_mut().zip(row) {
+            *m += v;
+        }
+    }
+    mean.iter_mut().for_each(|m| *m /= n);
+    mean
+}
+
+/// The weighted Gram matrix and moment vector of the design
+/// z_i = [1, x_i - center] (the intercept column first):
+/// G = sum_i w_i z_i z_i^T (p x p, row-major, p = d + 1) and
+/// r = sum_i w_i z_i t_i. `weights` None means all ones.
+fn gram(
+    x: ArrayView2<'_, f64>,
+    center: &[f64],
+    weights: Option<&[f64]>,
+    t: &[f64],
+) -> (Vec<f64>, Vec<f64>) {
+    let (n, d) = x.dim();
+    let p = d + 1;
+    let mut g = vec![0.0; p * p];
+    let mut r = vec![0.0; p];
+    // cols[j * GRAM_BLOCK + m] = sqrt(w) z_mj for the block's row m.
+    let mut cols = vec![0.0; p * GRAM_BLOCK];
+    let mut tv = [0.0; GRAM_BLOCK];
+    let mut start = 0;
+    while start < n {
+        let len = GRAM_BLOCK.min(n - start);
+        for m in 0..len {
+            let i = start + m;
+            let sw = weights.map_or(1.0, |w| w[i].sqrt());
+            cols[m] = sw;
+            let row = x.row(i);
+            for j in 0..d {
+                cols[(j + 1) * GRAM_BLOCK + m] = sw * (row[j] - center[j]);
+            }
+            tv[m] = sw * t[i];
+        }
+        for j in 0..p {
+            let cj = &cols[j * GRAM_BLOCK..j * GRAM_BLOCK + len];
+            for k in 0..=j {
+                let ck = &cols[k * GRAM_BLOCK..k * GRAM_BLOCK + len];
+                g[j * p + k] += cj.iter().zip(ck).map(|(a, b)| a * b).sum::<f64>();
+            }
+            r[j] += cj.iter().zip(&tv[..len]).map(|(a, b)| a * b).sum::<f64>();
+        }
+        start += len;
+    }
+    for j in 0..p {
+        for k in 0..j {
+            g[k * p + j] = g[j * p + k];
+        }
+    }
+    (g, r)
+}
+
+/// Solves the symmetric positive definite system `a` (p x p, row-major) x = `b`.
+fn solve_spd(a: Vec<f64>, b: &[f64], learner: &str) -> Result<Vec<f64>, EstimateError> {
+    let p = b.len();
+    let mut a =
+        Array2::from_shape_vec((p, p), a).map_err(|e| EstimateError::invalid(e.to_string()))?;
+    let rhs = Array1::from_vec(b.to_vec()).insert_axis(Axis(1));
+    let sol = a.solvec(&rhs).map_err(|e| EstimateError::Learner {
+        learner: learner.into(),
+        reason: format!("normal equations are singular ({e}); features may be collinear"),
+    })?;
+    Ok(sol.column(0).to_vec())
+}
+
 /// Ridge regression with an unpenalized intercept:
 /// minimizes sum (y - b0 - x b)^2 + alpha |b|^2 (scikit-learn's `Ridge`
-/// objective; alpha = 0 is ordinary least squares).
+/// objective; alpha = 0 is ordinary least squares). Solved through the
+/// normal equations of the centered features.
 pub fn ridge_fit(
     x: ArrayView2<'_, f64>,
     y: &[f64],
@@ -68,20 +146,19 @@ pub fn ridge_fit(
             y.len()
         )));
     }
-    let x_mean = x.mean_axis(Axis(0)).unwrap_or_else(|| Array1::zeros(d));
+    let x_mean = column_means(x);
     let y_mean = y.iter().sum::<f64>() / n as f64;
-    let xc = &x - &x_mean;
-    let yc = Array1::from_iter(y.iter().map(|v| v - y_mean));
-    let mut gram = xc.t().dot(&xc);
-    for j in 0..d {
-        gram[[j, j]] += alpha;
+    let yc: Vec<f64> = y.iter().map(|v| v - y_mean).collect();
+    let (g, r) = gram(x, &x_mean, None, &yc);
+    // Drop the intercept row and column: centered features are orthogonal to it.
+    let p = d + 1;
+    let mut a = Vec::with_capacity(d * d);
+    for j in 1..p {
+        for k in 1..p {
+            a.push(g[j * p + k] + if j == k { alpha } else { 0.0 });
+        }
     }
-    let rhs = xc.t().dot(&yc).insert_axis(Axis(1));
-    let beta = gram.solvec(&rhs).map_err(|e| EstimateError::Learner {
-        learner: "ridge".into(),
-        reason: format!("normal equations are singular ({e}); features may be collinear"),
-    })?;
-    let coef: Vec<f64> = beta.column(0).to_vec();
+    let coef = solve_spd(a, &r[1..], "ridge")?;
     let intercept = y_mean
         - coef
             .iter()
@@ -95,41 +172,130 @@ pub fn ridge_fit(
     })
 }
 
+/// Newton iterations of the logistic fit stop after this many.
+const NEWTON_MAX_ITERATIONS: usize = 100;
+
+/// Penalized logistic negative log-likelihood at (b0, b) on centered x.
+fn logistic_objective(
+    x: ArrayView2<'_, f64>,
+    center: &[f64],
+    y: &[f64],
+    theta: &[f64],
+    alpha: f64,
+) -> f64 {
+    let mut total = 0.0;
+    for (row, &yi) in x.outer_iter().zip(y) {
+        let eta = linear_index(row.iter(), center, theta);
+        // log(1 + e^eta) - y eta, computed stably.
+        total += if eta > 0.0 {
+            eta + (-eta).exp().ln_1p()
+        } else {
+            eta.exp().ln_1p()
+        } - yi * eta;
+    }
+    total + 0.5 * alpha * theta[1..].iter().map(|b| b * b).sum::<f64>()
+}
+
+#[inline]
+fn linear_index<'a>(row: impl Iterator<Item = &'a f64>, center: &[f64], theta: &[f64]) -> f64 {
+    theta[0]
+        + row
+            .zip(center)
+            .zip(&theta[1..])
+            .map(|((v, c), b)| (v - c) * b)
+            .sum::<f64>()
+}
+
 /// L2-regularized logistic regression with an unpenalized intercept:
 /// minimizes sum of log-losses + alpha/2 |b|^2 (scikit-learn's objective with
-/// C = 1/alpha; alpha = 0 is maximum likelihood).
+/// C = 1/alpha; alpha = 0 is maximum likelihood). Newton's method with a
+/// backtracking line search on the centered features (the intercept absorbs
+/// the centering exactly), to full convergence.
 pub fn logistic_fit(
     x: ArrayView2<'_, f64>,
     y: &[f64],
     alpha: f64,
 ) -> Result<LinearFit, EstimateError> {
-    let n = x.nrows();
+    let (n, d) = x.dim();
     if n == 0 || y.len() != n {
         return Err(EstimateError::invalid(format!(
             "logistic: {n} rows for {} labels",
             y.len()
         )));
     }
-    let labels = Array1::from_iter(y.iter().map(|&v| v == 1.0));
-    let dataset = Dataset::new(x.to_owned(), labels);
-    // The objective is a sum over rows, so its gradient grows with n; the
-    // tolerance scales with it to stop at the same relative accuracy.
-    let fitted = LogisticRegression::default()
-        .alpha(alpha)
-        .max_iterations(1_000)
-        .gradient_tolerance(1e-9 * (n as f64).max(1.0))
-        .fit(&dataset)
-        .map_err(|e| EstimateError::Learner {
+    let center = column_means(x);
+    let share = (y.iter().sum::<f64>() / n as f64).clamp(1e-6, 1.0 - 1e-6);
+    let mut theta = vec![0.0; d + 1];
+    theta[0] = (share / (1.0 - share)).ln();
+    let mut objective = logistic_objective(x, &center, y, &theta, alpha);
+    let mut weights = vec![0.0; n];
+    let mut residual = vec![0.0; n];
+    let p = d + 1;
+    let mut converged = false;
+    for _ in 0..NEWTON_MAX_ITERATIONS {
+        for (i, row) in x.outer_iter().enumerate() {
+            let prob = sigmoid(linear_index(row.iter(), &center, &theta));
+            weights[i] = (prob * (1.0 - prob)).max(1e-12);
+            // Working response: the gradient is sum z_i (p_i - y_i) =
+            // sum w_i z_i t_i with t_i = (p_i - y_i) / w_i.
+            residual[i] = (prob - y[i]) / weights[i];
+        }
+        let (mut h, mut grad) = gram(x, &center, Some(&weights), &residual);
+        for j in 1..p {
+            h[j * p + j] += alpha;
+            grad[j] += alpha * theta[j];
+        }
+        // A tiny ridge keeps an unpenalized, collinear design solvable.
+        let jitter = 1e-12 * (0..p).map(|j| h[j * p + j]).fold(0.0, f64::max).max(1e-300);
+        for j in 0..p {
+            h[j * p + j] += jitter;
+        }
+        let step = solve_spd(h, &grad, "logistic")?;
+        let decrement: f64 = grad.iter().zip(&step).map(|(g, s)| g * s).sum();
+        if !decrement.is_finite() {
+            break;
+        }
+        if decrement < 1e-20 * (n as f64) {
+            converged = true;
+            break;
+        }
+        let mut t = 1.0;
+        let mut accepted = false;
+        for _ in 0..40 {
+            let trial: Vec<f64> = theta.iter().zip(&step).map(|(a, s)| a - t * s).collect();
+            let value = logistic_objective(x, &center, y, &trial, alpha);
+            if value <= objective - 1e-4 * t * decrement {
+                theta = trial;
+                objective = value;
+                accepted = true;
+                break;
+            }
+            t *= 0.5;
+        }
+        if !accepted {
+            // No descent left at machine precision: this is the optimum.
+            converged = true;
+            break;
+        }
+        if decrement * t < 1e-14 * (n as f64) {
+            converged = true;
+            break;
+        }
+    }
+    if !converged || theta.iter().any(|v| !v.is_finite()) {
+        return Err(EstimateError::Learner {
             learner: "logistic".into(),
-            reason: e.to_string(),
-        })?;
-    // linfa models the probability of its "positive" class, which is the
-    // more frequent label, not the label `true`. Flip the signs when the
-    // events are the minority so the fit always models P(Y = 1).
-    let sign = if fitted.labels().pos.class { 1.0 } else { -1.0 };
+            reason: format!(
+                "Newton's method did not converge in {NEWTON_MAX_ITERATIONS} iterations; \
+                 the classes may be separated by the features"
+            ),
+        });
+    }
+    let coef: Vec<f64> = theta[1..].to_vec();
+    let intercept = theta[0] - coef.iter().zip(&center).map(|(b, m)| b * m).sum::<f64>();
     Ok(LinearFit {
-        intercept: sign * fitted.intercept(),
-        coef: fitted.params().iter().map(|b| sign * b).collect(),
+        intercept,
+        coef,
         task: Task::Classification,
     })
 }

@@ -11,13 +11,15 @@ mod boosted;
 mod constant;
 mod linear;
 mod quadratic;
+mod shared;
 
 pub use boosted::Boosted;
 pub use constant::Constant;
 pub use linear::{logistic_fit, ridge_fit, Linear, LinearFit};
 pub use quadratic::Quadratic;
+pub use shared::SharedFeatures;
 
-use ndarray::ArrayView2;
+use ndarray::{ArrayView2, Axis};
 
 use super::error::EstimateError;
 
@@ -50,12 +52,34 @@ pub trait Learner: Send + Sync + std::fmt::Debug {
         task: Task,
         seed: u64,
     ) -> Result<Box<dyn Fitted>, EstimateError>;
+
+    /// Fits on the rows `rows` of a matrix shared by every fit of a
+    /// cross-fit; `y[i]` is the target of row `rows[i]`. The default copies
+    /// the rows out and calls [`Learner::fit`]; a learner that can reuse work
+    /// across fits (the boosted learner's binning) overrides it.
+    fn fit_rows(
+        &self,
+        data: &SharedFeatures<'_>,
+        rows: &[usize],
+        y: &[f64],
+        task: Task,
+        seed: u64,
+    ) -> Result<Box<dyn Fitted>, EstimateError> {
+        let x = data.x().select(Axis(0), rows);
+        self.fit(x.view(), y, task, seed)
+    }
 }
 
 /// A fitted nuisance model.
 pub trait Fitted: Send + Sync {
     /// Regression: the conditional mean. Classification: P(Y = 1 | x).
     fn predict(&self, x: ArrayView2<'_, f64>) -> Vec<f64>;
+
+    /// Predictions for rows `rows` of a shared matrix; the same values as
+    /// [`Fitted::predict`] on those rows.
+    fn predict_rows(&self, data: &SharedFeatures<'_>, rows: &[usize]) -> Vec<f64> {
+        self.predict(data.x().select(Axis(0), rows).view())
+    }
 }
 
 /// The learners every component chooses from by default for data with
