@@ -130,25 +130,44 @@ fn areas_sorted(
     )
 }
 
-/// [`areas_sorted`] for an ordering without ties, for a whole chunk of
-/// replicates at once: the replicates' running sums are independent, so
-/// interleaving them keeps the processor busy instead of waiting on one
-/// chain of additions.
-fn areas_untied_chunk(phi: &[f64], chunk: &[Vec<u32>], harmonic: &[f64]) -> Vec<(f64, f64)> {
+/// [`areas_sorted`] for a whole chunk of replicates at once: the
+/// replicates' running sums are independent, so interleaving them keeps the
+/// processor busy instead of waiting on one chain of additions.
+fn areas_chunk(
+    blocks: &[(usize, usize)],
+    phi: &[f64],
+    chunk: &[Vec<u32>],
+    harmonic: &[f64],
+) -> Vec<(f64, f64)> {
     const R: usize = REPLICATE_CHUNK;
     let counts: [&[u32]; R] = std::array::from_fn(|r| chunk[r].as_slice());
     let mut pos = [0usize; R];
     let (mut cum, mut ratio_sum, mut cum_sum) = ([0.0f64; R], [0.0f64; R], [0.0f64; R]);
-    for (p, &v) in phi.iter().enumerate() {
-        for r in 0..R {
-            let w = counts[r][p];
-            let wf = w as f64;
-            let next = pos[r] + w as usize;
-            ratio_sum[r] +=
-                (cum[r] - v * pos[r] as f64) * (harmonic[next] - harmonic[pos[r]]) + v * wf;
-            cum_sum[r] += wf * cum[r] + v * wf * (wf + 1.0) / 2.0;
-            cum[r] += v * wf;
-            pos[r] = next;
+    let mut add = |r: usize, w: u32, v: f64| {
+        let wf = w as f64;
+        let next = pos[r] + w as usize;
+        ratio_sum[r] += (cum[r] - v * pos[r] as f64) * (harmonic[next] - harmonic[pos[r]]) + v * wf;
+        cum_sum[r] += wf * cum[r] + v * wf * (wf + 1.0) / 2.0;
+        cum[r] += v * wf;
+        pos[r] = next;
+    };
+    for &(s, e) in blocks {
+        if e - s == 1 {
+            let v = phi[s];
+            for (r, c) in counts.iter().enumerate() {
+                add(r, c[s], v);
+            }
+        } else {
+            for (r, c) in counts.iter().enumerate() {
+                let (mut w, mut sum) = (0u32, 0.0);
+                for (&c, &v) in c[s..e].iter().zip(&phi[s..e]) {
+                    w += c;
+                    sum += c as f64 * v;
+                }
+                if w > 0 {
+                    add(r, w, sum / w as f64);
+                }
+            }
         }
     }
     (0..R)
@@ -248,8 +267,8 @@ pub fn targeting_many(
                 // One tie block: the model ranks nobody, every area is 0.
                 if s.blocks.len() <= 1 {
                     vec![(0.0, 0.0); len]
-                } else if s.blocks.len() == n && len == REPLICATE_CHUNK {
-                    areas_untied_chunk(&s.phi, chunk, &inv)
+                } else if len == REPLICATE_CHUNK {
+                    areas_chunk(&s.blocks, &s.phi, chunk, &inv)
                 } else {
                     chunk
                         .iter()
@@ -356,11 +375,16 @@ mod tests {
         let chunk: Vec<Vec<u32>> = (0..REPLICATE_CHUNK)
             .map(|r| (0..n).map(|i| ((i * (r + 3)) % 3) as u32).collect())
             .collect();
-        let blocks: Vec<(usize, usize)> = (0..n).map(|i| (i, i + 1)).collect();
         let h = harmonic_numbers(2 * n);
-        let together = areas_untied_chunk(&phi, &chunk, &h);
-        for (c, t) in chunk.iter().zip(together) {
-            assert_eq!(areas_sorted(&blocks, &phi, c, &h), t);
+        // Every unit its own block, and a mix of singletons and tie blocks.
+        let untied: Vec<(usize, usize)> = (0..n).map(|i| (i, i + 1)).collect();
+        let mut mixed: Vec<(usize, usize)> = (0..100).map(|i| (i, i + 1)).collect();
+        mixed.extend((100..n).step_by(5).map(|i| (i, (i + 5).min(n))));
+        for blocks in [untied, mixed] {
+            let together = areas_chunk(&blocks, &phi, &chunk, &h);
+            for (c, t) in chunk.iter().zip(together) {
+                assert_eq!(areas_sorted(&blocks, &phi, c, &h), t);
+            }
         }
     }
 
