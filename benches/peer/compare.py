@@ -166,7 +166,7 @@ def run_size(args, n):
           f"{args.repeat} repeat(s), {threads} ==")
     print(f"ours  plumbline score (end to end) {fmt_s(ours_wall)}   cpu {fmt_s(ours_cpu)}")
     print(f"peer  python peer.py  (end to end) {fmt_s(peer_wall)}   cpu {fmt_s(peer_cpu)}")
-    print(f"      of which interpreter start   {fmt_s(startup)}   (bare `python -c pass`: "
+    print(f"      of which interpreter start+exit {fmt_s(startup)}   (bare `python -c pass`: "
           f"{statistics.median(bare):.3f} s)")
     print(f"      of which imports             {fmt_s(imports)}")
     print(f"      of which work (CSV + fit)    {fmt_s(work)}")

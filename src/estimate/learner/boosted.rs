@@ -30,7 +30,7 @@ use rand_chacha::ChaCha8Rng;
 
 use super::linear::sigmoid;
 use super::shared::{Binned, SharedFeatures};
-use super::{constant_if_degenerate, Fitted, Learner, Task, LOG_LOSS_EPS};
+use super::{constant_if_degenerate, Fitted, Learner, Task};
 use crate::estimate::error::EstimateError;
 
 #[derive(Debug, Clone, Copy)]
@@ -497,13 +497,12 @@ fn validation_loss(task: Task, y: &[f64], f: &[f64]) -> f64 {
     let n = y.len().max(1) as f64;
     match task {
         Task::Regression => y.iter().zip(f).map(|(a, b)| (a - b).powi(2)).sum::<f64>() / n,
+        // -(a ln p + (1 - a) ln(1 - p)) with p = sigmoid(z) is
+        // softplus(z) - a z for labels a in {0, 1}: one exp and one log.
         Task::Classification => {
             y.iter()
                 .zip(f)
-                .map(|(&a, &z)| {
-                    let p = sigmoid(z).clamp(LOG_LOSS_EPS, 1.0 - LOG_LOSS_EPS);
-                    -(a * p.ln() + (1.0 - a) * (1.0 - p).ln())
-                })
+                .map(|(&a, &z)| z.max(0.0) + (-z.abs()).exp().ln_1p() - a * z)
                 .sum::<f64>()
                 / n
         }
