@@ -156,21 +156,22 @@ impl BoostedFit {
             Task::Classification => sigmoid(f),
         }
     }
+
+    /// The prediction for one row of raw (unbinned) feature values.
+    fn predict_values(&self, row: ndarray::ArrayView1<'_, f64>) -> f64 {
+        let f = self.base
+            + self
+                .trees
+                .iter()
+                .map(|t| t.leaf_of_values(|j| row[j]))
+                .sum::<f64>();
+        self.link(f)
+    }
 }
 
 impl Fitted for BoostedFit {
     fn predict(&self, x: ArrayView2<'_, f64>) -> Vec<f64> {
-        x.outer_iter()
-            .map(|row| {
-                let f = self.base
-                    + self
-                        .trees
-                        .iter()
-                        .map(|t| t.leaf_of_values(|j| row[j]))
-                        .sum::<f64>();
-                self.link(f)
-            })
-            .collect()
+        x.outer_iter().map(|row| self.predict_values(row)).collect()
     }
 
     fn predict_rows(&self, data: &SharedFeatures<'_>, rows: &[usize]) -> Vec<f64> {
@@ -187,16 +188,7 @@ impl Fitted for BoostedFit {
             _ => {
                 let x = data.x();
                 rows.iter()
-                    .map(|&r| {
-                        let row = x.row(r);
-                        let f = self.base
-                            + self
-                                .trees
-                                .iter()
-                                .map(|t| t.leaf_of_values(|j| row[j]))
-                                .sum::<f64>();
-                        self.link(f)
-                    })
+                    .map(|&r| self.predict_values(x.row(r)))
                     .collect()
             }
         }
