@@ -30,7 +30,7 @@ use rand_chacha::ChaCha8Rng;
 
 use super::linear::sigmoid;
 use super::shared::{Binned, SharedFeatures};
-use super::{constant_if_degenerate, Fitted, Learner, Task};
+use super::{fit_rows_start, Fitted, Learner, Task};
 use crate::estimate::error::EstimateError;
 
 #[derive(Debug, Clone, Copy)]
@@ -87,7 +87,10 @@ const MIN_LEAF_HESSIAN: f64 = 1e-3;
 /// cannot jump to an extreme probability.
 const MAX_CLASSIFICATION_STEP: f64 = 1.0;
 
-/// One tree node; leaves have `feature == LEAF`.
+/// One tree node. A leaf's two children are the leaf itself, so every row
+/// reaches its leaf in exactly the tree's `depth` steps with no test for
+/// leaves: the walk is branch-free, and a group of rows can walk in
+/// lockstep.
 #[derive(Debug, Clone, Copy)]
 struct Node {
     feature: u32,
@@ -99,43 +102,85 @@ struct Node {
     value: f64,
 }
 
-const LEAF: u32 = u32::MAX;
+impl Node {
+    fn leaf(id: usize) -> Self {
+        Self {
+            feature: 0,
+            bin: u8::MAX,
+            threshold: f64::INFINITY,
+            left: id as u32,
+            right: id as u32,
+            value: 0.0,
+        }
+    }
+}
+
+/// Rows walked together by [`Tree::add_leaf_values`].
+const LANES: usize = 8;
 
 #[derive(Debug, Clone, Default)]
 struct Tree {
     nodes: Vec<Node>,
+    /// Levels of splits; a row's walk takes this many steps.
+    depth: usize,
 }
 
 impl Tree {
     #[inline]
+    fn step_bins(&self, i: usize, bins: &[u8]) -> usize {
+        let n = &self.nodes[i];
+        (if bins[n.feature as usize] <= n.bin {
+            n.left
+        } else {
+            n.right
+        }) as usize
+    }
+
+    #[inline]
     fn leaf_of_bins(&self, bins: &[u8]) -> f64 {
         let mut i = 0usize;
-        loop {
-            let n = &self.nodes[i];
-            if n.feature == LEAF {
-                return n.value;
-            }
-            i = if bins[n.feature as usize] <= n.bin {
-                n.left
-            } else {
-                n.right
-            } as usize;
+        for _ in 0..self.depth {
+            i = self.step_bins(i, bins);
         }
+        self.nodes[i].value
     }
 
     #[inline]
     fn leaf_of_values(&self, x: impl Fn(usize) -> f64) -> f64 {
         let mut i = 0usize;
-        loop {
+        for _ in 0..self.depth {
             let n = &self.nodes[i];
-            if n.feature == LEAF {
-                return n.value;
-            }
             i = if x(n.feature as usize) <= n.threshold {
                 n.left
             } else {
                 n.right
             } as usize;
+        }
+        self.nodes[i].value
+    }
+
+    /// Adds each row's leaf value to its running prediction: row `r` of
+    /// `rows` has its bins at `bins[r * d..]` and its prediction at
+    /// `out[r]`. Rows walk in groups of [`LANES`], one level at a time, so
+    /// the loads along one row's path overlap with the others' instead of
+    /// waiting on each other.
+    fn add_leaf_values(&self, bins: &[u8], d: usize, rows: &[u32], out: &mut [f64]) {
+        let mut groups = rows.chunks_exact(LANES);
+        for group in &mut groups {
+            let mut at = [0usize; LANES];
+            for _ in 0..self.depth {
+                for (a, &r) in at.iter_mut().zip(group) {
+                    let r = r as usize;
+                    *a = self.step_bins(*a, &bins[r * d..r * d + d]);
+                }
+            }
+            for (&a, &r) in at.iter().zip(group) {
+                out[r as usize] += self.nodes[a].value;
+            }
+        }
+        for &r in groups.remainder() {
+            let r = r as usize;
+            out[r] += self.leaf_of_bins(&bins[r * d..r * d + d]);
         }
     }
 }
@@ -203,6 +248,10 @@ struct Bin {
     n: u32,
 }
 
+/// Histogram slots per feature: the most bins a feature can have, so that a
+/// bin number (a u8) indexes a feature's slots without a bounds check.
+const BIN_STRIDE: usize = 256;
+
 /// The rows of one growing node: a range of the index buffer, its sums and
 /// (when it may be split) its histogram.
 struct Open {
@@ -225,8 +274,13 @@ struct Split {
 
 /// The training state shared by the rounds of one fit.
 struct Grower<'a> {
-    /// Row-major bins of the training rows, `d` per row.
+    /// Row-major bins of the training rows, `d` per row (histograms read a
+    /// row's bins together).
     bins: &'a [u8],
+    /// The same bins column-major, `rows` per feature (a partition reads one
+    /// feature of many rows).
+    columns: &'a [u8],
+    rows: usize,
     d: usize,
     /// Bins used per feature (cut points + 1).
     widths: &'a [usize],
@@ -239,23 +293,31 @@ struct Grower<'a> {
 }
 
 impl Grower<'_> {
+    /// The histogram of the rows `rows`. Rows are read one at a time with
+    /// all their bins (one cache line), each bin adding its rows in the
+    /// order of `rows`.
     fn histogram(&self, rows: &[u32], grad: &[f64], hess: &[f64]) -> Vec<Bin> {
         let mut hist = vec![Bin::default(); self.hist_len];
         let d = self.d;
-        let offsets = &self.offsets[..d];
+        // One 256-slot array per feature: a bin number (a u8) indexes its
+        // array without a bounds check.
+        let mut features: Vec<&mut [Bin; BIN_STRIDE]> = hist
+            .chunks_exact_mut(BIN_STRIDE)
+            .filter_map(|c| <&mut [Bin; BIN_STRIDE]>::try_from(c).ok())
+            .collect();
         match self.task {
-            // Squared-error hessians are all one: the count is the hessian sum.
             Task::Regression => {
                 for &r in rows {
                     let r = r as usize;
                     let g = grad[r];
-                    let row = &self.bins[r * d..r * d + d];
-                    for (&o, &b) in offsets.iter().zip(row) {
-                        let e = &mut hist[o + b as usize];
+                    for (bins, &b) in features.iter_mut().zip(&self.bins[r * d..r * d + d]) {
+                        let e = &mut bins[b as usize];
                         e.g += g;
                         e.n += 1;
                     }
                 }
+                // Squared-error hessians are all one: the count is the
+                // hessian sum.
                 for e in &mut hist {
                     e.h = e.n as f64;
                 }
@@ -264,9 +326,8 @@ impl Grower<'_> {
                 for &r in rows {
                     let r = r as usize;
                     let (g, h) = (grad[r], hess[r]);
-                    let row = &self.bins[r * d..r * d + d];
-                    for (&o, &b) in offsets.iter().zip(row) {
-                        let e = &mut hist[o + b as usize];
+                    for (bins, &b) in features.iter_mut().zip(&self.bins[r * d..r * d + d]) {
+                        let e = &mut bins[b as usize];
                         e.g += g;
                         e.h += h;
                         e.n += 1;
@@ -345,14 +406,7 @@ impl Grower<'_> {
         });
         let max_depth = self.settings.max_depth;
         let mut tree = Tree::default();
-        tree.nodes.push(Node {
-            feature: LEAF,
-            bin: 0,
-            threshold: 0.0,
-            left: 0,
-            right: 0,
-            value: 0.0,
-        });
+        tree.nodes.push(Node::leaf(0));
         let mut level = vec![Open {
             node: 0,
             start: 0,
@@ -365,7 +419,7 @@ impl Grower<'_> {
         for depth in 0..max_depth {
             let mut next = Vec::with_capacity(level.len() * 2);
             let children_split = depth + 1 < max_depth;
-            for open in level {
+            for mut open in level {
                 let n = open.end - open.start;
                 let split = open
                     .hist
@@ -376,59 +430,55 @@ impl Grower<'_> {
                     continue;
                 };
                 // Stable partition of the node's rows: bin <= split.bin left.
+                // Both destinations are written and one cursor advances, so
+                // the loop has no branch to mispredict; a left write at l <= k
+                // only overwrites rows already read.
                 let rows = &mut index[open.start..open.end];
+                let column =
+                    &self.columns[split.feature * self.rows..(split.feature + 1) * self.rows];
+                let bin = split.bin as u8;
                 let (mut l, mut r) = (0usize, 0usize);
                 let tmp = &mut scratch[..n];
                 for k in 0..n {
                     let row = rows[k];
-                    if self.bins[row as usize * self.d + split.feature] as usize <= split.bin {
-                        rows[l] = row;
-                        l += 1;
-                    } else {
-                        tmp[r] = row;
-                        r += 1;
-                    }
+                    let left = column[row as usize] <= bin;
+                    rows[l] = row;
+                    tmp[r] = row;
+                    l += usize::from(left);
+                    r += usize::from(!left);
                 }
                 rows[l..].copy_from_slice(&tmp[..r]);
                 debug_assert_eq!(l, split.left_n);
                 let mid = open.start + l;
 
-                let (left_hist, right_hist) = if children_split {
-                    let parent = open.hist.as_deref().unwrap_or(&[]);
-                    let (small, small_is_left) = if l <= r {
-                        (&index[open.start..mid], true)
-                    } else {
-                        (&index[mid..open.end], false)
-                    };
-                    let small_hist = self.histogram(small, grad, hess);
-                    let large_hist: Vec<Bin> = parent
-                        .iter()
-                        .zip(&small_hist)
-                        .map(|(p, s)| Bin {
-                            g: p.g - s.g,
-                            h: p.h - s.h,
-                            n: p.n - s.n,
-                        })
-                        .collect();
-                    if small_is_left {
-                        (Some(small_hist), Some(large_hist))
-                    } else {
-                        (Some(large_hist), Some(small_hist))
+                let parent_hist = open.hist.take();
+                let (left_hist, right_hist) = match parent_hist {
+                    Some(mut large_hist) if children_split => {
+                        let (small, small_is_left) = if l <= r {
+                            (&index[open.start..mid], true)
+                        } else {
+                            (&index[mid..open.end], false)
+                        };
+                        let small_hist = self.histogram(small, grad, hess);
+                        // The larger child's histogram is the parent's minus
+                        // the smaller one's, in the parent's buffer.
+                        for (p, s) in large_hist.iter_mut().zip(&small_hist) {
+                            p.g -= s.g;
+                            p.h -= s.h;
+                            p.n -= s.n;
+                        }
+                        if small_is_left {
+                            (Some(small_hist), Some(large_hist))
+                        } else {
+                            (Some(large_hist), Some(small_hist))
+                        }
                     }
-                } else {
-                    (None, None)
+                    _ => (None, None),
                 };
                 let left_id = tree.nodes.len();
-                let leaf = Node {
-                    feature: LEAF,
-                    bin: 0,
-                    threshold: 0.0,
-                    left: 0,
-                    right: 0,
-                    value: 0.0,
-                };
-                tree.nodes.push(leaf);
-                tree.nodes.push(leaf);
+                tree.nodes.push(Node::leaf(left_id));
+                tree.nodes.push(Node::leaf(left_id + 1));
+                tree.depth = tree.depth.max(depth + 1);
                 tree.nodes[open.node] = Node {
                     feature: split.feature as u32,
                     bin: split.bin as u8,
@@ -468,15 +518,19 @@ impl Grower<'_> {
     }
 }
 
-fn gradients(task: Task, y: &[f64], f: &[f64], grad: &mut [f64], hess: &mut [f64]) {
+/// Gradients and hessians of the loss at the current predictions `f`, for
+/// the rows a round's tree is grown on (the others are not read).
+fn gradients(task: Task, rows: &[u32], y: &[f64], f: &[f64], grad: &mut [f64], hess: &mut [f64]) {
     match task {
         Task::Regression => {
-            for i in 0..y.len() {
+            for &i in rows {
+                let i = i as usize;
                 grad[i] = f[i] - y[i];
             }
         }
         Task::Classification => {
-            for i in 0..y.len() {
+            for &i in rows {
+                let i = i as usize;
                 let p = sigmoid(f[i]);
                 grad[i] = p - y[i];
                 hess[i] = (p * (1.0 - p)).max(1e-16);
@@ -532,6 +586,13 @@ impl Boosted {
         };
         let (train_bins, y_train) = gather(train_pos);
         let (valid_bins, y_valid) = gather(valid_pos);
+        let n_train = y_train.len();
+        let mut train_columns = vec![0u8; n_train * d];
+        for (i, row) in train_bins.chunks_exact(d.max(1)).enumerate() {
+            for (j, &b) in row.iter().enumerate() {
+                train_columns[j * n_train + i] = b;
+            }
+        }
 
         let mean = y_train.iter().sum::<f64>() / y_train.len().max(1) as f64;
         let base = match task {
@@ -541,14 +602,12 @@ impl Boosted {
                 (p / (1.0 - p)).ln()
             }
         };
-        let mut offsets = Vec::with_capacity(d);
-        let mut hist_len = 0;
-        for &w in &binned.widths {
-            offsets.push(hist_len);
-            hist_len += w;
-        }
+        let offsets: Vec<usize> = (0..d).map(|j| j * BIN_STRIDE).collect();
+        let hist_len = d * BIN_STRIDE;
         let grower = Grower {
             bins: &train_bins,
+            columns: &train_columns,
+            rows: n_train,
             d,
             widths: &binned.widths,
             offsets: &offsets,
@@ -557,15 +616,18 @@ impl Boosted {
             settings: self,
             task,
         };
-        let n_train = y_train.len();
         let mut f_train = vec![base; n_train];
         let mut f_valid = vec![base; y_valid.len()];
+        let valid_rows: Vec<u32> = (0..y_valid.len() as u32).collect();
         let mut grad = vec![0.0; n_train];
         let mut hess = vec![1.0; n_train];
+        // A round's tree grows on index[..kept]; the rows left out of its
+        // sample are out_of_sample[..dropped] and get its leaf values by a
+        // walk down the tree.
         let mut index: Vec<u32> = (0..n_train as u32).collect();
+        let mut out_of_sample = vec![0u32; n_train];
         let mut scratch = vec![0u32; n_train];
         let sampling = self.subsample < 1.0 && n_train >= 2 * MIN_ROWS_FOR_EARLY_STOPPING;
-        let mut in_sample = vec![true; if sampling { n_train } else { 0 }];
         let mut sampler = ChaCha8Rng::seed_from_u64(seed ^ 0x5ab5_a3b1e);
         let threshold = (self.subsample * u32::MAX as f64) as u32;
         let rounds = if early {
@@ -576,29 +638,29 @@ impl Boosted {
         let mut trees: Vec<Tree> = Vec::new();
         let (mut best_loss, mut best_len) = (f64::INFINITY, 0usize);
         for round in 0..rounds {
-            gradients(task, &y_train, &f_train, &mut grad, &mut hess);
-            let tree = if sampling {
-                index.clear();
-                for (i, keep) in in_sample.iter_mut().enumerate() {
-                    *keep = sampler.next_u32() <= threshold;
-                    if *keep {
-                        index.push(i as u32);
-                    }
+            let (mut kept, mut dropped) = (n_train, 0usize);
+            if sampling {
+                // Branch-free two-way split of the rows by a fresh draw each.
+                kept = 0;
+                for i in 0..n_train as u32 {
+                    let keep = sampler.next_u32() <= threshold;
+                    index[kept] = i;
+                    out_of_sample[dropped] = i;
+                    kept += usize::from(keep);
+                    dropped += usize::from(!keep);
                 }
-                let tree = grower.tree(&mut index, &mut scratch, &grad, &hess, &mut f_train);
-                for (i, keep) in in_sample.iter().enumerate() {
-                    if !keep {
-                        f_train[i] += tree.leaf_of_bins(&train_bins[i * d..i * d + d]);
-                    }
-                }
-                tree
             } else {
-                grower.tree(&mut index, &mut scratch, &grad, &hess, &mut f_train)
-            };
-            if early {
-                for (i, f) in f_valid.iter_mut().enumerate() {
-                    *f += tree.leaf_of_bins(&valid_bins[i * d..i * d + d]);
+                // The previous round's tree reordered the rows.
+                for (k, v) in index.iter_mut().enumerate() {
+                    *v = k as u32;
                 }
+            }
+            let in_sample = &mut index[..kept];
+            gradients(task, in_sample, &y_train, &f_train, &mut grad, &mut hess);
+            let tree = grower.tree(in_sample, &mut scratch, &grad, &hess, &mut f_train);
+            tree.add_leaf_values(&train_bins, d, &out_of_sample[..dropped], &mut f_train);
+            if early {
+                tree.add_leaf_values(&valid_bins, d, &valid_rows, &mut f_valid);
             }
             trees.push(tree);
             if early {
@@ -677,6 +739,10 @@ impl Learner for Boosted {
         self.fit_rows(&shared, &rows, y, task, seed)
     }
 
+    fn prepare(&self, data: &SharedFeatures<'_>) {
+        data.binned(self.max_bins);
+    }
+
     fn fit_rows(
         &self,
         data: &SharedFeatures<'_>,
@@ -685,14 +751,7 @@ impl Learner for Boosted {
         task: Task,
         seed: u64,
     ) -> Result<Box<dyn Fitted>, EstimateError> {
-        if rows.len() != y.len() || rows.is_empty() {
-            return Err(EstimateError::invalid(format!(
-                "boosted learner: {} rows for {} targets",
-                rows.len(),
-                y.len()
-            )));
-        }
-        if let Some(c) = constant_if_degenerate(y, task) {
+        if let Some(c) = fit_rows_start("boosted", rows, y, task)? {
             return Ok(c);
         }
         let binned = data.binned(self.max_bins);

@@ -9,9 +9,10 @@
 //! parametric specifications and reference checks.
 
 use linfa_linalg::cholesky::SolveC;
-use ndarray::{Array1, Array2, ArrayView2, Axis};
+use ndarray::linalg::general_mat_mul;
+use ndarray::{s, Array1, Array2, ArrayView1, ArrayView2, Axis};
 
-use super::{constant_if_degenerate, Fitted, Learner, Task};
+use super::{constant_if_degenerate, fit_rows_start, Fitted, Learner, SharedFeatures, Task};
 use crate::estimate::error::EstimateError;
 
 /// Linear model coefficients on the raw feature scale.
@@ -30,15 +31,30 @@ impl LinearFit {
     }
 }
 
+impl LinearFit {
+    fn link(&self, v: f64) -> f64 {
+        match self.task {
+            Task::Regression => v,
+            Task::Classification => sigmoid(v),
+        }
+    }
+}
+
 impl Fitted for LinearFit {
     fn predict(&self, x: ArrayView2<'_, f64>) -> Vec<f64> {
         let mut out = self.index(x);
-        if self.task == Task::Classification {
-            for v in &mut out {
-                *v = sigmoid(*v);
-            }
+        for v in &mut out {
+            *v = self.link(*v);
         }
         out
+    }
+
+    fn predict_rows(&self, data: &SharedFeatures<'_>, rows: &[usize]) -> Vec<f64> {
+        let x = data.x();
+        let coef = ArrayView1::from(&self.coef[..]);
+        rows.iter()
+            .map(|&r| self.link(x.row(r).dot(&coef) + self.intercept))
+            .collect()
     }
 }
 
@@ -51,9 +67,11 @@ pub(crate) fn sigmoid(z: f64) -> f64 {
     }
 }
 
-/// Rows per block of the Gram accumulation: a block is copied column-major
-/// so that each entry of the Gram matrix is a contiguous dot product.
-const GRAM_BLOCK: usize = 64;
+/// Rows per block of the Gram accumulation: a block of [1, x - center, t]
+/// rows (scaled by the square root of their weights) is multiplied by its
+/// own transpose with a blocked matrix product, which keeps the Gram matrix
+/// in registers and cache instead of summing one dot product at a time.
+const GRAM_BLOCK: usize = 256;
 
 /// Column means of `x`.
 fn column_means(x: ArrayView2<'_, f64>) -> Vec<f64> {
@@ -80,38 +98,37 @@ fn gram(
 ) -> (Vec<f64>, Vec<f64>) {
     let (n, d) = x.dim();
     let p = d + 1;
-    let mut g = vec![0.0; p * p];
-    let mut r = vec![0.0; p];
-    // cols[j * GRAM_BLOCK + m] = sqrt(w) z_mj for the block's row m.
-    let mut cols = vec![0.0; p * GRAM_BLOCK];
-    let mut tv = [0.0; GRAM_BLOCK];
+    // Each block row is sqrt(w) [1, x - center, t]; the product of the
+    // block's transpose with itself holds G in its first p rows and columns
+    // and r in column p.
+    let q = p + 1;
+    let mut acc = Array2::<f64>::zeros((q, q));
+    let mut block = Array2::<f64>::zeros((GRAM_BLOCK, q));
     let mut start = 0;
     while start < n {
         let len = GRAM_BLOCK.min(n - start);
-        for m in 0..len {
+        for (m, mut out) in block.outer_iter_mut().take(len).enumerate() {
             let i = start + m;
             let sw = weights.map_or(1.0, |w| w[i].sqrt());
-            cols[m] = sw;
-            let row = x.row(i);
-            for j in 0..d {
-                cols[(j + 1) * GRAM_BLOCK + m] = sw * (row[j] - center[j]);
+            out[0] = sw;
+            for ((o, v), c) in out.iter_mut().skip(1).zip(x.row(i)).zip(center) {
+                *o = sw * (v - c);
             }
-            tv[m] = sw * t[i];
+            out[p] = sw * t[i];
         }
-        for j in 0..p {
-            let cj = &cols[j * GRAM_BLOCK..j * GRAM_BLOCK + len];
-            for k in 0..=j {
-                let ck = &cols[k * GRAM_BLOCK..k * GRAM_BLOCK + len];
-                g[j * p + k] += cj.iter().zip(ck).map(|(a, b)| a * b).sum::<f64>();
-            }
-            r[j] += cj.iter().zip(&tv[..len]).map(|(a, b)| a * b).sum::<f64>();
-        }
+        let b = block.slice(s![..len, ..]);
+        general_mat_mul(1.0, &b.t(), &b, 1.0, &mut acc);
         start += len;
     }
+    let mut g = vec![0.0; p * p];
+    let mut r = vec![0.0; p];
     for j in 0..p {
-        for k in 0..j {
-            g[k * p + j] = g[j * p + k];
+        for k in 0..p {
+            // The product is symmetric up to rounding; take the lower
+            // triangle so the matrix handed to Cholesky is exactly symmetric.
+            g[j * p + k] = if k <= j { acc[[j, k]] } else { acc[[k, j]] };
         }
+        r[j] = acc[[j, p]];
     }
     (g, r)
 }
@@ -175,35 +192,24 @@ pub fn ridge_fit(
 /// Newton iterations of the logistic fit stop after this many.
 const NEWTON_MAX_ITERATIONS: usize = 100;
 
-/// Penalized logistic negative log-likelihood at (b0, b) on centered x.
-fn logistic_objective(
-    x: ArrayView2<'_, f64>,
-    center: &[f64],
-    y: &[f64],
-    theta: &[f64],
-    alpha: f64,
-) -> f64 {
-    let mut total = 0.0;
-    for (row, &yi) in x.outer_iter().zip(y) {
-        let eta = linear_index(row.iter(), center, theta);
-        // log(1 + e^eta) - y eta, computed stably.
-        total += if eta > 0.0 {
-            eta + (-eta).exp().ln_1p()
-        } else {
-            eta.exp().ln_1p()
-        } - yi * eta;
-    }
-    total + 0.5 * alpha * theta[1..].iter().map(|b| b * b).sum::<f64>()
+/// The linear index theta_0 + (x_i - center) . theta_1.. of every row, as
+/// x_i . b plus one shift, so the rows are read once, by a matrix-vector
+/// product.
+fn linear_index(x: ArrayView2<'_, f64>, center: &[f64], theta: &[f64]) -> Vec<f64> {
+    let b = ArrayView1::from(&theta[1..]);
+    let shift = theta[0] - b.iter().zip(center).map(|(b, c)| b * c).sum::<f64>();
+    x.dot(&b).iter().map(|v| v + shift).collect()
 }
 
-#[inline]
-fn linear_index<'a>(row: impl Iterator<Item = &'a f64>, center: &[f64], theta: &[f64]) -> f64 {
-    theta[0]
-        + row
-            .zip(center)
-            .zip(&theta[1..])
-            .map(|((v, c), b)| (v - c) * b)
-            .sum::<f64>()
+/// Penalized logistic negative log-likelihood from the linear index `eta`
+/// of every row and the penalized coefficients `b`.
+fn logistic_objective(eta: &[f64], y: &[f64], b: &[f64], alpha: f64) -> f64 {
+    let mut total = 0.0;
+    for (&e, &yi) in eta.iter().zip(y) {
+        // log(1 + e^eta) - y eta, computed stably.
+        total += e.max(0.0) + (-e.abs()).exp().ln_1p() - yi * e;
+    }
+    total + 0.5 * alpha * b.iter().map(|b| b * b).sum::<f64>()
 }
 
 /// L2-regularized logistic regression with an unpenalized intercept:
@@ -227,14 +233,16 @@ pub fn logistic_fit(
     let share = (y.iter().sum::<f64>() / n as f64).clamp(1e-6, 1.0 - 1e-6);
     let mut theta = vec![0.0; d + 1];
     theta[0] = (share / (1.0 - share)).ln();
-    let mut objective = logistic_objective(x, &center, y, &theta, alpha);
+    let mut eta = linear_index(x, &center, &theta);
+    let mut objective = logistic_objective(&eta, y, &theta[1..], alpha);
     let mut weights = vec![0.0; n];
     let mut residual = vec![0.0; n];
+    let mut trial_eta = vec![0.0; n];
     let p = d + 1;
     let mut converged = false;
     for _ in 0..NEWTON_MAX_ITERATIONS {
-        for (i, row) in x.outer_iter().enumerate() {
-            let prob = sigmoid(linear_index(row.iter(), &center, &theta));
+        for (i, &e) in eta.iter().enumerate() {
+            let prob = sigmoid(e);
             weights[i] = (prob * (1.0 - prob)).max(1e-12);
             // Working response: the gradient is sum z_i (p_i - y_i) =
             // sum w_i z_i t_i with t_i = (p_i - y_i) / w_i.
@@ -259,14 +267,21 @@ pub fn logistic_fit(
             converged = true;
             break;
         }
+        // The index is linear in theta: a trial point's index is the
+        // current one minus t times the step's, one pass per trial.
+        let step_eta = linear_index(x, &center, &step);
         let mut t = 1.0;
         let mut accepted = false;
         for _ in 0..40 {
             let trial: Vec<f64> = theta.iter().zip(&step).map(|(a, s)| a - t * s).collect();
-            let value = logistic_objective(x, &center, y, &trial, alpha);
+            for ((te, e), se) in trial_eta.iter_mut().zip(&eta).zip(&step_eta) {
+                *te = e - t * se;
+            }
+            let value = logistic_objective(&trial_eta, y, &trial[1..], alpha);
             if value <= objective - 1e-4 * t * decrement {
                 theta = trial;
                 objective = value;
+                std::mem::swap(&mut eta, &mut trial_eta);
                 accepted = true;
                 break;
             }
@@ -300,14 +315,54 @@ pub fn logistic_fit(
     })
 }
 
-/// Column means and standard deviations; constant columns keep sd 1 so they
-/// standardize to zero instead of dividing by zero.
-fn column_scales(x: ArrayView2<'_, f64>) -> (Array1<f64>, Array1<f64>) {
+/// The rows `rows` of `x` (all rows when None), standardized: each column
+/// centered on its mean over those rows and divided by its standard
+/// deviation (population, as numpy's default); a constant column keeps sd 1
+/// so it standardizes to zero instead of dividing by zero. Returns the
+/// standardized copy, the means and the standard deviations.
+fn standardized(
+    x: ArrayView2<'_, f64>,
+    rows: Option<&[usize]>,
+) -> (Array2<f64>, Vec<f64>, Vec<f64>) {
     let d = x.ncols();
-    let mean = x.mean_axis(Axis(0)).unwrap_or_else(|| Array1::zeros(d));
-    let mut sd = x.var_axis(Axis(0), 0.0).mapv(f64::sqrt);
-    sd.mapv_inplace(|s| if s > 1e-12 { s } else { 1.0 });
-    (mean, sd)
+    let n = rows.map_or(x.nrows(), <[usize]>::len);
+    // Rows as slices: the shared matrix is row-major, so this borrows it;
+    // any other layout is copied once.
+    let x = x.as_standard_layout();
+    let data = x.as_slice().unwrap_or(&[]);
+    let row = |i: usize| {
+        let r = rows.map_or(i, |r| r[i]);
+        &data[r * d..(r + 1) * d]
+    };
+    let mut mean = vec![0.0; d];
+    for i in 0..n {
+        for (m, v) in mean.iter_mut().zip(row(i)) {
+            *m += v;
+        }
+    }
+    let count = n.max(1) as f64;
+    mean.iter_mut().for_each(|m| *m /= count);
+    let mut sd = vec![0.0; d];
+    for i in 0..n {
+        for ((s, v), m) in sd.iter_mut().zip(row(i)).zip(&mean) {
+            *s += (v - m) * (v - m);
+        }
+    }
+    sd.iter_mut().for_each(|s| {
+        let v = (*s / count).sqrt();
+        *s = if v > 1e-12 { v } else { 1.0 };
+    });
+    let mut out = vec![0.0; n * d];
+    if d > 0 {
+        for (i, o) in out.chunks_exact_mut(d).enumerate() {
+            for (((o, v), m), s) in o.iter_mut().zip(row(i)).zip(&mean).zip(&sd) {
+                *o = (v - m) / s;
+            }
+        }
+    }
+    // `out` holds n x d values by construction, so the shape always fits.
+    let out = Array2::from_shape_vec((n, d), out).unwrap_or_else(|_| Array2::zeros((n, d)));
+    (out, mean, sd)
 }
 
 /// Ridge (regression) or L2 logistic (classification) on standardized
@@ -335,19 +390,23 @@ impl Linear {
         y: &[f64],
         task: Task,
     ) -> Result<LinearFit, EstimateError> {
-        let (mean, sd) = column_scales(x);
-        let xs: Array2<f64> = (&x - &mean) / &sd;
+        self.fit_standardized(standardized(x, None), y, task)
+    }
+
+    /// Fits on standardized features, given with their means and standard
+    /// deviations, and maps the coefficients back to the raw scale.
+    fn fit_standardized(
+        &self,
+        (xs, mean, sd): (Array2<f64>, Vec<f64>, Vec<f64>),
+        y: &[f64],
+        task: Task,
+    ) -> Result<LinearFit, EstimateError> {
         let fit = match task {
             Task::Regression => ridge_fit(xs.view(), y, self.alpha)?,
             Task::Classification => logistic_fit(xs.view(), y, self.alpha)?,
         };
-        let coef: Vec<f64> = fit.coef.iter().zip(sd.iter()).map(|(b, s)| b / s).collect();
-        let intercept = fit.intercept
-            - coef
-                .iter()
-                .zip(mean.iter())
-                .map(|(b, m)| b * m)
-                .sum::<f64>();
+        let coef: Vec<f64> = fit.coef.iter().zip(&sd).map(|(b, s)| b / s).collect();
+        let intercept = fit.intercept - coef.iter().zip(&mean).map(|(b, m)| b * m).sum::<f64>();
         Ok(LinearFit {
             intercept,
             coef,
@@ -387,5 +446,23 @@ impl Learner for Linear {
             return Ok(c);
         }
         Ok(Box::new(self.fit_coefficients(x, y, task)?))
+    }
+
+    /// Standardizes the chosen rows straight from the shared matrix: one
+    /// copy of the training rows instead of a selection and then a
+    /// standardized copy of it.
+    fn fit_rows(
+        &self,
+        data: &SharedFeatures<'_>,
+        rows: &[usize],
+        y: &[f64],
+        task: Task,
+        _seed: u64,
+    ) -> Result<Box<dyn Fitted>, EstimateError> {
+        if let Some(c) = fit_rows_start("linear", rows, y, task)? {
+            return Ok(c);
+        }
+        let fit = self.fit_standardized(standardized(data.x(), Some(rows)), y, task)?;
+        Ok(Box::new(fit))
     }
 }

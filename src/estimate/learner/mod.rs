@@ -53,6 +53,11 @@ pub trait Learner: Send + Sync + std::fmt::Debug {
         seed: u64,
     ) -> Result<Box<dyn Fitted>, EstimateError>;
 
+    /// Builds, before any fit of a cross-fit starts, what this learner's
+    /// fits will share through `data` (the boosted learner's binned
+    /// features), so no fit waits on another to build it.
+    fn prepare(&self, _data: &SharedFeatures<'_>) {}
+
     /// Fits on the rows `rows` of a matrix shared by every fit of a
     /// cross-fit; `y[i]` is the target of row `rows[i]`. The default copies
     /// the rows out and calls [`Learner::fit`]; a learner that can reuse work
@@ -120,6 +125,25 @@ pub fn mean_loss(task: Task, y: &[f64], pred: &[f64]) -> f64 {
                 / n
         }
     }
+}
+
+/// The common start of a [`Learner::fit_rows`]: the rows and targets must
+/// pair up and not be empty, and constant targets get the constant fit
+/// (returned as `Some`).
+pub(crate) fn fit_rows_start(
+    learner: &str,
+    rows: &[usize],
+    y: &[f64],
+    task: Task,
+) -> Result<Option<Box<dyn Fitted>>, EstimateError> {
+    if rows.len() != y.len() || rows.is_empty() {
+        return Err(EstimateError::invalid(format!(
+            "{learner} learner: {} rows for {} targets",
+            rows.len(),
+            y.len()
+        )));
+    }
+    Ok(constant_if_degenerate(y, task))
 }
 
 /// If `y` is constant the only sensible fit is a constant; every learner

@@ -5,9 +5,12 @@
 use std::sync::{Arc, Mutex};
 
 use ndarray::ArrayView2;
+use rayon::prelude::*;
 
 /// At most this many rows (evenly spaced) set the bin edges of a feature.
 const QUANTILE_SAMPLE: usize = 50_000;
+/// Rows binned per parallel task.
+const BIN_BLOCK_ROWS: usize = 8192;
 
 /// Features cut into quantile bins, row-major, one byte per value.
 #[derive(Debug)]
@@ -23,25 +26,33 @@ pub struct Binned {
 }
 
 impl Binned {
+    /// Bins `x`, in parallel: the cut points feature by feature, then the
+    /// rows in blocks.
     pub fn new(x: ArrayView2<'_, f64>, max_bins: usize) -> Self {
         let (n, d) = x.dim();
         let max_bins = max_bins.clamp(2, 256);
         let step = n.div_ceil(QUANTILE_SAMPLE).max(1);
-        let cuts: Vec<Vec<f64>> = x
-            .columns()
-            .into_iter()
-            .map(|col| {
-                let mut v: Vec<f64> = col.iter().step_by(step).copied().collect();
-                v.sort_by(f64::total_cmp);
+        let cuts: Vec<Vec<f64>> = (0..d)
+            .into_par_iter()
+            .map(|j| {
+                let mut v: Vec<f64> = x.column(j).iter().step_by(step).copied().collect();
+                v.sort_unstable_by(f64::total_cmp);
                 feature_cuts(&v, max_bins)
             })
             .collect();
         let mut bins = vec![0u8; n * d];
-        for (i, row) in x.outer_iter().enumerate() {
-            let out = &mut bins[i * d..(i + 1) * d];
-            for (j, &v) in row.iter().enumerate() {
-                out[j] = cuts[j].partition_point(|&c| c < v) as u8;
-            }
+        if d > 0 {
+            bins.par_chunks_mut(BIN_BLOCK_ROWS * d)
+                .enumerate()
+                .for_each(|(block, out)| {
+                    let first = block * BIN_BLOCK_ROWS;
+                    for (k, out) in out.chunks_exact_mut(d).enumerate() {
+                        let row = x.row(first + k);
+                        for ((o, &v), c) in out.iter_mut().zip(row.iter()).zip(&cuts) {
+                            *o = c.partition_point(|&c| c < v) as u8;
+                        }
+                    }
+                });
         }
         let widths = cuts.iter().map(|c| c.len() + 1).collect();
         Self {
