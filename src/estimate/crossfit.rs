@@ -10,7 +10,9 @@ use ndarray::ArrayView2;
 use rand::seq::SliceRandom;
 use rand::SeedableRng;
 use rand_chacha::ChaCha8Rng;
-use rayon::prelude::*;
+use std::sync::atomic::{AtomicUsize, Ordering};
+use std::sync::{Mutex, OnceLock};
+
 use serde::Serialize;
 
 use super::data::{OutcomeKind, UnitTable};
@@ -34,6 +36,11 @@ pub struct NuisanceSettings {
     pub min_units_per_fold: usize,
     /// A propensity AUC at or above this means the arms are separated.
     pub separation_auc: f64,
+    /// First-fold screening: a learner whose held-out loss on the first
+    /// fold is above the best learner's by more than this many standard
+    /// errors (paired over that fold's units) is not fitted on the other
+    /// folds. None fits every learner on every fold.
+    pub screening_z: Option<f64>,
 }
 
 impl Default for NuisanceSettings {
@@ -46,6 +53,9 @@ impl Default for NuisanceSettings {
             outcome_learners: Vec::new(),
             min_units_per_fold: 3,
             separation_auc: 0.995,
+            // Four standard errors on a fifth of the data: a learner this far
+            // behind on one fold is all but certain to lose on all five.
+            screening_z: Some(4.0),
         }
     }
 }
@@ -57,6 +67,13 @@ impl NuisanceSettings {
                 "folds must be at least 2 (got {})",
                 self.folds
             )));
+        }
+        if let Some(z) = self.screening_z {
+            if !(z.is_finite() && z > 0.0) {
+                return Err(EstimateError::invalid(format!(
+                    "screening z must be a positive number (got {z})"
+                )));
+            }
         }
         if !(self.clip >= 0.0 && self.clip < 0.5) {
             return Err(EstimateError::invalid(format!(
@@ -134,7 +151,14 @@ fn clip_propensity(mut p: Vec<f64>, clip: f64) -> (Vec<f64>, usize) {
 #[derive(Debug, Clone, Serialize)]
 pub struct CandidateLoss {
     pub learner: String,
+    /// Mean held-out loss: over every scored unit for a learner fitted on
+    /// all folds; over the first fold's scored units for one screened out.
     pub oof_loss: f64,
+    /// Present when the learner was screened out after the first fold: how
+    /// many standard errors its first-fold loss lay above the best
+    /// learner's.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub screened_out_z: Option<f64>,
 }
 
 /// Which learner a component chose and how well it did out of fold.
@@ -194,7 +218,8 @@ struct Folds<'a> {
 }
 
 /// One nuisance component to cross-fit: its target, the units its fits may
-/// train on, its learners, its task and its seed.
+/// train on (and whose losses judge it), its learners, its task and its
+/// seed.
 struct Component<'a> {
     target: &'a [f64],
     train_mask: &'a [bool],
@@ -207,75 +232,249 @@ struct Component<'a> {
 /// predictions for the held-out rows.
 type FoldFit = (Box<dyn Fitted>, Vec<f64>);
 
-/// Out-of-fold predictions of every learner, and every learner's fold models
-/// (models[learner][fold]).
+/// A learner fitted on every fold: its out-of-fold prediction for every
+/// unit and its fold models.
+type FullFit = (Vec<f64>, Vec<Box<dyn Fitted>>);
+
+/// A component's cross-fit: for each learner, its out-of-fold predictions
+/// and fold models when it was fitted on every fold, or the z of its
+/// screening when it was dropped after the first fold
+/// (`learners[l]` is `Err(z)` then). `first_fold_loss` is each learner's
+/// mean loss on the first fold's scored units.
 struct OutOfFold {
-    predictions: Vec<Vec<f64>>,
-    models: Vec<Vec<Box<dyn Fitted>>>,
+    learners: Vec<Result<FullFit, f64>>,
+    first_fold_loss: Vec<f64>,
+}
+
+/// What a fit job left in its slot.
+enum Slot {
+    Pending,
+    Done(Result<FoldFit, EstimateError>),
+    /// Not run: its learner was screened out after the first fold.
+    Skipped,
+}
+
+/// Per-unit loss of one prediction.
+fn unit_loss(task: Task, y: f64, p: f64) -> f64 {
+    mean_loss(task, &[y], &[p])
+}
+
+/// First-fold screening of a component's learners: `Err(z)` for a learner
+/// whose paired first-fold loss exceeds the best learner's by more than
+/// `z_limit` standard errors, `Ok(())` for the others; and each learner's
+/// mean first-fold loss. `predictions[l]` are learner l's predictions for
+/// `held` (the first fold's units), of which the `scored` ones count.
+fn screen(
+    comp: &Component<'_>,
+    held: &[usize],
+    predictions: &[&[f64]],
+    z_limit: Option<f64>,
+) -> (Vec<Result<(), f64>>, Vec<f64>) {
+    let scored: Vec<usize> = (0..held.len())
+        .filter(|&k| comp.train_mask[held[k]])
+        .collect();
+    let losses: Vec<Vec<f64>> = predictions
+        .iter()
+        .map(|p| {
+            scored
+                .iter()
+                .map(|&k| unit_loss(comp.task, comp.target[held[k]], p[k]))
+                .collect()
+        })
+        .collect();
+    let m = scored.len().max(1) as f64;
+    let means: Vec<f64> = losses.iter().map(|l| l.iter().sum::<f64>() / m).collect();
+    let best = means
+        .iter()
+        .enumerate()
+        .min_by(|a, b| a.1.total_cmp(b.1))
+        .map_or(0, |(i, _)| i);
+    let verdicts = losses
+        .iter()
+        .enumerate()
+        .map(|(l, loss)| {
+            let Some(limit) = z_limit else { return Ok(()) };
+            if l == best || scored.len() < 2 {
+                return Ok(());
+            }
+            let d: Vec<f64> = loss.iter().zip(&losses[best]).map(|(a, b)| a - b).collect();
+            let mean = d.iter().sum::<f64>() / m;
+            let var = d.iter().map(|v| (v - mean).powi(2)).sum::<f64>() / (m - 1.0);
+            let se = (var / m).sqrt();
+            let z = if se > 0.0 {
+                mean / se
+            } else if mean > 0.0 {
+                f64::INFINITY
+            } else {
+                0.0
+            };
+            if z > limit {
+                Err(z)
+            } else {
+                Ok(())
+            }
+        })
+        .collect();
+    (verdicts, means)
 }
 
 /// Out-of-fold predictions for every unit from every learner of every
 /// component, where fold `f` is predicted by a fit on the units of the
-/// component's `train_mask` outside fold `f`. All fits of all components run
-/// as one parallel batch, so the largest fits never wait on a component
-/// boundary.
+/// component's `train_mask` outside fold `f`.
+///
+/// All fits of all components run as one queue, taken in order by every
+/// worker thread: first every learner's first-fold fit (longest first),
+/// then the other folds. Once a component's first-fold fits are all done,
+/// its learners are screened ([`screen`]); a later fit of a screened-out
+/// learner is skipped when it comes up (one already running when the
+/// verdict lands is finished and discarded), so which fits run depends on
+/// timing but the results never do.
 fn out_of_fold(
     x: &SharedFeatures<'_>,
     folds: &Folds<'_>,
     components: &[Component<'_>],
+    screening_z: Option<f64>,
 ) -> Vec<Result<OutOfFold, EstimateError>> {
     let (k, fold_of) = (folds.count, folds.of_unit);
     let held: Vec<Vec<usize>> = (0..k)
         .map(|f| (0..fold_of.len()).filter(|&i| fold_of[i] == f).collect())
         .collect();
-    let jobs: Vec<(usize, usize, usize)> = components
-        .iter()
-        .enumerate()
-        .flat_map(|(c, comp)| {
-            (0..comp.learners.len()).flat_map(move |l| (0..k).map(move |f| (c, l, f)))
-        })
-        .collect();
-    let results: Vec<Result<FoldFit, EstimateError>> = jobs
-        .par_iter()
-        .with_max_len(1)
-        .map(|&(c, l, f)| {
-            let comp = &components[c];
-            let train: Vec<usize> = (0..fold_of.len())
-                .filter(|&i| fold_of[i] != f && comp.train_mask[i])
-                .collect();
-            let yt: Vec<f64> = train.iter().map(|&i| comp.target[i]).collect();
-            let fit_seed = comp.seed ^ ((f as u64 + 1) << 32) ^ (l as u64 + 1);
-            let model = comp.learners[l].fit_rows(x, &train, &yt, comp.task, fit_seed)?;
-            let pred = model.predict_rows(x, &held[f]);
-            Ok((model, pred))
-        })
-        .collect();
-    let mut out: Vec<Result<OutOfFold, EstimateError>> = components
-        .iter()
-        .map(|comp| {
-            Ok(OutOfFold {
-                predictions: vec![vec![0.0; fold_of.len()]; comp.learners.len()],
-                models: (0..comp.learners.len())
-                    .map(|_| Vec::with_capacity(k))
-                    .collect(),
-            })
-        })
-        .collect();
-    // Jobs are in (component, learner, fold) order, so each learner's models
-    // are pushed in fold order; a component keeps its first error.
-    for (&(c, l, f), r) in jobs.iter().zip(results) {
-        match (&mut out[c], r) {
-            (Ok(oof), Ok((model, pred))) => {
-                for (&i, p) in held[f].iter().zip(pred) {
-                    oof.predictions[l][i] = p;
-                }
-                oof.models[l].push(model);
+    // (component, learner, fold), the first fold first; within a fold the
+    // components in order of training size (the propensity trains on
+    // everyone), so the longest fits start first and short ones fill the end.
+    let mut jobs: Vec<(usize, usize, usize)> = Vec::new();
+    for f in 0..k {
+        let mut by_size: Vec<usize> = (0..components.len()).collect();
+        by_size.sort_by_key(|&c| {
+            std::cmp::Reverse(components[c].train_mask.iter().filter(|&&t| t).count())
+        });
+        for &c in &by_size {
+            for l in 0..components[c].learners.len() {
+                jobs.push((c, l, f));
             }
-            (Ok(_), Err(e)) => out[c] = Err(e),
-            (Err(_), _) => {}
         }
     }
-    out
+    let slot_of = |c: usize, l: usize, f: usize| -> usize {
+        jobs.iter()
+            .position(|&j| j == (c, l, f))
+            .unwrap_or(usize::MAX)
+    };
+    let slots: Vec<Mutex<Slot>> = jobs.iter().map(|_| Mutex::new(Slot::Pending)).collect();
+    let first_fold_left: Vec<AtomicUsize> = components
+        .iter()
+        .map(|c| AtomicUsize::new(c.learners.len()))
+        .collect();
+    let verdicts: Vec<OnceLock<Vec<Result<(), f64>>>> =
+        components.iter().map(|_| OnceLock::new()).collect();
+    let next = AtomicUsize::new(0);
+    let lock = |i: usize| slots[i].lock().unwrap_or_else(|e| e.into_inner());
+
+    let fit = |c: usize, l: usize, f: usize| -> Result<FoldFit, EstimateError> {
+        let comp = &components[c];
+        let train: Vec<usize> = (0..fold_of.len())
+            .filter(|&i| fold_of[i] != f && comp.train_mask[i])
+            .collect();
+        let yt: Vec<f64> = train.iter().map(|&i| comp.target[i]).collect();
+        let fit_seed = comp.seed ^ ((f as u64 + 1) << 32) ^ (l as u64 + 1);
+        let model = comp.learners[l].fit_rows(x, &train, &yt, comp.task, fit_seed)?;
+        let pred = model.predict_rows(x, &held[f]);
+        Ok((model, pred))
+    };
+    let worker = || loop {
+        let i = next.fetch_add(1, Ordering::Relaxed);
+        let Some(&(c, l, f)) = jobs.get(i) else {
+            return;
+        };
+        let screened_out = verdicts[c]
+            .get()
+            .is_some_and(|v| v.get(l).is_some_and(Result::is_err));
+        if f > 0 && screened_out {
+            *lock(i) = Slot::Skipped;
+            continue;
+        }
+        let result = fit(c, l, f);
+        *lock(i) = Slot::Done(result);
+        if f == 0 && first_fold_left[c].fetch_sub(1, Ordering::AcqRel) == 1 {
+            // The last first-fold fit of this component: screen its learners.
+            let guards: Vec<_> = (0..components[c].learners.len())
+                .map(|l| lock(slot_of(c, l, 0)))
+                .collect();
+            let predictions: Option<Vec<&[f64]>> = guards
+                .iter()
+                .map(|g| match &**g {
+                    Slot::Done(Ok((_, p))) => Some(p.as_slice()),
+                    _ => None,
+                })
+                .collect();
+            // A failed first-fold fit fails the component; nothing to screen.
+            let verdict = match predictions {
+                Some(p) => screen(&components[c], &held[0], &p, screening_z).0,
+                None => vec![Ok(()); components[c].learners.len()],
+            };
+            drop(guards);
+            let _ = verdicts[c].set(verdict);
+        }
+    };
+    rayon::scope(|s| {
+        for _ in 0..rayon::current_num_threads().max(1) {
+            s.spawn(|_| worker());
+        }
+    });
+
+    let mut slots: Vec<Slot> = slots
+        .into_iter()
+        .map(|m| m.into_inner().unwrap_or_else(|e| e.into_inner()))
+        .collect();
+    components
+        .iter()
+        .enumerate()
+        .map(|(c, comp)| {
+            let mut learners = Vec::with_capacity(comp.learners.len());
+            let mut first: Vec<&[f64]> = Vec::new();
+            let mut fits: Vec<Vec<FoldFit>> = Vec::new();
+            // Errors in (learner, fold) order, as one-by-one fitting meets them.
+            for l in 0..comp.learners.len() {
+                let mut folds_done = Vec::with_capacity(k);
+                for f in 0..k {
+                    match std::mem::replace(&mut slots[slot_of(c, l, f)], Slot::Skipped) {
+                        Slot::Done(Ok(fit)) => folds_done.push(fit),
+                        Slot::Done(Err(e)) => return Err(e),
+                        Slot::Skipped | Slot::Pending => {}
+                    }
+                }
+                fits.push(folds_done);
+            }
+            for fits_l in &fits {
+                first.push(fits_l.first().map_or(&[][..], |(_, p)| p.as_slice()));
+            }
+            let (verdict, first_fold_loss) = screen(comp, &held[0], &first, screening_z);
+            for (fits_l, v) in fits.into_iter().zip(verdict) {
+                learners.push(match v {
+                    Err(z) => Err(z),
+                    Ok(()) if fits_l.len() == k => {
+                        let mut predictions = vec![0.0; fold_of.len()];
+                        let mut models = Vec::with_capacity(k);
+                        for (f, (model, pred)) in fits_l.into_iter().enumerate() {
+                            for (&i, p) in held[f].iter().zip(pred) {
+                                predictions[i] = p;
+                            }
+                            models.push(model);
+                        }
+                        Ok((predictions, models))
+                    }
+                    Ok(()) => {
+                        return Err(EstimateError::invalid(
+                            "internal: a learner that passed screening is missing a fold fit",
+                        ))
+                    }
+                });
+            }
+            Ok(OutOfFold {
+                learners,
+                first_fold_loss,
+            })
+        })
+        .collect()
 }
 
 /// The fold models of the chosen learner of every component, kept so that
@@ -326,7 +525,8 @@ impl FittedNuisance {
     }
 }
 
-/// Picks the learner with the lowest out-of-fold loss on the `scored` units.
+/// Picks, among the learners fitted on every fold, the one with the lowest
+/// out-of-fold loss on the `scored` units.
 fn choose(
     learners: &[Box<dyn Learner>],
     oof: OutOfFold,
@@ -334,26 +534,34 @@ fn choose(
     scored: &[bool],
     task: Task,
 ) -> (Vec<f64>, Vec<Box<dyn Fitted>>, ComponentReport) {
-    let OutOfFold {
-        predictions,
-        models,
-    } = oof;
     let idx: Vec<usize> = (0..target.len()).filter(|&i| scored[i]).collect();
     let y: Vec<f64> = idx.iter().map(|&i| target[i]).collect();
     let candidates: Vec<CandidateLoss> = learners
         .iter()
-        .zip(&predictions)
-        .map(|(l, p)| {
-            let pv: Vec<f64> = idx.iter().map(|&i| p[i]).collect();
-            CandidateLoss {
-                learner: l.name().to_string(),
-                oof_loss: mean_loss(task, &y, &pv),
+        .zip(&oof.learners)
+        .zip(&oof.first_fold_loss)
+        .map(|((l, fitted), &first)| match fitted {
+            Ok((p, _)) => {
+                let pv: Vec<f64> = idx.iter().map(|&i| p[i]).collect();
+                CandidateLoss {
+                    learner: l.name().to_string(),
+                    oof_loss: mean_loss(task, &y, &pv),
+                    screened_out_z: None,
+                }
             }
+            Err(z) => CandidateLoss {
+                learner: l.name().to_string(),
+                oof_loss: first,
+                screened_out_z: Some(*z),
+            },
         })
         .collect();
+    // The best learner on the first fold is never screened out, so there is
+    // always a fully fitted candidate.
     let best = candidates
         .iter()
         .enumerate()
+        .filter(|(_, c)| c.screened_out_z.is_none())
         .min_by(|a, b| a.1.oof_loss.total_cmp(&b.1.oof_loss))
         .map(|(i, _)| i)
         .unwrap_or(0);
@@ -367,8 +575,12 @@ fn choose(
         candidates,
         units: idx.len(),
     };
-    let chosen = predictions.into_iter().nth(best).unwrap_or_default();
-    let chosen_models = models.into_iter().nth(best).unwrap_or_default();
+    let (chosen, chosen_models) = oof
+        .learners
+        .into_iter()
+        .nth(best)
+        .and_then(Result::ok)
+        .unwrap_or_default();
     (chosen, chosen_models, report)
 }
 
@@ -435,9 +647,12 @@ pub fn fit_nuisance_models(
             seed: settings.seed.wrapping_add(1 + arm),
         });
     }
+    for learner in propensity_learners.iter().chain(&outcome_learners) {
+        learner.prepare(x);
+    }
     // Errors surface in the order the components were once fitted one by
     // one: the propensity's own, then separated arms, then the outcomes'.
-    let mut fitted = out_of_fold(x, &folds, &components).into_iter();
+    let mut fitted = out_of_fold(x, &folds, &components, settings.screening_z).into_iter();
     let mut next = || {
         fitted
             .next()
@@ -563,6 +778,82 @@ mod tests {
                 ..
             }
         ));
+    }
+
+    /// A linear signal with a strong slope: the constant learner is far
+    /// behind the linear one on every fold.
+    fn linear_signal(n: usize) -> UnitTable {
+        let x: Vec<f64> = (0..n).map(|i| ((i * 7919) % 1000) as f64 / 100.0).collect();
+        let w: Vec<f64> = (0..n).map(|i| ((i * 31) % 2) as f64).collect();
+        let y: Vec<f64> = x
+            .iter()
+            .enumerate()
+            .map(|(i, v)| 2.0 * v + ((i * 104_729) % 97) as f64 / 97.0)
+            .collect();
+        table(x, w, y)
+    }
+
+    fn with_learners(screening_z: Option<f64>) -> NuisanceSettings {
+        use crate::estimate::learner::{Constant, Linear};
+        NuisanceSettings {
+            propensity_learners: vec![Box::new(Constant), Box::new(Linear::default())],
+            outcome_learners: vec![Box::new(Constant), Box::new(Linear::default())],
+            screening_z,
+            ..NuisanceSettings::default()
+        }
+    }
+
+    #[test]
+    fn screening_drops_a_hopeless_learner_without_changing_the_fit() {
+        let t = linear_signal(2000);
+        let (screened, report) = fit_nuisance(&t, &with_learners(Some(4.0))).expect("fit");
+        let (full, full_report) = fit_nuisance(&t, &with_learners(None)).expect("fit");
+        for (c, f) in [
+            (&report.outcome_control, &full_report.outcome_control),
+            (&report.outcome_treated, &full_report.outcome_treated),
+        ] {
+            assert_eq!(c.learner, "linear");
+            assert_eq!(c.oof_loss, f.oof_loss);
+            // The constant learner's first-fold loss is about the variance
+            // of 2x, 4 x 100 / 12 = 33.3, against 1/12 for linear. Its
+            // per-unit excess (2x - 10)^2 has sd about 30, so over the
+            // first fold's ~200 units of an arm z is near 33 / (30 / 14).
+            let constant = &c.candidates[0];
+            let z = constant.screened_out_z.expect("constant screened out");
+            assert!(z > 10.0, "z = {z}");
+            assert!(
+                constant.oof_loss > 25.0 && constant.oof_loss < 42.0,
+                "{}",
+                constant.oof_loss
+            );
+            assert!(f.candidates.iter().all(|c| c.screened_out_z.is_none()));
+        }
+        // The chosen fits are the same fits: identical nuisance values.
+        assert_eq!(screened.mu0, full.mu0);
+        assert_eq!(screened.mu1, full.mu1);
+        assert_eq!(screened.propensity, full.propensity);
+    }
+
+    #[test]
+    fn screening_keeps_learners_that_are_close() {
+        // The treatment alternates with i, so no learner can predict it:
+        // constant and linear are within noise of each other on the first
+        // fold and both are fitted on every fold.
+        let t = linear_signal(2000);
+        let (_, report) = fit_nuisance(&t, &with_learners(Some(4.0))).expect("fit");
+        let fit = report.propensity.fit.expect("fitted propensity");
+        assert!(fit.candidates.iter().all(|c| c.screened_out_z.is_none()));
+    }
+
+    #[test]
+    fn screening_z_must_be_positive() {
+        for z in [0.0, -1.0, f64::NAN] {
+            let s = NuisanceSettings {
+                screening_z: Some(z),
+                ..NuisanceSettings::default()
+            };
+            assert!(s.check().is_err(), "{z}");
+        }
     }
 
     #[test]
