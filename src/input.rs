@@ -12,6 +12,8 @@ use ndarray::Array2;
 
 use crate::estimate::{ModelPredictions, OutcomeKind, UnitTable};
 
+mod fast;
+
 /// Columns of a units file that are not features.
 pub const UNIT_ID: &str = "unit_id";
 pub const TREATMENT: &str = "treatment";
@@ -191,46 +193,153 @@ pub struct UnitsFile {
     pub table: UnitTable,
 }
 
-/// Reads a units file. `kind` None detects the outcome kind: binary when every
-/// outcome is 0 or 1.
-pub fn read_units(file: &Path, kind: Option<OutcomeKind>) -> Result<UnitsFile, InputError> {
-    let at = Located { file };
-    let mut sheet = open_sheet(file)?;
-    let id_col = column_index(&sheet, &at, UNIT_ID)?;
-    let w_col = column_index(&sheet, &at, TREATMENT)?;
-    let y_col = column_index(&sheet, &at, OUTCOME)?;
-    let p_col = sheet.header.iter().position(|h| h == PROPENSITY);
-    let feature_cols: Vec<usize> = (0..sheet.header.len())
-        .filter(|&c| c != id_col && c != w_col && c != y_col && Some(c) != p_col)
-        .collect();
-    let feature_names: Vec<String> = feature_cols
-        .iter()
-        .map(|&c| sheet.header[c].clone())
-        .collect();
-    let header = sheet.header.clone();
+/// Where the columns of a units file are.
+struct UnitsLayout {
+    width: usize,
+    id: usize,
+    treatment: usize,
+    outcome: usize,
+    propensity: Option<usize>,
+    features: Vec<usize>,
+}
 
-    let d = feature_cols.len();
-    let (mut ids, mut seen) = (Vec::new(), HashMap::new());
-    let mut features = Vec::new();
-    let mut treatment = Vec::new();
-    let mut outcome = Vec::new();
-    let mut propensity = p_col.map(|_| Vec::new());
-    let n = sheet.for_each(&at, |row, rec| {
-        take_id(&mut ids, &mut seen, &at, row, rec.get(id_col))?;
-        let cell = |c: usize| -> Result<f64, InputError> {
-            parse_number(rec.get(c).unwrap_or("")).map_err(|m| at.err(Some(row), Some(&header[c]), m))
-        };
-        for &c in &feature_cols {
-            features.push(cell(c)?);
+impl UnitsLayout {
+    /// The layout a units file's header gives; the id, treatment and
+    /// outcome columns are required, every unnamed column is a feature.
+    fn of(sheet: &Sheet, at: &Located<'_>) -> Result<Self, InputError> {
+        let id = column_index(sheet, at, UNIT_ID)?;
+        let treatment = column_index(sheet, at, TREATMENT)?;
+        let outcome = column_index(sheet, at, OUTCOME)?;
+        let propensity = sheet.header.iter().position(|h| h == PROPENSITY);
+        let width = sheet.header.len();
+        Ok(Self {
+            width,
+            id,
+            treatment,
+            outcome,
+            propensity,
+            features: (0..width)
+                .filter(|&c| c != id && c != treatment && c != outcome && Some(c) != propensity)
+                .collect(),
+        })
+    }
+}
+
+/// The data columns of a units file, row by row.
+#[derive(Default)]
+struct UnitColumns {
+    ids: Vec<String>,
+    /// Row-major, one row of features per unit.
+    features: Vec<f64>,
+    treatment: Vec<f64>,
+    outcome: Vec<f64>,
+    propensity: Option<Vec<f64>>,
+}
+
+impl UnitColumns {
+    fn new(layout: &UnitsLayout) -> Self {
+        Self {
+            propensity: layout.propensity.map(|_| Vec::new()),
+            ..Self::default()
         }
-        let w = cell(w_col)?;
+    }
+
+    /// Room for every piece's rows at once.
+    fn reserve(&mut self, pieces: &[UnitColumns]) {
+        let rows: usize = pieces.iter().map(|p| p.ids.len()).sum();
+        let values: usize = pieces.iter().map(|p| p.features.len()).sum();
+        self.ids.reserve(rows);
+        self.features.reserve(values);
+        self.treatment.reserve(rows);
+        self.outcome.reserve(rows);
+        if let Some(p) = self.propensity.as_mut() {
+            p.reserve(rows);
+        }
+    }
+
+    fn append(&mut self, mut other: UnitColumns) {
+        self.ids.append(&mut other.ids);
+        self.features.append(&mut other.features);
+        self.treatment.append(&mut other.treatment);
+        self.outcome.append(&mut other.outcome);
+        if let (Some(p), Some(q)) = (self.propensity.as_mut(), other.propensity.as_mut()) {
+            p.append(q);
+        }
+    }
+}
+
+/// The units file's rows by the parallel fast path ([`fast`]); None when it
+/// does not apply or any row breaks a rule, and the careful reader must
+/// read the file (and name the first problem).
+fn units_fast(file: &Path, start: u64, layout: &UnitsLayout) -> Option<UnitColumns> {
+    let pieces = fast::pieces(file, start, |piece| {
+        let mut c = UnitColumns::new(layout);
+        fast::each_row(piece, layout.width, |cells| {
+            let id = cells[layout.id].trim();
+            if id.is_empty() {
+                return None;
+            }
+            c.ids.push(id.to_string());
+            for &j in &layout.features {
+                c.features.push(parse_number(cells[j]).ok()?);
+            }
+            let w = parse_number(cells[layout.treatment]).ok()?;
+            if w != 0.0 && w != 1.0 {
+                return None;
+            }
+            c.treatment.push(w);
+            c.outcome.push(parse_number(cells[layout.outcome]).ok()?);
+            if let (Some(j), Some(p)) = (layout.propensity, c.propensity.as_mut()) {
+                let v = parse_number(cells[j]).ok()?;
+                if !(v > 0.0 && v < 1.0) {
+                    return None;
+                }
+                p.push(v);
+            }
+            Some(())
+        })?;
+        Some(c)
+    })?;
+    let mut all = UnitColumns::new(layout);
+    all.reserve(&pieces);
+    for piece in pieces {
+        all.append(piece);
+    }
+    (!all.ids.is_empty() && ids_unique(&all.ids)).then_some(all)
+}
+
+/// Whether no id appears twice.
+fn ids_unique(ids: &[String]) -> bool {
+    let mut seen = HashSet::with_capacity(ids.len());
+    ids.iter().all(|id| seen.insert(id.as_str()))
+}
+
+/// The units file's rows by the careful reader, stopping at the first
+/// problem with its row and column.
+fn units_careful(
+    sheet: &mut Sheet,
+    at: &Located<'_>,
+    layout: &UnitsLayout,
+) -> Result<UnitColumns, InputError> {
+    let header = sheet.header.clone();
+    let mut c = UnitColumns::new(layout);
+    let mut seen = HashMap::new();
+    sheet.for_each(at, |row, rec| {
+        take_id(&mut c.ids, &mut seen, at, row, rec.get(layout.id))?;
+        let cell = |j: usize| -> Result<f64, InputError> {
+            parse_number(rec.get(j).unwrap_or("")).map_err(|m| at.err(Some(row), Some(&header[j]), m))
+        };
+        for &j in &layout.features {
+            c.features.push(cell(j)?);
+        }
+        let w = cell(layout.treatment)?;
         if w != 0.0 && w != 1.0 {
             return Err(at.err(Some(row), Some(TREATMENT), format!("{w} is not 0 or 1")));
         }
-        treatment.push(w);
-        outcome.push(cell(y_col)?);
-        if let (Some(c), Some(p)) = (p_col, propensity.as_mut()) {
-            let v = cell(c)?;
+        c.treatment.push(w);
+        c.outcome.push(cell(layout.outcome)?);
+        if let (Some(j), Some(p)) = (layout.propensity, c.propensity.as_mut()) {
+            let v = cell(j)?;
             if !(v > 0.0 && v < 1.0) {
                 return Err(at.err(
                     Some(row),
@@ -242,6 +351,33 @@ pub fn read_units(file: &Path, kind: Option<OutcomeKind>) -> Result<UnitsFile, I
         }
         Ok(())
     })?;
+    Ok(c)
+}
+
+/// Reads a units file. `kind` None detects the outcome kind: binary when every
+/// outcome is 0 or 1.
+pub fn read_units(file: &Path, kind: Option<OutcomeKind>) -> Result<UnitsFile, InputError> {
+    let at = Located { file };
+    let mut sheet = open_sheet(file)?;
+    let layout = UnitsLayout::of(&sheet, &at)?;
+    let feature_names: Vec<String> = layout
+        .features
+        .iter()
+        .map(|&c| sheet.header[c].clone())
+        .collect();
+    let d = layout.features.len();
+    let start = sheet.reader.position().byte();
+    let UnitColumns {
+        ids,
+        features,
+        treatment,
+        outcome,
+        propensity,
+    } = match units_fast(file, start, &layout) {
+        Some(c) => c,
+        None => units_careful(&mut sheet, &at, &layout)?,
+    };
+    let n = ids.len();
     let binary_values = outcome.iter().all(|&y| y == 0.0 || y == 1.0);
     let kind = match kind {
         Some(k) => k,
@@ -293,25 +429,66 @@ pub fn read_predictions(file: &Path) -> Result<PredictionsFile, InputError> {
         ));
     }
     let header = sheet.header.clone();
-    let (mut ids, mut seen) = (Vec::new(), HashMap::new());
-    let mut values = vec![Vec::new(); model_cols.len()];
-    sheet.for_each(&at, |row, rec| {
-        take_id(&mut ids, &mut seen, &at, row, rec.get(id_col))?;
-        for (m, &c) in model_cols.iter().enumerate() {
-            let v = parse_number(rec.get(c).unwrap_or(""))
-                .map_err(|msg| at.err(Some(row), Some(&header[c]), msg))?;
-            values[m].push(v);
+    let start = sheet.reader.position().byte();
+    let (ids, values) = match predictions_fast(file, start, header.len(), id_col, &model_cols) {
+        Some(v) => v,
+        None => {
+            let (mut ids, mut seen) = (Vec::new(), HashMap::new());
+            let mut values = vec![Vec::new(); model_cols.len()];
+            sheet.for_each(&at, |row, rec| {
+                take_id(&mut ids, &mut seen, &at, row, rec.get(id_col))?;
+                for (m, &c) in model_cols.iter().enumerate() {
+                    let v = parse_number(rec.get(c).unwrap_or(""))
+                        .map_err(|msg| at.err(Some(row), Some(&header[c]), msg))?;
+                    values[m].push(v);
+                }
+                Ok(())
+            })?;
+            (ids, values)
         }
-        Ok(())
-    })?;
+    };
     Ok(PredictionsFile {
         ids,
-        models: model_cols
-            .iter()
-            .map(|&c| sheet.header[c].clone())
-            .collect(),
+        models: model_cols.iter().map(|&c| header[c].clone()).collect(),
         values,
     })
+}
+
+/// Ids and values per model: the predictions file by the parallel fast path;
+/// None when the careful reader must read it (see [`units_fast`]).
+fn predictions_fast(
+    file: &Path,
+    start: u64,
+    width: usize,
+    id_col: usize,
+    model_cols: &[usize],
+) -> Option<(Vec<String>, Vec<Vec<f64>>)> {
+    let pieces = fast::pieces(file, start, |piece| {
+        let mut ids = Vec::new();
+        let mut values = vec![Vec::new(); model_cols.len()];
+        fast::each_row(piece, width, |cells| {
+            let id = cells[id_col].trim();
+            if id.is_empty() {
+                return None;
+            }
+            ids.push(id.to_string());
+            for (v, &c) in values.iter_mut().zip(model_cols) {
+                v.push(parse_number(cells[c]).ok()?);
+            }
+            Some(())
+        })?;
+        Some((ids, values))
+    })?;
+    let rows: usize = pieces.iter().map(|p| p.0.len()).sum();
+    let mut ids = Vec::with_capacity(rows);
+    let mut values = vec![Vec::with_capacity(rows); model_cols.len()];
+    for (mut piece_ids, piece_values) in pieces {
+        ids.append(&mut piece_ids);
+        for (v, mut p) in values.iter_mut().zip(piece_values) {
+            v.append(&mut p);
+        }
+    }
+    (!ids.is_empty() && ids_unique(&ids)).then_some((ids, values))
 }
 
 /// Lines predictions up with the units' rows by unit id. Every unit needs a
@@ -322,6 +499,16 @@ pub fn align(
     preds: &PredictionsFile,
     preds_path: &Path,
 ) -> Result<Vec<ModelPredictions>, InputError> {
+    // Files written together list the units in the same order: then the
+    // columns line up as they are, with no lookup.
+    if preds.ids == units.ids {
+        return Ok(preds
+            .models
+            .iter()
+            .zip(&preds.values)
+            .map(|(name, vals)| ModelPredictions::new(name.clone(), vals.clone()))
+            .collect());
+    }
     let position: HashMap<&str, usize> = preds
         .ids
         .iter()
@@ -367,4 +554,92 @@ pub fn align(
             ModelPredictions::new(name.clone(), order.iter().map(|&p| vals[p]).collect())
         })
         .collect())
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// A file in the system's temporary directory, removed on drop.
+    struct Temp(PathBuf);
+
+    impl Temp {
+        fn with(name: &str, text: &str) -> Self {
+            let path = std::env::temp_dir()
+                .join(format!("plumbline-input-{}-{name}.csv", std::process::id()));
+            std::fs::write(&path, text).expect("write temporary file");
+            Self(path)
+        }
+    }
+
+    impl Drop for Temp {
+        fn drop(&mut self) {
+            let _ = std::fs::remove_file(&self.0);
+        }
+    }
+
+    fn units_text(rows: usize, line_break: &str) -> String {
+        let mut s = format!("unit_id,x1,treatment,outcome,propensity,x2{line_break}");
+        for i in 0..rows {
+            s.push_str(&format!(
+                "u{i}, {}.25,{},{},0.{},-{}e-3{line_break}",
+                i % 17,
+                i % 2,
+                (i as f64) / 7.0,
+                1 + i % 9,
+                i
+            ));
+        }
+        s
+    }
+
+    fn both_paths(file: &Path) -> (Option<UnitColumns>, UnitColumns) {
+        let at = Located { file };
+        let mut sheet = open_sheet(file).expect("header");
+        let layout = UnitsLayout::of(&sheet, &at).expect("layout");
+        let start = sheet.reader.position().byte();
+        let fast = units_fast(file, start, &layout);
+        let careful = units_careful(&mut sheet, &at, &layout).expect("careful read");
+        (fast, careful)
+    }
+
+    fn same(a: &UnitColumns, b: &UnitColumns) -> bool {
+        let bits = |v: &[f64]| v.iter().map(|x| x.to_bits()).collect::<Vec<_>>();
+        a.ids == b.ids
+            && bits(&a.features) == bits(&b.features)
+            && bits(&a.treatment) == bits(&b.treatment)
+            && bits(&a.outcome) == bits(&b.outcome)
+            && a.propensity.as_deref().map(bits) == b.propensity.as_deref().map(bits)
+    }
+
+    #[test]
+    fn the_fast_path_reads_plain_files_as_the_careful_reader_does() {
+        for (name, line_break) in [("lf", "\n"), ("crlf", "\r\n")] {
+            // Enough rows for several parallel pieces.
+            let f = Temp::with(name, &units_text(60_000, line_break));
+            let (fast, careful) = both_paths(&f.0);
+            let fast = fast.expect("a plain file takes the fast path");
+            assert_eq!(fast.ids.len(), 60_000);
+            assert!(same(&fast, &careful), "{name}");
+        }
+    }
+
+    #[test]
+    fn files_the_fast_path_declines_are_read_carefully() {
+        // A quoted id with a comma inside: the careful reader takes it.
+        let text = units_text(50, "\n").replace("u7,", "\"u,7\",");
+        let f = Temp::with("quoted", &text);
+        let (fast, careful) = both_paths(&f.0);
+        assert!(fast.is_none());
+        assert_eq!(careful.ids[7], "u,7");
+        let read = read_units(&f.0, None).expect("read");
+        assert_eq!(read.ids[7], "u,7");
+
+        // A repeated id: declined by the fast path, named by the careful one.
+        let text = units_text(50, "\n").replace("u9,", "u3,");
+        let f = Temp::with("repeated", &text);
+        let e = read_units(&f.0, None).expect_err("repeated id");
+        assert_eq!(e.row, Some(10));
+        assert!(e.message.contains("row 4"), "{e}");
+    }
 }
