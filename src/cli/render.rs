@@ -186,7 +186,15 @@ fn component(s: &mut String, label: &str, c: &ComponentReport) {
     let others: Vec<String> = c
         .candidates
         .iter()
-        .map(|k| format!("{} {}", k.learner, num(k.oof_loss)))
+        .map(|k| match k.screened_out_z {
+            Some(z) => format!(
+                "{} {} on fold 1 only ({:.1} se behind; dropped)",
+                k.learner,
+                num(k.oof_loss),
+                z
+            ),
+            None => format!("{} {}", k.learner, num(k.oof_loss)),
+        })
         .collect();
     let _ = writeln!(
         s,
