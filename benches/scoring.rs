@@ -24,7 +24,7 @@ use plumbline::estimate::overlap::overlap_report;
 use plumbline::estimate::pseudo::aipw_pseudo_outcome;
 use plumbline::estimate::scoreboard::{contribution_sums, score, Settings, UnitColumns};
 use plumbline::estimate::targeting::targeting;
-use plumbline::estimate::{ModelPredictions, OutcomeKind, UnitTable};
+use plumbline::estimate::{FeatureRows, ModelPredictions, OutcomeKind, UnitTable};
 use plumbline::synth::{candidates, draw, effect_moments, Design, Draw};
 
 const MODELS: usize = 20;
@@ -140,7 +140,7 @@ fn overlap_bench(c: &mut Criterion) {
     group.bench_function(format!("{n}x20"), |b| {
         b.iter(|| {
             overlap_report(
-                data.features.view(),
+                FeatureRows::of_matrix(data.features.view()).expect("row-major"),
                 &names,
                 &data.treatment,
                 &nuisance.propensity,

@@ -15,7 +15,7 @@ use std::sync::{Mutex, OnceLock};
 
 use serde::Serialize;
 
-use super::data::{OutcomeKind, UnitTable};
+use super::data::{FeatureRows, OutcomeKind, UnitTable};
 use super::error::{Degenerate, EstimateError};
 use super::learner::{default_library, mean_loss, Fitted, Learner, SharedFeatures, Task};
 use super::stats::auc;
@@ -598,11 +598,29 @@ pub fn fit_nuisance_models(
     table: &UnitTable,
     settings: &NuisanceSettings,
 ) -> Result<(Nuisance, NuisanceReport, FittedNuisance), EstimateError> {
+    fit_nuisance_models_on(table, table.rows(), settings)
+}
+
+/// As [`fit_nuisance_models`], with the features given as `features`, one
+/// row per unit of `table`, wherever they are stored (the table's own
+/// feature matrix is not read).
+pub fn fit_nuisance_models_on(
+    table: &UnitTable,
+    features: FeatureRows<'_>,
+    settings: &NuisanceSettings,
+) -> Result<(Nuisance, NuisanceReport, FittedNuisance), EstimateError> {
     settings.check()?;
+    if features.len() != table.len() {
+        return Err(EstimateError::invalid(format!(
+            "{} feature rows for {} units",
+            features.len(),
+            table.len()
+        )));
+    }
     table.check_estimable(settings.folds, settings.min_units_per_fold)?;
     let library = |given: &[Box<dyn Learner>]| -> Vec<Box<dyn Learner>> {
         if given.is_empty() {
-            default_library(table.n_features())
+            default_library(features.width())
         } else {
             given.iter().map(|l| l.boxed_clone()).collect()
         }
@@ -610,7 +628,7 @@ pub fn fit_nuisance_models(
     let propensity_learners = library(&settings.propensity_learners);
     let outcome_learners = library(&settings.outcome_learners);
     let k = settings.folds;
-    let x = &SharedFeatures::new(table.features());
+    let x = &SharedFeatures::new(features);
     let w = table.treatment();
     let y = table.outcome();
     let fold_of_unit = assign_folds(w, k, settings.seed);

@@ -1,7 +1,9 @@
 //! The arrays the estimation core works on, and the checks that make them
 //! safe to compute with.
 
-use ndarray::{Array2, ArrayView2};
+use std::sync::Arc;
+
+use ndarray::{Array2, ArrayView2, Axis};
 use serde::{Deserialize, Serialize};
 
 use super::error::{Degenerate, EstimateError};
@@ -101,6 +103,12 @@ impl UnitTable {
                 }
             }
         }
+        // Rows must be contiguous for [`UnitTable::rows`].
+        let features = if features.is_standard_layout() {
+            features
+        } else {
+            features.as_standard_layout().into_owned()
+        };
         Ok(Self {
             features,
             treatment,
@@ -124,6 +132,15 @@ impl UnitTable {
 
     pub fn features(&self) -> ArrayView2<'_, f64> {
         self.features.view()
+    }
+
+    /// The feature rows, as the learners and overlap sums read them.
+    pub fn rows(&self) -> FeatureRows<'_> {
+        // `new` keeps the matrix in row-major layout, so the slice exists.
+        FeatureRows::dense(
+            self.features.as_slice().unwrap_or(&[]),
+            self.features.ncols(),
+        )
     }
 
     /// Treatment as 0.0 / 1.0, so it enters formulas directly.
@@ -173,6 +190,108 @@ impl UnitTable {
             return Err(Degenerate::ConstantOutcome { value: first });
         }
         Ok(())
+    }
+}
+
+/// Rows of features read in place: one row-major matrix, or chosen rows of
+/// a store kept in fixed-size chunks (the service's cache), so that a refit
+/// or a scored window reads the history's features where they are instead
+/// of copying them. Every row is a contiguous slice of `width` values.
+#[derive(Debug, Clone, Copy)]
+pub struct FeatureRows<'a> {
+    width: usize,
+    layout: Layout<'a>,
+}
+
+#[derive(Debug, Clone, Copy)]
+enum Layout<'a> {
+    /// `values.len() / width` rows, one after another.
+    Dense { values: &'a [f64] },
+    /// Row `i` is stored row `index[i]`: chunk `index[i] / chunk_rows`,
+    /// position `index[i] % chunk_rows` within it.
+    Chunked {
+        chunks: &'a [Arc<Vec<f64>>],
+        chunk_rows: usize,
+        index: &'a [usize],
+    },
+}
+
+impl<'a> FeatureRows<'a> {
+    /// Rows laid out one after another, `width` values each.
+    pub fn dense(values: &'a [f64], width: usize) -> Self {
+        Self {
+            width,
+            layout: Layout::Dense { values },
+        }
+    }
+
+    /// The rows of a row-major matrix; None for another layout.
+    pub fn of_matrix(x: ArrayView2<'a, f64>) -> Option<Self> {
+        let width = x.ncols();
+        x.to_slice().map(|values| Self::dense(values, width))
+    }
+
+    /// Rows `index` of a store whose rows sit `chunk_rows` to a chunk.
+    pub fn chunked(
+        chunks: &'a [Arc<Vec<f64>>],
+        chunk_rows: usize,
+        width: usize,
+        index: &'a [usize],
+    ) -> Self {
+        Self {
+            width,
+            layout: Layout::Chunked {
+                chunks,
+                chunk_rows,
+                index,
+            },
+        }
+    }
+
+    /// Number of rows.
+    pub fn len(&self) -> usize {
+        match self.layout {
+            Layout::Dense { values } => values.len().checked_div(self.width).unwrap_or(0),
+            Layout::Chunked { index, .. } => index.len(),
+        }
+    }
+
+    pub fn is_empty(&self) -> bool {
+        self.len() == 0
+    }
+
+    /// Values per row.
+    pub fn width(&self) -> usize {
+        self.width
+    }
+
+    /// Row `i`.
+    #[inline]
+    pub fn row(&self, i: usize) -> &'a [f64] {
+        let d = self.width;
+        match self.layout {
+            Layout::Dense { values } => &values[i * d..(i + 1) * d],
+            Layout::Chunked {
+                chunks,
+                chunk_rows,
+                index,
+            } => {
+                let u = index[i];
+                let at = (u % chunk_rows) * d;
+                &chunks[u / chunk_rows][at..at + d]
+            }
+        }
+    }
+
+    /// A copy of the rows `rows` as a matrix.
+    pub fn select(&self, rows: &[usize]) -> Array2<f64> {
+        let mut out = Array2::zeros((rows.len(), self.width));
+        for (mut o, &r) in out.axis_iter_mut(Axis(0)).zip(rows) {
+            for (o, v) in o.iter_mut().zip(self.row(r)) {
+                *o = *v;
+            }
+        }
+        out
     }
 }
 

@@ -22,6 +22,8 @@ pub mod stats;
 pub mod sums;
 pub mod targeting;
 
-pub use data::{ModelPredictions, OutcomeKind, UnitTable, CONSTANT_EFFECT, ZERO_EFFECT};
+pub use data::{
+    FeatureRows, ModelPredictions, OutcomeKind, UnitTable, CONSTANT_EFFECT, ZERO_EFFECT,
+};
 pub use error::{Degenerate, EstimateError};
 pub use scoreboard::{evaluate, score, Scoreboard, Settings};

@@ -12,7 +12,7 @@
 //!   (Austin 2009, a rule of thumb): weighted means per arm over the pooled
 //!   standard deviation sqrt((s1^2 + s0^2) / 2) of the unweighted arms.
 
-use ndarray::ArrayView2;
+use super::data::FeatureRows;
 use serde::Serialize;
 
 use super::stats::sorted_quantile;
@@ -86,7 +86,7 @@ impl ArmSums {
     /// Adds the units `rows` of `features` with weights `w` from
     /// propensities `p`: the batch's moments first, then a merge (Chan,
     /// Golub & LeVeque), so that batches combine exactly up to rounding.
-    fn add(&mut self, features: ArrayView2<'_, f64>, rows: &[usize], p: &[f64], w: &[f64]) {
+    fn add(&mut self, features: FeatureRows<'_>, rows: &[usize], p: &[f64], w: &[f64]) {
         if rows.is_empty() {
             return;
         }
@@ -209,7 +209,7 @@ impl OverlapSums {
 
     /// Adds a batch of units (rows of `features`, with their treatment and
     /// clipped propensity).
-    pub fn add(&mut self, features: ArrayView2<'_, f64>, treatment: &[f64], propensity: &[f64]) {
+    pub fn add(&mut self, features: FeatureRows<'_>, treatment: &[f64], propensity: &[f64]) {
         let n = treatment.len();
         let treated: Vec<usize> = (0..n).filter(|&i| treatment[i] == 1.0).collect();
         let control: Vec<usize> = (0..n).filter(|&i| treatment[i] == 0.0).collect();
@@ -266,13 +266,13 @@ impl OverlapSums {
 
 /// `propensity` should be the clipped values used for weighting.
 pub fn overlap_report(
-    features: ArrayView2<'_, f64>,
+    features: FeatureRows<'_>,
     feature_names: &[String],
     treatment: &[f64],
     propensity: &[f64],
     eps: f64,
 ) -> OverlapReport {
-    let mut sums = OverlapSums::new(features.ncols(), eps);
+    let mut sums = OverlapSums::new(features.width(), eps);
     sums.add(features, treatment, propensity);
     sums.report(feature_names)
 }
@@ -282,11 +282,15 @@ mod tests {
     use super::*;
     use ndarray::Array2;
 
+    fn rows(x: &Array2<f64>) -> FeatureRows<'_> {
+        FeatureRows::of_matrix(x.view()).expect("row-major")
+    }
+
     #[test]
     fn equal_weights_give_full_effective_size() {
         let x = Array2::from_shape_vec((4, 1), vec![1.0, 2.0, 1.0, 2.0]).expect("shape");
         let r = overlap_report(
-            x.view(),
+            rows(&x),
             &["a".into()],
             &[1.0, 1.0, 0.0, 0.0],
             &[0.5; 4],
@@ -302,7 +306,7 @@ mod tests {
     fn kish_ess_of_unequal_weights() {
         // Treated propensities 0.5 and 0.25 -> weights 2 and 4: ESS = 36/20.
         let x = Array2::zeros((3, 1));
-        let r = overlap_report(x.view(), &[], &[1.0, 1.0, 0.0], &[0.5, 0.25, 0.5], 0.3);
+        let r = overlap_report(rows(&x), &[], &[1.0, 1.0, 0.0], &[0.5, 0.25, 0.5], 0.3);
         assert!((r.treated.effective_sample_size - 1.8).abs() < 1e-12);
         assert!((r.share_outside_eps - 1.0 / 3.0).abs() < 1e-12);
     }
@@ -316,10 +320,14 @@ mod tests {
             .map(|i| 0.05 + 0.9 * ((i * 13) % 101) as f64 / 100.0)
             .collect();
         let names = ["a".to_string(), "b".to_string()];
-        let whole = overlap_report(x.view(), &names, &w, &p, 0.05);
+        let whole = overlap_report(rows(&x), &names, &w, &p, 0.05);
         let mut sums = OverlapSums::new(2, 0.05);
         for (lo, hi) in [(0, 110), (110, 111), (111, n)] {
-            sums.add(x.slice(ndarray::s![lo..hi, ..]), &w[lo..hi], &p[lo..hi]);
+            sums.add(
+                rows(&x.slice(ndarray::s![lo..hi, ..]).to_owned()),
+                &w[lo..hi],
+                &p[lo..hi],
+            );
         }
         let merged = sums.report(&names);
         // Rounding only: values are O(1) and built from O(300) terms.

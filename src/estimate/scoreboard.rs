@@ -8,7 +8,7 @@ use serde::Serialize;
 use super::calibration::{calibration_ordered, Calibration};
 use super::compare::{rank, Difference};
 use super::crossfit::{fit_nuisance, Nuisance, NuisanceReport, NuisanceSettings};
-use super::data::{ModelPredictions, UnitTable, CONSTANT_EFFECT, ZERO_EFFECT};
+use super::data::{FeatureRows, ModelPredictions, UnitTable, CONSTANT_EFFECT, ZERO_EFFECT};
 use super::error::EstimateError;
 use super::estimators::{self, Estimator, UnitView};
 use super::overlap::{overlap_report, OverlapReport};
@@ -387,6 +387,7 @@ pub fn score(
 ) -> Scoreboard {
     score_keeping(
         table,
+        table.rows(),
         feature_names,
         nuisance,
         nuisance_report,
@@ -405,9 +406,12 @@ pub struct Scored {
     pub orders: Vec<Vec<u32>>,
 }
 
-/// [`score`], keeping the pseudo-outcomes and the models' orders.
+/// [`score`], keeping the pseudo-outcomes and the models' orders; the
+/// features (read only for the overlap report) are `features`, one row per
+/// unit of `table`, wherever they are stored.
 pub fn score_keeping(
     table: &UnitTable,
+    features: FeatureRows<'_>,
     feature_names: &[String],
     nuisance: &Nuisance,
     nuisance_report: Option<NuisanceReport>,
@@ -448,7 +452,7 @@ pub fn score_keeping(
             sums,
             orders: &order_slices,
             overlap: overlap_report(
-                table.features(),
+                features,
                 feature_names,
                 w,
                 &nuisance.propensity,

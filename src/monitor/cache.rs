@@ -9,7 +9,7 @@ use std::sync::Arc;
 use crate::store::{OutcomeRecord, PredictionRecord, StoredModel, UnitRecord};
 
 /// Rows per chunk of a [`Shared`] column.
-const CHUNK_ROWS: usize = 8192;
+pub const CHUNK_ROWS: usize = 8192;
 
 /// An append-only column of rows of `width` values, kept in chunks that
 /// recompute jobs share instead of copying: a clone costs one pointer per
@@ -52,6 +52,11 @@ impl<T: Clone> Shared<T> {
 
     pub fn width(&self) -> usize {
         self.width
+    }
+
+    /// The chunks, [`CHUNK_ROWS`] rows each (the last may hold fewer).
+    pub fn chunks(&self) -> &[Arc<Vec<T>>] {
+        &self.chunks
     }
 
     pub fn row(&self, i: usize) -> &[T] {

@@ -17,11 +17,11 @@ use std::sync::Arc;
 
 use ndarray::Array2;
 
-use super::cache::Shared;
+use super::cache::{Shared, CHUNK_ROWS};
 use super::spec::DatasetSpec;
 use crate::api::pb;
 use crate::estimate::crossfit::{
-    fit_nuisance_models, FittedNuisance, Nuisance, NuisanceReport, NuisanceSettings,
+    fit_nuisance_models_on, FittedNuisance, Nuisance, NuisanceReport, NuisanceSettings,
 };
 use crate::estimate::overlap::OverlapSums;
 use crate::estimate::pseudo::aipw_pseudo_outcome;
@@ -32,7 +32,9 @@ use crate::estimate::scoreboard::{
 use crate::estimate::stats::mean_se;
 use crate::estimate::sums::ScoreSums;
 use crate::estimate::targeting::{descending_order, merge_orders};
-use crate::estimate::{EstimateError, ModelPredictions, UnitTable, CONSTANT_EFFECT, ZERO_EFFECT};
+use crate::estimate::{
+    EstimateError, FeatureRows, ModelPredictions, UnitTable, CONSTANT_EFFECT, ZERO_EFFECT,
+};
 
 /// Nuisance state of a dataset between recomputes.
 #[derive(Clone)]
@@ -177,6 +179,19 @@ impl Frame {
         Array2::from_shape_vec((units.len(), d), out).unwrap_or_else(|_| Array2::zeros((0, d)))
     }
 
+    /// The features of `units`, read where the cache keeps them.
+    fn features<'a>(&'a self, units: &'a [usize]) -> FeatureRows<'a> {
+        FeatureRows::chunked(
+            self.features.chunks(),
+            CHUNK_ROWS,
+            self.features_per_unit,
+            units,
+        )
+    }
+
+    /// The treatments, outcomes and (`with_logged`) logged propensities of
+    /// `units`. The table holds no features: they stay in the cache and
+    /// travel as [`Frame::features`], so no pass copies the history's.
     fn table(&self, units: &[usize], with_logged: bool) -> Result<UnitTable, EstimateError> {
         let logged = if with_logged {
             units
@@ -187,7 +202,7 @@ impl Frame {
             None
         };
         UnitTable::new(
-            self.rows(units),
+            Array2::zeros((units.len(), 0)),
             units
                 .iter()
                 .map(|&u| f64::from(self.treatment[u]))
@@ -216,7 +231,11 @@ impl Frame {
     fn refit(&self, scorable: &[usize]) -> Result<(NuisanceState, usize), EstimateError> {
         let logged = self.all_logged(scorable);
         let table = self.table(scorable, logged)?;
-        let (values, report, fitted) = fit_nuisance_models(&table, &settings(&self.spec).nuisance)?;
+        let (values, report, fitted) = fit_nuisance_models_on(
+            &table,
+            self.features(scorable),
+            &settings(&self.spec).nuisance,
+        )?;
         let mut all = vec![[f64::NAN; 3]; self.treatment.len()];
         for (i, &u) in scorable.iter().enumerate() {
             all[u] = [values.propensity[i], values.mu0[i], values.mu1[i]];
@@ -465,6 +484,7 @@ impl Frame {
             .collect();
         let scored = score_keeping(
             &table,
+            self.features(&common),
             &self.spec.feature_names,
             &values,
             Some(nuisance.report.clone()),
@@ -475,7 +495,11 @@ impl Frame {
             let basis = ConstantBasis::new(scored.board.ate.estimate);
             let effects: Vec<&[f64]> = preds.iter().map(|p| p.effects.as_slice()).collect();
             let mut overlap = OverlapSums::new(self.features_per_unit, self.spec.overlap_eps);
-            overlap.add(table.features(), table.treatment(), &values.propensity);
+            overlap.add(
+                self.features(&common),
+                table.treatment(),
+                &values.propensity,
+            );
             CumulativeMemo {
                 outcomes: self.outcome_order.len(),
                 covered,
@@ -539,7 +563,7 @@ impl Frame {
             memo.phi.extend_from_slice(&phi);
             memo.treated += table.n_treated();
             memo.overlap
-                .add(table.features(), table.treatment(), &values.propensity);
+                .add(self.features(&fresh), table.treatment(), &values.propensity);
         }
         let n = memo.units.len();
         let gathered: Vec<Vec<f64>> = ranked

@@ -31,6 +31,7 @@ use rand_chacha::ChaCha8Rng;
 use super::linear::sigmoid;
 use super::shared::{Binned, SharedFeatures};
 use super::{fit_rows_start, Fitted, Learner, Task};
+use crate::estimate::data::FeatureRows;
 use crate::estimate::error::EstimateError;
 
 #[derive(Debug, Clone, Copy)]
@@ -203,12 +204,12 @@ impl BoostedFit {
     }
 
     /// The prediction for one row of raw (unbinned) feature values.
-    fn predict_values(&self, row: ndarray::ArrayView1<'_, f64>) -> f64 {
+    fn predict_values(&self, value: impl Fn(usize) -> f64) -> f64 {
         let f = self.base
             + self
                 .trees
                 .iter()
-                .map(|t| t.leaf_of_values(|j| row[j]))
+                .map(|t| t.leaf_of_values(&value))
                 .sum::<f64>();
         self.link(f)
     }
@@ -216,7 +217,9 @@ impl BoostedFit {
 
 impl Fitted for BoostedFit {
     fn predict(&self, x: ArrayView2<'_, f64>) -> Vec<f64> {
-        x.outer_iter().map(|row| self.predict_values(row)).collect()
+        x.outer_iter()
+            .map(|row| self.predict_values(|j| row[j]))
+            .collect()
     }
 
     fn predict_rows(&self, data: &SharedFeatures<'_>, rows: &[usize]) -> Vec<f64> {
@@ -233,7 +236,10 @@ impl Fitted for BoostedFit {
             _ => {
                 let x = data.x();
                 rows.iter()
-                    .map(|&r| self.predict_values(x.row(r)))
+                    .map(|&r| {
+                        let row = x.row(r);
+                        self.predict_values(|j| row[j])
+                    })
                     .collect()
             }
         }
@@ -734,7 +740,11 @@ impl Learner for Boosted {
         task: Task,
         seed: u64,
     ) -> Result<Box<dyn Fitted>, EstimateError> {
-        let shared = SharedFeatures::new(x);
+        let x = x.as_standard_layout();
+        let features = FeatureRows::of_matrix(x.view()).ok_or_else(|| {
+            EstimateError::invalid("boosted learner: features are not in row-major layout")
+        })?;
+        let shared = SharedFeatures::new(features);
         let rows: Vec<usize> = (0..x.nrows()).collect();
         self.fit_rows(&shared, &rows, y, task, seed)
     }
@@ -821,7 +831,7 @@ mod tests {
     #[test]
     fn shared_rows_predict_as_raw_values() {
         let (x, y, _) = data(1500, 3);
-        let shared = SharedFeatures::new(x.view());
+        let shared = SharedFeatures::new(FeatureRows::of_matrix(x.view()).expect("row-major"));
         let train: Vec<usize> = (0..1500).filter(|i| i % 3 != 0).collect();
         let held: Vec<usize> = (0..1500).filter(|i| i % 3 == 0).collect();
         let yt: Vec<f64> = train.iter().map(|&i| y[i]).collect();

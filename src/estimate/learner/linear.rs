@@ -10,9 +10,10 @@
 
 use linfa_linalg::cholesky::SolveC;
 use ndarray::linalg::general_mat_mul;
-use ndarray::{s, Array1, Array2, ArrayView1, ArrayView2, Axis};
+use ndarray::{s, Array1, Array2, ArrayView1, ArrayView2, Axis, CowArray, Ix2};
 
 use super::{constant_if_degenerate, fit_rows_start, Fitted, Learner, SharedFeatures, Task};
+use crate::estimate::data::FeatureRows;
 use crate::estimate::error::EstimateError;
 
 /// Linear model coefficients on the raw feature scale.
@@ -53,7 +54,7 @@ impl Fitted for LinearFit {
         let x = data.x();
         let coef = ArrayView1::from(&self.coef[..]);
         rows.iter()
-            .map(|&r| self.link(x.row(r).dot(&coef) + self.intercept))
+            .map(|&r| self.link(ArrayView1::from(x.row(r)).dot(&coef) + self.intercept))
             .collect()
     }
 }
@@ -67,70 +68,157 @@ pub(crate) fn sigmoid(z: f64) -> f64 {
     }
 }
 
-/// Rows per block of the Gram accumulation: a block of [1, x - center, t]
-/// rows (scaled by the square root of their weights) is multiplied by its
-/// own transpose with a blocked matrix product, which keeps the Gram matrix
-/// in registers and cache instead of summing one dot product at a time.
+/// Rows per block of the Gram accumulation: a block of [1, z, t] rows
+/// (scaled by the square root of their weights) is multiplied by its own
+/// transpose with a blocked matrix product, which keeps the Gram matrix in
+/// registers and cache instead of summing one dot product at a time.
 const GRAM_BLOCK: usize = 256;
 
-/// Column means of `x`.
-fn column_means(x: ArrayView2<'_, f64>) -> Vec<f64> {
-    let n = x.nrows().max(1) as f64;
-    let mut mean = vec![0.0; x.ncols()];
-    for row in x.outer_iter() {
-        for (m, v) in mean.iter_mut().zip(row) {
-            *m += v;
-        }
-    }
-    mean.iter_mut().for_each(|m| *m /= n);
-    mean
+/// The rows a linear fit reads, each standardized as it is read:
+/// z_i = (x_i - center) / scale, of the chosen rows (`pick`, or all) of a
+/// feature matrix that is never copied.
+struct Design<'a> {
+    rows: FeatureRows<'a>,
+    pick: Option<&'a [usize]>,
+    center: Vec<f64>,
+    /// 1 / scale: rows are multiplied, never divided.
+    inverse_scale: Vec<f64>,
 }
 
-/// The weighted Gram matrix and moment vector of the design
-/// z_i = [1, x_i - center] (the intercept column first):
-/// G = sum_i w_i z_i z_i^T (p x p, row-major, p = d + 1) and
-/// r = sum_i w_i z_i t_i. `weights` None means all ones.
-fn gram(
-    x: ArrayView2<'_, f64>,
-    center: &[f64],
-    weights: Option<&[f64]>,
-    t: &[f64],
-) -> (Vec<f64>, Vec<f64>) {
-    let (n, d) = x.dim();
-    let p = d + 1;
-    // Each block row is sqrt(w) [1, x - center, t]; the product of the
-    // block's transpose with itself holds G in its first p rows and columns
-    // and r in column p.
-    let q = p + 1;
-    let mut acc = Array2::<f64>::zeros((q, q));
-    let mut block = Array2::<f64>::zeros((GRAM_BLOCK, q));
-    let mut start = 0;
-    while start < n {
-        let len = GRAM_BLOCK.min(n - start);
-        for (m, mut out) in block.outer_iter_mut().take(len).enumerate() {
-            let i = start + m;
-            let sw = weights.map_or(1.0, |w| w[i].sqrt());
-            out[0] = sw;
-            for ((o, v), c) in out.iter_mut().skip(1).zip(x.row(i)).zip(center) {
-                *o = sw * (v - c);
+impl<'a> Design<'a> {
+    /// Centered on the chosen rows' means; scaled by their standard
+    /// deviations (population, numpy's default) when `standardize`, else
+    /// left on the raw scale. A constant column keeps scale 1 so it
+    /// standardizes to zero instead of dividing by zero.
+    fn new(rows: FeatureRows<'a>, pick: Option<&'a [usize]>, standardize: bool) -> Self {
+        let d = rows.width();
+        let mut design = Self {
+            rows,
+            pick,
+            center: vec![0.0; d],
+            inverse_scale: vec![1.0; d],
+        };
+        let n = design.n();
+        let count = n.max(1) as f64;
+        let mut mean = vec![0.0; d];
+        for i in 0..n {
+            for (m, v) in mean.iter_mut().zip(design.raw(i)) {
+                *m += v;
             }
-            out[p] = sw * t[i];
         }
-        let b = block.slice(s![..len, ..]);
-        general_mat_mul(1.0, &b.t(), &b, 1.0, &mut acc);
-        start += len;
-    }
-    let mut g = vec![0.0; p * p];
-    let mut r = vec![0.0; p];
-    for j in 0..p {
-        for k in 0..p {
-            // The product is symmetric up to rounding; take the lower
-            // triangle so the matrix handed to Cholesky is exactly symmetric.
-            g[j * p + k] = if k <= j { acc[[j, k]] } else { acc[[k, j]] };
+        mean.iter_mut().for_each(|m| *m /= count);
+        if standardize {
+            let mut ss = vec![0.0; d];
+            for i in 0..n {
+                for ((s, v), m) in ss.iter_mut().zip(design.raw(i)).zip(&mean) {
+                    *s += (v - m) * (v - m);
+                }
+            }
+            for (inv, s) in design.inverse_scale.iter_mut().zip(ss) {
+                let sd = (s / count).sqrt();
+                *inv = if sd > 1e-12 { 1.0 / sd } else { 1.0 };
+            }
         }
-        r[j] = acc[[j, p]];
+        design.center = mean;
+        design
     }
-    (g, r)
+
+    fn n(&self) -> usize {
+        self.pick.map_or(self.rows.len(), <[usize]>::len)
+    }
+
+    fn d(&self) -> usize {
+        self.rows.width()
+    }
+
+    /// Row `i` as stored.
+    #[inline]
+    fn raw(&self, i: usize) -> &'a [f64] {
+        self.rows.row(self.pick.map_or(i, |p| p[i]))
+    }
+
+    /// Raw-scale coefficients and intercept of a fit on z:
+    /// theta_0 + z . theta_1.. = intercept + x . coef.
+    fn raw_coefficients(&self, theta: &[f64]) -> (f64, Vec<f64>) {
+        let coef: Vec<f64> = theta[1..]
+            .iter()
+            .zip(&self.inverse_scale)
+            .map(|(b, s)| b * s)
+            .collect();
+        let intercept = theta[0]
+            - coef
+                .iter()
+                .zip(&self.center)
+                .map(|(b, c)| b * c)
+                .sum::<f64>();
+        (intercept, coef)
+    }
+
+    /// The linear index theta_0 + z_i . theta_1.. of every row, read as
+    /// x_i . coef + intercept on the raw rows.
+    fn linear_index(&self, theta: &[f64]) -> Vec<f64> {
+        let (intercept, coef) = self.raw_coefficients(theta);
+        let coef = ArrayView1::from(&coef[..]);
+        (0..self.n())
+            .map(|i| ArrayView1::from(self.raw(i)).dot(&coef) + intercept)
+            .collect()
+    }
+
+    /// The weighted Gram matrix and moment vector of [1, z_i] (the intercept
+    /// column first): G = sum_i w_i [1, z_i][1, z_i]^T (p x p, row-major,
+    /// p = d + 1) and r = sum_i w_i [1, z_i] t_i. `weights` None means all
+    /// ones.
+    fn gram(&self, weights: Option<&[f64]>, t: &[f64]) -> (Vec<f64>, Vec<f64>) {
+        let (n, d) = (self.n(), self.d());
+        let p = d + 1;
+        // Each block row is sqrt(w) [1, z, t]; the product of the block's
+        // transpose with itself holds G in its first p rows and columns and
+        // r in column p.
+        let q = p + 1;
+        let mut acc = Array2::<f64>::zeros((q, q));
+        let mut block = Array2::<f64>::zeros((GRAM_BLOCK, q));
+        let mut start = 0;
+        while start < n {
+            let len = GRAM_BLOCK.min(n - start);
+            for (m, mut out) in block.outer_iter_mut().take(len).enumerate() {
+                let i = start + m;
+                let sw = weights.map_or(1.0, |w| w[i].sqrt());
+                out[0] = sw;
+                for (((o, v), c), s) in out
+                    .iter_mut()
+                    .skip(1)
+                    .zip(self.raw(i))
+                    .zip(&self.center)
+                    .zip(&self.inverse_scale)
+                {
+                    *o = sw * ((v - c) * s);
+                }
+                out[p] = sw * t[i];
+            }
+            let b = block.slice(s![..len, ..]);
+            general_mat_mul(1.0, &b.t(), &b, 1.0, &mut acc);
+            start += len;
+        }
+        let mut g = vec![0.0; p * p];
+        let mut r = vec![0.0; p];
+        for j in 0..p {
+            for k in 0..p {
+                // The product is symmetric up to rounding; take the lower
+                // triangle so the matrix handed to Cholesky is exactly
+                // symmetric.
+                g[j * p + k] = if k <= j { acc[[j, k]] } else { acc[[k, j]] };
+            }
+            r[j] = acc[[j, p]];
+        }
+        (g, r)
+    }
+}
+
+/// The rows of a matrix made row-major by `as_standard_layout` (a borrow
+/// when it already is, as every matrix the crate builds).
+fn rows_of<'b>(x: &'b CowArray<'_, f64, Ix2>) -> Result<FeatureRows<'b>, EstimateError> {
+    FeatureRows::of_matrix(x.view())
+        .ok_or_else(|| EstimateError::invalid("linear learner: features are not row-major"))
 }
 
 /// Solves the symmetric positive definite system `a` (p x p, row-major) x = `b`.
@@ -155,18 +243,23 @@ pub fn ridge_fit(
     y: &[f64],
     alpha: f64,
 ) -> Result<LinearFit, EstimateError> {
-    let n = x.nrows();
-    let d = x.ncols();
+    let x = x.as_standard_layout();
+    ridge(&Design::new(rows_of(&x)?, None, false), y, alpha)
+}
+
+/// Ridge on a design: the normal equations of z, which is centered, so the
+/// intercept is the mean of y and drops out of them.
+fn ridge(design: &Design<'_>, y: &[f64], alpha: f64) -> Result<LinearFit, EstimateError> {
+    let (n, d) = (design.n(), design.d());
     if n == 0 || y.len() != n {
         return Err(EstimateError::invalid(format!(
             "ridge: {n} rows for {} targets",
             y.len()
         )));
     }
-    let x_mean = column_means(x);
     let y_mean = y.iter().sum::<f64>() / n as f64;
     let yc: Vec<f64> = y.iter().map(|v| v - y_mean).collect();
-    let (g, r) = gram(x, &x_mean, None, &yc);
+    let (g, r) = design.gram(None, &yc);
     // Drop the intercept row and column: centered features are orthogonal to it.
     let p = d + 1;
     let mut a = Vec::with_capacity(d * d);
@@ -175,13 +268,9 @@ pub fn ridge_fit(
             a.push(g[j * p + k] + if j == k { alpha } else { 0.0 });
         }
     }
-    let coef = solve_spd(a, &r[1..], "ridge")?;
-    let intercept = y_mean
-        - coef
-            .iter()
-            .zip(x_mean.iter())
-            .map(|(b, m)| b * m)
-            .sum::<f64>();
+    let mut theta = vec![y_mean];
+    theta.extend(solve_spd(a, &r[1..], "ridge")?);
+    let (intercept, coef) = design.raw_coefficients(&theta);
     Ok(LinearFit {
         intercept,
         coef,
@@ -191,15 +280,6 @@ pub fn ridge_fit(
 
 /// Newton iterations of the logistic fit stop after this many.
 const NEWTON_MAX_ITERATIONS: usize = 100;
-
-/// The linear index theta_0 + (x_i - center) . theta_1.. of every row, as
-/// x_i . b plus one shift, so the rows are read once, by a matrix-vector
-/// product.
-fn linear_index(x: ArrayView2<'_, f64>, center: &[f64], theta: &[f64]) -> Vec<f64> {
-    let b = ArrayView1::from(&theta[1..]);
-    let shift = theta[0] - b.iter().zip(center).map(|(b, c)| b * c).sum::<f64>();
-    x.dot(&b).iter().map(|v| v + shift).collect()
-}
 
 /// Penalized logistic negative log-likelihood from the linear index `eta`
 /// of every row and the penalized coefficients `b`.
@@ -222,18 +302,23 @@ pub fn logistic_fit(
     y: &[f64],
     alpha: f64,
 ) -> Result<LinearFit, EstimateError> {
-    let (n, d) = x.dim();
+    let x = x.as_standard_layout();
+    logistic(&Design::new(rows_of(&x)?, None, false), y, alpha)
+}
+
+/// Logistic regression on a design (see [`logistic_fit`]).
+fn logistic(design: &Design<'_>, y: &[f64], alpha: f64) -> Result<LinearFit, EstimateError> {
+    let (n, d) = (design.n(), design.d());
     if n == 0 || y.len() != n {
         return Err(EstimateError::invalid(format!(
             "logistic: {n} rows for {} labels",
             y.len()
         )));
     }
-    let center = column_means(x);
     let share = (y.iter().sum::<f64>() / n as f64).clamp(1e-6, 1.0 - 1e-6);
     let mut theta = vec![0.0; d + 1];
     theta[0] = (share / (1.0 - share)).ln();
-    let mut eta = linear_index(x, &center, &theta);
+    let mut eta = design.linear_index(&theta);
     let mut objective = logistic_objective(&eta, y, &theta[1..], alpha);
     let mut weights = vec![0.0; n];
     let mut residual = vec![0.0; n];
@@ -248,7 +333,7 @@ pub fn logistic_fit(
             // sum w_i z_i t_i with t_i = (p_i - y_i) / w_i.
             residual[i] = (prob - y[i]) / weights[i];
         }
-        let (mut h, mut grad) = gram(x, &center, Some(&weights), &residual);
+        let (mut h, mut grad) = design.gram(Some(&weights), &residual);
         for j in 1..p {
             h[j * p + j] += alpha;
             grad[j] += alpha * theta[j];
@@ -269,7 +354,7 @@ pub fn logistic_fit(
         }
         // The index is linear in theta: a trial point's index is the
         // current one minus t times the step's, one pass per trial.
-        let step_eta = linear_index(x, &center, &step);
+        let step_eta = design.linear_index(&step);
         let mut t = 1.0;
         let mut accepted = false;
         for _ in 0..40 {
@@ -306,63 +391,12 @@ pub fn logistic_fit(
             ),
         });
     }
-    let coef: Vec<f64> = theta[1..].to_vec();
-    let intercept = theta[0] - coef.iter().zip(&center).map(|(b, m)| b * m).sum::<f64>();
+    let (intercept, coef) = design.raw_coefficients(&theta);
     Ok(LinearFit {
         intercept,
         coef,
         task: Task::Classification,
     })
-}
-
-/// The rows `rows` of `x` (all rows when None), standardized: each column
-/// centered on its mean over those rows and divided by its standard
-/// deviation (population, as numpy's default); a constant column keeps sd 1
-/// so it standardizes to zero instead of dividing by zero. Returns the
-/// standardized copy, the means and the standard deviations.
-fn standardized(
-    x: ArrayView2<'_, f64>,
-    rows: Option<&[usize]>,
-) -> (Array2<f64>, Vec<f64>, Vec<f64>) {
-    let d = x.ncols();
-    let n = rows.map_or(x.nrows(), <[usize]>::len);
-    // Rows as slices: the shared matrix is row-major, so this borrows it;
-    // any other layout is copied once.
-    let x = x.as_standard_layout();
-    let data = x.as_slice().unwrap_or(&[]);
-    let row = |i: usize| {
-        let r = rows.map_or(i, |r| r[i]);
-        &data[r * d..(r + 1) * d]
-    };
-    let mut mean = vec![0.0; d];
-    for i in 0..n {
-        for (m, v) in mean.iter_mut().zip(row(i)) {
-            *m += v;
-        }
-    }
-    let count = n.max(1) as f64;
-    mean.iter_mut().for_each(|m| *m /= count);
-    let mut sd = vec![0.0; d];
-    for i in 0..n {
-        for ((s, v), m) in sd.iter_mut().zip(row(i)).zip(&mean) {
-            *s += (v - m) * (v - m);
-        }
-    }
-    sd.iter_mut().for_each(|s| {
-        let v = (*s / count).sqrt();
-        *s = if v > 1e-12 { v } else { 1.0 };
-    });
-    let mut out = vec![0.0; n * d];
-    if d > 0 {
-        for (i, o) in out.chunks_exact_mut(d).enumerate() {
-            for (((o, v), m), s) in o.iter_mut().zip(row(i)).zip(&mean).zip(&sd) {
-                *o = (v - m) / s;
-            }
-        }
-    }
-    // `out` holds n x d values by construction, so the shape always fits.
-    let out = Array2::from_shape_vec((n, d), out).unwrap_or_else(|_| Array2::zeros((n, d)));
-    (out, mean, sd)
 }
 
 /// Ridge (regression) or L2 logistic (classification) on standardized
@@ -390,28 +424,20 @@ impl Linear {
         y: &[f64],
         task: Task,
     ) -> Result<LinearFit, EstimateError> {
-        self.fit_standardized(standardized(x, None), y, task)
+        let x = x.as_standard_layout();
+        self.fit_design(&Design::new(rows_of(&x)?, None, true), y, task)
     }
 
-    /// Fits on standardized features, given with their means and standard
-    /// deviations, and maps the coefficients back to the raw scale.
-    fn fit_standardized(
+    fn fit_design(
         &self,
-        (xs, mean, sd): (Array2<f64>, Vec<f64>, Vec<f64>),
+        design: &Design<'_>,
         y: &[f64],
         task: Task,
     ) -> Result<LinearFit, EstimateError> {
-        let fit = match task {
-            Task::Regression => ridge_fit(xs.view(), y, self.alpha)?,
-            Task::Classification => logistic_fit(xs.view(), y, self.alpha)?,
-        };
-        let coef: Vec<f64> = fit.coef.iter().zip(&sd).map(|(b, s)| b / s).collect();
-        let intercept = fit.intercept - coef.iter().zip(&mean).map(|(b, m)| b * m).sum::<f64>();
-        Ok(LinearFit {
-            intercept,
-            coef,
-            task,
-        })
+        match task {
+            Task::Regression => ridge(design, y, self.alpha),
+            Task::Classification => logistic(design, y, self.alpha),
+        }
     }
 }
 
@@ -448,9 +474,8 @@ impl Learner for Linear {
         Ok(Box::new(self.fit_coefficients(x, y, task)?))
     }
 
-    /// Standardizes the chosen rows straight from the shared matrix: one
-    /// copy of the training rows instead of a selection and then a
-    /// standardized copy of it.
+    /// Reads the chosen rows where they are in the shared matrix,
+    /// standardizing each as it is read: no copy of the training rows.
     fn fit_rows(
         &self,
         data: &SharedFeatures<'_>,
@@ -462,7 +487,7 @@ impl Learner for Linear {
         if let Some(c) = fit_rows_start("linear", rows, y, task)? {
             return Ok(c);
         }
-        let fit = self.fit_standardized(standardized(data.x(), Some(rows)), y, task)?;
+        let fit = self.fit_design(&Design::new(data.x(), Some(rows), true), y, task)?;
         Ok(Box::new(fit))
     }
 }

@@ -19,7 +19,7 @@ pub use linear::{logistic_fit, ridge_fit, Linear, LinearFit};
 pub use quadratic::Quadratic;
 pub use shared::SharedFeatures;
 
-use ndarray::{ArrayView2, Axis};
+use ndarray::ArrayView2;
 
 use super::error::EstimateError;
 
@@ -70,7 +70,7 @@ pub trait Learner: Send + Sync + std::fmt::Debug {
         task: Task,
         seed: u64,
     ) -> Result<Box<dyn Fitted>, EstimateError> {
-        let x = data.x().select(Axis(0), rows);
+        let x = data.x().select(rows);
         self.fit(x.view(), y, task, seed)
     }
 }
@@ -83,7 +83,7 @@ pub trait Fitted: Send + Sync {
     /// Predictions for rows `rows` of a shared matrix; the same values as
     /// [`Fitted::predict`] on those rows.
     fn predict_rows(&self, data: &SharedFeatures<'_>, rows: &[usize]) -> Vec<f64> {
-        self.predict(data.x().select(Axis(0), rows).view())
+        self.predict(data.x().select(rows).view())
     }
 }
 

@@ -4,7 +4,7 @@
 
 use std::sync::{Arc, Mutex};
 
-use ndarray::ArrayView2;
+use crate::estimate::data::FeatureRows;
 use rayon::prelude::*;
 
 /// At most this many rows (evenly spaced) set the bin edges of a feature.
@@ -28,14 +28,14 @@ pub struct Binned {
 impl Binned {
     /// Bins `x`, in parallel: the cut points feature by feature, then the
     /// rows in blocks.
-    pub fn new(x: ArrayView2<'_, f64>, max_bins: usize) -> Self {
-        let (n, d) = x.dim();
+    pub fn new(x: FeatureRows<'_>, max_bins: usize) -> Self {
+        let (n, d) = (x.len(), x.width());
         let max_bins = max_bins.clamp(2, 256);
         let step = n.div_ceil(QUANTILE_SAMPLE).max(1);
         let cuts: Vec<Vec<f64>> = (0..d)
             .into_par_iter()
             .map(|j| {
-                let mut v: Vec<f64> = x.column(j).iter().step_by(step).copied().collect();
+                let mut v: Vec<f64> = (0..n).step_by(step).map(|i| x.row(i)[j]).collect();
                 v.sort_unstable_by(f64::total_cmp);
                 feature_cuts(&v, max_bins)
             })
@@ -48,7 +48,7 @@ impl Binned {
                     let first = block * BIN_BLOCK_ROWS;
                     for (k, out) in out.chunks_exact_mut(d).enumerate() {
                         let row = x.row(first + k);
-                        for ((o, &v), c) in out.iter_mut().zip(row.iter()).zip(&cuts) {
+                        for ((o, &v), c) in out.iter_mut().zip(row).zip(&cuts) {
                             *o = c.partition_point(|&c| c < v) as u8;
                         }
                     }
@@ -97,19 +97,19 @@ fn feature_cuts(sorted: &[f64], max_bins: usize) -> Vec<f64> {
 
 /// The rows every fit of a cross-fit draws from.
 pub struct SharedFeatures<'a> {
-    x: ArrayView2<'a, f64>,
+    x: FeatureRows<'a>,
     binned: Mutex<Vec<Arc<Binned>>>,
 }
 
 impl<'a> SharedFeatures<'a> {
-    pub fn new(x: ArrayView2<'a, f64>) -> Self {
+    pub fn new(x: FeatureRows<'a>) -> Self {
         Self {
             x,
             binned: Mutex::new(Vec::new()),
         }
     }
 
-    pub fn x(&self) -> ArrayView2<'a, f64> {
+    pub fn x(&self) -> FeatureRows<'a> {
         self.x
     }
 
@@ -144,7 +144,7 @@ mod tests {
                 ((i * 7919) % 1000) as f64 / 10.0
             }
         });
-        let b = Binned::new(x.view(), 16);
+        let b = Binned::new(FeatureRows::of_matrix(x.view()).expect("row-major"), 16);
         assert_eq!(b.cuts[0], vec![0.5, 1.5]);
         assert_eq!(b.widths[1], b.cuts[1].len() + 1);
         assert!(b.cuts[1].len() <= 15);
