@@ -10,7 +10,10 @@
 //!   incremental recompute that scores it with the current nuisance fit;
 //! - the server's peak resident memory (VmHWM) against the raw columns it
 //!   holds: per unit 20 features and one outcome as f64, the treatment as a
-//!   byte and 10 predictions as f64 (249 bytes).
+//!   byte and 10 predictions as f64 (249 bytes);
+//! - a restart on the same data directory: the seconds until the cumulative
+//!   scoreboard is served again (the cache rebuilt from SQLite and the fit
+//!   reproduced) and the restarted server's peak memory.
 //!
 //! `cargo bench --bench service` runs n = 10,000 and 100,000 (about two
 //! minutes). `PLUMBLINE_BENCH_SIZES=10000,100000,1000000` adds the 1M run
@@ -44,6 +47,8 @@ struct Row {
     incremental_server_ms: f64,
     peak_mib: f64,
     raw_mib: f64,
+    restart_s: f64,
+    restart_peak_mib: f64,
 }
 
 fn free_port() -> u16 {
@@ -80,18 +85,32 @@ impl Server {
             std::env::temp_dir().join(format!("plumbline-bench-{}-{tag}", std::process::id()));
         let _ = std::fs::remove_dir_all(&dir);
         let addr = format!("127.0.0.1:{}", free_port());
-        let child = Command::new(env!("CARGO_BIN_EXE_plumbline"))
+        let child = Self::spawn(&dir, &addr);
+        Server { child, dir, addr }
+    }
+
+    /// Stops the server (SIGTERM, as an orchestrator does) and starts a new
+    /// one on the same data directory and address.
+    fn restart(&mut self) {
+        let _ = Command::new("kill")
+            .args(["-TERM", &self.child.id().to_string()])
+            .status();
+        let _ = self.child.wait();
+        self.child = Self::spawn(&self.dir, &self.addr);
+    }
+
+    fn spawn(dir: &std::path::Path, addr: &str) -> Child {
+        Command::new(env!("CARGO_BIN_EXE_plumbline"))
             .arg("serve")
-            .args(["--listen", &addr])
+            .args(["--listen", addr])
             .args(["--metrics-listen", &format!("127.0.0.1:{}", free_port())])
             .arg("--data-dir")
-            .arg(&dir)
+            .arg(dir)
             .env("PLUMBLINE_LOG", "warn")
             .env("PLUMBLINE_DURABILITY", "full")
             .stdout(Stdio::null())
             .spawn()
-            .expect("start plumbline serve");
-        Server { child, dir, addr }
+            .expect("start plumbline serve")
     }
 
     async fn connect(&self) -> Channel {
@@ -184,7 +203,7 @@ fn outcome_batches(data: &Draw, range: std::ops::Range<usize>) -> Vec<pb::Outcom
 }
 
 async fn measure(history: usize) -> Row {
-    let server = Server::start(history);
+    let mut server = Server::start(history);
     let channel = server.connect().await;
     let mut datasets = pb::dataset_registry_client::DatasetRegistryClient::new(channel.clone());
     let mut models = pb::model_registry_client::ModelRegistryClient::new(channel.clone());
@@ -282,6 +301,26 @@ async fn measure(history: usize) -> Row {
     assert!(!r.refitted);
     assert_eq!(r.units, total as u64);
     let incremental_s = t.elapsed().as_secs_f64();
+    let peak = peak_mib(server.child.id());
+
+    let t = Instant::now();
+    server.restart();
+    let mut scoring = pb::scoring_client::ScoringClient::new(server.connect().await)
+        .max_decoding_message_size(256 << 20);
+    loop {
+        let board = scoring
+            .get_scoreboard(pb::GetScoreboardRequest {
+                dataset: NAME.into(),
+                window: None,
+            })
+            .await;
+        if board.is_ok() {
+            break;
+        }
+        assert!(t.elapsed() < Duration::from_secs(1800), "no scoreboard after restart");
+        tokio::time::sleep(Duration::from_millis(50)).await;
+    }
+    let restart_s = t.elapsed().as_secs_f64();
     Row {
         units: history,
         ingest_units_per_s,
@@ -289,8 +328,10 @@ async fn measure(history: usize) -> Row {
         refit_s,
         incremental_s,
         incremental_server_ms: r.millis,
-        peak_mib: peak_mib(server.child.id()),
+        peak_mib: peak,
         raw_mib: (total * RAW_BYTES_PER_UNIT) as f64 / (1024.0 * 1024.0),
+        restart_s,
+        restart_peak_mib: peak_mib(server.child.id()),
     }
 }
 
@@ -311,7 +352,7 @@ async fn main() {
         rows.push(row);
     }
     println!(
-        "\n{:>9} | {:>13} | {:>13} | {:>9} | {:>17} | {:>11} | {:>8} | {:>9}",
+        "\n{:>9} | {:>13} | {:>13} | {:>9} | {:>17} | {:>11} | {:>8} | {:>9} | {:>9} | {:>13}",
         "history",
         "units/s",
         "predictions/s",
@@ -319,11 +360,13 @@ async fn main() {
         "incremental s (ms)",
         "peak MiB",
         "raw MiB",
-        "peak/raw"
+        "peak/raw",
+        "restart s",
+        "restart MiB"
     );
     for r in &rows {
         println!(
-            "{:>9} | {:>13.0} | {:>13.0} | {:>9.2} | {:>9.3} ({:>6.0}) | {:>11.0} | {:>8.0} | {:>9.2}",
+            "{:>9} | {:>13.0} | {:>13.0} | {:>9.2} | {:>9.3} ({:>6.0}) | {:>11.0} | {:>8.0} | {:>9.2} | {:>9.2} | {:>13.0}",
             r.units,
             r.ingest_units_per_s,
             r.ingest_predictions_per_s,
@@ -332,11 +375,14 @@ async fn main() {
             r.incremental_server_ms,
             r.peak_mib,
             r.raw_mib,
-            r.peak_mib / r.raw_mib
+            r.peak_mib / r.raw_mib,
+            r.restart_s,
+            r.restart_peak_mib
         );
     }
     println!(
         "(refit: full cross-fitted refit and scoring of the history; incremental: recompute after a \
-{COHORT}-unit cohort with the current fit; raw: {RAW_BYTES_PER_UNIT} bytes per unit)"
+{COHORT}-unit cohort with the current fit; raw: {RAW_BYTES_PER_UNIT} bytes per unit; restart: \
+SIGTERM, start on the same data, until the scoreboard is served, and that process's peak)"
     );
 }

@@ -209,20 +209,22 @@ impl Monitor {
         let span = info_span!("rebuild", dataset = %stored.spec.name);
         async {
             let mut cache = DatasetCache::new(stored.spec.feature_names.len());
-            for u in self.store.load_units(stored.id).await? {
-                cache.add_unit(&u);
-            }
-            for o in self.store.load_outcomes(stored.id).await? {
-                cache.add_outcome(&o);
-            }
+            self.store
+                .for_each_unit(stored.id, |u| cache.add_unit(&u))
+                .await?;
+            self.store
+                .for_each_outcome(stored.id, |o| cache.add_outcome(&o))
+                .await?;
             for m in self.store.models(stored.id).await? {
                 cache.add_model(m);
             }
-            for p in self.store.load_predictions(stored.id).await? {
-                if let Some(m) = cache.model_by_id(p.model_id) {
-                    cache.add_prediction(m, &p);
-                }
-            }
+            self.store
+                .for_each_prediction(stored.id, |p| {
+                    if let Some(m) = cache.model_by_id(p.model_id) {
+                        cache.add_prediction(m, &p);
+                    }
+                })
+                .await?;
             let mut state = DatasetState {
                 stored: stored.clone(),
                 cache,

@@ -14,6 +14,7 @@ use sqlx::sqlite::{
     SqliteConnectOptions, SqliteJournalMode, SqlitePool, SqlitePoolOptions, SqliteSynchronous,
 };
 use sqlx::{QueryBuilder, Row, Sqlite};
+use tokio_stream::StreamExt;
 
 use crate::monitor::spec::DatasetSpec;
 
@@ -373,63 +374,81 @@ impl Store {
         Ok(())
     }
 
-    pub async fn load_units(&self, dataset_id: i64) -> StoreResult<Vec<UnitRecord>> {
-        let rows = sqlx::query(
+    /// Hands every unit of a dataset to `each`, in sequence order. Rows
+    /// are streamed from SQLite one at a time, so a rebuild holds one row
+    /// at a time on top of what `each` keeps, never the whole table.
+    pub async fn for_each_unit(
+        &self,
+        dataset_id: i64,
+        mut each: impl FnMut(UnitRecord),
+    ) -> StoreResult<()> {
+        let mut rows = sqlx::query(
             "SELECT seq, key, features, treatment, propensity, cohort, assigned_at_ms \
              FROM units WHERE dataset_id = ? ORDER BY seq",
         )
         .bind(dataset_id)
-        .fetch_all(&self.pool)
-        .await?;
-        rows.into_iter()
-            .map(|r| {
-                Ok(UnitRecord {
-                    seq: r.get(0),
-                    key: r.get(1),
-                    features: unpack_features(r.get::<&[u8], _>(2))?,
-                    treatment: r.get::<i64, _>(3) as u8,
-                    propensity: r.get(4),
-                    cohort: r.get(5),
-                    assigned_at_ms: r.get(6),
-                })
-            })
-            .collect()
+        .fetch(&self.pool);
+        while let Some(r) = rows.next().await {
+            let r = r?;
+            each(UnitRecord {
+                seq: r.get(0),
+                key: r.get(1),
+                features: unpack_features(r.get::<&[u8], _>(2))?,
+                treatment: r.get::<i64, _>(3) as u8,
+                propensity: r.get(4),
+                cohort: r.get(5),
+                assigned_at_ms: r.get(6),
+            });
+        }
+        Ok(())
     }
 
-    pub async fn load_outcomes(&self, dataset_id: i64) -> StoreResult<Vec<OutcomeRecord>> {
-        let rows = sqlx::query(
+    /// Hands every outcome of a dataset to `each`, in arrival order,
+    /// streamed as [`Store::for_each_unit`] does.
+    pub async fn for_each_outcome(
+        &self,
+        dataset_id: i64,
+        mut each: impl FnMut(OutcomeRecord),
+    ) -> StoreResult<()> {
+        let mut rows = sqlx::query(
             "SELECT unit_seq, seq, value, observed_at_ms FROM outcomes WHERE dataset_id = ? ORDER BY seq",
         )
         .bind(dataset_id)
-        .fetch_all(&self.pool)
-        .await?;
-        Ok(rows
-            .into_iter()
-            .map(|r| OutcomeRecord {
+        .fetch(&self.pool);
+        while let Some(r) = rows.next().await {
+            let r = r?;
+            each(OutcomeRecord {
                 unit_seq: r.get(0),
                 seq: r.get(1),
                 value: r.get(2),
                 observed_at_ms: r.get(3),
-            })
-            .collect())
+            });
+        }
+        Ok(())
     }
 
-    pub async fn load_predictions(&self, dataset_id: i64) -> StoreResult<Vec<PredictionRecord>> {
-        let rows = sqlx::query(
+    /// Hands every prediction of a dataset to `each`, streamed as
+    /// [`Store::for_each_unit`] does.
+    pub async fn for_each_prediction(
+        &self,
+        dataset_id: i64,
+        mut each: impl FnMut(PredictionRecord),
+    ) -> StoreResult<()> {
+        let mut rows = sqlx::query(
             "SELECT model_id, unit_seq, effect, predicted_at_ms FROM predictions WHERE dataset_id = ?",
         )
         .bind(dataset_id)
-        .fetch_all(&self.pool)
-        .await?;
-        Ok(rows
-            .into_iter()
-            .map(|r| PredictionRecord {
+        .fetch(&self.pool);
+        while let Some(r) = rows.next().await {
+            let r = r?;
+            each(PredictionRecord {
                 model_id: r.get(0),
                 unit_seq: r.get(1),
                 effect: r.get(2),
                 predicted_at_ms: r.get(3),
-            })
-            .collect())
+            });
+        }
+        Ok(())
     }
 
     // ------------------------------------------------------- fits, scores
