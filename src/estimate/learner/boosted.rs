@@ -190,9 +190,12 @@ struct BoostedFit {
     base: f64,
     trees: Vec<Tree>,
     task: Task,
-    /// The cut points the trees' bins refer to, to recognize the shared
-    /// matrix they were fitted on.
-    binned: Arc<Binned>,
+    /// Which binned matrix the trees' bin numbers refer to ([`Binned::id`]),
+    /// so predictions for rows of that same matrix can walk by bins. Only
+    /// the id is kept: the fold models outlive the cross-fit, and holding the
+    /// matrix would keep a byte per feature and unit alive with them.
+    binned_id: u64,
+    max_bins: usize,
 }
 
 impl BoostedFit {
@@ -223,8 +226,8 @@ impl Fitted for BoostedFit {
     }
 
     fn predict_rows(&self, data: &SharedFeatures<'_>, rows: &[usize]) -> Vec<f64> {
-        match data.binned_if_cached(self.binned.max_bins) {
-            Some(b) if Arc::ptr_eq(&b, &self.binned) => rows
+        match data.binned_if_cached(self.max_bins) {
+            Some(b) if b.id == self.binned_id => rows
                 .iter()
                 .map(|&r| {
                     let bins = b.row(r);
@@ -686,7 +689,8 @@ impl Boosted {
             base,
             trees,
             task,
-            binned,
+            binned_id: binned.id,
+            max_bins: binned.max_bins,
         }
     }
 }

@@ -2,6 +2,7 @@
 //! quantile-binned copy that the boosted learner builds once and every
 //! boosted fit reuses.
 
+use std::sync::atomic::{AtomicU64, Ordering};
 use std::sync::{Arc, Mutex};
 
 use crate::estimate::data::FeatureRows;
@@ -15,6 +16,9 @@ const BIN_BLOCK_ROWS: usize = 8192;
 /// Features cut into quantile bins, row-major, one byte per value.
 #[derive(Debug)]
 pub struct Binned {
+    /// Unique in the process: tells fits whether rows were binned by this
+    /// very matrix.
+    pub id: u64,
     pub max_bins: usize,
     pub d: usize,
     /// Cut points per feature, increasing: value x falls in the first bin k
@@ -55,7 +59,9 @@ impl Binned {
                 });
         }
         let widths = cuts.iter().map(|c| c.len() + 1).collect();
+        static NEXT_ID: AtomicU64 = AtomicU64::new(0);
         Self {
+            id: NEXT_ID.fetch_add(1, Ordering::Relaxed),
             max_bins,
             d,
             cuts,
