@@ -10,7 +10,7 @@
 use serde::Serialize;
 
 use super::stats::{mean_se, Estimate};
-use super::targeting::{descending_order, tie_blocks};
+use super::targeting::{descending_order, Ranked};
 
 #[derive(Debug, Clone, Serialize)]
 pub struct GroupAte {
@@ -38,6 +38,12 @@ pub fn calibration(phi: &[f64], tau_hat: &[f64]) -> Calibration {
 /// [`calibration`] given the units' descending order by `tau_hat` (shared
 /// with targeting, so the predictions are sorted once per pass).
 pub fn calibration_ordered(phi: &[f64], tau_hat: &[f64], order: &[u32]) -> Calibration {
+    calibration_ranked(phi, tau_hat, &Ranked::new(phi, tau_hat, order))
+}
+
+/// [`calibration`] given the units [`Ranked`] by `tau_hat` (shared with
+/// targeting).
+pub fn calibration_ranked(phi: &[f64], tau_hat: &[f64], ranked: &Ranked) -> Calibration {
     let n = phi.len();
     let nf = n as f64;
     let mean_tau = tau_hat.iter().sum::<f64>() / nf;
@@ -74,41 +80,35 @@ pub fn calibration_ordered(phi: &[f64], tau_hat: &[f64], order: &[u32]) -> Calib
         slope: Some(Estimate::new(slope, se_slope)),
         intercept: Estimate::new(intercept, se_intercept),
         state: "ok",
-        groups: quintile_groups(phi, tau_hat, order),
+        groups: quintile_groups(ranked),
     }
 }
 
 /// Group ATEs by quintile of the prediction. Tied predictions stay in one
 /// group (the group of their average rank), so groups can be uneven or empty
-/// when predictions take few values; empty groups are omitted.
-fn quintile_groups(phi: &[f64], tau_hat: &[f64], order: &[u32]) -> Vec<GroupAte> {
-    let n = phi.len();
-    // Average ascending rank (1-based) per unit: a tie block at descending
-    // positions [s, e) holds ascending ranks n - e + 1 ..= n - s.
-    let mut ranks = vec![0.0; n];
-    for (s, e) in tie_blocks(order, tau_hat) {
+/// when predictions take few values; empty groups are omitted. A group's
+/// units are a run of the ranked order (lower positions, higher groups).
+fn quintile_groups(r: &Ranked) -> Vec<GroupAte> {
+    let n = r.len();
+    // (first position, end position) of each quintile's run.
+    let mut runs: [Option<(usize, usize)>; 5] = [None; 5];
+    for &(s, e) in &r.blocks {
+        // Average ascending rank (1-based): a tie block at descending
+        // positions [s, e) holds ascending ranks n - e + 1 ..= n - s.
         let rank = (2 * n - s - e + 1) as f64 / 2.0;
-        for &i in &order[s..e] {
-            ranks[i as usize] = rank;
-        }
+        let g = ((((rank - 0.5) / n as f64) * 5.0).floor() as usize).min(4);
+        let run = runs[g].get_or_insert((s, e));
+        run.0 = run.0.min(s);
+        run.1 = run.1.max(e);
     }
-    let mut members: Vec<Vec<usize>> = vec![Vec::new(); 5];
-    for (i, r) in ranks.iter().enumerate() {
-        let g = (((r - 0.5) / n as f64) * 5.0).floor() as usize;
-        members[g.min(4)].push(i);
-    }
-    members
-        .into_iter()
+    runs.iter()
         .enumerate()
-        .filter(|(_, m)| !m.is_empty())
-        .map(|(g, m)| {
-            let values: Vec<f64> = m.iter().map(|&i| phi[i]).collect();
-            GroupAte {
-                quintile: g + 1,
-                units: m.len(),
-                mean_prediction: m.iter().map(|&i| tau_hat[i]).sum::<f64>() / m.len() as f64,
-                ate: mean_se(&values),
-            }
+        .filter_map(|(g, run)| run.map(|(s, e)| (g, s, e)))
+        .map(|(g, s, e)| GroupAte {
+            quintile: g + 1,
+            units: e - s,
+            mean_prediction: r.tau[s..e].iter().sum::<f64>() / (e - s) as f64,
+            ate: mean_se(&r.phi[s..e]),
         })
         .collect()
 }

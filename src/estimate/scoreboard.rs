@@ -5,7 +5,7 @@
 use rayon::prelude::*;
 use serde::Serialize;
 
-use super::calibration::{calibration_ordered, Calibration};
+use super::calibration::{calibration_ranked, Calibration};
 use super::compare::{rank, Difference};
 use super::crossfit::{fit_nuisance, Nuisance, NuisanceReport, NuisanceSettings};
 use super::data::{FeatureRows, ModelPredictions, UnitTable, CONSTANT_EFFECT, ZERO_EFFECT};
@@ -16,7 +16,7 @@ use super::policy::{policy_gain, PolicyGain};
 use super::pseudo::{aipw_ate, aipw_pseudo_outcome};
 use super::stats::{holm_reject, p_greater, Estimate};
 use super::sums::ScoreSums;
-use super::targeting::{descending_order, targeting_ordered, Targeting};
+use super::targeting::{descending_order, targeting_ranked, Ranked, Targeting};
 
 /// Everything that shapes a scoring pass besides the data.
 #[derive(Debug)]
@@ -515,14 +515,14 @@ pub fn assemble(parts: Parts<'_>, settings: &Settings) -> Scoreboard {
         .map(|(k, (name, baseline))| {
             let d = corrected.difference(k, constant);
             let (ci_low, ci_high) = d.interval(CI_LEVEL);
-            let t: Targeting = targeting_ordered(
-                phi,
-                effects[k],
+            let ranked = Ranked::new(phi, effects[k], orders[k]);
+            let t: Targeting = targeting_ranked(
+                &ranked,
                 orders[k],
                 settings.bootstrap_replicates,
                 settings.nuisance.seed.wrapping_add(k as u64),
             );
-            let cal = calibration_ordered(phi, effects[k], orders[k]);
+            let cal = calibration_ranked(phi, effects[k], &ranked);
             ModelScore {
                 name: name.clone(),
                 baseline: *baseline,

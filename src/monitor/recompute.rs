@@ -16,6 +16,7 @@ use std::collections::HashMap;
 use std::sync::Arc;
 
 use ndarray::Array2;
+use rayon::prelude::*;
 
 use super::cache::{Shared, CHUNK_ROWS};
 use super::spec::DatasetSpec;
@@ -567,20 +568,23 @@ impl Frame {
         }
         let n = memo.units.len();
         let gathered: Vec<Vec<f64>> = ranked
-            .iter()
+            .par_iter()
             .map(|&k| self.gather(k, &memo.units))
             .collect();
         // Each model's order: the kept order merged with the new units' own.
         let offset = memo.orders.first().map_or(0, Vec::len);
-        for (order, all) in memo.orders.iter_mut().zip(&gathered) {
-            if offset < n {
-                let later: Vec<u32> = descending_order(&all[offset..])
-                    .into_iter()
-                    .map(|i| i + offset as u32)
-                    .collect();
-                *order = merge_orders(all, order, &later);
-            }
-        }
+        memo.orders
+            .par_iter_mut()
+            .zip(&gathered)
+            .for_each(|(order, all)| {
+                if offset < n {
+                    let later: Vec<u32> = descending_order(&all[offset..])
+                        .into_iter()
+                        .map(|i| i + offset as u32)
+                        .collect();
+                    *order = merge_orders(all, order, &later);
+                }
+            });
         let ate = mean_se(&memo.phi);
         let zero = vec![0.0; n];
         let constant = vec![ate.estimate; n];
