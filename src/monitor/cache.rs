@@ -130,7 +130,6 @@ impl ModelColumn {
 pub struct DatasetCache {
     pub features_per_unit: usize,
     pub key_to_unit: HashMap<String, usize>,
-    pub keys: Vec<String>,
     /// One row of features per unit.
     pub features: Shared<f64>,
     pub treatment: Vec<u8>,
@@ -157,7 +156,6 @@ impl DatasetCache {
         Self {
             features_per_unit,
             key_to_unit: HashMap::new(),
-            keys: Vec::new(),
             features: Shared::new(features_per_unit),
             treatment: Vec::new(),
             propensity: Vec::new(),
@@ -176,7 +174,7 @@ impl DatasetCache {
     }
 
     pub fn units(&self) -> usize {
-        self.keys.len()
+        self.treatment.len()
     }
 
     pub fn outcomes(&self) -> usize {
@@ -192,10 +190,9 @@ impl DatasetCache {
     }
 
     pub fn add_unit(&mut self, u: &UnitRecord) {
-        let idx = self.keys.len();
+        let idx = self.units();
         debug_assert_eq!(u.seq as usize, idx);
         self.key_to_unit.insert(u.key.clone(), idx);
-        self.keys.push(u.key.clone());
         self.features.push_row(&u.features);
         self.treatment.push(u.treatment);
         self.propensity.push(u.propensity);
