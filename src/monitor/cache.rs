@@ -3,8 +3,11 @@
 //! on ingest. Units are indexed by their sequence number (arrival order).
 
 use std::collections::HashMap;
+use std::hash::{BuildHasher, RandomState};
 use std::ops::{Index, IndexMut};
 use std::sync::Arc;
+
+use hashbrown::HashTable;
 
 use crate::store::{OutcomeRecord, PredictionRecord, StoredModel, UnitRecord};
 
@@ -96,6 +99,62 @@ impl<T: Clone> IndexMut<usize> for Shared<T> {
     }
 }
 
+/// The units' keys, each stored once: their bytes back to back in one
+/// buffer, and a hash table of unit numbers that hashes and compares the
+/// bytes they point at. A `HashMap<String, usize>` would cost an allocation
+/// and a 32-byte entry per unit; this costs the key's bytes, an 8-byte
+/// offset and a 4-byte table slot.
+#[derive(Debug, Clone, Default)]
+pub struct UnitKeys {
+    /// Every key's bytes, in unit order.
+    bytes: Vec<u8>,
+    /// `ends[u]` is where unit u's key ends in `bytes`; it starts where unit
+    /// u - 1's ends (or at 0).
+    ends: Vec<u64>,
+    /// Unit numbers, hashed by their key's bytes. Keys are unique: intake
+    /// refuses a second unit with a stored key, and the store holds
+    /// (dataset, key) unique. Unit numbers fit in u32 (the scoring memo
+    /// keeps units as u32 too).
+    table: HashTable<u32>,
+    /// Seeded per process, like a std `HashMap`'s: keys come from clients.
+    hasher: RandomState,
+}
+
+impl UnitKeys {
+    fn key<'a>(bytes: &'a [u8], ends: &[u64], unit: usize) -> &'a [u8] {
+        let start = unit.checked_sub(1).map_or(0, |p| ends[p] as usize);
+        &bytes[start..ends[unit] as usize]
+    }
+
+    /// Appends the key of the next unit.
+    pub fn push(&mut self, key: &str) {
+        debug_assert!(u32::try_from(self.ends.len()).is_ok());
+        let unit = self.ends.len() as u32;
+        self.bytes.extend_from_slice(key.as_bytes());
+        self.ends.push(self.bytes.len() as u64);
+        let Self {
+            bytes,
+            ends,
+            table,
+            hasher,
+        } = self;
+        let hash = hasher.hash_one(key.as_bytes());
+        table.insert_unique(hash, unit, |&u| {
+            hasher.hash_one(Self::key(bytes, ends, u as usize))
+        });
+    }
+
+    /// The unit with this key.
+    pub fn unit_of(&self, key: &str) -> Option<usize> {
+        let hash = self.hasher.hash_one(key.as_bytes());
+        self.table
+            .find(hash, |&u| {
+                Self::key(&self.bytes, &self.ends, u as usize) == key.as_bytes()
+            })
+            .map(|&u| u as usize)
+    }
+}
+
 /// One model's predictions, aligned with the units.
 #[derive(Debug, Clone)]
 pub struct ModelColumn {
@@ -129,7 +188,8 @@ impl ModelColumn {
 #[derive(Debug, Clone)]
 pub struct DatasetCache {
     pub features_per_unit: usize,
-    pub key_to_unit: HashMap<String, usize>,
+    /// Every unit's key; look units up with [`DatasetCache::unit_of`].
+    keys: UnitKeys,
     /// One row of features per unit.
     pub features: Shared<f64>,
     pub treatment: Vec<u8>,
@@ -155,7 +215,7 @@ impl DatasetCache {
     pub fn new(features_per_unit: usize) -> Self {
         Self {
             features_per_unit,
-            key_to_unit: HashMap::new(),
+            keys: UnitKeys::default(),
             features: Shared::new(features_per_unit),
             treatment: Vec::new(),
             propensity: Vec::new(),
@@ -177,6 +237,11 @@ impl DatasetCache {
         self.treatment.len()
     }
 
+    /// The unit with this key, if it has been sent.
+    pub fn unit_of(&self, key: &str) -> Option<usize> {
+        self.keys.unit_of(key)
+    }
+
     pub fn outcomes(&self) -> usize {
         self.outcome_order.len()
     }
@@ -192,7 +257,7 @@ impl DatasetCache {
     pub fn add_unit(&mut self, u: &UnitRecord) {
         let idx = self.units();
         debug_assert_eq!(u.seq as usize, idx);
-        self.key_to_unit.insert(u.key.clone(), idx);
+        self.keys.push(&u.key);
         self.features.push_row(&u.features);
         self.treatment.push(u.treatment);
         self.propensity.push(u.propensity);
@@ -251,5 +316,26 @@ impl DatasetCache {
     /// Next outcome sequence number.
     pub fn next_outcome_seq(&self) -> i64 {
         self.outcome_order.len() as i64
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn keys_find_their_units_through_table_growth() {
+        let mut keys = UnitKeys::default();
+        let names: Vec<String> = (0..20_000).map(|i| format!("k{i}")).collect();
+        for k in &names {
+            keys.push(k);
+        }
+        for (u, k) in names.iter().enumerate() {
+            assert_eq!(keys.unit_of(k), Some(u));
+        }
+        // Keys that are prefixes or extensions of stored ones are other keys.
+        for k in ["k", "k1000x", "k00", "", "x"] {
+            assert_eq!(keys.unit_of(k), None, "{k:?}");
+        }
     }
 }

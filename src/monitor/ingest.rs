@@ -233,7 +233,7 @@ pub fn check_units(
                     && cohort == r.cohort
                     && at == r.assigned_at_ms
             };
-        if let Some(&u) = cache.key_to_unit.get(&r.key) {
+        if let Some(u) = cache.unit_of(&r.key) {
             let cohort = &cache.cohort_names[cache.cohort[u] as usize];
             if same(
                 cache.unit_features(u),
@@ -323,7 +323,7 @@ pub fn check_outcomes(
         if f.0.len() > before {
             continue;
         }
-        let Some(&u) = cache.key_to_unit.get(&r.unit_key) else {
+        let Some(u) = cache.unit_of(&r.unit_key) else {
             f.add(
                 i,
                 "unit_key",
@@ -434,7 +434,7 @@ pub fn check_predictions(
             );
             continue;
         }
-        let Some(&u) = cache.key_to_unit.get(&r.unit_key) else {
+        let Some(u) = cache.unit_of(&r.unit_key) else {
             f.add(
                 i,
                 "unit_key",
