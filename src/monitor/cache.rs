@@ -45,6 +45,20 @@ impl<T: Clone> Shared<T> {
         out
     }
 
+    /// A column of width one holding `rows` copies of `value`, built chunk
+    /// by chunk.
+    pub fn filled(rows: usize, value: T) -> Self {
+        let mut out = Self::new(1);
+        while out.rows < rows {
+            let n = (rows - out.rows).min(CHUNK_ROWS);
+            let mut chunk = Vec::with_capacity(CHUNK_ROWS);
+            chunk.resize(n, value.clone());
+            out.chunks.push(Arc::new(chunk));
+            out.rows += n;
+        }
+        out
+    }
+
     pub fn len(&self) -> usize {
         self.rows
     }
@@ -170,7 +184,7 @@ impl ModelColumn {
     pub fn new(model: StoredModel, units: usize) -> Self {
         Self {
             model,
-            effects: Shared::from_rows(1, &vec![f64::NAN; units]),
+            effects: Shared::filled(units, f64::NAN),
             predicted_at_ms: vec![0; units],
             count: 0,
         }
@@ -322,6 +336,23 @@ impl DatasetCache {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn a_filled_column_grows_like_a_pushed_one() {
+        for rows in [0, 1, CHUNK_ROWS - 1, CHUNK_ROWS, 2 * CHUNK_ROWS + 5] {
+            let mut filled = Shared::filled(rows, 7u32);
+            let mut pushed = Shared::new(1);
+            for _ in 0..rows {
+                pushed.push(7u32);
+            }
+            for col in [&mut filled, &mut pushed] {
+                col.push(9);
+            }
+            assert_eq!(filled.len(), rows + 1);
+            assert!((0..=rows).all(|i| filled[i] == pushed[i]));
+            assert_eq!(filled.chunks.len(), pushed.chunks.len());
+        }
+    }
 
     #[test]
     fn keys_find_their_units_through_table_growth() {
