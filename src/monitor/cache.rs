@@ -113,6 +113,68 @@ impl<T: Clone> IndexMut<usize> for Shared<T> {
     }
 }
 
+/// A column of Unix-millisecond stamps, 0 meaning "not stamped", kept in
+/// chunks of 8,192 rows where a chunk without any stamp takes no memory:
+/// many deployments never stamp, and the stamps are read only by the intake
+/// ordering rules and the recent window. A chunk is allocated at the first
+/// nonzero stamp written into it; like [`Shared`]'s, chunks are shared
+/// between clones and copied only when written while shared.
+#[derive(Debug, Clone, Default)]
+pub struct Stamps {
+    rows: usize,
+    /// One entry per chunk of rows; None while every row in it is 0.
+    chunks: Vec<Option<Arc<[i64]>>>,
+}
+
+impl Stamps {
+    /// A column of `rows` unstamped rows.
+    pub fn zeros(rows: usize) -> Self {
+        Self {
+            rows,
+            chunks: vec![None; rows.div_ceil(CHUNK_ROWS)],
+        }
+    }
+
+    pub fn len(&self) -> usize {
+        self.rows
+    }
+
+    pub fn is_empty(&self) -> bool {
+        self.rows == 0
+    }
+
+    pub fn push(&mut self, stamp: i64) {
+        if self.rows % CHUNK_ROWS == 0 {
+            self.chunks.push(None);
+        }
+        self.rows += 1;
+        self.set(self.rows - 1, stamp);
+    }
+
+    /// Sets row `i`, allocating its chunk only for a nonzero stamp.
+    pub fn set(&mut self, i: usize, stamp: i64) {
+        assert!(i < self.rows, "stamp {i} of {}", self.rows);
+        let chunk = &mut self.chunks[i / CHUNK_ROWS];
+        if chunk.is_none() && stamp == 0 {
+            return;
+        }
+        let chunk = chunk.get_or_insert_with(|| vec![0; CHUNK_ROWS].into());
+        Arc::make_mut(chunk)[i % CHUNK_ROWS] = stamp;
+    }
+}
+
+impl Index<usize> for Stamps {
+    type Output = i64;
+
+    fn index(&self, i: usize) -> &i64 {
+        assert!(i < self.rows, "stamp {i} of {}", self.rows);
+        match &self.chunks[i / CHUNK_ROWS] {
+            Some(chunk) => &chunk[i % CHUNK_ROWS],
+            None => &0,
+        }
+    }
+}
+
 /// The units' keys, each stored once: their bytes back to back in one
 /// buffer, and a hash table of unit numbers that hashes and compares the
 /// bytes they point at. A `HashMap<String, usize>` would cost an allocation
@@ -176,7 +238,9 @@ pub struct ModelColumn {
     /// Predicted effect per unit; NaN marks "no prediction" (internal only:
     /// never scored, never shown).
     pub effects: Shared<f64>,
-    pub predicted_at_ms: Vec<i64>,
+    /// When each prediction was made (0: not stamped), for the intake
+    /// ordering rules.
+    pub predicted_at_ms: Stamps,
     pub count: u64,
 }
 
@@ -185,7 +249,7 @@ impl ModelColumn {
         Self {
             model,
             effects: Shared::filled(units, f64::NAN),
-            predicted_at_ms: vec![0; units],
+            predicted_at_ms: Stamps::zeros(units),
             count: 0,
         }
     }
@@ -211,10 +275,13 @@ pub struct DatasetCache {
     pub cohort: Vec<u32>,
     pub cohort_names: Vec<String>,
     pub cohort_index: HashMap<String, u32>,
-    pub assigned_at_ms: Vec<i64>,
+    /// When each unit was assigned (0: not stamped); read only to tell a
+    /// re-sent unit from a conflicting one.
+    pub assigned_at_ms: Stamps,
     pub outcome: Vec<Option<f64>>,
     pub outcome_seq: Vec<i64>,
-    pub observed_at_ms: Vec<i64>,
+    /// When each outcome was observed (0: not stamped or no outcome).
+    pub observed_at_ms: Stamps,
     /// Units with an outcome, in outcome arrival order.
     pub outcome_order: Vec<usize>,
     pub models: Vec<ModelColumn>,
@@ -236,10 +303,10 @@ impl DatasetCache {
             cohort: Vec::new(),
             cohort_names: Vec::new(),
             cohort_index: HashMap::new(),
-            assigned_at_ms: Vec::new(),
+            assigned_at_ms: Stamps::default(),
             outcome: Vec::new(),
             outcome_seq: Vec::new(),
-            observed_at_ms: Vec::new(),
+            observed_at_ms: Stamps::default(),
             outcome_order: Vec::new(),
             models: Vec::new(),
             model_index: HashMap::new(),
@@ -299,7 +366,7 @@ impl DatasetCache {
         let u = o.unit_seq as usize;
         self.outcome[u] = Some(o.value);
         self.outcome_seq[u] = o.seq;
-        self.observed_at_ms[u] = o.observed_at_ms;
+        self.observed_at_ms.set(u, o.observed_at_ms);
         self.outcome_order.push(u);
     }
 
@@ -321,7 +388,7 @@ impl DatasetCache {
             col.count += 1;
         }
         col.effects[u] = p.effect;
-        col.predicted_at_ms[u] = p.predicted_at_ms;
+        col.predicted_at_ms.set(u, p.predicted_at_ms);
         if self.outcome_seq[u] >= 0 {
             self.revision += 1;
         }
@@ -352,6 +419,36 @@ mod tests {
             assert!((0..=rows).all(|i| filled[i] == pushed[i]));
             assert_eq!(filled.chunks.len(), pushed.chunks.len());
         }
+    }
+
+    #[test]
+    fn stamps_read_back_exactly_and_unstamped_chunks_stay_empty() {
+        let rows = 3 * CHUNK_ROWS + 10;
+        let mut stamps = Stamps::default();
+        let mut plain = Vec::new();
+        for i in 0..rows {
+            // Stamps only in the second chunk and the tail.
+            let t = if i / CHUNK_ROWS == 1 || i >= 3 * CHUNK_ROWS {
+                (i as i64) * 1_000 + 1
+            } else {
+                0
+            };
+            stamps.push(t);
+            plain.push(t);
+        }
+        let shared = stamps.clone();
+        stamps.set(5, i64::MAX);
+        stamps.set(CHUNK_ROWS + 1, 0);
+        stamps.set(2 * CHUNK_ROWS, 0);
+        plain[5] = i64::MAX;
+        plain[CHUNK_ROWS + 1] = 0;
+        let held: Vec<bool> = stamps.chunks.iter().map(Option::is_some).collect();
+        assert_eq!(held, [true, true, false, true]);
+        assert!((0..rows).all(|i| stamps[i] == plain[i]));
+        // The clone kept its own values.
+        assert_eq!(shared[5], 0);
+        assert_eq!(shared[CHUNK_ROWS + 1], (CHUNK_ROWS as i64 + 1) * 1_000 + 1);
+        assert_eq!(Stamps::zeros(rows).chunks.len(), held.len());
     }
 
     #[test]

@@ -17,7 +17,7 @@ use std::sync::Arc;
 
 use ndarray::Array2;
 
-use super::cache::Shared;
+use super::cache::{Shared, Stamps};
 use super::spec::DatasetSpec;
 use crate::api::pb;
 use crate::estimate::crossfit::{
@@ -102,7 +102,7 @@ pub struct Frame {
     pub cohort_names: Vec<String>,
     pub outcome: Vec<Option<f64>>,
     pub outcome_seq: Vec<i64>,
-    pub observed_at_ms: Vec<i64>,
+    pub observed_at_ms: Stamps,
     pub outcome_order: Vec<usize>,
     /// Active models: name and effects (NaN = missing), in registration order.
     pub models: Vec<(String, Shared<f64>)>,
@@ -745,7 +745,7 @@ mod tests {
             cohort_names: (0..cohorts).map(|c| format!("c{c}")).collect(),
             outcome: data.outcome[..units].iter().map(|&y| Some(y)).collect(),
             outcome_seq: (0..units as i64).collect(),
-            observed_at_ms: vec![0; units],
+            observed_at_ms: Stamps::zeros(units),
             outcome_order: (0..units).collect(),
             models: models
                 .iter()
