@@ -279,11 +279,13 @@ pub struct DatasetCache {
     /// re-sent unit from a conflicting one.
     pub assigned_at_ms: Stamps,
     pub outcome: Vec<Option<f64>>,
-    pub outcome_seq: Vec<i64>,
     /// When each outcome was observed (0: not stamped or no outcome).
     pub observed_at_ms: Stamps,
-    /// Units with an outcome, in outcome arrival order.
-    pub outcome_order: Vec<usize>,
+    /// Units with an outcome, in outcome arrival order. An outcome's
+    /// sequence number is its position here: intake numbers new outcomes
+    /// from [`DatasetCache::next_outcome_seq`] and the store returns them
+    /// by sequence number.
+    pub outcome_order: Vec<u32>,
     pub models: Vec<ModelColumn>,
     pub model_index: HashMap<String, usize>,
     /// Bumped whenever a unit that already has an outcome gets a prediction
@@ -305,7 +307,6 @@ impl DatasetCache {
             cohort_index: HashMap::new(),
             assigned_at_ms: Stamps::default(),
             outcome: Vec::new(),
-            outcome_seq: Vec::new(),
             observed_at_ms: Stamps::default(),
             outcome_order: Vec::new(),
             models: Vec::new(),
@@ -354,7 +355,6 @@ impl DatasetCache {
         self.cohort.push(cohort);
         self.assigned_at_ms.push(u.assigned_at_ms);
         self.outcome.push(None);
-        self.outcome_seq.push(-1);
         self.observed_at_ms.push(0);
         for m in &mut self.models {
             m.effects.push(f64::NAN);
@@ -365,9 +365,9 @@ impl DatasetCache {
     pub fn add_outcome(&mut self, o: &OutcomeRecord) {
         let u = o.unit_seq as usize;
         self.outcome[u] = Some(o.value);
-        self.outcome_seq[u] = o.seq;
+        debug_assert_eq!(o.seq, self.next_outcome_seq());
         self.observed_at_ms.set(u, o.observed_at_ms);
-        self.outcome_order.push(u);
+        self.outcome_order.push(u as u32);
     }
 
     pub fn add_model(&mut self, model: StoredModel) {
@@ -389,7 +389,7 @@ impl DatasetCache {
         }
         col.effects[u] = p.effect;
         col.predicted_at_ms.set(u, p.predicted_at_ms);
-        if self.outcome_seq[u] >= 0 {
+        if self.outcome[u].is_some() {
             self.revision += 1;
         }
     }

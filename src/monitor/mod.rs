@@ -135,7 +135,6 @@ impl DatasetState {
             cohort: c.cohort.clone(),
             cohort_names: c.cohort_names.clone(),
             outcome: c.outcome.clone(),
-            outcome_seq: c.outcome_seq.clone(),
             observed_at_ms: c.observed_at_ms.clone(),
             outcome_order: c.outcome_order.clone(),
             models: c

@@ -13,6 +13,7 @@
 //! from-scratch computation, equal to `plumbline score` on the same data.
 
 use std::collections::HashMap;
+use std::ops::Range;
 use std::sync::Arc;
 
 use ndarray::Array2;
@@ -101,9 +102,10 @@ pub struct Frame {
     pub cohort: Vec<u32>,
     pub cohort_names: Vec<String>,
     pub outcome: Vec<Option<f64>>,
-    pub outcome_seq: Vec<i64>,
     pub observed_at_ms: Stamps,
-    pub outcome_order: Vec<usize>,
+    /// Units with an outcome, in arrival order: an outcome's sequence
+    /// number is its position here.
+    pub outcome_order: Vec<u32>,
     /// Active models: name and effects (NaN = missing), in registration order.
     pub models: Vec<(String, Shared<f64>)>,
     /// The cache's revision (see [`ScoringMemo`]).
@@ -116,12 +118,10 @@ impl Frame {
     /// Reproduces a recorded fit: the units whose outcome sequence is at most
     /// `last_outcome_seq`, in unit order, with the dataset's seed.
     pub fn reproduce_fit(&self, last_outcome_seq: i64) -> Result<NuisanceState, EstimateError> {
-        let units: Vec<usize> = self
-            .scorable()
-            .into_iter()
-            .filter(|&u| self.outcome_seq[u] <= last_outcome_seq)
-            .collect();
-        self.refit(&units).map(|(s, _)| s)
+        let outcomes = usize::try_from(last_outcome_seq.saturating_add(1))
+            .unwrap_or(0)
+            .min(self.outcome_order.len());
+        self.refit(&self.arrived(0..outcomes)).map(|(s, _)| s)
     }
 }
 
@@ -203,16 +203,31 @@ impl Frame {
 
     /// Units with outcomes, in unit order.
     fn scorable(&self) -> Vec<usize> {
-        let mut s: Vec<usize> = self.outcome_order.clone();
-        s.sort_unstable();
-        s
+        self.arrived(0..self.outcome_order.len())
+    }
+
+    /// The units whose outcomes arrived at positions `range` of the
+    /// arrival order, in unit order.
+    fn arrived(&self, range: Range<usize>) -> Vec<usize> {
+        let mut units: Vec<usize> = self
+            .outcome_order
+            .get(range)
+            .unwrap_or_default()
+            .iter()
+            .map(|&u| u as usize)
+            .collect();
+        units.sort_unstable();
+        units
     }
 
     fn all_logged(&self, units: &[usize]) -> bool {
         !units.is_empty() && units.iter().all(|&u| self.propensity[u].is_some())
     }
 
-    /// Full cross-fitted refit on every unit with an outcome.
+    /// Full cross-fitted refit on `scorable`: the units of the first
+    /// outcomes to arrive (all of them, or those of a recorded fit), in unit
+    /// order; so the last outcome sequence number the fit used is their
+    /// count minus one.
     fn refit(&self, scorable: &[usize]) -> Result<(NuisanceState, usize), EstimateError> {
         let logged = self.all_logged(scorable);
         let table = self.table(scorable, logged)?;
@@ -221,11 +236,7 @@ impl Frame {
         for (i, &u) in scorable.iter().enumerate() {
             all[u] = [values.propensity[i], values.mu0[i], values.mu1[i]];
         }
-        let last_outcome_seq = scorable
-            .iter()
-            .map(|&u| self.outcome_seq[u])
-            .max()
-            .unwrap_or(-1);
+        let last_outcome_seq = scorable.len() as i64 - 1;
         Ok((
             NuisanceState {
                 fitted: Arc::new(fitted),
@@ -324,18 +335,16 @@ impl Frame {
             cumulative.clone(),
         ));
         // Recent: the last N outcomes and / or the last D days of observations.
-        let mut recent: Vec<usize> = self.outcome_order.clone();
-        if self.spec.recent_last_outcomes > 0 {
-            let n = self.spec.recent_last_outcomes as usize;
-            if recent.len() > n {
-                recent.drain(..recent.len() - n);
-            }
-        }
+        let outcomes = self.outcome_order.len();
+        let n = match self.spec.recent_last_outcomes {
+            0 => outcomes,
+            n => outcomes.min(n as usize),
+        };
+        let mut recent = self.arrived(outcomes - n..outcomes);
         if self.spec.recent_last_days > 0 {
             let since = self.now_ms - i64::from(self.spec.recent_last_days) * 86_400_000;
             recent.retain(|&u| self.observed_at_ms[u] == 0 || self.observed_at_ms[u] >= since);
         }
-        recent.sort_unstable();
         out.push((
             "recent".to_string(),
             pb::Window {
@@ -511,8 +520,10 @@ impl Frame {
         mut memo: CumulativeMemo,
         nuisance: &NuisanceState,
     ) -> Option<(WindowResult, CumulativeMemo)> {
-        let mut new: Vec<usize> = self.outcome_order.get(memo.outcomes..)?.to_vec();
-        new.sort_unstable();
+        if memo.outcomes > self.outcome_order.len() {
+            return None;
+        }
+        let new = self.arrived(memo.outcomes..self.outcome_order.len());
         for (c, added) in memo.covered.iter_mut().zip(self.coverage(&new)) {
             *c += added;
         }
@@ -744,9 +755,8 @@ mod tests {
             cohort: (0..units).map(|i| (i / 1000) as u32).collect(),
             cohort_names: (0..cohorts).map(|c| format!("c{c}")).collect(),
             outcome: data.outcome[..units].iter().map(|&y| Some(y)).collect(),
-            outcome_seq: (0..units as i64).collect(),
             observed_at_ms: Stamps::zeros(units),
-            outcome_order: (0..units).collect(),
+            outcome_order: (0..units as u32).collect(),
             models: models
                 .iter()
                 .map(|m| {
