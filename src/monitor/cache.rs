@@ -4,7 +4,7 @@
 
 use std::collections::HashMap;
 use std::hash::{BuildHasher, RandomState};
-use std::ops::{Index, IndexMut};
+use std::ops::{Index, IndexMut, Range};
 use std::sync::Arc;
 
 use hashbrown::HashTable;
@@ -95,6 +95,16 @@ impl<T: Clone> Shared<T> {
 
     pub fn get(&self, i: usize) -> Option<&T> {
         (i < self.rows).then(|| &self[i])
+    }
+
+    /// The values of rows `range` (those that exist) of a column of width
+    /// one.
+    pub fn values(&self, range: Range<usize>) -> impl Iterator<Item = &T> {
+        self.chunks
+            .iter()
+            .flat_map(|c| c.iter())
+            .skip(range.start)
+            .take(range.len())
     }
 }
 
@@ -263,29 +273,97 @@ impl ModelColumn {
     }
 }
 
+/// The per-unit columns a recompute reads, in unit order. Every column is
+/// chunked and shared, so a recompute's copy costs a pointer per 8,192 rows
+/// and the cache copies a chunk only when it writes to one a recompute
+/// still holds.
 #[derive(Debug, Clone)]
-pub struct DatasetCache {
-    pub features_per_unit: usize,
-    /// Every unit's key; look units up with [`DatasetCache::unit_of`].
-    keys: UnitKeys,
+pub struct Columns {
     /// One row of features per unit.
     pub features: Shared<f64>,
-    pub treatment: Vec<u8>,
-    pub propensity: Vec<Option<f64>>,
-    pub cohort: Vec<u32>,
-    pub cohort_names: Vec<String>,
-    pub cohort_index: HashMap<String, u32>,
-    /// When each unit was assigned (0: not stamped); read only to tell a
-    /// re-sent unit from a conflicting one.
-    pub assigned_at_ms: Stamps,
-    pub outcome: Vec<Option<f64>>,
+    pub treatment: Shared<u8>,
+    /// The logged probability of treatment, where the unit came with one.
+    pub propensity: Shared<Option<f64>>,
+    /// Index into the dataset's cohort names.
+    pub cohort: Shared<u32>,
+    pub outcome: Shared<Option<f64>>,
     /// When each outcome was observed (0: not stamped or no outcome).
     pub observed_at_ms: Stamps,
     /// Units with an outcome, in outcome arrival order. An outcome's
     /// sequence number is its position here: intake numbers new outcomes
     /// from [`DatasetCache::next_outcome_seq`] and the store returns them
     /// by sequence number.
-    pub outcome_order: Vec<u32>,
+    pub outcome_order: Shared<u32>,
+}
+
+impl Columns {
+    pub fn new(features_per_unit: usize) -> Self {
+        Self {
+            features: Shared::new(features_per_unit),
+            treatment: Shared::new(1),
+            propensity: Shared::new(1),
+            cohort: Shared::new(1),
+            outcome: Shared::new(1),
+            observed_at_ms: Stamps::default(),
+            outcome_order: Shared::new(1),
+        }
+    }
+
+    pub fn units(&self) -> usize {
+        self.treatment.len()
+    }
+
+    pub fn outcomes(&self) -> usize {
+        self.outcome_order.len()
+    }
+
+    /// Appends a unit, without an outcome.
+    pub fn push_unit(
+        &mut self,
+        features: &[f64],
+        treatment: u8,
+        propensity: Option<f64>,
+        cohort: u32,
+    ) {
+        self.features.push_row(features);
+        self.treatment.push(treatment);
+        self.propensity.push(propensity);
+        self.cohort.push(cohort);
+        self.outcome.push(None);
+        self.observed_at_ms.push(0);
+    }
+
+    /// Records unit `u`'s outcome as the next to arrive.
+    pub fn add_outcome(&mut self, u: usize, value: f64, observed_at_ms: i64) {
+        self.outcome[u] = Some(value);
+        self.observed_at_ms.set(u, observed_at_ms);
+        self.outcome_order.push(u as u32);
+    }
+
+    /// The units whose outcomes arrived at positions `range` of the
+    /// arrival order, in unit order.
+    pub fn arrived(&self, range: Range<usize>) -> Vec<usize> {
+        let mut units: Vec<usize> = self
+            .outcome_order
+            .values(range)
+            .map(|&u| u as usize)
+            .collect();
+        units.sort_unstable();
+        units
+    }
+}
+
+#[derive(Debug, Clone)]
+pub struct DatasetCache {
+    pub features_per_unit: usize,
+    /// Every unit's key; look units up with [`DatasetCache::unit_of`].
+    keys: UnitKeys,
+    pub columns: Columns,
+    pub cohort_names: Vec<String>,
+    pub cohort_index: HashMap<String, u32>,
+    /// When each unit was assigned (0: not stamped); read only to tell a
+    /// re-sent unit from a conflicting one.
+    pub assigned_at_ms: Stamps,
     pub models: Vec<ModelColumn>,
     pub model_index: HashMap<String, usize>,
     /// Bumped whenever a unit that already has an outcome gets a prediction
@@ -299,16 +377,10 @@ impl DatasetCache {
         Self {
             features_per_unit,
             keys: UnitKeys::default(),
-            features: Shared::new(features_per_unit),
-            treatment: Vec::new(),
-            propensity: Vec::new(),
-            cohort: Vec::new(),
+            columns: Columns::new(features_per_unit),
             cohort_names: Vec::new(),
             cohort_index: HashMap::new(),
             assigned_at_ms: Stamps::default(),
-            outcome: Vec::new(),
-            observed_at_ms: Stamps::default(),
-            outcome_order: Vec::new(),
             models: Vec::new(),
             model_index: HashMap::new(),
             revision: 0,
@@ -316,7 +388,7 @@ impl DatasetCache {
     }
 
     pub fn units(&self) -> usize {
-        self.treatment.len()
+        self.columns.units()
     }
 
     /// The unit with this key, if it has been sent.
@@ -325,7 +397,7 @@ impl DatasetCache {
     }
 
     pub fn outcomes(&self) -> usize {
-        self.outcome_order.len()
+        self.columns.outcomes()
     }
 
     pub fn predictions(&self) -> u64 {
@@ -333,16 +405,12 @@ impl DatasetCache {
     }
 
     pub fn unit_features(&self, unit: usize) -> &[f64] {
-        self.features.row(unit)
+        self.columns.features.row(unit)
     }
 
     pub fn add_unit(&mut self, u: &UnitRecord) {
-        let idx = self.units();
-        debug_assert_eq!(u.seq as usize, idx);
+        debug_assert_eq!(u.seq as usize, self.units());
         self.keys.push(&u.key);
-        self.features.push_row(&u.features);
-        self.treatment.push(u.treatment);
-        self.propensity.push(u.propensity);
         let cohort = match self.cohort_index.get(&u.cohort) {
             Some(&c) => c,
             None => {
@@ -352,10 +420,9 @@ impl DatasetCache {
                 c
             }
         };
-        self.cohort.push(cohort);
+        self.columns
+            .push_unit(&u.features, u.treatment, u.propensity, cohort);
         self.assigned_at_ms.push(u.assigned_at_ms);
-        self.outcome.push(None);
-        self.observed_at_ms.push(0);
         for m in &mut self.models {
             m.effects.push(f64::NAN);
             m.predicted_at_ms.push(0);
@@ -363,11 +430,9 @@ impl DatasetCache {
     }
 
     pub fn add_outcome(&mut self, o: &OutcomeRecord) {
-        let u = o.unit_seq as usize;
-        self.outcome[u] = Some(o.value);
         debug_assert_eq!(o.seq, self.next_outcome_seq());
-        self.observed_at_ms.set(u, o.observed_at_ms);
-        self.outcome_order.push(u as u32);
+        self.columns
+            .add_outcome(o.unit_seq as usize, o.value, o.observed_at_ms);
     }
 
     pub fn add_model(&mut self, model: StoredModel) {
@@ -389,14 +454,14 @@ impl DatasetCache {
         }
         col.effects[u] = p.effect;
         col.predicted_at_ms.set(u, p.predicted_at_ms);
-        if self.outcome[u].is_some() {
+        if self.columns.outcome[u].is_some() {
             self.revision += 1;
         }
     }
 
     /// Next outcome sequence number.
     pub fn next_outcome_seq(&self) -> i64 {
-        self.outcome_order.len() as i64
+        self.outcomes() as i64
     }
 }
 
@@ -419,6 +484,24 @@ mod tests {
             assert!((0..=rows).all(|i| filled[i] == pushed[i]));
             assert_eq!(filled.chunks.len(), pushed.chunks.len());
         }
+    }
+
+    #[test]
+    fn values_of_a_range_cross_chunks_and_stop_at_the_end() {
+        let rows = 2 * CHUNK_ROWS + 3;
+        let mut col = Shared::new(1);
+        for i in 0..rows as u32 {
+            col.push(i);
+        }
+        let got: Vec<u32> = col
+            .values(CHUNK_ROWS - 2..CHUNK_ROWS + 3)
+            .copied()
+            .collect();
+        let want: Vec<u32> = (CHUNK_ROWS as u32 - 2..CHUNK_ROWS as u32 + 3).collect();
+        assert_eq!(got, want);
+        assert_eq!(col.values(rows - 1..rows + 5).count(), 1);
+        assert_eq!(col.values(rows + 1..rows + 5).count(), 0);
+        assert_eq!(col.values(0..rows).count(), rows);
     }
 
     #[test]
