@@ -282,11 +282,15 @@ pub struct Columns {
     /// One row of features per unit.
     pub features: Shared<f64>,
     pub treatment: Shared<u8>,
-    /// The logged probability of treatment, where the unit came with one.
-    pub propensity: Shared<Option<f64>>,
+    /// The logged probability of treatment; NaN where the unit came
+    /// without one (intake admits only values in (0, 1)). Read it through
+    /// [`Columns::propensity_of`].
+    propensity: Shared<f64>,
     /// Index into the dataset's cohort names.
     pub cohort: Shared<u32>,
-    pub outcome: Shared<Option<f64>>,
+    /// NaN until the unit's outcome arrives (intake admits only finite
+    /// outcomes). Read it through [`Columns::outcome_of`].
+    outcome: Shared<f64>,
     /// When each outcome was observed (0: not stamped or no outcome).
     pub observed_at_ms: Stamps,
     /// Units with an outcome, in outcome arrival order. An outcome's
@@ -317,6 +321,16 @@ impl Columns {
         self.outcome_order.len()
     }
 
+    /// Unit `u`'s logged propensity, if it came with one.
+    pub fn propensity_of(&self, u: usize) -> Option<f64> {
+        Some(self.propensity[u]).filter(|p| !p.is_nan())
+    }
+
+    /// Unit `u`'s outcome, once it has arrived.
+    pub fn outcome_of(&self, u: usize) -> Option<f64> {
+        Some(self.outcome[u]).filter(|y| !y.is_nan())
+    }
+
     /// Appends a unit, without an outcome.
     pub fn push_unit(
         &mut self,
@@ -325,17 +339,19 @@ impl Columns {
         propensity: Option<f64>,
         cohort: u32,
     ) {
+        debug_assert!(propensity.is_none_or(|p| p > 0.0 && p < 1.0));
         self.features.push_row(features);
         self.treatment.push(treatment);
-        self.propensity.push(propensity);
+        self.propensity.push(propensity.unwrap_or(f64::NAN));
         self.cohort.push(cohort);
-        self.outcome.push(None);
+        self.outcome.push(f64::NAN);
         self.observed_at_ms.push(0);
     }
 
     /// Records unit `u`'s outcome as the next to arrive.
     pub fn add_outcome(&mut self, u: usize, value: f64, observed_at_ms: i64) {
-        self.outcome[u] = Some(value);
+        debug_assert!(value.is_finite());
+        self.outcome[u] = value;
         self.observed_at_ms.set(u, observed_at_ms);
         self.outcome_order.push(u as u32);
     }
@@ -454,7 +470,7 @@ impl DatasetCache {
         }
         col.effects[u] = p.effect;
         col.predicted_at_ms.set(u, p.predicted_at_ms);
-        if self.columns.outcome[u].is_some() {
+        if self.columns.outcome_of(u).is_some() {
             self.revision += 1;
         }
     }

@@ -238,7 +238,7 @@ pub fn check_units(
             if same(
                 cache.unit_features(u),
                 cache.columns.treatment[u],
-                cache.columns.propensity[u],
+                cache.columns.propensity_of(u),
                 cohort,
                 cache.assigned_at_ms[u],
             ) {
@@ -332,7 +332,7 @@ pub fn check_outcomes(
             );
             continue;
         };
-        if let Some(v) = cache.columns.outcome[u] {
+        if let Some(v) = cache.columns.outcome_of(u) {
             if v.to_bits() == r.value.to_bits()
                 && cache.columns.observed_at_ms[u] == r.observed_at_ms
             {
@@ -477,7 +477,7 @@ pub fn check_predictions(
             }
             continue;
         }
-        if cache.columns.outcome[u].is_some() {
+        if cache.columns.outcome_of(u).is_some() {
             let observed = cache.columns.observed_at_ms[u];
             let backfill = r.predicted_at_ms > 0 && observed > 0 && r.predicted_at_ms < observed;
             if !backfill {

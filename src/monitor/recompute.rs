@@ -172,7 +172,7 @@ impl Frame {
         let logged = if with_logged {
             units
                 .iter()
-                .map(|&u| self.columns.propensity[u])
+                .map(|&u| self.columns.propensity_of(u))
                 .collect::<Option<Vec<f64>>>()
         } else {
             None
@@ -185,7 +185,7 @@ impl Frame {
                 .collect(),
             units
                 .iter()
-                .map(|&u| self.columns.outcome[u].unwrap_or(0.0))
+                .map(|&u| self.columns.outcome_of(u).unwrap_or(0.0))
                 .collect(),
             logged,
             self.spec.outcome_kind,
@@ -198,7 +198,10 @@ impl Frame {
     }
 
     fn all_logged(&self, units: &[usize]) -> bool {
-        !units.is_empty() && units.iter().all(|&u| self.columns.propensity[u].is_some())
+        !units.is_empty()
+            && units
+                .iter()
+                .all(|&u| self.columns.propensity_of(u).is_some())
     }
 
     /// Full cross-fitted refit on `scorable`: the units of the first
@@ -246,7 +249,7 @@ impl Frame {
         if !new.is_empty() {
             let x = self.rows(&new);
             let logged: Option<Vec<f64>> = if state.logged {
-                new.iter().map(|&u| self.columns.propensity[u]).collect()
+                new.iter().map(|&u| self.columns.propensity_of(u)).collect()
             } else {
                 None
             };
@@ -412,8 +415,8 @@ impl Frame {
                 n - treated
             ));
         }
-        let first = self.columns.outcome[common[0]];
-        if common.iter().all(|&u| self.columns.outcome[u] == first) {
+        let first = self.columns.outcome_of(common[0]);
+        if common.iter().all(|&u| self.columns.outcome_of(u) == first) {
             return Some("constant outcome: every outcome in the window is equal".into());
         }
         None
