@@ -16,10 +16,10 @@ const CHUNK_ROWS: usize = 8192;
 
 /// An append-only column of rows of `width` values, kept in chunks that
 /// recompute jobs share instead of copying: a clone costs one pointer per
-/// 8,192 rows. A chunk is copied only when it is written (a new row, or a
-/// prediction for a stored unit) while a job still holds it, so a writer
-/// pays for at most one chunk per write and a recompute never copies the
-/// history.
+/// 8,192 rows. A chunk is copied only when it is written (a new row, or an
+/// outcome or prediction for a stored unit) while a job still holds it, so
+/// a writer pays for at most one chunk per write and a recompute never
+/// copies the history.
 #[derive(Debug, Clone)]
 pub struct Shared<T> {
     width: usize,
