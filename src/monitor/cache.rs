@@ -125,10 +125,11 @@ impl<T: Clone> IndexMut<usize> for Shared<T> {
 
 /// A column of Unix-millisecond stamps, 0 meaning "not stamped", kept in
 /// chunks of 8,192 rows where a chunk without any stamp takes no memory:
-/// many deployments never stamp, and the stamps are read only by the intake
-/// ordering rules and the recent window. A chunk is allocated at the first
-/// nonzero stamp written into it; like [`Shared`]'s, chunks are shared
-/// between clones and copied only when written while shared.
+/// many deployments never stamp, and the stamps are read only by intake's
+/// checks (ordering rules, re-sent rows) and the recent window. A chunk is
+/// allocated at the first nonzero stamp written into it; like [`Shared`]'s,
+/// chunks are shared between clones and copied only when written while
+/// shared.
 #[derive(Debug, Clone, Default)]
 pub struct Stamps {
     rows: usize,
