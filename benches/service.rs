@@ -317,7 +317,10 @@ async fn measure(history: usize) -> Row {
         if board.is_ok() {
             break;
         }
-        assert!(t.elapsed() < Duration::from_secs(1800), "no scoreboard after restart");
+        assert!(
+            t.elapsed() < Duration::from_secs(1800),
+            "no scoreboard after restart"
+        );
         tokio::time::sleep(Duration::from_millis(50)).await;
     }
     let restart_s = t.elapsed().as_secs_f64();

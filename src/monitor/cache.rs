@@ -3,8 +3,11 @@
 //! on ingest. Units are indexed by their sequence number (arrival order).
 
 use std::collections::HashMap;
-use std::ops::{Index, IndexMut};
+use std::hash::{BuildHasher, RandomState};
+use std::ops::{Index, IndexMut, Range};
 use std::sync::Arc;
+
+use hashbrown::HashTable;
 
 use crate::store::{OutcomeRecord, PredictionRecord, StoredModel, UnitRecord};
 
@@ -13,10 +16,10 @@ pub const CHUNK_ROWS: usize = 8192;
 
 /// An append-only column of rows of `width` values, kept in chunks that
 /// recompute jobs share instead of copying: a clone costs one pointer per
-/// 8,192 rows. A chunk is copied only when it is written (a new row, or a
-/// prediction for a stored unit) while a job still holds it, so a writer
-/// pays for at most one chunk per write and a recompute never copies the
-/// history.
+/// 8,192 rows. A chunk is copied only when it is written (a new row, or an
+/// outcome or prediction for a stored unit) while a job still holds it, so
+/// a writer pays for at most one chunk per write and a recompute never
+/// copies the history.
 #[derive(Debug, Clone)]
 pub struct Shared<T> {
     width: usize,
@@ -38,6 +41,20 @@ impl<T: Clone> Shared<T> {
         let mut out = Self::new(width);
         for row in values.chunks_exact(width.max(1)) {
             out.push_row(row);
+        }
+        out
+    }
+
+    /// A column of width one holding `rows` copies of `value`, built chunk
+    /// by chunk.
+    pub fn filled(rows: usize, value: T) -> Self {
+        let mut out = Self::new(1);
+        while out.rows < rows {
+            let n = (rows - out.rows).min(CHUNK_ROWS);
+            let mut chunk = Vec::with_capacity(CHUNK_ROWS);
+            chunk.resize(n, value.clone());
+            out.chunks.push(Arc::new(chunk));
+            out.rows += n;
         }
         out
     }
@@ -84,6 +101,16 @@ impl<T: Clone> Shared<T> {
     pub fn get(&self, i: usize) -> Option<&T> {
         (i < self.rows).then(|| &self[i])
     }
+
+    /// The values of rows `range` (those that exist) of a column of width
+    /// one.
+    pub fn values(&self, range: Range<usize>) -> impl Iterator<Item = &T> {
+        self.chunks
+            .iter()
+            .flat_map(|c| c.iter())
+            .skip(range.start)
+            .take(range.len())
+    }
 }
 
 impl<T> Index<usize> for Shared<T> {
@@ -101,6 +128,125 @@ impl<T: Clone> IndexMut<usize> for Shared<T> {
     }
 }
 
+/// A column of Unix-millisecond stamps, 0 meaning "not stamped", kept in
+/// chunks of 8,192 rows where a chunk without any stamp takes no memory:
+/// many deployments never stamp, and the stamps are read only by intake's
+/// checks (ordering rules, re-sent rows) and the recent window. A chunk is
+/// allocated at the first nonzero stamp written into it; like [`Shared`]'s,
+/// chunks are shared between clones and copied only when written while
+/// shared.
+#[derive(Debug, Clone, Default)]
+pub struct Stamps {
+    rows: usize,
+    /// One entry per chunk of rows; None while every row in it is 0.
+    chunks: Vec<Option<Arc<[i64]>>>,
+}
+
+impl Stamps {
+    /// A column of `rows` unstamped rows.
+    pub fn zeros(rows: usize) -> Self {
+        Self {
+            rows,
+            chunks: vec![None; rows.div_ceil(CHUNK_ROWS)],
+        }
+    }
+
+    pub fn len(&self) -> usize {
+        self.rows
+    }
+
+    pub fn is_empty(&self) -> bool {
+        self.rows == 0
+    }
+
+    pub fn push(&mut self, stamp: i64) {
+        if self.rows % CHUNK_ROWS == 0 {
+            self.chunks.push(None);
+        }
+        self.rows += 1;
+        self.set(self.rows - 1, stamp);
+    }
+
+    /// Sets row `i`, allocating its chunk only for a nonzero stamp.
+    pub fn set(&mut self, i: usize, stamp: i64) {
+        assert!(i < self.rows, "stamp {i} of {}", self.rows);
+        let chunk = &mut self.chunks[i / CHUNK_ROWS];
+        if chunk.is_none() && stamp == 0 {
+            return;
+        }
+        let chunk = chunk.get_or_insert_with(|| vec![0; CHUNK_ROWS].into());
+        Arc::make_mut(chunk)[i % CHUNK_ROWS] = stamp;
+    }
+}
+
+impl Index<usize> for Stamps {
+    type Output = i64;
+
+    fn index(&self, i: usize) -> &i64 {
+        assert!(i < self.rows, "stamp {i} of {}", self.rows);
+        match &self.chunks[i / CHUNK_ROWS] {
+            Some(chunk) => &chunk[i % CHUNK_ROWS],
+            None => &0,
+        }
+    }
+}
+
+/// The units' keys, each stored once: their bytes back to back in one
+/// buffer, and a hash table of unit numbers that hashes and compares the
+/// bytes they point at. A `HashMap<String, usize>` would cost an allocation
+/// and a 32-byte entry per unit; this costs the key's bytes, an 8-byte
+/// offset and a 4-byte table slot.
+#[derive(Debug, Clone, Default)]
+pub struct UnitKeys {
+    /// Every key's bytes, in unit order.
+    bytes: Vec<u8>,
+    /// `ends[u]` is where unit u's key ends in `bytes`; it starts where unit
+    /// u - 1's ends (or at 0).
+    ends: Vec<u64>,
+    /// Unit numbers, hashed by their key's bytes. Keys are unique: intake
+    /// refuses a second unit with a stored key, and the store holds
+    /// (dataset, key) unique. Unit numbers fit in u32 (the scoring memo
+    /// keeps units as u32 too).
+    table: HashTable<u32>,
+    /// Seeded per process, like a std `HashMap`'s: keys come from clients.
+    hasher: RandomState,
+}
+
+impl UnitKeys {
+    fn key<'a>(bytes: &'a [u8], ends: &[u64], unit: usize) -> &'a [u8] {
+        let start = unit.checked_sub(1).map_or(0, |p| ends[p] as usize);
+        &bytes[start..ends[unit] as usize]
+    }
+
+    /// Appends the key of the next unit.
+    pub fn push(&mut self, key: &str) {
+        debug_assert!(u32::try_from(self.ends.len()).is_ok());
+        let unit = self.ends.len() as u32;
+        self.bytes.extend_from_slice(key.as_bytes());
+        self.ends.push(self.bytes.len() as u64);
+        let Self {
+            bytes,
+            ends,
+            table,
+            hasher,
+        } = self;
+        let hash = hasher.hash_one(key.as_bytes());
+        table.insert_unique(hash, unit, |&u| {
+            hasher.hash_one(Self::key(bytes, ends, u as usize))
+        });
+    }
+
+    /// The unit with this key.
+    pub fn unit_of(&self, key: &str) -> Option<usize> {
+        let hash = self.hasher.hash_one(key.as_bytes());
+        self.table
+            .find(hash, |&u| {
+                Self::key(&self.bytes, &self.ends, u as usize) == key.as_bytes()
+            })
+            .map(|&u| u as usize)
+    }
+}
+
 /// One model's predictions, aligned with the units.
 #[derive(Debug, Clone)]
 pub struct ModelColumn {
@@ -108,7 +254,9 @@ pub struct ModelColumn {
     /// Predicted effect per unit; NaN marks "no prediction" (internal only:
     /// never scored, never shown).
     pub effects: Shared<f64>,
-    pub predicted_at_ms: Vec<i64>,
+    /// When each prediction was made (0: not stamped), for the intake
+    /// ordering rules.
+    pub predicted_at_ms: Stamps,
     pub count: u64,
 }
 
@@ -116,8 +264,8 @@ impl ModelColumn {
     pub fn new(model: StoredModel, units: usize) -> Self {
         Self {
             model,
-            effects: Shared::from_rows(1, &vec![f64::NAN; units]),
-            predicted_at_ms: vec![0; units],
+            effects: Shared::filled(units, f64::NAN),
+            predicted_at_ms: Stamps::zeros(units),
             count: 0,
         }
     }
@@ -131,24 +279,113 @@ impl ModelColumn {
     }
 }
 
+/// The per-unit columns a recompute reads, in unit order. Every column is
+/// chunked and shared, so a recompute's copy costs a pointer per 8,192 rows
+/// and the cache copies a chunk only when it writes to one a recompute
+/// still holds.
+#[derive(Debug, Clone)]
+pub struct Columns {
+    /// One row of features per unit.
+    pub features: Shared<f64>,
+    pub treatment: Shared<u8>,
+    /// The logged probability of treatment; NaN where the unit came
+    /// without one (intake admits only values in (0, 1)). Read it through
+    /// [`Columns::propensity_of`].
+    propensity: Shared<f64>,
+    /// Index into the dataset's cohort names.
+    pub cohort: Shared<u32>,
+    /// NaN until the unit's outcome arrives (intake admits only finite
+    /// outcomes). Read it through [`Columns::outcome_of`].
+    outcome: Shared<f64>,
+    /// When each outcome was observed (0: not stamped or no outcome).
+    pub observed_at_ms: Stamps,
+    /// Units with an outcome, in outcome arrival order. An outcome's
+    /// sequence number is its position here: intake numbers new outcomes
+    /// from [`DatasetCache::next_outcome_seq`] and the store returns them
+    /// by sequence number.
+    pub outcome_order: Shared<u32>,
+}
+
+impl Columns {
+    pub fn new(features_per_unit: usize) -> Self {
+        Self {
+            features: Shared::new(features_per_unit),
+            treatment: Shared::new(1),
+            propensity: Shared::new(1),
+            cohort: Shared::new(1),
+            outcome: Shared::new(1),
+            observed_at_ms: Stamps::default(),
+            outcome_order: Shared::new(1),
+        }
+    }
+
+    pub fn units(&self) -> usize {
+        self.treatment.len()
+    }
+
+    pub fn outcomes(&self) -> usize {
+        self.outcome_order.len()
+    }
+
+    /// Unit `u`'s logged propensity, if it came with one.
+    pub fn propensity_of(&self, u: usize) -> Option<f64> {
+        Some(self.propensity[u]).filter(|p| !p.is_nan())
+    }
+
+    /// Unit `u`'s outcome, once it has arrived.
+    pub fn outcome_of(&self, u: usize) -> Option<f64> {
+        Some(self.outcome[u]).filter(|y| !y.is_nan())
+    }
+
+    /// Appends a unit, without an outcome.
+    pub fn push_unit(
+        &mut self,
+        features: &[f64],
+        treatment: u8,
+        propensity: Option<f64>,
+        cohort: u32,
+    ) {
+        debug_assert!(propensity.is_none_or(|p| p > 0.0 && p < 1.0));
+        self.features.push_row(features);
+        self.treatment.push(treatment);
+        self.propensity.push(propensity.unwrap_or(f64::NAN));
+        self.cohort.push(cohort);
+        self.outcome.push(f64::NAN);
+        self.observed_at_ms.push(0);
+    }
+
+    /// Records unit `u`'s outcome as the next to arrive.
+    pub fn add_outcome(&mut self, u: usize, value: f64, observed_at_ms: i64) {
+        debug_assert!(value.is_finite());
+        self.outcome[u] = value;
+        self.observed_at_ms.set(u, observed_at_ms);
+        self.outcome_order.push(u as u32);
+    }
+
+    /// The units whose outcomes arrived at positions `range` of the
+    /// arrival order, in unit order.
+    pub fn arrived(&self, range: Range<usize>) -> Vec<usize> {
+        let mut units: Vec<usize> = self
+            .outcome_order
+            .values(range)
+            .map(|&u| u as usize)
+            .collect();
+        units.sort_unstable();
+        units
+    }
+}
+
 #[derive(Debug, Clone)]
 pub struct DatasetCache {
     pub features_per_unit: usize,
-    pub key_to_unit: HashMap<String, usize>,
-    pub keys: Vec<String>,
-    /// One row of features per unit.
-    pub features: Shared<f64>,
-    pub treatment: Vec<u8>,
-    pub propensity: Vec<Option<f64>>,
-    pub cohort: Vec<u32>,
+    /// Every unit's key; look units up with [`DatasetCache::unit_of`].
+    keys: UnitKeys,
+    pub columns: Columns,
     pub cohort_names: Vec<String>,
     pub cohort_index: HashMap<String, u32>,
-    pub assigned_at_ms: Vec<i64>,
-    pub outcome: Vec<Option<f64>>,
-    pub outcome_seq: Vec<i64>,
-    pub observed_at_ms: Vec<i64>,
-    /// Units with an outcome, in outcome arrival order.
-    pub outcome_order: Vec<usize>,
+    /// When each unit was assigned (0: not stamped); read only to tell a
+    /// re-sent unit from a conflicting one.
+    pub assigned_at_ms: Stamps,
     pub models: Vec<ModelColumn>,
     pub model_index: HashMap<String, usize>,
     /// Bumped whenever a unit that already has an outcome gets a prediction
@@ -161,19 +398,11 @@ impl DatasetCache {
     pub fn new(features_per_unit: usize) -> Self {
         Self {
             features_per_unit,
-            key_to_unit: HashMap::new(),
-            keys: Vec::new(),
-            features: Shared::new(features_per_unit),
-            treatment: Vec::new(),
-            propensity: Vec::new(),
-            cohort: Vec::new(),
+            keys: UnitKeys::default(),
+            columns: Columns::new(features_per_unit),
             cohort_names: Vec::new(),
             cohort_index: HashMap::new(),
-            assigned_at_ms: Vec::new(),
-            outcome: Vec::new(),
-            outcome_seq: Vec::new(),
-            observed_at_ms: Vec::new(),
-            outcome_order: Vec::new(),
+            assigned_at_ms: Stamps::default(),
             models: Vec::new(),
             model_index: HashMap::new(),
             revision: 0,
@@ -181,11 +410,16 @@ impl DatasetCache {
     }
 
     pub fn units(&self) -> usize {
-        self.keys.len()
+        self.columns.units()
+    }
+
+    /// The unit with this key, if it has been sent.
+    pub fn unit_of(&self, key: &str) -> Option<usize> {
+        self.keys.unit_of(key)
     }
 
     pub fn outcomes(&self) -> usize {
-        self.outcome_order.len()
+        self.columns.outcomes()
     }
 
     pub fn predictions(&self) -> u64 {
@@ -193,17 +427,12 @@ impl DatasetCache {
     }
 
     pub fn unit_features(&self, unit: usize) -> &[f64] {
-        self.features.row(unit)
+        self.columns.features.row(unit)
     }
 
     pub fn add_unit(&mut self, u: &UnitRecord) {
-        let idx = self.keys.len();
-        debug_assert_eq!(u.seq as usize, idx);
-        self.key_to_unit.insert(u.key.clone(), idx);
-        self.keys.push(u.key.clone());
-        self.features.push_row(&u.features);
-        self.treatment.push(u.treatment);
-        self.propensity.push(u.propensity);
+        debug_assert_eq!(u.seq as usize, self.units());
+        self.keys.push(&u.key);
         let cohort = match self.cohort_index.get(&u.cohort) {
             Some(&c) => c,
             None => {
@@ -213,11 +442,9 @@ impl DatasetCache {
                 c
             }
         };
-        self.cohort.push(cohort);
+        self.columns
+            .push_unit(&u.features, u.treatment, u.propensity, cohort);
         self.assigned_at_ms.push(u.assigned_at_ms);
-        self.outcome.push(None);
-        self.outcome_seq.push(-1);
-        self.observed_at_ms.push(0);
         for m in &mut self.models {
             m.effects.push(f64::NAN);
             m.predicted_at_ms.push(0);
@@ -225,11 +452,9 @@ impl DatasetCache {
     }
 
     pub fn add_outcome(&mut self, o: &OutcomeRecord) {
-        let u = o.unit_seq as usize;
-        self.outcome[u] = Some(o.value);
-        self.outcome_seq[u] = o.seq;
-        self.observed_at_ms[u] = o.observed_at_ms;
-        self.outcome_order.push(u);
+        debug_assert_eq!(o.seq, self.next_outcome_seq());
+        self.columns
+            .add_outcome(o.unit_seq as usize, o.value, o.observed_at_ms);
     }
 
     pub fn add_model(&mut self, model: StoredModel) {
@@ -250,14 +475,100 @@ impl DatasetCache {
             col.count += 1;
         }
         col.effects[u] = p.effect;
-        col.predicted_at_ms[u] = p.predicted_at_ms;
-        if self.outcome_seq[u] >= 0 {
+        col.predicted_at_ms.set(u, p.predicted_at_ms);
+        if self.columns.outcome_of(u).is_some() {
             self.revision += 1;
         }
     }
 
     /// Next outcome sequence number.
     pub fn next_outcome_seq(&self) -> i64 {
-        self.outcome_order.len() as i64
+        self.outcomes() as i64
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn a_filled_column_grows_like_a_pushed_one() {
+        for rows in [0, 1, CHUNK_ROWS - 1, CHUNK_ROWS, 2 * CHUNK_ROWS + 5] {
+            let mut filled = Shared::filled(rows, 7u32);
+            let mut pushed = Shared::new(1);
+            for _ in 0..rows {
+                pushed.push(7u32);
+            }
+            for col in [&mut filled, &mut pushed] {
+                col.push(9);
+            }
+            assert_eq!(filled.len(), rows + 1);
+            assert!((0..=rows).all(|i| filled[i] == pushed[i]));
+            assert_eq!(filled.chunks.len(), pushed.chunks.len());
+        }
+    }
+
+    #[test]
+    fn values_of_a_range_cross_chunks_and_stop_at_the_end() {
+        let rows = 2 * CHUNK_ROWS + 3;
+        let mut col = Shared::new(1);
+        for i in 0..rows as u32 {
+            col.push(i);
+        }
+        let got: Vec<u32> = col
+            .values(CHUNK_ROWS - 2..CHUNK_ROWS + 3)
+            .copied()
+            .collect();
+        let want: Vec<u32> = (CHUNK_ROWS as u32 - 2..CHUNK_ROWS as u32 + 3).collect();
+        assert_eq!(got, want);
+        assert_eq!(col.values(rows - 1..rows + 5).count(), 1);
+        assert_eq!(col.values(rows + 1..rows + 5).count(), 0);
+        assert_eq!(col.values(0..rows).count(), rows);
+    }
+
+    #[test]
+    fn stamps_read_back_exactly_and_unstamped_chunks_stay_empty() {
+        let rows = 3 * CHUNK_ROWS + 10;
+        let mut stamps = Stamps::default();
+        let mut plain = Vec::new();
+        for i in 0..rows {
+            // Stamps only in the second chunk and the tail.
+            let t = if i / CHUNK_ROWS == 1 || i >= 3 * CHUNK_ROWS {
+                (i as i64) * 1_000 + 1
+            } else {
+                0
+            };
+            stamps.push(t);
+            plain.push(t);
+        }
+        let shared = stamps.clone();
+        stamps.set(5, i64::MAX);
+        stamps.set(CHUNK_ROWS + 1, 0);
+        stamps.set(2 * CHUNK_ROWS, 0);
+        plain[5] = i64::MAX;
+        plain[CHUNK_ROWS + 1] = 0;
+        let held: Vec<bool> = stamps.chunks.iter().map(Option::is_some).collect();
+        assert_eq!(held, [true, true, false, true]);
+        assert!((0..rows).all(|i| stamps[i] == plain[i]));
+        // The clone kept its own values.
+        assert_eq!(shared[5], 0);
+        assert_eq!(shared[CHUNK_ROWS + 1], (CHUNK_ROWS as i64 + 1) * 1_000 + 1);
+        assert_eq!(Stamps::zeros(rows).chunks.len(), held.len());
+    }
+
+    #[test]
+    fn keys_find_their_units_through_table_growth() {
+        let mut keys = UnitKeys::default();
+        let names: Vec<String> = (0..20_000).map(|i| format!("k{i}")).collect();
+        for k in &names {
+            keys.push(k);
+        }
+        for (u, k) in names.iter().enumerate() {
+            assert_eq!(keys.unit_of(k), Some(u));
+        }
+        // Keys that are prefixes or extensions of stored ones are other keys.
+        for k in ["k", "k1000x", "k00", "", "x"] {
+            assert_eq!(keys.unit_of(k), None, "{k:?}");
+        }
     }
 }

@@ -233,12 +233,12 @@ pub fn check_units(
                     && cohort == r.cohort
                     && at == r.assigned_at_ms
             };
-        if let Some(&u) = cache.key_to_unit.get(&r.key) {
-            let cohort = &cache.cohort_names[cache.cohort[u] as usize];
+        if let Some(u) = cache.unit_of(&r.key) {
+            let cohort = &cache.cohort_names[cache.columns.cohort[u] as usize];
             if same(
                 cache.unit_features(u),
-                cache.treatment[u],
-                cache.propensity[u],
+                cache.columns.treatment[u],
+                cache.columns.propensity_of(u),
                 cohort,
                 cache.assigned_at_ms[u],
             ) {
@@ -323,7 +323,7 @@ pub fn check_outcomes(
         if f.0.len() > before {
             continue;
         }
-        let Some(&u) = cache.key_to_unit.get(&r.unit_key) else {
+        let Some(u) = cache.unit_of(&r.unit_key) else {
             f.add(
                 i,
                 "unit_key",
@@ -332,8 +332,10 @@ pub fn check_outcomes(
             );
             continue;
         };
-        if let Some(v) = cache.outcome[u] {
-            if v.to_bits() == r.value.to_bits() && cache.observed_at_ms[u] == r.observed_at_ms {
+        if let Some(v) = cache.columns.outcome_of(u) {
+            if v.to_bits() == r.value.to_bits()
+                && cache.columns.observed_at_ms[u] == r.observed_at_ms
+            {
                 out.duplicate += 1;
             } else {
                 f.add(
@@ -434,7 +436,7 @@ pub fn check_predictions(
             );
             continue;
         }
-        let Some(&u) = cache.key_to_unit.get(&r.unit_key) else {
+        let Some(u) = cache.unit_of(&r.unit_key) else {
             f.add(
                 i,
                 "unit_key",
@@ -475,8 +477,8 @@ pub fn check_predictions(
             }
             continue;
         }
-        if cache.outcome[u].is_some() {
-            let observed = cache.observed_at_ms[u];
+        if cache.columns.outcome_of(u).is_some() {
+            let observed = cache.columns.observed_at_ms[u];
             let backfill = r.predicted_at_ms > 0 && observed > 0 && r.predicted_at_ms < observed;
             if !backfill {
                 let why = if r.predicted_at_ms > 0 && observed > 0 {

@@ -128,16 +128,8 @@ impl DatasetState {
         let c = &self.cache;
         Frame {
             spec: self.stored.spec.clone(),
-            features_per_unit: c.features_per_unit,
-            features: c.features.clone(),
-            treatment: c.treatment.clone(),
-            propensity: c.propensity.clone(),
-            cohort: c.cohort.clone(),
+            columns: c.columns.clone(),
             cohort_names: c.cohort_names.clone(),
-            outcome: c.outcome.clone(),
-            outcome_seq: c.outcome_seq.clone(),
-            observed_at_ms: c.observed_at_ms.clone(),
-            outcome_order: c.outcome_order.clone(),
             models: c
                 .models
                 .iter()

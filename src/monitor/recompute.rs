@@ -18,7 +18,7 @@ use std::sync::Arc;
 use ndarray::Array2;
 use rayon::prelude::*;
 
-use super::cache::{Shared, CHUNK_ROWS};
+use super::cache::{Columns, Shared, CHUNK_ROWS};
 use super::spec::DatasetSpec;
 use crate::api::pb;
 use crate::estimate::crossfit::{
@@ -93,20 +93,12 @@ struct CumulativeMemo {
     overlap: OverlapSums,
 }
 
-/// What a recompute reads: the cache's columns, the large ones (features,
-/// predictions) shared chunk by chunk rather than copied.
+/// What a recompute reads: the cache's columns, shared chunk by chunk
+/// rather than copied.
 pub struct Frame {
     pub spec: DatasetSpec,
-    pub features_per_unit: usize,
-    pub features: Shared<f64>,
-    pub treatment: Vec<u8>,
-    pub propensity: Vec<Option<f64>>,
-    pub cohort: Vec<u32>,
+    pub columns: Columns,
     pub cohort_names: Vec<String>,
-    pub outcome: Vec<Option<f64>>,
-    pub outcome_seq: Vec<i64>,
-    pub observed_at_ms: Vec<i64>,
-    pub outcome_order: Vec<usize>,
     /// Active models: name and effects (NaN = missing), in registration order.
     pub models: Vec<(String, Shared<f64>)>,
     /// The cache's revision (see [`ScoringMemo`]).
@@ -119,12 +111,11 @@ impl Frame {
     /// Reproduces a recorded fit: the units whose outcome sequence is at most
     /// `last_outcome_seq`, in unit order, with the dataset's seed.
     pub fn reproduce_fit(&self, last_outcome_seq: i64) -> Result<NuisanceState, EstimateError> {
-        let units: Vec<usize> = self
-            .scorable()
-            .into_iter()
-            .filter(|&u| self.outcome_seq[u] <= last_outcome_seq)
-            .collect();
-        self.refit(&units).map(|(s, _)| s)
+        let outcomes = usize::try_from(last_outcome_seq.saturating_add(1))
+            .unwrap_or(0)
+            .min(self.columns.outcomes());
+        self.refit(&self.columns.arrived(0..outcomes))
+            .map(|(s, _)| s)
     }
 }
 
@@ -172,10 +163,10 @@ fn settings(spec: &DatasetSpec) -> Settings {
 
 impl Frame {
     fn rows(&self, units: &[usize]) -> Array2<f64> {
-        let d = self.features_per_unit;
+        let d = self.columns.features.width();
         let mut out = Vec::with_capacity(units.len() * d);
         for &u in units {
-            out.extend_from_slice(self.features.row(u));
+            out.extend_from_slice(self.columns.features.row(u));
         }
         Array2::from_shape_vec((units.len(), d), out).unwrap_or_else(|_| Array2::zeros((0, d)))
     }
@@ -183,9 +174,9 @@ impl Frame {
     /// The features of `units`, read where the cache keeps them.
     fn features<'a>(&'a self, units: &'a [usize]) -> FeatureRows<'a> {
         FeatureRows::chunked(
-            self.features.chunks(),
+            self.columns.features.chunks(),
             CHUNK_ROWS,
-            self.features_per_unit,
+            self.columns.features.width(),
             units,
         )
     }
@@ -197,7 +188,7 @@ impl Frame {
         let logged = if with_logged {
             units
                 .iter()
-                .map(|&u| self.propensity[u])
+                .map(|&u| self.columns.propensity_of(u))
                 .collect::<Option<Vec<f64>>>()
         } else {
             None
@@ -206,11 +197,11 @@ impl Frame {
             Array2::zeros((units.len(), 0)),
             units
                 .iter()
-                .map(|&u| f64::from(self.treatment[u]))
+                .map(|&u| f64::from(self.columns.treatment[u]))
                 .collect(),
             units
                 .iter()
-                .map(|&u| self.outcome[u].unwrap_or(0.0))
+                .map(|&u| self.columns.outcome_of(u).unwrap_or(0.0))
                 .collect(),
             logged,
             self.spec.outcome_kind,
@@ -219,16 +210,20 @@ impl Frame {
 
     /// Units with outcomes, in unit order.
     fn scorable(&self) -> Vec<usize> {
-        let mut s: Vec<usize> = self.outcome_order.clone();
-        s.sort_unstable();
-        s
+        self.columns.arrived(0..self.columns.outcomes())
     }
 
     fn all_logged(&self, units: &[usize]) -> bool {
-        !units.is_empty() && units.iter().all(|&u| self.propensity[u].is_some())
+        !units.is_empty()
+            && units
+                .iter()
+                .all(|&u| self.columns.propensity_of(u).is_some())
     }
 
-    /// Full cross-fitted refit on every unit with an outcome.
+    /// Full cross-fitted refit on `scorable`: the units of the first
+    /// outcomes to arrive (all of them, or those of a recorded fit), in unit
+    /// order; so the last outcome sequence number the fit used is their
+    /// count minus one.
     fn refit(&self, scorable: &[usize]) -> Result<(NuisanceState, usize), EstimateError> {
         let logged = self.all_logged(scorable);
         let table = self.table(scorable, logged)?;
@@ -237,15 +232,11 @@ impl Frame {
             self.features(scorable),
             &settings(&self.spec).nuisance,
         )?;
-        let mut all = vec![[f64::NAN; 3]; self.treatment.len()];
+        let mut all = vec![[f64::NAN; 3]; self.columns.units()];
         for (i, &u) in scorable.iter().enumerate() {
             all[u] = [values.propensity[i], values.mu0[i], values.mu1[i]];
         }
-        let last_outcome_seq = scorable
-            .iter()
-            .map(|&u| self.outcome_seq[u])
-            .max()
-            .unwrap_or(-1);
+        let last_outcome_seq = scorable.len() as i64 - 1;
         Ok((
             NuisanceState {
                 fitted: Arc::new(fitted),
@@ -269,7 +260,7 @@ impl Frame {
         scorable: &[usize],
     ) -> Result<(NuisanceState, usize), EstimateError> {
         let mut values: Vec<[f64; 3]> = state.values.as_ref().clone();
-        values.resize(self.treatment.len(), [f64::NAN; 3]);
+        values.resize(self.columns.units(), [f64::NAN; 3]);
         let new: Vec<usize> = scorable
             .iter()
             .copied()
@@ -278,7 +269,7 @@ impl Frame {
         if !new.is_empty() {
             let x = self.rows(&new);
             let logged: Option<Vec<f64>> = if state.logged {
-                new.iter().map(|&u| self.propensity[u]).collect()
+                new.iter().map(|&u| self.columns.propensity_of(u)).collect()
             } else {
                 None
             };
@@ -344,18 +335,18 @@ impl Frame {
             cumulative.clone(),
         ));
         // Recent: the last N outcomes and / or the last D days of observations.
-        let mut recent: Vec<usize> = self.outcome_order.clone();
-        if self.spec.recent_last_outcomes > 0 {
-            let n = self.spec.recent_last_outcomes as usize;
-            if recent.len() > n {
-                recent.drain(..recent.len() - n);
-            }
-        }
+        let outcomes = self.columns.outcomes();
+        let n = match self.spec.recent_last_outcomes {
+            0 => outcomes,
+            n => outcomes.min(n as usize),
+        };
+        let mut recent = self.columns.arrived(outcomes - n..outcomes);
         if self.spec.recent_last_days > 0 {
             let since = self.now_ms - i64::from(self.spec.recent_last_days) * 86_400_000;
-            recent.retain(|&u| self.observed_at_ms[u] == 0 || self.observed_at_ms[u] >= since);
+            recent.retain(|&u| {
+                self.columns.observed_at_ms[u] == 0 || self.columns.observed_at_ms[u] >= since
+            });
         }
-        recent.sort_unstable();
         out.push((
             "recent".to_string(),
             pb::Window {
@@ -366,7 +357,7 @@ impl Frame {
         ));
         let mut by_cohort: Vec<Vec<usize>> = vec![Vec::new(); self.cohort_names.len()];
         for &u in &cumulative {
-            by_cohort[self.cohort[u] as usize].push(u);
+            by_cohort[self.columns.cohort[u] as usize].push(u);
         }
         for (c, units) in by_cohort.into_iter().enumerate() {
             if units.is_empty() {
@@ -434,15 +425,18 @@ impl Frame {
     /// The named states of a window that cannot be scored.
     fn degenerate(&self, common: &[usize]) -> Option<String> {
         let n = common.len();
-        let treated = common.iter().filter(|&&u| self.treatment[u] == 1).count();
+        let treated = common
+            .iter()
+            .filter(|&&u| self.columns.treatment[u] == 1)
+            .count();
         if treated < 2 || n - treated < 2 {
             return Some(format!(
                 "too few units to score: {treated} treated and {} control units (at least 2 of each)",
                 n - treated
             ));
         }
-        let first = self.outcome[common[0]];
-        if common.iter().all(|&u| self.outcome[u] == first) {
+        let first = self.columns.outcome_of(common[0]);
+        if common.iter().all(|&u| self.columns.outcome_of(u) == first) {
             return Some("constant outcome: every outcome in the window is equal".into());
         }
         None
@@ -495,14 +489,15 @@ impl Frame {
         let memo = keep.then(|| {
             let basis = ConstantBasis::new(scored.board.ate.estimate);
             let effects: Vec<&[f64]> = preds.iter().map(|p| p.effects.as_slice()).collect();
-            let mut overlap = OverlapSums::new(self.features_per_unit, self.spec.overlap_eps);
+            let mut overlap =
+                OverlapSums::new(self.columns.features.width(), self.spec.overlap_eps);
             overlap.add(
                 self.features(&common),
                 table.treatment(),
                 &values.propensity,
             );
             CumulativeMemo {
-                outcomes: self.outcome_order.len(),
+                outcomes: self.columns.outcomes(),
                 covered,
                 ranked: ranked.clone(),
                 units: common.iter().map(|&u| u as u32).collect(),
@@ -536,16 +531,19 @@ impl Frame {
         mut memo: CumulativeMemo,
         nuisance: &NuisanceState,
     ) -> Option<(WindowResult, CumulativeMemo)> {
-        let mut new: Vec<usize> = self.outcome_order.get(memo.outcomes..)?.to_vec();
-        new.sort_unstable();
+        let outcomes = self.columns.outcomes();
+        if memo.outcomes > outcomes {
+            return None;
+        }
+        let new = self.columns.arrived(memo.outcomes..outcomes);
         for (c, added) in memo.covered.iter_mut().zip(self.coverage(&new)) {
             *c += added;
         }
-        let (ranked, incomplete) = self.ranked_models(&memo.covered, self.outcome_order.len());
+        let (ranked, incomplete) = self.ranked_models(&memo.covered, self.columns.outcomes());
         if ranked != memo.ranked {
             return None;
         }
-        memo.outcomes = self.outcome_order.len();
+        memo.outcomes = self.columns.outcomes();
         let fresh = self.common(&new, &ranked, nuisance);
         if !fresh.is_empty() {
             let table = self.table(&fresh, false).ok()?;
@@ -760,21 +758,21 @@ mod tests {
         .normalized()
         .expect("spec");
         let cohorts = 5;
+        let mut columns = Columns::new(D);
+        let features = data.features.as_slice().expect("standard layout");
+        for u in 0..units {
+            columns.push_unit(
+                &features[u * D..(u + 1) * D],
+                data.treatment[u] as u8,
+                None,
+                (u / 1000) as u32,
+            );
+            columns.add_outcome(u, data.outcome[u], 0);
+        }
         Frame {
             spec,
-            features_per_unit: D,
-            features: Shared::from_rows(
-                D,
-                &data.features.as_slice().expect("standard layout")[..units * D],
-            ),
-            treatment: data.treatment[..units].iter().map(|&w| w as u8).collect(),
-            propensity: vec![None; units],
-            cohort: (0..units).map(|i| (i / 1000) as u32).collect(),
+            columns,
             cohort_names: (0..cohorts).map(|c| format!("c{c}")).collect(),
-            outcome: data.outcome[..units].iter().map(|&y| Some(y)).collect(),
-            outcome_seq: (0..units as i64).collect(),
-            observed_at_ms: vec![0; units],
-            outcome_order: (0..units).collect(),
             models: models
                 .iter()
                 .map(|m| {
