@@ -92,7 +92,7 @@ fn quintile_groups(r: &Ranked) -> Vec<GroupAte> {
     let n = r.len();
     // (first position, end position) of each quintile's run.
     let mut runs: [Option<(usize, usize)>; 5] = [None; 5];
-    for &(s, e) in &r.blocks {
+    for (s, e) in r.blocks() {
         // Average ascending rank (1-based): a tie block at descending
         // positions [s, e) holds ascending ranks n - e + 1 ..= n - s.
         let rank = (2 * n - s - e + 1) as f64 / 2.0;

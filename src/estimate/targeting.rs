@@ -89,8 +89,9 @@ pub struct Ranked {
     pub phi: Vec<f64>,
     /// tau_hat[order[k]].
     pub tau: Vec<f64>,
-    /// (start, end) positions of runs of equal predictions.
-    pub blocks: Vec<(usize, usize)>,
+    /// (start, end) positions of runs of equal predictions, as u32: there
+    /// can be as many runs as units.
+    blocks: Vec<(u32, u32)>,
 }
 
 impl Ranked {
@@ -105,10 +106,18 @@ impl Ranked {
             while end < tau.len() && tau[end] == first {
                 end += 1;
             }
-            blocks.push((start, end));
+            blocks.push((start as u32, end as u32));
             start = end;
         }
+        blocks.shrink_to_fit();
         Self { phi, tau, blocks }
+    }
+
+    /// The tie blocks in order, as (start, end) positions.
+    pub fn blocks(
+        &self,
+    ) -> impl DoubleEndedIterator<Item = (usize, usize)> + ExactSizeIterator + '_ {
+        self.blocks.iter().map(|&(s, e)| (s as usize, e as usize))
     }
 
     pub fn len(&self) -> usize {
@@ -136,7 +145,7 @@ fn areas(r: &Ranked, counts: &[u32]) -> (f64, f64) {
         / total;
     let (mut autoc, mut qini) = (0.0, 0.0);
     let (mut pos, mut cum) = (0.0f64, 0.0f64);
-    for &(s, e) in &r.blocks {
+    for (s, e) in r.blocks() {
         let (mut w, mut sum) = (0.0, 0.0);
         for (&c, &p) in counts[s..e].iter().zip(&r.phi[s..e]) {
             w += c as f64;
@@ -188,34 +197,33 @@ const QINI_WEIGHT: RankWeight = RankWeight {
 /// of W); alpha(s) s is taken as 0 at s = 0 and alpha(s_B) is never needed
 /// for the top block (nothing lies above it).
 fn jackknife_se(r: &Ranked, weight: &RankWeight) -> f64 {
-    let (blocks, phi) = (&r.blocks, &r.phi);
+    let phi = &r.phi;
     let n = phi.len();
     if n < 2 {
         return 0.0;
     }
     let nf = n as f64;
-    let means: Vec<f64> = blocks
-        .iter()
-        .map(|&(s, e)| phi[s..e].iter().sum::<f64>() / (e - s) as f64)
+    let means: Vec<f64> = r
+        .blocks()
+        .map(|(s, e)| phi[s..e].iter().sum::<f64>() / (e - s) as f64)
         .collect();
     let mut k = 0.0;
-    for (&(s, e), &mean) in blocks.iter().zip(&means) {
+    for ((s, e), &mean) in r.blocks().zip(&means) {
         let (sv, ev) = (s as f64 / nf, e as f64 / nf);
         let low = if s > 0 { (weight.alpha)(sv) * sv } else { 0.0 };
         k += mean * ((weight.alpha)(ev) * ev - low);
     }
     // below[b]: sum over the blocks after b of mean (alpha(e) - alpha(s)).
-    let mut below = vec![0.0; blocks.len()];
+    let mut below = vec![0.0; means.len()];
     let mut acc = 0.0;
-    for b in (0..blocks.len()).rev() {
+    for (b, (s, e)) in r.blocks().enumerate().rev() {
         below[b] = acc;
-        let (s, e) = blocks[b];
         if s > 0 {
             acc += means[b] * ((weight.alpha)(e as f64 / nf) - (weight.alpha)(s as f64 / nf));
         }
     }
     let mut sum_sq = 0.0;
-    for (b, &(s, e)) in blocks.iter().enumerate() {
+    for (b, (s, e)) in r.blocks().enumerate() {
         let (sv, ev) = (s as f64 / nf, e as f64 / nf);
         let shift = (below[b] + means[b] * (weight.alpha)(ev) - k) / nf;
         let own = ((weight.antiderivative)(ev) - (weight.antiderivative)(sv)) / (e - s) as f64;

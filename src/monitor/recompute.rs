@@ -259,7 +259,10 @@ impl Frame {
         state: &NuisanceState,
         scorable: &[usize],
     ) -> Result<(NuisanceState, usize), EstimateError> {
-        let mut values: Vec<[f64; 3]> = state.values.as_ref().clone();
+        // Sized once: a clone and then a resize would reallocate at twice
+        // the size.
+        let mut values: Vec<[f64; 3]> = Vec::with_capacity(self.columns.units());
+        values.extend_from_slice(&state.values);
         values.resize(self.columns.units(), [f64::NAN; 3]);
         let new: Vec<usize> = scorable
             .iter()
