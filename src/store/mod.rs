@@ -5,9 +5,15 @@
 //! only after it commits. WAL journaling lets readers (history, events) run
 //! beside the single writer. Queries are parameterized; nothing a client
 //! sends is ever spliced into SQL text.
+//!
+//! Commits never copy the WAL back into the database file themselves
+//! (`wal_autocheckpoint = 0`): a background task checkpoints every
+//! [`CHECKPOINT_EVERY`] on a connection of its own, beside the writer, so an
+//! intake batch waits only for its own WAL append and fsync.
 
 use std::path::Path;
 use std::str::FromStr;
+use std::sync::{Arc, Weak};
 use std::time::Duration;
 
 use sqlx::sqlite::{
@@ -153,12 +159,44 @@ pub fn unpack_features(bytes: &[u8]) -> StoreResult<Vec<f64>> {
         .collect())
 }
 
+/// How often the background task copies the WAL into the database file.
+/// Between checkpoints the WAL grows by what was written in the interval
+/// (at full ingest speed, tens of MB).
+pub const CHECKPOINT_EVERY: Duration = Duration::from_millis(500);
+
 /// Rows per multi-row INSERT: SQLite allows 32,766 bound parameters.
 const INSERT_CHUNK: usize = 500;
+
+/// Copies committed WAL frames into the database file every
+/// [`CHECKPOINT_EVERY`] until the pool closes or the last [`Store`] holding
+/// `alive` is dropped. PASSIVE never waits for the
+/// writer or for readers; frames it cannot copy yet are copied next time,
+/// and the writer starts the WAL over once a checkpoint has caught up.
+async fn checkpoints(pool: SqlitePool, alive: Weak<()>) {
+    let mut tick = tokio::time::interval(CHECKPOINT_EVERY);
+    tick.set_missed_tick_behavior(tokio::time::MissedTickBehavior::Delay);
+    loop {
+        tick.tick().await;
+        if pool.is_closed() || alive.strong_count() == 0 {
+            return;
+        }
+        if let Err(e) = sqlx::query("PRAGMA wal_checkpoint(PASSIVE)")
+            .execute(&pool)
+            .await
+        {
+            if pool.is_closed() {
+                return;
+            }
+            tracing::warn!(error = %e, "WAL checkpoint failed; the next one retries");
+        }
+    }
+}
 
 #[derive(Clone)]
 pub struct Store {
     pool: SqlitePool,
+    /// Held by every clone; the checkpoint task stops when the last goes.
+    _alive: Arc<()>,
 }
 
 impl Store {
@@ -173,15 +211,23 @@ impl Store {
                 Durability::Normal => SqliteSynchronous::Normal,
             })
             .foreign_keys(true)
+            .pragma("wal_autocheckpoint", "0")
             .busy_timeout(Duration::from_secs(10));
         let pool = SqlitePoolOptions::new()
             .max_connections(4)
             .connect_with(options)
             .await?;
         sqlx::migrate!("./migrations").run(&pool).await?;
-        Ok(Self { pool })
+        let alive = Arc::new(());
+        tokio::spawn(checkpoints(pool.clone(), Arc::downgrade(&alive)));
+        Ok(Self {
+            pool,
+            _alive: alive,
+        })
     }
 
+    /// Closes the pool; the last connection to close checkpoints the WAL
+    /// into the database file and removes it.
     pub async fn close(&self) {
         self.pool.close().await;
     }
