@@ -93,6 +93,22 @@ impl<T: Clone> Shared<T> {
         self.rows += 1;
     }
 
+    /// Drops every row from `rows` on (copying the last kept chunk if a
+    /// recompute still holds it).
+    pub fn truncate(&mut self, rows: usize) {
+        if rows >= self.rows {
+            return;
+        }
+        self.chunks.truncate(rows.div_ceil(CHUNK_ROWS));
+        let kept = rows % CHUNK_ROWS;
+        if kept > 0 {
+            if let Some(last) = self.chunks.last_mut() {
+                Arc::make_mut(last).truncate(kept * self.width);
+            }
+        }
+        self.rows = rows;
+    }
+
     /// Appends one value to a column of width one.
     pub fn push(&mut self, value: T) {
         self.push_row(std::slice::from_ref(&value));
@@ -167,6 +183,21 @@ impl Stamps {
         self.set(self.rows - 1, stamp);
     }
 
+    /// Drops every row from `rows` on.
+    pub fn truncate(&mut self, rows: usize) {
+        if rows >= self.rows {
+            return;
+        }
+        self.chunks.truncate(rows.div_ceil(CHUNK_ROWS));
+        let kept = rows % CHUNK_ROWS;
+        if kept > 0 {
+            if let Some(Some(last)) = self.chunks.last_mut() {
+                Arc::make_mut(last)[kept..].fill(0);
+            }
+        }
+        self.rows = rows;
+    }
+
     /// Sets row `i`, allocating its chunk only for a nonzero stamp.
     pub fn set(&mut self, i: usize, stamp: i64) {
         assert!(i < self.rows, "stamp {i} of {}", self.rows);
@@ -234,6 +265,27 @@ impl UnitKeys {
         table.insert_unique(hash, unit, |&u| {
             hasher.hash_one(Self::key(bytes, ends, u as usize))
         });
+    }
+
+    /// Forgets the keys of units `units..`, newest first.
+    pub fn truncate(&mut self, units: usize) {
+        while self.ends.len() > units {
+            let unit = self.ends.len() - 1;
+            let Self {
+                bytes,
+                ends,
+                table,
+                hasher,
+            } = self;
+            let key = Self::key(bytes, ends, unit);
+            let hash = hasher.hash_one(key);
+            if let Ok(entry) = table.find_entry(hash, |&u| u as usize == unit) {
+                entry.remove();
+            }
+            let start = unit.checked_sub(1).map_or(0, |p| ends[p] as usize);
+            bytes.truncate(start);
+            ends.pop();
+        }
     }
 
     /// The unit with this key.
@@ -354,6 +406,16 @@ impl Columns {
         self.observed_at_ms.push(0);
     }
 
+    /// Drops units `units..`, which must have no outcomes yet.
+    fn truncate_units(&mut self, units: usize) {
+        self.features.truncate(units);
+        self.treatment.truncate(units);
+        self.propensity.truncate(units);
+        self.cohort.truncate(units);
+        self.outcome.truncate(units);
+        self.observed_at_ms.truncate(units);
+    }
+
     /// Records unit `u`'s outcome as the next to arrive.
     pub fn add_outcome(&mut self, u: usize, value: f64, observed_at_ms: i64) {
         debug_assert!(value.is_finite());
@@ -373,6 +435,13 @@ impl Columns {
         units.sort_unstable();
         units
     }
+}
+
+/// A point in the cache's units to go back to.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct UnitsMark {
+    units: usize,
+    cohorts: usize,
 }
 
 #[derive(Debug, Clone)]
@@ -451,6 +520,33 @@ impl DatasetCache {
         }
     }
 
+    /// Where the units end now; [`DatasetCache::truncate_units`] goes back
+    /// to it.
+    pub fn units_mark(&self) -> UnitsMark {
+        UnitsMark {
+            units: self.units(),
+            cohorts: self.cohort_names.len(),
+        }
+    }
+
+    /// Forgets every unit added since `mark` (and the cohorts they
+    /// introduced): intake adds a batch while the store writes it, and
+    /// undoes the addition if the write fails. The units must have no
+    /// outcomes or predictions yet, which holds while the dataset's lock is
+    /// held from the mark on.
+    pub fn truncate_units(&mut self, mark: UnitsMark) {
+        for name in self.cohort_names.drain(mark.cohorts..) {
+            self.cohort_index.remove(&name);
+        }
+        self.keys.truncate(mark.units);
+        self.columns.truncate_units(mark.units);
+        self.assigned_at_ms.truncate(mark.units);
+        for m in &mut self.models {
+            m.effects.truncate(mark.units);
+            m.predicted_at_ms.truncate(mark.units);
+        }
+    }
+
     pub fn add_outcome(&mut self, o: &OutcomeRecord) {
         debug_assert_eq!(o.seq, self.next_outcome_seq());
         self.columns
@@ -490,6 +586,83 @@ impl DatasetCache {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    fn unit(seq: usize, cohort: &str) -> UnitRecord {
+        UnitRecord {
+            seq: seq as i64,
+            key: format!("unit-{seq}"),
+            features: vec![seq as f64, -(seq as f64)],
+            treatment: (seq % 2) as u8,
+            propensity: (seq % 3 == 0).then_some(0.25),
+            cohort: cohort.into(),
+            assigned_at_ms: if seq % 5 == 0 { 1_000 + seq as i64 } else { 0 },
+        }
+    }
+
+    #[test]
+    fn truncating_units_takes_back_a_batch_and_leaves_held_copies_alone() {
+        let mut cache = DatasetCache::new(2);
+        for id in 0..2 {
+            cache.add_model(StoredModel {
+                id,
+                dataset_id: 1,
+                name: format!("m{id}"),
+                version: "1".into(),
+                description: String::new(),
+                registered_at_ms: 0,
+                retired_at_ms: 0,
+            });
+        }
+        let kept = CHUNK_ROWS + 10;
+        for u in 0..kept {
+            cache.add_unit(&unit(u, "spring"));
+        }
+        let mark = cache.units_mark();
+        for u in kept..kept + 50 {
+            cache.add_unit(&unit(u, if u % 2 == 0 { "spring" } else { "summer" }));
+        }
+        let held = cache.columns.clone();
+        cache.truncate_units(mark);
+
+        assert_eq!(cache.units(), kept);
+        assert_eq!(cache.cohort_names, vec!["spring".to_string()]);
+        assert!(!cache.cohort_index.contains_key("summer"));
+        assert_eq!(cache.unit_of("unit-0"), Some(0));
+        assert_eq!(cache.unit_of(&format!("unit-{}", kept - 1)), Some(kept - 1));
+        assert_eq!(cache.unit_of(&format!("unit-{kept}")), None);
+        assert_eq!(cache.assigned_at_ms.len(), kept);
+        for m in &cache.models {
+            assert_eq!((m.effects.len(), m.predicted_at_ms.len()), (kept, kept));
+        }
+        // The copy a recompute held still has the whole batch.
+        assert_eq!(held.units(), kept + 50);
+        assert_eq!(
+            held.features.row(kept + 49),
+            &[(kept + 49) as f64, -((kept + 49) as f64)]
+        );
+
+        // The same batch goes in again as if for the first time.
+        for u in kept..kept + 50 {
+            cache.add_unit(&unit(u, "summer"));
+        }
+        assert_eq!(cache.units(), kept + 50);
+        assert_eq!(cache.unit_of(&format!("unit-{}", kept + 7)), Some(kept + 7));
+        assert_eq!(
+            cache.unit_features(kept + 7),
+            &[(kept + 7) as f64, -((kept + 7) as f64)]
+        );
+        assert_eq!(
+            cache.columns.propensity_of(kept + 1),
+            unit(kept + 1, "").propensity
+        );
+        let stamped = kept + (5 - kept % 5) % 5;
+        assert_eq!(cache.assigned_at_ms[stamped], 1_000 + stamped as i64);
+        assert_eq!(cache.assigned_at_ms[stamped + 1], 0);
+        assert_eq!(
+            cache.cohort_names,
+            vec!["spring".to_string(), "summer".to_string()]
+        );
+    }
 
     #[test]
     fn a_filled_column_grows_like_a_pushed_one() {

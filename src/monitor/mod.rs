@@ -509,21 +509,37 @@ impl Monitor {
         let mut st = h.state.lock().await;
         let checked = ingest::check_units(&st.cache, rows)
             .map_err(|f| self.refused(dataset, "units", f, rows.len()))?;
-        if !checked.new_rows.is_empty() {
-            self.store
-                .insert_units(h.id, &checked.new_rows, now_ms())
-                .await?;
-            for u in &checked.new_rows {
+        let (duplicate, new_rows) = (checked.duplicate, Arc::new(checked.new_rows));
+        if !new_rows.is_empty() {
+            // The cache takes the batch while the store writes it, on two
+            // threads. Nobody else sees the cache before the commit (the
+            // lock is held throughout), and a failed write takes the batch
+            // back out, so the cache still holds only what is on disk.
+            let mark = st.cache.units_mark();
+            let write = tokio::spawn({
+                let (store, rows, id, at) =
+                    (self.store.clone(), Arc::clone(&new_rows), h.id, now_ms());
+                async move { store.insert_units(id, &rows, at).await }
+            });
+            for u in new_rows.iter() {
                 st.cache.add_unit(u);
+            }
+            let written = match write.await {
+                Ok(r) => r.map_err(MonitorError::from),
+                Err(e) => Err(MonitorError::Internal(format!("unit write: {e}"))),
+            };
+            if let Err(e) = written {
+                st.cache.truncate_units(mark);
+                return Err(e);
             }
         }
         self.update_counts(&st);
         drop(st);
-        self.count_ingest(dataset, "units", "accepted", checked.new_rows.len());
-        self.count_ingest(dataset, "units", "duplicate", checked.duplicate);
+        self.count_ingest(dataset, "units", "accepted", new_rows.len());
+        self.count_ingest(dataset, "units", "duplicate", duplicate);
         Ok(BatchCounts {
-            accepted: checked.new_rows.len(),
-            duplicate: checked.duplicate,
+            accepted: new_rows.len(),
+            duplicate,
         })
     }
 
