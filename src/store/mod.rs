@@ -212,6 +212,11 @@ impl Store {
             })
             .foreign_keys(true)
             .pragma("wal_autocheckpoint", "0")
+            // 16 MiB of page cache per connection (SQLite's default is 2 MiB):
+            // intake inserts into the (dataset, key) index at every batch, and
+            // once the index outgrows the cache each insert rereads pages from
+            // the OS (units/s at 1M units: about 100k with 2 MiB, 140k with 16).
+            .pragma("cache_size", "-16384")
             .busy_timeout(Duration::from_secs(10));
         let pool = SqlitePoolOptions::new()
             .max_connections(4)
