@@ -10,7 +10,9 @@
 //!   incremental recompute that scores it with the current nuisance fit;
 //! - the server's peak resident memory (VmHWM) against the raw columns it
 //!   holds: per unit 20 features and one outcome as f64, the treatment as a
-//!   byte and 10 predictions as f64 (249 bytes);
+//!   byte and 10 predictions as f64 (249 bytes), once before the refit
+//!   (what the cache and the store hold) and once at the end (the refit's
+//!   and the recomputes' working sets on top);
 //! - a restart on the same data directory: the seconds until the cumulative
 //!   scoreboard is served again (the cache rebuilt from SQLite and the fit
 //!   reproduced) and the restarted server's peak memory.
@@ -45,6 +47,7 @@ struct Row {
     refit_s: f64,
     incremental_s: f64,
     incremental_server_ms: f64,
+    intake_peak_mib: f64,
     peak_mib: f64,
     raw_mib: f64,
     restart_s: f64,
@@ -262,6 +265,7 @@ async fn measure(history: usize) -> Row {
         .await
         .expect("outcomes");
 
+    let intake_peak_mib = peak_mib(server.child.id());
     let t = Instant::now();
     let r = scoring
         .recompute(pb::RecomputeRequest {
@@ -331,6 +335,7 @@ async fn measure(history: usize) -> Row {
         refit_s,
         incremental_s,
         incremental_server_ms: r.millis,
+        intake_peak_mib,
         peak_mib: peak,
         raw_mib: (total * RAW_BYTES_PER_UNIT) as f64 / (1024.0 * 1024.0),
         restart_s,
@@ -355,12 +360,13 @@ async fn main() {
         rows.push(row);
     }
     println!(
-        "\n{:>9} | {:>13} | {:>13} | {:>9} | {:>17} | {:>11} | {:>8} | {:>9} | {:>9} | {:>13}",
+        "\n{:>9} | {:>13} | {:>13} | {:>9} | {:>17} | {:>10} | {:>8} | {:>8} | {:>8} | {:>9} | {:>11}",
         "history",
         "units/s",
         "predictions/s",
         "refit s",
         "incremental s (ms)",
+        "intake MiB",
         "peak MiB",
         "raw MiB",
         "peak/raw",
@@ -369,13 +375,14 @@ async fn main() {
     );
     for r in &rows {
         println!(
-            "{:>9} | {:>13.0} | {:>13.0} | {:>9.2} | {:>9.3} ({:>6.0}) | {:>11.0} | {:>8.0} | {:>9.2} | {:>9.2} | {:>13.0}",
+            "{:>9} | {:>13.0} | {:>13.0} | {:>9.2} | {:>9.3} ({:>6.0}) | {:>10.0} | {:>8.0} | {:>8.0} | {:>8.2} | {:>9.2} | {:>11.0}",
             r.units,
             r.ingest_units_per_s,
             r.ingest_predictions_per_s,
             r.refit_s,
             r.incremental_s,
             r.incremental_server_ms,
+            r.intake_peak_mib,
             r.peak_mib,
             r.raw_mib,
             r.peak_mib / r.raw_mib,
@@ -385,7 +392,8 @@ async fn main() {
     }
     println!(
         "(refit: full cross-fitted refit and scoring of the history; incremental: recompute after a \
-{COHORT}-unit cohort with the current fit; raw: {RAW_BYTES_PER_UNIT} bytes per unit; restart: \
+{COHORT}-unit cohort with the current fit; intake MiB: peak before the refit, \
+the cache and the store; raw: {RAW_BYTES_PER_UNIT} bytes per unit; restart: \
 SIGTERM, start on the same data, until the scoreboard is served, and that process's peak)"
     );
 }

@@ -77,6 +77,31 @@ async fn wait_for_signal() {
     }
 }
 
+/// Caps glibc's malloc arenas at the core count (at least 2) before any
+/// thread starts, unless the operator set `MALLOC_ARENA_MAX` or an
+/// `arena_max` tunable. glibc's default allows 8 arenas per core, and the
+/// server's tokio, rayon and SQLite threads each end up in one: memory freed
+/// in one arena is not reused by another, so the recompute peaks of
+/// different threads add up. Measured in BENCHMARKS.md (peak resident
+/// memory at 1M units).
+fn cap_malloc_arenas() {
+    #[cfg(all(target_os = "linux", target_env = "gnu"))]
+    {
+        let set_by_operator = std::env::var_os("MALLOC_ARENA_MAX").is_some()
+            || std::env::var("GLIBC_TUNABLES").is_ok_and(|t| t.contains("arena_max"));
+        if set_by_operator {
+            return;
+        }
+        let cores = std::thread::available_parallelism().map_or(2, |n| n.get().max(2));
+        let cap = libc::c_int::try_from(cores).unwrap_or(libc::c_int::MAX);
+        // SAFETY: mallopt only sets an allocator parameter; it is called
+        // before the runtime starts its threads.
+        unsafe {
+            libc::mallopt(libc::M_ARENA_MAX, cap);
+        }
+    }
+}
+
 pub fn run(args: &ServeArgs) -> ExitCode {
     let config = match config(args) {
         Ok(c) => c,
@@ -86,6 +111,7 @@ pub fn run(args: &ServeArgs) -> ExitCode {
         }
     };
     init_logging(config.log_format, &config.log_level);
+    cap_malloc_arenas();
     let runtime = match tokio::runtime::Builder::new_multi_thread()
         .enable_all()
         .build()
