@@ -100,7 +100,9 @@ struct DatasetState {
     stored: StoredDataset,
     cache: DatasetCache,
     nuisance: Option<NuisanceState>,
-    latest: BTreeMap<String, pb::Scoreboard>,
+    /// The boards of the last recompute, by window; the handle publishes the
+    /// same map to readers.
+    latest: Arc<BTreeMap<String, pb::Scoreboard>>,
     alerts: AlertState,
     /// Outcomes accepted since the last recompute started.
     pending_outcomes: u64,
@@ -151,6 +153,22 @@ pub struct DatasetHandle {
     recompute: Mutex<()>,
     /// Wakes the scheduler when enough outcomes are waiting.
     wake: Notify,
+    /// The latest boards as readers get them: outside `state`, so a
+    /// scoreboard read never queues behind intake batches or a recompute
+    /// holding the dataset's lock. Replaced whole, under `state`'s lock.
+    boards: RwLock<Arc<BTreeMap<String, pb::Scoreboard>>>,
+}
+
+impl DatasetHandle {
+    fn boards(&self) -> Arc<BTreeMap<String, pb::Scoreboard>> {
+        // A poisoned lock still holds a whole map: replacing it is one store.
+        let guard = self.boards.read().unwrap_or_else(|e| e.into_inner());
+        Arc::clone(&guard)
+    }
+
+    fn publish(&self, boards: Arc<BTreeMap<String, pb::Scoreboard>>) {
+        *self.boards.write().unwrap_or_else(|e| e.into_inner()) = boards;
+    }
 }
 
 pub struct Monitor {
@@ -221,7 +239,7 @@ impl Monitor {
                 stored: stored.clone(),
                 cache,
                 nuisance: None,
-                latest: BTreeMap::new(),
+                latest: Arc::default(),
                 alerts: AlertState::default(),
                 pending_outcomes: 0,
             };
@@ -238,11 +256,13 @@ impl Monitor {
                 });
             }
             if let Some((_, boards)) = self.store.latest_boards(stored.id).await? {
+                let mut latest = BTreeMap::new();
                 for (key, bytes) in boards {
                     let board = pb::Scoreboard::decode(bytes.as_slice())
                         .map_err(|e| StoreError::Corrupt(format!("scoreboard {key}: {e}")))?;
-                    state.latest.insert(key, board);
+                    latest.insert(key, board);
                 }
+                state.latest = Arc::new(latest);
             }
             if let Some(recent) = state.latest.get("recent") {
                 state.alerts = AlertState::from_board(recent);
@@ -277,9 +297,10 @@ impl Monitor {
         let handle = Arc::new(DatasetHandle {
             id: state.stored.id,
             name: state.stored.spec.name.clone(),
-            state: Mutex::new(state),
             recompute: Mutex::new(()),
             wake: Notify::new(),
+            boards: RwLock::new(Arc::clone(&state.latest)),
+            state: Mutex::new(state),
         });
         if let Ok(mut map) = self.datasets.write() {
             map.insert(handle.name.clone(), Arc::clone(&handle));
@@ -346,7 +367,7 @@ impl Monitor {
             cache: DatasetCache::new(spec.feature_names.len()),
             stored,
             nuisance: None,
-            latest: BTreeMap::new(),
+            latest: Arc::default(),
             alerts: AlertState::default(),
             pending_outcomes: 0,
         };
@@ -755,7 +776,8 @@ impl Monitor {
                     raised = st.alerts.evaluate(&h.name, "recent", b, overlap);
                 }
             }
-            st.latest = boards.clone();
+            st.latest = Arc::new(boards.clone());
+            h.publish(Arc::clone(&st.latest));
             (raised, previous)
         };
         if let Some(reason) = computed.refit {
@@ -956,13 +978,13 @@ impl Monitor {
 
     pub async fn scoreboard(&self, dataset: &str, window: &str) -> MonitorResult<pb::Scoreboard> {
         let h = self.handle(dataset)?;
-        let st = h.state.lock().await;
-        if st.latest.is_empty() {
+        let boards = h.boards();
+        if boards.is_empty() {
             return Err(MonitorError::FailedPrecondition(format!(
                 "dataset {dataset:?} has not been scored yet: send outcomes or call Recompute"
             )));
         }
-        st.latest
+        boards
             .get(window)
             .cloned()
             .ok_or_else(|| MonitorError::NotFound(format!("no scoreboard for window {window:?}")))
