@@ -12,7 +12,8 @@
 //! outcomes, then a recompute, so that a scoreboard exists; (2) the rest,
 //! streamed by `--clients` concurrent clients, while one task requests a
 //! full refit and then incremental recomputes, and another reads the
-//! cumulative scoreboard in a loop and records each read's latency.
+//! cumulative scoreboard in a loop, on a connection of its own, and records
+//! each read's latency.
 
 use std::net::ToSocketAddrs;
 use std::process::ExitCode;
@@ -358,8 +359,12 @@ async fn drive(args: &LoadtestArgs) -> Result<Report, String> {
             (refit_seconds, count, errors)
         })
     };
+    // The reader has a connection of its own, as a dashboard does: on the
+    // senders' connection each read would queue behind megabytes of intake
+    // frames in the same TCP stream, and measure that instead.
+    let reader_channel = connect(c).await?;
     let reader = {
-        let (c, channel, name) = (c.clone(), channel.clone(), name.clone());
+        let (c, channel, name) = (c.clone(), reader_channel, name.clone());
         let (done, refitting) = (Arc::clone(&done), Arc::clone(&refitting));
         tokio::spawn(async move {
             let mut scoring = pb::scoring_client::ScoringClient::new(channel)
