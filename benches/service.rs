@@ -20,7 +20,9 @@
 //! `cargo bench --bench service` runs n = 10,000 and 100,000 (about two
 //! minutes). `PLUMBLINE_BENCH_SIZES=10000,100000,1000000` adds the 1M run
 //! (several minutes); `PLUMBLINE_BENCH_SIZES=50000,100000,200000,400000`
-//! shows that the incremental recompute stays flat as the history grows.
+//! shows how the incremental recompute grows with the history, and
+//! `PLUMBLINE_BENCH_COHORT=5000` (or 20000, 40000) at one history size how it
+//! grows with the size of the arriving block (default 10,000).
 
 use std::net::TcpListener;
 use std::path::PathBuf;
@@ -34,7 +36,20 @@ use tonic::transport::Channel;
 const FEATURES: usize = 20;
 const BATCH: usize = 1000;
 const MODELS: usize = 10;
+/// Units per cohort label, and the default size of the block of new units
+/// scored by the incremental recompute.
 const COHORT: usize = 10_000;
+
+/// Units added after the refit: `PLUMBLINE_BENCH_COHORT` (default
+/// [`COHORT`]); varying it at a fixed history shows the incremental cost
+/// against the size of what arrived.
+fn arriving() -> usize {
+    std::env::var("PLUMBLINE_BENCH_COHORT")
+        .ok()
+        .and_then(|v| v.parse().ok())
+        .filter(|&n| n > 0)
+        .unwrap_or(COHORT)
+}
 /// Raw bytes per unit: features and outcome as f64, treatment as a byte,
 /// one f64 per model's prediction.
 const RAW_BYTES_PER_UNIT: usize = 8 * FEATURES + 8 + 1 + 8 * MODELS;
@@ -230,7 +245,7 @@ async fn measure(history: usize) -> Row {
         })
         .await
         .expect("create");
-    let total = history + COHORT;
+    let total = history + arriving();
     let data = draw(Design::NieWagerB, total, FEATURES, 1.0, 1);
     let (_, var_tau) = effect_moments(Design::NieWagerB, 100_000, 2);
     let cands = candidates(&data.tau, var_tau, MODELS, 3);
@@ -392,8 +407,9 @@ async fn main() {
     }
     println!(
         "(refit: full cross-fitted refit and scoring of the history; incremental: recompute after a \
-{COHORT}-unit cohort with the current fit; intake MiB: peak before the refit, \
+{}-unit block of new units with the current fit; intake MiB: peak before the refit, \
 the cache and the store; raw: {RAW_BYTES_PER_UNIT} bytes per unit; restart: \
-SIGTERM, start on the same data, until the scoreboard is served, and that process's peak)"
+SIGTERM, start on the same data, until the scoreboard is served, and that process's peak)",
+        arriving()
     );
 }
