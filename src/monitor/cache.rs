@@ -99,12 +99,8 @@ impl<T: Clone> Shared<T> {
         if rows >= self.rows {
             return;
         }
-        self.chunks.truncate(rows.div_ceil(CHUNK_ROWS));
-        let kept = rows % CHUNK_ROWS;
-        if kept > 0 {
-            if let Some(last) = self.chunks.last_mut() {
-                Arc::make_mut(last).truncate(kept * self.width);
-            }
+        if let Some((last, kept)) = cut_chunks(&mut self.chunks, rows) {
+            Arc::make_mut(last).truncate(kept * self.width);
         }
         self.rows = rows;
     }
@@ -127,6 +123,17 @@ impl<T: Clone> Shared<T> {
             .skip(range.start)
             .take(range.len())
     }
+}
+
+/// Drops the chunks wholly past `rows` and returns the last kept chunk with
+/// the number of its rows that stay, when it keeps only some of them.
+fn cut_chunks<C>(chunks: &mut Vec<C>, rows: usize) -> Option<(&mut C, usize)> {
+    chunks.truncate(rows.div_ceil(CHUNK_ROWS));
+    let kept = rows % CHUNK_ROWS;
+    if kept == 0 {
+        return None;
+    }
+    chunks.last_mut().map(|c| (c, kept))
 }
 
 impl<T> Index<usize> for Shared<T> {
@@ -188,12 +195,8 @@ impl Stamps {
         if rows >= self.rows {
             return;
         }
-        self.chunks.truncate(rows.div_ceil(CHUNK_ROWS));
-        let kept = rows % CHUNK_ROWS;
-        if kept > 0 {
-            if let Some(Some(last)) = self.chunks.last_mut() {
-                Arc::make_mut(last)[kept..].fill(0);
-            }
+        if let Some((Some(last), kept)) = cut_chunks(&mut self.chunks, rows) {
+            Arc::make_mut(last)[kept..].fill(0);
         }
         self.rows = rows;
     }
@@ -271,20 +274,15 @@ impl UnitKeys {
     pub fn truncate(&mut self, units: usize) {
         while self.ends.len() > units {
             let unit = self.ends.len() - 1;
-            let Self {
-                bytes,
-                ends,
-                table,
-                hasher,
-            } = self;
-            let key = Self::key(bytes, ends, unit);
-            let hash = hasher.hash_one(key);
-            if let Ok(entry) = table.find_entry(hash, |&u| u as usize == unit) {
+            let hash = self
+                .hasher
+                .hash_one(Self::key(&self.bytes, &self.ends, unit));
+            if let Ok(entry) = self.table.find_entry(hash, |&u| u as usize == unit) {
                 entry.remove();
             }
-            let start = unit.checked_sub(1).map_or(0, |p| ends[p] as usize);
-            bytes.truncate(start);
-            ends.pop();
+            let start = unit.checked_sub(1).map_or(0, |p| self.ends[p] as usize);
+            self.bytes.truncate(start);
+            self.ends.pop();
         }
     }
 

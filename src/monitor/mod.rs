@@ -96,13 +96,13 @@ pub struct RecomputeSummary {
     pub millis: f64,
 }
 
+/// Scoreboards by window key.
+type Boards = BTreeMap<String, pb::Scoreboard>;
+
 struct DatasetState {
     stored: StoredDataset,
     cache: DatasetCache,
     nuisance: Option<NuisanceState>,
-    /// The boards of the last recompute, by window; the handle publishes the
-    /// same map to readers.
-    latest: Arc<BTreeMap<String, pb::Scoreboard>>,
     alerts: AlertState,
     /// Outcomes accepted since the last recompute started.
     pending_outcomes: u64,
@@ -153,21 +153,21 @@ pub struct DatasetHandle {
     recompute: Mutex<()>,
     /// Wakes the scheduler when enough outcomes are waiting.
     wake: Notify,
-    /// The latest boards as readers get them: outside `state`, so a
+    /// The boards of the last recompute, by window: outside `state`, so a
     /// scoreboard read never queues behind intake batches or a recompute
     /// holding the dataset's lock. Replaced whole, under `state`'s lock.
-    boards: RwLock<Arc<BTreeMap<String, pb::Scoreboard>>>,
+    boards: RwLock<Arc<Boards>>,
 }
 
 impl DatasetHandle {
-    fn boards(&self) -> Arc<BTreeMap<String, pb::Scoreboard>> {
+    fn boards(&self) -> Arc<Boards> {
         // A poisoned lock still holds a whole map: replacing it is one store.
         let guard = self.boards.read().unwrap_or_else(|e| e.into_inner());
         Arc::clone(&guard)
     }
 
-    fn publish(&self, boards: Arc<BTreeMap<String, pb::Scoreboard>>) {
-        *self.boards.write().unwrap_or_else(|e| e.into_inner()) = boards;
+    fn publish(&self, boards: Boards) {
+        *self.boards.write().unwrap_or_else(|e| e.into_inner()) = Arc::new(boards);
     }
 }
 
@@ -208,14 +208,15 @@ impl Monitor {
             shutdown,
         });
         for stored in monitor.store.datasets().await? {
-            let state = monitor.rebuild(stored).await?;
-            monitor.install(state);
+            let (state, boards) = monitor.rebuild(stored).await?;
+            monitor.install(state, boards);
         }
         monitor.ready.store(true, Ordering::Release);
         Ok(monitor)
     }
 
-    async fn rebuild(&self, stored: StoredDataset) -> MonitorResult<DatasetState> {
+    /// A dataset's state and its latest boards, from the store.
+    async fn rebuild(&self, stored: StoredDataset) -> MonitorResult<(DatasetState, Boards)> {
         let span = info_span!("rebuild", dataset = %stored.spec.name);
         async {
             let mut cache = DatasetCache::new(stored.spec.feature_names.len());
@@ -239,7 +240,6 @@ impl Monitor {
                 stored: stored.clone(),
                 cache,
                 nuisance: None,
-                latest: Arc::default(),
                 alerts: AlertState::default(),
                 pending_outcomes: 0,
             };
@@ -255,16 +255,15 @@ impl Monitor {
                     ..reproduced
                 });
             }
+            let mut latest = Boards::new();
             if let Some((_, boards)) = self.store.latest_boards(stored.id).await? {
-                let mut latest = BTreeMap::new();
                 for (key, bytes) in boards {
                     let board = pb::Scoreboard::decode(bytes.as_slice())
                         .map_err(|e| StoreError::Corrupt(format!("scoreboard {key}: {e}")))?;
                     latest.insert(key, board);
                 }
-                state.latest = Arc::new(latest);
             }
-            if let Some(recent) = state.latest.get("recent") {
+            if let Some(recent) = latest.get("recent") {
                 state.alerts = AlertState::from_board(recent);
             }
             state.pending_outcomes = state
@@ -287,19 +286,19 @@ impl Monitor {
                     })
                     .set(ms as f64 / 1000.0);
             }
-            Ok(state)
+            Ok((state, latest))
         }
         .instrument(span)
         .await
     }
 
-    fn install(&self, state: DatasetState) -> Arc<DatasetHandle> {
+    fn install(&self, state: DatasetState, boards: Boards) -> Arc<DatasetHandle> {
         let handle = Arc::new(DatasetHandle {
             id: state.stored.id,
             name: state.stored.spec.name.clone(),
             recompute: Mutex::new(()),
             wake: Notify::new(),
-            boards: RwLock::new(Arc::clone(&state.latest)),
+            boards: RwLock::new(Arc::new(boards)),
             state: Mutex::new(state),
         });
         if let Ok(mut map) = self.datasets.write() {
@@ -367,13 +366,12 @@ impl Monitor {
             cache: DatasetCache::new(spec.feature_names.len()),
             stored,
             nuisance: None,
-            latest: Arc::default(),
             alerts: AlertState::default(),
             pending_outcomes: 0,
         };
         let info = state.info();
         self.update_counts(&state);
-        let handle = self.install(state);
+        let handle = self.install(state, Boards::new());
         self.spawn_scheduler(handle);
         info!(dataset = %spec.name, features = spec.feature_names.len(), "dataset created");
         Ok(info)
@@ -764,8 +762,8 @@ impl Monitor {
         let cumulative_units = boards.get("cumulative").map(|b| b.units).unwrap_or(0);
         let (raised, previous) = {
             let mut st = h.state.lock().await;
-            let previous: BTreeMap<String, String> = st
-                .latest
+            let previous: BTreeMap<String, String> = h
+                .boards()
                 .iter()
                 .map(|(k, b)| (k.clone(), b.leader.clone()))
                 .collect();
@@ -776,8 +774,7 @@ impl Monitor {
                     raised = st.alerts.evaluate(&h.name, "recent", b, overlap);
                 }
             }
-            st.latest = Arc::new(boards.clone());
-            h.publish(Arc::clone(&st.latest));
+            h.publish(boards.clone());
             (raised, previous)
         };
         if let Some(reason) = computed.refit {
