@@ -62,6 +62,12 @@ struct Row {
     refit_s: f64,
     incremental_s: f64,
     incremental_server_ms: f64,
+    /// Whether the incremental recompute refreshed the cumulative window's
+    /// rank metrics (it does when the block is at least
+    /// `rank_refresh_growth`, 5%, of the history, or the history is under
+    /// 50,000 units).
+    incremental_refreshed: bool,
+    refresh_server_ms: f64,
     intake_peak_mib: f64,
     peak_mib: f64,
     raw_mib: f64,
@@ -238,7 +244,7 @@ async fn measure(history: usize) -> Row {
                     every_outcomes: u32::MAX,
                     every_seconds: 86_400,
                     refit_growth: 10.0,
-                    refit_every_seconds: 0,
+                    ..Default::default()
                 }),
                 ..Default::default()
             }),
@@ -286,6 +292,7 @@ async fn measure(history: usize) -> Row {
         .recompute(pb::RecomputeRequest {
             dataset: NAME.into(),
             refit: true,
+            ..Default::default()
         })
         .await
         .expect("refit")
@@ -313,6 +320,7 @@ async fn measure(history: usize) -> Row {
         .recompute(pb::RecomputeRequest {
             dataset: NAME.into(),
             refit: false,
+            ..Default::default()
         })
         .await
         .expect("incremental")
@@ -320,6 +328,31 @@ async fn measure(history: usize) -> Row {
     assert!(!r.refitted);
     assert_eq!(r.units, total as u64);
     let incremental_s = t.elapsed().as_secs_f64();
+    let incremental_server_ms = r.millis;
+    let board = |b: pb::Scoreboard| (b.units, b.rank_metrics_units);
+    let cumulative = scoring
+        .get_scoreboard(pb::GetScoreboardRequest {
+            dataset: NAME.into(),
+            window: None,
+        })
+        .await
+        .expect("board")
+        .into_inner();
+    let (units, ranked) = board(cumulative);
+    let incremental_refreshed = units == ranked;
+    // The rank refresh that the incremental recompute skipped (or did), on
+    // request: what a recompute costs once the window has grown by the
+    // refresh share.
+    let r = scoring
+        .recompute(pb::RecomputeRequest {
+            dataset: NAME.into(),
+            refresh_ranks: true,
+            ..Default::default()
+        })
+        .await
+        .expect("rank refresh")
+        .into_inner();
+    let refresh_server_ms = r.millis;
     let peak = peak_mib(server.child.id());
 
     let t = Instant::now();
@@ -349,7 +382,9 @@ async fn measure(history: usize) -> Row {
         ingest_predictions_per_s,
         refit_s,
         incremental_s,
-        incremental_server_ms: r.millis,
+        incremental_server_ms,
+        incremental_refreshed,
+        refresh_server_ms,
         intake_peak_mib,
         peak_mib: peak,
         raw_mib: (total * RAW_BYTES_PER_UNIT) as f64 / (1024.0 * 1024.0),
@@ -375,12 +410,13 @@ async fn main() {
         rows.push(row);
     }
     println!(
-        "\n{:>9} | {:>13} | {:>13} | {:>9} | {:>17} | {:>10} | {:>8} | {:>8} | {:>8} | {:>9} | {:>11}",
+        "\n{:>9} | {:>13} | {:>13} | {:>9} | {:>19} | {:>10} | {:>10} | {:>8} | {:>8} | {:>8} | {:>9} | {:>11}",
         "history",
         "units/s",
         "predictions/s",
         "refit s",
         "incremental s (ms)",
+        "refresh ms",
         "intake MiB",
         "peak MiB",
         "raw MiB",
@@ -390,13 +426,15 @@ async fn main() {
     );
     for r in &rows {
         println!(
-            "{:>9} | {:>13.0} | {:>13.0} | {:>9.2} | {:>9.3} ({:>6.0}) | {:>10.0} | {:>8.0} | {:>8.0} | {:>8.2} | {:>9.2} | {:>11.0}",
+            "{:>9} | {:>13.0} | {:>13.0} | {:>9.2} | {:>9.3} ({:>6.0}){} | {:>10.0} | {:>10.0} | {:>8.0} | {:>8.0} | {:>8.2} | {:>9.2} | {:>11.0}",
             r.units,
             r.ingest_units_per_s,
             r.ingest_predictions_per_s,
             r.refit_s,
             r.incremental_s,
             r.incremental_server_ms,
+            if r.incremental_refreshed { " R" } else { "  " },
+            r.refresh_server_ms,
             r.intake_peak_mib,
             r.peak_mib,
             r.raw_mib,
@@ -407,7 +445,8 @@ async fn main() {
     }
     println!(
         "(refit: full cross-fitted refit and scoring of the history; incremental: recompute after a \
-{}-unit block of new units with the current fit; intake MiB: peak before the refit, \
+{}-unit block of new units with the current fit, R where it refreshed the cumulative \
+window's rank metrics; refresh: a recompute asked to refresh them, server time; intake MiB: peak before the refit, \
 the cache and the store; raw: {RAW_BYTES_PER_UNIT} bytes per unit; restart: \
 SIGTERM, start on the same data, until the scoreboard is served, and that process's peak)",
         arriving()

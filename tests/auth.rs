@@ -170,6 +170,7 @@ async fn scopes_decide_every_rpc_and_revocation_needs_no_restart() {
             pb::RecomputeRequest {
                 dataset: "a".into(),
                 refit: true,
+                ..Default::default()
             },
         ))
         .await
@@ -180,6 +181,7 @@ async fn scopes_decide_every_rpc_and_revocation_needs_no_restart() {
             pb::RecomputeRequest {
                 dataset: "a".into(),
                 refit: false,
+                ..Default::default()
             },
         ))
         .await

@@ -214,6 +214,7 @@ async fn scoreboard_json(ch: &Channel) -> serde_json::Value {
         .recompute(pb::RecomputeRequest {
             dataset: DS.into(),
             refit: true,
+            ..Default::default()
         })
         .await
         .expect("recompute");

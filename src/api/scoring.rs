@@ -8,6 +8,7 @@ use super::pb;
 use super::status::from_monitor;
 use crate::auth::{caller, Access};
 use crate::monitor::board::window_key;
+use crate::monitor::Asked;
 use crate::monitor::Monitor;
 
 pub struct ScoringService {
@@ -62,7 +63,13 @@ impl pb::scoring_server::Scoring for ScoringService {
         who.require(Access::Write, &r.dataset)?;
         let s = self
             .monitor
-            .recompute(&r.dataset, r.refit)
+            .recompute(
+                &r.dataset,
+                Asked {
+                    refit: r.refit,
+                    refresh_ranks: r.refresh_ranks,
+                },
+            )
             .await
             .map_err(from_monitor)?;
         Ok(Response::new(pb::RecomputeResponse {

@@ -446,7 +446,7 @@ async fn deliver(
         .scoring
         .recompute(pb::RecomputeRequest {
             dataset: DATASET.into(),
-            refit: false,
+            ..Default::default()
         })
         .await
         .map_err(status("recompute"))?

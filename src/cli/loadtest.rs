@@ -254,6 +254,7 @@ async fn recompute(
             pb::RecomputeRequest {
                 dataset: dataset.into(),
                 refit,
+                ..Default::default()
             },
         )?)
         .await

@@ -7,7 +7,7 @@
 
 use serde::Serialize;
 
-use super::stats::{mean_se, Estimate};
+use super::stats::{Estimate, Moments};
 
 #[derive(Debug, Clone, Serialize)]
 pub struct PolicyGain {
@@ -21,22 +21,62 @@ pub struct PolicyGain {
 }
 
 pub fn policy_gain(phi: &[f64], tau_hat: &[f64], cost: f64) -> PolicyGain {
-    let n = phi.len();
-    let mut over_none = Vec::with_capacity(n);
-    let mut over_all = Vec::with_capacity(n);
-    let mut treated = 0usize;
-    for i in 0..n {
-        let d = if tau_hat[i] > cost { 1.0 } else { 0.0 };
-        treated += d as usize;
-        over_none.push(d * (phi[i] - cost));
-        over_all.push((d - 1.0) * (phi[i] - cost));
-    }
-    let e = mean_se(&over_none);
+    let mut sums = PolicySums::default();
+    sums.add(phi, tau_hat, cost);
+    sums.gain()
+}
+
+/// The gain of treating every unit alike (`treat`) or none, from the
+/// window's mean pseudo-outcome and its standard error: the baselines
+/// predict one value for every unit, so their policy needs no pass.
+pub fn uniform_policy_gain(phi: Estimate, treat: bool, cost: f64) -> PolicyGain {
+    let net = Estimate::new(phi.estimate - cost, phi.se);
+    let none = Estimate::new(0.0, 0.0);
+    let (over_none, over_all) = if treat {
+        (net, none)
+    } else {
+        (none, Estimate::new(-net.estimate, net.se))
+    };
     PolicyGain {
-        estimate: e.estimate,
-        se: e.se,
-        vs_treat_all: mean_se(&over_all),
-        treated_share: treated as f64 / n.max(1) as f64,
+        estimate: over_none.estimate,
+        se: over_none.se,
+        vs_treat_all: over_all,
+        treated_share: if treat { 1.0 } else { 0.0 },
+    }
+}
+
+/// One model's [`policy_gain`] as mergeable moments, for a window that
+/// grows: each block of new units is added once.
+#[derive(Debug, Clone, Default)]
+pub struct PolicySums {
+    over_none: Moments,
+    over_all: Moments,
+    treated: u64,
+}
+
+impl PolicySums {
+    pub fn add(&mut self, phi: &[f64], tau_hat: &[f64], cost: f64) {
+        let n = phi.len();
+        let mut over_none = Vec::with_capacity(n);
+        let mut over_all = Vec::with_capacity(n);
+        for (&p, &t) in phi.iter().zip(tau_hat) {
+            let d = if t > cost { 1.0 } else { 0.0 };
+            self.treated += d as u64;
+            over_none.push(d * (p - cost));
+            over_all.push((d - 1.0) * (p - cost));
+        }
+        self.over_none.merge(&Moments::of(&over_none));
+        self.over_all.merge(&Moments::of(&over_all));
+    }
+
+    pub fn gain(&self) -> PolicyGain {
+        let e = self.over_none.estimate();
+        PolicyGain {
+            estimate: e.estimate,
+            se: e.se,
+            vs_treat_all: self.over_all.estimate(),
+            treated_share: self.treated as f64 / self.over_none.count().max(1) as f64,
+        }
     }
 }
 

@@ -156,6 +156,11 @@ pub struct Scoreboard {
     pub alpha: f64,
     pub cost: f64,
     pub models: Vec<ModelScore>,
+    /// Units the rank and calibration metrics (autoc, qini, blp_slope,
+    /// calibration) were computed on: `n_units`, except in a growing window
+    /// whose ranks are refreshed when it has grown by a set share, where
+    /// it can be fewer (see [`RankMetrics`]).
+    pub rank_metrics_units: usize,
     pub pairwise: Vec<PairwiseDifference>,
     pub overlap: OverlapReport,
     pub nuisance: Option<NuisanceReport>,
@@ -356,21 +361,70 @@ impl ConstantBasis {
     }
 }
 
+/// One column's metrics that depend on the whole window's predictions at
+/// once: the targeting areas (ranks) and the calibration (the BLP's
+/// centering and the quintile groups). Unlike the estimators' sums they do
+/// not merge, so a growing window may carry them over from an earlier pass
+/// and say over how many units ([`Scoreboard::rank_metrics_units`]).
+#[derive(Debug, Clone)]
+pub struct RankMetrics {
+    pub targeting: Targeting,
+    pub calibration: Calibration,
+}
+
+/// [`RankMetrics`] of every column, from each column's
+/// [`descending_order`]; columns in parallel, results in column order.
+pub fn rank_metrics(
+    phi: &[f64],
+    effects: &[&[f64]],
+    orders: &[&[u32]],
+    settings: &Settings,
+) -> Vec<RankMetrics> {
+    effects
+        .par_iter()
+        .zip(orders)
+        .enumerate()
+        .map(|(k, (&tau, &order))| column_rank_metrics(phi, tau, order, k, settings))
+        .collect()
+}
+
+/// [`RankMetrics`] of column `column` (its index seeds the bootstrap, when
+/// one is asked for), from its [`descending_order`].
+pub fn column_rank_metrics(
+    phi: &[f64],
+    tau_hat: &[f64],
+    order: &[u32],
+    column: usize,
+    settings: &Settings,
+) -> RankMetrics {
+    let ranked = Ranked::new(phi, tau_hat, order);
+    RankMetrics {
+        targeting: targeting_ranked(
+            &ranked,
+            order,
+            settings.bootstrap_replicates,
+            settings.nuisance.seed.wrapping_add(column as u64),
+        ),
+        calibration: calibration_ranked(phi, tau_hat, &ranked),
+    }
+}
+
 /// Everything [`assemble`] turns into a scoreboard; each piece may come from
 /// a fresh pass over the units or from aggregates kept between passes.
 pub struct Parts<'a> {
     /// Name and baseline flag per scored column: zero-effect, constant-effect,
     /// then the registered models.
     pub models: Vec<(String, bool)>,
-    /// Prediction per unit for each column.
-    pub effects: &'a [&'a [f64]],
-    pub phi: &'a [f64],
+    pub n_units: usize,
     pub ate: Estimate,
     pub n_treated: usize,
     /// One per estimator of [`estimators::ALL`], over the same columns.
     pub sums: Vec<ScoreSums>,
-    /// Each column's [`descending_order`].
-    pub orders: &'a [&'a [u32]],
+    /// Per column.
+    pub policy: Vec<PolicyGain>,
+    /// Per column, computed on the first `rank_units` units.
+    pub rank: &'a [RankMetrics],
+    pub rank_units: usize,
     pub overlap: OverlapReport,
     pub nuisance: Option<NuisanceReport>,
 }
@@ -404,6 +458,8 @@ pub struct Scored {
     pub phi: Vec<f64>,
     /// [`descending_order`] of each registered model, in `models` order.
     pub orders: Vec<Vec<u32>>,
+    /// Per column (zero-effect, constant-effect, then `models`).
+    pub rank: Vec<RankMetrics>,
 }
 
 /// [`score`], keeping the pseudo-outcomes and the models' orders; the
@@ -442,15 +498,20 @@ pub fn score_keeping(
         (CONSTANT_EFFECT.to_string(), true),
     ];
     names.extend(models.iter().map(|m| (m.name.clone(), m.baseline)));
+    let rank = rank_metrics(&phi, &effects, &order_slices, settings);
     let board = assemble(
         Parts {
             models: names,
-            effects: &effects,
-            phi: &phi,
+            n_units: n,
             ate,
             n_treated: table.n_treated(),
             sums,
-            orders: &order_slices,
+            policy: effects
+                .iter()
+                .map(|e| policy_gain(&phi, e, settings.cost))
+                .collect(),
+            rank: &rank,
+            rank_units: n,
             overlap: overlap_report(
                 features,
                 feature_names,
@@ -464,23 +525,28 @@ pub fn score_keeping(
     );
     let mut orders = orders;
     orders.drain(..2);
-    Scored { board, phi, orders }
+    Scored {
+        board,
+        phi,
+        orders,
+        rank,
+    }
 }
 
 /// Ranks, compares and summarizes the models from a pass's parts.
 pub fn assemble(parts: Parts<'_>, settings: &Settings) -> Scoreboard {
     let Parts {
         models: all,
-        effects,
-        phi,
+        n_units: n,
         ate,
         n_treated,
         sums,
-        orders,
+        policy,
+        rank: rank_metrics,
+        rank_units,
         overlap,
         nuisance: nuisance_report,
     } = parts;
-    let n = phi.len();
     let constant = 1;
     let m = all.len();
     let key_index = |key: &str| {
@@ -507,22 +573,14 @@ pub fn assemble(parts: Parts<'_>, settings: &Settings) -> Scoreboard {
         .collect();
     let no_detectable_heterogeneity = !holm_reject(&p_beats, settings.alpha).iter().any(|&r| r);
 
-    // Targeting and calibration are per model and independent: run them in
-    // parallel, results in model order.
     let model_scores: Vec<ModelScore> = all
-        .par_iter()
+        .iter()
+        .zip(policy)
+        .zip(rank_metrics)
         .enumerate()
-        .map(|(k, (name, baseline))| {
+        .map(|(k, (((name, baseline), policy_gain), r))| {
             let d = corrected.difference(k, constant);
             let (ci_low, ci_high) = d.interval(CI_LEVEL);
-            let ranked = Ranked::new(phi, effects[k], orders[k]);
-            let t: Targeting = targeting_ranked(
-                &ranked,
-                orders[k],
-                settings.bootstrap_replicates,
-                settings.nuisance.seed.wrapping_add(k as u64),
-            );
-            let cal = calibration_ranked(phi, effects[k], &ranked);
             ModelScore {
                 name: name.clone(),
                 baseline: *baseline,
@@ -541,11 +599,11 @@ pub fn assemble(parts: Parts<'_>, settings: &Settings) -> Scoreboard {
                 ipw_loss: sums[key_index("ipw_loss")].estimate(k),
                 p_best: ranking.p_best[k],
                 in_best_set: ranking.in_best_set[k],
-                policy_gain: policy_gain(phi, effects[k], settings.cost),
-                autoc: t.autoc,
-                qini: t.qini,
-                blp_slope: cal.slope,
-                calibration: cal,
+                policy_gain,
+                autoc: r.targeting.autoc,
+                qini: r.targeting.qini,
+                blp_slope: r.calibration.slope,
+                calibration: r.calibration.clone(),
             }
         })
         .collect();
@@ -585,6 +643,7 @@ pub fn assemble(parts: Parts<'_>, settings: &Settings) -> Scoreboard {
         alpha: settings.alpha,
         cost: settings.cost,
         models: ordered,
+        rank_metrics_units: rank_units,
         pairwise,
         overlap,
         nuisance: nuisance_report,

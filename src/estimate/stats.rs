@@ -42,17 +42,67 @@ pub fn normal_cdf(z: f64) -> f64 {
 /// With one value the standard error is reported as 0 rather than NaN; callers
 /// never see n = 1 because cross-fitting needs several units per fold.
 pub fn mean_se(values: &[f64]) -> Estimate {
-    let n = values.len();
-    if n == 0 {
-        return Estimate::new(0.0, 0.0);
+    Moments::of(values).estimate()
+}
+
+/// Count, mean and centered sum of squares of a set of values. Two sets'
+/// moments merge into those of their union exactly up to rounding (Chan,
+/// Golub & LeVeque 1979), so a growing window keeps a mean and its
+/// standard error without revisiting its values.
+#[derive(Debug, Clone, Copy, Default, PartialEq)]
+pub struct Moments {
+    n: u64,
+    mean: f64,
+    m2: f64,
+}
+
+impl Moments {
+    /// The moments of `values`, in two passes (mean, then squares).
+    pub fn of(values: &[f64]) -> Self {
+        let n = values.len();
+        if n == 0 {
+            return Self::default();
+        }
+        let mean = values.iter().sum::<f64>() / n as f64;
+        let m2 = values.iter().map(|v| (v - mean).powi(2)).sum();
+        Self {
+            n: n as u64,
+            mean,
+            m2,
+        }
     }
-    let nf = n as f64;
-    let mean = values.iter().sum::<f64>() / nf;
-    if n == 1 {
-        return Estimate::new(mean, 0.0);
+
+    pub fn merge(&mut self, other: &Moments) {
+        if other.n == 0 {
+            return;
+        }
+        if self.n == 0 {
+            *self = *other;
+            return;
+        }
+        let (na, nb) = (self.n as f64, other.n as f64);
+        let n = na + nb;
+        let delta = other.mean - self.mean;
+        self.m2 += other.m2 + delta * delta * na * nb / n;
+        self.mean += delta * nb / n;
+        self.n += other.n;
     }
-    let ss: f64 = values.iter().map(|v| (v - mean).powi(2)).sum();
-    Estimate::new(mean, (ss / (nf - 1.0) / nf).sqrt())
+
+    pub fn count(&self) -> u64 {
+        self.n
+    }
+
+    /// The mean with its standard error (see [`mean_se`]).
+    pub fn estimate(&self) -> Estimate {
+        match self.n {
+            0 => Estimate::new(0.0, 0.0),
+            1 => Estimate::new(self.mean, 0.0),
+            n => {
+                let nf = n as f64;
+                Estimate::new(self.mean, (self.m2 / (nf - 1.0) / nf).sqrt())
+            }
+        }
+    }
 }
 
 /// One-sided p-value for H0: mean <= 0 against mean > 0, from a z statistic.

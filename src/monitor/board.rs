@@ -146,6 +146,7 @@ pub fn scoreboard(parts: BoardParts<'_>, b: &Scoreboard) -> pb::Scoreboard {
         degenerate: String::new(),
         caveat: b.caveat.into(),
         json: serde_json::to_string(b).unwrap_or_default(),
+        rank_metrics_units: b.rank_metrics_units as u64,
     }
 }
 

@@ -36,6 +36,7 @@ use crate::store::{ScoreRow, Store, StoreError, StoredDataset, StoredModel};
 use alerts::{AlertState, Raised};
 use cache::DatasetCache;
 use ingest::{OutcomeIn, PredictionIn, Rejection, UnitIn};
+pub use recompute::Asked;
 use recompute::{Frame, NuisanceState};
 use spec::DatasetSpec;
 
@@ -141,6 +142,7 @@ impl DatasetState {
             revision: c.revision,
             nuisance,
             now_ms: now,
+            ranks_fresh_below: recompute::RANKS_ALWAYS_FRESH_BELOW,
         }
     }
 }
@@ -647,11 +649,16 @@ impl Monitor {
 
     // ---------------------------------------------------------- recompute
 
-    /// Recomputes a dataset now; `refit` forces a full cross-fitted refit.
-    pub async fn recompute(&self, dataset: &str, refit: bool) -> MonitorResult<RecomputeSummary> {
+    /// Recomputes a dataset now, with a refit or a rank refresh if `asked`.
+    pub async fn recompute(&self, dataset: &str, asked: Asked) -> MonitorResult<RecomputeSummary> {
         let h = self.handle(dataset)?;
-        let span = info_span!("recompute", dataset = %dataset, refit_requested = refit);
-        let result = self.recompute_handle(&h, refit).instrument(span).await;
+        let span = info_span!(
+            "recompute",
+            dataset = %dataset,
+            refit_requested = asked.refit,
+            rank_refresh_requested = asked.refresh_ranks
+        );
+        let result = self.recompute_handle(&h, asked).instrument(span).await;
         if let Err(e) = &result {
             warn!(dataset = %dataset, error = %e, "recompute failed");
             self.metrics
@@ -667,7 +674,7 @@ impl Monitor {
     async fn recompute_handle(
         &self,
         h: &Arc<DatasetHandle>,
-        refit: bool,
+        asked: Asked,
     ) -> MonitorResult<RecomputeSummary> {
         let _one_at_a_time = h.recompute.lock().await;
         let started = Instant::now();
@@ -685,7 +692,7 @@ impl Monitor {
             )));
         }
         let spec = frame.spec.clone();
-        let computed = tokio::task::spawn_blocking(move || frame.compute(refit))
+        let computed = tokio::task::spawn_blocking(move || frame.compute(asked))
             .await
             .map_err(|e| MonitorError::Internal(e.to_string()))??;
         let mut nuisance = computed.nuisance;
@@ -1029,7 +1036,7 @@ impl Monitor {
             if pending == 0 {
                 continue;
             }
-            let _ = self.recompute(&h.name, false).await;
+            let _ = self.recompute(&h.name, Asked::default()).await;
         }
     }
 }

@@ -6,10 +6,15 @@
 //! Between refits a recompute costs what its new units cost, not what the
 //! history costs (DEVELOPERS.md, "Incremental recomputes"): a
 //! [`ScoringMemo`] kept with the nuisance state holds each cohort window's
-//! result (a window whose units did not change is not rescored) and the
-//! cumulative window's mergeable parts (per-estimator sums, pseudo-outcomes,
-//! each model's sorted order, the overlap sums), which the new units are
-//! merged into. A refit discards the memo, so the boards after a refit are a
+//! result (a window whose units did not change is not rescored), an index
+//! of each cohort's units, and the cumulative window's mergeable parts
+//! (per-estimator sums, the ATE's and each policy's moments, the overlap
+//! sums), which the new units are merged into. The cumulative window's
+//! rank and calibration metrics do not merge: they are recomputed over the
+//! whole window when it has grown by the dataset's `rank_refresh_growth`
+//! since they last were (each model's kept order merged with the new
+//! units'), and carried over in between, the board saying over how many
+//! units. A refit discards the memo, so the boards after a refit are a
 //! from-scratch computation, equal to `plumbline score` on the same data.
 
 use std::collections::HashMap;
@@ -25,12 +30,13 @@ use crate::estimate::crossfit::{
     fit_nuisance_models_on, FittedNuisance, Nuisance, NuisanceReport, NuisanceSettings,
 };
 use crate::estimate::overlap::OverlapSums;
+use crate::estimate::policy::{uniform_policy_gain, PolicySums};
 use crate::estimate::pseudo::aipw_pseudo_outcome;
 use crate::estimate::scoreboard::{
-    assemble, contribution_sums, score_keeping, ConstantBasis, Parts, Scoreboard, Settings,
-    UnitColumns,
+    assemble, column_rank_metrics, contribution_sums, score_keeping, ConstantBasis, Parts,
+    RankMetrics, Scoreboard, Settings, UnitColumns,
 };
-use crate::estimate::stats::mean_se;
+use crate::estimate::stats::Moments;
 use crate::estimate::sums::ScoreSums;
 use crate::estimate::targeting::{descending_order, merge_orders};
 use crate::estimate::{
@@ -50,8 +56,11 @@ pub struct NuisanceState {
     /// Whether the fit used logged propensities.
     pub logged: bool,
     /// Per unit (by sequence): propensity (clipped), mu0, mu1; NaN where the
-    /// unit has not been scored yet.
-    pub values: Arc<Vec<[f64; 3]>>,
+    /// unit has not been scored yet. Chunked like the cache's columns, so
+    /// scoring new units copies only the chunks they fall in.
+    pub values: Shared<[f64; 3]>,
+    /// Every unit among the first this many outcomes to arrive has values.
+    pub scored_outcomes: usize,
     /// What the last recompute under this fit keeps for the next one.
     pub memo: Arc<ScoringMemo>,
 }
@@ -69,9 +78,56 @@ pub struct ScoringMemo {
     /// its result.
     cohorts: HashMap<String, (usize, WindowResult)>,
     cumulative: Option<CumulativeMemo>,
+    /// Kept across refits and revisions: it depends only on the arrival
+    /// order of outcomes, which only grows.
+    cohort_index: CohortIndex,
 }
 
-/// The cumulative window's mergeable parts.
+/// Each cohort's units with outcomes, in unit order, extended as outcomes
+/// arrive, so that a recompute finds the cohorts that changed (and their
+/// units) without a pass over the history.
+#[derive(Clone, Default)]
+struct CohortIndex {
+    /// Outcomes folded in: a prefix of the arrival order.
+    outcomes: usize,
+    /// By cohort (index into the frame's cohort names).
+    units: Vec<Vec<u32>>,
+}
+
+impl CohortIndex {
+    fn update(&mut self, columns: &Columns, cohorts: usize) {
+        let outcomes = columns.outcomes();
+        if self.outcomes > outcomes {
+            *self = Self::default();
+        }
+        if self.units.len() < cohorts {
+            self.units.resize(cohorts, Vec::new());
+        }
+        let mut unsorted = Vec::new();
+        for u in columns.arrived(self.outcomes..outcomes) {
+            let c = columns.cohort[u] as usize;
+            if c >= self.units.len() {
+                self.units.resize(c + 1, Vec::new());
+            }
+            let units = &mut self.units[c];
+            // An outcome may arrive late for a unit that came before ones
+            // already indexed.
+            if units.last().is_some_and(|&last| last as usize > u) {
+                unsorted.push(c);
+            }
+            units.push(u as u32);
+        }
+        unsorted.sort_unstable();
+        unsorted.dedup();
+        for c in unsorted {
+            self.units[c].sort_unstable();
+        }
+        self.outcomes = outcomes;
+    }
+}
+
+/// The cumulative window's mergeable parts, and its rank metrics as of the
+/// last refresh.
 #[derive(Clone)]
 struct CumulativeMemo {
     /// Units of `outcome_order` folded in (a prefix of it).
@@ -83,15 +139,29 @@ struct CumulativeMemo {
     /// The scored units (covered by every ranked model), in folding order.
     units: Vec<u32>,
     phi: Vec<f64>,
+    /// Moments of `phi`: the ATE and its standard error.
+    ate: Moments,
     treated: usize,
     basis: ConstantBasis,
     /// Per estimator, over the columns [0, s, -s, ranked...] (see
     /// [`ConstantBasis`]).
     sums: Vec<ScoreSums>,
-    /// Per ranked model, the descending order of `units` by its prediction.
-    orders: Vec<Vec<u32>>,
+    /// Per ranked model.
+    policy: Vec<PolicySums>,
     overlap: OverlapSums,
+    /// The rank metrics were computed on the first `rank_units` of `units`.
+    rank_units: usize,
+    /// Per scored column (zero-effect, constant-effect, ranked...).
+    rank: Vec<RankMetrics>,
+    /// Per ranked model, the descending order of the first `rank_units` of
+    /// `units` by its prediction.
+    orders: Vec<Vec<u32>>,
 }
+
+/// Windows below this many units get fresh rank metrics on every
+/// recompute, whatever their growth: at 0.6 us per unit a refresh there
+/// costs under 30 ms.
+pub const RANKS_ALWAYS_FRESH_BELOW: usize = 50_000;
 
 /// What a recompute reads: the cache's columns, shared chunk by chunk
 /// rather than copied.
@@ -105,6 +175,9 @@ pub struct Frame {
     pub revision: u64,
     pub nuisance: Option<NuisanceState>,
     pub now_ms: i64,
+    /// The cumulative window's rank metrics are refreshed on every
+    /// recompute below this many units ([`RANKS_ALWAYS_FRESH_BELOW`]).
+    pub ranks_fresh_below: usize,
 }
 
 impl Frame {
@@ -117,6 +190,16 @@ impl Frame {
         self.refit(&self.columns.arrived(0..outcomes))
             .map(|(s, _)| s)
     }
+}
+
+/// What a recompute was asked for beyond its schedule.
+#[derive(Debug, Clone, Copy, Default, PartialEq)]
+pub struct Asked {
+    /// A full cross-fitted refit of the nuisance models.
+    pub refit: bool,
+    /// The cumulative window's rank metrics over all of its units, whatever
+    /// its growth since they were last computed.
+    pub refresh_ranks: bool,
 }
 
 /// Why the nuisance models are refitted.
@@ -232,7 +315,7 @@ impl Frame {
             self.features(scorable),
             &settings(&self.spec).nuisance,
         )?;
-        let mut all = vec![[f64::NAN; 3]; self.columns.units()];
+        let mut all = Shared::filled(self.columns.units(), [f64::NAN; 3]);
         for (i, &u) in scorable.iter().enumerate() {
             all[u] = [values.propensity[i], values.mu0[i], values.mu1[i]];
         }
@@ -246,27 +329,26 @@ impl Frame {
                 fit_units: scorable.len(),
                 fitted_at_ms: self.now_ms,
                 logged,
-                values: Arc::new(all),
+                values: all,
+                scored_outcomes: scorable.len(),
                 memo: Arc::default(),
             },
             scorable.len(),
         ))
     }
 
-    /// Scores units without nuisance values using the current fold models.
-    fn extend(
-        &self,
-        state: &NuisanceState,
-        scorable: &[usize],
-    ) -> Result<(NuisanceState, usize), EstimateError> {
-        // Sized once: a clone and then a resize would reallocate at twice
-        // the size.
-        let mut values: Vec<[f64; 3]> = Vec::with_capacity(self.columns.units());
-        values.extend_from_slice(&state.values);
-        values.resize(self.columns.units(), [f64::NAN; 3]);
-        let new: Vec<usize> = scorable
-            .iter()
-            .copied()
+    /// Scores the units whose outcomes arrived since `state` last scored
+    /// any, with the current fold models. Touches only those units.
+    fn extend(&self, state: &NuisanceState) -> Result<(NuisanceState, usize), EstimateError> {
+        let outcomes = self.columns.outcomes();
+        let mut values = state.values.clone();
+        while values.len() < self.columns.units() {
+            values.push([f64::NAN; 3]);
+        }
+        let new: Vec<usize> = self
+            .columns
+            .arrived(state.scored_outcomes.min(outcomes)..outcomes)
+            .into_iter()
             .filter(|&u| values[u][0].is_nan())
             .collect();
         if !new.is_empty() {
@@ -282,25 +364,34 @@ impl Frame {
             }
         }
         let mut next = state.clone();
-        next.values = Arc::new(values);
+        next.values = values;
+        next.scored_outcomes = outcomes;
         Ok((next, new.len()))
     }
 
     /// Decides whether to refit, then brings nuisance values up to date.
+    /// Without a refit this reads only the outcomes that arrived since the
+    /// last recompute.
     pub fn nuisance(
         &self,
         requested: bool,
     ) -> Result<(NuisanceState, Option<RefitReason>, usize), EstimateError> {
-        let scorable = self.scorable();
+        let outcomes = self.columns.outcomes();
         let reason = match &self.nuisance {
             _ if requested => Some(RefitReason::Requested),
             None => Some(RefitReason::FirstFit),
-            Some(s) if s.logged && !self.all_logged(&scorable) => {
+            Some(s)
+                if s.logged
+                    && self
+                        .columns
+                        .arrived(s.scored_outcomes.min(outcomes)..outcomes)
+                        .into_iter()
+                        .any(|u| self.columns.propensity_of(u).is_none()) =>
+            {
                 Some(RefitReason::PropensitySource)
             }
             Some(s)
-                if (scorable.len() as f64)
-                    >= (s.fit_units as f64) * (1.0 + self.spec.refit_growth) =>
+                if (outcomes as f64) >= (s.fit_units as f64) * (1.0 + self.spec.refit_growth) =>
             {
                 Some(RefitReason::Growth)
             }
@@ -315,29 +406,19 @@ impl Frame {
         };
         match (reason, &self.nuisance) {
             (None, Some(state)) => {
-                let (s, n) = self.extend(state, &scorable)?;
+                let (s, n) = self.extend(state)?;
                 Ok((s, None, n))
             }
             (reason, _) => {
-                let (s, n) = self.refit(&scorable)?;
+                let (s, n) = self.refit(&self.scorable())?;
                 Ok((s, reason.or(Some(RefitReason::Requested)), n))
             }
         }
     }
 
-    /// The windows to score: cumulative, recent and each cohort.
-    fn windows(&self) -> Vec<(String, pb::Window, Vec<usize>)> {
-        let mut out = Vec::new();
-        let cumulative = self.scorable();
-        out.push((
-            "cumulative".to_string(),
-            pb::Window {
-                kind: pb::window::Kind::Cumulative as i32,
-                cohort: String::new(),
-            },
-            cumulative.clone(),
-        ));
-        // Recent: the last N outcomes and / or the last D days of observations.
+    /// The recent window's units: the last N outcomes and / or the last D
+    /// days of observations, in unit order.
+    fn recent(&self) -> Vec<usize> {
         let outcomes = self.columns.outcomes();
         let n = match self.spec.recent_last_outcomes {
             0 => outcomes,
@@ -350,33 +431,7 @@ impl Frame {
                 self.columns.observed_at_ms[u] == 0 || self.columns.observed_at_ms[u] >= since
             });
         }
-        out.push((
-            "recent".to_string(),
-            pb::Window {
-                kind: pb::window::Kind::Recent as i32,
-                cohort: String::new(),
-            },
-            recent,
-        ));
-        let mut by_cohort: Vec<Vec<usize>> = vec![Vec::new(); self.cohort_names.len()];
-        for &u in &cumulative {
-            by_cohort[self.columns.cohort[u] as usize].push(u);
-        }
-        for (c, units) in by_cohort.into_iter().enumerate() {
-            if units.is_empty() {
-                continue;
-            }
-            let name = self.cohort_names[c].clone();
-            out.push((
-                format!("cohort:{name}"),
-                pb::Window {
-                    kind: pb::window::Kind::Cohort as i32,
-                    cohort: name,
-                },
-                units,
-            ));
-        }
-        out
+        recent
     }
 
     /// Which active models a window ranks, from how many of its units with
@@ -499,6 +554,7 @@ impl Frame {
                 table.treatment(),
                 &values.propensity,
             );
+            let cost = self.spec.treatment_cost;
             CumulativeMemo {
                 outcomes: self.columns.outcomes(),
                 covered,
@@ -507,6 +563,17 @@ impl Frame {
                 treated: table.n_treated(),
                 basis,
                 sums: basis_sums(&table, &values, &scored.phi, basis, &effects),
+                policy: effects
+                    .iter()
+                    .map(|e| {
+                        let mut p = PolicySums::default();
+                        p.add(&scored.phi, e, cost);
+                        p
+                    })
+                    .collect(),
+                ate: Moments::of(&scored.phi),
+                rank_units: n,
+                rank: scored.rank,
                 orders: scored.orders,
                 phi: scored.phi,
                 overlap,
@@ -533,6 +600,7 @@ impl Frame {
         &self,
         mut memo: CumulativeMemo,
         nuisance: &NuisanceState,
+        refresh_ranks: bool,
     ) -> Option<(WindowResult, CumulativeMemo)> {
         let outcomes = self.columns.outcomes();
         if memo.outcomes > outcomes {
@@ -561,6 +629,10 @@ impl Frame {
             for (total, part) in memo.sums.iter_mut().zip(&added) {
                 total.merge(part);
             }
+            for (p, e) in memo.policy.iter_mut().zip(&slices) {
+                p.add(&phi, e, self.spec.treatment_cost);
+            }
+            memo.ate.merge(&Moments::of(&phi));
             memo.units.extend(fresh.iter().map(|&u| u as u32));
             memo.phi.extend_from_slice(&phi);
             memo.treated += table.n_treated();
@@ -568,32 +640,20 @@ impl Frame {
                 .add(self.features(&fresh), table.treatment(), &values.propensity);
         }
         let n = memo.units.len();
-        let gathered: Vec<Vec<f64>> = ranked
-            .par_iter()
-            .map(|&k| self.gather(k, &memo.units))
-            .collect();
-        // Each model's order: the kept order merged with the new units' own.
-        let offset = memo.orders.first().map_or(0, Vec::len);
-        memo.orders
-            .par_iter_mut()
-            .zip(&gathered)
-            .for_each(|(order, all)| {
-                if offset < n {
-                    let later: Vec<u32> = descending_order(&all[offset..])
-                        .into_iter()
-                        .map(|i| i + offset as u32)
-                        .collect();
-                    *order = merge_orders(all, order, &later);
-                }
-            });
-        let ate = mean_se(&memo.phi);
-        let zero = vec![0.0; n];
-        let constant = vec![ate.estimate; n];
-        let mut effects: Vec<&[f64]> = vec![&zero, &constant];
-        effects.extend(gathered.iter().map(Vec::as_slice));
-        let identity: Vec<u32> = (0..n as u32).collect();
-        let mut orders: Vec<&[u32]> = vec![&identity, &identity];
-        orders.extend(memo.orders.iter().map(Vec::as_slice));
+        let grown = (n - memo.rank_units) as f64;
+        if refresh_ranks
+            || n < self.ranks_fresh_below
+            || (grown > 0.0 && grown >= self.spec.rank_refresh_growth * memo.rank_units as f64)
+        {
+            self.refresh_ranks(&mut memo);
+        }
+        let ate = memo.ate.estimate();
+        let cost = self.spec.treatment_cost;
+        let mut policy = vec![
+            uniform_policy_gain(ate, 0.0 > cost, cost),
+            uniform_policy_gain(ate, ate.estimate > cost, cost),
+        ];
+        policy.extend(memo.policy.iter().map(PolicySums::gain));
         let mut names = vec![
             (ZERO_EFFECT.to_string(), true),
             (CONSTANT_EFFECT.to_string(), true),
@@ -602,8 +662,7 @@ impl Frame {
         let board = assemble(
             Parts {
                 models: names,
-                effects: &effects,
-                phi: &memo.phi,
+                n_units: n,
                 ate,
                 n_treated: memo.treated,
                 sums: memo
@@ -611,7 +670,9 @@ impl Frame {
                     .iter()
                     .map(|s| memo.basis.resolve(s, ate.estimate))
                     .collect(),
-                orders: &orders,
+                policy,
+                rank: &memo.rank,
+                rank_units: memo.rank_units,
                 overlap: memo.overlap.report(&self.spec.feature_names),
                 nuisance: Some(nuisance.report.clone()),
             },
@@ -627,6 +688,45 @@ impl Frame {
         Some((result, memo))
     }
 
+    /// Brings the cumulative window's rank metrics up to all of its units:
+    /// each model's kept order is merged with the new units' own, one model
+    /// at a time per thread so that only those models' predictions are
+    /// gathered at once.
+    fn refresh_ranks(&self, memo: &mut CumulativeMemo) {
+        let settings = settings(&self.spec);
+        let (n, offset) = (memo.units.len(), memo.rank_units);
+        let (phi, units) = (&memo.phi, &memo.units);
+        let models: Vec<RankMetrics> = memo
+            .orders
+            .par_iter_mut()
+            .zip(&memo.ranked)
+            .enumerate()
+            .map(|(j, (order, &k))| {
+                let all = self.gather(k, units);
+                if offset < n {
+                    let later: Vec<u32> = descending_order(&all[offset..])
+                        .into_iter()
+                        .map(|i| i + offset as u32)
+                        .collect();
+                    *order = merge_orders(&all, order, &later);
+                }
+                column_rank_metrics(phi, &all, order, j + 2, &settings)
+            })
+            .collect();
+        // The baselines predict one value for every unit: every unit is
+        // tied, in unit order.
+        let identity: Vec<u32> = (0..n as u32).collect();
+        let ate = memo.ate.estimate().estimate;
+        let mut rank: Vec<RankMetrics> = [0.0, ate]
+            .iter()
+            .enumerate()
+            .map(|(c, &value)| column_rank_metrics(phi, &vec![value; n], &identity, c, &settings))
+            .collect();
+        rank.extend(models);
+        memo.rank = rank;
+        memo.rank_units = n;
+    }
+
     /// Model k's predictions for `units`.
     fn gather(&self, k: usize, units: &[u32]) -> Vec<f64> {
         let e = &self.models[k].1;
@@ -634,13 +734,13 @@ impl Frame {
     }
 
     /// The whole recompute.
-    pub fn compute(mut self, refit_requested: bool) -> Result<Computed, EstimateError> {
+    pub fn compute(mut self, asked: Asked) -> Result<Computed, EstimateError> {
         let previous = self
             .nuisance
             .as_mut()
             .map(|n| std::mem::take(&mut n.memo))
             .unwrap_or_default();
-        let (mut nuisance, refit, newly_scored) = self.nuisance(refit_requested)?;
+        let (mut nuisance, refit, newly_scored) = self.nuisance(asked.refit)?;
         let names: Vec<String> = self.models.iter().map(|(n, _)| n.clone()).collect();
         let mut previous = match Arc::try_unwrap(previous) {
             Ok(memo) => memo,
@@ -649,44 +749,66 @@ impl Frame {
         if refit.is_some() || previous.revision != self.revision || previous.models != names {
             previous = ScoringMemo::default();
         }
+        let mut cohort_index = std::mem::take(&mut previous.cohort_index);
+        cohort_index.update(&self.columns, self.cohort_names.len());
         let mut memo = ScoringMemo {
             revision: self.revision,
             models: names,
             ..ScoringMemo::default()
         };
+        let named = |mut result: WindowResult, key: String, kind: pb::window::Kind, cohort| {
+            result.key = key;
+            result.window = pb::Window {
+                kind: kind as i32,
+                cohort,
+            };
+            result
+        };
         let mut windows = Vec::new();
-        for (key, window, units) in self.windows() {
-            let mut result = if key == "cumulative" {
-                let extended = previous
-                    .cumulative
-                    .take()
-                    .and_then(|m| self.extend_cumulative(m, &nuisance));
-                match extended {
-                    Some((r, m)) => {
-                        memo.cumulative = Some(m);
-                        r
-                    }
-                    None => {
-                        let (r, m) = self.score_window(&units, &nuisance, true);
-                        memo.cumulative = m;
-                        r
-                    }
-                }
-            } else if key == "recent" {
-                self.score_window(&units, &nuisance, false).0
-            } else {
-                match previous.cohorts.remove(&key) {
-                    Some((count, r)) if count == units.len() => r,
-                    _ => self.score_window(&units, &nuisance, false).0,
+        let cumulative = match previous
+            .cumulative
+            .take()
+            .and_then(|m| self.extend_cumulative(m, &nuisance, asked.refresh_ranks))
+        {
+            Some((r, m)) => {
+                memo.cumulative = Some(m);
+                r
+            }
+            None => {
+                let (r, m) = self.score_window(&self.scorable(), &nuisance, true);
+                memo.cumulative = m;
+                r
+            }
+        };
+        windows.push(named(
+            cumulative,
+            "cumulative".into(),
+            pb::window::Kind::Cumulative,
+            String::new(),
+        ));
+        windows.push(named(
+            self.score_window(&self.recent(), &nuisance, false).0,
+            "recent".into(),
+            pb::window::Kind::Recent,
+            String::new(),
+        ));
+        for (c, units) in cohort_index.units.iter().enumerate() {
+            let Some(name) = self.cohort_names.get(c).filter(|_| !units.is_empty()) else {
+                continue;
+            };
+            let key = format!("cohort:{name}");
+            let result = match previous.cohorts.remove(&key) {
+                Some((count, r)) if count == units.len() => r,
+                _ => {
+                    let units: Vec<usize> = units.iter().map(|&u| u as usize).collect();
+                    self.score_window(&units, &nuisance, false).0
                 }
             };
-            result.key = key.clone();
-            result.window = window;
-            if key.starts_with("cohort:") {
-                memo.cohorts.insert(key, (units.len(), result.clone()));
-            }
+            let result = named(result, key.clone(), pb::window::Kind::Cohort, name.clone());
+            memo.cohorts.insert(key, (units.len(), result.clone()));
             windows.push(result);
         }
+        memo.cohort_index = cohort_index;
         nuisance.memo = Arc::new(memo);
         Ok(Computed {
             nuisance,
@@ -754,6 +876,7 @@ mod tests {
             recompute_every_seconds: 0,
             refit_growth: 10.0,
             refit_every_seconds: 0,
+            rank_refresh_growth: 0.0,
             min_coverage: 0.0,
             alpha: 0.0,
             seed: 3,
@@ -788,6 +911,7 @@ mod tests {
             revision: 0,
             nuisance,
             now_ms: 0,
+            ranks_fresh_below: RANKS_ALWAYS_FRESH_BELOW,
         }
     }
 
@@ -826,14 +950,16 @@ mod tests {
 
     #[test]
     fn merged_cumulative_equals_a_from_scratch_pass() {
-        let first = frame(3000, None).compute(false).expect("first fit");
+        let first = frame(3000, None)
+            .compute(Asked::default())
+            .expect("first fit");
         assert!(first.refit.is_some());
         let kept = first.nuisance.clone();
         assert!(kept.memo.cumulative.is_some());
 
         // Two more cohorts arrive; the fit is current, so nothing is refit.
         let second = frame(5000, Some(kept.clone()))
-            .compute(false)
+            .compute(Asked::default())
             .expect("incremental");
         assert!(second.refit.is_none());
         assert_eq!(second.newly_scored, 2000);
@@ -843,7 +969,9 @@ mod tests {
         // The same recompute without the memo scores every window afresh.
         let mut cleared = kept;
         cleared.memo = Arc::default();
-        let scratch = frame(5000, Some(cleared)).compute(false).expect("scratch");
+        let scratch = frame(5000, Some(cleared))
+            .compute(Asked::default())
+            .expect("scratch");
         assert_close(
             &board(&second, "cumulative"),
             &board(&scratch, "cumulative"),
@@ -855,5 +983,105 @@ mod tests {
         }
         // Cohorts that did not change are the kept results, bit for bit.
         assert_eq!(board(&second, "cohort:c0"), board(&first, "cohort:c0"));
+    }
+
+    /// The board without the rank and calibration metrics (and the count of
+    /// units they cover).
+    fn without_rank_metrics(mut v: serde_json::Value) -> serde_json::Value {
+        if let Some(o) = v.as_object_mut() {
+            o.remove("rank_metrics_units");
+        }
+        for m in v["models"].as_array_mut().into_iter().flatten() {
+            if let Some(o) = m.as_object_mut() {
+                for key in ["autoc", "qini", "blp_slope", "calibration"] {
+                    o.remove(key);
+                }
+            }
+        }
+        v
+    }
+
+    fn rank_metrics_of(v: &serde_json::Value) -> Vec<serde_json::Value> {
+        let mut models: Vec<serde_json::Value> = v["models"]
+            .as_array()
+            .expect("models")
+            .iter()
+            .map(|m| {
+                serde_json::json!([
+                    m["name"],
+                    m["autoc"],
+                    m["qini"],
+                    m["blp_slope"],
+                    m["calibration"]
+                ])
+            })
+            .collect();
+        models.sort_by_key(|m| m[0].to_string());
+        models
+    }
+
+    #[test]
+    fn cumulative_rank_metrics_wait_for_the_set_growth_and_the_rest_is_exact() {
+        let at = |units: usize, nuisance: Option<NuisanceState>| {
+            let mut f = frame(units, nuisance);
+            f.ranks_fresh_below = 0;
+            f
+        };
+        let first = at(4000, None).compute(Asked::default()).expect("first fit");
+        let scratch = |units: usize| {
+            let mut cleared = first.nuisance.clone();
+            cleared.memo = Arc::default();
+            at(units, Some(cleared))
+                .compute(Asked::default())
+                .expect("scratch")
+        };
+
+        // 100 new units are 2.5% of the 4,000 ranked: under the default 5%,
+        // so the rank metrics are the first recompute's, and say so.
+        let second = at(4100, Some(first.nuisance.clone()))
+            .compute(Asked::default())
+            .expect("incremental");
+        let (carried, fresh) = (
+            board(&second, "cumulative"),
+            board(&scratch(4100), "cumulative"),
+        );
+        assert_eq!(carried["n_units"], 4100);
+        assert_eq!(carried["rank_metrics_units"], 4000);
+        assert_eq!(fresh["rank_metrics_units"], 4100);
+        assert_eq!(
+            rank_metrics_of(&carried),
+            rank_metrics_of(&board(&first, "cumulative"))
+        );
+        assert_ne!(rank_metrics_of(&carried), rank_metrics_of(&fresh));
+        // Everything else is the from-scratch figure.
+        assert_close(
+            &without_rank_metrics(carried),
+            &without_rank_metrics(fresh),
+            "",
+        );
+
+        // Asked for, a refresh needs no growth.
+        let mut asked = at(4100, Some(second.nuisance.clone()));
+        asked.nuisance.as_mut().expect("fit").memo = second.nuisance.memo.clone();
+        let on_request = asked
+            .compute(Asked {
+                refresh_ranks: true,
+                ..Asked::default()
+            })
+            .expect("asked");
+        assert_close(
+            &board(&on_request, "cumulative"),
+            &board(&scratch(4100), "cumulative"),
+            "",
+        );
+
+        // 200 more make 7.5% of the 4,000: the refresh brings every figure
+        // to the from-scratch pass over 4,300 units.
+        let third = at(4300, Some(second.nuisance.clone()))
+            .compute(Asked::default())
+            .expect("refresh");
+        let refreshed = board(&third, "cumulative");
+        assert_eq!(refreshed["rank_metrics_units"], 4300);
+        assert_close(&refreshed, &board(&scratch(4300), "cumulative"), "");
     }
 }

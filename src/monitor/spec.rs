@@ -22,6 +22,11 @@ pub struct DatasetSpec {
     pub recompute_every_seconds: u32,
     pub refit_growth: f64,
     pub refit_every_seconds: u32,
+    /// The cumulative window's rank metrics are recomputed when it has
+    /// grown by this share since they last were (specs stored before the
+    /// setting existed read as the default).
+    #[serde(default = "default_rank_refresh_growth")]
+    pub rank_refresh_growth: f64,
     pub min_coverage: f64,
     pub alpha: f64,
     pub seed: u64,
@@ -35,6 +40,11 @@ pub const DEFAULT_RECENT_OUTCOMES: u32 = 5000;
 pub const DEFAULT_EVERY_OUTCOMES: u32 = 1000;
 pub const DEFAULT_EVERY_SECONDS: u32 = 60;
 pub const DEFAULT_REFIT_GROWTH: f64 = 0.5;
+pub const DEFAULT_RANK_REFRESH_GROWTH: f64 = 0.05;
+
+fn default_rank_refresh_growth() -> f64 {
+    DEFAULT_RANK_REFRESH_GROWTH
+}
 pub const DEFAULT_MIN_COVERAGE: f64 = 0.95;
 pub const DEFAULT_ALPHA: f64 = 0.05;
 
@@ -114,6 +124,8 @@ impl DatasetSpec {
         self.recompute_every_seconds =
             or_default(self.recompute_every_seconds, DEFAULT_EVERY_SECONDS);
         self.refit_growth = or_default(self.refit_growth, DEFAULT_REFIT_GROWTH);
+        self.rank_refresh_growth =
+            or_default(self.rank_refresh_growth, DEFAULT_RANK_REFRESH_GROWTH);
         self.min_coverage = or_default(self.min_coverage, DEFAULT_MIN_COVERAGE);
         self.alpha = or_default(self.alpha, DEFAULT_ALPHA);
 
@@ -145,6 +157,12 @@ impl DatasetSpec {
             return bad(
                 "recompute.refit_growth",
                 format!("{} must be > 0", self.refit_growth),
+            );
+        }
+        if !(self.rank_refresh_growth > 0.0 && self.rank_refresh_growth.is_finite()) {
+            return bad(
+                "recompute.rank_refresh_growth",
+                format!("{} must be > 0", self.rank_refresh_growth),
             );
         }
         if !(self.alpha > 0.0 && self.alpha < 1.0) {

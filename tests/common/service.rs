@@ -270,6 +270,7 @@ pub async fn recompute(c: &mut Clients, dataset: &str, refit: bool) -> pb::Recom
         .recompute(pb::RecomputeRequest {
             dataset: dataset.into(),
             refit,
+            ..Default::default()
         })
         .await
         .expect("recompute")
