@@ -38,6 +38,7 @@ async fn lifecycle_matches_the_offline_score_and_survives_a_restart() {
     for m in &models {
         register(&mut c, name, &m.predictions.name).await;
     }
+    let mut first_changed = 0;
     for k in 0..COHORTS {
         let range = k * PER_COHORT..(k + 1) * PER_COHORT;
         let cohort = format!("2026-{:02}", k + 1);
@@ -70,7 +71,21 @@ async fn lifecycle_matches_the_offline_score_and_survives_a_restart() {
             })
             .collect();
         send_outcomes(&mut c, name, outcomes).await;
-        recompute(&mut c, name, false).await;
+        let r = recompute(&mut c, name, false).await;
+        // A cohort that gained nothing keeps its board from the recompute
+        // that last changed it (a refit rescores every window); the new
+        // one is this recompute's.
+        if r.refitted || k == 0 {
+            first_changed = r.snapshot_id;
+        }
+        assert_eq!(
+            cohort_board(&mut c, name, "2026-01").await.snapshot_id,
+            first_changed
+        );
+        assert_eq!(
+            cohort_board(&mut c, name, &cohort).await.snapshot_id,
+            r.snapshot_id
+        );
     }
     let refit = recompute(&mut c, name, true).await;
     assert!(refit.refitted);
@@ -136,6 +151,17 @@ async fn lifecycle_matches_the_offline_score_and_survives_a_restart() {
         .into_inner();
     assert_eq!(history.points.len(), COHORTS + 1);
 
+    // A recompute with nothing new stores the windows it recomputes; the
+    // cohorts keep the refit's boards, and a restart serves each window's
+    // latest.
+    let idle = recompute(&mut c, name, false).await;
+    let cohorts_before: Vec<pb::Scoreboard> = cohort_boards(&mut c, name).await;
+    assert!(cohorts_before
+        .iter()
+        .all(|b| b.snapshot_id == refit.snapshot_id));
+    let served = board(&mut c, name, pb::window::Kind::Cumulative).await;
+    assert_eq!(served.snapshot_id, idle.snapshot_id);
+
     // Restart on the same directory.
     srv.stop().await.expect("stop");
     let srv = server(&dir).await;
@@ -163,6 +189,8 @@ async fn lifecycle_matches_the_offline_score_and_survives_a_restart() {
     assert_eq!(listed.models.len(), 3);
     let restored = board(&mut c, name, pb::window::Kind::Cumulative).await;
     assert_eq!(restored.json, served.json, "latest scoreboard restored");
+    assert_eq!(restored.snapshot_id, idle.snapshot_id);
+    assert_eq!(cohort_boards(&mut c, name).await, cohorts_before);
     let history_after = c
         .scoring
         .get_history(pb::GetHistoryRequest {
@@ -174,7 +202,7 @@ async fn lifecycle_matches_the_offline_score_and_survives_a_restart() {
         .await
         .expect("history")
         .into_inner();
-    assert_eq!(history_after.points.len(), COHORTS + 1);
+    assert_eq!(history_after.points.len(), COHORTS + 2);
     let again = recompute(&mut c, name, false).await;
     assert!(!again.refitted, "the reproduced fit is current");
     let recomputed = board(&mut c, name, pb::window::Kind::Cumulative).await;
@@ -896,4 +924,13 @@ async fn client_commands_work_and_backfills_resume() {
     let v: serde_json::Value = serde_json::from_str(&board_json).expect("json");
     assert_eq!(v["scoreboard"]["n_units"], 800);
     srv.stop().await.expect("stop");
+}
+
+/// Every cohort window's board, in cohort order.
+async fn cohort_boards(c: &mut Clients, name: &str) -> Vec<pb::Scoreboard> {
+    let mut out = Vec::new();
+    for k in 0..COHORTS {
+        out.push(cohort_board(c, name, &format!("2026-{:02}", k + 1)).await);
+    }
+    out
 }

@@ -238,8 +238,8 @@ pub struct UnitKeys {
     /// u - 1's ends (or at 0).
     ends: Vec<u64>,
     /// Unit numbers, hashed by their key's bytes. Keys are unique: intake
-    /// refuses a second unit with a stored key, and the store holds
-    /// (dataset, key) unique. Unit numbers fit in u32 (the scoring memo
+    /// refuses a second unit with a stored key, and a rebuild refuses a
+    /// store that holds one twice. This table is the only key index. Unit numbers fit in u32 (the scoring memo
     /// keeps units as u32 too).
     table: HashTable<u32>,
     /// Seeded per process, like a std `HashMap`'s: keys come from clients.

@@ -222,9 +222,25 @@ impl Monitor {
         let span = info_span!("rebuild", dataset = %stored.spec.name);
         async {
             let mut cache = DatasetCache::new(stored.spec.feature_names.len());
+            // Keys are unique by intake's check, not by an index (see
+            // migrations/0003): a store that holds one twice was written by
+            // something else, and is refused rather than served.
+            let mut twice = None;
             self.store
-                .for_each_unit(stored.id, |u| cache.add_unit(&u))
+                .for_each_unit(stored.id, |u| match cache.unit_of(&u.key) {
+                    Some(first) => {
+                        twice.get_or_insert((u.key, first, u.seq));
+                    }
+                    None => cache.add_unit(&u),
+                })
                 .await?;
+            if let Some((key, first, seq)) = twice {
+                return Err(StoreError::Corrupt(format!(
+                    "dataset {:?}: unit key {key:?} is stored twice (units {first} and {seq})",
+                    stored.spec.name
+                ))
+                .into());
+            }
             self.store
                 .for_each_outcome(stored.id, |o| cache.add_outcome(&o))
                 .await?;
@@ -258,12 +274,10 @@ impl Monitor {
                 });
             }
             let mut latest = Boards::new();
-            if let Some((_, boards)) = self.store.latest_boards(stored.id).await? {
-                for (key, bytes) in boards {
-                    let board = pb::Scoreboard::decode(bytes.as_slice())
-                        .map_err(|e| StoreError::Corrupt(format!("scoreboard {key}: {e}")))?;
-                    latest.insert(key, board);
-                }
+            for (key, bytes) in self.store.latest_boards(stored.id).await? {
+                let board = pb::Scoreboard::decode(bytes.as_slice())
+                    .map_err(|e| StoreError::Corrupt(format!("scoreboard {key}: {e}")))?;
+                latest.insert(key, board);
             }
             if let Some(recent) = latest.get("recent") {
                 state.alerts = AlertState::from_board(recent);
@@ -716,7 +730,16 @@ impl Monitor {
         let mut encoded = Vec::new();
         let mut scores = Vec::new();
         let mut recent_board = None;
+        // A window the recompute did not change keeps its published board
+        // (and snapshot id), and the snapshot does not store it again:
+        // with a cohort window per week or month, storing every one would
+        // make each recompute cost what the history's cohorts cost.
+        let published = h.boards();
         for w in &computed.windows {
+            if let Some(kept) = w.reused.then(|| published.get(&w.key)).flatten() {
+                boards.insert(w.key.clone(), kept.clone());
+                continue;
+            }
             let parts = board::BoardParts {
                 dataset: &h.name,
                 window: w.window.clone(),
@@ -744,7 +767,11 @@ impl Monitor {
                         estimate: e.estimate,
                         se: e.se,
                         rank: i64::from(m.rank),
-                        units: b.units as i64,
+                        units: if matches!(estimator, "autoc" | "qini") {
+                            b.rank_metrics_units as i64
+                        } else {
+                            b.units as i64
+                        },
                     });
                 }
             }

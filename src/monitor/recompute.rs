@@ -220,6 +220,8 @@ pub struct WindowResult {
     pub board: Result<Scoreboard, String>,
     pub units: usize,
     pub incomplete: Vec<pb::IncompleteModel>,
+    /// Kept from the previous recompute: the window's units did not change.
+    pub reused: bool,
 }
 
 pub struct Computed {
@@ -519,6 +521,7 @@ impl Frame {
             board,
             units: n,
             incomplete,
+            reused: false,
         };
         if let Some(state) = self.degenerate(&common) {
             return (result(Err(state), incomplete), None);
@@ -684,6 +687,7 @@ impl Frame {
             board: Ok(board),
             units: n,
             incomplete,
+            reused: false,
         };
         Some((result, memo))
     }
@@ -798,7 +802,7 @@ impl Frame {
             };
             let key = format!("cohort:{name}");
             let result = match previous.cohorts.remove(&key) {
-                Some((count, r)) if count == units.len() => r,
+                Some((count, r)) if count == units.len() => WindowResult { reused: true, ..r },
                 _ => {
                     let units: Vec<usize> = units.iter().map(|&u| u as usize).collect();
                     self.score_window(&units, &nuisance, false).0

@@ -212,10 +212,8 @@ impl Store {
             })
             .foreign_keys(true)
             .pragma("wal_autocheckpoint", "0")
-            // 16 MiB of page cache per connection (SQLite's default is 2 MiB):
-            // intake inserts into the (dataset, key) index at every batch, and
-            // once the index outgrows the cache each insert rereads pages from
-            // the OS (units/s at 1M units: about 100k with 2 MiB, 140k with 16).
+            // 16 MiB of page cache per connection (SQLite's default is 2 MiB),
+            // for the B-tree pages intake and rebuilds walk.
             .pragma("cache_size", "-16384")
             .busy_timeout(Duration::from_secs(10));
         let pool = SqlitePoolOptions::new()
@@ -546,7 +544,9 @@ impl Store {
     }
 
     /// Stores a snapshot, its boards and its per-model values in one
-    /// transaction; returns the snapshot id.
+    /// transaction; returns the snapshot id. `boards` holds the windows the
+    /// recompute changed; [`Store::latest_boards`] finds each window's
+    /// latest.
     #[allow(clippy::too_many_arguments)]
     pub async fn insert_snapshot(
         &self,
@@ -605,26 +605,20 @@ impl Store {
         Ok(id)
     }
 
-    /// The boards of the latest snapshot, by window key.
-    pub async fn latest_boards(
-        &self,
-        dataset_id: i64,
-    ) -> StoreResult<Option<(i64, Vec<(String, Vec<u8>)>)>> {
-        let id: Option<i64> = sqlx::query_scalar(
-            "SELECT id FROM snapshots WHERE dataset_id = ? ORDER BY id DESC LIMIT 1",
+    /// Each window's latest board: a snapshot stores only the windows its
+    /// recompute changed (see [`Store::insert_snapshot`]).
+    pub async fn latest_boards(&self, dataset_id: i64) -> StoreResult<Vec<(String, Vec<u8>)>> {
+        let rows = sqlx::query(
+            "SELECT b.window, b.board FROM snapshot_boards b JOIN ( \
+                 SELECT sb.window AS window, MAX(sb.snapshot_id) AS id \
+                 FROM snapshot_boards sb JOIN snapshots s ON s.id = sb.snapshot_id \
+                 WHERE s.dataset_id = ? GROUP BY sb.window \
+             ) latest ON b.snapshot_id = latest.id AND b.window = latest.window",
         )
         .bind(dataset_id)
-        .fetch_optional(&self.pool)
+        .fetch_all(&self.pool)
         .await?;
-        let Some(id) = id else { return Ok(None) };
-        let rows = sqlx::query("SELECT window, board FROM snapshot_boards WHERE snapshot_id = ?")
-            .bind(id)
-            .fetch_all(&self.pool)
-            .await?;
-        Ok(Some((
-            id,
-            rows.into_iter().map(|r| (r.get(0), r.get(1))).collect(),
-        )))
+        Ok(rows.into_iter().map(|r| (r.get(0), r.get(1))).collect())
     }
 
     /// Largest snapshot id in the store (0 when none).

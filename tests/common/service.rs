@@ -291,6 +291,20 @@ pub async fn board(c: &mut Clients, dataset: &str, kind: pb::window::Kind) -> pb
         .into_inner()
 }
 
+pub async fn cohort_board(c: &mut Clients, dataset: &str, cohort: &str) -> pb::Scoreboard {
+    c.scoring
+        .get_scoreboard(pb::GetScoreboardRequest {
+            dataset: dataset.into(),
+            window: Some(pb::Window {
+                kind: pb::window::Kind::Cohort as i32,
+                cohort: cohort.into(),
+            }),
+        })
+        .await
+        .expect("cohort scoreboard")
+        .into_inner()
+}
+
 /// Every numeric leaf of two JSON documents agrees to `tol` (relative to
 /// max(1, |value|)); every key of one is in the other.
 pub fn assert_json_close(a: &serde_json::Value, b: &serde_json::Value, tol: f64, path: &str) {
