@@ -1277,3 +1277,45 @@ async fn cancelled_calls_never_split_the_store_from_memory() {
     assert!(cut_off > 0, "no call was cut off by its deadline");
     srv.stop().await.expect("stop");
 }
+
+/// Unit keys are unique by intake's check (the store keeps no key index):
+/// a store that holds a key twice was written by something else, and the
+/// server refuses to start on it rather than serve two units as one.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_store_holding_a_unit_key_twice_is_refused_at_start() {
+    let dir = TempDir::new("key-twice");
+    let srv = server(&dir).await;
+    let mut c = clients(srv.grpc_addr).await;
+    c.datasets
+        .create_dataset(pb::CreateDatasetRequest {
+            spec: Some(continuous_spec("twice", 2)),
+        })
+        .await
+        .expect("create");
+    let rows = vec![
+        unit_row("a", &[0.1, 0.2], 1.0, None, "c1"),
+        unit_row("b", &[0.3, 0.4], 0.0, None, "c1"),
+    ];
+    assert_eq!(send_units(&mut c, "twice", rows).await.accepted, 2);
+    srv.stop().await.expect("stop");
+
+    let mut db = SqliteConnectOptions::new()
+        .filename(dir.0.join(plumbline::config::DATABASE_FILE))
+        .connect()
+        .await
+        .expect("open");
+    sqlx::query(
+        "INSERT INTO units SELECT dataset_id, 2, key, features, treatment, propensity, \
+         cohort, assigned_at_ms, received_at_ms FROM units WHERE seq = 0",
+    )
+    .execute(&mut db)
+    .await
+    .expect("write a second unit with key a");
+    db.close().await.expect("close");
+
+    let refused = start(&config(&dir)).await.err().expect("refused");
+    assert!(
+        refused.contains(r#"unit key "a" is stored twice (units 0 and 2)"#),
+        "{refused}"
+    );
+}

@@ -12,7 +12,7 @@ use super::data::{FeatureRows, ModelPredictions, UnitTable, CONSTANT_EFFECT, ZER
 use super::error::EstimateError;
 use super::estimators::{self, Estimator, UnitView};
 use super::overlap::{overlap_report, OverlapReport};
-use super::policy::{policy_gain, PolicyGain};
+use super::policy::{PolicyGain, PolicySums};
 use super::pseudo::{aipw_ate, aipw_pseudo_outcome};
 use super::stats::{holm_reject, p_greater, Estimate};
 use super::sums::ScoreSums;
@@ -257,6 +257,38 @@ impl UnitColumns<'_> {
     }
 }
 
+/// Fills `out` with a column's predictions for the units `start..` of a
+/// pass (as many as `out` holds).
+pub type Gather<'a> = dyn Fn(usize, &mut [f64]) + Sync + 'a;
+
+/// One scored column's predictions, read a block at a time so that a pass
+/// need not hold every model's predictions at once: a slice, one value for
+/// every unit (the baselines), or values gathered on demand from wherever
+/// the caller keeps them.
+#[derive(Clone, Copy)]
+pub enum Column<'a> {
+    Slice(&'a [f64]),
+    Uniform(f64),
+    Gathered(&'a Gather<'a>),
+}
+
+impl Column<'_> {
+    fn fill(&self, start: usize, out: &mut [f64]) {
+        match self {
+            Column::Slice(values) => out.copy_from_slice(&values[start..start + out.len()]),
+            Column::Uniform(value) => out.fill(*value),
+            Column::Gathered(gather) => gather(start, out),
+        }
+    }
+
+    /// The predictions of the first `n` units.
+    pub fn collect(&self, n: usize) -> Vec<f64> {
+        let mut out = vec![0.0; n];
+        self.fill(0, &mut out);
+        out
+    }
+}
+
 /// The scoring pass proper: every estimator's contribution for every unit
 /// and model (`effects[k]` is model k's prediction per unit), gathered into
 /// one mergeable [`ScoreSums`] per estimator of [`estimators::ALL`]. Units
@@ -264,6 +296,12 @@ impl UnitColumns<'_> {
 /// model, the co-moments as vectorized dot products) and chunks of
 /// [`CHUNK`] in parallel.
 pub fn contribution_sums(units: &UnitColumns<'_>, effects: &[&[f64]]) -> Vec<ScoreSums> {
+    let columns: Vec<Column<'_>> = effects.iter().map(|e| Column::Slice(e)).collect();
+    column_sums(units, &columns)
+}
+
+/// [`contribution_sums`] over columns read a block at a time.
+pub fn column_sums(units: &UnitColumns<'_>, effects: &[Column<'_>]) -> Vec<ScoreSums> {
     let n = units.len();
     let m = effects.len();
     let chunks: Vec<(usize, usize)> = (0..n)
@@ -285,7 +323,7 @@ pub fn contribution_sums(units: &UnitColumns<'_>, effects: &[&[f64]]) -> Vec<Sco
 
 fn chunk_sums(
     units: &UnitColumns<'_>,
-    effects: &[&[f64]],
+    effects: &[Column<'_>],
     start: usize,
     end: usize,
 ) -> Vec<ScoreSums> {
@@ -293,6 +331,7 @@ fn chunk_sums(
     let mut sums: Vec<ScoreSums> = estimators::ALL.iter().map(|_| ScoreSums::new(m)).collect();
     let mut views: Vec<UnitView> = Vec::with_capacity(BLOCK);
     let mut columns = vec![0.0; m * BLOCK];
+    let mut predictions = vec![0.0; m * BLOCK];
     let mut block_start = start;
     while block_start < end {
         let block_end = (block_start + BLOCK).min(end);
@@ -300,9 +339,16 @@ fn chunk_sums(
         views.clear();
         views.extend((block_start..block_end).map(|i| units.view(i)));
         let columns = &mut columns[..m * len];
+        let predictions = &mut predictions[..m * len];
+        for (block, effect) in predictions.chunks_exact_mut(len).zip(effects) {
+            effect.fill(block_start, block);
+        }
         for (e, s) in estimators::ALL.iter().zip(sums.iter_mut()) {
-            for (column, tau_hat) in columns.chunks_exact_mut(len).zip(effects) {
-                e.contributions(&views, &tau_hat[block_start..block_end], column);
+            for (column, tau_hat) in columns
+                .chunks_exact_mut(len)
+                .zip(predictions.chunks_exact(len))
+            {
+                e.contributions(&views, tau_hat, column);
             }
             s.push_block(columns, len);
         }
@@ -372,22 +418,6 @@ pub struct RankMetrics {
     pub calibration: Calibration,
 }
 
-/// [`RankMetrics`] of every column, from each column's
-/// [`descending_order`]; columns in parallel, results in column order.
-pub fn rank_metrics(
-    phi: &[f64],
-    effects: &[&[f64]],
-    orders: &[&[u32]],
-    settings: &Settings,
-) -> Vec<RankMetrics> {
-    effects
-        .par_iter()
-        .zip(orders)
-        .enumerate()
-        .map(|(k, (&tau, &order))| column_rank_metrics(phi, tau, order, k, settings))
-        .collect()
-}
-
 /// [`RankMetrics`] of column `column` (its index seeds the bootstrap, when
 /// one is asked for), from its [`descending_order`].
 pub fn column_rank_metrics(
@@ -439,16 +469,32 @@ pub fn score(
     models: &[ModelPredictions],
     settings: &Settings,
 ) -> Scoreboard {
+    let columns: Vec<ScoredColumn<'_>> = models
+        .iter()
+        .map(|m| ScoredColumn {
+            name: m.name.clone(),
+            baseline: m.baseline,
+            effects: Column::Slice(&m.effects),
+        })
+        .collect();
     score_keeping(
         table,
         table.rows(),
         feature_names,
         nuisance,
         nuisance_report,
-        models,
+        &columns,
         settings,
     )
     .board
+}
+
+/// A model to score: its name, whether it is a built-in baseline, and its
+/// predictions for the pass's units.
+pub struct ScoredColumn<'a> {
+    pub name: String,
+    pub baseline: bool,
+    pub effects: Column<'a>,
 }
 
 /// A scoreboard with the per-unit values a later pass over more units can
@@ -460,28 +506,32 @@ pub struct Scored {
     pub orders: Vec<Vec<u32>>,
     /// Per column (zero-effect, constant-effect, then `models`).
     pub rank: Vec<RankMetrics>,
+    /// Per column, as for `rank`.
+    pub policy: Vec<PolicySums>,
 }
 
-/// [`score`], keeping the pseudo-outcomes and the models' orders; the
-/// features (read only for the overlap report) are `features`, one row per
-/// unit of `table`, wherever they are stored.
+/// [`score`], keeping the pseudo-outcomes, the models' orders, rank
+/// metrics and policy sums; the features (read only for the overlap
+/// report) are `features`, one row per unit of `table`, wherever they are
+/// stored. The models' predictions are read a block at a time for the
+/// estimators' sums, then one model per thread for everything that needs
+/// a whole column (order, rank metrics, policy), so a pass holds at most a
+/// thread's worth of full columns beyond the orders it keeps.
 pub fn score_keeping(
     table: &UnitTable,
     features: FeatureRows<'_>,
     feature_names: &[String],
     nuisance: &Nuisance,
     nuisance_report: Option<NuisanceReport>,
-    models: &[ModelPredictions],
+    models: &[ScoredColumn<'_>],
     settings: &Settings,
 ) -> Scored {
     let n = table.len();
     let (y, w) = (table.outcome(), table.treatment());
     let phi = aipw_pseudo_outcome(y, w, nuisance);
     let ate = aipw_ate(&phi);
-    let zero = vec![0.0; n];
-    let constant = vec![ate.estimate; n];
-    let mut effects: Vec<&[f64]> = vec![&zero, &constant];
-    effects.extend(models.iter().map(|m| m.effects.as_slice()));
+    let mut columns = vec![Column::Uniform(0.0), Column::Uniform(ate.estimate)];
+    columns.extend(models.iter().map(|m| m.effects));
     let units = UnitColumns {
         outcome: y,
         treatment: w,
@@ -490,15 +540,26 @@ pub fn score_keeping(
         mu1: &nuisance.mu1,
         phi: &phi,
     };
-    let sums = contribution_sums(&units, &effects);
-    let orders: Vec<Vec<u32>> = effects.par_iter().map(|e| descending_order(e)).collect();
-    let order_slices: Vec<&[u32]> = orders.iter().map(Vec::as_slice).collect();
+    let sums = column_sums(&units, &columns);
+    type Whole = (Vec<Vec<u32>>, (Vec<RankMetrics>, Vec<PolicySums>));
+    let (mut orders, (rank, policy)): Whole = columns
+        .par_iter()
+        .enumerate()
+        .map(|(k, column)| {
+            let tau = column.collect(n);
+            let order = descending_order(&tau);
+            let rank = column_rank_metrics(&phi, &tau, &order, k, settings);
+            let mut policy = PolicySums::default();
+            policy.add(&phi, &tau, settings.cost);
+            (order, (rank, policy))
+        })
+        .unzip();
+    orders.drain(..2);
     let mut names = vec![
         (ZERO_EFFECT.to_string(), true),
         (CONSTANT_EFFECT.to_string(), true),
     ];
     names.extend(models.iter().map(|m| (m.name.clone(), m.baseline)));
-    let rank = rank_metrics(&phi, &effects, &order_slices, settings);
     let board = assemble(
         Parts {
             models: names,
@@ -506,10 +567,7 @@ pub fn score_keeping(
             ate,
             n_treated: table.n_treated(),
             sums,
-            policy: effects
-                .iter()
-                .map(|e| policy_gain(&phi, e, settings.cost))
-                .collect(),
+            policy: policy.iter().map(PolicySums::gain).collect(),
             rank: &rank,
             rank_units: n,
             overlap: overlap_report(
@@ -523,13 +581,12 @@ pub fn score_keeping(
         },
         settings,
     );
-    let mut orders = orders;
-    orders.drain(..2);
     Scored {
         board,
         phi,
         orders,
         rank,
+        policy,
     }
 }
 

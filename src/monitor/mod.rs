@@ -173,6 +173,19 @@ impl DatasetHandle {
     }
 }
 
+/// Hands the memory a refit freed back to the operating system. glibc
+/// keeps freed heap memory for reuse, and a refit frees its whole working
+/// set (fold data, per-unit vectors) at once: without this the process
+/// holds its refit peak until the next one, and the recomputes in between
+/// add their working sets on top of it.
+fn release_freed_memory() {
+    #[cfg(all(target_os = "linux", target_env = "gnu"))]
+    // SAFETY: malloc_trim only returns free heap pages to the kernel.
+    unsafe {
+        libc::malloc_trim(0);
+    }
+}
+
 pub struct Monitor {
     store: Store,
     metrics: Arc<Metrics>,
@@ -706,9 +719,15 @@ impl Monitor {
             )));
         }
         let spec = frame.spec.clone();
-        let computed = tokio::task::spawn_blocking(move || frame.compute(asked))
-            .await
-            .map_err(|e| MonitorError::Internal(e.to_string()))??;
+        let computed = tokio::task::spawn_blocking(move || {
+            let computed = frame.compute(asked);
+            if computed.as_ref().is_ok_and(|c| c.refit.is_some()) {
+                release_freed_memory();
+            }
+            computed
+        })
+        .await
+        .map_err(|e| MonitorError::Internal(e.to_string()))??;
         let mut nuisance = computed.nuisance;
         if computed.refit.is_some() {
             let report = serde_json::to_string(&nuisance.report).unwrap_or_default();

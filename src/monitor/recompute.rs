@@ -33,15 +33,13 @@ use crate::estimate::overlap::OverlapSums;
 use crate::estimate::policy::{uniform_policy_gain, PolicySums};
 use crate::estimate::pseudo::aipw_pseudo_outcome;
 use crate::estimate::scoreboard::{
-    assemble, column_rank_metrics, contribution_sums, score_keeping, ConstantBasis, Parts,
-    RankMetrics, Scoreboard, Settings, UnitColumns,
+    assemble, column_rank_metrics, column_sums, score_keeping, Column, ConstantBasis, Gather,
+    Parts, RankMetrics, Scoreboard, ScoredColumn, Settings, UnitColumns,
 };
 use crate::estimate::stats::Moments;
 use crate::estimate::sums::ScoreSums;
 use crate::estimate::targeting::{descending_order, merge_orders};
-use crate::estimate::{
-    EstimateError, FeatureRows, ModelPredictions, UnitTable, CONSTANT_EFFECT, ZERO_EFFECT,
-};
+use crate::estimate::{EstimateError, FeatureRows, UnitTable, CONSTANT_EFFECT, ZERO_EFFECT};
 
 /// Nuisance state of a dataset between recomputes.
 #[derive(Clone)]
@@ -531,11 +529,27 @@ impl Frame {
             Err(e) => return (result(Err(e.to_string()), incomplete), None),
         };
         let values = self.nuisance_values(&common, nuisance);
-        let preds: Vec<ModelPredictions> = ranked
+        // Each model's predictions are read where the cache keeps them, a
+        // block at a time: the pass never holds all models' columns.
+        let gathers: Vec<Box<Gather<'_>>> = ranked
             .iter()
             .map(|&k| {
-                let (name, e) = &self.models[k];
-                ModelPredictions::new(name.clone(), common.iter().map(|&u| e[u]).collect())
+                let (effects, common) = (&self.models[k].1, &common);
+                Box::new(move |start: usize, out: &mut [f64]| {
+                    for (o, &u) in out.iter_mut().zip(&common[start..]) {
+                        *o = effects[u];
+                    }
+                }) as Box<Gather<'_>>
+            })
+            .collect();
+        let columns: Vec<Column<'_>> = gathers.iter().map(|g| Column::Gathered(g)).collect();
+        let models: Vec<ScoredColumn<'_>> = ranked
+            .iter()
+            .zip(&columns)
+            .map(|(&k, &effects)| ScoredColumn {
+                name: self.models[k].0.clone(),
+                baseline: false,
+                effects,
             })
             .collect();
         let scored = score_keeping(
@@ -544,12 +558,11 @@ impl Frame {
             &self.spec.feature_names,
             &values,
             Some(nuisance.report.clone()),
-            &preds,
+            &models,
             &settings(&self.spec),
         );
         let memo = keep.then(|| {
             let basis = ConstantBasis::new(scored.board.ate.estimate);
-            let effects: Vec<&[f64]> = preds.iter().map(|p| p.effects.as_slice()).collect();
             let mut overlap =
                 OverlapSums::new(self.columns.features.width(), self.spec.overlap_eps);
             overlap.add(
@@ -557,7 +570,6 @@ impl Frame {
                 table.treatment(),
                 &values.propensity,
             );
-            let cost = self.spec.treatment_cost;
             CumulativeMemo {
                 outcomes: self.columns.outcomes(),
                 covered,
@@ -565,15 +577,8 @@ impl Frame {
                 units: common.iter().map(|&u| u as u32).collect(),
                 treated: table.n_treated(),
                 basis,
-                sums: basis_sums(&table, &values, &scored.phi, basis, &effects),
-                policy: effects
-                    .iter()
-                    .map(|e| {
-                        let mut p = PolicySums::default();
-                        p.add(&scored.phi, e, cost);
-                        p
-                    })
-                    .collect(),
+                sums: basis_sums(&table, &values, &scored.phi, basis, &columns),
+                policy: scored.policy[2..].to_vec(),
                 ate: Moments::of(&scored.phi),
                 rank_units: n,
                 rank: scored.rank,
@@ -627,12 +632,12 @@ impl Frame {
                 .iter()
                 .map(|&k| fresh.iter().map(|&u| self.models[k].1[u]).collect())
                 .collect();
-            let slices: Vec<&[f64]> = effects.iter().map(Vec::as_slice).collect();
+            let slices: Vec<Column<'_>> = effects.iter().map(|e| Column::Slice(e)).collect();
             let added = basis_sums(&table, &values, &phi, memo.basis, &slices);
             for (total, part) in memo.sums.iter_mut().zip(&added) {
                 total.merge(part);
             }
-            for (p, e) in memo.policy.iter_mut().zip(&slices) {
+            for (p, e) in memo.policy.iter_mut().zip(&effects) {
                 p.add(&phi, e, self.spec.treatment_cost);
             }
             memo.ate.merge(&Moments::of(&phi));
@@ -831,14 +836,16 @@ fn basis_sums(
     values: &Nuisance,
     phi: &[f64],
     basis: ConstantBasis,
-    effects: &[&[f64]],
+    effects: &[Column<'_>],
 ) -> Vec<ScoreSums> {
-    let n = table.len();
     let [up, down] = basis.nodes();
-    let (zero, plus, minus) = (vec![0.0; n], vec![up; n], vec![down; n]);
-    let mut columns: Vec<&[f64]> = vec![&zero, &plus, &minus];
+    let mut columns = vec![
+        Column::Uniform(0.0),
+        Column::Uniform(up),
+        Column::Uniform(down),
+    ];
     columns.extend_from_slice(effects);
-    contribution_sums(
+    column_sums(
         &UnitColumns {
             outcome: table.outcome(),
             treatment: table.treatment(),
