@@ -339,15 +339,18 @@ impl Frame {
 
     /// Scores the units whose outcomes arrived since `state` last scored
     /// any, with the current fold models. Touches only those units.
-    fn extend(&self, state: &NuisanceState) -> Result<(NuisanceState, usize), EstimateError> {
+    /// `arrivals`: [`Frame::arrivals_since`] of `state`.
+    fn extend(
+        &self,
+        state: &NuisanceState,
+        arrivals: Vec<usize>,
+    ) -> Result<(NuisanceState, usize), EstimateError> {
         let outcomes = self.columns.outcomes();
         let mut values = state.values.clone();
         while values.len() < self.columns.units() {
             values.push([f64::NAN; 3]);
         }
-        let new: Vec<usize> = self
-            .columns
-            .arrived(state.scored_outcomes.min(outcomes)..outcomes)
+        let new: Vec<usize> = arrivals
             .into_iter()
             .filter(|&u| values[u][0].is_nan())
             .collect();
@@ -369,6 +372,14 @@ impl Frame {
         Ok((next, new.len()))
     }
 
+    /// The units whose outcomes arrived since `state` last scored any, in
+    /// unit order.
+    fn arrivals_since(&self, state: &NuisanceState) -> Vec<usize> {
+        let outcomes = self.columns.outcomes();
+        self.columns
+            .arrived(state.scored_outcomes.min(outcomes)..outcomes)
+    }
+
     /// Decides whether to refit, then brings nuisance values up to date.
     /// Without a refit this reads only the outcomes that arrived since the
     /// last recompute.
@@ -377,16 +388,19 @@ impl Frame {
         requested: bool,
     ) -> Result<(NuisanceState, Option<RefitReason>, usize), EstimateError> {
         let outcomes = self.columns.outcomes();
+        let arrivals = self
+            .nuisance
+            .as_ref()
+            .map(|s| self.arrivals_since(s))
+            .unwrap_or_default();
         let reason = match &self.nuisance {
             _ if requested => Some(RefitReason::Requested),
             None => Some(RefitReason::FirstFit),
             Some(s)
                 if s.logged
-                    && self
-                        .columns
-                        .arrived(s.scored_outcomes.min(outcomes)..outcomes)
-                        .into_iter()
-                        .any(|u| self.columns.propensity_of(u).is_none()) =>
+                    && arrivals
+                        .iter()
+                        .any(|&u| self.columns.propensity_of(u).is_none()) =>
             {
                 Some(RefitReason::PropensitySource)
             }
@@ -406,7 +420,7 @@ impl Frame {
         };
         match (reason, &self.nuisance) {
             (None, Some(state)) => {
-                let (s, n) = self.extend(state)?;
+                let (s, n) = self.extend(state, arrivals)?;
                 Ok((s, None, n))
             }
             (reason, _) => {
