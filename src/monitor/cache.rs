@@ -93,6 +93,26 @@ impl<T: Clone> Shared<T> {
         self.rows += 1;
     }
 
+    /// Appends `rows` rows of `value` (every value of a row `value`),
+    /// writing each chunk once rather than once per row.
+    pub fn extend_filled(&mut self, rows: usize, value: T) {
+        let mut left = rows;
+        while left > 0 {
+            let at = self.rows % CHUNK_ROWS;
+            if at == 0 {
+                self.chunks
+                    .push(Arc::new(Vec::with_capacity(CHUNK_ROWS * self.width)));
+            }
+            let n = left.min(CHUNK_ROWS - at);
+            if let Some(last) = self.chunks.last_mut() {
+                let chunk = Arc::make_mut(last);
+                chunk.resize(chunk.len() + n * self.width, value.clone());
+            }
+            self.rows += n;
+            left -= n;
+        }
+    }
+
     /// Drops every row from `rows` on (copying the last kept chunk if a
     /// recompute still holds it).
     pub fn truncate(&mut self, rows: usize) {
@@ -188,6 +208,13 @@ impl Stamps {
         }
         self.rows += 1;
         self.set(self.rows - 1, stamp);
+    }
+
+    /// Appends `rows` unstamped rows (they take no memory until stamped:
+    /// an allocated chunk's rows past the end are always 0).
+    pub fn extend_zeros(&mut self, rows: usize) {
+        self.rows += rows;
+        self.chunks.resize(self.rows.div_ceil(CHUNK_ROWS), None);
     }
 
     /// Drops every row from `rows` on.
@@ -395,13 +422,32 @@ impl Columns {
         propensity: Option<f64>,
         cohort: u32,
     ) {
+        self.push_unit_inputs(features, treatment, propensity, cohort);
+        self.await_outcomes();
+    }
+
+    /// Appends a unit's inputs; [`Columns::await_outcomes`] completes the
+    /// outcome columns once a batch of units is pushed.
+    fn push_unit_inputs(
+        &mut self,
+        features: &[f64],
+        treatment: u8,
+        propensity: Option<f64>,
+        cohort: u32,
+    ) {
         debug_assert!(propensity.is_none_or(|p| p > 0.0 && p < 1.0));
         self.features.push_row(features);
         self.treatment.push(treatment);
         self.propensity.push(propensity.unwrap_or(f64::NAN));
         self.cohort.push(cohort);
-        self.outcome.push(f64::NAN);
-        self.observed_at_ms.push(0);
+    }
+
+    /// Marks the units pushed since the last call (`units` of them) as
+    /// waiting for their outcome: one write per chunk, not per unit.
+    fn await_outcomes(&mut self) {
+        let units = self.treatment.len() - self.outcome.len();
+        self.outcome.extend_filled(units, f64::NAN);
+        self.observed_at_ms.extend_zeros(units);
     }
 
     /// Drops units `units..`, which must have no outcomes yet.
@@ -498,23 +544,40 @@ impl DatasetCache {
     }
 
     pub fn add_unit(&mut self, u: &UnitRecord) {
-        debug_assert_eq!(u.seq as usize, self.units());
-        self.keys.push(&u.key);
-        let cohort = match self.cohort_index.get(&u.cohort) {
-            Some(&c) => c,
-            None => {
-                let c = self.cohort_names.len() as u32;
-                self.cohort_names.push(u.cohort.clone());
-                self.cohort_index.insert(u.cohort.clone(), c);
-                c
-            }
-        };
-        self.columns
-            .push_unit(&u.features, u.treatment, u.propensity, cohort);
-        self.assigned_at_ms.push(u.assigned_at_ms);
+        self.add_units(std::slice::from_ref(u));
+    }
+
+    /// Appends a batch of units, in order, without outcomes or
+    /// predictions. The columns every unit starts empty in (outcome,
+    /// model predictions and their stamps) are extended once per batch.
+    pub fn add_units(&mut self, units: &[UnitRecord]) {
+        let mut last: Option<(&str, u32)> = None;
+        for u in units {
+            debug_assert_eq!(u.seq as usize, self.units());
+            self.keys.push(&u.key);
+            // Units of a batch mostly share a cohort; look it up only when
+            // it changes.
+            let cohort = match last {
+                Some((name, c)) if name == u.cohort => c,
+                _ => match self.cohort_index.get(&u.cohort) {
+                    Some(&c) => c,
+                    None => {
+                        let c = self.cohort_names.len() as u32;
+                        self.cohort_names.push(u.cohort.clone());
+                        self.cohort_index.insert(u.cohort.clone(), c);
+                        c
+                    }
+                },
+            };
+            last = Some((&u.cohort, cohort));
+            self.columns
+                .push_unit_inputs(&u.features, u.treatment, u.propensity, cohort);
+            self.assigned_at_ms.push(u.assigned_at_ms);
+        }
+        self.columns.await_outcomes();
         for m in &mut self.models {
-            m.effects.push(f64::NAN);
-            m.predicted_at_ms.push(0);
+            m.effects.extend_filled(units.len(), f64::NAN);
+            m.predicted_at_ms.extend_zeros(units.len());
         }
     }
 
@@ -597,28 +660,33 @@ mod tests {
         }
     }
 
+    fn model(id: i64) -> StoredModel {
+        StoredModel {
+            id,
+            dataset_id: 1,
+            name: format!("m{id}"),
+            version: "1".into(),
+            description: String::new(),
+            registered_at_ms: 0,
+            retired_at_ms: 0,
+        }
+    }
+
     #[test]
     fn truncating_units_takes_back_a_batch_and_leaves_held_copies_alone() {
         let mut cache = DatasetCache::new(2);
         for id in 0..2 {
-            cache.add_model(StoredModel {
-                id,
-                dataset_id: 1,
-                name: format!("m{id}"),
-                version: "1".into(),
-                description: String::new(),
-                registered_at_ms: 0,
-                retired_at_ms: 0,
-            });
+            cache.add_model(model(id));
         }
         let kept = CHUNK_ROWS + 10;
         for u in 0..kept {
             cache.add_unit(&unit(u, "spring"));
         }
         let mark = cache.units_mark();
-        for u in kept..kept + 50 {
-            cache.add_unit(&unit(u, if u % 2 == 0 { "spring" } else { "summer" }));
-        }
+        let batch: Vec<UnitRecord> = (kept..kept + 50)
+            .map(|u| unit(u, if u % 2 == 0 { "spring" } else { "summer" }))
+            .collect();
+        cache.add_units(&batch);
         let held = cache.columns.clone();
         cache.truncate_units(mark);
 
@@ -660,6 +728,64 @@ mod tests {
             cache.cohort_names,
             vec!["spring".to_string(), "summer".to_string()]
         );
+    }
+
+    #[test]
+    fn a_batch_of_units_lands_as_the_same_units_one_at_a_time() {
+        let (mut batched, mut single) = (DatasetCache::new(2), DatasetCache::new(2));
+        for cache in [&mut batched, &mut single] {
+            cache.add_model(model(0));
+        }
+        // Batches that end mid-chunk, cross a chunk boundary and fill
+        // several chunks; cohorts change within a batch and come back.
+        let mut next = 0;
+        for size in [3, CHUNK_ROWS - 5, 10, 2 * CHUNK_ROWS + 1] {
+            let rows: Vec<UnitRecord> = (next..next + size)
+                .map(|u| unit(u, ["spring", "summer", "spring"][(u / 1000) % 3]))
+                .collect();
+            batched.add_units(&rows);
+            for r in &rows {
+                single.add_unit(r);
+            }
+            next += size;
+            // A stamp written inside the last chunk must not leak into the
+            // rows the next batch appends after it.
+            for cache in [&mut batched, &mut single] {
+                cache.models[0].predicted_at_ms.set(next - 1, 77);
+            }
+        }
+        let units = next;
+        assert_eq!((batched.units(), single.units()), (units, units));
+        assert_eq!(batched.cohort_names, single.cohort_names);
+        assert_eq!(batched.cohort_names, vec!["spring", "summer"]);
+        let (b, s) = (&batched.columns, &single.columns);
+        for u in 0..units {
+            assert_eq!(batched.unit_of(&format!("unit-{u}")), Some(u));
+            assert_eq!(b.features.row(u), s.features.row(u), "unit {u}");
+            assert_eq!(
+                (
+                    b.treatment[u],
+                    b.cohort[u],
+                    b.propensity_of(u),
+                    b.outcome_of(u)
+                ),
+                (s.treatment[u], s.cohort[u], s.propensity_of(u), None),
+                "unit {u}"
+            );
+            assert_eq!(b.observed_at_ms[u], 0);
+            assert_eq!(batched.assigned_at_ms[u], single.assigned_at_ms[u]);
+            let (bm, sm) = (&batched.models[0], &single.models[0]);
+            assert!(!bm.has(u));
+            assert_eq!(bm.predicted_at_ms[u], sm.predicted_at_ms[u], "unit {u}");
+        }
+        assert_eq!(
+            batched.models[0].effects.chunks.len(),
+            units.div_ceil(CHUNK_ROWS)
+        );
+        // Outcomes land on the batched units as on any others.
+        batched.columns.add_outcome(units - 1, 2.5, 9);
+        assert_eq!(batched.columns.outcome_of(units - 1), Some(2.5));
+        assert_eq!(batched.columns.observed_at_ms[units - 1], 9);
     }
 
     #[test]

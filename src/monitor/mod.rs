@@ -569,9 +569,7 @@ impl Monitor {
                     (self.store.clone(), Arc::clone(&new_rows), h.id, now_ms());
                 async move { store.insert_units(id, &rows, at).await }
             });
-            for u in new_rows.iter() {
-                st.cache.add_unit(u);
-            }
+            st.cache.add_units(&new_rows);
             let written = match write.await {
                 Ok(r) => r.map_err(MonitorError::from),
                 Err(e) => Err(MonitorError::Internal(format!("unit write: {e}"))),
