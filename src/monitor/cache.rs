@@ -256,7 +256,10 @@ impl Index<usize> for Stamps {
 /// buffer, and a hash table of unit numbers that hashes and compares the
 /// bytes they point at. A `HashMap<String, usize>` would cost an allocation
 /// and a 32-byte entry per unit; this costs the key's bytes, an 8-byte
-/// offset and a 4-byte table slot.
+/// offset, the key's 8-byte hash and a 4-byte table slot. The hashes are
+/// kept so that growing the table moves slots without hashing every key
+/// again: at a million units a growth that rehashed the keys held intake's
+/// lock for a few hundred milliseconds.
 #[derive(Debug, Clone, Default)]
 pub struct UnitKeys {
     /// Every key's bytes, in unit order.
@@ -264,10 +267,12 @@ pub struct UnitKeys {
     /// `ends[u]` is where unit u's key ends in `bytes`; it starts where unit
     /// u - 1's ends (or at 0).
     ends: Vec<u64>,
+    /// `hashes[u]` is unit u's key hashed by `hasher`.
+    hashes: Vec<u64>,
     /// Unit numbers, hashed by their key's bytes. Keys are unique: intake
     /// refuses a second unit with a stored key, and a rebuild refuses a
-    /// store that holds one twice. This table is the only key index. Unit numbers fit in u32 (the scoring memo
-    /// keeps units as u32 too).
+    /// store that holds one twice. This table is the only key index. Unit
+    /// numbers fit in u32 (the scoring memo keeps units as u32 too).
     table: HashTable<u32>,
     /// Seeded per process, like a std `HashMap`'s: keys come from clients.
     hasher: RandomState,
@@ -283,33 +288,29 @@ impl UnitKeys {
     pub fn push(&mut self, key: &str) {
         debug_assert!(u32::try_from(self.ends.len()).is_ok());
         let unit = self.ends.len() as u32;
+        let hash = self.hasher.hash_one(key.as_bytes());
         self.bytes.extend_from_slice(key.as_bytes());
         self.ends.push(self.bytes.len() as u64);
-        let Self {
-            bytes,
-            ends,
-            table,
-            hasher,
-        } = self;
-        let hash = hasher.hash_one(key.as_bytes());
-        table.insert_unique(hash, unit, |&u| {
-            hasher.hash_one(Self::key(bytes, ends, u as usize))
-        });
+        self.hashes.push(hash);
+        let hashes = &self.hashes;
+        self.table
+            .insert_unique(hash, unit, |&u| hashes[u as usize]);
     }
 
     /// Forgets the keys of units `units..`, newest first.
     pub fn truncate(&mut self, units: usize) {
         while self.ends.len() > units {
             let unit = self.ends.len() - 1;
-            let hash = self
-                .hasher
-                .hash_one(Self::key(&self.bytes, &self.ends, unit));
-            if let Ok(entry) = self.table.find_entry(hash, |&u| u as usize == unit) {
+            if let Ok(entry) = self
+                .table
+                .find_entry(self.hashes[unit], |&u| u as usize == unit)
+            {
                 entry.remove();
             }
             let start = unit.checked_sub(1).map_or(0, |p| self.ends[p] as usize);
             self.bytes.truncate(start);
             self.ends.pop();
+            self.hashes.pop();
         }
     }
 
