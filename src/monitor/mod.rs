@@ -836,11 +836,11 @@ impl Monitor {
                 Raised {
                     kind: "nuisance_refit",
                     summary: format!(
-                        "{}: nuisance models refitted on {} units ({reason:?}); propensity AUC {:.3}",
+                        "{}: nuisance models refitted on {} units ({reason}); propensity AUC {:.3}",
                         h.name, nuisance.fit_units, report.propensity.auc
                     ),
                     details: serde_json::json!({
-                        "reason": format!("{reason:?}"),
+                        "reason": reason.code(),
                         "units": nuisance.fit_units,
                         "report": report,
                     }),

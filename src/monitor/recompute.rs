@@ -210,6 +210,33 @@ pub enum RefitReason {
     PropensitySource,
 }
 
+impl RefitReason {
+    /// A stable name for machine readers (event details).
+    pub fn code(self) -> &'static str {
+        match self {
+            Self::Requested => "requested",
+            Self::FirstFit => "first_fit",
+            Self::Growth => "growth",
+            Self::Schedule => "schedule",
+            Self::PropensitySource => "propensity_source",
+        }
+    }
+}
+
+impl std::fmt::Display for RefitReason {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.write_str(match self {
+            Self::Requested => "asked for",
+            Self::FirstFit => "first fit",
+            Self::Growth => "outcomes grew past recompute.refit_growth",
+            Self::Schedule => "recompute.refit_every_seconds elapsed",
+            Self::PropensitySource => {
+                "units arrived without a logged propensity; fitting one instead"
+            }
+        })
+    }
+}
+
 /// One window's result.
 #[derive(Clone)]
 pub struct WindowResult {
