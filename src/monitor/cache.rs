@@ -49,13 +49,7 @@ impl<T: Clone> Shared<T> {
     /// by chunk.
     pub fn filled(rows: usize, value: T) -> Self {
         let mut out = Self::new(1);
-        while out.rows < rows {
-            let n = (rows - out.rows).min(CHUNK_ROWS);
-            let mut chunk = Vec::with_capacity(CHUNK_ROWS);
-            chunk.resize(n, value.clone());
-            out.chunks.push(Arc::new(chunk));
-            out.rows += n;
-        }
+        out.extend_filled(rows, value);
         out
     }
 
@@ -443,8 +437,8 @@ impl Columns {
         self.cohort.push(cohort);
     }
 
-    /// Marks the units pushed since the last call (`units` of them) as
-    /// waiting for their outcome: one write per chunk, not per unit.
+    /// Marks the units pushed since the last call as waiting for their
+    /// outcome: one write per chunk, not per unit.
     fn await_outcomes(&mut self) {
         let units = self.treatment.len() - self.outcome.len();
         self.outcome.extend_filled(units, f64::NAN);
