@@ -496,11 +496,21 @@ async fn drift_raises_exactly_one_significant_leader_change() {
         .collect();
     assert_eq!(changes.len(), 1, "{changes:?}");
     let details: serde_json::Value = serde_json::from_str(&changes[0].details_json).expect("json");
-    assert_eq!(details["significant"], true);
     assert_eq!(details["old"], "incumbent");
     assert_eq!(details["new"], "challenger");
-    assert_eq!(details["window"], "recent");
+    assert_eq!(details["window"], "stream");
     assert!(details["margin"].as_f64().unwrap_or(0.0) > 0.0);
+    // The evidence: a confidence sequence whose lower bound cleared zero, or
+    // a detector at or above its threshold.
+    let evidence = &details["evidence"];
+    let by_sequence =
+        evidence["route"] == "sequence" && evidence["lower"].as_f64().is_some_and(|l| l > 0.0);
+    let by_detector = evidence["route"] == "detector"
+        && evidence["log_statistic"].as_f64() >= evidence["log_threshold"].as_f64();
+    assert!(by_sequence || by_detector, "{evidence}");
+    assert!(evidence["alpha"]
+        .as_f64()
+        .is_some_and(|a| a > 0.0 && a <= 0.05));
 
     // The watcher saw the same event.
     let mut seen = Vec::new();
@@ -525,10 +535,105 @@ async fn drift_raises_exactly_one_significant_leader_change() {
         .find(|(n, l, _)| {
             n == "plumbline_leader_changes_total"
                 && l.contains(&("dataset".into(), "drift".into()))
-                && l.contains(&("window".into(), "recent".into()))
+                && l.contains(&("window".into(), "stream".into()))
         })
         .map(|(_, _, v)| *v);
     assert_eq!(counter, Some(1.0));
+    srv.stop().await.expect("stop");
+}
+
+/// The assignment policy switches from a coin flip to targeting on x1,
+/// with no logged propensities: the fitted propensity goes stale. The
+/// watch finds the misfit on the units scored with it, says so with its
+/// evidence, and the same recompute refits; nothing is raised before.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_policy_switch_is_found_and_refits() {
+    use rand::{Rng, SeedableRng};
+    let dir = TempDir::new("switch");
+    let srv = server(&dir).await;
+    let mut c = clients(srv.grpc_addr).await;
+    let name = "switch";
+    c.datasets
+        .create_dataset(pb::CreateDatasetRequest {
+            spec: Some(continuous_spec(name, 3)),
+        })
+        .await
+        .expect("create");
+    register(&mut c, name, "m").await;
+    let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(21);
+    let switch_at = 4;
+    let mut refitted = Vec::new();
+    for k in 0..7 {
+        let (mut units, mut preds, mut outcomes) = (Vec::new(), Vec::new(), Vec::new());
+        for i in 0..1000 {
+            let key = format!("c{k}-{i}");
+            let x = normal_features(&mut rng, 3);
+            let p = if k >= switch_at {
+                1.0 / (1.0 + (-1.5 * x[0]).exp())
+            } else {
+                0.5
+            };
+            let w = if rng.gen::<f64>() < p { 1.0 } else { 0.0 };
+            units.push(unit_row(&key, &x, w, None, &format!("c{k}")));
+            preds.push(pb::PredictionRow {
+                model: "m".into(),
+                unit_key: key.clone(),
+                effect: 1.0 + x[1],
+                predicted_at_ms: 0,
+            });
+            outcomes.push(pb::OutcomeRow {
+                unit_key: key,
+                value: x[0] + w * (1.0 + x[1]) + plumbline::synth::standard_normal(&mut rng),
+                observed_at_ms: 0,
+            });
+        }
+        send_units(&mut c, name, units).await;
+        send_predictions(&mut c, name, preds).await;
+        send_outcomes(&mut c, name, outcomes).await;
+        refitted.push(recompute(&mut c, name, false).await.refitted);
+    }
+    let events = all_events(&mut c, name).await;
+    let misfits: Vec<&pb::Event> = events
+        .iter()
+        .filter(|e| e.kind == "nuisance_misfit")
+        .collect();
+    println!("refitted by recompute: {refitted:?}; misfit events: {misfits:#?}");
+    // Growth refits (50%) come after cohorts 0 to 2; none is due at 3.
+    assert_eq!(&refitted[..switch_at], &[true, true, true, false]);
+    // A refit on the whole history blends the two policies, so misfits may
+    // recur until the new policy's units dominate; none comes before the
+    // switch (snapshots are numbered from 1, one per recompute).
+    assert!(!misfits.is_empty());
+    assert!(
+        misfits.iter().all(|m| m.snapshot_id > switch_at as u64),
+        "{misfits:?}"
+    );
+    let details: serde_json::Value = serde_json::from_str(&misfits[0].details_json).expect("json");
+    assert!(
+        details["component"]
+            .as_str()
+            .is_some_and(|c| c.starts_with("propensity")),
+        "{details}"
+    );
+    let evidence = &details["evidence"];
+    assert!(evidence["log_statistic"].as_f64() >= evidence["log_threshold"].as_f64());
+    // The misfit is found within two cohorts of the switch, and that same
+    // recompute refits with the misfit as its reason.
+    let found = refitted
+        .iter()
+        .enumerate()
+        .skip(switch_at)
+        .find(|(_, r)| **r)
+        .map(|(k, _)| k)
+        .expect("a refit after the switch");
+    assert!(found <= switch_at + 1, "refit only after cohort {found}");
+    let refit_events: Vec<serde_json::Value> = events
+        .iter()
+        .filter(|e| e.kind == "nuisance_refit" && e.snapshot_id == misfits[0].snapshot_id)
+        .map(|e| serde_json::from_str(&e.details_json).expect("json"))
+        .collect();
+    assert_eq!(refit_events.len(), 1);
+    assert_eq!(refit_events[0]["reason"], "misfit");
     srv.stop().await.expect("stop");
 }
 
@@ -700,8 +805,11 @@ async fn metrics_carry_every_series_with_its_labels() {
         ),
         (
             "plumbline_leader_changes_total",
-            vec![d, ("window", "recent")],
+            vec![d, ("window", "stream")],
         ),
+        ("plumbline_leader_uncertain", vec![d, ("window", "stream")]),
+        ("plumbline_overlap_degraded", vec![d, ("window", "stream")]),
+        ("plumbline_watched_units", vec![d]),
         ("plumbline_leader_uncertain", vec![d, ("window", "recent")]),
         (
             "plumbline_no_detectable_heterogeneity",

@@ -18,9 +18,11 @@ pub mod overlap;
 pub mod policy;
 pub mod pseudo;
 pub mod scoreboard;
+pub mod sequential;
 pub mod stats;
 pub mod sums;
 pub mod targeting;
+pub mod watch;
 
 pub use data::{
     FeatureRows, ModelPredictions, OutcomeKind, UnitTable, CONSTANT_EFFECT, ZERO_EFFECT,

@@ -49,7 +49,7 @@ pub fn mean_se(values: &[f64]) -> Estimate {
 /// moments merge into those of their union exactly up to rounding (Chan,
 /// Golub & LeVeque 1979), so a growing window keeps a mean and its
 /// standard error without revisiting its values.
-#[derive(Debug, Clone, Copy, Default, PartialEq)]
+#[derive(Debug, Clone, Copy, Default, PartialEq, Serialize, Deserialize)]
 pub struct Moments {
     n: u64,
     mean: f64,
@@ -90,6 +90,19 @@ impl Moments {
 
     pub fn count(&self) -> u64 {
         self.n
+    }
+
+    pub fn mean(&self) -> f64 {
+        self.mean
+    }
+
+    /// The sample standard deviation (0 below two values).
+    pub fn sd(&self) -> f64 {
+        if self.n < 2 {
+            0.0
+        } else {
+            (self.m2 / (self.n - 1) as f64).sqrt()
+        }
     }
 
     /// The mean with its standard error (see [`mean_se`]).

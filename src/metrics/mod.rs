@@ -6,6 +6,11 @@
 //! - `plumbline_model_rank`, `plumbline_model_p_best` {model, window}
 //! - `plumbline_leader_info` {window, model} = 1 for the current leader
 //! - `plumbline_leader_changes_total` {window}
+//! - `plumbline_watched_units`: units the alerts' stream watch has taken
+//!
+//! `window="stream"` series come from the stream watch behind the alerts
+//! (anytime-valid: see `estimate::watch`); `cumulative` and `recent`
+//! series are the boards' point estimates of the latest look.
 //! - `plumbline_leader_uncertain`, `plumbline_no_detectable_heterogeneity`,
 //!   `plumbline_overlap_degraded`, `plumbline_overlap_extreme_share` {window}
 //! - `plumbline_overlap_effective_share` {window, arm}
@@ -103,6 +108,7 @@ pub struct Metrics {
     pub recompute_failures: Family<DatasetLabels, Counter>,
     pub nuisance_loss: Family<ComponentLabels, FloatGauge>,
     pub units: Family<DatasetLabels, FloatGauge>,
+    pub watched_units: Family<DatasetLabels, FloatGauge>,
     pub outcomes: Family<DatasetLabels, FloatGauge>,
     pub last_outcome_seconds: Family<DatasetLabels, FloatGauge>,
     pub events: Family<KindLabels, Counter>,
@@ -130,6 +136,7 @@ impl Metrics {
             recompute_failures: Family::default(),
             nuisance_loss: Family::default(),
             units: Family::default(),
+            watched_units: Family::default(),
             outcomes: Family::default(),
             last_outcome_seconds: Family::default(),
             events: Family::default(),
@@ -157,27 +164,27 @@ impl Metrics {
         );
         registry.register(
             "leader_info",
-            "1 for the current leader of each window",
+            "1 for the current leader of each window (window=\"stream\": the leader the alerts report)",
             m.leader_info.clone(),
         );
         registry.register(
             "leader_changes",
-            "Leader-changed events raised",
+            "Leader-changed events raised (window=\"stream\")",
             m.leader_changes.clone(),
         );
         registry.register(
             "leader_uncertain",
-            "1 while the best set holds more than one model",
+            "1 while the leader is not separated from another model (stream: by the alerts' confidence sequences; a board window: its best set holds more than one model)",
             m.leader_uncertain.clone(),
         );
         registry.register(
             "no_detectable_heterogeneity",
-            "1 while no model beats constant-effect significantly",
+            "1 while no model is shown to beat constant-effect (stream: by the alerts' confidence sequences; a board window: at one look)",
             m.no_heterogeneity.clone(),
         );
         registry.register(
             "overlap_degraded",
-            "1 while an overlap threshold is crossed",
+            "1 while overlap is degraded (stream: the alerts' detectors on the extreme share; a board window: a threshold crossed at one look)",
             m.overlap_degraded.clone(),
         );
         registry.register(
@@ -211,6 +218,11 @@ impl Metrics {
             m.nuisance_loss.clone(),
         );
         registry.register("units", "Units stored", m.units.clone());
+        registry.register(
+            "watched_units",
+            "Units the alerts' stream watch has taken (window=\"stream\" series rest on them)",
+            m.watched_units.clone(),
+        );
         registry.register("outcomes", "Outcomes stored", m.outcomes.clone());
         registry.register(
             "last_outcome_timestamp_seconds",

@@ -147,6 +147,7 @@ pub fn scoreboard(parts: BoardParts<'_>, b: &Scoreboard) -> pb::Scoreboard {
         caveat: b.caveat.into(),
         json: serde_json::to_string(b).unwrap_or_default(),
         rank_metrics_units: b.rank_metrics_units as u64,
+        alerts: None,
     }
 }
 
@@ -199,5 +200,24 @@ pub fn window_key(w: &pb::Window) -> String {
         pb::window::Kind::Unspecified | pb::window::Kind::Cumulative => "cumulative".into(),
         pb::window::Kind::Recent => "recent".into(),
         pb::window::Kind::Cohort => format!("cohort:{}", w.cohort),
+    }
+}
+
+/// The alerts' view of a dataset, for its boards.
+pub fn alert_view(watch: &crate::estimate::watch::Watch) -> pb::AlertView {
+    use crate::estimate::watch::Heterogeneity;
+    let s = watch.state();
+    pb::AlertView {
+        leader: s.leader.unwrap_or_default(),
+        leader_settled: s.leader_settled,
+        heterogeneity: match s.heterogeneity {
+            Heterogeneity::Unknown => "unknown",
+            Heterogeneity::Detected => "detected",
+            Heterogeneity::Absent => "absent",
+        }
+        .into(),
+        overlap_degraded: s.overlap_degraded,
+        looks: s.looks,
+        units: s.units - s.baseline_units,
     }
 }

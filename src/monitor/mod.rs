@@ -26,6 +26,7 @@ use tracing::{info, info_span, warn, Instrument};
 
 use crate::api::pb;
 use crate::estimate::data::{CONSTANT_EFFECT, ZERO_EFFECT};
+use crate::estimate::watch::Watch;
 use crate::estimate::EstimateError;
 use crate::metrics::{
     ArmLabels, ComponentLabels, DatasetLabels, IngestLabels, KindLabels, Metrics, ModelLabels,
@@ -33,7 +34,7 @@ use crate::metrics::{
 };
 use crate::shutdown::Shutdown;
 use crate::store::{ScoreRow, Store, StoreError, StoredDataset, StoredModel};
-use alerts::{AlertState, Raised};
+use alerts::Raised;
 use cache::DatasetCache;
 use ingest::{OutcomeIn, PredictionIn, Rejection, UnitIn};
 pub use recompute::Asked;
@@ -104,7 +105,8 @@ struct DatasetState {
     stored: StoredDataset,
     cache: DatasetCache,
     nuisance: Option<NuisanceState>,
-    alerts: AlertState,
+    /// The stream watch behind the alerts, as the last recompute left it.
+    watch: Watch,
     /// Outcomes accepted since the last recompute started.
     pending_outcomes: u64,
 }
@@ -143,6 +145,8 @@ impl DatasetState {
             nuisance,
             now_ms: now,
             ranks_fresh_below: recompute::RANKS_ALWAYS_FRESH_BELOW,
+            watch: self.watch.clone(),
+            watch_settings: self.stored.spec.watch_settings(),
         }
     }
 }
@@ -271,7 +275,7 @@ impl Monitor {
                 stored: stored.clone(),
                 cache,
                 nuisance: None,
-                alerts: AlertState::default(),
+                watch: Watch::default(),
                 pending_outcomes: 0,
             };
             if let Some(fit) = self.store.latest_fit(stored.id).await? {
@@ -292,8 +296,17 @@ impl Monitor {
                     .map_err(|e| StoreError::Corrupt(format!("scoreboard {key}: {e}")))?;
                 latest.insert(key, board);
             }
-            if let Some(recent) = latest.get("recent") {
-                state.alerts = AlertState::from_board(recent);
+            match self.store.latest_watch(stored.id).await? {
+                Some(json) => {
+                    state.watch = serde_json::from_str(&json)
+                        .map_err(|e| StoreError::Corrupt(format!("stream watch: {e}")))?;
+                }
+                // A store written before the watch existed: it starts after
+                // the units already scored.
+                None if !latest.is_empty() => {
+                    state.watch.skip_baseline(state.cache.outcomes() as u64);
+                }
+                None => {}
             }
             state.pending_outcomes = state
                 .cache
@@ -395,7 +408,7 @@ impl Monitor {
             cache: DatasetCache::new(spec.feature_names.len()),
             stored,
             nuisance: None,
-            alerts: AlertState::default(),
+            watch: Watch::default(),
             pending_outcomes: 0,
         };
         let info = state.info();
@@ -746,7 +759,6 @@ impl Monitor {
         let mut boards = BTreeMap::new();
         let mut encoded = Vec::new();
         let mut scores = Vec::new();
-        let mut recent_board = None;
         // A window the recompute did not change keeps its published board
         // (and snapshot id), and the snapshot does not store it again:
         // with a cohort window per week or month, storing every one would
@@ -766,15 +778,11 @@ impl Monitor {
                 max_extreme_share: spec.overlap_max_extreme_share,
                 min_effective_share: spec.overlap_min_effective_share,
             };
-            let b = match &w.board {
-                Ok(b) => {
-                    if w.key == "recent" {
-                        recent_board = Some(b);
-                    }
-                    board::scoreboard(parts, b)
-                }
+            let mut b = match &w.board {
+                Ok(b) => board::scoreboard(parts, b),
                 Err(state) => board::degenerate(parts, w.units as u64, state.clone()),
             };
+            b.alerts = Some(board::alert_view(&computed.watch));
             for m in &b.models {
                 for (estimator, e) in board::estimator_values(m) {
                     scores.push(ScoreRow {
@@ -796,6 +804,8 @@ impl Monitor {
             boards.insert(w.key.clone(), b);
         }
         let millis = started.elapsed().as_secs_f64() * 1000.0;
+        let watch_json = serde_json::to_string(&computed.watch)
+            .map_err(|e| MonitorError::Internal(format!("stream watch: {e}")))?;
         self.store
             .insert_snapshot(
                 snapshot_id,
@@ -806,27 +816,29 @@ impl Monitor {
                 millis,
                 &encoded,
                 &scores,
+                &watch_json,
             )
             .await?;
 
         // Install, then alert.
         let cumulative_units = boards.get("cumulative").map(|b| b.units).unwrap_or(0);
-        let (raised, previous) = {
+        let (raised, previous, watched_leader) = {
             let mut st = h.state.lock().await;
+            let watched_leader = st.watch.state().leader;
             let previous: BTreeMap<String, String> = h
                 .boards()
                 .iter()
                 .map(|(k, b)| (k.clone(), b.leader.clone()))
                 .collect();
             st.nuisance = Some(nuisance.clone());
-            let mut raised = Vec::new();
-            if let (Some(b), Some(pbb)) = (recent_board, boards.get("recent")) {
-                if let Some(overlap) = &pbb.overlap {
-                    raised = st.alerts.evaluate(&h.name, "recent", b, overlap);
-                }
-            }
+            st.watch = computed.watch.clone();
+            let raised: Vec<Raised> = computed
+                .signals
+                .iter()
+                .filter_map(|s| alerts::event(&h.name, s))
+                .collect();
             h.publish(boards.clone());
-            (raised, previous)
+            (raised, previous, watched_leader)
         };
         if let Some(reason) = computed.refit {
             let report = &nuisance.report;
@@ -854,7 +866,7 @@ impl Monitor {
                     .leader_changes
                     .get_or_create(&WindowLabels {
                         dataset: h.name.clone(),
-                        window: "recent".into(),
+                        window: alerts::STREAM.into(),
                     })
                     .inc();
             }
@@ -874,6 +886,7 @@ impl Monitor {
             })
             .observe(seconds);
         self.export_boards(&h.name, &boards, &previous, &nuisance);
+        self.export_watch(&h.name, watched_leader, &computed.watch);
         info!(
             snapshot = snapshot_id,
             refitted = computed.refit.is_some(),
@@ -922,7 +935,6 @@ impl Monitor {
                     })
                     .set(1.0);
             }
-            let _ = m.leader_changes.get_or_create(&wl);
             m.leader_uncertain
                 .get_or_create(&wl)
                 .set(if b.best_set.len() > 1 { 1.0 } else { 0.0 });
@@ -989,6 +1001,47 @@ impl Monitor {
                 })
                 .set(loss);
         }
+    }
+
+    /// The watch's states under `window="stream"`: the series the shipped
+    /// alert rules fire from (the board windows' series are point
+    /// estimates of one look, for dashboards).
+    fn export_watch(&self, dataset: &str, previous: Option<String>, watch: &Watch) {
+        let m = &self.metrics;
+        let state = watch.state();
+        let wl = WindowLabels {
+            dataset: dataset.into(),
+            window: alerts::STREAM.into(),
+        };
+        let leader_labels = |model: String| ModelLabels {
+            dataset: dataset.into(),
+            model,
+            window: alerts::STREAM.into(),
+        };
+        if let Some(old) = previous.filter(|old| state.leader.as_ref() != Some(old)) {
+            m.leader_info.remove(&leader_labels(old));
+        }
+        if let Some(leader) = &state.leader {
+            m.leader_info
+                .get_or_create(&leader_labels(leader.clone()))
+                .set(1.0);
+        }
+        let _ = m.leader_changes.get_or_create(&wl);
+        let flag = |b: bool| if b { 1.0 } else { 0.0 };
+        m.leader_uncertain
+            .get_or_create(&wl)
+            .set(flag(state.leader.is_some() && !state.leader_settled));
+        m.no_heterogeneity.get_or_create(&wl).set(flag(
+            state.heterogeneity != crate::estimate::watch::Heterogeneity::Detected,
+        ));
+        m.overlap_degraded
+            .get_or_create(&wl)
+            .set(flag(state.overlap_degraded));
+        m.watched_units
+            .get_or_create(&DatasetLabels {
+                dataset: dataset.into(),
+            })
+            .set(state.units as f64);
     }
 
     async fn raise(&self, h: &DatasetHandle, snapshot_id: u64, r: Raised) {

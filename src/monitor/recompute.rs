@@ -39,6 +39,7 @@ use crate::estimate::scoreboard::{
 use crate::estimate::stats::Moments;
 use crate::estimate::sums::ScoreSums;
 use crate::estimate::targeting::{descending_order, merge_orders};
+use crate::estimate::watch::{Arrivals, Signal, Watch, WatchSettings};
 use crate::estimate::{EstimateError, FeatureRows, UnitTable, CONSTANT_EFFECT, ZERO_EFFECT};
 
 /// Nuisance state of a dataset between recomputes.
@@ -176,7 +177,15 @@ pub struct Frame {
     /// The cumulative window's rank metrics are refreshed on every
     /// recompute below this many units ([`RANKS_ALWAYS_FRESH_BELOW`]).
     pub ranks_fresh_below: usize,
+    /// The stream watch as the last recompute left it; this one folds in
+    /// the outcomes that arrived since.
+    pub watch: Watch,
+    pub watch_settings: WatchSettings,
 }
+
+/// Nuisance values fixed for the units the watch took this recompute, by
+/// unit, from the fold models in place before any refit.
+type Fixed = HashMap<usize, [f64; 3]>;
 
 impl Frame {
     /// Reproduces a recorded fit: the units whose outcome sequence is at most
@@ -208,6 +217,7 @@ pub enum RefitReason {
     Growth,
     Schedule,
     PropensitySource,
+    Misfit,
 }
 
 impl RefitReason {
@@ -219,6 +229,7 @@ impl RefitReason {
             Self::Growth => "growth",
             Self::Schedule => "schedule",
             Self::PropensitySource => "propensity_source",
+            Self::Misfit => "misfit",
         }
     }
 }
@@ -233,6 +244,7 @@ impl std::fmt::Display for RefitReason {
             Self::PropensitySource => {
                 "units arrived without a logged propensity; fitting one instead"
             }
+            Self::Misfit => "arriving units no longer fit the nuisance models",
         })
     }
 }
@@ -255,6 +267,9 @@ pub struct Computed {
     pub refit: Option<RefitReason>,
     pub windows: Vec<WindowResult>,
     pub newly_scored: usize,
+    /// The watch after this recompute's arrivals, and what it decided.
+    pub watch: Watch,
+    pub signals: Vec<Signal>,
 }
 
 fn settings(spec: &DatasetSpec) -> Settings {
@@ -371,16 +386,26 @@ impl Frame {
         &self,
         state: &NuisanceState,
         arrivals: Vec<usize>,
+        fixed: &Fixed,
     ) -> Result<(NuisanceState, usize), EstimateError> {
         let outcomes = self.columns.outcomes();
         let mut values = state.values.clone();
         while values.len() < self.columns.units() {
             values.push([f64::NAN; 3]);
         }
-        let new: Vec<usize> = arrivals
+        let mut new: Vec<usize> = arrivals
             .into_iter()
             .filter(|&u| values[u][0].is_nan())
             .collect();
+        let scored = new.len();
+        // The watch already applied these fold models to its units.
+        new.retain(|u| match fixed.get(u) {
+            Some(v) => {
+                values[*u] = *v;
+                false
+            }
+            None => true,
+        });
         if !new.is_empty() {
             let x = self.rows(&new);
             let logged: Option<Vec<f64>> = if state.logged {
@@ -396,7 +421,77 @@ impl Frame {
         let mut next = state.clone();
         next.values = values;
         next.scored_outcomes = outcomes;
-        Ok((next, new.len()))
+        Ok((next, scored))
+    }
+
+    /// Hands the watch the units whose outcomes arrived since it last
+    /// looked, with nuisance values from the fold models in place before
+    /// this recompute (which never saw them); returns what it decided and
+    /// those values, which the boards reuse unless the recompute refits.
+    /// Before the first fit there are no such models: those units only fit
+    /// it, and the watch starts after them.
+    fn watch_arrivals(&mut self) -> Result<(Vec<Signal>, Fixed), EstimateError> {
+        let outcomes = self.columns.outcomes();
+        let from = usize::try_from(self.watch.units)
+            .unwrap_or(usize::MAX)
+            .min(outcomes);
+        let units = self.columns.arrived(from..outcomes);
+        if units.is_empty() {
+            return Ok((Vec::new(), Fixed::new()));
+        }
+        let logged: Option<Vec<f64>> = units
+            .iter()
+            .map(|&u| self.columns.propensity_of(u))
+            .collect();
+        let Some(state) = self
+            .nuisance
+            .as_ref()
+            .filter(|s| !s.logged || logged.is_some())
+        else {
+            // No fit yet, or a fit on logged propensities and units without
+            // one (the propensity-source refit comes next): not watched.
+            self.watch.skip_baseline(units.len() as u64);
+            return Ok((Vec::new(), Fixed::new()));
+        };
+        let x = self.rows(&units);
+        let logged = if state.logged { logged } else { None };
+        let (nuisance, _) = state.fitted.predict(x.view(), logged.as_deref())?;
+        let treatment: Vec<f64> = units
+            .iter()
+            .map(|&u| f64::from(self.columns.treatment[u]))
+            .collect();
+        let outcome: Vec<f64> = units
+            .iter()
+            .map(|&u| self.columns.outcome_of(u).unwrap_or(0.0))
+            .collect();
+        let models: Vec<(String, Vec<f64>)> = self
+            .models
+            .iter()
+            .map(|(name, effects)| (name.clone(), units.iter().map(|&u| effects[u]).collect()))
+            .collect();
+        let features = x.as_slice().map(<[f64]>::to_vec).unwrap_or_default();
+        let signals = self.watch.observe(
+            &Arrivals {
+                treatment: &treatment,
+                outcome: &outcome,
+                nuisance: &nuisance,
+                propensity_fitted: !state.logged,
+                features: &features,
+                models: &models,
+            },
+            &self.watch_settings,
+        );
+        let fixed = units
+            .iter()
+            .enumerate()
+            .map(|(i, &u)| {
+                (
+                    u,
+                    [nuisance.propensity[i], nuisance.mu0[i], nuisance.mu1[i]],
+                )
+            })
+            .collect();
+        Ok((signals, fixed))
     }
 
     /// The units whose outcomes arrived since `state` last scored any, in
@@ -413,6 +508,8 @@ impl Frame {
     pub fn nuisance(
         &self,
         requested: bool,
+        misfit: bool,
+        fixed: &Fixed,
     ) -> Result<(NuisanceState, Option<RefitReason>, usize), EstimateError> {
         let outcomes = self.columns.outcomes();
         let arrivals = self
@@ -423,6 +520,7 @@ impl Frame {
         let reason = match &self.nuisance {
             _ if requested => Some(RefitReason::Requested),
             None => Some(RefitReason::FirstFit),
+            Some(_) if misfit => Some(RefitReason::Misfit),
             Some(s)
                 if s.logged
                     && arrivals
@@ -447,7 +545,7 @@ impl Frame {
         };
         match (reason, &self.nuisance) {
             (None, Some(state)) => {
-                let (s, n) = self.extend(state, arrivals)?;
+                let (s, n) = self.extend(state, arrivals, fixed)?;
                 Ok((s, None, n))
             }
             (reason, _) => {
@@ -790,7 +888,14 @@ impl Frame {
             .as_mut()
             .map(|n| std::mem::take(&mut n.memo))
             .unwrap_or_default();
-        let (mut nuisance, refit, newly_scored) = self.nuisance(asked.refit)?;
+        let (signals, fixed) = self.watch_arrivals()?;
+        let misfit = signals
+            .iter()
+            .any(|s| matches!(s, Signal::NuisanceMisfit { .. }));
+        let (mut nuisance, refit, newly_scored) = self.nuisance(asked.refit, misfit, &fixed)?;
+        if refit.is_some() {
+            self.watch.refitted();
+        }
         let names: Vec<String> = self.models.iter().map(|(n, _)| n.clone()).collect();
         let mut previous = match Arc::try_unwrap(previous) {
             Ok(memo) => memo,
@@ -865,6 +970,8 @@ impl Frame {
             refit,
             windows,
             newly_scored,
+            watch: self.watch,
+            signals,
         })
     }
 }
@@ -929,6 +1036,7 @@ mod tests {
             refit_growth: 10.0,
             refit_every_seconds: 0,
             rank_refresh_growth: 0.0,
+            alert_horizon: 0,
             min_coverage: 0.0,
             alpha: 0.0,
             seed: 3,
@@ -964,6 +1072,8 @@ mod tests {
             nuisance,
             now_ms: 0,
             ranks_fresh_below: RANKS_ALWAYS_FRESH_BELOW,
+            watch: Watch::default(),
+            watch_settings: WatchSettings::default(),
         }
     }
 

@@ -2,6 +2,7 @@
 
 use serde::{Deserialize, Serialize};
 
+use crate::estimate::watch::WatchSettings;
 use crate::estimate::OutcomeKind;
 
 /// Settings of one dataset. Zero values on the wire mean "default"; once
@@ -27,6 +28,11 @@ pub struct DatasetSpec {
     /// setting existed read as the default).
     #[serde(default = "default_rank_refresh_growth")]
     pub rank_refresh_growth: f64,
+    /// Recomputes over which an alert detector's chance of any false alarm
+    /// is at most alpha (specs stored before the setting read as the
+    /// default).
+    #[serde(default = "default_alert_horizon")]
+    pub alert_horizon: u32,
     pub min_coverage: f64,
     pub alpha: f64,
     pub seed: u64,
@@ -44,6 +50,11 @@ pub const DEFAULT_RANK_REFRESH_GROWTH: f64 = 0.05;
 
 fn default_rank_refresh_growth() -> f64 {
     DEFAULT_RANK_REFRESH_GROWTH
+}
+pub const DEFAULT_ALERT_HORIZON: u32 = 1000;
+
+fn default_alert_horizon() -> u32 {
+    DEFAULT_ALERT_HORIZON
 }
 pub const DEFAULT_MIN_COVERAGE: f64 = 0.95;
 pub const DEFAULT_ALPHA: f64 = 0.05;
@@ -83,6 +94,17 @@ fn or_default<T: PartialEq + Default>(v: T, default: T) -> T {
 }
 
 impl DatasetSpec {
+    /// How the stream watch behind the alerts decides.
+    pub fn watch_settings(&self) -> WatchSettings {
+        WatchSettings {
+            alpha: self.alpha,
+            horizon: u64::from(self.alert_horizon),
+            overlap_eps: self.overlap_eps,
+            max_extreme_share: self.overlap_max_extreme_share,
+            ..WatchSettings::default()
+        }
+    }
+
     /// Fills zero values with defaults and checks every field. The error
     /// names the field.
     pub fn normalized(mut self) -> Result<Self, (String, String)> {
@@ -126,6 +148,7 @@ impl DatasetSpec {
         self.refit_growth = or_default(self.refit_growth, DEFAULT_REFIT_GROWTH);
         self.rank_refresh_growth =
             or_default(self.rank_refresh_growth, DEFAULT_RANK_REFRESH_GROWTH);
+        self.alert_horizon = or_default(self.alert_horizon, DEFAULT_ALERT_HORIZON);
         self.min_coverage = or_default(self.min_coverage, DEFAULT_MIN_COVERAGE);
         self.alpha = or_default(self.alpha, DEFAULT_ALPHA);
 

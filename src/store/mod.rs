@@ -544,9 +544,9 @@ impl Store {
     }
 
     /// Stores a snapshot, its boards and its per-model values in one
-    /// transaction; returns the snapshot id. `boards` holds the windows the
-    /// recompute changed; [`Store::latest_boards`] finds each window's
-    /// latest.
+    /// transaction, with the stream watch it left; returns the snapshot id.
+    /// `boards` holds the windows the recompute changed;
+    /// [`Store::latest_boards`] finds each window's latest.
     #[allow(clippy::too_many_arguments)]
     pub async fn insert_snapshot(
         &self,
@@ -558,6 +558,7 @@ impl Store {
         millis: f64,
         boards: &[(String, Vec<u8>)],
         scores: &[ScoreRow],
+        watch: &str,
     ) -> StoreResult<i64> {
         let mut tx = self.pool.begin().await?;
         sqlx::query(
@@ -601,8 +602,27 @@ impl Store {
             });
             q.build().execute(&mut *tx).await?;
         }
+        sqlx::query(
+            "INSERT INTO watch_states (dataset_id, snapshot_id, state) VALUES (?, ?, ?) \
+             ON CONFLICT (dataset_id) DO UPDATE SET snapshot_id = excluded.snapshot_id, \
+             state = excluded.state",
+        )
+        .bind(dataset_id)
+        .bind(id)
+        .bind(watch)
+        .execute(&mut *tx)
+        .await?;
         tx.commit().await?;
         Ok(id)
+    }
+
+    /// The stream watch as the latest stored recompute left it (JSON).
+    pub async fn latest_watch(&self, dataset_id: i64) -> StoreResult<Option<String>> {
+        let row = sqlx::query("SELECT state FROM watch_states WHERE dataset_id = ?")
+            .bind(dataset_id)
+            .fetch_optional(&self.pool)
+            .await?;
+        Ok(row.map(|r| r.get(0)))
     }
 
     /// Each window's latest board: a snapshot stores only the windows its

@@ -403,3 +403,26 @@ impl ServeBinary {
         self.child.wait_with_output().expect("wait")
     }
 }
+
+/// Every event of `dataset`, oldest first, paged through ListEvents.
+pub async fn all_events(c: &mut Clients, dataset: &str) -> Vec<pb::Event> {
+    let mut out: Vec<pb::Event> = Vec::new();
+    loop {
+        let after_id = out.last().map(|e| e.id).unwrap_or(0);
+        let page = c
+            .events
+            .list_events(pb::ListEventsRequest {
+                dataset: dataset.into(),
+                after_id,
+                limit: 1000,
+            })
+            .await
+            .expect("list events")
+            .into_inner()
+            .events;
+        if page.is_empty() {
+            return out;
+        }
+        out.extend(page);
+    }
+}
