@@ -226,6 +226,7 @@ struct Stream {
     old_changes: Vec<usize>,
     old_leader_at_change: Option<usize>,
     overlap_alarms: usize,
+    drift_alarms: usize,
     misfits: usize,
 }
 
@@ -283,6 +284,7 @@ fn run(seed: u64, batch: usize, design: Design, plant: bool, views: &[usize]) ->
                     nuisance: &nuisance,
                     propensity_fitted: b.p.is_none(),
                     features: &b.x,
+                    feature_names: &[],
                     models: &b.models[..count],
                 },
                 &settings,
@@ -299,6 +301,7 @@ fn run(seed: u64, batch: usize, design: Design, plant: bool, views: &[usize]) ->
                 match s {
                     Signal::LeaderChanged { new, .. } => out[v].changes.push((look, new)),
                     Signal::OverlapDegraded { .. } => out[v].overlap_alarms += 1,
+                    Signal::PopulationDrift { .. } => out[v].drift_alarms += 1,
                     Signal::NuisanceMisfit { .. } => {
                         out[v].misfits += 1;
                         refit = true;
@@ -380,12 +383,19 @@ fn tied_models_raise_no_leader_change() {
             let false_new = runs.iter().filter(|r| !r.changes.is_empty()).count();
             let false_old = runs.iter().filter(|r| !r.old_changes.is_empty()).count();
             let misfits: usize = runs.iter().map(|r| r.misfits).sum();
+            let drifted = runs.iter().filter(|r| r.drift_alarms > 0).count();
             println!(
                 "{count} tied models, batches of {batch}, {LOOKS} looks, {STREAMS} streams: \
-             P(any false leader change) {:.3} (old rule {:.3}); nuisance refits asked {misfits}",
+                 P(any false leader change) {:.3} (old rule {:.3}); P(any population_drift) \
+                 {:.3}; nuisance refits asked {misfits}",
                 share(false_new),
-                share(false_old)
+                share(false_old),
+                share(drifted)
             );
+            // The population never moves: any drift alarm is false.
+            if share(drifted) > ALPHA + 0.02 {
+                failures.push(format!("drift, batch {batch}: {}", share(drifted)));
+            }
             if share(false_new) > ALPHA + 0.02 {
                 failures.push(format!(
                     "{count} models, batch {batch}: {}",

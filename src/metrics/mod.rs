@@ -7,6 +7,8 @@
 //! - `plumbline_leader_info` {window, model} = 1 for the current leader
 //! - `plumbline_leader_changes_total` {window}
 //! - `plumbline_watched_units`: units the alerts' stream watch has taken
+//! - `plumbline_drift_standardized_difference` {quantity}: a feature's or
+//!   the propensity's drift from the watch's reference population
 //!
 //! `window="stream"` series come from the stream watch behind the alerts
 //! (anytime-valid: see `estimate::watch`); `cumulative` and `recent`
@@ -50,6 +52,12 @@ pub struct ModelLabels {
     pub dataset: String,
     pub model: String,
     pub window: String,
+}
+
+#[derive(Clone, Debug, Hash, PartialEq, Eq, EncodeLabelSet)]
+pub struct QuantityLabels {
+    pub dataset: String,
+    pub quantity: String,
 }
 
 #[derive(Clone, Debug, Hash, PartialEq, Eq, EncodeLabelSet)]
@@ -109,6 +117,7 @@ pub struct Metrics {
     pub nuisance_loss: Family<ComponentLabels, FloatGauge>,
     pub units: Family<DatasetLabels, FloatGauge>,
     pub watched_units: Family<DatasetLabels, FloatGauge>,
+    pub drift: Family<QuantityLabels, FloatGauge>,
     pub outcomes: Family<DatasetLabels, FloatGauge>,
     pub last_outcome_seconds: Family<DatasetLabels, FloatGauge>,
     pub events: Family<KindLabels, Counter>,
@@ -137,6 +146,7 @@ impl Metrics {
             nuisance_loss: Family::default(),
             units: Family::default(),
             watched_units: Family::default(),
+            drift: Family::default(),
             outcomes: Family::default(),
             last_outcome_seconds: Family::default(),
             events: Family::default(),
@@ -222,6 +232,11 @@ impl Metrics {
             "watched_units",
             "Units the alerts' stream watch has taken (window=\"stream\" series rest on them)",
             m.watched_units.clone(),
+        );
+        registry.register(
+            "drift_standardized_difference",
+            "Standardized mean difference of a feature or the propensity between arriving units and the drift reference",
+            m.drift.clone(),
         );
         registry.register("outcomes", "Outcomes stored", m.outcomes.clone());
         registry.register(

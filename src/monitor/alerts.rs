@@ -124,5 +124,16 @@ pub fn event(dataset: &str, signal: &Signal) -> Option<Raised> {
             ),
             json!({ "component": component, "evidence": evidence }),
         ),
+        Signal::PopulationDrift { quantity, evidence } => raised(
+            "population_drift",
+            format!(
+                "{dataset}: arriving units have drifted: the mean of {quantity} moved by {:+.2} \
+                 standard deviations from the reference population (tolerance {:.2}; {})",
+                evidence.estimate,
+                evidence.threshold.abs(),
+                how(evidence)
+            ),
+            json!({ "quantity": quantity, "evidence": evidence }),
+        ),
     }
 }

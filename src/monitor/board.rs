@@ -219,5 +219,13 @@ pub fn alert_view(watch: &crate::estimate::watch::Watch) -> pb::AlertView {
         overlap_degraded: s.overlap_degraded,
         looks: s.looks,
         units: s.units - s.baseline_units,
+        drift: s
+            .drift
+            .into_iter()
+            .map(|(quantity, standardized_difference)| pb::Drift {
+                quantity,
+                standardized_difference,
+            })
+            .collect(),
     }
 }

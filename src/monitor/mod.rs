@@ -1042,6 +1042,14 @@ impl Monitor {
                 dataset: dataset.into(),
             })
             .set(state.units as f64);
+        for (quantity, smd) in &state.drift {
+            m.drift
+                .get_or_create(&crate::metrics::QuantityLabels {
+                    dataset: dataset.into(),
+                    quantity: quantity.clone(),
+                })
+                .set(*smd);
+        }
     }
 
     async fn raise(&self, h: &DatasetHandle, snapshot_id: u64, r: Raised) {

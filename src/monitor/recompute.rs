@@ -477,6 +477,7 @@ impl Frame {
                 nuisance: &nuisance,
                 propensity_fitted: !state.logged,
                 features: &features,
+                feature_names: &self.spec.feature_names,
                 models: &models,
             },
             &self.watch_settings,
