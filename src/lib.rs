@@ -8,12 +8,14 @@
 //!   nuisance models, the AIPW pseudo-outcome, one file per error estimator
 //!   (corrected PEHE, plug-in PEHE, DR loss, R-loss, IPW loss), mergeable
 //!   aggregates, ranking with a best set, policy gain, targeting curves,
-//!   calibration and overlap. Knows nothing of files, networks or async.
+//!   calibration and overlap, and the stream watch behind the alerts
+//!   (confidence sequences and change detectors that stay valid however
+//!   often they are looked at). Knows nothing of files, networks or async.
 //! - [`store`]: the durable log in SQLite (datasets, models, units, outcomes,
 //!   predictions, nuisance fit records, score snapshots, events).
 //! - [`monitor`]: per-dataset state: the in-memory columnar cache, intake
 //!   validation and the integrity rules, the recompute job and its scheduler,
-//!   windows, snapshots and the alert rules.
+//!   windows, snapshots, and the events the stream watch raises.
 //! - [`api`]: the gRPC surface, thin adapters from the wire contract in
 //!   `proto/` to the monitor, with one mapping of errors to status codes.
 //! - [`auth`]: bearer tokens with `admin` / `read:<dataset>` /

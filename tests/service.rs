@@ -637,6 +637,90 @@ async fn a_policy_switch_is_found_and_refits() {
     srv.stop().await.expect("stop");
 }
 
+/// One cohort of the restart test: two models, a policy that switches to
+/// targeting on x1 from cohort 4.
+async fn send_cohort(c: &mut Clients, name: &str, k: usize) {
+    use rand::{Rng, SeedableRng};
+    let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(1000 + k as u64);
+    let (mut units, mut preds, mut outcomes) = (Vec::new(), Vec::new(), Vec::new());
+    for i in 0..800 {
+        let key = format!("c{k}-{i}");
+        let x = normal_features(&mut rng, 3);
+        let p = if k >= 4 {
+            1.0 / (1.0 + (-1.5 * x[0]).exp())
+        } else {
+            0.5
+        };
+        let w = if rng.gen::<f64>() < p { 1.0 } else { 0.0 };
+        let tau = 1.0 + x[1];
+        units.push(unit_row(&key, &x, w, None, &format!("c{k}")));
+        for (m, e) in [("sharp", tau), ("blunt", 1.0 + 0.5 * x[1])] {
+            preds.push(pb::PredictionRow {
+                model: m.into(),
+                unit_key: key.clone(),
+                effect: e + 0.3 * plumbline::synth::standard_normal(&mut rng),
+                predicted_at_ms: 0,
+            });
+        }
+        outcomes.push(pb::OutcomeRow {
+            unit_key: key,
+            value: x[0] + w * tau + plumbline::synth::standard_normal(&mut rng),
+            observed_at_ms: 0,
+        });
+    }
+    send_units(c, name, units).await;
+    send_predictions(c, name, preds).await;
+    send_outcomes(c, name, outcomes).await;
+    recompute(c, name, false).await;
+}
+
+/// The stream watch is stored with every snapshot: a server restarted
+/// halfway through a stream raises the same events, word for word, and
+/// ends with the same alert view as one that ran straight through.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn the_watch_resumes_after_a_restart() {
+    let name = "resumed";
+    let mut runs = Vec::new();
+    for restart in [false, true] {
+        let dir = TempDir::new("resume");
+        let mut srv = server(&dir).await;
+        let mut c = clients(srv.grpc_addr).await;
+        c.datasets
+            .create_dataset(pb::CreateDatasetRequest {
+                spec: Some(continuous_spec(name, 3)),
+            })
+            .await
+            .expect("create");
+        for m in ["sharp", "blunt"] {
+            register(&mut c, name, m).await;
+        }
+        for k in 0..8 {
+            if restart && k == 5 {
+                srv.stop().await.expect("stop");
+                srv = server(&dir).await;
+                c = clients(srv.grpc_addr).await;
+            }
+            send_cohort(&mut c, name, k).await;
+        }
+        let events: Vec<(String, String)> = all_events(&mut c, name)
+            .await
+            .into_iter()
+            .map(|e| (e.kind, e.summary))
+            .collect();
+        let view = board(&mut c, name, pb::window::Kind::Recent)
+            .await
+            .alerts
+            .expect("alert view");
+        srv.stop().await.expect("stop");
+        runs.push((events, view));
+    }
+    println!("events: {:#?}\nview: {:?}", runs[0].0, runs[0].1);
+    assert!(runs[0].1.looks >= 6, "{:?}", runs[0].1);
+    assert_eq!(runs[0].1.leader, "sharp");
+    assert!(runs[0].0.iter().any(|(k, _)| k == "nuisance_misfit"));
+    assert_eq!(runs[0], runs[1]);
+}
+
 /// Assignment that becomes near-deterministic for a subgroup raises overlap
 /// degraded; its recovery raises overlap recovered.
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]

@@ -401,17 +401,23 @@ async fn drive(
         .map_err(status("scoreboard"))?
         .into_inner();
     println!("\nsummary after {:.1} s", started.elapsed().as_secs_f64());
+    let view = cumulative.alerts.clone().unwrap_or_default();
     println!(
-        "  {} members with ride counts; leader over all weeks: {}; leader now (recent window): {}",
+        "  {} members with ride counts; lowest error over all weeks: {}; leader the alerts \
+         report now: {} ({}, on {} members watched as they arrived)",
         cumulative.units,
         cumulative.leader,
-        events
-            .iter()
-            .rev()
-            .find(|e| e.kind == "leader_changed")
-            .and_then(|e| serde_json::from_str::<serde_json::Value>(&e.details_json).ok())
-            .and_then(|d| d["new"].as_str().map(str::to_string))
-            .unwrap_or_else(|| cumulative.leader.clone())
+        if view.leader.is_empty() {
+            "none yet"
+        } else {
+            view.leader.as_str()
+        },
+        if view.leader_settled {
+            "settled"
+        } else {
+            "not yet separated from every other model"
+        },
+        view.units
     );
     let mut kinds: Vec<(&str, usize)> = Vec::new();
     for e in &events {
@@ -424,10 +430,12 @@ async fn drive(
     for (k, n) in &kinds {
         println!("    {k:<28} {n}");
     }
-    for e in events
-        .iter()
-        .filter(|e| e.kind == "leader_changed" || e.kind.starts_with("overlap"))
-    {
+    for e in events.iter().filter(|e| {
+        matches!(
+            e.kind.as_str(),
+            "leader_changed" | "nuisance_misfit" | "population_drift"
+        ) || e.kind.starts_with("overlap")
+    }) {
         println!("    - {}", e.summary);
     }
     println!("  metrics were served at http://{metrics}/metrics");

@@ -5,7 +5,8 @@
 //! pseudo-outcome), [`estimators`] (per-unit contributions, one file each),
 //! [`sums`] and [`compare`] (mergeable aggregates, ranking, best set),
 //! [`policy`], [`targeting`], [`calibration`] and [`overlap`] (the other
-//! reports), and [`scoreboard`], which runs a whole pass.
+//! reports), and [`scoreboard`], which runs a whole pass; then
+//! [`sequential`] and [`watch`], the statistics behind the alerts.
 
 pub mod calibration;
 pub mod compare;

@@ -492,7 +492,8 @@ impl Watch {
         if self.ate.count() >= 2 {
             let constant = self.ate.mean();
             let baseline: Vec<f64> = phi.iter().map(|p| (p - constant).powi(2)).collect();
-            self.check_heterogeneity(&losses, &baseline, s, &mut out);
+            let leader = self.leader.as_ref().map(|l| l.name.clone());
+            self.check_heterogeneity(&losses, &baseline, leader.as_deref(), s, &mut out);
         }
         self.ate.merge(&Moments::of(&phi));
         self.outcome.merge(&Moments::of(a.outcome));
@@ -670,6 +671,7 @@ impl Watch {
         &mut self,
         losses: &[(&str, Vec<f64>)],
         baseline: &[f64],
+        leader: Option<&str>,
         s: &WatchSettings,
         out: &mut Vec<Signal>,
     ) {
@@ -685,6 +687,14 @@ impl Watch {
         let log_a = log_threshold(s.alpha / 2.0, s.horizon, 1);
         match h.state {
             Heterogeneity::Detected => {
+                // The advantage watched is the reported leader's: when the
+                // leader changes, its own advantage is watched from here on
+                // (the first look places the detector's grid).
+                if let Some(leader) = leader.filter(|l| losses.iter().any(|(n, _)| n == l)) {
+                    if h.lead.as_ref().is_none_or(|(m, _)| m != leader) {
+                        h.lead = Some((leader.to_string(), Tracked::new(Side::Below)));
+                    }
+                }
                 let Some((model, tracked)) = h.lead.as_mut() else {
                     return;
                 };

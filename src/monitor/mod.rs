@@ -1,12 +1,13 @@
 //! Per-dataset state and everything that changes it: the registry, intake,
-//! the recompute scheduler and the alert rules. Data flows one way:
+//! the recompute scheduler and the alerts' events. Data flows one way:
 //! api -> monitor -> (store, estimate) -> snapshot -> metrics and events.
 //!
 //! Each dataset has a cache guarded by an async mutex. Intake validates a
 //! batch against the cache, commits it to the store, and only then appends it
 //! to the cache and replies. A recompute copies what it needs out of the
-//! cache, runs on the blocking pool (never on the RPC threads), stores a
-//! snapshot, then installs the results and evaluates the alert rules.
+//! cache, runs on the blocking pool (never on the RPC threads), where the
+//! stream watch folds in the new units, stores a snapshot with the watch's
+//! state, then installs the results and raises the watch's events.
 
 pub mod alerts;
 pub mod board;
@@ -840,6 +841,19 @@ impl Monitor {
             h.publish(boards.clone());
             (raised, previous, watched_leader)
         };
+        // The watch looked before any refit: its events come first.
+        for r in raised {
+            if r.kind == "leader_changed" {
+                self.metrics
+                    .leader_changes
+                    .get_or_create(&WindowLabels {
+                        dataset: h.name.clone(),
+                        window: alerts::STREAM.into(),
+                    })
+                    .inc();
+            }
+            self.raise(h, snapshot_id as u64, r).await;
+        }
         if let Some(reason) = computed.refit {
             let report = &nuisance.report;
             self.raise(
@@ -859,18 +873,6 @@ impl Monitor {
                 },
             )
             .await;
-        }
-        for r in raised {
-            if r.kind == "leader_changed" {
-                self.metrics
-                    .leader_changes
-                    .get_or_create(&WindowLabels {
-                        dataset: h.name.clone(),
-                        window: alerts::STREAM.into(),
-                    })
-                    .inc();
-            }
-            self.raise(h, snapshot_id as u64, r).await;
         }
         let seconds = started.elapsed().as_secs_f64();
         self.metrics
