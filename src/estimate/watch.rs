@@ -367,7 +367,8 @@ impl Default for OverlapWatch {
 #[derive(Debug, Clone, PartialEq, Default, Serialize, Deserialize)]
 struct DriftWatch {
     /// Per feature, then the propensity: the reference's moments, taken
-    /// from the first [`DRIFT_REFERENCE_UNITS`] units after a (re)start.
+    /// from the first [`DRIFT_REFERENCE_UNITS`] units after a (re)start
+    /// (for the propensity, also after each refit).
     reference: Vec<Moments>,
     checks: BTreeMap<String, Tracked>,
 }
@@ -451,6 +452,14 @@ impl Watch {
     /// The nuisance models were refitted: the misfit checks restart.
     pub fn refitted(&mut self) {
         self.fit = FitWatch::default();
+        // A new propensity model moves the fitted propensities by itself:
+        // their drift reference starts again from the new model's values.
+        if let Some(r) = self.drift.reference.last_mut() {
+            *r = Moments::default();
+        }
+        self.drift
+            .checks
+            .retain(|k, _| !k.starts_with("propensity "));
     }
 
     /// Folds one look in. Returns what it decided; a
@@ -811,17 +820,16 @@ impl Watch {
                 checks: BTreeMap::new(),
             };
         }
-        if w.reference[0].count() < DRIFT_REFERENCE_UNITS {
-            for (j, r) in w.reference.iter_mut().enumerate() {
-                r.merge(&Moments::of(&column(j)));
-            }
-            return;
-        }
         let log_a = log_threshold(s.alpha, s.horizon, 2 * (d + 1));
         let alpha = s.alpha / (2 * (d + 1)) as f64;
         let tol = s.drift_tolerance;
         let mut fired = None;
         for j in 0..=d {
+            // Until a quantity's reference is complete, the look builds it.
+            if w.reference[j].count() < DRIFT_REFERENCE_UNITS {
+                w.reference[j].merge(&Moments::of(&column(j)));
+                continue;
+            }
             let (mean, sd) = (w.reference[j].mean(), w.reference[j].sd());
             if sd <= 0.0 {
                 continue;
