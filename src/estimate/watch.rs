@@ -497,7 +497,7 @@ impl Watch {
             })
             .filter(|(_, l): &(&str, Vec<f64>)| l.iter().any(|v| !v.is_nan()))
             .collect();
-        self.check_leader(&losses, s, &mut out);
+        self.check_leader(&losses, a.models, s, &mut out);
         if self.ate.count() >= 2 {
             let constant = self.ate.mean();
             let baseline: Vec<f64> = phi.iter().map(|p| (p - constant).powi(2)).collect();
@@ -520,6 +520,7 @@ impl Watch {
     fn check_leader(
         &mut self,
         losses: &[(&str, Vec<f64>)],
+        active: &[(String, Vec<f64>)],
         s: &WatchSettings,
         out: &mut Vec<Signal>,
     ) {
@@ -557,8 +558,13 @@ impl Watch {
             .find(|(n, _)| *n == leader.name)
             .map(|(_, l)| l)
         else {
-            // The leader stopped predicting (retired, or no longer scored):
-            // the best challenger so far takes over.
+            if active.iter().any(|(n, _)| *n == leader.name) {
+                // Still active, but no prediction for these units (a late
+                // or failed batch of its predictions): nothing to compare.
+                return;
+            }
+            // The leader was retired: the best challenger so far takes
+            // over.
             let next = leader
                 .pairs
                 .iter()
@@ -1069,5 +1075,63 @@ mod tests {
         println!("drift: {early} early alarms, {found} found, {within} within 4 looks, delays {delays:?}");
         assert_eq!(early, 0);
         assert!(within >= 95, "{within}");
+    }
+
+    /// A leader with no predictions for one look keeps its place; a retired
+    /// one (no longer among the active models) hands it to a challenger,
+    /// and the event says why.
+    #[test]
+    fn a_missing_batch_is_not_a_retirement() {
+        let names: Vec<String> = ["a", "b", "c"].map(String::from).to_vec();
+        let s = WatchSettings::default();
+        let mut rng = ChaCha8Rng::seed_from_u64(3);
+        let mut watch = Watch::default();
+        let mut observe = |watch: &mut Watch, models: &[&str], missing: Option<&str>| {
+            let (x, w, y, nu) = look(&mut rng, 300, [0.0; 3]);
+            let models: Vec<(String, Vec<f64>)> = models
+                .iter()
+                .map(|&m| {
+                    let e = (0..300)
+                        .map(|i| {
+                            if Some(m) == missing {
+                                f64::NAN
+                            } else {
+                                1.0 + x[3 * i + 1]
+                            }
+                        })
+                        .collect();
+                    (m.to_string(), e)
+                })
+                .collect();
+            watch.observe(
+                &Arrivals {
+                    treatment: &w,
+                    outcome: &y,
+                    nuisance: &nu,
+                    propensity_fitted: true,
+                    features: &x,
+                    feature_names: &names,
+                    models: &models,
+                },
+                &s,
+            )
+        };
+        observe(&mut watch, &["m1", "m2"], None);
+        let leader = watch.state().leader.expect("appointed");
+        let other = if leader == "m1" { "m2" } else { "m1" };
+        let signals = observe(&mut watch, &["m1", "m2"], Some(leader.as_str()));
+        assert!(
+            !signals
+                .iter()
+                .any(|s| matches!(s, Signal::LeaderChanged { .. })),
+            "{signals:?}"
+        );
+        assert_eq!(watch.state().leader.as_deref(), Some(leader.as_str()));
+        let signals = observe(&mut watch, &[other], None);
+        let changed = signals.iter().find_map(|s| match s {
+            Signal::LeaderChanged { new, evidence, .. } => Some((new.clone(), evidence.route)),
+            _ => None,
+        });
+        assert_eq!(changed, Some((other.to_string(), Route::Gone)));
     }
 }
