@@ -107,6 +107,12 @@ def main(argv: list[str]) -> int:
     )
     if a["no_detectable_heterogeneity"]:
         print("No detectable heterogeneity: no model beats constant-effect significantly.")
+    alerts = a["alerts"]
+    print(
+        f"Alerts: leader {alerts['leader'] or 'none yet'}"
+        f"{' (settled)' if alerts['leader_settled'] else ''}, on {alerts['units']} units watched "
+        f"over {alerts['looks']} recomputes; heterogeneity {alerts['heterogeneity']}"
+    )
     shown = [
         "rank",
         "model",

@@ -359,6 +359,30 @@ pub fn scoreboard(c: &Connection, d: &DatasetArg, w: &WindowArg) -> ExitCode {
         if b.no_detectable_heterogeneity {
             println!("no detectable heterogeneity: no model beats constant-effect significantly");
         }
+        if let Some(a) = b.alerts.as_ref().filter(|a| a.looks > 0) {
+            println!(
+                "alerts (on {} units watched as they arrived, {} recomputes): leader {}{}; \
+                 heterogeneity {}; overlap {}",
+                a.units,
+                a.looks,
+                if a.leader.is_empty() {
+                    "none yet"
+                } else {
+                    &a.leader
+                },
+                if a.leader_settled {
+                    ", settled"
+                } else {
+                    ", not yet separated from every other model"
+                },
+                a.heterogeneity,
+                if a.overlap_degraded {
+                    "degraded"
+                } else {
+                    "fine"
+                }
+            );
+        }
         println!("{}", b.caveat);
         Ok(())
     })

@@ -666,8 +666,11 @@ class Client:
         ``window``, ``snapshot_id``, ``computed_at_ms``, ``units``, ``ate``
         and ``ate_se``, ``leader``, ``best_set``,
         ``no_detectable_heterogeneity``, ``incomplete`` (model -> coverage),
-        ``overlap_degraded``, ``degenerate``, ``caveat`` and ``json`` (the
-        full document). Raises ``FAILED_PRECONDITION`` before the first
+        ``overlap_degraded``, ``degenerate``, ``caveat``, ``json`` (the
+        full document) and ``alerts`` (the alerts' view: their leader,
+        ``leader_settled``, ``heterogeneity``, ``overlap_degraded``,
+        ``looks``, ``units`` and ``drift``, feature -> standardized
+        difference). Raises ``FAILED_PRECONDITION`` before the first
         recompute.
         """
         return scoreboard_frame(self.scoreboard_message(dataset, window, cohort))
@@ -844,6 +847,17 @@ def scoreboard_frame(board: "pb.Scoreboard") -> pd.DataFrame:
             "degenerate": board.degenerate,
             "caveat": board.caveat,
             "json": board.json,
+            # The alerts' view: their leader moves only on evidence that
+            # stays valid however often the service looks (README, "Alerts").
+            "alerts": {
+                "leader": board.alerts.leader,
+                "leader_settled": board.alerts.leader_settled,
+                "heterogeneity": board.alerts.heterogeneity,
+                "overlap_degraded": board.alerts.overlap_degraded,
+                "looks": board.alerts.looks,
+                "units": board.alerts.units,
+                "drift": {d.quantity: d.standardized_difference for d in board.alerts.drift},
+            },
         }
     )
     return df
