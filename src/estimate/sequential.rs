@@ -20,9 +20,11 @@
 //!   is seen without waiting for the whole history to turn.
 //!
 //! The detector's guarantee: each look folds in one e-value per grid
-//! point, E[e] <= 1 while nothing has changed, so the mean of the
-//! Shiryaev-Roberts statistics R_t = (1 + R_{t-1}) e_t less t is a
-//! martingale and, by Doob's inequality, P(R_t >= A for some t <= H) <= H / A.
+//! point, E[e | past] <= 1 while nothing has changed, so for the
+//! Shiryaev-Roberts statistic R_t = (1 + R_{t-1}) e_t (and the grid's mean
+//! of them) R_t - t is a supermartingale. For t <= H, R_t <= R_t - t + H,
+//! a nonnegative supermartingale starting at H, so Ville's inequality gives
+//! P(R_t >= A for some t <= H) <= H / A.
 //! [`log_threshold`] sets A = H k / alpha for k detectors sharing alpha, so
 //! that the chance of any false alarm within the first H looks is at most
 //! alpha, and the average run length to a false alarm is at least H k /
