@@ -108,11 +108,14 @@ def main(argv: list[str]) -> int:
     if a["no_detectable_heterogeneity"]:
         print("No detectable heterogeneity: no model beats constant-effect significantly.")
     alerts = a["alerts"]
-    print(
-        f"Alerts: leader {alerts['leader'] or 'none yet'}"
-        f"{' (settled)' if alerts['leader_settled'] else ''}, on {alerts['units']} units watched "
-        f"over {alerts['looks']} recomputes; heterogeneity {alerts['heterogeneity']}"
-    )
+    if alerts["looks"] == 0:
+        print("Alerts: not watching yet; they start with the units that arrive after the first fit.")
+    else:
+        print(
+            f"Alerts: leader {alerts['leader'] or 'none yet'}"
+            f"{' (settled)' if alerts['leader_settled'] else ''}, on {alerts['units']} units watched "
+            f"over {alerts['looks']} recomputes; heterogeneity {alerts['heterogeneity']}"
+        )
     shown = [
         "rank",
         "model",
