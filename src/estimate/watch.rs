@@ -324,6 +324,10 @@ struct LeaderWatch {
     /// Per challenger: the leader's squared error minus the challenger's
     /// (positive: the challenger errs less), since the appointment.
     pairs: BTreeMap<String, Tracked>,
+    /// Another model has predicted since the appointment: with none, there
+    /// is nothing to be uncertain about.
+    #[serde(default)]
+    contested: bool,
 }
 
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Default, Serialize, Deserialize)]
@@ -424,7 +428,10 @@ impl Watch {
     pub fn state(&self) -> WatchState {
         WatchState {
             leader: self.leader.as_ref().map(|l| l.name.clone()),
-            leader_settled: self.leader.as_ref().is_some_and(|l| l.settled),
+            leader_settled: self
+                .leader
+                .as_ref()
+                .is_some_and(|l| l.settled || !l.contested),
             heterogeneity: self.heterogeneity.state,
             overlap_degraded: self.overlap.degraded,
             looks: self.looks,
@@ -536,6 +543,7 @@ impl Watch {
                     name: name.to_string(),
                     settled: false,
                     pairs: BTreeMap::new(),
+                    contested: losses.len() > 1,
                 });
                 out.push(Signal::LeaderAppointed {
                     leader: name.to_string(),
@@ -579,7 +587,7 @@ impl Watch {
             if let Some((name, tracked)) = next {
                 let old = leader.name.clone();
                 let evidence = tracked.evidence(Route::Gone, 0.0, 1.0, f64::INFINITY, 0.0);
-                self.appoint(name.clone());
+                self.appoint(name.clone(), losses.len() > 1);
                 out.push(Signal::LeaderChanged {
                     old,
                     new: name,
@@ -648,7 +656,7 @@ impl Watch {
         }
         if let Some((new, evidence, _)) = best {
             let old = leader.name.clone();
-            self.appoint(new.clone());
+            self.appoint(new.clone(), losses.len() > 1);
             out.push(Signal::LeaderChanged {
                 old,
                 new: new.clone(),
@@ -666,6 +674,7 @@ impl Watch {
             }
             return;
         }
+        leader.contested |= !leader.pairs.is_empty();
         if !leader.settled && tied.is_empty() && !leader.pairs.is_empty() {
             leader.settled = true;
             out.push(Signal::LeaderSettled {
@@ -674,11 +683,12 @@ impl Watch {
         }
     }
 
-    fn appoint(&mut self, name: String) {
+    fn appoint(&mut self, name: String, contested: bool) {
         self.leader = Some(LeaderWatch {
             name,
             settled: false,
             pairs: BTreeMap::new(),
+            contested,
         });
     }
 
@@ -1116,7 +1126,12 @@ mod tests {
                 &s,
             )
         };
+        // One model alone has no one to be separated from.
+        let mut alone = Watch::default();
+        observe(&mut alone, &["m1"], None);
+        assert!(alone.state().leader_settled);
         observe(&mut watch, &["m1", "m2"], None);
+        assert!(!watch.state().leader_settled);
         let leader = watch.state().leader.expect("appointed");
         let other = if leader == "m1" { "m2" } else { "m1" };
         let signals = observe(&mut watch, &["m1", "m2"], Some(leader.as_str()));
