@@ -754,28 +754,21 @@ impl Watch {
                     }
                 }
                 if let Some((model, _)) = best {
-                    let moments = h.models.get(&model).copied().unwrap_or_default();
-                    let r = cs_radius(moments.count(), moments.sd(), cs_alpha);
-                    out.push(Signal::HeterogeneityDetected {
-                        model: model.clone(),
-                        evidence: Evidence {
-                            route: Route::Sequence,
-                            estimate: moments.mean(),
-                            lower: moments.mean() - r,
-                            upper: moments.mean() + r,
-                            units: moments.count(),
-                            looks: 0,
-                            log_statistic: f64::NAN,
-                            log_threshold: f64::NAN,
-                            threshold: 0.0,
-                            alpha: cs_alpha,
-                        },
-                    });
-                    h.state = Heterogeneity::Detected;
                     // The loss detector starts from the advantage so far,
                     // which places its grid.
                     let mut tracked = Tracked::new(Side::Below);
-                    tracked.since = moments;
+                    tracked.since = h.models.get(&model).copied().unwrap_or_default();
+                    out.push(Signal::HeterogeneityDetected {
+                        model: model.clone(),
+                        evidence: tracked.evidence(
+                            Route::Sequence,
+                            0.0,
+                            cs_alpha,
+                            f64::NAN,
+                            cs_alpha,
+                        ),
+                    });
+                    h.state = Heterogeneity::Detected;
                     h.lead = Some((model, tracked));
                     h.models.clear();
                 }
@@ -1028,6 +1021,27 @@ mod tests {
         (x, w, y, nu)
     }
 
+    /// Folds one look into `watch`.
+    fn fold(
+        watch: &mut Watch,
+        (x, w, y, nu): &(Vec<f64>, Vec<f64>, Vec<f64>, Nuisance),
+        names: &[String],
+        models: &[(String, Vec<f64>)],
+    ) -> Vec<Signal> {
+        watch.observe(
+            &Arrivals {
+                treatment: w,
+                outcome: y,
+                nuisance: nu,
+                propensity_fitted: true,
+                features: x,
+                feature_names: names,
+                models,
+            },
+            &WatchSettings::default(),
+        )
+    }
+
     /// 100 streams of 60 looks of 500 units; from look 30 the second
     /// feature's mean moves by 0.3 standard deviations. Nothing is raised
     /// before (the threshold allows a false alarm in at most 5% of streams
@@ -1036,30 +1050,18 @@ mod tests {
     #[test]
     fn a_feature_drift_is_found_and_named() {
         let names: Vec<String> = ["age", "tenure", "visits"].map(String::from).to_vec();
-        let s = WatchSettings::default();
         let (mut early, mut found, mut delays) = (0, 0, Vec::new());
         for stream in 0..100 {
             let mut rng = ChaCha8Rng::seed_from_u64(stream);
             let mut watch = Watch::default();
             for k in 0..60 {
                 let shift = if k >= 30 { [0.0, 0.3, 0.0] } else { [0.0; 3] };
-                let (x, w, y, nu) = look(&mut rng, 500, shift);
+                let units = look(&mut rng, 500, shift);
                 let models = vec![(
                     "m".to_string(),
-                    (0..500).map(|i| 1.0 + x[3 * i + 1]).collect(),
+                    (0..500).map(|i| 1.0 + units.0[3 * i + 1]).collect(),
                 )];
-                let signals = watch.observe(
-                    &Arrivals {
-                        treatment: &w,
-                        outcome: &y,
-                        nuisance: &nu,
-                        propensity_fitted: true,
-                        features: &x,
-                        feature_names: &names,
-                        models: &models,
-                    },
-                    &s,
-                );
+                let signals = fold(&mut watch, &units, &names, &models);
                 let drift: Vec<&String> = signals
                     .iter()
                     .filter_map(|s| match s {
@@ -1093,11 +1095,11 @@ mod tests {
     #[test]
     fn a_missing_batch_is_not_a_retirement() {
         let names: Vec<String> = ["a", "b", "c"].map(String::from).to_vec();
-        let s = WatchSettings::default();
         let mut rng = ChaCha8Rng::seed_from_u64(3);
         let mut watch = Watch::default();
         let mut observe = |watch: &mut Watch, models: &[&str], missing: Option<&str>| {
-            let (x, w, y, nu) = look(&mut rng, 300, [0.0; 3]);
+            let units = look(&mut rng, 300, [0.0; 3]);
+            let x = &units.0;
             let models: Vec<(String, Vec<f64>)> = models
                 .iter()
                 .map(|&m| {
@@ -1113,18 +1115,7 @@ mod tests {
                     (m.to_string(), e)
                 })
                 .collect();
-            watch.observe(
-                &Arrivals {
-                    treatment: &w,
-                    outcome: &y,
-                    nuisance: &nu,
-                    propensity_fitted: true,
-                    features: &x,
-                    feature_names: &names,
-                    models: &models,
-                },
-                &s,
-            )
+            fold(watch, &units, &names, &models)
         };
         // One model alone has no one to be separated from.
         let mut alone = Watch::default();

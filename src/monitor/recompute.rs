@@ -469,14 +469,15 @@ impl Frame {
             .iter()
             .map(|(name, effects)| (name.clone(), units.iter().map(|&u| effects[u]).collect()))
             .collect();
-        let features = x.as_slice().map(<[f64]>::to_vec).unwrap_or_default();
+        // Standard layout: `rows` builds it from one row after another.
+        let features = x.as_slice().unwrap_or(&[]);
         let signals = self.watch.observe(
             &Arrivals {
                 treatment: &treatment,
                 outcome: &outcome,
                 nuisance: &nuisance,
                 propensity_fitted: !state.logged,
-                features: &features,
+                features,
                 feature_names: &self.spec.feature_names,
                 models: &models,
             },
