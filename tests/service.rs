@@ -407,6 +407,46 @@ fn normal_features(rng: &mut rand_chacha::ChaCha8Rng, d: usize) -> Vec<f64> {
         .collect()
 }
 
+/// Creates `name` with two features and one model "m" whose predictions are
+/// the true effect, sends `n` units (twice when `resend`, to count
+/// duplicates), their predictions and outcomes, and recomputes once.
+async fn one_model_scored(c: &mut Clients, name: &str, n: usize, seed: u64, resend: bool) {
+    use rand::{Rng, SeedableRng};
+    c.datasets
+        .create_dataset(pb::CreateDatasetRequest {
+            spec: Some(continuous_spec(name, 2)),
+        })
+        .await
+        .expect("create");
+    register(c, name, "m").await;
+    let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(seed);
+    let (mut units, mut preds, mut outcomes) = (Vec::new(), Vec::new(), Vec::new());
+    for i in 0..n {
+        let key = format!("u{i}");
+        let x = normal_features(&mut rng, 2);
+        let w = if rng.gen::<f64>() < 0.5 { 1.0 } else { 0.0 };
+        units.push(unit_row(&key, &x, w, None, "c"));
+        preds.push(pb::PredictionRow {
+            model: "m".into(),
+            unit_key: key.clone(),
+            effect: x[0],
+            predicted_at_ms: 0,
+        });
+        outcomes.push(pb::OutcomeRow {
+            unit_key: key,
+            value: x[1] + w * x[0] + plumbline::synth::standard_normal(&mut rng),
+            observed_at_ms: 0,
+        });
+    }
+    if resend {
+        send_units(c, name, units.clone()).await;
+    }
+    send_units(c, name, units).await;
+    send_predictions(c, name, preds).await;
+    send_outcomes(c, name, outcomes).await;
+    recompute(c, name, false).await;
+}
+
 /// A challenger becomes best after cohort 3: exactly one significant
 /// leader-changed event, visible through watch and list, and the
 /// leader-change counter on /metrics moves.
@@ -796,42 +836,11 @@ async fn overlap_degrades_and_recovers() {
 /// with its labels.
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn metrics_carry_every_series_with_its_labels() {
-    use rand::{Rng, SeedableRng};
     let dir = TempDir::new("metrics");
     let srv = server(&dir).await;
     let mut c = clients(srv.grpc_addr).await;
     let name = "metered";
-    c.datasets
-        .create_dataset(pb::CreateDatasetRequest {
-            spec: Some(continuous_spec(name, 2)),
-        })
-        .await
-        .expect("create");
-    register(&mut c, name, "m").await;
-    let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(9);
-    let (mut units, mut preds, mut outcomes) = (Vec::new(), Vec::new(), Vec::new());
-    for i in 0..600 {
-        let key = format!("u{i}");
-        let x = normal_features(&mut rng, 2);
-        let w = if rng.gen::<f64>() < 0.5 { 1.0 } else { 0.0 };
-        units.push(unit_row(&key, &x, w, None, "c"));
-        preds.push(pb::PredictionRow {
-            model: "m".into(),
-            unit_key: key.clone(),
-            effect: x[0],
-            predicted_at_ms: 0,
-        });
-        outcomes.push(pb::OutcomeRow {
-            unit_key: key,
-            value: x[1] + w * x[0] + plumbline::synth::standard_normal(&mut rng),
-            observed_at_ms: 0,
-        });
-    }
-    send_units(&mut c, name, units.clone()).await;
-    send_units(&mut c, name, units).await; // duplicates
-    send_predictions(&mut c, name, preds).await;
-    send_outcomes(&mut c, name, outcomes).await;
-    recompute(&mut c, name, false).await;
+    one_model_scored(&mut c, name, 600, 9, true).await;
 
     let (status, text) = http_get(srv.metrics_addr, "/metrics");
     assert_eq!(status, 200);
@@ -1125,4 +1134,105 @@ async fn cohort_boards(c: &mut Clients, name: &str) -> Vec<pb::Scoreboard> {
         out.push(cohort_board(c, name, &format!("2026-{:02}", k + 1)).await);
     }
     out
+}
+
+/// Every estimator of `estimators::ALL` reaches every surface: the board on
+/// the wire, `/metrics`, the history endpoint and the CLI's scoreboard
+/// table; a key outside the list is refused by name.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn every_estimator_reaches_the_board_metrics_history_and_table() {
+    use plumbline::estimate::estimators;
+    let dir = TempDir::new("estimators");
+    let srv = server(&dir).await;
+    let mut c = clients(srv.grpc_addr).await;
+    let name = "listed";
+    one_model_scored(&mut c, name, 400, 4, false).await;
+
+    let b = board(&mut c, name, pb::window::Kind::Cumulative).await;
+    let keys: Vec<&str> = estimators::ALL.iter().map(|e| e.key()).collect();
+    for m in &b.models {
+        let sent: Vec<&str> = m.scores.iter().map(|s| s.estimator.as_str()).collect();
+        assert_eq!(sent, keys, "{}: the board's scores follow ALL", m.name);
+        assert!(m
+            .scores
+            .iter()
+            .all(|s| s.estimate.is_finite() && s.se >= 0.0));
+    }
+
+    let (_, text) = http_get(srv.metrics_addr, "/metrics");
+    let samples = parse_metrics(&text);
+    for key in &keys {
+        let found = samples.iter().any(|(n, l, v)| {
+            n == "plumbline_model_score"
+                && v.is_finite()
+                && l.iter().any(|(k, v)| k == "estimator" && v == key)
+                && l.iter().any(|(k, v)| k == "model" && v == "m")
+        });
+        assert!(found, "/metrics has no plumbline_model_score for {key}");
+
+        let points = c
+            .scoring
+            .get_history(pb::GetHistoryRequest {
+                dataset: name.into(),
+                model: "m".into(),
+                estimator: key.to_string(),
+                window: None,
+                from_ms: 0,
+                to_ms: 0,
+            })
+            .await
+            .expect("history")
+            .into_inner()
+            .points;
+        let on_board = b.models.iter().find(|m| m.name == "m").and_then(|m| {
+            m.scores
+                .iter()
+                .find(|s| s.estimator == *key)
+                .map(|s| s.estimate)
+        });
+        assert_eq!(points.len(), 1, "{key}: one recompute, one point");
+        assert_eq!(points[0].value.map(|v| v.estimate), on_board, "{key}");
+    }
+    let refused = c
+        .scoring
+        .get_history(pb::GetHistoryRequest {
+            dataset: name.into(),
+            model: "m".into(),
+            estimator: "pehe_typo".into(),
+            window: None,
+            from_ms: 0,
+            to_ms: 0,
+        })
+        .await
+        .expect_err("an unknown estimator is refused");
+    assert_eq!(refused.code(), Code::InvalidArgument);
+    assert!(
+        refused.message().starts_with("estimator: \"pehe_typo\""),
+        "{}",
+        refused.message()
+    );
+
+    let addr = format!("http://{}", srv.grpc_addr);
+    let out = std::process::Command::new(env!("CARGO_BIN_EXE_plumbline"))
+        .args(["scoreboard", "--server", &addr, "--dataset", name])
+        .output()
+        .expect("run plumbline scoreboard");
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    let table = String::from_utf8_lossy(&out.stdout);
+    let header = table
+        .lines()
+        .find(|l| l.trim_start().starts_with("rank"))
+        .unwrap_or_default();
+    for e in estimators::ALL {
+        assert!(
+            header.contains(e.label()),
+            "{:?} not in {header:?}",
+            e.label()
+        );
+    }
+    srv.stop().await.expect("stop");
 }

@@ -83,7 +83,7 @@ fn one_rep(design: Design, mean_tau: f64, var_tau: f64, seed: u64, models: usize
     let estimated: Vec<f64> = board
         .models
         .iter()
-        .map(|m| m.corrected_pehe.estimate)
+        .map(|m| m.scores.ranked().estimate)
         .collect();
     let true_values: Vec<f64> = board.models.iter().map(|m| truth(&m.name)).collect();
     Rep {

@@ -126,14 +126,14 @@ def main(argv: list[str]) -> int:
         "vs_constant_ci_high",
         "p_best",
         "in_best_set",
-        "corrected_pehe_lower_est",
+        "corrected_pehe",
         "policy_gain",
         "policy_gain_se",
         "autoc",
     ]
     with pd.option_context("display.width", 250, "display.max_columns", None, "display.float_format", "{:.4f}".format):
         print(board[shown].to_string(index=False))
-    print("corrected_pehe_lower_est is a lower estimate of PEHE; compare models through vs_constant.")
+    print("corrected_pehe is a lower estimate of PEHE; compare models through vs_constant.")
     if a["caveat"]:
         print(f"caveat: {a['caveat']}")
     print()
@@ -155,7 +155,7 @@ def main(argv: list[str]) -> int:
         fail("the baseline flags do not mark exactly zero-effect and constant-effect")
     if a["leader"] != board.iloc[0]["model"]:
         fail(f"leader {a['leader']!r} is not the rank-1 model {board.iloc[0]['model']!r}")
-    numeric = board[["vs_constant_estimate", "vs_constant_se", "p_best", "corrected_pehe_lower_est", "policy_gain"]]
+    numeric = board[["vs_constant_estimate", "vs_constant_se", "p_best", "corrected_pehe", "policy_gain"]]
     if numeric.isna().any().any():
         fail("scoreboard holds NaN in a core column")
     print(f"example: OK: {len(got)} models ranked ({len(models)} registered + 2 baselines)")

@@ -7,7 +7,7 @@ use tonic::{Request, Response, Status};
 use super::pb;
 use super::status::from_monitor;
 use crate::auth::{caller, Access};
-use crate::monitor::board::window_key;
+use crate::monitor::board::{history_keys, window_key};
 use crate::monitor::Asked;
 use crate::monitor::Monitor;
 
@@ -38,18 +38,6 @@ impl ScoringService {
             .map_err(from_monitor)
     }
 }
-
-const ESTIMATORS: [&str; 9] = [
-    "corrected_pehe",
-    "vs_constant",
-    "plugin_pehe",
-    "dr_loss",
-    "r_loss",
-    "ipw_loss",
-    "policy_gain",
-    "autoc",
-    "qini",
-];
 
 #[tonic::async_trait]
 impl pb::scoring_server::Scoring for ScoringService {
@@ -100,11 +88,11 @@ impl pb::scoring_server::Scoring for ScoringService {
         let who = caller(&request)?;
         let r = request.into_inner();
         who.require(Access::Read, &r.dataset)?;
-        if !ESTIMATORS.contains(&r.estimator.as_str()) {
+        if !history_keys().any(|k| k == r.estimator) {
             return Err(Status::invalid_argument(format!(
                 "estimator: {:?} is not one of {}",
                 r.estimator,
-                ESTIMATORS.join(", ")
+                history_keys().collect::<Vec<_>>().join(", ")
             )));
         }
         let id = self.monitor.dataset_id(&r.dataset).map_err(from_monitor)?;

@@ -11,6 +11,7 @@ use tonic::transport::{Certificate, Channel, ClientTlsConfig, Identity};
 use tonic::{Request, Status};
 
 use crate::api::pb;
+use crate::estimate::estimators;
 
 #[derive(Debug, Clone, Copy, ValueEnum, PartialEq, Eq)]
 pub enum Output {
@@ -330,23 +331,57 @@ pub fn scoreboard(c: &Connection, d: &DatasetArg, w: &WindowArg) -> ExitCode {
             "{} units; ATE (AIPW) {:.4} (se {:.4})",
             b.units, ate.estimate, ate.se
         );
-        println!(
-            "{:>4}  {:<24} {:>11} {:>24} {:>7}  {:>22}  best",
-            "rank", "model", "vs constant", "95% CI", "p_best", "corrected PEHE (lower)"
+        // One column per estimator the server sent, in its order (the
+        // first ranks); a key this build does not know shows as sent.
+        let columns: Vec<(String, usize)> = b
+            .models
+            .first()
+            .map(|m| {
+                m.scores
+                    .iter()
+                    .enumerate()
+                    .map(|(i, s)| {
+                        let label = estimators::by_key(&s.estimator)
+                            .map(|e| e.label())
+                            .unwrap_or(&s.estimator);
+                        let label = if i == 0 {
+                            format!("{label} (lower)")
+                        } else {
+                            label.to_string()
+                        };
+                        let w = label.len().max(if i == 0 { 22 } else { 10 });
+                        (label, w)
+                    })
+                    .collect()
+            })
+            .unwrap_or_default();
+        let mut header = format!(
+            "{:>4}  {:<24} {:>11} {:>24} {:>7}",
+            "rank", "model", "vs constant", "95% CI", "p_best"
         );
+        for (label, w) in &columns {
+            header.push_str(&format!("  {label:>w$}"));
+        }
+        println!("{header}  best");
         for m in &b.models {
             let v = m.vs_constant.unwrap_or_default();
-            let cp = m.corrected_pehe.unwrap_or_default();
-            println!(
-                "{:>4}  {:<24} {:>11.4} {:>24} {:>7.3}  {:>22}  {}",
+            let mut line = format!(
+                "{:>4}  {:<24} {:>11.4} {:>24} {:>7.3}",
                 m.rank,
                 m.name,
                 v.estimate,
                 format!("[{:.4}, {:.4}]", v.ci_low, v.ci_high),
                 m.p_best,
-                format!("{:.4} ({:.4})", cp.estimate, cp.se),
-                if m.in_best_set { "yes" } else { "" }
             );
+            for (i, (s, (_, w))) in m.scores.iter().zip(&columns).enumerate() {
+                let cell = if i == 0 {
+                    format!("{:.4} ({:.4})", s.estimate, s.se)
+                } else {
+                    format!("{:.4}", s.estimate)
+                };
+                line.push_str(&format!("  {cell:>w$}"));
+            }
+            println!("{line}  {}", if m.in_best_set { "yes" } else { "" });
         }
         for i in &b.incomplete {
             println!(
@@ -395,7 +430,8 @@ pub struct HistoryArgs {
     /// Model name (or a baseline: zero-effect, constant-effect).
     #[arg(long)]
     pub model: String,
-    /// corrected_pehe, vs_constant, plugin_pehe, dr_loss, r_loss, ipw_loss, policy_gain, autoc, qini.
+    /// An estimator's key (corrected_pehe, plugin_pehe, dr_loss, r_loss, ipw_loss) or
+    /// vs_constant, policy_gain, autoc, qini.
     #[arg(long, default_value = "vs_constant")]
     pub estimator: String,
     #[command(flatten)]

@@ -4,6 +4,7 @@
 use std::fmt::Write;
 
 use crate::estimate::crossfit::ComponentReport;
+use crate::estimate::estimators;
 use crate::estimate::overlap::{OverlapReport, CRUMP_LOW, SMD_FLAG};
 use crate::estimate::scoreboard::{ModelScore, Scoreboard};
 use crate::estimate::OutcomeKind;
@@ -110,36 +111,50 @@ pub fn table(b: &Scoreboard, kind: OutcomeKind, folds: usize) -> String {
     }
     let _ = writeln!(s);
     let _ = writeln!(s, "Per-model scores (mean, se in parentheses)");
+    // One column per estimator of `estimators::ALL`; the ranking one, first,
+    // carries its standard error.
+    let columns: Vec<(String, usize)> = estimators::ALL
+        .iter()
+        .enumerate()
+        .map(|(i, e)| {
+            if i == estimators::RANKED_BY {
+                (format!("{} (lower)", e.label()), 22)
+            } else {
+                (e.label().to_string(), e.label().len().max(10))
+            }
+        })
+        .collect();
+    let mut header = format!("  {:<name_w$}", "model");
+    for (label, w) in &columns {
+        let _ = write!(header, "  {label:>w$}");
+    }
     let _ = writeln!(
         s,
-        "  {:<name_w$}  {:>22}  {:>10}  {:>10}  {:>10}  {:>10}  {:>22}  {:>7}  {:>20}  {:>18}",
-        "model",
-        "corrected PEHE (lower)",
-        "plug-in",
-        "DR loss",
-        "R-loss",
-        "IPW loss",
-        "policy gain",
-        "treats",
-        "AUTOC",
-        "BLP slope"
+        "{header}  {:>22}  {:>7}  {:>20}  {:>18}",
+        "policy gain", "treats", "AUTOC", "BLP slope"
     );
     for m in &b.models {
         let slope = match &m.blp_slope {
             Some(e) => format!("{} ({})", num(e.estimate), num(e.se)),
             None => "no variation".to_string(),
         };
-        let _ =
-            writeln!(
+        let mut line = format!("  {:<name_w$}", m.name);
+        for (i, ((_, e), (_, w))) in m.scores.iter().zip(&columns).enumerate() {
+            let cell = if i == estimators::RANKED_BY {
+                format!("{} ({})", num(e.estimate), num(e.se))
+            } else {
+                num(e.estimate)
+            };
+            let _ = write!(line, "  {cell:>w$}");
+        }
+        let _ = writeln!(
             s,
-            "  {:<name_w$}  {:>22}  {:>10}  {:>10}  {:>10}  {:>10}  {:>22}  {:>7}  {:>20}  {:>18}",
-            m.name,
-            format!("{} ({})", num(m.corrected_pehe.estimate), num(m.corrected_pehe.se)),
-            num(m.plugin_pehe.estimate),
-            num(m.dr_loss.estimate),
-            num(m.r_loss.estimate),
-            num(m.ipw_loss.estimate),
-            format!("{} ({})", num(m.policy_gain.estimate), num(m.policy_gain.se)),
+            "{line}  {:>22}  {:>7}  {:>20}  {:>18}",
+            format!(
+                "{} ({})",
+                num(m.policy_gain.estimate),
+                num(m.policy_gain.se)
+            ),
             pct(m.policy_gain.treated_share),
             format!("{} ({})", num(m.autoc.estimate), num(m.autoc.se)),
             slope

@@ -10,7 +10,7 @@ use super::compare::{rank, Difference};
 use super::crossfit::{fit_nuisance, Nuisance, NuisanceReport, NuisanceSettings};
 use super::data::{FeatureRows, ModelPredictions, UnitTable, CONSTANT_EFFECT, ZERO_EFFECT};
 use super::error::EstimateError;
-use super::estimators::{self, Estimator, UnitView};
+use super::estimators::{self, Scores, UnitView};
 use super::overlap::{overlap_report, OverlapReport};
 use super::policy::{PolicyGain, PolicySums};
 use super::pseudo::{aipw_ate, aipw_pseudo_outcome};
@@ -107,15 +107,13 @@ pub struct ModelScore {
     /// True for the built-in zero-effect and constant-effect models.
     pub baseline: bool,
     pub rank: usize,
-    /// Lower estimate of PEHE: see `caveat`.
-    pub corrected_pehe: Estimate,
+    /// Every estimator's score, one field each in JSON. Corrected PEHE, the
+    /// first, is a lower estimate of PEHE: see `caveat`.
+    #[serde(flatten)]
+    pub scores: Scores,
     /// corrected PEHE of this model minus that of constant-effect (negative:
     /// lower error than treating everyone alike).
     pub vs_constant: VsConstant,
-    pub plugin_pehe: Estimate,
-    pub dr_loss: Estimate,
-    pub r_loss: Estimate,
-    pub ipw_loss: Estimate,
     pub p_best: f64,
     pub in_best_set: bool,
     pub policy_gain: PolicyGain,
@@ -606,13 +604,7 @@ pub fn assemble(parts: Parts<'_>, settings: &Settings) -> Scoreboard {
     } = parts;
     let constant = 1;
     let m = all.len();
-    let key_index = |key: &str| {
-        estimators::ALL
-            .iter()
-            .position(|e: &&dyn Estimator| e.key() == key)
-            .unwrap_or(0)
-    };
-    let corrected = &sums[key_index("corrected_pehe")];
+    let corrected = &sums[estimators::RANKED_BY];
     let ranking = rank(
         corrected,
         settings.alpha,
@@ -642,7 +634,7 @@ pub fn assemble(parts: Parts<'_>, settings: &Settings) -> Scoreboard {
                 name: name.clone(),
                 baseline: *baseline,
                 rank: ranking.rank[k],
-                corrected_pehe: corrected.estimate(k),
+                scores: Scores::from_fn(|e| sums[e].estimate(k)),
                 vs_constant: VsConstant {
                     estimate: d.estimate,
                     se: d.se,
@@ -650,10 +642,6 @@ pub fn assemble(parts: Parts<'_>, settings: &Settings) -> Scoreboard {
                     ci_high,
                     p_value: p_greater(Estimate::new(-d.estimate, d.se)),
                 },
-                plugin_pehe: sums[key_index("plugin_pehe")].estimate(k),
-                dr_loss: sums[key_index("dr_loss")].estimate(k),
-                r_loss: sums[key_index("r_loss")].estimate(k),
-                ipw_loss: sums[key_index("ipw_loss")].estimate(k),
                 p_best: ranking.p_best[k],
                 in_best_set: ranking.in_best_set[k],
                 policy_gain,

@@ -2,6 +2,7 @@
 //! served, stored with each snapshot and read back after a restart.
 
 use crate::api::pb;
+use crate::estimate::estimators;
 use crate::estimate::scoreboard::{ModelScore, Scoreboard};
 use crate::estimate::stats::Estimate;
 
@@ -17,7 +18,15 @@ fn model(m: &ModelScore) -> pb::ModelScore {
         name: m.name.clone(),
         baseline: m.baseline,
         rank: m.rank as u32,
-        corrected_pehe: Some(est(&m.corrected_pehe)),
+        scores: m
+            .scores
+            .iter()
+            .map(|(key, e)| pb::EstimatorScore {
+                estimator: key.into(),
+                estimate: e.estimate,
+                se: e.se,
+            })
+            .collect(),
         vs_constant: Some(pb::Difference {
             estimate: m.vs_constant.estimate,
             se: m.vs_constant.se,
@@ -25,10 +34,6 @@ fn model(m: &ModelScore) -> pb::ModelScore {
             ci_high: m.vs_constant.ci_high,
             p_value: m.vs_constant.p_value,
         }),
-        plugin_pehe: Some(est(&m.plugin_pehe)),
-        dr_loss: Some(est(&m.dr_loss)),
-        r_loss: Some(est(&m.r_loss)),
-        ipw_loss: Some(est(&m.ipw_loss)),
         p_best: m.p_best,
         in_best_set: m.in_best_set,
         policy_gain: Some(pb::Estimate {
@@ -166,30 +171,50 @@ pub fn degenerate(parts: BoardParts<'_>, units: u64, state: String) -> pb::Score
     }
 }
 
-/// The estimator values that history queries can ask for.
-pub fn estimator_values(m: &pb::ModelScore) -> Vec<(&'static str, pb::Estimate)> {
-    let mut out = Vec::new();
-    let mut push = |key: &'static str, e: &Option<pb::Estimate>| {
-        if let Some(e) = e {
-            out.push((key, *e));
-        }
-    };
-    push("corrected_pehe", &m.corrected_pehe);
-    push("plugin_pehe", &m.plugin_pehe);
-    push("dr_loss", &m.dr_loss);
-    push("r_loss", &m.r_loss);
-    push("ipw_loss", &m.ipw_loss);
-    push("policy_gain", &m.policy_gain);
-    push("autoc", &m.autoc);
-    push("qini", &m.qini);
-    if let Some(v) = &m.vs_constant {
-        out.push((
+/// Per-model values kept in history besides the estimators' scores.
+pub const MEASURES: [&str; 4] = ["vs_constant", "policy_gain", "autoc", "qini"];
+
+/// Every key a history query may ask for: the keys of
+/// [`estimators::ALL`], then [`MEASURES`].
+pub fn history_keys() -> impl Iterator<Item = &'static str> {
+    estimators::ALL
+        .iter()
+        .map(|e| e.key())
+        .chain(MEASURES.iter().copied())
+}
+
+/// The values of one model that history keeps, keyed as
+/// [`history_keys`] lists them.
+pub fn estimator_values(m: &pb::ModelScore) -> Vec<(String, pb::Estimate)> {
+    let mut out: Vec<(String, pb::Estimate)> = m
+        .scores
+        .iter()
+        .map(|s| {
+            (
+                s.estimator.clone(),
+                pb::Estimate {
+                    estimate: s.estimate,
+                    se: s.se,
+                },
+            )
+        })
+        .collect();
+    let measures = [
+        (
             "vs_constant",
-            pb::Estimate {
+            m.vs_constant.as_ref().map(|v| pb::Estimate {
                 estimate: v.estimate,
                 se: v.se,
-            },
-        ));
+            }),
+        ),
+        ("policy_gain", m.policy_gain),
+        ("autoc", m.autoc),
+        ("qini", m.qini),
+    ];
+    for (key, e) in measures {
+        if let Some(e) = e {
+            out.push((key.into(), e));
+        }
     }
     out
 }

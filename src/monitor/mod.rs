@@ -788,16 +788,16 @@ impl Monitor {
                 for (estimator, e) in board::estimator_values(m) {
                     scores.push(ScoreRow {
                         model: m.name.clone(),
-                        estimator: estimator.into(),
                         window: w.key.clone(),
                         estimate: e.estimate,
                         se: e.se,
                         rank: i64::from(m.rank),
-                        units: if matches!(estimator, "autoc" | "qini") {
+                        units: if matches!(estimator.as_str(), "autoc" | "qini") {
                             b.rank_metrics_units as i64
                         } else {
                             b.units as i64
                         },
+                        estimator,
                     });
                 }
             }
@@ -979,7 +979,7 @@ impl Monitor {
                     let sl = ScoreLabels {
                         dataset: dataset.into(),
                         model: model.name.clone(),
-                        estimator: estimator.into(),
+                        estimator,
                         window: window.into(),
                     };
                     m.model_score.get_or_create(&sl).set(e.estimate);

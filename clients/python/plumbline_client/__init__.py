@@ -81,7 +81,9 @@ _WINDOW_KINDS = {
     "cohort": pb.Window.KIND_COHORT,
 }
 
-#: Columns of :meth:`Client.scoreboard`, in order.
+#: Columns of :meth:`Client.scoreboard`, in order, around the estimators'
+#: columns: those come from the server's list, two per estimator
+#: (``<key>`` and ``<key>_se``), after ``in_best_set``.
 SCOREBOARD_COLUMNS = [
     "rank",
     "model",
@@ -93,11 +95,6 @@ SCOREBOARD_COLUMNS = [
     "vs_constant_p_value",
     "p_best",
     "in_best_set",
-    "corrected_pehe_lower_est",
-    "plugin_pehe",
-    "dr_loss",
-    "r_loss",
-    "ipw_loss",
     "policy_gain",
     "policy_gain_se",
     "treated_share",
@@ -262,10 +259,6 @@ def _treatment(t: Any, i: int) -> int:
     if f not in (0.0, 1.0):
         raise ValueError(f"send_units: row {i}: treatment must be 0 or 1, not {t!r}")
     return int(f)
-
-
-def _est(e: "pb.Estimate") -> float:
-    return e.estimate
 
 
 # ----------------------------------------------------------------------- client
@@ -651,11 +644,13 @@ class Client:
           95% interval; below 0 means lower error than treating everyone
           alike (the p-value is one-sided for "no lower error");
         * ``p_best``, ``in_best_set``;
-        * ``corrected_pehe_lower_est``: the corrected PEHE, a *lower
-          estimate* of the PEHE (its mean sits below the true PEHE by the
-          plug-in model's own error, so it can be negative); read it through
-          the differences above, not on its own;
-        * ``plugin_pehe``, ``dr_loss``, ``r_loss``, ``ipw_loss`` (context);
+        * two columns per error estimator the server scores with, in its
+          order: ``<key>`` and ``<key>_se`` (``corrected_pehe``,
+          ``plugin_pehe``, ``dr_loss``, ``r_loss``, ``ipw_loss`` today). The
+          first, ``corrected_pehe``, is a *lower estimate* of the PEHE (its
+          mean sits below the true PEHE by the plug-in model's own error, so
+          it can be negative); read it through the differences above, not on
+          its own;
         * ``policy_gain`` and ``policy_gain_se`` (value per unit of treating
           whoever the model predicts an effect above the cost),
           ``treated_share``;
@@ -805,11 +800,7 @@ def scoreboard_frame(board: "pb.Scoreboard") -> pd.DataFrame:
                 "vs_constant_p_value": m.vs_constant.p_value,
                 "p_best": m.p_best,
                 "in_best_set": m.in_best_set,
-                "corrected_pehe_lower_est": _est(m.corrected_pehe),
-                "plugin_pehe": _est(m.plugin_pehe),
-                "dr_loss": _est(m.dr_loss),
-                "r_loss": _est(m.r_loss),
-                "ipw_loss": _est(m.ipw_loss),
+                **{k: v for s in m.scores for k, v in ((s.estimator, s.estimate), (f"{s.estimator}_se", s.se))},
                 "policy_gain": m.policy_gain.estimate,
                 "policy_gain_se": m.policy_gain.se,
                 "treated_share": m.treated_share,
@@ -820,7 +811,10 @@ def scoreboard_frame(board: "pb.Scoreboard") -> pd.DataFrame:
                 "blp_slope": m.blp_slope.estimate if m.HasField("blp_slope") else float("nan"),
             }
         )
-    df = pd.DataFrame(rows, columns=SCOREBOARD_COLUMNS)
+    keys = [s.estimator for s in board.models[0].scores] if board.models else []
+    cut = SCOREBOARD_COLUMNS.index("policy_gain")
+    columns = SCOREBOARD_COLUMNS[:cut] + [c for k in keys for c in (k, f"{k}_se")] + SCOREBOARD_COLUMNS[cut:]
+    df = pd.DataFrame(rows, columns=columns)
     if not df.empty:
         df = df.sort_values("rank", kind="stable").reset_index(drop=True)
     kind = pb.Window.Kind.Name(board.window.kind) if board.HasField("window") else "KIND_CUMULATIVE"

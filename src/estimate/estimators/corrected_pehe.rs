@@ -37,6 +37,10 @@ impl Estimator for CorrectedPehe {
         "corrected_pehe"
     }
 
+    fn label(&self) -> &'static str {
+        "corrected PEHE"
+    }
+
     #[inline]
     fn contribution(&self, u: &UnitView, tau_hat: f64) -> f64 {
         let tilde = u.tau_tilde();

@@ -12,6 +12,10 @@ impl Estimator for DrLoss {
         "dr_loss"
     }
 
+    fn label(&self) -> &'static str {
+        "DR loss"
+    }
+
     #[inline]
     fn contribution(&self, u: &UnitView, tau_hat: f64) -> f64 {
         (u.phi - tau_hat).powi(2)

@@ -12,6 +12,10 @@ impl Estimator for IpwLoss {
         "ipw_loss"
     }
 
+    fn label(&self) -> &'static str {
+        "IPW loss"
+    }
+
     #[inline]
     fn contribution(&self, u: &UnitView, tau_hat: f64) -> f64 {
         let p = u.propensity;

@@ -19,6 +19,10 @@ pub use ipw_loss::IpwLoss;
 pub use plugin_pehe::PluginPehe;
 pub use r_loss::RLoss;
 
+use serde::Serialize;
+
+use super::stats::Estimate;
+
 /// What an estimator may read about unit i.
 #[derive(Debug, Clone, Copy)]
 pub struct UnitView {
@@ -54,6 +58,8 @@ impl UnitView {
 pub trait Estimator: Sync + Send {
     /// Stable key used in JSON, the API and metric labels.
     fn key(&self) -> &'static str;
+    /// Short name for tables and pages ("DR loss").
+    fn label(&self) -> &'static str;
     /// Contribution of one unit for predicted effect `tau_hat`.
     fn contribution(&self, unit: &UnitView, tau_hat: f64) -> f64;
     /// Contributions of a block of units, `out[i]` for `units[i]` and
@@ -66,12 +72,56 @@ pub trait Estimator: Sync + Send {
     }
 }
 
-/// Every estimator, in the order reports list them.
+/// Every estimator, in the order reports list them. The board, the
+/// metrics, the history's accepted keys, the tables and the Python client's
+/// frame all follow this list; the first entry ranks the models.
 pub const ALL: [&dyn Estimator; 5] = [&CorrectedPehe, &PluginPehe, &DrLoss, &RLoss, &IpwLoss];
+
+/// Position in [`ALL`] of the estimator that ranks models: corrected PEHE,
+/// whose pairwise differences are the doubly robust comparisons.
+pub const RANKED_BY: usize = 0;
 
 /// Looks an estimator up by its key.
 pub fn by_key(key: &str) -> Option<&'static dyn Estimator> {
     ALL.iter().copied().find(|e| e.key() == key)
+}
+
+/// One model's score under every estimator of [`ALL`], in its order.
+/// Serialized as a map from key to estimate, so that each estimator is a
+/// field of the model's JSON object (`"dr_loss": {"estimate": .., "se": ..}`).
+#[derive(Debug, Clone, PartialEq)]
+pub struct Scores(Vec<Estimate>);
+
+impl Scores {
+    /// The score of each estimator of [`ALL`], by its position there.
+    pub fn from_fn(score: impl FnMut(usize) -> Estimate) -> Self {
+        Self((0..ALL.len()).map(score).collect())
+    }
+
+    /// The score of the estimator that ranks models.
+    pub fn ranked(&self) -> Estimate {
+        self.0[RANKED_BY]
+    }
+
+    pub fn get(&self, key: &str) -> Option<Estimate> {
+        ALL.iter().position(|e| e.key() == key).map(|i| self.0[i])
+    }
+
+    /// (key, score) pairs in [`ALL`]'s order.
+    pub fn iter(&self) -> impl Iterator<Item = (&'static str, Estimate)> + '_ {
+        ALL.iter().map(|e| e.key()).zip(self.0.iter().copied())
+    }
+}
+
+impl Serialize for Scores {
+    fn serialize<S: serde::Serializer>(&self, serializer: S) -> Result<S::Ok, S::Error> {
+        use serde::ser::SerializeMap;
+        let mut map = serializer.serialize_map(Some(self.0.len()))?;
+        for (key, e) in self.iter() {
+            map.serialize_entry(key, &e)?;
+        }
+        map.end()
+    }
 }
 
 #[cfg(test)]
@@ -120,5 +170,26 @@ mod tests {
                 }
             }
         }
+    }
+
+    #[test]
+    fn keys_are_unique_and_corrected_pehe_ranks() {
+        let mut keys: Vec<&str> = ALL.iter().map(|e| e.key()).collect();
+        assert_eq!(ALL[RANKED_BY].key(), "corrected_pehe");
+        keys.sort_unstable();
+        keys.dedup();
+        assert_eq!(keys.len(), ALL.len());
+        assert!(by_key("no_such_estimator").is_none());
+    }
+
+    #[test]
+    fn scores_serialize_as_one_field_per_estimator() {
+        let scores = Scores::from_fn(|i| Estimate::new(i as f64, 0.5));
+        let v = serde_json::to_value(&scores).expect("serializes");
+        for (i, e) in ALL.iter().enumerate() {
+            assert_eq!(v[e.key()]["estimate"], serde_json::json!(i as f64));
+        }
+        assert_eq!(scores.get("dr_loss"), Some(Estimate::new(2.0, 0.5)));
+        assert_eq!(scores.get("no_such_estimator"), None);
     }
 }

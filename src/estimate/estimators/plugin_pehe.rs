@@ -11,6 +11,10 @@ impl Estimator for PluginPehe {
         "plugin_pehe"
     }
 
+    fn label(&self) -> &'static str {
+        "plug-in PEHE"
+    }
+
     #[inline]
     fn contribution(&self, u: &UnitView, tau_hat: f64) -> f64 {
         (tau_hat - u.tau_tilde()).powi(2)

@@ -11,6 +11,10 @@ impl Estimator for RLoss {
         "r_loss"
     }
 
+    fn label(&self) -> &'static str {
+        "R-loss"
+    }
+
     #[inline]
     fn contribution(&self, u: &UnitView, tau_hat: f64) -> f64 {
         ((u.outcome - u.m_tilde()) - (u.treatment - u.propensity) * tau_hat).powi(2)
