@@ -35,6 +35,7 @@ pub mod api;
 pub mod auth;
 pub mod cli;
 pub mod config;
+pub mod domain;
 pub mod estimate;
 pub mod input;
 pub mod limits;

@@ -6,13 +6,13 @@
 use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
 
+use plumbline::domain::{OutcomeRecord, PredictionRecord, StoredModel, UnitRecord};
 use plumbline::estimate::OutcomeKind;
 use plumbline::input::{read_predictions, read_units};
 use plumbline::monitor::cache::DatasetCache;
 use plumbline::monitor::ingest::{
     check_outcomes, check_predictions, check_units, Fault, OutcomeIn, PredictionIn, UnitIn,
 };
-use plumbline::store::{OutcomeRecord, PredictionRecord, StoredModel, UnitRecord};
 use proptest::prelude::*;
 
 /// A file in a per-process temporary directory, removed on drop.

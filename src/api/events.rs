@@ -10,8 +10,8 @@ use tonic::{Request, Response, Status};
 use super::pb;
 use super::status::from_monitor;
 use crate::auth::caller;
+use crate::domain::EventRecord;
 use crate::monitor::Monitor;
-use crate::store::EventRecord;
 
 pub struct EventService {
     pub monitor: Arc<Monitor>,
@@ -109,9 +109,9 @@ impl pb::event_feed_server::EventFeed for EventService {
                     e = live.recv() => e,
                 };
                 match event {
-                    Ok(e) if e.id > last && (dataset.is_empty() || e.dataset == dataset) => {
-                        last = e.id;
-                        if tx.send(Ok(e)).await.is_err() {
+                    Ok(e) if e.id as u64 > last && (dataset.is_empty() || e.dataset == dataset) => {
+                        last = e.id as u64;
+                        if tx.send(Ok(event_pb(e))).await.is_err() {
                             return;
                         }
                     }

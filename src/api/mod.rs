@@ -3,6 +3,7 @@
 //! request (validation errors become a `Status` there), calls the monitor,
 //! and converts the result back.
 
+pub mod boards;
 pub mod events;
 pub mod intake;
 pub mod registry;

@@ -7,11 +7,11 @@ use tonic::{Request, Response, Status};
 use super::pb;
 use super::status::{from_monitor, missing};
 use crate::auth::{caller, Access};
+use crate::domain::DatasetSpec;
+use crate::domain::StoredModel;
 use crate::estimate::OutcomeKind;
 use crate::limits::{exceeded, Limits};
-use crate::monitor::spec::DatasetSpec;
 use crate::monitor::{DatasetInfo, Monitor};
-use crate::store::StoredModel;
 
 pub struct Datasets {
     pub monitor: Arc<Monitor>,

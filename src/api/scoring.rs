@@ -4,10 +4,12 @@ use std::sync::Arc;
 
 use tonic::{Request, Response, Status};
 
+use super::boards::window_of;
 use super::pb;
 use super::status::from_monitor;
 use crate::auth::{caller, Access};
-use crate::monitor::board::{history_keys, window_key};
+use crate::domain::board::history_keys;
+use crate::domain::Board;
 use crate::monitor::Asked;
 use crate::monitor::Monitor;
 
@@ -15,25 +17,11 @@ pub struct ScoringService {
     pub monitor: Arc<Monitor>,
 }
 
-fn key(w: &Option<pb::Window>) -> Result<String, Status> {
-    let w = w.clone().unwrap_or_default();
-    if pb::window::Kind::try_from(w.kind) == Ok(pb::window::Kind::Cohort) && w.cohort.is_empty() {
-        return Err(Status::invalid_argument(
-            "window.cohort: required for a cohort window",
-        ));
-    }
-    Ok(window_key(&w))
-}
-
 impl ScoringService {
-    /// The latest scoreboard of a request's dataset and window.
-    async fn latest(
-        &self,
-        dataset: &str,
-        w: &Option<pb::Window>,
-    ) -> Result<pb::Scoreboard, Status> {
+    /// The latest board of a request's dataset and window.
+    async fn latest(&self, dataset: &str, w: &Option<pb::Window>) -> Result<Board, Status> {
         self.monitor
-            .scoreboard(dataset, &key(w)?)
+            .scoreboard(dataset, &window_of(w)?.key())
             .await
             .map_err(from_monitor)
     }
@@ -77,7 +65,7 @@ impl pb::scoring_server::Scoring for ScoringService {
         let r = request.into_inner();
         who.require(Access::Read, &r.dataset)?;
         let board = self.latest(&r.dataset, &r.window).await?;
-        Ok(Response::new(board))
+        Ok(Response::new(board.into()))
     }
 
     #[tracing::instrument(skip_all, fields(rpc = "GetHistory"))]
@@ -100,7 +88,14 @@ impl pb::scoring_server::Scoring for ScoringService {
         let rows = self
             .monitor
             .store()
-            .history(id, &r.model, &r.estimator, &key(&r.window)?, r.from_ms, to)
+            .history(
+                id,
+                &r.model,
+                &r.estimator,
+                &window_of(&r.window)?.key(),
+                r.from_ms,
+                to,
+            )
             .await
             .map_err(|e| from_monitor(e.into()))?;
         Ok(Response::new(pb::GetHistoryResponse {
@@ -129,12 +124,12 @@ impl pb::scoring_server::Scoring for ScoringService {
         let r = request.into_inner();
         who.require(Access::Read, &r.dataset)?;
         let board = self.latest(&r.dataset, &r.window).await?;
-        let json = serde_json::from_str::<serde_json::Value>(&board.json)
+        let json = serde_json::from_str::<serde_json::Value>(&board.detail_json)
             .ok()
             .and_then(|v| v.get("overlap").map(|o| o.to_string()))
             .unwrap_or_default();
         Ok(Response::new(pb::OverlapReport {
-            summary: board.overlap,
+            summary: board.overlap.map(Into::into),
             json,
         }))
     }
@@ -148,40 +143,14 @@ impl pb::scoring_server::Scoring for ScoringService {
         let r = request.into_inner();
         who.require(Access::Read, &r.dataset)?;
         let board = self.latest(&r.dataset, &r.window).await?;
-        let doc: serde_json::Value = serde_json::from_str(&board.json).map_err(|_| {
-            Status::failed_precondition("the window has no scores (see its degenerate state)")
-        })?;
-        let pairs = doc
-            .get("pairwise")
-            .and_then(|p| p.as_array())
-            .cloned()
-            .unwrap_or_default();
-        for p in pairs {
-            let (first, second) = (
-                p["first"].as_str().unwrap_or(""),
-                p["second"].as_str().unwrap_or(""),
-            );
-            let sign = if first == r.first && second == r.second {
-                1.0
-            } else if first == r.second && second == r.first {
-                -1.0
-            } else {
-                continue;
-            };
-            let f = |k: &str| p[k].as_f64().unwrap_or(0.0);
-            let (lo, hi) = if sign > 0.0 {
-                (f("ci_low"), f("ci_high"))
-            } else {
-                (-f("ci_high"), -f("ci_low"))
-            };
+        if !board.degenerate.is_empty() {
+            return Err(Status::failed_precondition(
+                "the window has no scores (see its degenerate state)",
+            ));
+        }
+        if let Some(d) = board.compare(&r.first, &r.second) {
             return Ok(Response::new(pb::CompareModelsResponse {
-                difference: Some(pb::Difference {
-                    estimate: sign * f("estimate"),
-                    se: f("se"),
-                    ci_low: lo,
-                    ci_high: hi,
-                    p_value: f("p_value"),
-                }),
+                difference: Some(d.into()),
                 units: board.units,
             }));
         }

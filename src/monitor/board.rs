@@ -1,49 +1,40 @@
-//! Converts a window's estimation result into the scoreboard message that is
-//! served, stored with each snapshot and read back after a restart.
+//! Turns a window's estimation result into the board a recompute
+//! publishes, stores with its snapshot and reads back after a restart.
 
-use crate::api::pb;
-use crate::estimate::estimators;
+use crate::domain::{
+    AlertView, Board, BoardModel, Difference, Drift, IncompleteModel, NuisanceComponent,
+    OverlapSummary, Pair, Score, Window,
+};
 use crate::estimate::scoreboard::{ModelScore, Scoreboard};
 use crate::estimate::stats::Estimate;
 
-fn est(e: &Estimate) -> pb::Estimate {
-    pb::Estimate {
-        estimate: e.estimate,
-        se: e.se,
-    }
-}
-
-fn model(m: &ModelScore) -> pb::ModelScore {
-    pb::ModelScore {
+fn model(m: &ModelScore) -> BoardModel {
+    BoardModel {
         name: m.name.clone(),
         baseline: m.baseline,
         rank: m.rank as u32,
         scores: m
             .scores
             .iter()
-            .map(|(key, e)| pb::EstimatorScore {
+            .map(|(key, value)| Score {
                 estimator: key.into(),
-                estimate: e.estimate,
-                se: e.se,
+                value,
             })
             .collect(),
-        vs_constant: Some(pb::Difference {
+        vs_constant: Difference {
             estimate: m.vs_constant.estimate,
             se: m.vs_constant.se,
             ci_low: m.vs_constant.ci_low,
             ci_high: m.vs_constant.ci_high,
             p_value: m.vs_constant.p_value,
-        }),
+        },
         p_best: m.p_best,
         in_best_set: m.in_best_set,
-        policy_gain: Some(pb::Estimate {
-            estimate: m.policy_gain.estimate,
-            se: m.policy_gain.se,
-        }),
+        policy_gain: Estimate::new(m.policy_gain.estimate, m.policy_gain.se),
         treated_share: m.policy_gain.treated_share,
-        autoc: Some(est(&m.autoc)),
-        qini: Some(est(&m.qini)),
-        blp_slope: m.blp_slope.as_ref().map(est),
+        autoc: m.autoc,
+        qini: m.qini,
+        blp_slope: m.blp_slope,
     }
 }
 
@@ -52,7 +43,7 @@ pub fn overlap_summary(
     b: &Scoreboard,
     max_extreme_share: f64,
     min_effective_share: f64,
-) -> pb::OverlapSummary {
+) -> OverlapSummary {
     let o = &b.overlap;
     let (auc, clipped) = b
         .nuisance
@@ -62,7 +53,7 @@ pub fn overlap_summary(
     let degraded = o.share_outside_eps > max_extreme_share
         || o.treated.effective_share < min_effective_share
         || o.control.effective_share < min_effective_share;
-    pb::OverlapSummary {
+    OverlapSummary {
         eps: o.eps,
         extreme_share: o.share_outside_eps,
         outside_crump_share: o.share_outside_crump,
@@ -85,28 +76,28 @@ pub fn overlap_summary(
 /// Everything of a window's result except identity and time.
 pub struct BoardParts<'a> {
     pub dataset: &'a str,
-    pub window: pb::Window,
+    pub window: Window,
     pub snapshot_id: u64,
     pub computed_at_ms: i64,
-    pub incomplete: Vec<pb::IncompleteModel>,
+    pub incomplete: Vec<IncompleteModel>,
     pub max_extreme_share: f64,
     pub min_effective_share: f64,
 }
 
-pub fn scoreboard(parts: BoardParts<'_>, b: &Scoreboard) -> pb::Scoreboard {
+pub fn scoreboard(parts: BoardParts<'_>, b: &Scoreboard) -> Board {
     let nuisance = b
         .nuisance
         .as_ref()
         .map(|n| {
             let mut v = Vec::new();
             match &n.propensity.fit {
-                Some(f) => v.push(pb::NuisanceComponent {
+                Some(f) => v.push(NuisanceComponent {
                     component: "propensity".into(),
                     learner: f.learner.clone(),
                     oof_loss: f.oof_loss,
                     loss: f.loss.into(),
                 }),
-                None => v.push(pb::NuisanceComponent {
+                None => v.push(NuisanceComponent {
                     component: "propensity".into(),
                     learner: "logged".into(),
                     oof_loss: 0.0,
@@ -117,7 +108,7 @@ pub fn scoreboard(parts: BoardParts<'_>, b: &Scoreboard) -> pb::Scoreboard {
                 ("outcome_control", &n.outcome_control),
                 ("outcome_treated", &n.outcome_treated),
             ] {
-                v.push(pb::NuisanceComponent {
+                v.push(NuisanceComponent {
                     component: name.into(),
                     learner: c.learner.clone(),
                     oof_loss: c.oof_loss,
@@ -127,16 +118,13 @@ pub fn scoreboard(parts: BoardParts<'_>, b: &Scoreboard) -> pb::Scoreboard {
             v
         })
         .unwrap_or_default();
-    pb::Scoreboard {
+    Board {
         dataset: parts.dataset.into(),
-        window: Some(parts.window),
+        window: parts.window,
         snapshot_id: parts.snapshot_id,
         computed_at_ms: parts.computed_at_ms,
         units: b.n_units as u64,
-        ate: Some(pb::Estimate {
-            estimate: b.ate.estimate,
-            se: b.ate.se,
-        }),
+        ate: Some(Estimate::new(b.ate.estimate, b.ate.se)),
         leader: b.leader.clone(),
         best_set: b.best_set.clone(),
         no_detectable_heterogeneity: b.no_detectable_heterogeneity,
@@ -148,91 +136,59 @@ pub fn scoreboard(parts: BoardParts<'_>, b: &Scoreboard) -> pb::Scoreboard {
             parts.min_effective_share,
         )),
         nuisance,
+        pairwise: b
+            .pairwise
+            .iter()
+            .map(|p| Pair {
+                first: p.first.clone(),
+                second: p.second.clone(),
+                difference: Difference {
+                    estimate: p.difference.estimate,
+                    se: p.difference.se,
+                    ci_low: p.difference.ci_low,
+                    ci_high: p.difference.ci_high,
+                    p_value: p.difference.p_value,
+                },
+            })
+            .collect(),
         degenerate: String::new(),
         caveat: b.caveat.into(),
-        json: serde_json::to_string(b).unwrap_or_default(),
+        detail_json: serde_json::to_string(b).unwrap_or_default(),
         rank_metrics_units: b.rank_metrics_units as u64,
         alerts: None,
     }
 }
 
 /// A board for a window whose data cannot support scores.
-pub fn degenerate(parts: BoardParts<'_>, units: u64, state: String) -> pb::Scoreboard {
-    pb::Scoreboard {
+pub fn degenerate(parts: BoardParts<'_>, units: u64, state: String) -> Board {
+    Board {
         dataset: parts.dataset.into(),
-        window: Some(parts.window),
+        window: parts.window,
         snapshot_id: parts.snapshot_id,
         computed_at_ms: parts.computed_at_ms,
         units,
+        ate: None,
+        leader: String::new(),
+        best_set: Vec::new(),
+        no_detectable_heterogeneity: false,
+        models: Vec::new(),
         incomplete: parts.incomplete,
+        overlap: None,
+        nuisance: Vec::new(),
+        pairwise: Vec::new(),
         degenerate: state,
         caveat: crate::estimate::scoreboard::CORRECTED_PEHE_CAVEAT.into(),
-        ..Default::default()
-    }
-}
-
-/// Per-model values kept in history besides the estimators' scores.
-pub const MEASURES: [&str; 4] = ["vs_constant", "policy_gain", "autoc", "qini"];
-
-/// Every key a history query may ask for: the keys of
-/// [`estimators::ALL`], then [`MEASURES`].
-pub fn history_keys() -> impl Iterator<Item = &'static str> {
-    estimators::ALL
-        .iter()
-        .map(|e| e.key())
-        .chain(MEASURES.iter().copied())
-}
-
-/// The values of one model that history keeps, keyed as
-/// [`history_keys`] lists them.
-pub fn estimator_values(m: &pb::ModelScore) -> Vec<(String, pb::Estimate)> {
-    let mut out: Vec<(String, pb::Estimate)> = m
-        .scores
-        .iter()
-        .map(|s| {
-            (
-                s.estimator.clone(),
-                pb::Estimate {
-                    estimate: s.estimate,
-                    se: s.se,
-                },
-            )
-        })
-        .collect();
-    let measures = [
-        (
-            "vs_constant",
-            m.vs_constant.as_ref().map(|v| pb::Estimate {
-                estimate: v.estimate,
-                se: v.se,
-            }),
-        ),
-        ("policy_gain", m.policy_gain),
-        ("autoc", m.autoc),
-        ("qini", m.qini),
-    ];
-    for (key, e) in measures {
-        if let Some(e) = e {
-            out.push((key.into(), e));
-        }
-    }
-    out
-}
-
-/// Stable key of a window, used in storage and metric labels.
-pub fn window_key(w: &pb::Window) -> String {
-    match pb::window::Kind::try_from(w.kind).unwrap_or(pb::window::Kind::Cumulative) {
-        pb::window::Kind::Unspecified | pb::window::Kind::Cumulative => "cumulative".into(),
-        pb::window::Kind::Recent => "recent".into(),
-        pb::window::Kind::Cohort => format!("cohort:{}", w.cohort),
+        detail_json: String::new(),
+        rank_metrics_units: 0,
+        alerts: None,
     }
 }
 
 /// The alerts' view of a dataset, for its boards.
-pub fn alert_view(watch: &crate::estimate::watch::Watch) -> pb::AlertView {
+pub fn alert_view(watch: &crate::estimate::watch::Watch) -> AlertView {
     use crate::estimate::watch::Heterogeneity;
     let s = watch.state();
-    pb::AlertView {
+    AlertView {
         leader: s.leader.unwrap_or_default(),
         leader_settled: s.leader_settled,
         heterogeneity: match s.heterogeneity {
@@ -247,7 +203,7 @@ pub fn alert_view(watch: &crate::estimate::watch::Watch) -> pb::AlertView {
         drift: s
             .drift
             .into_iter()
-            .map(|(quantity, standardized_difference)| pb::Drift {
+            .map(|(quantity, standardized_difference)| Drift {
                 quantity,
                 standardized_difference,
             })

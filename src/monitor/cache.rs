@@ -9,7 +9,7 @@ use std::sync::Arc;
 
 use hashbrown::HashTable;
 
-use crate::store::{OutcomeRecord, PredictionRecord, StoredModel, UnitRecord};
+use crate::domain::{OutcomeRecord, PredictionRecord, StoredModel, UnitRecord};
 
 /// Rows per chunk of a [`Shared`] column.
 pub const CHUNK_ROWS: usize = 8192;

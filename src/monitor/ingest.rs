@@ -11,8 +11,8 @@
 use std::collections::HashMap;
 
 use super::cache::DatasetCache;
+use crate::domain::{OutcomeRecord, PredictionRecord, UnitRecord};
 use crate::estimate::OutcomeKind;
-use crate::store::{OutcomeRecord, PredictionRecord, UnitRecord};
 
 /// Longest unit key, in bytes.
 pub const MAX_KEY_BYTES: usize = 256;
@@ -401,7 +401,7 @@ pub fn check_predictions(
     let mut in_batch: HashMap<(usize, usize), usize> = HashMap::new();
     for (i, r) in rows.iter().enumerate() {
         let before = f.0.len();
-        if let Err(e) = super::spec::check_name("model", &r.model) {
+        if let Err(e) = crate::domain::spec::check_name("model", &r.model) {
             f.add(i, "model", Fault::Invalid, e);
         }
         check_key(&mut f, i, "unit_key", &r.unit_key);

@@ -14,18 +14,16 @@ pub mod board;
 pub mod cache;
 pub mod ingest;
 pub mod recompute;
-pub mod spec;
 
 use std::collections::{BTreeMap, HashMap};
 use std::sync::atomic::{AtomicBool, AtomicI64, Ordering};
 use std::sync::{Arc, RwLock};
 use std::time::{Duration, Instant, SystemTime, UNIX_EPOCH};
 
-use prost::Message;
 use tokio::sync::{broadcast, Mutex, Notify};
 use tracing::{info, info_span, warn, Instrument};
 
-use crate::api::pb;
+use crate::domain::{spec, Board, DatasetSpec, EventRecord, ScoreRow, StoredDataset, StoredModel};
 use crate::estimate::data::{CONSTANT_EFFECT, ZERO_EFFECT};
 use crate::estimate::watch::Watch;
 use crate::estimate::EstimateError;
@@ -34,13 +32,12 @@ use crate::metrics::{
     ScoreLabels, WindowLabels,
 };
 use crate::shutdown::Shutdown;
-use crate::store::{ScoreRow, Store, StoreError, StoredDataset, StoredModel};
+use crate::store::{Store, StoreError};
 use alerts::Raised;
 use cache::DatasetCache;
 use ingest::{OutcomeIn, PredictionIn, Rejection, UnitIn};
 pub use recompute::Asked;
 use recompute::{Frame, NuisanceState};
-use spec::DatasetSpec;
 
 /// Errors of the monitor; api/status.rs maps each to a gRPC code, once.
 #[derive(Debug, thiserror::Error)]
@@ -100,7 +97,7 @@ pub struct RecomputeSummary {
 }
 
 /// Scoreboards by window key.
-type Boards = BTreeMap<String, pb::Scoreboard>;
+type Boards = BTreeMap<String, Board>;
 
 struct DatasetState {
     stored: StoredDataset,
@@ -197,7 +194,7 @@ pub struct Monitor {
     datasets: RwLock<HashMap<String, Arc<DatasetHandle>>>,
     /// Serializes dataset creation so names stay unique.
     create: Mutex<()>,
-    events: broadcast::Sender<pb::Event>,
+    events: broadcast::Sender<EventRecord>,
     next_snapshot: AtomicI64,
     ready: Arc<AtomicBool>,
     shutdown: crate::shutdown::ShutdownSignal,
@@ -292,10 +289,8 @@ impl Monitor {
                 });
             }
             let mut latest = Boards::new();
-            for (key, bytes) in self.store.latest_boards(stored.id).await? {
-                let board = pb::Scoreboard::decode(bytes.as_slice())
-                    .map_err(|e| StoreError::Corrupt(format!("scoreboard {key}: {e}")))?;
-                latest.insert(key, board);
+            for board in self.store.latest_boards(stored.id).await? {
+                latest.insert(board.window.key(), board);
             }
             match self.store.latest_watch(stored.id).await? {
                 Some(json) => {
@@ -304,7 +299,7 @@ impl Monitor {
                 }
                 // A store written before the watch existed: it starts after
                 // the units already scored.
-                None if !latest.is_empty() => {
+                None if state.nuisance.is_some() || !latest.is_empty() => {
                     state.watch.skip_baseline(state.cache.outcomes() as u64);
                 }
                 None => {}
@@ -314,6 +309,11 @@ impl Monitor {
                 .outcomes()
                 .saturating_sub(state.nuisance.as_ref().map(|n| n.fit_units).unwrap_or(0))
                 as u64;
+            // Boards an earlier version stored were dropped on upgrade
+            // (migrations/0005): the scheduler recomputes them at start.
+            if latest.is_empty() && state.cache.outcomes() > 0 {
+                state.pending_outcomes = state.pending_outcomes.max(1);
+            }
             info!(
                 units = state.cache.units(),
                 outcomes = state.cache.outcomes(),
@@ -373,7 +373,7 @@ impl Monitor {
         v
     }
 
-    pub fn subscribe(&self) -> broadcast::Receiver<pb::Event> {
+    pub fn subscribe(&self) -> broadcast::Receiver<EventRecord> {
         self.events.subscribe()
     }
 
@@ -758,7 +758,7 @@ impl Monitor {
         }
         let snapshot_id = self.next_snapshot.fetch_add(1, Ordering::SeqCst);
         let mut boards = BTreeMap::new();
-        let mut encoded = Vec::new();
+        let mut changed = Vec::new();
         let mut scores = Vec::new();
         // A window the recompute did not change keeps its published board
         // (and snapshot id), and the snapshot does not store it again:
@@ -785,7 +785,7 @@ impl Monitor {
             };
             b.alerts = Some(board::alert_view(&computed.watch));
             for m in &b.models {
-                for (estimator, e) in board::estimator_values(m) {
+                for (estimator, e) in m.history_values() {
                     scores.push(ScoreRow {
                         model: m.name.clone(),
                         window: w.key.clone(),
@@ -801,7 +801,7 @@ impl Monitor {
                     });
                 }
             }
-            encoded.push((w.key.clone(), b.encode_to_vec()));
+            changed.push(b.clone());
             boards.insert(w.key.clone(), b);
         }
         let millis = started.elapsed().as_secs_f64() * 1000.0;
@@ -815,7 +815,7 @@ impl Monitor {
                 Some(nuisance.fit_id),
                 computed.refit.is_some(),
                 millis,
-                &encoded,
+                &changed,
                 &scores,
                 &watch_json,
             )
@@ -907,7 +907,7 @@ impl Monitor {
     fn export_boards(
         &self,
         dataset: &str,
-        boards: &BTreeMap<String, pb::Scoreboard>,
+        boards: &Boards,
         previous: &BTreeMap<String, String>,
         n: &NuisanceState,
     ) {
@@ -975,7 +975,7 @@ impl Monitor {
                 };
                 m.model_rank.get_or_create(&ml).set(f64::from(model.rank));
                 m.model_p_best.get_or_create(&ml).set(model.p_best);
-                for (estimator, e) in board::estimator_values(model) {
+                for (estimator, e) in model.history_values() {
                     let sl = ScoreLabels {
                         dataset: dataset.into(),
                         model: model.name.clone(),
@@ -1071,12 +1071,12 @@ impl Monitor {
                         kind: r.kind.into(),
                     })
                     .inc();
-                let _ = self.events.send(pb::Event {
-                    id: id as u64,
+                let _ = self.events.send(EventRecord {
+                    id,
                     dataset: h.name.clone(),
                     kind: r.kind.into(),
                     at_ms: at,
-                    snapshot_id,
+                    snapshot_id: snapshot_id as i64,
                     summary: r.summary,
                     details_json: details,
                 });
@@ -1087,7 +1087,7 @@ impl Monitor {
 
     // -------------------------------------------------------------- reads
 
-    pub async fn scoreboard(&self, dataset: &str, window: &str) -> MonitorResult<pb::Scoreboard> {
+    pub async fn scoreboard(&self, dataset: &str, window: &str) -> MonitorResult<Board> {
         let h = self.handle(dataset)?;
         let boards = h.boards();
         if boards.is_empty() {
@@ -1110,6 +1110,10 @@ impl Monitor {
     /// Starts the recompute scheduler of every dataset.
     pub fn start_schedulers(self: &Arc<Self>) {
         for h in self.handles() {
+            if h.boards().is_empty() {
+                // Outcomes but no boards (see `rebuild`): recompute now.
+                h.wake.notify_one();
+            }
             self.spawn_scheduler(h);
         }
     }

@@ -24,8 +24,7 @@ use ndarray::Array2;
 use rayon::prelude::*;
 
 use super::cache::{Columns, Shared, CHUNK_ROWS};
-use super::spec::DatasetSpec;
-use crate::api::pb;
+use crate::domain::{DatasetSpec, IncompleteModel, Window};
 use crate::estimate::crossfit::{
     fit_nuisance_models_on, FittedNuisance, Nuisance, NuisanceReport, NuisanceSettings,
 };
@@ -253,10 +252,10 @@ impl std::fmt::Display for RefitReason {
 #[derive(Clone)]
 pub struct WindowResult {
     pub key: String,
-    pub window: pb::Window,
+    pub window: Window,
     pub board: Result<Scoreboard, String>,
     pub units: usize,
-    pub incomplete: Vec<pb::IncompleteModel>,
+    pub incomplete: Vec<IncompleteModel>,
     /// Kept from the previous recompute: the window's units did not change.
     pub reused: bool,
 }
@@ -578,11 +577,7 @@ impl Frame {
     /// Which active models a window ranks, from how many of its units with
     /// outcomes each predicts (`covered`, out of `units`); the rest are
     /// listed as incomplete with their coverage.
-    fn ranked_models(
-        &self,
-        covered: &[usize],
-        units: usize,
-    ) -> (Vec<usize>, Vec<pb::IncompleteModel>) {
+    fn ranked_models(&self, covered: &[usize], units: usize) -> (Vec<usize>, Vec<IncompleteModel>) {
         let mut ranked = Vec::new();
         let mut incomplete = Vec::new();
         for (k, ((name, _), &c)) in self.models.iter().zip(covered).enumerate() {
@@ -594,7 +589,7 @@ impl Frame {
             if share >= self.spec.min_coverage && c > 0 {
                 ranked.push(k);
             } else {
-                incomplete.push(pb::IncompleteModel {
+                incomplete.push(IncompleteModel {
                     name: name.clone(),
                     coverage: share,
                 });
@@ -656,7 +651,7 @@ impl Frame {
         let n = common.len();
         let result = |board: Result<Scoreboard, String>, incomplete| WindowResult {
             key: String::new(),
-            window: pb::Window::default(),
+            window: Window::Cumulative,
             board,
             units: n,
             incomplete,
@@ -829,7 +824,7 @@ impl Frame {
         );
         let result = WindowResult {
             key: String::new(),
-            window: pb::Window::default(),
+            window: Window::Cumulative,
             board: Ok(board),
             units: n,
             incomplete,
@@ -913,12 +908,9 @@ impl Frame {
             models: names,
             ..ScoringMemo::default()
         };
-        let named = |mut result: WindowResult, key: String, kind: pb::window::Kind, cohort| {
-            result.key = key;
-            result.window = pb::Window {
-                kind: kind as i32,
-                cohort,
-            };
+        let named = |mut result: WindowResult, window: Window| {
+            result.key = window.key();
+            result.window = window;
             result
         };
         let mut windows = Vec::new();
@@ -937,17 +929,10 @@ impl Frame {
                 r
             }
         };
-        windows.push(named(
-            cumulative,
-            "cumulative".into(),
-            pb::window::Kind::Cumulative,
-            String::new(),
-        ));
+        windows.push(named(cumulative, Window::Cumulative));
         windows.push(named(
             self.score_window(&self.recent(), &nuisance, false).0,
-            "recent".into(),
-            pb::window::Kind::Recent,
-            String::new(),
+            Window::Recent,
         ));
         for (c, units) in cohort_index.units.iter().enumerate() {
             let Some(name) = self.cohort_names.get(c).filter(|_| !units.is_empty()) else {
@@ -961,7 +946,7 @@ impl Frame {
                     self.score_window(&units, &nuisance, false).0
                 }
             };
-            let result = named(result, key.clone(), pb::window::Kind::Cohort, name.clone());
+            let result = named(result, Window::Cohort(name.clone()));
             memo.cohorts.insert(key, (units.len(), result.clone()));
             windows.push(result);
         }

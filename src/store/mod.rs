@@ -22,7 +22,10 @@ use sqlx::sqlite::{
 use sqlx::{QueryBuilder, Row, Sqlite};
 use tokio_stream::StreamExt;
 
-use crate::monitor::spec::DatasetSpec;
+use crate::domain::{
+    Board, DatasetSpec, EventRecord, FitRecord, HistoryRow, OutcomeRecord, PredictionRecord,
+    ScoreRow, StoredDataset, StoredModel, UnitRecord,
+};
 
 mod tokens;
 pub use tokens::TokenRecord;
@@ -48,93 +51,6 @@ pub enum Durability {
     Full,
     /// fsync at WAL checkpoints: survives a crash of the process, not of the machine.
     Normal,
-}
-
-#[derive(Debug, Clone)]
-pub struct StoredDataset {
-    pub id: i64,
-    pub spec: DatasetSpec,
-    pub created_at_ms: i64,
-}
-
-#[derive(Debug, Clone, PartialEq)]
-pub struct StoredModel {
-    pub id: i64,
-    pub dataset_id: i64,
-    pub name: String,
-    pub version: String,
-    pub description: String,
-    pub registered_at_ms: i64,
-    pub retired_at_ms: i64,
-}
-
-#[derive(Debug, Clone, PartialEq)]
-pub struct UnitRecord {
-    pub seq: i64,
-    pub key: String,
-    pub features: Vec<f64>,
-    pub treatment: u8,
-    pub propensity: Option<f64>,
-    pub cohort: String,
-    pub assigned_at_ms: i64,
-}
-
-#[derive(Debug, Clone, PartialEq)]
-pub struct OutcomeRecord {
-    pub unit_seq: i64,
-    pub seq: i64,
-    pub value: f64,
-    pub observed_at_ms: i64,
-}
-
-#[derive(Debug, Clone, PartialEq)]
-pub struct PredictionRecord {
-    pub model_id: i64,
-    pub unit_seq: i64,
-    pub effect: f64,
-    pub predicted_at_ms: i64,
-}
-
-#[derive(Debug, Clone)]
-pub struct FitRecord {
-    pub id: i64,
-    pub fitted_at_ms: i64,
-    pub units: i64,
-    pub last_outcome_seq: i64,
-    pub seed: i64,
-    pub report_json: String,
-}
-
-#[derive(Debug, Clone)]
-pub struct ScoreRow {
-    pub model: String,
-    pub estimator: String,
-    pub window: String,
-    pub estimate: f64,
-    pub se: f64,
-    pub rank: i64,
-    pub units: i64,
-}
-
-#[derive(Debug, Clone)]
-pub struct HistoryRow {
-    pub snapshot_id: i64,
-    pub computed_at_ms: i64,
-    pub estimate: f64,
-    pub se: f64,
-    pub rank: i64,
-    pub units: i64,
-}
-
-#[derive(Debug, Clone)]
-pub struct EventRecord {
-    pub id: i64,
-    pub dataset: String,
-    pub kind: String,
-    pub at_ms: i64,
-    pub snapshot_id: i64,
-    pub summary: String,
-    pub details_json: String,
 }
 
 /// Packs features as little-endian doubles: 8 bytes a feature, exact.
@@ -556,7 +472,7 @@ impl Store {
         fit_id: Option<i64>,
         refitted: bool,
         millis: f64,
-        boards: &[(String, Vec<u8>)],
+        boards: &[Board],
         scores: &[ScoreRow],
         watch: &str,
     ) -> StoreResult<i64> {
@@ -573,13 +489,15 @@ impl Store {
         .bind(millis)
         .execute(&mut *tx)
         .await?;
-        for (window, board) in boards {
+        for board in boards {
+            let json = serde_json::to_vec(board)
+                .map_err(|e| StoreError::Corrupt(format!("board {:?}: {e}", board.window)))?;
             sqlx::query(
                 "INSERT INTO snapshot_boards (snapshot_id, window, board) VALUES (?, ?, ?)",
             )
             .bind(id)
-            .bind(window)
-            .bind(board)
+            .bind(board.window.key())
+            .bind(json)
             .execute(&mut *tx)
             .await?;
         }
@@ -627,7 +545,7 @@ impl Store {
 
     /// Each window's latest board: a snapshot stores only the windows its
     /// recompute changed (see [`Store::insert_snapshot`]).
-    pub async fn latest_boards(&self, dataset_id: i64) -> StoreResult<Vec<(String, Vec<u8>)>> {
+    pub async fn latest_boards(&self, dataset_id: i64) -> StoreResult<Vec<Board>> {
         let rows = sqlx::query(
             "SELECT b.window, b.board FROM snapshot_boards b JOIN ( \
                  SELECT sb.window AS window, MAX(sb.snapshot_id) AS id \
@@ -638,7 +556,15 @@ impl Store {
         .bind(dataset_id)
         .fetch_all(&self.pool)
         .await?;
-        Ok(rows.into_iter().map(|r| (r.get(0), r.get(1))).collect())
+        let mut boards = Vec::with_capacity(rows.len());
+        for r in rows {
+            let (window, bytes): (String, Vec<u8>) = (r.get(0), r.get(1));
+            boards.push(
+                serde_json::from_slice(&bytes)
+                    .map_err(|e| StoreError::Corrupt(format!("board {window}: {e}")))?,
+            );
+        }
+        Ok(boards)
     }
 
     /// Largest snapshot id in the store (0 when none).

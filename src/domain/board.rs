@@ -1,0 +1,282 @@
+//! A window's board as a recompute publishes it: what `GetScoreboard`
+//! serves, what a snapshot stores, and what a restart reads back. The
+//! estimation pass's own [`crate::estimate::scoreboard::Scoreboard`] is the
+//! input; this adds identity, time, the dataset's overlap thresholds and the
+//! alerts' view, and drops what only the detail document needs.
+
+use serde::{Deserialize, Serialize};
+
+use crate::estimate::estimators;
+use crate::estimate::stats::Estimate;
+
+/// Which units a board covers.
+#[derive(Debug, Clone, PartialEq, Eq, PartialOrd, Ord, Hash, Serialize, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum Window {
+    /// Every unit with an outcome.
+    Cumulative,
+    /// The dataset's most recent outcomes (`recent_last_outcomes` /
+    /// `recent_last_days`).
+    Recent,
+    /// One cohort label's units.
+    Cohort(String),
+}
+
+impl Window {
+    /// Stable key of a window, used in storage and metric labels:
+    /// `cumulative`, `recent`, `cohort:<label>`.
+    pub fn key(&self) -> String {
+        match self {
+            Window::Cumulative => "cumulative".into(),
+            Window::Recent => "recent".into(),
+            Window::Cohort(c) => format!("cohort:{c}"),
+        }
+    }
+}
+
+/// One estimator's score of a model, keyed as in [`estimators::ALL`].
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Score {
+    pub estimator: String,
+    #[serde(flatten)]
+    pub value: Estimate,
+}
+
+/// A difference with its confidence interval and p-value.
+#[derive(Debug, Clone, Copy, Default, PartialEq, Serialize, Deserialize)]
+pub struct Difference {
+    pub estimate: f64,
+    pub se: f64,
+    pub ci_low: f64,
+    pub ci_high: f64,
+    pub p_value: f64,
+}
+
+/// One ranked model (or baseline) of a board.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct BoardModel {
+    pub name: String,
+    /// True for zero-effect and constant-effect.
+    pub baseline: bool,
+    /// 1 = lowest corrected PEHE.
+    pub rank: u32,
+    /// Every estimator's score, in [`estimators::ALL`]'s order.
+    pub scores: Vec<Score>,
+    /// Corrected PEHE minus that of constant-effect (one-sided p-value for
+    /// "no lower error").
+    pub vs_constant: Difference,
+    pub p_best: f64,
+    pub in_best_set: bool,
+    /// Per unit over treating nobody, at the dataset's cost.
+    pub policy_gain: Estimate,
+    pub treated_share: f64,
+    pub autoc: Estimate,
+    pub qini: Estimate,
+    /// None when the predictions do not vary.
+    pub blp_slope: Option<Estimate>,
+}
+
+/// Per-model values kept in history besides the estimators' scores.
+pub const MEASURES: [&str; 4] = ["vs_constant", "policy_gain", "autoc", "qini"];
+
+/// Every key a history query may ask for: the keys of
+/// [`estimators::ALL`], then [`MEASURES`].
+pub fn history_keys() -> impl Iterator<Item = &'static str> {
+    estimators::ALL
+        .iter()
+        .map(|e| e.key())
+        .chain(MEASURES.iter().copied())
+}
+
+impl BoardModel {
+    /// The values history keeps, keyed as [`history_keys`] lists them.
+    pub fn history_values(&self) -> Vec<(String, Estimate)> {
+        let v = &self.vs_constant;
+        self.scores
+            .iter()
+            .map(|s| (s.estimator.clone(), s.value))
+            .chain([
+                ("vs_constant".into(), Estimate::new(v.estimate, v.se)),
+                ("policy_gain".into(), self.policy_gain),
+                ("autoc".into(), self.autoc),
+                ("qini".into(), self.qini),
+            ])
+            .collect()
+    }
+}
+
+/// Corrected PEHE of `first` minus that of `second`.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Pair {
+    pub first: String,
+    pub second: String,
+    #[serde(flatten)]
+    pub difference: Difference,
+}
+
+/// A model left out of the ranking for lack of coverage.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct IncompleteModel {
+    pub name: String,
+    /// Share of the window's units with outcomes that it predicted.
+    pub coverage: f64,
+}
+
+/// One nuisance component's chosen learner and out-of-fold loss.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct NuisanceComponent {
+    /// "propensity", "outcome_control" or "outcome_treated".
+    pub component: String,
+    /// Chosen learner, or "logged" for logged propensities.
+    pub learner: String,
+    pub oof_loss: f64,
+    /// "log_loss" or "squared_error"; empty for logged propensities.
+    pub loss: String,
+}
+
+/// Overlap of a window, with the dataset's thresholds applied.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct OverlapSummary {
+    pub eps: f64,
+    pub extreme_share: f64,
+    pub outside_crump_share: f64,
+    pub treated_effective_share: f64,
+    pub control_effective_share: f64,
+    pub treated_max_weight: f64,
+    pub control_max_weight: f64,
+    pub imbalanced_features: Vec<String>,
+    pub propensity_auc: f64,
+    pub clipped: u64,
+    pub degraded: bool,
+}
+
+/// A covariate's (or the propensity's) standardized difference between the
+/// watch's reference population and the units arriving now.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Drift {
+    pub quantity: String,
+    pub standardized_difference: f64,
+}
+
+/// The alerts' view of a dataset: the stream watch's states, which every
+/// board of a recompute carries.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct AlertView {
+    /// Empty until the watch appoints one.
+    pub leader: String,
+    pub leader_settled: bool,
+    /// "unknown", "detected" or "absent".
+    pub heterogeneity: String,
+    pub overlap_degraded: bool,
+    pub looks: u64,
+    pub units: u64,
+    pub drift: Vec<Drift>,
+}
+
+/// A window's scores as one recompute left them.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Board {
+    pub dataset: String,
+    pub window: Window,
+    pub snapshot_id: u64,
+    pub computed_at_ms: i64,
+    pub units: u64,
+    /// None when the window cannot support scores (see `degenerate`).
+    pub ate: Option<Estimate>,
+    /// Empty when degenerate.
+    pub leader: String,
+    pub best_set: Vec<String>,
+    pub no_detectable_heterogeneity: bool,
+    /// By rank.
+    pub models: Vec<BoardModel>,
+    pub incomplete: Vec<IncompleteModel>,
+    pub overlap: Option<OverlapSummary>,
+    pub nuisance: Vec<NuisanceComponent>,
+    /// Every pair of ranked models once.
+    pub pairwise: Vec<Pair>,
+    /// Why the window has no scores; empty when it has.
+    pub degenerate: String,
+    pub caveat: String,
+    /// The estimation pass's whole document (calibration bins, balance,
+    /// nuisance candidates), as `plumbline score --format json` prints it.
+    pub detail_json: String,
+    /// Units behind AUTOC, Qini and the calibration slope, which may lag
+    /// `units` between rank refreshes.
+    pub rank_metrics_units: u64,
+    pub alerts: Option<AlertView>,
+}
+
+impl Board {
+    /// The difference of corrected PEHE between two ranked models, `first`
+    /// minus `second`, if both are on the board.
+    pub fn compare(&self, first: &str, second: &str) -> Option<Difference> {
+        self.pairwise.iter().find_map(|p| {
+            if p.first == first && p.second == second {
+                Some(p.difference)
+            } else if p.first == second && p.second == first {
+                let d = p.difference;
+                Some(Difference {
+                    estimate: -d.estimate,
+                    ci_low: -d.ci_high,
+                    ci_high: -d.ci_low,
+                    ..d
+                })
+            } else {
+                None
+            }
+        })
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn a_pair_read_backwards_flips_its_sign_and_interval() {
+        let board = Board {
+            dataset: "d".into(),
+            window: Window::Cumulative,
+            snapshot_id: 1,
+            computed_at_ms: 0,
+            units: 10,
+            ate: None,
+            leader: String::new(),
+            best_set: vec![],
+            no_detectable_heterogeneity: true,
+            models: vec![],
+            incomplete: vec![],
+            overlap: None,
+            nuisance: vec![],
+            pairwise: vec![Pair {
+                first: "a".into(),
+                second: "b".into(),
+                difference: Difference {
+                    estimate: 0.5,
+                    se: 0.1,
+                    ci_low: 0.3,
+                    ci_high: 0.7,
+                    p_value: 0.01,
+                },
+            }],
+            degenerate: String::new(),
+            caveat: String::new(),
+            detail_json: String::new(),
+            rank_metrics_units: 10,
+            alerts: None,
+        };
+        let back = board.compare("b", "a").expect("pair");
+        assert_eq!(
+            (back.estimate, back.ci_low, back.ci_high),
+            (-0.5, -0.7, -0.3)
+        );
+        assert_eq!(board.compare("a", "b").map(|d| d.estimate), Some(0.5));
+        assert!(board.compare("a", "c").is_none());
+    }
+
+    #[test]
+    fn window_keys() {
+        assert_eq!(Window::Cohort("2026-w14".into()).key(), "cohort:2026-w14");
+        assert_eq!(Window::Recent.key(), "recent");
+    }
+}
