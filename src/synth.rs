@@ -29,6 +29,10 @@ use rand_chacha::ChaCha8Rng;
 
 use crate::estimate::ModelPredictions;
 
+// The draw lives with the statistics, which import nothing from outside
+// the estimation core; the simulations' callers keep finding it here.
+pub use crate::estimate::stats::standard_normal;
+
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 pub enum Design {
     NieWagerA,
@@ -115,12 +119,6 @@ pub struct Draw {
     pub outcome: Vec<f64>,
     pub propensity: Vec<f64>,
     pub tau: Vec<f64>,
-}
-
-pub fn standard_normal(rng: &mut impl Rng) -> f64 {
-    let u1: f64 = rng.gen_range(f64::EPSILON..1.0);
-    let u2: f64 = rng.gen();
-    (-2.0 * u1.ln()).sqrt() * (std::f64::consts::TAU * u2).cos()
 }
 
 /// Draws n units with d >= 5 features.

@@ -5,11 +5,11 @@
 //! because for the corrected PEHE only differences are unbiased (see
 //! `estimators::corrected_pehe`).
 
-use rand::{Rng, SeedableRng};
+use rand::SeedableRng;
 use rand_chacha::ChaCha8Rng;
 use serde::Serialize;
 
-use super::stats::{holm_reject, p_greater, p_two_sided, Estimate};
+use super::stats::{holm_reject, p_greater, p_two_sided, standard_normal, Estimate};
 use super::sums::ScoreSums;
 
 /// A difference in mean error between two models (first minus second).
@@ -117,12 +117,6 @@ fn semidefinite_cholesky(a: &[f64], m: usize) -> Vec<f64> {
         }
     }
     l
-}
-
-fn standard_normal(rng: &mut ChaCha8Rng) -> f64 {
-    let u1: f64 = rng.gen_range(f64::EPSILON..1.0);
-    let u2: f64 = rng.gen();
-    (-2.0 * u1.ln()).sqrt() * (std::f64::consts::TAU * u2).cos()
 }
 
 fn p_best(sums: &ScoreSums, draws: usize, seed: u64) -> Vec<f64> {

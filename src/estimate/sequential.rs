@@ -242,11 +242,12 @@ impl Detector {
 #[cfg(test)]
 mod tests {
     use super::*;
+    use crate::estimate::stats::standard_normal;
     use rand::SeedableRng;
     use rand_chacha::ChaCha8Rng;
 
     fn normal(rng: &mut ChaCha8Rng) -> f64 {
-        crate::synth::standard_normal(rng)
+        standard_normal(rng)
     }
 
     #[test]

@@ -1,5 +1,7 @@
-//! Small statistical building blocks shared by the estimators.
+//! Small statistical building blocks shared by the estimators, and the
+//! standard normal draw the rest of the crate simulates with.
 
+use rand::Rng;
 use serde::{Deserialize, Serialize};
 use statrs::distribution::{ContinuousCDF, Normal};
 
@@ -22,19 +24,28 @@ impl Estimate {
     }
 }
 
-fn standard_normal() -> Normal {
+fn unit_normal() -> Normal {
     // Normal::new(0, 1) cannot fail; the fallback keeps this total anyway.
     Normal::new(0.0, 1.0).unwrap_or_else(|_| Normal::standard())
 }
 
 /// Standard normal quantile function.
 pub fn normal_quantile(p: f64) -> f64 {
-    standard_normal().inverse_cdf(p)
+    unit_normal().inverse_cdf(p)
 }
 
 /// Standard normal distribution function.
 pub fn normal_cdf(z: f64) -> f64 {
-    standard_normal().cdf(z)
+    unit_normal().cdf(z)
+}
+
+/// One standard normal draw by the Box-Muller transform (the cosine of the
+/// pair). p_best's draws, the simulations and the tests all take their
+/// normals from here, so a seed gives the same values wherever it is used.
+pub fn standard_normal(rng: &mut impl Rng) -> f64 {
+    let u1: f64 = rng.gen_range(f64::EPSILON..1.0);
+    let u2: f64 = rng.gen();
+    (-2.0 * u1.ln()).sqrt() * (std::f64::consts::TAU * u2).cos()
 }
 
 /// Mean and standard error of the mean (sample sd with n - 1, over sqrt n).

@@ -1,0 +1,78 @@
+//! How the nuisance components are fitted: folds, seed, clipping, the
+//! learner libraries and the first-fold screening, checked once before any
+//! fitting starts.
+
+use crate::estimate::error::EstimateError;
+use crate::estimate::learner::Learner;
+
+/// How the nuisance components are fitted.
+///
+/// Empty learner lists mean "the default library for this data"
+/// ([`default_library`](crate::estimate::learner::default_library)), chosen once the number of features is known.
+#[derive(Debug)]
+pub struct NuisanceSettings {
+    pub folds: usize,
+    pub seed: u64,
+    /// Propensities are clipped to [clip, 1 - clip] for weighting.
+    pub clip: f64,
+    pub propensity_learners: Vec<Box<dyn Learner>>,
+    pub outcome_learners: Vec<Box<dyn Learner>>,
+    /// Each fold must hold at least this many units of each arm.
+    pub min_units_per_fold: usize,
+    /// A propensity AUC at or above this means the arms are separated.
+    pub separation_auc: f64,
+    /// First-fold screening: a learner whose held-out loss on the first
+    /// fold is above the best learner's by more than this many standard
+    /// errors (paired over that fold's units) is not fitted on the other
+    /// folds. None fits every learner on every fold.
+    pub screening_z: Option<f64>,
+}
+
+impl Default for NuisanceSettings {
+    fn default() -> Self {
+        Self {
+            folds: 5,
+            seed: 0,
+            clip: 0.01,
+            propensity_learners: Vec::new(),
+            outcome_learners: Vec::new(),
+            min_units_per_fold: 3,
+            separation_auc: 0.995,
+            // Four standard errors on a fifth of the data: a learner this far
+            // behind on one fold is all but certain to lose on all five.
+            screening_z: Some(4.0),
+        }
+    }
+}
+
+impl NuisanceSettings {
+    pub fn check(&self) -> Result<(), EstimateError> {
+        if self.folds < 2 {
+            return Err(EstimateError::invalid(format!(
+                "folds must be at least 2 (got {})",
+                self.folds
+            )));
+        }
+        if let Some(z) = self.screening_z {
+            if !(z.is_finite() && z > 0.0) {
+                return Err(EstimateError::invalid(format!(
+                    "screening z must be a positive number (got {z})"
+                )));
+            }
+        }
+        if !(self.clip >= 0.0 && self.clip < 0.5) {
+            return Err(EstimateError::invalid(format!(
+                "propensity clip must lie in [0, 0.5) (got {})",
+                self.clip
+            )));
+        }
+        for l in self
+            .propensity_learners
+            .iter()
+            .chain(&self.outcome_learners)
+        {
+            l.check()?;
+        }
+        Ok(())
+    }
+}

@@ -1,0 +1,95 @@
+//! Population drift: each feature's and the propensity's mean among
+//! arriving units, standardized by a reference population, against a
+//! tolerance in either direction. A detection starts a new reference.
+
+use std::collections::BTreeMap;
+
+use serde::{Deserialize, Serialize};
+
+use crate::estimate::sequential::{log_threshold, Side};
+use crate::estimate::stats::Moments;
+
+use super::signal::{Route, Signal};
+use super::tracked::Tracked;
+use super::{feature_name, Arrivals, Watch, WatchSettings};
+
+/// Units the drift reference holds: the noise of its means, about 0.014
+/// standard deviations, stays well inside the tolerance.
+pub const DRIFT_REFERENCE_UNITS: u64 = 5000;
+
+/// Drift of the arriving units from a reference population.
+#[derive(Debug, Clone, PartialEq, Default, Serialize, Deserialize)]
+pub(super) struct DriftWatch {
+    /// Per feature, then the propensity: the reference's moments, taken
+    /// from the first [`DRIFT_REFERENCE_UNITS`] units after a (re)start
+    /// (for the propensity, also after each refit).
+    pub(super) reference: Vec<Moments>,
+    pub(super) checks: BTreeMap<String, Tracked>,
+}
+
+impl Watch {
+    pub(super) fn check_drift(
+        &mut self,
+        a: &Arrivals<'_>,
+        s: &WatchSettings,
+        out: &mut Vec<Signal>,
+    ) {
+        let n = a.treatment.len();
+        let d = a.features.len().checked_div(n).unwrap_or(0);
+        let column = |j: usize| -> Vec<f64> {
+            if j < d {
+                (0..n).map(|i| a.features[i * d + j]).collect()
+            } else {
+                a.nuisance.propensity.clone()
+            }
+        };
+        let name = |j: usize| -> String {
+            if j < d {
+                feature_name(a.feature_names, j)
+            } else {
+                "propensity".into()
+            }
+        };
+        let w = &mut self.drift;
+        if w.reference.len() != d + 1 {
+            *w = DriftWatch {
+                reference: vec![Moments::default(); d + 1],
+                checks: BTreeMap::new(),
+            };
+        }
+        let log_a = log_threshold(s.alpha, s.horizon, 2 * (d + 1));
+        let alpha = s.alpha / (2 * (d + 1)) as f64;
+        let tol = s.drift_tolerance;
+        let mut fired = None;
+        for j in 0..=d {
+            // Until a quantity's reference is complete, the look builds it.
+            if w.reference[j].count() < DRIFT_REFERENCE_UNITS {
+                w.reference[j].merge(&Moments::of(&column(j)));
+                continue;
+            }
+            let (mean, sd) = (w.reference[j].mean(), w.reference[j].sd());
+            if sd <= 0.0 {
+                continue;
+            }
+            let z: Vec<f64> = column(j).iter().map(|v| (v - mean) / sd).collect();
+            for (side, theta, label) in [(Side::Above, tol, "up"), (Side::Below, -tol, "down")] {
+                let t = w
+                    .checks
+                    .entry(format!("{} {label}", name(j)))
+                    .or_insert_with(|| Tracked::new(side));
+                t.fold_gaussian(&z, theta);
+                if fired.is_none() && t.fired(log_a) {
+                    fired = Some(Signal::PopulationDrift {
+                        quantity: name(j),
+                        evidence: t.evidence(Route::Detector, theta, alpha, log_a, alpha),
+                    });
+                }
+            }
+        }
+        if let Some(signal) = fired {
+            out.push(signal);
+            // The population has moved: a new reference from here on.
+            *w = DriftWatch::default();
+        }
+    }
+}
