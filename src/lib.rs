@@ -11,13 +11,18 @@
 //!   calibration and overlap, and the stream watch behind the alerts
 //!   (confidence sequences and change detectors that stay valid however
 //!   often they are looked at). Knows nothing of files, networks or async.
-//! - [`store`]: the durable log in SQLite (datasets, models, units, outcomes,
-//!   predictions, nuisance fit records, score snapshots, events).
+//! - [`domain`]: the service's own records (dataset settings, the rows
+//!   that arrive, published boards, history values, events), shared by the
+//!   store, the monitor and the api; free of the wire and of any backend.
+//! - [`store`]: the storage contract (four small traits in domain records,
+//!   with the integrity rules every backend keeps) and its SQLite backend
+//!   in `store::sqlite`; `store::open` is the one place naming a backend.
 //! - [`monitor`]: per-dataset state: the in-memory columnar cache, intake
 //!   validation and the integrity rules, the recompute job and its scheduler,
 //!   windows, snapshots, and the events the stream watch raises.
 //! - [`api`]: the gRPC surface, thin adapters from the wire contract in
-//!   `proto/` to the monitor, with one mapping of errors to status codes.
+//!   `proto/` to the monitor, the only module that converts to and from the
+//!   wire, with one mapping of errors to status codes.
 //! - [`auth`]: bearer tokens with `admin` / `read:<dataset>` /
 //!   `write:<dataset>` scopes, stored as digests, checked by a gRPC
 //!   interceptor and by each handler for its dataset.
@@ -29,7 +34,9 @@
 //!   name the file, row and column.
 //! - [`synth`]: published simulation designs with known effects, used by the
 //!   checks, the benchmarks and `plumbline simulate`.
-//! - [`cli`]: the `plumbline` command line (`serve`, `score`, `simulate`).
+//! - [`cli`]: the `plumbline` command line: `serve`, `demo`, `score`,
+//!   `simulate`, `ingest`, `loadtest`, `token`, and the client commands
+//!   `datasets`, `models`, `scoreboard`, `history`, `events`, `overlap`.
 
 pub mod api;
 pub mod auth;

@@ -23,7 +23,7 @@ use crate::metrics::http::{self, HttpState};
 use crate::metrics::Metrics;
 use crate::monitor::Monitor;
 use crate::shutdown::ShutdownSignal;
-use crate::store::Store;
+use crate::store::{self, Store, StoreConfig, StoreError};
 
 /// A running server; dropping it does not stop it: call `stop`.
 pub struct Running {
@@ -89,13 +89,36 @@ async fn gate(config: &Config, store: &Store) -> Result<Arc<Gate>, String> {
     Ok(gate)
 }
 
+/// Why a server did not start.
+#[derive(Debug, thiserror::Error)]
+pub enum StartError {
+    /// Another server holds the data directory.
+    #[error("{0}")]
+    DataDirInUse(String),
+    #[error("{0}")]
+    Other(String),
+}
+
+impl From<String> for StartError {
+    fn from(e: String) -> Self {
+        StartError::Other(e)
+    }
+}
+
 /// Opens the store, rebuilds state and starts both listeners.
-pub async fn start(config: &Config) -> Result<Running, String> {
+pub async fn start(config: &Config) -> Result<Running, StartError> {
     std::fs::create_dir_all(&config.data_dir)
         .map_err(|e| format!("{}: {e}", config.data_dir.display()))?;
-    let store = Store::open(&config.database_path(), config.durability)
-        .await
-        .map_err(|e| format!("{}: {e}", config.database_path().display()))?;
+    let store = store::open(&StoreConfig {
+        path: config.database_path(),
+        durability: config.durability,
+        claim: true,
+    })
+    .await
+    .map_err(|e| match e {
+        StoreError::InUse(why) => StartError::DataDirInUse(why),
+        e => format!("{}: {e}", config.database_path().display()).into(),
+    })?;
     let gate = gate(config, &store).await?;
     let metrics = Metrics::new();
     let ready = Arc::new(AtomicBool::new(false));

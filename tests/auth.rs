@@ -11,7 +11,7 @@ use common::service::{config, continuous_spec, http_get, serve_binary, TempDir};
 use plumbline::api::pb;
 use plumbline::auth::{issue, Scope};
 use plumbline::config::{Config, TlsConfig, DATABASE_FILE};
-use plumbline::store::{Durability, Store};
+use plumbline::store::{self, Durability, Store, StoreConfig};
 use tonic::transport::{Certificate, Channel, ClientTlsConfig, Identity};
 use tonic::{Code, Request};
 
@@ -26,10 +26,19 @@ fn with_token<T>(token: Option<&str>, message: T) -> Request<T> {
     r
 }
 
+/// The store as the token command opens it: beside a running server,
+/// without a claim on the directory.
+async fn tokens_only(dir: &TempDir) -> Result<Store, store::StoreError> {
+    store::open(&StoreConfig {
+        path: dir.0.join(DATABASE_FILE),
+        durability: Durability::Full,
+        claim: false,
+    })
+    .await
+}
+
 async fn create_token(dir: &TempDir, scopes: &[&str]) -> (String, String) {
-    let store = Store::open(&dir.0.join(DATABASE_FILE), Durability::Full)
-        .await
-        .expect("store");
+    let store = tokens_only(dir).await.expect("store");
     let scopes: Vec<Scope> = scopes
         .iter()
         .map(|s| Scope::parse(s).expect("scope"))
@@ -282,9 +291,7 @@ async fn scopes_decide_every_rpc_and_revocation_needs_no_restart() {
 
     // Revoking and creating while the server runs take effect within the
     // refresh period (1 s); allow 5 s for a loaded machine.
-    let store = Store::open(&dir.0.join(DATABASE_FILE), Durability::Full)
-        .await
-        .expect("store");
+    let store = tokens_only(&dir).await.expect("store");
     assert!(store.revoke_token(&writer_id, 2).await.expect("revoke"));
     store.close().await;
     let (_, late) = create_token(&dir, &["read:a"]).await;
@@ -317,11 +324,7 @@ async fn token_commands_and_no_token_in_logs() {
     let dir = TempDir::new("auth-cli");
     let bin = env!("CARGO_BIN_EXE_plumbline");
     // Create the database first, as a server's first start would.
-    Store::open(&dir.0.join(DATABASE_FILE), Durability::Full)
-        .await
-        .expect("store")
-        .close()
-        .await;
+    tokens_only(&dir).await.expect("store").close().await;
     let out = std::process::Command::new(bin)
         .args(["token", "create", "--scope", "admin", "--label", "ops"])
         .arg("--data-dir")

@@ -1315,7 +1315,9 @@ async fn a_store_holding_a_unit_key_twice_is_refused_at_start() {
 
     let refused = start(&config(&dir)).await.err().expect("refused");
     assert!(
-        refused.contains(r#"unit key "a" is stored twice (units 0 and 2)"#),
+        refused
+            .to_string()
+            .contains(r#"unit key "a" is stored twice (units 0 and 2)"#),
         "{refused}"
     );
 }

@@ -1236,3 +1236,34 @@ async fn every_estimator_reaches_the_board_metrics_history_and_table() {
     }
     srv.stop().await.expect("stop");
 }
+
+/// One server per data directory: a second `plumbline serve` on the same
+/// directory exits with status 2 and says which process holds it, and the
+/// first keeps serving.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_second_server_on_one_data_directory_is_refused() {
+    let dir = TempDir::new("claimed");
+    let first = serve_binary(&dir, &[], "warn", false);
+    let second = std::process::Command::new(env!("CARGO_BIN_EXE_plumbline"))
+        .arg("serve")
+        .arg("--data-dir")
+        .arg(&dir.0)
+        .args(["--listen", "127.0.0.1:0", "--metrics-listen", "127.0.0.1:0"])
+        .output()
+        .expect("run a second server");
+    let stderr = String::from_utf8_lossy(&second.stderr);
+    assert_eq!(second.status.code(), Some(2), "{stderr}");
+    let pid = first.child.id().to_string();
+    assert!(
+        stderr.contains("is in use by process") && stderr.contains(&pid),
+        "{stderr}"
+    );
+    assert!(stderr.contains("--data-dir"), "{stderr}");
+    let mut health = tonic_health::pb::health_client::HealthClient::new(first.channel().await);
+    health
+        .check(tonic_health::pb::HealthCheckRequest::default())
+        .await
+        .expect("the first server still answers");
+    let out = first.terminate();
+    assert!(out.status.success());
+}

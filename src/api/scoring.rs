@@ -12,6 +12,7 @@ use crate::domain::board::history_keys;
 use crate::domain::Board;
 use crate::monitor::Asked;
 use crate::monitor::Monitor;
+use crate::store::HistoryQuery;
 
 pub struct ScoringService {
     pub monitor: Arc<Monitor>,
@@ -88,14 +89,14 @@ impl pb::scoring_server::Scoring for ScoringService {
         let rows = self
             .monitor
             .store()
-            .history(
-                id,
-                &r.model,
-                &r.estimator,
-                &window_of(&r.window)?.key(),
-                r.from_ms,
-                to,
-            )
+            .history(&HistoryQuery {
+                dataset_id: id,
+                model: &r.model,
+                key: &r.estimator,
+                window: &window_of(&r.window)?.key(),
+                from_ms: r.from_ms,
+                to_ms: to,
+            })
             .await
             .map_err(|e| from_monitor(e.into()))?;
         Ok(Response::new(pb::GetHistoryResponse {

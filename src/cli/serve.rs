@@ -125,6 +125,10 @@ pub fn run(args: &ServeArgs) -> ExitCode {
     runtime.block_on(async {
         let running = match crate::server::start(&config).await {
             Ok(r) => r,
+            Err(crate::server::StartError::DataDirInUse(why)) => {
+                eprintln!("plumbline serve: {why}");
+                return ExitCode::from(EXIT_BAD_INPUT);
+            }
             Err(e) => {
                 tracing::error!("{e}");
                 return ExitCode::FAILURE;

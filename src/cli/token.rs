@@ -9,7 +9,7 @@ use clap::{Args, Subcommand};
 use super::EXIT_BAD_INPUT;
 use crate::auth::{issue, Scope};
 use crate::config::{DATABASE_FILE, DEFAULT_DATA_DIR};
-use crate::store::{Durability, Store};
+use crate::store::{self, Durability, StoreConfig};
 
 #[derive(Debug, Args)]
 pub struct TokenArgs {
@@ -64,9 +64,14 @@ async fn apply(args: &TokenArgs) -> Result<(), (u8, String)> {
         ));
     }
     let path = args.data_dir.join(DATABASE_FILE);
-    let store = Store::open(&path, Durability::Full)
-        .await
-        .map_err(|e| fail(format!("{}: {e}", path.display())))?;
+    // Beside a running server: tokens only, so no claim on the directory.
+    let store = store::open(&StoreConfig {
+        path: path.clone(),
+        durability: Durability::Full,
+        claim: false,
+    })
+    .await
+    .map_err(|e| fail(format!("{}: {e}", path.display())))?;
     let result = match &args.action {
         TokenAction::Create { label, .. } => {
             let issued = issue(&scopes, label, now_ms()).map_err(fail)?;

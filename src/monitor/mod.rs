@@ -21,6 +21,7 @@ use std::sync::{Arc, RwLock};
 use std::time::{Duration, Instant, SystemTime, UNIX_EPOCH};
 
 use tokio::sync::{broadcast, Mutex, Notify};
+use tokio_stream::StreamExt;
 use tracing::{info, info_span, warn, Instrument};
 
 use crate::domain::{spec, Board, DatasetSpec, EventRecord, ScoreRow, StoredDataset, StoredModel};
@@ -32,7 +33,7 @@ use crate::metrics::{
     ScoreLabels, WindowLabels,
 };
 use crate::shutdown::Shutdown;
-use crate::store::{Store, StoreError};
+use crate::store::{NewSnapshot, Store, StoreError};
 use alerts::Raised;
 use cache::DatasetCache;
 use ingest::{OutcomeIn, PredictionIn, Rejection, UnitIn};
@@ -238,37 +239,37 @@ impl Monitor {
         async {
             let mut cache = DatasetCache::new(stored.spec.feature_names.len());
             // Keys are unique by intake's check, not by an index (see
-            // migrations/0003): a store that holds one twice was written by
+            // migrations/sqlite/0003): a store that holds one twice was written by
             // something else, and is refused rather than served.
-            let mut twice = None;
-            self.store
-                .for_each_unit(stored.id, |u| match cache.unit_of(&u.key) {
-                    Some(first) => {
-                        twice.get_or_insert((u.key, first, u.seq));
-                    }
-                    None => cache.add_unit(&u),
-                })
-                .await?;
-            if let Some((key, first, seq)) = twice {
-                return Err(StoreError::Corrupt(format!(
-                    "dataset {:?}: unit key {key:?} is stored twice (units {first} and {seq})",
-                    stored.spec.name
-                ))
-                .into());
+            let mut units = self.store.units(stored.id);
+            while let Some(u) = units.next().await {
+                let u = u?;
+                if let Some(first) = cache.unit_of(&u.key) {
+                    return Err(StoreError::Corrupt(format!(
+                        "dataset {:?}: unit key {:?} is stored twice (units {first} and {})",
+                        stored.spec.name, u.key, u.seq
+                    ))
+                    .into());
+                }
+                cache.add_unit(&u);
             }
-            self.store
-                .for_each_outcome(stored.id, |o| cache.add_outcome(&o))
-                .await?;
+            drop(units);
+            let mut outcomes = self.store.outcomes(stored.id);
+            while let Some(o) = outcomes.next().await {
+                cache.add_outcome(&o?);
+            }
+            drop(outcomes);
             for m in self.store.models(stored.id).await? {
                 cache.add_model(m);
             }
-            self.store
-                .for_each_prediction(stored.id, |p| {
-                    if let Some(m) = cache.model_by_id(p.model_id) {
-                        cache.add_prediction(m, &p);
-                    }
-                })
-                .await?;
+            let mut predictions = self.store.predictions(stored.id);
+            while let Some(p) = predictions.next().await {
+                let p = p?;
+                if let Some(m) = cache.model_by_id(p.model_id) {
+                    cache.add_prediction(m, &p);
+                }
+            }
+            drop(predictions);
             let mut state = DatasetState {
                 stored: stored.clone(),
                 cache,
@@ -310,7 +311,7 @@ impl Monitor {
                 .saturating_sub(state.nuisance.as_ref().map(|n| n.fit_units).unwrap_or(0))
                 as u64;
             // Boards an earlier version stored were dropped on upgrade
-            // (migrations/0005): the scheduler recomputes them at start.
+            // (migrations/sqlite/0005): the scheduler recomputes them at start.
             if latest.is_empty() && state.cache.outcomes() > 0 {
                 state.pending_outcomes = state.pending_outcomes.max(1);
             }
@@ -808,17 +809,17 @@ impl Monitor {
         let watch_json = serde_json::to_string(&computed.watch)
             .map_err(|e| MonitorError::Internal(format!("stream watch: {e}")))?;
         self.store
-            .insert_snapshot(
-                snapshot_id,
-                h.id,
-                now,
-                Some(nuisance.fit_id),
-                computed.refit.is_some(),
+            .insert_snapshot(&NewSnapshot {
+                id: snapshot_id,
+                dataset_id: h.id,
+                computed_at_ms: now,
+                fit_id: Some(nuisance.fit_id),
+                refitted: computed.refit.is_some(),
                 millis,
-                &changed,
-                &scores,
-                &watch_json,
-            )
+                boards: &changed,
+                scores: &scores,
+                watch: &watch_json,
+            })
             .await?;
 
         // Install, then alert.

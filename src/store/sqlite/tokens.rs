@@ -1,24 +1,14 @@
-//! Access-token records: a public id, the SHA-256 digest of the token, its
-//! scopes and a label. The token itself is never stored.
+//! Access-token records, in SQLite.
 
+use async_trait::async_trait;
 use sqlx::Row;
 
-use super::{Store, StoreResult};
+use super::SqliteStore;
+use crate::store::{StoreResult, TokenLog, TokenRecord};
 
-#[derive(Debug, Clone, PartialEq, Eq)]
-pub struct TokenRecord {
-    pub id: String,
-    pub digest: Vec<u8>,
-    /// A JSON array of the display forms of [`crate::auth::Scope`]'s display form.
-    pub scopes: String,
-    pub label: String,
-    pub created_at_ms: i64,
-    /// 0 while the token is live.
-    pub revoked_at_ms: i64,
-}
-
-impl Store {
-    pub async fn insert_token(&self, t: &TokenRecord) -> StoreResult<()> {
+#[async_trait]
+impl TokenLog for SqliteStore {
+    async fn insert_token(&self, t: &TokenRecord) -> StoreResult<()> {
         sqlx::query(
             "INSERT INTO access_tokens (id, digest, scopes, label, created_at_ms, revoked_at_ms) \
              VALUES (?, ?, ?, ?, ?, 0)",
@@ -34,7 +24,7 @@ impl Store {
     }
 
     /// Marks a token revoked; false when no live token has this id.
-    pub async fn revoke_token(&self, id: &str, now_ms: i64) -> StoreResult<bool> {
+    async fn revoke_token(&self, id: &str, now_ms: i64) -> StoreResult<bool> {
         let done = sqlx::query(
             "UPDATE access_tokens SET revoked_at_ms = ? WHERE id = ? AND revoked_at_ms = 0",
         )
@@ -46,7 +36,7 @@ impl Store {
     }
 
     /// Every token, live and revoked, oldest first.
-    pub async fn tokens(&self) -> StoreResult<Vec<TokenRecord>> {
+    async fn tokens(&self) -> StoreResult<Vec<TokenRecord>> {
         let rows = sqlx::query(
             "SELECT id, digest, scopes, label, created_at_ms, revoked_at_ms \
              FROM access_tokens ORDER BY created_at_ms, id",

@@ -1,0 +1,169 @@
+//! The SQLite backend of the storage contract ([`crate::store`]), through
+//! sqlx, with its migrations in `migrations/sqlite/`.
+//!
+//! One server per data directory: a server claims the directory with a lock
+//! file ([`claim`]), because the rule that a unit key is stored once rests
+//! on one writer checking keys in memory (the units table has no key index,
+//! see `migrations/sqlite/0003`). WAL journaling lets readers (history,
+//! events, the token command) run beside that writer. Queries are
+//! parameterized; nothing a client sends is ever spliced into SQL text.
+//!
+//! Commits never copy the WAL back into the database file themselves
+//! (`wal_autocheckpoint = 0`): a background task checkpoints every
+//! [`CHECKPOINT_EVERY`] on a connection of its own, beside the writer, so an
+//! intake batch waits only for its own WAL append and fsync.
+
+use std::str::FromStr;
+use std::sync::{Arc, Weak};
+use std::time::Duration;
+
+use async_trait::async_trait;
+use sqlx::sqlite::{
+    SqliteConnectOptions, SqliteJournalMode, SqlitePool, SqlitePoolOptions, SqliteSynchronous,
+};
+
+use super::{Backend, Durability, StoreConfig, StoreError, StoreResult};
+
+mod claim;
+mod datasets;
+mod events;
+mod snapshots;
+mod tokens;
+
+pub use claim::Claim;
+
+impl From<sqlx::Error> for StoreError {
+    fn from(e: sqlx::Error) -> Self {
+        match &e {
+            sqlx::Error::Database(db) if db.is_unique_violation() => {
+                StoreError::Conflict(db.message().to_string())
+            }
+            _ => StoreError::Backend(e.to_string()),
+        }
+    }
+}
+
+impl From<sqlx::migrate::MigrateError> for StoreError {
+    fn from(e: sqlx::migrate::MigrateError) -> Self {
+        StoreError::Backend(format!("migration failed: {e}"))
+    }
+}
+
+/// Packs features as little-endian doubles: 8 bytes a feature, exact.
+pub fn pack_features(values: &[f64]) -> Vec<u8> {
+    values.iter().flat_map(|v| v.to_le_bytes()).collect()
+}
+
+pub fn unpack_features(bytes: &[u8]) -> StoreResult<Vec<f64>> {
+    if bytes.len() % 8 != 0 {
+        return Err(StoreError::Corrupt(format!(
+            "feature blob of {} bytes is not a whole number of doubles",
+            bytes.len()
+        )));
+    }
+    Ok(bytes
+        .chunks_exact(8)
+        .map(|c| {
+            let mut b = [0u8; 8];
+            b.copy_from_slice(c);
+            f64::from_le_bytes(b)
+        })
+        .collect())
+}
+
+/// How often the background task copies the WAL into the database file.
+/// Between checkpoints the WAL grows by what was written in the interval
+/// (at full ingest speed, tens of MB).
+pub const CHECKPOINT_EVERY: Duration = Duration::from_millis(500);
+
+/// Rows per multi-row INSERT: SQLite allows 32,766 bound parameters.
+const INSERT_CHUNK: usize = 500;
+
+/// Copies committed WAL frames into the database file every
+/// [`CHECKPOINT_EVERY`] until the pool closes or the last store holding
+/// `alive` is dropped. PASSIVE never waits for the
+/// writer or for readers; frames it cannot copy yet are copied next time,
+/// and the writer starts the WAL over once a checkpoint has caught up.
+async fn checkpoints(pool: SqlitePool, alive: Weak<()>) {
+    let mut tick = tokio::time::interval(CHECKPOINT_EVERY);
+    tick.set_missed_tick_behavior(tokio::time::MissedTickBehavior::Delay);
+    loop {
+        tick.tick().await;
+        if pool.is_closed() || alive.strong_count() == 0 {
+            return;
+        }
+        if let Err(e) = sqlx::query("PRAGMA wal_checkpoint(PASSIVE)")
+            .execute(&pool)
+            .await
+        {
+            if pool.is_closed() {
+                return;
+            }
+            tracing::warn!(error = %e, "WAL checkpoint failed; the next one retries");
+        }
+    }
+}
+
+pub struct SqliteStore {
+    pool: SqlitePool,
+    /// The checkpoint task stops when this goes.
+    _alive: Arc<()>,
+    /// The data directory's claim, for a server; released on close (or
+    /// drop), so a server stopped in-process can be started again.
+    claim: std::sync::Mutex<Option<Claim>>,
+}
+
+impl SqliteStore {
+    /// Claims the data directory (for a server), opens (creating if needed)
+    /// the database file and applies migrations.
+    pub async fn open(config: &StoreConfig) -> StoreResult<Self> {
+        let claim = if config.claim {
+            Some(Claim::take(&config.path)?)
+        } else {
+            None
+        };
+        let durability = config.durability;
+        let options = SqliteConnectOptions::from_str("sqlite://")?
+            .filename(&config.path)
+            .create_if_missing(true)
+            .journal_mode(SqliteJournalMode::Wal)
+            .synchronous(match durability {
+                Durability::Full => SqliteSynchronous::Full,
+                Durability::Normal => SqliteSynchronous::Normal,
+            })
+            .foreign_keys(true)
+            .pragma("wal_autocheckpoint", "0")
+            // 16 MiB of page cache per connection (SQLite's default is 2 MiB),
+            // for the B-tree pages intake and rebuilds walk.
+            .pragma("cache_size", "-16384")
+            .busy_timeout(Duration::from_secs(10));
+        let pool = SqlitePoolOptions::new()
+            .max_connections(4)
+            .connect_with(options)
+            .await?;
+        sqlx::migrate!("./migrations/sqlite").run(&pool).await?;
+        let alive = Arc::new(());
+        tokio::spawn(checkpoints(pool.clone(), Arc::downgrade(&alive)));
+        Ok(Self {
+            pool,
+            _alive: alive,
+            claim: std::sync::Mutex::new(claim),
+        })
+    }
+}
+
+#[async_trait]
+impl Backend for SqliteStore {
+    fn name(&self) -> &'static str {
+        "sqlite"
+    }
+
+    /// Closes the pool; the last connection to close checkpoints the WAL
+    /// into the database file and removes it.
+    async fn close(&self) {
+        self.pool.close().await;
+        if let Ok(mut claim) = self.claim.lock() {
+            claim.take();
+        }
+    }
+}
