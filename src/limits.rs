@@ -11,7 +11,7 @@ use std::time::Duration;
 use serde::Deserialize;
 
 use crate::domain::spec::MAX_NAME_LEN;
-use crate::monitor::ingest::{MAX_BATCH_ROWS, MAX_KEY_BYTES};
+use crate::monitor::checks::{MAX_BATCH_ROWS, MAX_KEY_BYTES};
 
 #[derive(Debug, Clone, PartialEq, Eq, Deserialize)]
 #[serde(default, deny_unknown_fields)]

@@ -1,6 +1,6 @@
 //! Property tests of the two places hostile bytes first meet the program:
 //! the CSV reader (src/input.rs) and intake validation
-//! (src/monitor/ingest.rs). Case counts are kept small so the file runs in
+//! (src/monitor/checks.rs). Case counts are kept small so the file runs in
 //! seconds; every failure prints its shrunk input.
 
 use std::collections::BTreeMap;
@@ -10,7 +10,7 @@ use plumbline::domain::{OutcomeRecord, PredictionRecord, StoredModel, UnitRecord
 use plumbline::estimate::OutcomeKind;
 use plumbline::input::{read_predictions, read_units};
 use plumbline::monitor::cache::DatasetCache;
-use plumbline::monitor::ingest::{
+use plumbline::monitor::checks::{
     check_outcomes, check_predictions, check_units, Fault, OutcomeIn, PredictionIn, UnitIn,
 };
 use proptest::prelude::*;
@@ -340,7 +340,7 @@ fn flaw() -> impl Strategy<Value = Flaw> {
 /// Checks the refused rows are exactly the flawed ones, each with its field
 /// and fault, or that a batch without flaws is accepted whole.
 fn expect_exactly(
-    result: Result<usize, Vec<plumbline::monitor::ingest::Rejection>>,
+    result: Result<usize, Vec<plumbline::monitor::checks::Rejection>>,
     flawed: &BTreeMap<usize, (&'static str, Fault)>,
     rows: usize,
 ) -> Result<(), TestCaseError> {

@@ -12,7 +12,7 @@ use super::pb;
 use super::status::{from_monitor, refused};
 use crate::auth::{caller, Access, Caller};
 use crate::limits::{exceeded, Limits};
-use crate::monitor::ingest::{Fault, OutcomeIn, PredictionIn, Rejection, UnitIn};
+use crate::monitor::checks::{Fault, OutcomeIn, PredictionIn, Rejection, UnitIn};
 use crate::monitor::{BatchCounts, Monitor, MonitorError};
 
 pub struct IntakeService {
@@ -54,26 +54,28 @@ impl From<pb::PredictionRow> for PredictionIn {
     }
 }
 
-/// The names and keys of a row that the configured length limits bound.
-trait Named {
+/// An intake row type whose keys and names the configured length limits
+/// bound: it labels each such string with its field and its limit, for
+/// [`check_limits`].
+trait LengthLimited {
     /// (field, value, the limit's name, the limit).
-    fn names<'a>(&'a self, l: &Limits) -> Vec<(&'static str, &'a str, &'static str, usize)>;
+    fn limited<'a>(&'a self, l: &Limits) -> Vec<(&'static str, &'a str, &'static str, usize)>;
 }
 
-impl Named for UnitIn {
-    fn names<'a>(&'a self, l: &Limits) -> Vec<(&'static str, &'a str, &'static str, usize)> {
+impl LengthLimited for UnitIn {
+    fn limited<'a>(&'a self, l: &Limits) -> Vec<(&'static str, &'a str, &'static str, usize)> {
         vec![("key", &self.key, "max_key_bytes", l.max_key_bytes)]
     }
 }
 
-impl Named for OutcomeIn {
-    fn names<'a>(&'a self, l: &Limits) -> Vec<(&'static str, &'a str, &'static str, usize)> {
+impl LengthLimited for OutcomeIn {
+    fn limited<'a>(&'a self, l: &Limits) -> Vec<(&'static str, &'a str, &'static str, usize)> {
         vec![("unit_key", &self.unit_key, "max_key_bytes", l.max_key_bytes)]
     }
 }
 
-impl Named for PredictionIn {
-    fn names<'a>(&'a self, l: &Limits) -> Vec<(&'static str, &'a str, &'static str, usize)> {
+impl LengthLimited for PredictionIn {
+    fn limited<'a>(&'a self, l: &Limits) -> Vec<(&'static str, &'a str, &'static str, usize)> {
         vec![
             ("model", &self.model, "max_name_bytes", l.max_name_bytes),
             ("unit_key", &self.unit_key, "max_key_bytes", l.max_key_bytes),
@@ -83,7 +85,7 @@ impl Named for PredictionIn {
 
 /// The configured limits a batch must meet before the monitor sees it:
 /// its row count, and the length of every key and name.
-fn check_limits<R: Named>(l: &Limits, rows: &[R]) -> Result<(), Vec<Rejection>> {
+fn check_limits<R: LengthLimited>(l: &Limits, rows: &[R]) -> Result<(), Vec<Rejection>> {
     let invalid = |row: usize, field: &str, reason: String| Rejection {
         row,
         field: field.into(),
@@ -103,7 +105,7 @@ fn check_limits<R: Named>(l: &Limits, rows: &[R]) -> Result<(), Vec<Rejection>> 
     }
     let mut faults = Vec::new();
     for (i, r) in rows.iter().enumerate() {
-        for (field, value, limit, max) in r.names(l) {
+        for (field, value, limit, max) in r.limited(l) {
             if value.len() > max && faults.len() < MAX_DETAIL_ROWS {
                 faults.push(invalid(
                     i,
@@ -124,7 +126,7 @@ fn check_limits<R: Named>(l: &Limits, rows: &[R]) -> Result<(), Vec<Rejection>> 
 /// which clients cap (16 KiB by default in the Rust and Go stacks); the
 /// reasons are cut to fit well inside it, the first one always kept.
 const MAX_DETAIL_BYTES: usize = 6 * 1024;
-const MAX_DETAIL_ROWS: usize = crate::monitor::ingest::MAX_REJECTIONS;
+const MAX_DETAIL_ROWS: usize = crate::monitor::checks::MAX_REJECTIONS;
 
 fn fit_details(mut r: Vec<Rejection>) -> Vec<Rejection> {
     let mut total = 0;
@@ -161,7 +163,7 @@ async fn drain<M, R, F, Fut>(
     apply: F,
 ) -> Result<pb::IntakeReceipt, Status>
 where
-    R: Named,
+    R: LengthLimited,
     F: Fn(Arc<Monitor>, String, Vec<R>) -> Fut,
     Fut: Future<Output = Result<BatchCounts, MonitorError>> + Send + 'static,
 {

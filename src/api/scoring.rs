@@ -10,8 +10,8 @@ use super::status::from_monitor;
 use crate::auth::{caller, Access};
 use crate::domain::board::history_keys;
 use crate::domain::Board;
-use crate::monitor::Asked;
 use crate::monitor::Monitor;
+use crate::monitor::RecomputeOptions;
 use crate::store::HistoryQuery;
 
 pub struct ScoringService {
@@ -42,7 +42,7 @@ impl pb::scoring_server::Scoring for ScoringService {
             .monitor
             .recompute(
                 &r.dataset,
-                Asked {
+                RecomputeOptions {
                     refit: r.refit,
                     refresh_ranks: r.refresh_ranks,
                 },

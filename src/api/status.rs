@@ -4,7 +4,7 @@ use prost::Message;
 use tonic::{Code, Status};
 
 use super::pb;
-use crate::monitor::ingest::{Fault, Rejection};
+use crate::monitor::checks::{Fault, Rejection};
 use crate::monitor::MonitorError;
 
 /// Status for a refused intake batch: the code of its first problem, a

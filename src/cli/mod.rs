@@ -1,9 +1,9 @@
 //! The `plumbline` command line. One file per command; each parses its
 //! arguments into a request and applies it.
 
-mod backfill;
 mod client;
 mod demo;
+mod ingest;
 mod loadtest;
 mod progress;
 mod render;
@@ -101,7 +101,7 @@ pub enum Command {
         #[command(flatten)]
         connection: client::Connection,
         #[command(flatten)]
-        args: backfill::IngestArgs,
+        args: ingest::IngestArgs,
     },
 }
 
@@ -132,7 +132,7 @@ pub fn run() -> ExitCode {
             dataset,
             window,
         } => client::overlap(&connection, &dataset, &window),
-        Command::Ingest { connection, args } => backfill::run(&connection, &args),
+        Command::Ingest { connection, args } => ingest::run(&connection, &args),
         Command::Score(args) => score::run(&args),
         Command::Simulate(args) => simulate::run(&args),
         Command::Serve(args) => serve::run(&args),

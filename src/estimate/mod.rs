@@ -5,8 +5,9 @@
 //! pseudo-outcome), [`estimators`] (per-unit contributions, one file each),
 //! [`sums`] and [`compare`] (mergeable aggregates, ranking, best set),
 //! [`policy`], [`targeting`], [`calibration`] and [`overlap`] (the other
-//! reports), and [`scoreboard`], which runs a whole pass; then
-//! [`sequential`] and [`watch`], the statistics behind the alerts.
+//! reports), and [`scoreboard`], which runs a whole pass, with
+//! [`incremental`], its twin for a window that grows; then [`sequential`]
+//! and [`watch`], the statistics behind the alerts.
 
 pub mod calibration;
 pub mod compare;
@@ -14,6 +15,7 @@ pub mod crossfit;
 pub mod data;
 pub mod error;
 pub mod estimators;
+pub mod incremental;
 pub mod learner;
 pub mod overlap;
 pub mod policy;

@@ -355,56 +355,6 @@ fn chunk_sums(
     sums
 }
 
-/// The aggregates of the constant-effect baseline, whose prediction (the
-/// window's ATE) changes as units join, kept as the aggregates of three
-/// fixed predictions 0, s and -s. Every estimator's contribution is a
-/// quadratic in the prediction (see [`Estimator`]), so by Lagrange
-/// interpolation through those nodes, with t = a / s,
-/// c(a) = c(0) (1 - t^2) + c(s) t (t + 1) / 2 + c(-s) t (t - 1) / 2
-/// for every unit, and a window's means and co-moments for prediction a are
-/// a linear map of the three columns' (exact up to rounding). The scale s is
-/// fixed when the aggregate starts (near the ATE then) so that t stays near
-/// one and the map does not amplify rounding.
-#[derive(Debug, Clone, Copy)]
-pub struct ConstantBasis {
-    pub scale: f64,
-}
-
-impl ConstantBasis {
-    pub fn new(ate: f64) -> Self {
-        Self {
-            scale: if ate.abs() > 1e-12 { ate.abs() } else { 1.0 },
-        }
-    }
-
-    /// The fixed predictions whose columns stand in for constant-effect:
-    /// the zero-effect column itself, then s and -s.
-    pub fn nodes(&self) -> [f64; 2] {
-        [self.scale, -self.scale]
-    }
-
-    /// Maps aggregates over the columns [0, s, -s, registered...] to the
-    /// scored columns [zero-effect, constant-effect at `ate`, registered...].
-    pub fn resolve(&self, sums: &ScoreSums, ate: f64) -> ScoreSums {
-        let m = sums.models();
-        let t = ate / self.scale;
-        let mut weights = Vec::with_capacity(m - 1);
-        let unit = |k: usize| {
-            let mut w = vec![0.0; m];
-            w[k] = 1.0;
-            w
-        };
-        weights.push(unit(0));
-        let mut constant = vec![0.0; m];
-        constant[0] = 1.0 - t * t;
-        constant[1] = t * (t + 1.0) / 2.0;
-        constant[2] = t * (t - 1.0) / 2.0;
-        weights.push(constant);
-        weights.extend((3..m).map(unit));
-        sums.linear_map(&weights)
-    }
-}
-
 /// One column's metrics that depend on the whole window's predictions at
 /// once: the targeting areas (ranks) and the calibration (the BLP's
 /// centering and the quintile groups). Unlike the estimators' sums they do

@@ -53,7 +53,7 @@ impl UnitView {
 /// it, or a difference of such squares). That lets a window's aggregates for
 /// the constant-effect baseline, whose prediction (the window's ATE) moves
 /// as units arrive, be kept as aggregates of three fixed predictions and
-/// re-weighted (see `estimate::scoreboard::ConstantBasis`); a test checks
+/// re-weighted (see `estimate::incremental::ConstantBasis`); a test checks
 /// the property for every entry of [`ALL`].
 pub trait Estimator: Sync + Send {
     /// Stable key used in JSON, the API and metric labels.

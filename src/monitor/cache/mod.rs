@@ -1,0 +1,359 @@
+//! The per-dataset in-memory columnar cache: every unit, outcome and
+//! prediction of a dataset, rebuilt from the store at start-up and appended
+//! on ingest. Units are indexed by their sequence number (arrival order).
+//!
+//! `chunked.rs` holds the shared chunked column types, `keys.rs` the unit
+//! key index, `columns.rs` the per-unit columns a recompute reads; this
+//! file the cache proper and each model's predictions.
+
+mod chunked;
+mod columns;
+mod keys;
+
+use std::collections::HashMap;
+
+pub use chunked::{ChunkedColumn, Stamps, CHUNK_ROWS};
+pub use columns::Columns;
+pub use keys::UnitKeys;
+
+use crate::domain::{OutcomeRecord, PredictionRecord, StoredModel, UnitRecord};
+
+/// One model's predictions, aligned with the units.
+#[derive(Debug, Clone)]
+pub struct ModelColumn {
+    pub model: StoredModel,
+    /// Predicted effect per unit; NaN marks "no prediction" (internal only:
+    /// never scored, never shown).
+    pub effects: ChunkedColumn<f64>,
+    /// When each prediction was made (0: not stamped), for the intake
+    /// ordering rules.
+    pub predicted_at_ms: Stamps,
+    pub count: u64,
+}
+
+impl ModelColumn {
+    pub fn new(model: StoredModel, units: usize) -> Self {
+        Self {
+            model,
+            effects: ChunkedColumn::filled(units, f64::NAN),
+            predicted_at_ms: Stamps::zeros(units),
+            count: 0,
+        }
+    }
+
+    pub fn has(&self, unit: usize) -> bool {
+        self.effects.get(unit).is_some_and(|v| !v.is_nan())
+    }
+
+    pub fn active(&self) -> bool {
+        self.model.retired_at_ms == 0
+    }
+}
+
+/// A point in the cache's units to go back to.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct UnitsMark {
+    units: usize,
+    cohorts: usize,
+}
+
+#[derive(Debug, Clone)]
+pub struct DatasetCache {
+    pub features_per_unit: usize,
+    /// Every unit's key; look units up with [`DatasetCache::unit_of`].
+    keys: UnitKeys,
+    pub columns: Columns,
+    pub cohort_names: Vec<String>,
+    pub cohort_index: HashMap<String, u32>,
+    /// When each unit was assigned (0: not stamped); read only to tell a
+    /// re-sent unit from a conflicting one.
+    pub assigned_at_ms: Stamps,
+    pub models: Vec<ModelColumn>,
+    pub model_index: HashMap<String, usize>,
+    /// Bumped whenever a unit that already has an outcome gets a prediction
+    /// (a historical backfill): scores kept from earlier recomputes no
+    /// longer hold then.
+    pub revision: u64,
+}
+
+impl DatasetCache {
+    pub fn new(features_per_unit: usize) -> Self {
+        Self {
+            features_per_unit,
+            keys: UnitKeys::default(),
+            columns: Columns::new(features_per_unit),
+            cohort_names: Vec::new(),
+            cohort_index: HashMap::new(),
+            assigned_at_ms: Stamps::default(),
+            models: Vec::new(),
+            model_index: HashMap::new(),
+            revision: 0,
+        }
+    }
+
+    pub fn units(&self) -> usize {
+        self.columns.units()
+    }
+
+    /// The unit with this key, if it has been sent.
+    pub fn unit_of(&self, key: &str) -> Option<usize> {
+        self.keys.unit_of(key)
+    }
+
+    pub fn outcomes(&self) -> usize {
+        self.columns.outcomes()
+    }
+
+    pub fn predictions(&self) -> u64 {
+        self.models.iter().map(|m| m.count).sum()
+    }
+
+    pub fn unit_features(&self, unit: usize) -> &[f64] {
+        self.columns.features.row(unit)
+    }
+
+    pub fn add_unit(&mut self, u: &UnitRecord) {
+        self.add_units(std::slice::from_ref(u));
+    }
+
+    /// Appends a batch of units, in order, without outcomes or
+    /// predictions. The columns every unit starts empty in (outcome,
+    /// model predictions and their stamps) are extended once per batch.
+    pub fn add_units(&mut self, units: &[UnitRecord]) {
+        let mut last: Option<(&str, u32)> = None;
+        for u in units {
+            debug_assert_eq!(u.seq as usize, self.units());
+            self.keys.push(&u.key);
+            // Units of a batch mostly share a cohort; look it up only when
+            // it changes.
+            let cohort = match last {
+                Some((name, c)) if name == u.cohort => c,
+                _ => match self.cohort_index.get(&u.cohort) {
+                    Some(&c) => c,
+                    None => {
+                        let c = self.cohort_names.len() as u32;
+                        self.cohort_names.push(u.cohort.clone());
+                        self.cohort_index.insert(u.cohort.clone(), c);
+                        c
+                    }
+                },
+            };
+            last = Some((&u.cohort, cohort));
+            self.columns
+                .push_unit_inputs(&u.features, u.treatment, u.propensity, cohort);
+            self.assigned_at_ms.push(u.assigned_at_ms);
+        }
+        self.columns.await_outcomes();
+        for m in &mut self.models {
+            m.effects.extend_filled(units.len(), f64::NAN);
+            m.predicted_at_ms.extend_zeros(units.len());
+        }
+    }
+
+    /// Where the units end now; [`DatasetCache::truncate_units`] goes back
+    /// to it.
+    pub fn units_mark(&self) -> UnitsMark {
+        UnitsMark {
+            units: self.units(),
+            cohorts: self.cohort_names.len(),
+        }
+    }
+
+    /// Forgets every unit added since `mark` (and the cohorts they
+    /// introduced): intake adds a batch while the store writes it, and
+    /// undoes the addition if the write fails. The units must have no
+    /// outcomes or predictions yet, which holds while the dataset's lock is
+    /// held from the mark on.
+    pub fn truncate_units(&mut self, mark: UnitsMark) {
+        for name in self.cohort_names.drain(mark.cohorts..) {
+            self.cohort_index.remove(&name);
+        }
+        self.keys.truncate(mark.units);
+        self.columns.truncate_units(mark.units);
+        self.assigned_at_ms.truncate(mark.units);
+        for m in &mut self.models {
+            m.effects.truncate(mark.units);
+            m.predicted_at_ms.truncate(mark.units);
+        }
+    }
+
+    pub fn add_outcome(&mut self, o: &OutcomeRecord) {
+        debug_assert_eq!(o.seq, self.next_outcome_seq());
+        self.columns
+            .add_outcome(o.unit_seq as usize, o.value, o.observed_at_ms);
+    }
+
+    pub fn add_model(&mut self, model: StoredModel) {
+        self.model_index
+            .insert(model.name.clone(), self.models.len());
+        let units = self.units();
+        self.models.push(ModelColumn::new(model, units));
+    }
+
+    pub fn model_by_id(&self, id: i64) -> Option<usize> {
+        self.models.iter().position(|m| m.model.id == id)
+    }
+
+    pub fn add_prediction(&mut self, model: usize, p: &PredictionRecord) {
+        let col = &mut self.models[model];
+        let u = p.unit_seq as usize;
+        if col.effects[u].is_nan() {
+            col.count += 1;
+        }
+        col.effects[u] = p.effect;
+        col.predicted_at_ms.set(u, p.predicted_at_ms);
+        if self.columns.outcome_of(u).is_some() {
+            self.revision += 1;
+        }
+    }
+
+    /// Next outcome sequence number.
+    pub fn next_outcome_seq(&self) -> i64 {
+        self.outcomes() as i64
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn unit(seq: usize, cohort: &str) -> UnitRecord {
+        UnitRecord {
+            seq: seq as i64,
+            key: format!("unit-{seq}"),
+            features: vec![seq as f64, -(seq as f64)],
+            treatment: (seq % 2) as u8,
+            propensity: (seq % 3 == 0).then_some(0.25),
+            cohort: cohort.into(),
+            assigned_at_ms: if seq % 5 == 0 { 1_000 + seq as i64 } else { 0 },
+        }
+    }
+
+    fn model(id: i64) -> StoredModel {
+        StoredModel {
+            id,
+            dataset_id: 1,
+            name: format!("m{id}"),
+            version: "1".into(),
+            description: String::new(),
+            registered_at_ms: 0,
+            retired_at_ms: 0,
+        }
+    }
+
+    #[test]
+    fn truncating_units_takes_back_a_batch_and_leaves_held_copies_alone() {
+        let mut cache = DatasetCache::new(2);
+        for id in 0..2 {
+            cache.add_model(model(id));
+        }
+        let kept = CHUNK_ROWS + 10;
+        for u in 0..kept {
+            cache.add_unit(&unit(u, "spring"));
+        }
+        let mark = cache.units_mark();
+        let batch: Vec<UnitRecord> = (kept..kept + 50)
+            .map(|u| unit(u, if u % 2 == 0 { "spring" } else { "summer" }))
+            .collect();
+        cache.add_units(&batch);
+        let held = cache.columns.clone();
+        cache.truncate_units(mark);
+
+        assert_eq!(cache.units(), kept);
+        assert_eq!(cache.cohort_names, vec!["spring".to_string()]);
+        assert!(!cache.cohort_index.contains_key("summer"));
+        assert_eq!(cache.unit_of("unit-0"), Some(0));
+        assert_eq!(cache.unit_of(&format!("unit-{}", kept - 1)), Some(kept - 1));
+        assert_eq!(cache.unit_of(&format!("unit-{kept}")), None);
+        assert_eq!(cache.assigned_at_ms.len(), kept);
+        for m in &cache.models {
+            assert_eq!((m.effects.len(), m.predicted_at_ms.len()), (kept, kept));
+        }
+        // The copy a recompute held still has the whole batch.
+        assert_eq!(held.units(), kept + 50);
+        assert_eq!(
+            held.features.row(kept + 49),
+            &[(kept + 49) as f64, -((kept + 49) as f64)]
+        );
+
+        // The same batch goes in again as if for the first time.
+        for u in kept..kept + 50 {
+            cache.add_unit(&unit(u, "summer"));
+        }
+        assert_eq!(cache.units(), kept + 50);
+        assert_eq!(cache.unit_of(&format!("unit-{}", kept + 7)), Some(kept + 7));
+        assert_eq!(
+            cache.unit_features(kept + 7),
+            &[(kept + 7) as f64, -((kept + 7) as f64)]
+        );
+        assert_eq!(
+            cache.columns.propensity_of(kept + 1),
+            unit(kept + 1, "").propensity
+        );
+        let stamped = kept + (5 - kept % 5) % 5;
+        assert_eq!(cache.assigned_at_ms[stamped], 1_000 + stamped as i64);
+        assert_eq!(cache.assigned_at_ms[stamped + 1], 0);
+        assert_eq!(
+            cache.cohort_names,
+            vec!["spring".to_string(), "summer".to_string()]
+        );
+    }
+
+    #[test]
+    fn a_batch_of_units_lands_as_the_same_units_one_at_a_time() {
+        let (mut batched, mut single) = (DatasetCache::new(2), DatasetCache::new(2));
+        for cache in [&mut batched, &mut single] {
+            cache.add_model(model(0));
+        }
+        // Batches that end mid-chunk, cross a chunk boundary and fill
+        // several chunks; cohorts change within a batch and come back.
+        let mut next = 0;
+        for size in [3, CHUNK_ROWS - 5, 10, 2 * CHUNK_ROWS + 1] {
+            let rows: Vec<UnitRecord> = (next..next + size)
+                .map(|u| unit(u, ["spring", "summer", "spring"][(u / 1000) % 3]))
+                .collect();
+            batched.add_units(&rows);
+            for r in &rows {
+                single.add_unit(r);
+            }
+            next += size;
+            // A stamp written inside the last chunk must not leak into the
+            // rows the next batch appends after it.
+            for cache in [&mut batched, &mut single] {
+                cache.models[0].predicted_at_ms.set(next - 1, 77);
+            }
+        }
+        let units = next;
+        assert_eq!((batched.units(), single.units()), (units, units));
+        assert_eq!(batched.cohort_names, single.cohort_names);
+        assert_eq!(batched.cohort_names, vec!["spring", "summer"]);
+        let (b, s) = (&batched.columns, &single.columns);
+        for u in 0..units {
+            assert_eq!(batched.unit_of(&format!("unit-{u}")), Some(u));
+            assert_eq!(b.features.row(u), s.features.row(u), "unit {u}");
+            assert_eq!(
+                (
+                    b.treatment[u],
+                    b.cohort[u],
+                    b.propensity_of(u),
+                    b.outcome_of(u)
+                ),
+                (s.treatment[u], s.cohort[u], s.propensity_of(u), None),
+                "unit {u}"
+            );
+            assert_eq!(b.observed_at_ms[u], 0);
+            assert_eq!(batched.assigned_at_ms[u], single.assigned_at_ms[u]);
+            let (bm, sm) = (&batched.models[0], &single.models[0]);
+            assert!(!bm.has(u));
+            assert_eq!(bm.predicted_at_ms[u], sm.predicted_at_ms[u], "unit {u}");
+        }
+        assert_eq!(
+            batched.models[0].effects.chunks().len(),
+            units.div_ceil(CHUNK_ROWS)
+        );
+        // Outcomes land on the batched units as on any others.
+        batched.columns.add_outcome(units - 1, 2.5, 9);
+        assert_eq!(batched.columns.outcome_of(units - 1), Some(2.5));
+        assert_eq!(batched.columns.observed_at_ms[units - 1], 9);
+    }
+}

@@ -1,0 +1,163 @@
+//! The Prometheus export of a recompute's boards and of the stream watch.
+
+use std::collections::BTreeMap;
+
+use super::alerts;
+use super::recompute::NuisanceState;
+use super::{Boards, Monitor};
+use crate::estimate::watch::Watch;
+use crate::metrics::{
+    ArmLabels, ComponentLabels, DatasetLabels, ModelLabels, ScoreLabels, WindowLabels,
+};
+
+impl Monitor {
+    pub(super) fn export_boards(
+        &self,
+        dataset: &str,
+        boards: &Boards,
+        previous: &BTreeMap<String, String>,
+        n: &NuisanceState,
+    ) {
+        let m = &self.metrics;
+        for window in ["cumulative", "recent"] {
+            let Some(b) = boards.get(window) else {
+                continue;
+            };
+            let wl = WindowLabels {
+                dataset: dataset.into(),
+                window: window.into(),
+            };
+            // Forget the previous leader's label so exactly one series is 1.
+            if let Some(old) = previous.get(window) {
+                m.leader_info.remove(&ModelLabels {
+                    dataset: dataset.into(),
+                    model: old.clone(),
+                    window: window.into(),
+                });
+            }
+            if !b.leader.is_empty() {
+                m.leader_info
+                    .get_or_create(&ModelLabels {
+                        dataset: dataset.into(),
+                        model: b.leader.clone(),
+                        window: window.into(),
+                    })
+                    .set(1.0);
+            }
+            m.leader_uncertain
+                .get_or_create(&wl)
+                .set(if b.best_set.len() > 1 { 1.0 } else { 0.0 });
+            m.no_heterogeneity
+                .get_or_create(&wl)
+                .set(if b.no_detectable_heterogeneity {
+                    1.0
+                } else {
+                    0.0
+                });
+            if let Some(o) = &b.overlap {
+                m.overlap_degraded
+                    .get_or_create(&wl)
+                    .set(if o.degraded { 1.0 } else { 0.0 });
+                m.overlap_extreme_share
+                    .get_or_create(&wl)
+                    .set(o.extreme_share);
+                for (arm, v) in [
+                    ("treated", o.treated_effective_share),
+                    ("control", o.control_effective_share),
+                ] {
+                    m.overlap_effective_share
+                        .get_or_create(&ArmLabels {
+                            dataset: dataset.into(),
+                            window: window.into(),
+                            arm: arm.into(),
+                        })
+                        .set(v);
+                }
+            }
+            for model in &b.models {
+                let ml = ModelLabels {
+                    dataset: dataset.into(),
+                    model: model.name.clone(),
+                    window: window.into(),
+                };
+                m.model_rank.get_or_create(&ml).set(f64::from(model.rank));
+                m.model_p_best.get_or_create(&ml).set(model.p_best);
+                for (estimator, e) in model.history_values() {
+                    let sl = ScoreLabels {
+                        dataset: dataset.into(),
+                        model: model.name.clone(),
+                        estimator,
+                        window: window.into(),
+                    };
+                    m.model_score.get_or_create(&sl).set(e.estimate);
+                    m.model_score_se.get_or_create(&sl).set(e.se);
+                }
+            }
+        }
+        let r = &n.report;
+        let mut losses = vec![
+            ("outcome_control", r.outcome_control.oof_loss),
+            ("outcome_treated", r.outcome_treated.oof_loss),
+        ];
+        if let Some(p) = &r.propensity.fit {
+            losses.push(("propensity", p.oof_loss));
+        }
+        for (component, loss) in losses {
+            m.nuisance_loss
+                .get_or_create(&ComponentLabels {
+                    dataset: dataset.into(),
+                    component: component.into(),
+                })
+                .set(loss);
+        }
+    }
+
+    /// The watch's states under `window="stream"`: the series the shipped
+    /// alert rules fire from (the board windows' series are point
+    /// estimates of one look, for dashboards).
+    pub(super) fn export_watch(&self, dataset: &str, previous: Option<String>, watch: &Watch) {
+        let m = &self.metrics;
+        let state = watch.state();
+        let wl = WindowLabels {
+            dataset: dataset.into(),
+            window: alerts::STREAM.into(),
+        };
+        let leader_labels = |model: String| ModelLabels {
+            dataset: dataset.into(),
+            model,
+            window: alerts::STREAM.into(),
+        };
+        if let Some(old) = previous.filter(|old| state.leader.as_ref() != Some(old)) {
+            m.leader_info.remove(&leader_labels(old));
+        }
+        if let Some(leader) = &state.leader {
+            m.leader_info
+                .get_or_create(&leader_labels(leader.clone()))
+                .set(1.0);
+        }
+        let _ = m.leader_changes.get_or_create(&wl);
+        let flag = |b: bool| if b { 1.0 } else { 0.0 };
+        m.leader_uncertain
+            .get_or_create(&wl)
+            .set(flag(state.leader.is_some() && !state.leader_settled));
+        m.no_heterogeneity.get_or_create(&wl).set(flag(
+            state.heterogeneity != crate::estimate::watch::Heterogeneity::Detected,
+        ));
+        m.overlap_degraded
+            .get_or_create(&wl)
+            .set(flag(state.overlap_degraded));
+        m.watched_units
+            .get_or_create(&DatasetLabels {
+                dataset: dataset.into(),
+            })
+            .set(state.units as f64);
+        for (quantity, smd) in &state.drift {
+            m.drift
+                .get_or_create(&crate::metrics::QuantityLabels {
+                    dataset: dataset.into(),
+                    quantity: quantity.clone(),
+                })
+                .set(*smd);
+        }
+    }
+}

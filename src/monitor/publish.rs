@@ -1,0 +1,263 @@
+//! A recompute handed off and published: the job runs on the blocking
+//! pool, its nuisance fit and snapshot are stored, its boards installed,
+//! and the watch's events raised.
+
+use std::collections::BTreeMap;
+use std::sync::atomic::Ordering;
+use std::sync::Arc;
+use std::time::Instant;
+
+use tracing::{info, info_span, warn, Instrument};
+
+use super::alerts::{self, Raised};
+use super::board;
+use super::recompute::RecomputeOptions;
+use super::{now_ms, DatasetHandle, Monitor, MonitorError, MonitorResult};
+use crate::domain::ScoreRow;
+use crate::metrics::{DatasetLabels, KindLabels, WindowLabels};
+use crate::store::NewSnapshot;
+
+/// What a recompute did.
+#[derive(Debug, Clone, Copy)]
+pub struct RecomputeSummary {
+    pub snapshot_id: u64,
+    pub refitted: bool,
+    pub units: u64,
+    pub millis: f64,
+}
+
+/// Hands the memory a refit freed back to the operating system. glibc
+/// keeps freed heap memory for reuse, and a refit frees its whole working
+/// set (fold data, per-unit vectors) at once: without this the process
+/// holds its refit peak until the next one, and the recomputes in between
+/// add their working sets on top of it.
+fn release_freed_memory() {
+    #[cfg(all(target_os = "linux", target_env = "gnu"))]
+    // SAFETY: malloc_trim only returns free heap pages to the kernel.
+    unsafe {
+        libc::malloc_trim(0);
+    }
+}
+
+impl Monitor {
+    /// Recomputes a dataset now, with a refit or a rank refresh if
+    /// `options` ask for one.
+    pub async fn recompute(
+        &self,
+        dataset: &str,
+        options: RecomputeOptions,
+    ) -> MonitorResult<RecomputeSummary> {
+        let h = self.handle(dataset)?;
+        let span = info_span!(
+            "recompute",
+            dataset = %dataset,
+            refit_requested = options.refit,
+            rank_refresh_requested = options.refresh_ranks
+        );
+        let result = self.recompute_handle(&h, options).instrument(span).await;
+        if let Err(e) = &result {
+            warn!(dataset = %dataset, error = %e, "recompute failed");
+            self.metrics
+                .recompute_failures
+                .get_or_create(&DatasetLabels {
+                    dataset: dataset.into(),
+                })
+                .inc();
+        }
+        result
+    }
+
+    async fn recompute_handle(
+        &self,
+        h: &Arc<DatasetHandle>,
+        options: RecomputeOptions,
+    ) -> MonitorResult<RecomputeSummary> {
+        let _one_at_a_time = h.recompute.lock().await;
+        let started = Instant::now();
+        let now = now_ms();
+        let (input, outcomes_in_input) = {
+            let mut st = h.state.lock().await;
+            st.pending_outcomes = 0;
+            let outcomes = st.cache.outcomes();
+            (st.recompute_input(now), outcomes)
+        };
+        if outcomes_in_input == 0 {
+            return Err(MonitorError::FailedPrecondition(format!(
+                "dataset {:?} has no outcomes yet",
+                h.name
+            )));
+        }
+        let spec = input.spec.clone();
+        let computed = tokio::task::spawn_blocking(move || {
+            let computed = input.compute(options);
+            if computed.as_ref().is_ok_and(|c| c.refit.is_some()) {
+                release_freed_memory();
+            }
+            computed
+        })
+        .await
+        .map_err(|e| MonitorError::Internal(e.to_string()))??;
+        let mut nuisance = computed.nuisance;
+        if computed.refit.is_some() {
+            let report = serde_json::to_string(&nuisance.report).unwrap_or_default();
+            nuisance.fit_id = self
+                .store
+                .insert_fit(
+                    h.id,
+                    now,
+                    nuisance.fit_units as i64,
+                    nuisance.last_outcome_seq,
+                    spec.seed as i64,
+                    &report,
+                )
+                .await?;
+            nuisance.fitted_at_ms = now;
+        }
+        let snapshot_id = self.next_snapshot.fetch_add(1, Ordering::SeqCst);
+        let mut boards = BTreeMap::new();
+        let mut changed = Vec::new();
+        let mut scores = Vec::new();
+        // A window the recompute did not change keeps its published board
+        // (and snapshot id), and the snapshot does not store it again:
+        // with a cohort window per week or month, storing every one would
+        // make each recompute cost what the history's cohorts cost.
+        let published = h.boards();
+        for w in &computed.windows {
+            if let Some(kept) = w.reused.then(|| published.get(&w.key)).flatten() {
+                boards.insert(w.key.clone(), kept.clone());
+                continue;
+            }
+            let parts = board::BoardParts {
+                dataset: &h.name,
+                window: w.window.clone(),
+                snapshot_id: snapshot_id as u64,
+                computed_at_ms: now,
+                incomplete: w.incomplete.clone(),
+                max_extreme_share: spec.overlap_max_extreme_share,
+                min_effective_share: spec.overlap_min_effective_share,
+            };
+            let mut b = match &w.board {
+                Ok(b) => board::scoreboard(parts, b),
+                Err(state) => board::degenerate(parts, w.units as u64, state.clone()),
+            };
+            b.alerts = Some(board::alert_view(&computed.watch));
+            for m in &b.models {
+                for (estimator, e) in m.history_values() {
+                    scores.push(ScoreRow {
+                        model: m.name.clone(),
+                        window: w.key.clone(),
+                        estimate: e.estimate,
+                        se: e.se,
+                        rank: i64::from(m.rank),
+                        units: if matches!(estimator.as_str(), "autoc" | "qini") {
+                            b.rank_metrics_units as i64
+                        } else {
+                            b.units as i64
+                        },
+                        estimator,
+                    });
+                }
+            }
+            changed.push(b.clone());
+            boards.insert(w.key.clone(), b);
+        }
+        let millis = started.elapsed().as_secs_f64() * 1000.0;
+        let watch_json = serde_json::to_string(&computed.watch)
+            .map_err(|e| MonitorError::Internal(format!("stream watch: {e}")))?;
+        self.store
+            .insert_snapshot(&NewSnapshot {
+                id: snapshot_id,
+                dataset_id: h.id,
+                computed_at_ms: now,
+                fit_id: Some(nuisance.fit_id),
+                refitted: computed.refit.is_some(),
+                millis,
+                boards: &changed,
+                scores: &scores,
+                watch: &watch_json,
+            })
+            .await?;
+
+        // Install, then alert.
+        let cumulative_units = boards.get("cumulative").map(|b| b.units).unwrap_or(0);
+        let (raised, previous, watched_leader) = {
+            let mut st = h.state.lock().await;
+            let watched_leader = st.watch.state().leader;
+            let previous: BTreeMap<String, String> = h
+                .boards()
+                .iter()
+                .map(|(k, b)| (k.clone(), b.leader.clone()))
+                .collect();
+            st.nuisance = Some(nuisance.clone());
+            st.watch = computed.watch.clone();
+            let raised: Vec<Raised> = computed
+                .signals
+                .iter()
+                .filter_map(|s| alerts::event(&h.name, s))
+                .collect();
+            h.publish(boards.clone());
+            (raised, previous, watched_leader)
+        };
+        // The watch looked before any refit: its events come first.
+        for r in raised {
+            if r.kind == "leader_changed" {
+                self.metrics
+                    .leader_changes
+                    .get_or_create(&WindowLabels {
+                        dataset: h.name.clone(),
+                        window: alerts::STREAM.into(),
+                    })
+                    .inc();
+            }
+            self.raise(h, snapshot_id as u64, r).await;
+        }
+        if let Some(reason) = computed.refit {
+            let report = &nuisance.report;
+            self.raise(
+                h,
+                snapshot_id as u64,
+                Raised {
+                    kind: "nuisance_refit",
+                    summary: format!(
+                        "{}: nuisance models refitted on {} units ({reason}); propensity AUC {:.3}",
+                        h.name, nuisance.fit_units, report.propensity.auc
+                    ),
+                    details: serde_json::json!({
+                        "reason": reason.code(),
+                        "units": nuisance.fit_units,
+                        "report": report,
+                    }),
+                },
+            )
+            .await;
+        }
+        let seconds = started.elapsed().as_secs_f64();
+        self.metrics
+            .recompute_seconds
+            .get_or_create(&KindLabels {
+                dataset: h.name.clone(),
+                kind: if computed.refit.is_some() {
+                    "refit"
+                } else {
+                    "incremental"
+                }
+                .into(),
+            })
+            .observe(seconds);
+        self.export_boards(&h.name, &boards, &previous, &nuisance);
+        self.export_watch(&h.name, watched_leader, &computed.watch);
+        info!(
+            snapshot = snapshot_id,
+            refitted = computed.refit.is_some(),
+            newly_scored = computed.newly_scored,
+            millis = seconds * 1000.0,
+            "recompute done"
+        );
+        Ok(RecomputeSummary {
+            snapshot_id: snapshot_id as u64,
+            refitted: computed.refit.is_some(),
+            units: cumulative_units,
+            millis: seconds * 1000.0,
+        })
+    }
+}

@@ -1,0 +1,84 @@
+//! What a recompute keeps for the next one under the same nuisance fit.
+
+use std::collections::HashMap;
+
+use super::WindowResult;
+use crate::estimate::incremental::GrowingWindow;
+use crate::monitor::cache::Columns;
+
+/// What a recompute keeps for the next one under the same nuisance fit.
+/// Valid only while the cache revision (bumped when a stored unit with an
+/// outcome gets a prediction) and the active models are the ones it was
+/// computed under; a refit starts a new one.
+#[derive(Clone, Default)]
+pub struct ScoringMemo {
+    pub(super) revision: u64,
+    pub(super) models: Vec<String>,
+    /// Cohort windows: the number of units with outcomes each was scored on
+    /// (outcomes are only ever added, so an equal count is an equal set) and
+    /// its result.
+    pub(super) cohorts: HashMap<String, (usize, WindowResult)>,
+    pub(super) cumulative: Option<CumulativeMemo>,
+    /// Kept across refits and revisions: it depends only on the arrival
+    /// order of outcomes, which only grows.
+    pub(super) cohort_index: CohortIndex,
+}
+
+/// Each cohort's units with outcomes, in unit order, extended as outcomes
+/// arrive, so that a recompute finds the cohorts that changed (and their
+/// units) without a pass over the history.
+#[derive(Clone, Default)]
+pub(super) struct CohortIndex {
+    /// Outcomes folded in: a prefix of the arrival order.
+    outcomes: usize,
+    /// By cohort (index into the input's cohort names).
+    pub(super) units: Vec<Vec<u32>>,
+}
+
+impl CohortIndex {
+    pub(super) fn update(&mut self, columns: &Columns, cohorts: usize) {
+        let outcomes = columns.outcomes();
+        if self.outcomes > outcomes {
+            *self = Self::default();
+        }
+        if self.units.len() < cohorts {
+            self.units.resize(cohorts, Vec::new());
+        }
+        let mut unsorted = Vec::new();
+        for u in columns.arrived(self.outcomes..outcomes) {
+            let c = columns.cohort[u] as usize;
+            if c >= self.units.len() {
+                self.units.resize(c + 1, Vec::new());
+            }
+            let units = &mut self.units[c];
+            // An outcome may arrive late for a unit that came before ones
+            // already indexed.
+            if units.last().is_some_and(|&last| last as usize > u) {
+                unsorted.push(c);
+            }
+            units.push(u as u32);
+        }
+        unsorted.sort_unstable();
+        unsorted.dedup();
+        for c in unsorted {
+            self.units[c].sort_unstable();
+        }
+        self.outcomes = outcomes;
+    }
+}
+
+/// The cumulative window: which units and models its mergeable parts
+/// cover, and the parts themselves.
+#[derive(Clone)]
+pub(super) struct CumulativeMemo {
+    /// Units of `outcome_order` folded in (a prefix of it).
+    pub(super) outcomes: usize,
+    /// Per active model: how many folded units it predicts.
+    pub(super) covered: Vec<usize>,
+    /// The ranked models (indices into the input's active models).
+    pub(super) ranked: Vec<usize>,
+    /// The scored units (covered by every ranked model), in folding order.
+    pub(super) units: Vec<u32>,
+    /// The scoreboard's parts over `units` and the `ranked` models.
+    pub(super) window: GrowingWindow,
+}

@@ -1,0 +1,239 @@
+//! The nuisance values a recompute scores with: whether to refit, the
+//! cross-fitted refit itself, and the current fold models applied to the
+//! units that arrived since the last recompute.
+
+use std::collections::HashMap;
+use std::sync::Arc;
+
+use super::{settings, RecomputeInput, ScoringMemo};
+use crate::estimate::crossfit::{fit_nuisance_models_on, FittedNuisance, NuisanceReport};
+use crate::estimate::EstimateError;
+use crate::monitor::cache::ChunkedColumn;
+
+/// Nuisance state of a dataset between recomputes.
+#[derive(Clone)]
+pub struct NuisanceState {
+    pub fitted: Arc<FittedNuisance>,
+    pub report: NuisanceReport,
+    pub fit_id: i64,
+    /// The fit used the units whose outcome sequence is at most this.
+    pub last_outcome_seq: i64,
+    pub fit_units: usize,
+    pub fitted_at_ms: i64,
+    /// Whether the fit used logged propensities.
+    pub logged: bool,
+    /// Per unit (by sequence): propensity (clipped), mu0, mu1; NaN where the
+    /// unit has not been scored yet. Chunked like the cache's columns, so
+    /// scoring new units copies only the chunks they fall in.
+    pub values: ChunkedColumn<[f64; 3]>,
+    /// Every unit among the first this many outcomes to arrive has values.
+    pub scored_outcomes: usize,
+    /// What the last recompute under this fit keeps for the next one.
+    pub memo: Arc<ScoringMemo>,
+}
+
+/// Nuisance values fixed for the units the watch took this recompute, by
+/// unit, from the fold models in place before any refit.
+pub(super) type Fixed = HashMap<usize, [f64; 3]>;
+
+/// Why the nuisance models are refitted.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub enum RefitReason {
+    Requested,
+    FirstFit,
+    Growth,
+    Schedule,
+    PropensitySource,
+    Misfit,
+}
+
+impl RefitReason {
+    /// A stable name for machine readers (event details).
+    pub fn code(self) -> &'static str {
+        match self {
+            Self::Requested => "requested",
+            Self::FirstFit => "first_fit",
+            Self::Growth => "growth",
+            Self::Schedule => "schedule",
+            Self::PropensitySource => "propensity_source",
+            Self::Misfit => "misfit",
+        }
+    }
+}
+
+impl std::fmt::Display for RefitReason {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.write_str(match self {
+            Self::Requested => "asked for",
+            Self::FirstFit => "first fit",
+            Self::Growth => "outcomes grew past recompute.refit_growth",
+            Self::Schedule => "recompute.refit_every_seconds elapsed",
+            Self::PropensitySource => {
+                "units arrived without a logged propensity; fitting one instead"
+            }
+            Self::Misfit => "arriving units no longer fit the nuisance models",
+        })
+    }
+}
+
+impl RecomputeInput {
+    /// Reproduces a recorded fit: the units whose outcome sequence is at most
+    /// `last_outcome_seq`, in unit order, with the dataset's seed.
+    pub fn reproduce_fit(&self, last_outcome_seq: i64) -> Result<NuisanceState, EstimateError> {
+        let outcomes = usize::try_from(last_outcome_seq.saturating_add(1))
+            .unwrap_or(0)
+            .min(self.columns.outcomes());
+        self.refit(&self.columns.arrived(0..outcomes))
+            .map(|(s, _)| s)
+    }
+
+    pub(super) fn all_logged(&self, units: &[usize]) -> bool {
+        !units.is_empty()
+            && units
+                .iter()
+                .all(|&u| self.columns.propensity_of(u).is_some())
+    }
+
+    /// Full cross-fitted refit on `scorable`: the units of the first
+    /// outcomes to arrive (all of them, or those of a recorded fit), in unit
+    /// order; so the last outcome sequence number the fit used is their
+    /// count minus one.
+    pub(super) fn refit(
+        &self,
+        scorable: &[usize],
+    ) -> Result<(NuisanceState, usize), EstimateError> {
+        let logged = self.all_logged(scorable);
+        let table = self.table(scorable, logged)?;
+        let (values, report, fitted) = fit_nuisance_models_on(
+            &table,
+            self.features(scorable),
+            &settings(&self.spec).nuisance,
+        )?;
+        let mut all = ChunkedColumn::filled(self.columns.units(), [f64::NAN; 3]);
+        for (i, &u) in scorable.iter().enumerate() {
+            all[u] = [values.propensity[i], values.mu0[i], values.mu1[i]];
+        }
+        let last_outcome_seq = scorable.len() as i64 - 1;
+        Ok((
+            NuisanceState {
+                fitted: Arc::new(fitted),
+                report,
+                fit_id: 0,
+                last_outcome_seq,
+                fit_units: scorable.len(),
+                fitted_at_ms: self.now_ms,
+                logged,
+                values: all,
+                scored_outcomes: scorable.len(),
+                memo: Arc::default(),
+            },
+            scorable.len(),
+        ))
+    }
+
+    /// Scores the units whose outcomes arrived since `state` last scored
+    /// any, with the current fold models. Touches only those units.
+    /// `arrivals`: [`RecomputeInput::arrivals_since`] of `state`.
+    pub(super) fn extend(
+        &self,
+        state: &NuisanceState,
+        arrivals: Vec<usize>,
+        fixed: &Fixed,
+    ) -> Result<(NuisanceState, usize), EstimateError> {
+        let outcomes = self.columns.outcomes();
+        let mut values = state.values.clone();
+        while values.len() < self.columns.units() {
+            values.push([f64::NAN; 3]);
+        }
+        let mut new: Vec<usize> = arrivals
+            .into_iter()
+            .filter(|&u| values[u][0].is_nan())
+            .collect();
+        let scored = new.len();
+        // The watch already applied these fold models to its units.
+        new.retain(|u| match fixed.get(u) {
+            Some(v) => {
+                values[*u] = *v;
+                false
+            }
+            None => true,
+        });
+        if !new.is_empty() {
+            let x = self.rows(&new);
+            let logged: Option<Vec<f64>> = if state.logged {
+                new.iter().map(|&u| self.columns.propensity_of(u)).collect()
+            } else {
+                None
+            };
+            let (n, _) = state.fitted.predict(x.view(), logged.as_deref())?;
+            for (i, &u) in new.iter().enumerate() {
+                values[u] = [n.propensity[i], n.mu0[i], n.mu1[i]];
+            }
+        }
+        let mut next = state.clone();
+        next.values = values;
+        next.scored_outcomes = outcomes;
+        Ok((next, scored))
+    }
+
+    /// The units whose outcomes arrived since `state` last scored any, in
+    /// unit order.
+    pub(super) fn arrivals_since(&self, state: &NuisanceState) -> Vec<usize> {
+        let outcomes = self.columns.outcomes();
+        self.columns
+            .arrived(state.scored_outcomes.min(outcomes)..outcomes)
+    }
+
+    /// Decides whether to refit, then brings nuisance values up to date.
+    /// Without a refit this reads only the outcomes that arrived since the
+    /// last recompute.
+    pub fn nuisance(
+        &self,
+        requested: bool,
+        misfit: bool,
+        fixed: &Fixed,
+    ) -> Result<(NuisanceState, Option<RefitReason>, usize), EstimateError> {
+        let outcomes = self.columns.outcomes();
+        let arrivals = self
+            .nuisance
+            .as_ref()
+            .map(|s| self.arrivals_since(s))
+            .unwrap_or_default();
+        let reason = match &self.nuisance {
+            _ if requested => Some(RefitReason::Requested),
+            None => Some(RefitReason::FirstFit),
+            Some(_) if misfit => Some(RefitReason::Misfit),
+            Some(s)
+                if s.logged
+                    && arrivals
+                        .iter()
+                        .any(|&u| self.columns.propensity_of(u).is_none()) =>
+            {
+                Some(RefitReason::PropensitySource)
+            }
+            Some(s)
+                if (outcomes as f64) >= (s.fit_units as f64) * (1.0 + self.spec.refit_growth) =>
+            {
+                Some(RefitReason::Growth)
+            }
+            Some(s)
+                if self.spec.refit_every_seconds > 0
+                    && self.now_ms - s.fitted_at_ms
+                        >= i64::from(self.spec.refit_every_seconds) * 1000 =>
+            {
+                Some(RefitReason::Schedule)
+            }
+            Some(_) => None,
+        };
+        match (reason, &self.nuisance) {
+            (None, Some(state)) => {
+                let (s, n) = self.extend(state, arrivals, fixed)?;
+                Ok((s, None, n))
+            }
+            (reason, _) => {
+                let (s, n) = self.refit(&self.scorable())?;
+                Ok((s, reason.or(Some(RefitReason::Requested)), n))
+            }
+        }
+    }
+}

@@ -1,0 +1,242 @@
+use super::*;
+use crate::estimate::watch::WatchSettings;
+use crate::estimate::OutcomeKind;
+use crate::monitor::cache::{ChunkedColumn, Columns};
+use crate::synth::{candidates, draw, effect_moments, Design};
+
+const D: usize = 4;
+
+/// An input over the first `units` of a fixed draw, in cohorts of 1,000,
+/// every unit with an outcome and a prediction from three models.
+fn input(units: usize, nuisance: Option<NuisanceState>) -> RecomputeInput {
+    let data = draw(Design::NieWagerB, 5000, D, 1.0, 17);
+    let (_, var_tau) = effect_moments(Design::NieWagerB, 20_000, 3);
+    let models = candidates(&data.tau, var_tau, 3, 5);
+    let spec = DatasetSpec {
+        name: "t".into(),
+        feature_names: (1..=D).map(|j| format!("x{j}")).collect(),
+        outcome_kind: OutcomeKind::Continuous,
+        treatment_cost: 0.0,
+        folds: 0,
+        overlap_eps: 0.0,
+        overlap_max_extreme_share: 0.0,
+        overlap_min_effective_share: 0.0,
+        recent_last_outcomes: 0,
+        recent_last_days: 0,
+        recompute_every_outcomes: 0,
+        recompute_every_seconds: 0,
+        refit_growth: 10.0,
+        refit_every_seconds: 0,
+        rank_refresh_growth: 0.0,
+        alert_horizon: 0,
+        min_coverage: 0.0,
+        alpha: 0.0,
+        seed: 3,
+    }
+    .normalized()
+    .expect("spec");
+    let cohorts = 5;
+    let mut columns = Columns::new(D);
+    let features = data.features.as_slice().expect("standard layout");
+    for u in 0..units {
+        columns.push_unit(
+            &features[u * D..(u + 1) * D],
+            data.treatment[u] as u8,
+            None,
+            (u / 1000) as u32,
+        );
+        columns.add_outcome(u, data.outcome[u], 0);
+    }
+    RecomputeInput {
+        spec,
+        columns,
+        cohort_names: (0..cohorts).map(|c| format!("c{c}")).collect(),
+        models: models
+            .iter()
+            .map(|m| {
+                (
+                    m.predictions.name.clone(),
+                    ChunkedColumn::from_rows(1, &m.predictions.effects[..units]),
+                )
+            })
+            .collect(),
+        revision: 0,
+        nuisance,
+        now_ms: 0,
+        ranks_fresh_below: RANKS_ALWAYS_FRESH_BELOW,
+        watch: Watch::default(),
+        watch_settings: WatchSettings::default(),
+    }
+}
+
+/// Numbers agree to 1e-9 relative (rounding of merged versus one-pass
+/// sums is near 1e-15; p_best counts draws, which would differ by
+/// 1/4000 only if a draw sat within rounding of a tie); everything else
+/// is equal.
+fn assert_close(a: &serde_json::Value, b: &serde_json::Value, path: &str) {
+    use serde_json::Value;
+    match (a, b) {
+        (Value::Number(x), Value::Number(y)) => {
+            let (x, y) = (x.as_f64().unwrap_or(0.0), y.as_f64().unwrap_or(0.0));
+            let tol = 1e-9 * x.abs().max(y.abs()).max(1.0);
+            assert!((x - y).abs() <= tol, "{path}: {x} vs {y}");
+        }
+        (Value::Array(x), Value::Array(y)) => {
+            assert_eq!(x.len(), y.len(), "{path}");
+            for (i, (p, q)) in x.iter().zip(y).enumerate() {
+                assert_close(p, q, &format!("{path}[{i}]"));
+            }
+        }
+        (Value::Object(x), Value::Object(y)) => {
+            assert_eq!(x.len(), y.len(), "{path}");
+            for (k, v) in x {
+                assert_close(v, &y[k], &format!("{path}.{k}"));
+            }
+        }
+        _ => assert_eq!(a, b, "{path}"),
+    }
+}
+
+fn board(c: &Computed, key: &str) -> serde_json::Value {
+    let w = c.windows.iter().find(|w| w.key == key).expect("window");
+    serde_json::to_value(w.board.as_ref().expect("scored")).expect("json")
+}
+
+#[test]
+fn merged_cumulative_equals_a_from_scratch_pass() {
+    let first = input(3000, None)
+        .compute(RecomputeOptions::default())
+        .expect("first fit");
+    assert!(first.refit.is_some());
+    let kept = first.nuisance.clone();
+    assert!(kept.memo.cumulative.is_some());
+
+    // Two more cohorts arrive; the fit is current, so nothing is refit.
+    let second = input(5000, Some(kept.clone()))
+        .compute(RecomputeOptions::default())
+        .expect("incremental");
+    assert!(second.refit.is_none());
+    assert_eq!(second.newly_scored, 2000);
+    let merged = second.nuisance.memo.cumulative.as_ref().expect("memo");
+    assert_eq!(merged.units.len(), 5000);
+
+    // The same recompute without the memo scores every window afresh.
+    let mut cleared = kept;
+    cleared.memo = Arc::default();
+    let scratch = input(5000, Some(cleared))
+        .compute(RecomputeOptions::default())
+        .expect("scratch");
+    assert_close(
+        &board(&second, "cumulative"),
+        &board(&scratch, "cumulative"),
+        "",
+    );
+    for c in 0..5 {
+        let key = format!("cohort:c{c}");
+        assert_close(&board(&second, &key), &board(&scratch, &key), &key);
+    }
+    // Cohorts that did not change are the kept results, bit for bit.
+    assert_eq!(board(&second, "cohort:c0"), board(&first, "cohort:c0"));
+}
+
+/// The board without the rank and calibration metrics (and the count of
+/// units they cover).
+fn without_rank_metrics(mut v: serde_json::Value) -> serde_json::Value {
+    if let Some(o) = v.as_object_mut() {
+        o.remove("rank_metrics_units");
+    }
+    for m in v["models"].as_array_mut().into_iter().flatten() {
+        if let Some(o) = m.as_object_mut() {
+            for key in ["autoc", "qini", "blp_slope", "calibration"] {
+                o.remove(key);
+            }
+        }
+    }
+    v
+}
+
+fn rank_metrics_of(v: &serde_json::Value) -> Vec<serde_json::Value> {
+    let mut models: Vec<serde_json::Value> = v["models"]
+        .as_array()
+        .expect("models")
+        .iter()
+        .map(|m| {
+            serde_json::json!([
+                m["name"],
+                m["autoc"],
+                m["qini"],
+                m["blp_slope"],
+                m["calibration"]
+            ])
+        })
+        .collect();
+    models.sort_by_key(|m| m[0].to_string());
+    models
+}
+
+#[test]
+fn cumulative_rank_metrics_wait_for_the_set_growth_and_the_rest_is_exact() {
+    let at = |units: usize, nuisance: Option<NuisanceState>| {
+        let mut f = input(units, nuisance);
+        f.ranks_fresh_below = 0;
+        f
+    };
+    let first = at(4000, None)
+        .compute(RecomputeOptions::default())
+        .expect("first fit");
+    let scratch = |units: usize| {
+        let mut cleared = first.nuisance.clone();
+        cleared.memo = Arc::default();
+        at(units, Some(cleared))
+            .compute(RecomputeOptions::default())
+            .expect("scratch")
+    };
+
+    // 100 new units are 2.5% of the 4,000 ranked: under the default 5%,
+    // so the rank metrics are the first recompute's, and say so.
+    let second = at(4100, Some(first.nuisance.clone()))
+        .compute(RecomputeOptions::default())
+        .expect("incremental");
+    let (carried, fresh) = (
+        board(&second, "cumulative"),
+        board(&scratch(4100), "cumulative"),
+    );
+    assert_eq!(carried["n_units"], 4100);
+    assert_eq!(carried["rank_metrics_units"], 4000);
+    assert_eq!(fresh["rank_metrics_units"], 4100);
+    assert_eq!(
+        rank_metrics_of(&carried),
+        rank_metrics_of(&board(&first, "cumulative"))
+    );
+    assert_ne!(rank_metrics_of(&carried), rank_metrics_of(&fresh));
+    // Everything else is the from-scratch figure.
+    assert_close(
+        &without_rank_metrics(carried),
+        &without_rank_metrics(fresh),
+        "",
+    );
+
+    // Asked for, a refresh needs no growth.
+    let mut asked = at(4100, Some(second.nuisance.clone()));
+    asked.nuisance.as_mut().expect("fit").memo = second.nuisance.memo.clone();
+    let on_request = asked
+        .compute(RecomputeOptions {
+            refresh_ranks: true,
+            ..RecomputeOptions::default()
+        })
+        .expect("asked");
+    assert_close(
+        &board(&on_request, "cumulative"),
+        &board(&scratch(4100), "cumulative"),
+        "",
+    );
+
+    // 200 more make 7.5% of the 4,000: the refresh brings every figure
+    // to the from-scratch pass over 4,300 units.
+    let third = at(4300, Some(second.nuisance.clone()))
+        .compute(RecomputeOptions::default())
+        .expect("refresh");
+    let refreshed = board(&third, "cumulative");
+    assert_eq!(refreshed["rank_metrics_units"], 4300);
+    assert_close(&refreshed, &board(&scratch(4300), "cumulative"), "");
+}
