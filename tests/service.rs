@@ -1267,3 +1267,55 @@ async fn a_second_server_on_one_data_directory_is_refused() {
     let out = first.terminate();
     assert!(out.status.success());
 }
+
+/// A store whose boards are gone (what `migrations/sqlite/0005` leaves of
+/// boards an earlier version stored as protobuf) is scored again at start,
+/// without a request: the restarted server serves the same numbers.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn boards_missing_at_start_are_recomputed_unasked() {
+    use sqlx::{ConnectOptions, Connection};
+    let dir = TempDir::new("boardless");
+    let srv = server(&dir).await;
+    let mut c = clients(srv.grpc_addr).await;
+    one_model_scored(&mut c, "upgraded", 400, 6, false).await;
+    let before = board(&mut c, "upgraded", pb::window::Kind::Cumulative).await;
+    srv.stop().await.expect("stop");
+
+    let mut db = sqlx::sqlite::SqliteConnectOptions::new()
+        .filename(dir.0.join(plumbline::config::DATABASE_FILE))
+        .connect()
+        .await
+        .expect("open");
+    sqlx::query("DELETE FROM snapshot_boards")
+        .execute(&mut db)
+        .await
+        .expect("drop the boards");
+    db.close().await.expect("close");
+
+    let srv = server(&dir).await;
+    let mut c = clients(srv.grpc_addr).await;
+    let mut served = None;
+    for _ in 0..100 {
+        match c
+            .scoring
+            .get_scoreboard(pb::GetScoreboardRequest {
+                dataset: "upgraded".into(),
+                window: None,
+            })
+            .await
+        {
+            Ok(b) => {
+                served = Some(b.into_inner());
+                break;
+            }
+            Err(s) => assert_eq!(s.code(), Code::FailedPrecondition, "{s:?}"),
+        }
+        tokio::time::sleep(std::time::Duration::from_millis(100)).await;
+    }
+    let after = served.expect("a board within 10 s of the start, unasked");
+    assert!(after.snapshot_id > before.snapshot_id);
+    assert_eq!(after.units, before.units);
+    // The fit is reproduced exactly and no unit arrived: the same numbers.
+    assert_eq!(after.models, before.models);
+    srv.stop().await.expect("stop");
+}

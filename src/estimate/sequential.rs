@@ -198,10 +198,39 @@ pub fn gaussian_log_e(sums: &BatchSums, theta: f64, scale: f64, side: Side) -> [
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct Detector {
     pub side: Side,
-    /// ln R per grid point; -inf before the first look.
+    /// ln R per grid point; -inf before the first look. JSON has no
+    /// infinity, so -inf is stored as null (see [`log_scale`]).
+    #[serde(with = "log_scale")]
     log_r: Vec<f64>,
     /// Looks folded in since the detector (re)started.
     pub looks: u64,
+}
+
+/// Stores ln R values in JSON: -inf (a statistic that has not started) as
+/// null, and read back as -inf. Without it a detector that has not looked
+/// yet is written as null and cannot be read back, and a restart fails.
+mod log_scale {
+    use serde::{Deserialize, Deserializer, Serialize, Serializer};
+
+    pub fn serialize<S: Serializer>(values: &[f64], s: S) -> Result<S::Ok, S::Error> {
+        values
+            .iter()
+            .map(|&v| match v {
+                v if v == f64::NEG_INFINITY => None,
+                // ln R beyond any threshold; keeps its alarm after a restart.
+                v if v.is_infinite() => Some(f64::MAX),
+                v => Some(v),
+            })
+            .collect::<Vec<Option<f64>>>()
+            .serialize(s)
+    }
+
+    pub fn deserialize<'de, D: Deserializer<'de>>(d: D) -> Result<Vec<f64>, D::Error> {
+        Ok(Vec::<Option<f64>>::deserialize(d)?
+            .into_iter()
+            .map(|v| v.unwrap_or(f64::NEG_INFINITY))
+            .collect())
+    }
 }
 
 impl Detector {
@@ -346,6 +375,26 @@ mod tests {
     /// Before it, the threshold (1000 / 0.05) allows a false alarm in at
     /// most 100 / 20,000 = 0.5% of streams: 3 of 100 would be a rate that
     /// far off (binomial probability under 2%).
+    #[test]
+    fn a_detector_reads_back_from_json_before_and_after_its_first_look() {
+        let fresh = Detector::new(Side::Below);
+        let json = serde_json::to_string(&fresh).expect("serializes");
+        let back: Detector = serde_json::from_str(&json).expect("a fresh detector reads back");
+        assert_eq!(back, fresh);
+        assert!(back.log_statistic().is_infinite() && back.log_statistic() < 0.0);
+        let mut looked = fresh;
+        looked.update(&gaussian_log_e(
+            &BatchSums::of(vec![0.3, -0.1, 0.8]),
+            0.0,
+            1.0,
+            Side::Below,
+        ));
+        let back: Detector =
+            serde_json::from_str(&serde_json::to_string(&looked).expect("serializes"))
+                .expect("reads back");
+        assert_eq!(back, looked, "bit for bit after a look");
+    }
+
     #[test]
     fn a_shift_is_caught() {
         let mut rng = ChaCha8Rng::seed_from_u64(11);
