@@ -30,27 +30,13 @@ async fn backends(tag: &str) -> Vec<(String, Store, TempDir)> {
 }
 
 fn spec(name: &str) -> DatasetSpec {
-    // Zero settings mean "the default"; normalizing fills them in.
     DatasetSpec {
-        name: name.into(),
-        feature_names: vec!["x1".into(), "x2".into()],
-        outcome_kind: OutcomeKind::Continuous,
-        treatment_cost: 0.0,
-        folds: 0,
-        overlap_eps: 0.0,
-        overlap_max_extreme_share: 0.0,
-        overlap_min_effective_share: 0.0,
-        recent_last_outcomes: 0,
-        recent_last_days: 0,
-        recompute_every_outcomes: 0,
-        recompute_every_seconds: 0,
-        refit_growth: 0.0,
-        refit_every_seconds: 0,
-        rank_refresh_growth: 0.0,
-        alert_horizon: 0,
-        min_coverage: 0.0,
-        alpha: 0.0,
         seed: 3,
+        ..DatasetSpec::new(
+            name,
+            vec!["x1".into(), "x2".into()],
+            OutcomeKind::Continuous,
+        )
     }
     .normalized()
     .expect("a valid spec")

@@ -92,15 +92,17 @@ impl BoardModel {
     /// The values history keeps, keyed as [`history_keys`] lists them.
     pub fn history_values(&self) -> Vec<(String, Estimate)> {
         let v = &self.vs_constant;
+        // In the order of MEASURES.
+        let measures = [
+            Estimate::new(v.estimate, v.se),
+            self.policy_gain,
+            self.autoc,
+            self.qini,
+        ];
         self.scores
             .iter()
             .map(|s| (s.estimator.clone(), s.value))
-            .chain([
-                ("vs_constant".into(), Estimate::new(v.estimate, v.se)),
-                ("policy_gain".into(), self.policy_gain),
-                ("autoc".into(), self.autoc),
-                ("qini".into(), self.qini),
-            ])
+            .chain(MEASURES.iter().map(|k| k.to_string()).zip(measures))
             .collect()
     }
 }

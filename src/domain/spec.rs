@@ -94,6 +94,32 @@ fn or_default<T: PartialEq + Default>(v: T, default: T) -> T {
 }
 
 impl DatasetSpec {
+    /// A dataset with every other setting zero, which [`Self::normalized`]
+    /// turns into its default (as on the wire).
+    pub fn new(name: &str, feature_names: Vec<String>, outcome_kind: OutcomeKind) -> Self {
+        Self {
+            name: name.into(),
+            feature_names,
+            outcome_kind,
+            treatment_cost: 0.0,
+            folds: 0,
+            overlap_eps: 0.0,
+            overlap_max_extreme_share: 0.0,
+            overlap_min_effective_share: 0.0,
+            recent_last_outcomes: 0,
+            recent_last_days: 0,
+            recompute_every_outcomes: 0,
+            recompute_every_seconds: 0,
+            refit_growth: 0.0,
+            refit_every_seconds: 0,
+            rank_refresh_growth: 0.0,
+            alert_horizon: 0,
+            min_coverage: 0.0,
+            alpha: 0.0,
+            seed: 0,
+        }
+    }
+
     /// How the stream watch behind the alerts decides.
     pub fn watch_settings(&self) -> WatchSettings {
         WatchSettings {

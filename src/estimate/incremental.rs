@@ -391,27 +391,7 @@ mod tests {
     /// 1/4000 only if a draw sat within rounding of a tie. Everything
     /// that is not a number is equal.
     fn assert_close(a: &serde_json::Value, b: &serde_json::Value, path: &str) {
-        use serde_json::Value;
-        match (a, b) {
-            (Value::Number(x), Value::Number(y)) => {
-                let (x, y) = (x.as_f64().unwrap_or(0.0), y.as_f64().unwrap_or(0.0));
-                let tol = 1e-9 * x.abs().max(y.abs()).max(1.0);
-                assert!((x - y).abs() <= tol, "{path}: {x} vs {y}");
-            }
-            (Value::Array(x), Value::Array(y)) => {
-                assert_eq!(x.len(), y.len(), "{path}");
-                for (i, (p, q)) in x.iter().zip(y).enumerate() {
-                    assert_close(p, q, &format!("{path}[{i}]"));
-                }
-            }
-            (Value::Object(x), Value::Object(y)) => {
-                assert_eq!(x.len(), y.len(), "{path}");
-                for (k, v) in x {
-                    assert_close(v, &y[k], &format!("{path}.{k}"));
-                }
-            }
-            _ => assert_eq!(a, b, "{path}"),
-        }
+        crate::estimate::testing::assert_json_close(a, b, 1e-9, path);
     }
 
     fn json(board: &Scoreboard) -> serde_json::Value {

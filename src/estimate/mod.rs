@@ -32,3 +32,34 @@ pub use data::{
 };
 pub use error::{Degenerate, EstimateError};
 pub use scoreboard::{evaluate, score, Scoreboard, Settings};
+
+#[cfg(test)]
+pub(crate) mod testing {
+    //! Checks shared by the unit tests of `estimate` and the monitor.
+
+    /// Numbers agree to `tol` relative (absolute below 1); arrays and
+    /// objects agree member by member; everything else is equal.
+    pub fn assert_json_close(a: &serde_json::Value, b: &serde_json::Value, tol: f64, path: &str) {
+        use serde_json::Value;
+        match (a, b) {
+            (Value::Number(x), Value::Number(y)) => {
+                let (x, y) = (x.as_f64().unwrap_or(0.0), y.as_f64().unwrap_or(0.0));
+                let bound = tol * x.abs().max(y.abs()).max(1.0);
+                assert!((x - y).abs() <= bound, "{path}: {x} vs {y}");
+            }
+            (Value::Array(x), Value::Array(y)) => {
+                assert_eq!(x.len(), y.len(), "{path}");
+                for (i, (p, q)) in x.iter().zip(y).enumerate() {
+                    assert_json_close(p, q, tol, &format!("{path}[{i}]"));
+                }
+            }
+            (Value::Object(x), Value::Object(y)) => {
+                assert_eq!(x.len(), y.len(), "{path}");
+                for (k, v) in x {
+                    assert_json_close(v, &y[k], tol, &format!("{path}.{k}"));
+                }
+            }
+            _ => assert_eq!(a, b, "{path}"),
+        }
+    }
+}

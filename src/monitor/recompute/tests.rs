@@ -13,25 +13,13 @@ fn input(units: usize, nuisance: Option<NuisanceState>) -> RecomputeInput {
     let (_, var_tau) = effect_moments(Design::NieWagerB, 20_000, 3);
     let models = candidates(&data.tau, var_tau, 3, 5);
     let spec = DatasetSpec {
-        name: "t".into(),
-        feature_names: (1..=D).map(|j| format!("x{j}")).collect(),
-        outcome_kind: OutcomeKind::Continuous,
-        treatment_cost: 0.0,
-        folds: 0,
-        overlap_eps: 0.0,
-        overlap_max_extreme_share: 0.0,
-        overlap_min_effective_share: 0.0,
-        recent_last_outcomes: 0,
-        recent_last_days: 0,
-        recompute_every_outcomes: 0,
-        recompute_every_seconds: 0,
         refit_growth: 10.0,
-        refit_every_seconds: 0,
-        rank_refresh_growth: 0.0,
-        alert_horizon: 0,
-        min_coverage: 0.0,
-        alpha: 0.0,
         seed: 3,
+        ..DatasetSpec::new(
+            "t",
+            (1..=D).map(|j| format!("x{j}")).collect(),
+            OutcomeKind::Continuous,
+        )
     }
     .normalized()
     .expect("spec");
@@ -74,27 +62,7 @@ fn input(units: usize, nuisance: Option<NuisanceState>) -> RecomputeInput {
 /// 1/4000 only if a draw sat within rounding of a tie); everything else
 /// is equal.
 fn assert_close(a: &serde_json::Value, b: &serde_json::Value, path: &str) {
-    use serde_json::Value;
-    match (a, b) {
-        (Value::Number(x), Value::Number(y)) => {
-            let (x, y) = (x.as_f64().unwrap_or(0.0), y.as_f64().unwrap_or(0.0));
-            let tol = 1e-9 * x.abs().max(y.abs()).max(1.0);
-            assert!((x - y).abs() <= tol, "{path}: {x} vs {y}");
-        }
-        (Value::Array(x), Value::Array(y)) => {
-            assert_eq!(x.len(), y.len(), "{path}");
-            for (i, (p, q)) in x.iter().zip(y).enumerate() {
-                assert_close(p, q, &format!("{path}[{i}]"));
-            }
-        }
-        (Value::Object(x), Value::Object(y)) => {
-            assert_eq!(x.len(), y.len(), "{path}");
-            for (k, v) in x {
-                assert_close(v, &y[k], &format!("{path}.{k}"));
-            }
-        }
-        _ => assert_eq!(a, b, "{path}"),
-    }
+    crate::estimate::testing::assert_json_close(a, b, 1e-9, path);
 }
 
 fn board(c: &Computed, key: &str) -> serde_json::Value {

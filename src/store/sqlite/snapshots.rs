@@ -51,11 +51,6 @@ impl SnapshotLog for SqliteStore {
         }))
     }
 
-    /// Stores a snapshot, its boards and its per-model values in one
-    /// transaction, with the stream watch it left; returns the snapshot id.
-    /// `boards` holds the windows the recompute changed;
-    /// [`Store::latest_boards`] finds each window's latest.
-    #[allow(clippy::too_many_arguments)]
     async fn insert_snapshot(&self, snap: &NewSnapshot<'_>) -> StoreResult<()> {
         let NewSnapshot {
             id,
@@ -68,6 +63,16 @@ impl SnapshotLog for SqliteStore {
             scores,
             watch,
         } = *snap;
+        // Encoded before the transaction, so the write lock is held for the
+        // writes alone.
+        let encoded = boards
+            .iter()
+            .map(|b| {
+                serde_json::to_vec(b)
+                    .map(|json| (b.window.key(), json))
+                    .map_err(|e| StoreError::Corrupt(format!("board {:?}: {e}", b.window)))
+            })
+            .collect::<StoreResult<Vec<_>>>()?;
         let mut tx = self.pool.begin().await?;
         sqlx::query(
             "INSERT INTO snapshots (id, dataset_id, computed_at_ms, fit_id, refitted, millis) \
@@ -81,14 +86,12 @@ impl SnapshotLog for SqliteStore {
         .bind(millis)
         .execute(&mut *tx)
         .await?;
-        for board in boards {
-            let json = serde_json::to_vec(board)
-                .map_err(|e| StoreError::Corrupt(format!("board {:?}: {e}", board.window)))?;
+        for (window, json) in encoded {
             sqlx::query(
                 "INSERT INTO snapshot_boards (snapshot_id, window, board) VALUES (?, ?, ?)",
             )
             .bind(id)
-            .bind(board.window.key())
+            .bind(window)
             .bind(json)
             .execute(&mut *tx)
             .await?;
