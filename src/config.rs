@@ -7,12 +7,15 @@ use std::path::{Path, PathBuf};
 use serde::Deserialize;
 
 use crate::limits::Limits;
-use crate::store::Durability;
+use crate::store::{Durability, Location, StoreConfig};
 
 pub const DEFAULT_LISTEN: &str = "127.0.0.1:7070";
 pub const DEFAULT_METRICS_LISTEN: &str = "127.0.0.1:7071";
 pub const DEFAULT_DATA_DIR: &str = "plumbline-data";
 pub const DATABASE_FILE: &str = "plumbline.sqlite";
+/// The default store: a SQLite file under `data_dir`.
+pub const DEFAULT_STORE_URL: &str = "sqlite:plumbline.sqlite";
+pub const DEFAULT_LEASE_SECONDS: u64 = 10;
 
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Deserialize, Default)]
 #[serde(rename_all = "snake_case")]
@@ -28,8 +31,17 @@ pub struct Config {
     pub listen: SocketAddr,
     /// HTTP address of /metrics, /healthz and /readyz.
     pub metrics_listen: SocketAddr,
-    /// Directory holding the SQLite database.
+    /// Directory of the SQLite database (and any relative `sqlite:` path).
     pub data_dir: PathBuf,
+    /// Which store, from `store_url`: SQLite (the default) or PostgreSQL.
+    /// Its Debug form hides any password.
+    pub store: Location,
+    /// How long a dataset may go without a live owner when servers share a
+    /// store (see `monitor::leases`).
+    pub lease_seconds: u64,
+    /// This server's name among the servers sharing a store (the host's
+    /// name when unset).
+    pub replica_name: Option<String>,
     pub durability: Durability,
     pub log_format: LogFormat,
     /// A tracing filter, e.g. "info" or "plumbline=debug".
@@ -63,6 +75,9 @@ struct FileConfig {
     listen: Option<String>,
     metrics_listen: Option<String>,
     data_dir: Option<PathBuf>,
+    store_url: Option<String>,
+    lease_seconds: Option<u64>,
+    replica_name: Option<String>,
     durability: Option<Durability>,
     log_format: Option<LogFormat>,
     log_level: Option<String>,
@@ -118,6 +133,26 @@ impl Config {
             .map(PathBuf::from)
             .or(f.data_dir)
             .unwrap_or_else(|| PathBuf::from(DEFAULT_DATA_DIR));
+        let store = Location::parse(
+            &pick("PLUMBLINE_STORE_URL", f.store_url, DEFAULT_STORE_URL),
+            &data_dir,
+        )?;
+        let lease_seconds = match env("PLUMBLINE_LEASE_SECONDS") {
+            Some(v) => v
+                .parse()
+                .map_err(|_| format!("PLUMBLINE_LEASE_SECONDS: {v:?} is not a whole number"))?,
+            None => f.lease_seconds.unwrap_or(DEFAULT_LEASE_SECONDS),
+        };
+        if !(2..=600).contains(&lease_seconds) {
+            return Err(format!(
+                "lease_seconds: {lease_seconds} is outside 2..=600 (a shorter lease needs a \
+                 store that answers within a tenth of it; a longer one leaves datasets without \
+                 an owner that long after a server dies)"
+            ));
+        }
+        let replica_name = env("PLUMBLINE_REPLICA_NAME")
+            .or(f.replica_name)
+            .filter(|n| !n.is_empty());
         let durability = match env("PLUMBLINE_DURABILITY").as_deref() {
             Some("full") => Durability::Full,
             Some("normal") => Durability::Normal,
@@ -172,6 +207,9 @@ impl Config {
             listen,
             metrics_listen,
             data_dir,
+            store,
+            lease_seconds,
+            replica_name,
             durability,
             log_format,
             log_level,
@@ -182,6 +220,27 @@ impl Config {
         })
     }
 
+    /// The defaults, with the data (and the SQLite store) in `data_dir`:
+    /// for tools and tests that start a server in-process.
+    pub fn in_dir(data_dir: impl Into<PathBuf>) -> Self {
+        let data_dir = data_dir.into();
+        Self {
+            listen: ([127, 0, 0, 1], 7070).into(),
+            metrics_listen: ([127, 0, 0, 1], 7071).into(),
+            store: Location::Sqlite(data_dir.join(DATABASE_FILE)),
+            data_dir,
+            lease_seconds: DEFAULT_LEASE_SECONDS,
+            replica_name: None,
+            durability: Durability::default(),
+            log_format: LogFormat::default(),
+            log_level: "info".into(),
+            limits: Limits::default(),
+            require_token: None,
+            metrics_require_token: false,
+            tls: None,
+        }
+    }
+
     /// Tokens are required when asked for, and by default whenever the
     /// gRPC listener is reachable from other machines.
     pub fn tokens_required(&self) -> bool {
@@ -190,8 +249,13 @@ impl Config {
             || self.metrics_require_token
     }
 
-    pub fn database_path(&self) -> PathBuf {
-        self.data_dir.join(DATABASE_FILE)
+    /// How a server opens its store.
+    pub fn store_config(&self) -> StoreConfig {
+        StoreConfig {
+            location: self.store.clone(),
+            durability: self.durability,
+            claim: true,
+        }
     }
 }
 
@@ -244,5 +308,33 @@ mod tests {
         let err = Config::load(Some(&path), |_| None).expect_err("typo is refused");
         assert!(err.contains("lisen"), "{err}");
         let _ = std::fs::remove_dir_all(&dir);
+    }
+
+    #[test]
+    fn the_store_is_sqlite_under_the_data_dir_unless_a_url_says_otherwise() {
+        let c = Config::load(None, |k| {
+            (k == "PLUMBLINE_DATA_DIR").then(|| "/srv/pl".into())
+        })
+        .expect("config");
+        assert_eq!(
+            c.store,
+            Location::Sqlite(PathBuf::from("/srv/pl").join(DATABASE_FILE))
+        );
+        assert_eq!(c.lease_seconds, DEFAULT_LEASE_SECONDS);
+        let c = Config::load(None, |k| {
+            (k == "PLUMBLINE_STORE_URL").then(|| "postgres://pl:hunter2@db/pl".into())
+        })
+        .expect("config");
+        assert_eq!(
+            c.store,
+            Location::Postgres("postgres://pl:hunter2@db/pl".into())
+        );
+        let shown = format!("{c:?}");
+        assert!(!shown.contains("hunter2"), "{shown}");
+        let err = Config::load(None, |k| {
+            (k == "PLUMBLINE_LEASE_SECONDS").then(|| "1".into())
+        })
+        .expect_err("too short");
+        assert!(err.contains("lease_seconds"), "{err}");
     }
 }

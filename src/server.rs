@@ -19,11 +19,11 @@ use crate::api::registry::{Datasets, Models};
 use crate::api::scoring::ScoringService;
 use crate::auth::{Gate, GateLayer};
 use crate::config::{Config, TlsConfig};
-use crate::metrics::http::{self, HttpState};
+use crate::metrics::http::{self, HttpState, Ownership};
 use crate::metrics::Metrics;
-use crate::monitor::Monitor;
+use crate::monitor::{Monitor, Replica};
 use crate::shutdown::ShutdownSignal;
-use crate::store::{self, Store, StoreConfig, StoreError};
+use crate::store::{self, Store, StoreError};
 
 /// A running server; dropping it does not stop it: call `stop`.
 pub struct Running {
@@ -107,21 +107,16 @@ impl From<String> for StartError {
 
 /// Opens the store, rebuilds state and starts both listeners.
 pub async fn start(config: &Config) -> Result<Running, StartError> {
-    std::fs::create_dir_all(&config.data_dir)
-        .map_err(|e| format!("{}: {e}", config.data_dir.display()))?;
-    let store = store::open(&StoreConfig {
-        path: config.database_path(),
-        durability: config.durability,
-        claim: true,
-    })
-    .await
-    .map_err(|e| match e {
-        StoreError::InUse(why) => StartError::DataDirInUse(why),
-        e => format!("{}: {e}", config.database_path().display()).into(),
-    })?;
+    let store = store::open(&config.store_config())
+        .await
+        .map_err(|e| match e {
+            StoreError::InUse(why) => StartError::DataDirInUse(why),
+            e => format!("{}: {e}", config.store.display()).into(),
+        })?;
     let gate = gate(config, &store).await?;
     let metrics = Metrics::new();
     let ready = Arc::new(AtomicBool::new(false));
+    let ownership = Arc::new(Ownership::default());
     let signal = ShutdownSignal::new();
 
     let grpc_listener = TcpListener::bind(config.listen)
@@ -139,14 +134,26 @@ pub async fn start(config: &Config) -> Result<Running, StartError> {
         HttpState {
             metrics: Arc::clone(&metrics),
             ready: Arc::clone(&ready),
+            ownership: Arc::clone(&ownership),
             gate: config.metrics_require_token.then(|| Arc::clone(&gate)),
         },
         signal.subscribe(),
     ));
 
-    let monitor = Monitor::open(store.clone(), Arc::clone(&metrics), ready, signal.clone())
-        .await
-        .map_err(|e| format!("restoring state: {e}"))?;
+    let replica = Replica::new(
+        config.replica_name.as_deref(),
+        std::time::Duration::from_secs(config.lease_seconds),
+        ownership,
+    );
+    let monitor = Monitor::open(
+        store.clone(),
+        Arc::clone(&metrics),
+        ready,
+        signal.clone(),
+        replica,
+    )
+    .await
+    .map_err(|e| format!("restoring state: {e}"))?;
     monitor.start_schedulers();
 
     let (health, health_service) = tonic_health::server::health_reporter();
@@ -236,7 +243,7 @@ pub async fn start(config: &Config) -> Result<Running, StartError> {
             async move { grpc_shutdown.recv().await },
         ),
     );
-    info!(tls = config.tls.is_some(), tokens = gate.enabled(), grpc = %grpc_addr, metrics = %http::describe(metrics_addr), data = %config.database_path().display(), "serving");
+    info!(tls = config.tls.is_some(), tokens = gate.enabled(), grpc = %grpc_addr, metrics = %http::describe(metrics_addr), store = %config.store.display(), replica = monitor.holder(), "serving");
     Ok(Running {
         grpc_addr,
         metrics_addr,

@@ -30,9 +30,8 @@ fn with_token<T>(token: Option<&str>, message: T) -> Request<T> {
 /// without a claim on the directory.
 async fn tokens_only(dir: &TempDir) -> Result<Store, store::StoreError> {
     store::open(&StoreConfig {
-        path: dir.0.join(DATABASE_FILE),
-        durability: Durability::Full,
         claim: false,
+        ..StoreConfig::sqlite(dir.0.join(DATABASE_FILE), Durability::Full)
     })
     .await
 }

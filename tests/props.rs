@@ -306,6 +306,7 @@ fn cache() -> DatasetCache {
             &PredictionRecord {
                 model_id: 1,
                 unit_seq: u,
+                seq: u - 10,
                 effect: 0.5,
                 predicted_at_ms: 0,
             },

@@ -1,32 +1,72 @@
 //! The storage contract (`src/store/mod.rs`), checked the same way against
 //! every backend: refused re-sends and conflicts, batches that are written
-//! whole or not at all, the order of the rebuild streams, snapshots and the
-//! latest board of each window, history, events and tokens. A backend joins
-//! by adding itself to `backends()`.
+//! whole or not at all, the order of the row streams, snapshots and the
+//! latest board of each window, history, events, tokens, leases and fenced
+//! writes. A backend joins by adding itself to `backends()`.
+//!
+//! PostgreSQL runs on a throwaway cluster (`common/pg.rs`) where its server
+//! is installed; elsewhere its half of each test says it skipped.
 
 mod common;
 
+use std::any::Any;
+
+use common::pg::PgCluster;
 use common::service::TempDir;
 use plumbline::domain::{
     Board, DatasetSpec, OutcomeRecord, PredictionRecord, ScoreRow, UnitRecord, Window,
 };
 use plumbline::estimate::OutcomeKind;
 use plumbline::store::{
-    self, Durability, HistoryQuery, NewSnapshot, Store, StoreConfig, StoreError, TokenRecord,
+    self, Durability, Fence, HistoryQuery, Location, NewEvent, NewSnapshot, Store, StoreConfig,
+    StoreError, TokenRecord,
 };
 use tokio_stream::StreamExt;
 
-/// Every backend this build can open, each on a fresh empty store.
-async fn backends(tag: &str) -> Vec<(String, Store, TempDir)> {
+struct Backend {
+    name: &'static str,
+    store: Store,
+    /// What keeps the store alive: its directory, its cluster.
+    _keep: Box<dyn Any + Send>,
+}
+
+/// Every backend this machine can open, each on a fresh empty store.
+async fn backends(tag: &str) -> Vec<Backend> {
     let dir = TempDir::new(&format!("contract-{tag}"));
-    let sqlite = store::open(&StoreConfig {
-        path: dir.0.join("plumbline.sqlite"),
-        durability: Durability::Normal,
-        claim: true,
-    })
+    let sqlite = store::open(&StoreConfig::sqlite(
+        dir.0.join("plumbline.sqlite"),
+        Durability::Normal,
+    ))
     .await
     .expect("open sqlite");
-    vec![("sqlite".into(), sqlite, dir)]
+    let mut all = vec![Backend {
+        name: "sqlite",
+        store: sqlite,
+        _keep: Box::new(dir),
+    }];
+    if let Some(cluster) = PgCluster::start(&format!("contract-{tag}")) {
+        let url = cluster.database("contract");
+        let pg = store::open(&StoreConfig {
+            location: Location::Postgres(url),
+            durability: Durability::Full,
+            claim: true,
+        })
+        .await
+        .unwrap_or_else(|e| panic!("open postgres: {e}\n{}", cluster.log()));
+        all.push(Backend {
+            name: "postgres",
+            store: pg,
+            _keep: Box::new(cluster),
+        });
+    }
+    all
+}
+
+async fn collect<T>(stream: store::RowStream<'_, T>) -> Vec<T> {
+    stream
+        .collect::<Result<Vec<_>, _>>()
+        .await
+        .expect("row stream")
 }
 
 fn spec(name: &str) -> DatasetSpec {
@@ -80,7 +120,7 @@ fn board(dataset: &str, window: Window, snapshot_id: u64, units: u64) -> Board {
 
 #[tokio::test]
 async fn datasets_models_and_rows_keep_their_identity() {
-    for (name, s, _dir) in backends("rows").await {
+    for Backend { name, store: s, .. } in backends("rows").await {
         let d = s.create_dataset(&spec("a"), 5).await.expect("create");
         assert!(
             matches!(
@@ -151,6 +191,7 @@ async fn datasets_models_and_rows_keep_their_identity() {
             .map(|u| PredictionRecord {
                 model_id: m.id,
                 unit_seq: u,
+                seq: u,
                 effect: -(u as f64),
                 predicted_at_ms: 3,
             })
@@ -175,39 +216,49 @@ async fn datasets_models_and_rows_keep_their_identity() {
             Some(15)
         );
 
-        // The rebuild streams: units by sequence, outcomes by arrival.
-        let read: Vec<UnitRecord> = s
-            .units(d.id)
-            .collect::<Result<Vec<_>, _>>()
-            .await
-            .expect("unit stream");
+        // The streams: units by sequence, outcomes by arrival, each from a
+        // number on; predictions from a number on, in any order.
+        let read = collect(s.units(d.id, 0)).await;
         assert_eq!(read, units, "{name}: units read back in order, bit for bit");
-        let read: Vec<OutcomeRecord> = s
-            .outcomes(d.id)
-            .collect::<Result<Vec<_>, _>>()
-            .await
-            .expect("outcome stream");
+        let read = collect(s.units(d.id, 1_150)).await;
+        assert_eq!(read, units[1_150..], "{name}: units from a number on");
+        let read = collect(s.outcomes(d.id, 0)).await;
         assert_eq!(read, outcomes, "{name}: outcomes in arrival order");
-        let mut read: Vec<PredictionRecord> = s
-            .predictions(d.id)
-            .collect::<Result<Vec<_>, _>>()
-            .await
-            .expect("prediction stream");
+        let read = collect(s.outcomes(d.id, 1_199)).await;
+        assert_eq!(read, outcomes[1_199..], "{name}: outcomes from a number on");
+        let mut read = collect(s.predictions(d.id, 0)).await;
         read.sort_by_key(|p| p.unit_seq);
         assert_eq!(read, predictions, "{name}");
+        let mut read = collect(s.predictions(d.id, 1_000)).await;
+        read.sort_by_key(|p| p.seq);
+        assert_eq!(
+            read,
+            predictions[1_000..],
+            "{name}: predictions from a number on"
+        );
         s.close().await;
     }
 }
 
 #[tokio::test]
 async fn snapshots_keep_each_windows_latest_board_and_the_history() {
-    for (name, s, _dir) in backends("snapshots").await {
+    for Backend { name, store: s, .. } in backends("snapshots").await {
         let d = s.create_dataset(&spec("a"), 1).await.expect("create");
         let other = s.create_dataset(&spec("b"), 1).await.expect("create");
-        assert_eq!(s.max_snapshot_id().await.expect("max"), 0);
+        let fa = s
+            .acquire_lease(d.id, "me", 60_000)
+            .await
+            .expect("lease")
+            .expect("free");
+        let fb = s
+            .acquire_lease(other.id, "me", 60_000)
+            .await
+            .expect("lease")
+            .expect("free");
+        assert_eq!(s.latest_snapshot_id(d.id).await.expect("latest"), 0);
         assert!(s.latest_fit(d.id).await.expect("fit").is_none());
         let fit = s
-            .insert_fit(d.id, 2, 500, 499, 7, "{\"auc\":0.5}")
+            .insert_fit(fa, 2, 500, 499, 7, "{\"auc\":0.5}")
             .await
             .expect("fit");
         let latest = s.latest_fit(d.id).await.expect("fit").expect("one fit");
@@ -230,9 +281,15 @@ async fn snapshots_keep_each_windows_latest_board_and_the_history() {
             board("a", Window::Cumulative, 1, 500),
             board("a", Window::Cohort("w1".into()), 1, 200),
         ];
+        let mut ids = Vec::new();
+        for _ in 0..3 {
+            ids.push(s.next_snapshot_id().await.expect("snapshot id"));
+        }
+        assert!(ids.windows(2).all(|w| w[1] > w[0]), "{name}: ids increase");
+        let [s1, s2, s3] = [ids[0], ids[1], ids[2]];
         s.insert_snapshot(&NewSnapshot {
-            id: 1,
-            dataset_id: d.id,
+            id: s1,
+            fence: fa,
             computed_at_ms: 10,
             fit_id: Some(fit),
             refitted: true,
@@ -245,8 +302,8 @@ async fn snapshots_keep_each_windows_latest_board_and_the_history() {
         .expect("snapshot 1");
         // Another dataset's snapshot in between must not leak into `a`.
         s.insert_snapshot(&NewSnapshot {
-            id: 2,
-            dataset_id: other.id,
+            id: s2,
+            fence: fb,
             computed_at_ms: 15,
             fit_id: None,
             refitted: false,
@@ -259,8 +316,8 @@ async fn snapshots_keep_each_windows_latest_board_and_the_history() {
         .expect("snapshot 2");
         let second = [board("a", Window::Cumulative, 3, 700)];
         s.insert_snapshot(&NewSnapshot {
-            id: 3,
-            dataset_id: d.id,
+            id: s3,
+            fence: fa,
             computed_at_ms: 30,
             fit_id: Some(fit),
             refitted: false,
@@ -274,8 +331,8 @@ async fn snapshots_keep_each_windows_latest_board_and_the_history() {
         assert!(
             matches!(
                 s.insert_snapshot(&NewSnapshot {
-                    id: 3,
-                    dataset_id: d.id,
+                    id: s3,
+                    fence: fa,
                     computed_at_ms: 40,
                     fit_id: None,
                     refitted: false,
@@ -289,7 +346,8 @@ async fn snapshots_keep_each_windows_latest_board_and_the_history() {
             ),
             "{name}: a snapshot id is stored once"
         );
-        assert_eq!(s.max_snapshot_id().await.expect("max"), 3);
+        assert_eq!(s.latest_snapshot_id(d.id).await.expect("latest"), s3);
+        assert_eq!(s.latest_snapshot_id(other.id).await.expect("latest"), s2);
 
         let mut latest = s.latest_boards(d.id).await.expect("boards");
         latest.sort_by_key(|b| b.window.key());
@@ -313,7 +371,7 @@ async fn snapshots_keep_each_windows_latest_board_and_the_history() {
             .await
             .expect("history");
         let got: Vec<(i64, f64)> = points.iter().map(|p| (p.snapshot_id, p.estimate)).collect();
-        assert_eq!(got, vec![(1, 1.0), (3, 1.5)], "{name}: oldest first");
+        assert_eq!(got, vec![(s1, 1.0), (s3, 1.5)], "{name}: oldest first");
         let points = s
             .history(&history("cumulative", 11, 30))
             .await
@@ -330,18 +388,34 @@ async fn snapshots_keep_each_windows_latest_board_and_the_history() {
 
 #[tokio::test]
 async fn events_come_after_an_id_per_dataset_and_tokens_revoke_once() {
-    for (name, s, _dir) in backends("events").await {
+    for Backend { name, store: s, .. } in backends("events").await {
         let a = s.create_dataset(&spec("a"), 1).await.expect("create");
         let b = s.create_dataset(&spec("b"), 1).await.expect("create");
+        let fa = s
+            .acquire_lease(a.id, "me", 60_000)
+            .await
+            .expect("lease")
+            .expect("free");
         let mut ids = Vec::new();
         for i in 0..5 {
             let d = if i % 2 == 0 { a.id } else { b.id };
+            let summary = format!("e{i}");
             ids.push(
-                s.insert_event(d, "leader_changed", i, i, &format!("e{i}"), "{}")
-                    .await
-                    .expect("event"),
+                s.insert_event(&NewEvent {
+                    dataset_id: d,
+                    // Fenced on `a`, which has a lease; `b`'s are registry events.
+                    epoch: (d == a.id).then_some(fa.epoch),
+                    kind: "leader_changed",
+                    at_ms: i,
+                    snapshot_id: i,
+                    summary: &summary,
+                    details_json: "{}",
+                })
+                .await
+                .expect("event"),
             );
         }
+        assert_eq!(s.last_event_id(a.id).await.expect("last"), ids[4], "{name}");
         assert!(ids.windows(2).all(|w| w[1] > w[0]), "{name}: ids increase");
         let all = s.events(None, 0, 100).await.expect("events");
         assert_eq!(all.len(), 5, "{name}");
@@ -394,11 +468,7 @@ async fn events_come_after_an_id_per_dataset_and_tokens_revoke_once() {
 #[tokio::test]
 async fn a_second_writer_on_one_data_directory_is_refused() {
     let dir = TempDir::new("contract-claim");
-    let config = StoreConfig {
-        path: dir.0.join("plumbline.sqlite"),
-        durability: Durability::Normal,
-        claim: true,
-    };
+    let config = StoreConfig::sqlite(dir.0.join("plumbline.sqlite"), Durability::Normal);
     let first = store::open(&config).await.expect("first");
     match store::open(&config).await {
         Err(StoreError::InUse(why)) => assert!(why.contains("in use by process"), "{why}"),
@@ -415,4 +485,178 @@ async fn a_second_writer_on_one_data_directory_is_refused() {
     first.close().await;
     let again = store::open(&config).await.expect("claim after close");
     again.close().await;
+}
+
+#[tokio::test]
+async fn leases_go_to_one_holder_and_fence_the_ones_before() {
+    for Backend { name, store: s, .. } in backends("leases").await {
+        let d = s.create_dataset(&spec("a"), 1).await.expect("create");
+        let first = s
+            .acquire_lease(d.id, "one", 60_000)
+            .await
+            .expect("acquire")
+            .expect("a free lease is granted");
+        assert!(
+            s.acquire_lease(d.id, "two", 60_000)
+                .await
+                .expect("acquire")
+                .is_none(),
+            "{name}: a live lease has one holder"
+        );
+        assert!(
+            s.renew_lease(first, "one", 60_000).await.expect("renew"),
+            "{name}"
+        );
+        assert!(
+            !s.renew_lease(first, "two", 60_000).await.expect("renew"),
+            "{name}: only the holder renews"
+        );
+        let listed = s.leases().await.expect("leases");
+        assert_eq!(listed.len(), 1, "{name}");
+        assert_eq!(
+            (listed[0].holder.as_str(), listed[0].epoch),
+            ("one", first.epoch)
+        );
+        assert!(listed[0].expires_in_ms > 50_000, "{name}: {listed:?}");
+
+        // A lapsed lease goes to the next holder with a larger epoch, and the
+        // first holder's writes are refused from then on.
+        s.release_lease(first, "one").await.expect("release");
+        let second = s
+            .acquire_lease(d.id, "two", 60_000)
+            .await
+            .expect("acquire")
+            .expect("a released lease is granted");
+        assert!(
+            second.epoch > first.epoch,
+            "{name}: {second:?} after {first:?}"
+        );
+        assert!(
+            !s.renew_lease(first, "one", 60_000).await.expect("renew"),
+            "{name}: the old holder cannot renew"
+        );
+        fn fenced<T>(r: Result<T, StoreError>) -> bool {
+            matches!(r, Err(StoreError::Fenced(_)))
+        }
+        assert!(
+            fenced(s.insert_fit(first, 1, 10, 9, 0, "{}").await),
+            "{name}: a fit record at the old epoch is refused"
+        );
+        let id = s.next_snapshot_id().await.expect("id");
+        let snapshot = |fence: Fence| NewSnapshot {
+            id,
+            fence,
+            computed_at_ms: 1,
+            fit_id: None,
+            refitted: false,
+            millis: 1.0,
+            boards: &[],
+            scores: &[],
+            watch: "{}",
+        };
+        assert!(
+            fenced(s.insert_snapshot(&snapshot(first)).await),
+            "{name}: a snapshot at the old epoch is refused"
+        );
+        assert_eq!(
+            s.latest_snapshot_id(d.id).await.expect("latest"),
+            0,
+            "{name}: and left nothing"
+        );
+        s.insert_snapshot(&snapshot(second))
+            .await
+            .expect("the new holder writes");
+        let event = |epoch| NewEvent {
+            dataset_id: d.id,
+            epoch,
+            kind: "k",
+            at_ms: 1,
+            snapshot_id: id,
+            summary: "s",
+            details_json: "{}",
+        };
+        assert!(
+            fenced(s.insert_event(&event(Some(first.epoch))).await),
+            "{name}: an alert event at the old epoch is refused"
+        );
+        s.insert_event(&event(Some(second.epoch)))
+            .await
+            .expect("fenced event");
+        s.insert_event(&event(None)).await.expect("registry event");
+
+        // A lease lapses by the store's clock.
+        let e = s.create_dataset(&spec("b"), 1).await.expect("create");
+        s.acquire_lease(e.id, "one", 1)
+            .await
+            .expect("acquire")
+            .expect("free");
+        tokio::time::sleep(std::time::Duration::from_millis(30)).await;
+        assert!(
+            s.acquire_lease(e.id, "two", 60_000)
+                .await
+                .expect("acquire")
+                .is_some(),
+            "{name}: a lapsed lease is granted again"
+        );
+        s.close().await;
+    }
+}
+
+/// Several servers on one store: a batch numbered from a stale view, or a
+/// unit key another server stored, is refused whole.
+#[tokio::test]
+async fn a_shared_store_refuses_stale_numbers_and_repeated_keys() {
+    for Backend { name, store: s, .. } in backends("shared").await {
+        if !s.shared() {
+            continue;
+        }
+        let d = s.create_dataset(&spec("a"), 1).await.expect("create");
+        let m = s
+            .register_model(d.id, "m", "1", "", 1)
+            .await
+            .expect("model");
+        let units: Vec<UnitRecord> = (0..10).map(|i| unit(i, &format!("k{i}"))).collect();
+        s.insert_units(d.id, &units, 2).await.expect("units");
+        let conflict = |r: Result<(), StoreError>| matches!(r, Err(StoreError::Conflict(_)));
+        assert!(
+            conflict(s.insert_units(d.id, &[unit(9, "other")], 3).await),
+            "{name}: a unit number stored twice"
+        );
+        assert!(
+            conflict(
+                s.insert_units(d.id, &[unit(10, "new"), unit(11, "k3")], 3)
+                    .await
+            ),
+            "{name}: a unit key stored twice"
+        );
+        let outcome = |unit_seq, seq| OutcomeRecord {
+            unit_seq,
+            seq,
+            value: 1.0,
+            observed_at_ms: 5,
+        };
+        s.insert_outcomes(d.id, &[outcome(0, 0), outcome(1, 1)], 4)
+            .await
+            .expect("outcomes");
+        assert!(
+            conflict(s.insert_outcomes(d.id, &[outcome(2, 1)], 5).await),
+            "{name}: an outcome number stored twice"
+        );
+        let prediction = |unit_seq, seq| PredictionRecord {
+            model_id: m.id,
+            unit_seq,
+            seq,
+            effect: 0.5,
+            predicted_at_ms: 1,
+        };
+        s.insert_predictions(d.id, &[prediction(0, 0)], 6)
+            .await
+            .expect("prediction");
+        assert!(
+            conflict(s.insert_predictions(d.id, &[prediction(1, 0)], 7).await),
+            "{name}: a prediction number stored twice"
+        );
+        assert_eq!(s.counts(d.id).await.expect("counts"), (10, 2, 1), "{name}");
+        s.close().await;
+    }
 }

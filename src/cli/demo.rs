@@ -502,14 +502,9 @@ pub fn run(args: &DemoArgs) -> ExitCode {
         metrics_listen: "127.0.0.1:0"
             .parse()
             .unwrap_or_else(|_| ([127, 0, 0, 1], 0).into()),
-        data_dir: dir.clone(),
         durability: Durability::Normal,
-        log_format: LogFormat::Human,
         log_level: "warn".into(),
-        limits: Default::default(),
-        require_token: None,
-        metrics_require_token: false,
-        tls: None,
+        ..Config::in_dir(dir.clone())
     };
     let runtime = match tokio::runtime::Builder::new_multi_thread()
         .enable_all()
@@ -534,7 +529,7 @@ pub fn run(args: &DemoArgs) -> ExitCode {
             "service on {} (gRPC), http://{}/metrics, store {}\n",
             running.grpc_addr,
             running.metrics_addr,
-            config.database_path().display()
+            config.store.display()
         );
         let result = drive(args, running.grpc_addr, running.metrics_addr).await;
         if let Err(e) = &result {

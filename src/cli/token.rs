@@ -1,5 +1,5 @@
-//! `plumbline token create | revoke | list`: access tokens, managed on the
-//! server's data directory (the server picks changes up within a second).
+//! `plumbline token create | revoke | list`: access tokens, managed in the
+//! server's store (the servers pick changes up within a second).
 
 use std::path::PathBuf;
 use std::process::ExitCode;
@@ -8,8 +8,8 @@ use clap::{Args, Subcommand};
 
 use super::EXIT_BAD_INPUT;
 use crate::auth::{issue, Scope};
-use crate::config::{DATABASE_FILE, DEFAULT_DATA_DIR};
-use crate::store::{self, Durability, StoreConfig};
+use crate::config::{DEFAULT_DATA_DIR, DEFAULT_STORE_URL};
+use crate::store::{self, Durability, Location, StoreConfig};
 
 #[derive(Debug, Args)]
 pub struct TokenArgs {
@@ -18,6 +18,9 @@ pub struct TokenArgs {
     /// Directory of the server's SQLite database.
     #[arg(long, env = "PLUMBLINE_DATA_DIR", default_value = DEFAULT_DATA_DIR, global = true)]
     pub data_dir: PathBuf,
+    /// The servers' store, as in `serve --store-url` (sqlite:PATH or postgres://...).
+    #[arg(long, env = "PLUMBLINE_STORE_URL", default_value = DEFAULT_STORE_URL, global = true)]
+    pub store_url: String,
 }
 
 #[derive(Debug, Subcommand)]
@@ -54,7 +57,13 @@ async fn apply(args: &TokenArgs) -> Result<(), (u8, String)> {
             .map_err(|e| (EXIT_BAD_INPUT, format!("--scope: {e}")))?,
         _ => Vec::new(),
     };
-    if !args.data_dir.is_dir() {
+    let location = Location::parse(&args.store_url, &args.data_dir).map_err(|e| {
+        (
+            EXIT_BAD_INPUT,
+            format!("--{e}").replace("--store_url", "--store-url"),
+        )
+    })?;
+    if matches!(location, Location::Sqlite(_)) && !args.data_dir.is_dir() {
         return Err((
             EXIT_BAD_INPUT,
             format!(
@@ -63,15 +72,14 @@ async fn apply(args: &TokenArgs) -> Result<(), (u8, String)> {
             ),
         ));
     }
-    let path = args.data_dir.join(DATABASE_FILE);
     // Beside a running server: tokens only, so no claim on the directory.
     let store = store::open(&StoreConfig {
-        path: path.clone(),
+        location: location.clone(),
         durability: Durability::Full,
         claim: false,
     })
     .await
-    .map_err(|e| fail(format!("{}: {e}", path.display())))?;
+    .map_err(|e| fail(format!("{}: {e}", location.display())))?;
     let result = match &args.action {
         TokenAction::Create { label, .. } => {
             let issued = issue(&scopes, label, now_ms()).map_err(fail)?;

@@ -45,6 +45,8 @@ pub struct OutcomeRecord {
 pub struct PredictionRecord {
     pub model_id: i64,
     pub unit_seq: i64,
+    /// Arrival order of predictions within the dataset, from 0.
+    pub seq: i64,
     pub effect: f64,
     pub predicted_at_ms: i64,
 }

@@ -1,5 +1,6 @@
 //! The second listener: `/metrics`, `/healthz` (the process is up) and
-//! `/readyz` (start-up finished: stores open, caches and fits rebuilt).
+//! `/readyz` (start-up finished: stores open, caches and fits rebuilt; its
+//! body names this server and the datasets it owns).
 
 use std::net::SocketAddr;
 use std::sync::atomic::{AtomicBool, Ordering};
@@ -19,6 +20,8 @@ use crate::shutdown::Shutdown;
 pub struct HttpState {
     pub metrics: Arc<Metrics>,
     pub ready: Arc<AtomicBool>,
+    /// This server's name and the datasets whose lease it holds.
+    pub ownership: Arc<Ownership>,
     /// When set, `/metrics` needs a bearer token with `admin` or `read:*`
     /// (the page shows every dataset). Probes stay open.
     pub gate: Option<Arc<Gate>>,
@@ -60,11 +63,45 @@ async fn healthz() -> impl IntoResponse {
     (StatusCode::OK, "ok\n")
 }
 
+/// Which datasets this server owns, as `/readyz` shows them; the monitor
+/// keeps it current.
+#[derive(Debug, Default)]
+pub struct Ownership {
+    holder: std::sync::RwLock<String>,
+    owned: std::sync::RwLock<std::collections::BTreeSet<String>>,
+}
+
+impl Ownership {
+    pub fn set_holder(&self, holder: &str) {
+        *self.holder.write().unwrap_or_else(|e| e.into_inner()) = holder.into();
+    }
+
+    pub fn set(&self, dataset: &str, owned: bool) {
+        let mut set = self.owned.write().unwrap_or_else(|e| e.into_inner());
+        if owned {
+            set.insert(dataset.into());
+        } else {
+            set.remove(dataset);
+        }
+    }
+
+    fn describe(&self) -> String {
+        let holder = self
+            .holder
+            .read()
+            .unwrap_or_else(|e| e.into_inner())
+            .clone();
+        let owned = self.owned.read().unwrap_or_else(|e| e.into_inner());
+        let names: Vec<&str> = owned.iter().map(String::as_str).collect();
+        format!("replica: {holder}\nowns: {}\n", names.join(", "))
+    }
+}
+
 async fn readyz(State(s): State<HttpState>) -> impl IntoResponse {
     if s.ready.load(Ordering::Acquire) {
-        (StatusCode::OK, "ready\n")
+        (StatusCode::OK, format!("ready\n{}", s.ownership.describe()))
     } else {
-        (StatusCode::SERVICE_UNAVAILABLE, "starting\n")
+        (StatusCode::SERVICE_UNAVAILABLE, "starting\n".to_string())
     }
 }
 

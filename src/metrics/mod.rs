@@ -121,6 +121,7 @@ pub struct Metrics {
     pub outcomes: Family<DatasetLabels, FloatGauge>,
     pub last_outcome_seconds: Family<DatasetLabels, FloatGauge>,
     pub events: Family<KindLabels, Counter>,
+    pub dataset_owned: Family<DatasetLabels, FloatGauge>,
 }
 
 impl Metrics {
@@ -150,6 +151,7 @@ impl Metrics {
             outcomes: Family::default(),
             last_outcome_seconds: Family::default(),
             events: Family::default(),
+            dataset_owned: Family::default(),
             registry: Registry::default(),
         };
         registry.register(
@@ -245,6 +247,12 @@ impl Metrics {
             m.last_outcome_seconds.clone(),
         );
         registry.register("events", "Events raised by kind", m.events.clone());
+        registry.register(
+            "dataset_owned",
+            "1 while this server owns the dataset's lease (recomputes it, stores its snapshots, \
+             raises its alerts and exports its scores), else 0",
+            m.dataset_owned.clone(),
+        );
         let mut m = m;
         m.registry = registry;
         Arc::new(m)

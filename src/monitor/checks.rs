@@ -500,6 +500,7 @@ pub fn check_predictions(
         out.new_rows.push(PredictionRecord {
             model_id: col.model.id,
             unit_seq: u as i64,
+            seq: cache.next_prediction_seq() + out.new_rows.len() as i64,
             effect: r.effect,
             predicted_at_ms: r.predicted_at_ms,
         });

@@ -9,22 +9,32 @@
 //! stream watch folds in the new units, stores a snapshot with the watch's
 //! state, then installs the results and raises the watch's events.
 //!
+//! Several servers may share one store (PostgreSQL). Every server keeps
+//! every dataset's cache and takes every call; each dataset has one owner
+//! at a time, by a lease with a fencing epoch (`leases.rs`), and only the
+//! owner recomputes, stores snapshots and raises the alerts' events. The
+//! others read what the owner and each other wrote (`follow.rs`).
+//!
 //! This file holds the [`Monitor`], each dataset's state and handle, the
 //! errors, start-up and the event channel. The rest of `impl Monitor` is
-//! one file per job: `rebuild.rs` (a dataset restored from the store at
-//! start), `registry.rs` (datasets and models), `intake.rs` (the three
-//! ingest methods and their counters), `publish.rs` (a recompute handed to
-//! the blocking pool, its snapshot stored, its boards installed, the
-//! watch's events raised), `export.rs` (boards and the watch as Prometheus
-//! series), `reads.rs` and `scheduler.rs`. `checks.rs` validates intake
-//! rows, `cache/` is the columnar cache, `recompute/` the blocking job.
+//! one file per job: `rebuild.rs` (a dataset restored from the store),
+//! `registry.rs` (datasets and models), `intake.rs` (the three ingest
+//! methods and their counters), `publish.rs` (a recompute handed to the
+//! blocking pool, its snapshot stored, its boards installed, the watch's
+//! events raised), `export.rs` (boards and the watch as Prometheus series),
+//! `leases.rs` (which datasets this server owns), `follow.rs` (catching up
+//! with the other servers' writes), `reads.rs` and `scheduler.rs`.
+//! `checks.rs` validates intake rows, `cache/` is the columnar cache,
+//! `recompute/` the blocking job.
 
 pub mod alerts;
 pub mod board;
 pub mod cache;
 pub mod checks;
 mod export;
+mod follow;
 mod intake;
+mod leases;
 mod publish;
 mod reads;
 mod rebuild;
@@ -33,7 +43,7 @@ mod registry;
 mod scheduler;
 
 use std::collections::{BTreeMap, HashMap};
-use std::sync::atomic::{AtomicBool, AtomicI64, Ordering};
+use std::sync::atomic::{AtomicBool, Ordering};
 use std::sync::{Arc, RwLock};
 use std::time::{SystemTime, UNIX_EPOCH};
 
@@ -44,11 +54,12 @@ use crate::domain::{Board, EventRecord, StoredDataset};
 use crate::estimate::watch::Watch;
 use crate::estimate::EstimateError;
 use crate::metrics::{KindLabels, Metrics};
-use crate::store::{Store, StoreError};
+use crate::store::{Fence, NewEvent, Store, StoreError};
 use alerts::Raised;
 use cache::DatasetCache;
 use checks::Rejection;
 pub use intake::BatchCounts;
+pub use leases::Replica;
 pub use publish::RecomputeSummary;
 pub use recompute::RecomputeOptions;
 use recompute::{NuisanceState, RecomputeInput};
@@ -99,6 +110,17 @@ struct DatasetState {
 }
 
 impl DatasetState {
+    /// A dataset with nothing read yet.
+    fn empty(stored: StoredDataset) -> Self {
+        Self {
+            cache: DatasetCache::new(stored.spec.feature_names.len()),
+            stored,
+            nuisance: None,
+            watch: Watch::default(),
+            pending_outcomes: 0,
+        }
+    }
+
     /// What a recompute reads. The scoring memo moves into the input (the
     /// recompute installs its successor), so that the job owns it and can
     /// extend it in place; if the job fails the next recompute starts over.
@@ -140,6 +162,10 @@ pub struct DatasetHandle {
     /// scoreboard read never queues behind intake batches or a recompute
     /// holding the dataset's lock. Replaced whole, under `state`'s lock.
     boards: RwLock<Arc<Boards>>,
+    /// This server's lease on the dataset, while it owns it.
+    lease: std::sync::Mutex<leases::Held>,
+    /// Events of the dataset read so far (see `follow.rs`).
+    events_seen: std::sync::Mutex<follow::EventsSeen>,
 }
 
 impl DatasetHandle {
@@ -152,6 +178,11 @@ impl DatasetHandle {
     fn publish(&self, boards: Boards) {
         *self.boards.write().unwrap_or_else(|e| e.into_inner()) = Arc::new(boards);
     }
+
+    /// The fence of this server's lease, while it owns the dataset.
+    pub(super) fn fence(&self) -> Option<Fence> {
+        self.lease.lock().unwrap_or_else(|e| e.into_inner()).fence()
+    }
 }
 
 pub struct Monitor {
@@ -161,23 +192,24 @@ pub struct Monitor {
     /// Serializes dataset creation so names stay unique.
     create: Mutex<()>,
     events: broadcast::Sender<EventRecord>,
-    next_snapshot: AtomicI64,
     ready: Arc<AtomicBool>,
     shutdown: crate::shutdown::ShutdownSignal,
+    replica: Replica,
 }
 
 impl Monitor {
-    /// Rebuilds every dataset's cache from the store, reproduces the latest
-    /// nuisance fit of each, and restores the latest scoreboards.
+    /// Rebuilds every dataset's cache from the store; for each dataset
+    /// whose lease it takes, also reproduces the latest nuisance fit and
+    /// restores the stream watch. Restores every dataset's latest boards.
     pub async fn open(
         store: Store,
         metrics: Arc<Metrics>,
         ready: Arc<AtomicBool>,
         shutdown: crate::shutdown::ShutdownSignal,
+        replica: Replica,
     ) -> MonitorResult<Arc<Self>> {
         let (events, _) = broadcast::channel(1024);
         let monitor = Arc::new(Self {
-            next_snapshot: AtomicI64::new(store.max_snapshot_id().await? + 1),
             store,
             metrics,
             datasets: RwLock::new(HashMap::new()),
@@ -185,13 +217,37 @@ impl Monitor {
             events,
             ready,
             shutdown,
+            replica,
         });
+        // Renewals run from the start: rebuilding a large dataset can take
+        // longer than its lease.
+        tokio::spawn(Arc::clone(&monitor).keep_leases());
         for stored in monitor.store.datasets().await? {
-            let (state, boards) = monitor.rebuild(stored).await?;
-            monitor.install(state, boards);
+            monitor.adopt(stored).await?;
         }
         monitor.ready.store(true, Ordering::Release);
         Ok(monitor)
+    }
+
+    /// Takes a stored dataset in: its handle, its lease if free (then its
+    /// state as the owner rebuilds it), else its state as a follower's.
+    async fn adopt(self: &Arc<Self>, stored: StoredDataset) -> MonitorResult<Arc<DatasetHandle>> {
+        // Events stored before the dataset is taken in are history, not news
+        // for the event streams.
+        let last_event = self.store.last_event_id(stored.id).await?;
+        let h = self.install(DatasetState::empty(stored.clone()), Boards::new());
+        h.events_seen
+            .lock()
+            .unwrap_or_else(|e| e.into_inner())
+            .start_after(last_event);
+        self.claim(&h).await?;
+        if h.fence().is_none() {
+            let (state, boards) = self.rebuild(stored, false).await?;
+            let mut st = h.state.lock().await;
+            *st = state;
+            h.publish(boards);
+        }
+        Ok(h)
     }
 
     fn install(&self, state: DatasetState, boards: Boards) -> Arc<DatasetHandle> {
@@ -202,6 +258,8 @@ impl Monitor {
             wake: Notify::new(),
             boards: RwLock::new(Arc::new(boards)),
             state: Mutex::new(state),
+            lease: std::sync::Mutex::new(leases::Held::none()),
+            events_seen: std::sync::Mutex::new(follow::EventsSeen::default()),
         });
         if let Ok(mut map) = self.datasets.write() {
             map.insert(handle.name.clone(), Arc::clone(&handle));
@@ -246,16 +304,29 @@ impl Monitor {
     }
 
     /// Stores an event, counts it and sends it to the event streams; a
-    /// failed write is logged, never fatal to what raised it.
-    async fn raise(&self, h: &DatasetHandle, snapshot_id: u64, r: Raised) {
+    /// failed write is logged, never fatal to what raised it. `fence` is
+    /// the owner's lease for the alerts' events, None for the registry's.
+    async fn raise(&self, h: &DatasetHandle, fence: Option<Fence>, snapshot_id: u64, r: Raised) {
         let at = now_ms();
         let details = r.details.to_string();
         match self
             .store
-            .insert_event(h.id, r.kind, at, snapshot_id as i64, &r.summary, &details)
+            .insert_event(&NewEvent {
+                dataset_id: h.id,
+                epoch: fence.map(|f| f.epoch),
+                kind: r.kind,
+                at_ms: at,
+                snapshot_id: snapshot_id as i64,
+                summary: &r.summary,
+                details_json: &details,
+            })
             .await
         {
             Ok(id) => {
+                h.events_seen
+                    .lock()
+                    .unwrap_or_else(|e| e.into_inner())
+                    .raised_here(id);
                 info!(dataset = %h.name, kind = r.kind, event = id, "{}", r.summary);
                 self.metrics
                     .events

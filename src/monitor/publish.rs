@@ -3,7 +3,6 @@
 //! and the watch's events raised.
 
 use std::collections::BTreeMap;
-use std::sync::atomic::Ordering;
 use std::sync::Arc;
 use std::time::Instant;
 
@@ -15,7 +14,7 @@ use super::recompute::RecomputeOptions;
 use super::{now_ms, DatasetHandle, Monitor, MonitorError, MonitorResult};
 use crate::domain::ScoreRow;
 use crate::metrics::{DatasetLabels, KindLabels, WindowLabels};
-use crate::store::NewSnapshot;
+use crate::store::{Fence, NewSnapshot, StoreError};
 
 /// What a recompute did.
 #[derive(Debug, Clone, Copy)]
@@ -73,6 +72,26 @@ impl Monitor {
         options: RecomputeOptions,
     ) -> MonitorResult<RecomputeSummary> {
         let _one_at_a_time = h.recompute.lock().await;
+        let Some(fence) = h.fence() else {
+            return Err(MonitorError::FailedPrecondition(format!(
+                "dataset {:?} is recomputed by the server that owns it, not this one; \
+                 its scoreboards here follow that server's",
+                h.name
+            )));
+        };
+        let result = self.recompute_owned(h, fence, options).await;
+        if let Err(MonitorError::Store(StoreError::Fenced(why))) = &result {
+            self.demote(h, why).await;
+        }
+        result
+    }
+
+    async fn recompute_owned(
+        &self,
+        h: &Arc<DatasetHandle>,
+        fence: Fence,
+        options: RecomputeOptions,
+    ) -> MonitorResult<RecomputeSummary> {
         let started = Instant::now();
         let now = now_ms();
         let (input, outcomes_in_input) = {
@@ -103,7 +122,7 @@ impl Monitor {
             nuisance.fit_id = self
                 .store
                 .insert_fit(
-                    h.id,
+                    fence,
                     now,
                     nuisance.fit_units as i64,
                     nuisance.last_outcome_seq,
@@ -113,7 +132,7 @@ impl Monitor {
                 .await?;
             nuisance.fitted_at_ms = now;
         }
-        let snapshot_id = self.next_snapshot.fetch_add(1, Ordering::SeqCst);
+        let snapshot_id = self.store.next_snapshot_id().await?;
         let mut boards = BTreeMap::new();
         let mut changed = Vec::new();
         let mut scores = Vec::new();
@@ -167,7 +186,7 @@ impl Monitor {
         self.store
             .insert_snapshot(&NewSnapshot {
                 id: snapshot_id,
-                dataset_id: h.id,
+                fence,
                 computed_at_ms: now,
                 fit_id: Some(nuisance.fit_id),
                 refitted: computed.refit.is_some(),
@@ -209,12 +228,13 @@ impl Monitor {
                     })
                     .inc();
             }
-            self.raise(h, snapshot_id as u64, r).await;
+            self.raise(h, Some(fence), snapshot_id as u64, r).await;
         }
         if let Some(reason) = computed.refit {
             let report = &nuisance.report;
             self.raise(
                 h,
+                Some(fence),
                 snapshot_id as u64,
                 Raised {
                     kind: "nuisance_refit",

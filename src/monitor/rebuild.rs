@@ -8,15 +8,17 @@ use super::cache::DatasetCache;
 use super::recompute::NuisanceState;
 use super::{now_ms, Boards, DatasetState, Monitor, MonitorError, MonitorResult};
 use crate::domain::StoredDataset;
-use crate::estimate::watch::Watch;
 use crate::metrics::DatasetLabels;
 use crate::store::StoreError;
 
 impl Monitor {
-    /// A dataset's state and its latest boards, from the store.
+    /// A dataset's state and its latest boards, from the store. An owner's
+    /// state also has the latest nuisance fit (reproduced) and the stream
+    /// watch; a follower's only the rows, which intake checks against.
     pub(super) async fn rebuild(
         &self,
         stored: StoredDataset,
+        owner: bool,
     ) -> MonitorResult<(DatasetState, Boards)> {
         let span = info_span!("rebuild", dataset = %stored.spec.name);
         async {
@@ -24,7 +26,7 @@ impl Monitor {
             // Keys are unique by intake's check, not by an index (see
             // migrations/sqlite/0003): a store that holds one twice was
             // written by something else, and is refused rather than served.
-            let mut units = self.store.units(stored.id);
+            let mut units = self.store.units(stored.id, 0);
             while let Some(u) = units.next().await {
                 let u = u?;
                 if let Some(first) = cache.unit_of(&u.key) {
@@ -37,7 +39,7 @@ impl Monitor {
                 cache.add_unit(&u);
             }
             drop(units);
-            let mut outcomes = self.store.outcomes(stored.id);
+            let mut outcomes = self.store.outcomes(stored.id, 0);
             while let Some(o) = outcomes.next().await {
                 cache.add_outcome(&o?);
             }
@@ -45,7 +47,7 @@ impl Monitor {
             for m in self.store.models(stored.id).await? {
                 cache.add_model(m);
             }
-            let mut predictions = self.store.predictions(stored.id);
+            let mut predictions = self.store.predictions(stored.id, 0);
             while let Some(p) = predictions.next().await {
                 let p = p?;
                 if let Some(m) = cache.model_by_id(p.model_id) {
@@ -54,12 +56,22 @@ impl Monitor {
             }
             drop(predictions);
             let mut state = DatasetState {
-                stored: stored.clone(),
                 cache,
-                nuisance: None,
-                watch: Watch::default(),
-                pending_outcomes: 0,
+                ..DatasetState::empty(stored.clone())
             };
+            let mut latest = Boards::new();
+            for board in self.store.latest_boards(stored.id).await? {
+                latest.insert(board.window.key(), board);
+            }
+            if !owner {
+                info!(
+                    units = state.cache.units(),
+                    outcomes = state.cache.outcomes(),
+                    "dataset read (another server owns it)"
+                );
+                self.update_counts(&state);
+                return Ok((state, latest));
+            }
             if let Some(fit) = self.store.latest_fit(stored.id).await? {
                 let input = state.recompute_input(now_ms());
                 let limit = fit.last_outcome_seq;
@@ -71,10 +83,6 @@ impl Monitor {
                     fitted_at_ms: fit.fitted_at_ms,
                     ..reproduced
                 });
-            }
-            let mut latest = Boards::new();
-            for board in self.store.latest_boards(stored.id).await? {
-                latest.insert(board.window.key(), board);
             }
             match self.store.latest_watch(stored.id).await? {
                 Some(json) => {

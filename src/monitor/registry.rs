@@ -5,11 +5,10 @@ use std::sync::Arc;
 use tracing::info;
 
 use super::alerts::Raised;
-use super::cache::DatasetCache;
-use super::{now_ms, Boards, DatasetState, Monitor, MonitorError, MonitorResult};
+use super::{now_ms, Boards, DatasetHandle, DatasetState, Monitor, MonitorError, MonitorResult};
 use crate::domain::{spec, DatasetSpec, StoredDataset, StoredModel};
 use crate::estimate::data::{CONSTANT_EFFECT, ZERO_EFFECT};
-use crate::estimate::watch::Watch;
+use crate::store::StoreError;
 
 /// A dataset with its counts, for the registry API.
 #[derive(Debug, Clone)]
@@ -42,32 +41,44 @@ impl Monitor {
         let spec = spec
             .normalized()
             .map_err(|(field, reason)| MonitorError::Invalid { field, reason })?;
-        let _guard = self.create.lock().await;
+        let guard = self.create.lock().await;
         if let Ok(h) = self.handle(&spec.name) {
-            let st = h.state.lock().await;
-            return if st.stored.spec == spec {
-                Ok(st.info())
-            } else {
-                Err(MonitorError::AlreadyExists(format!(
-                    "dataset {:?} exists with other settings",
-                    spec.name
-                )))
-            };
+            return Self::same_spec(&h, &spec).await;
         }
-        let stored = self.store.create_dataset(&spec, now_ms()).await?;
-        let state = DatasetState {
-            cache: DatasetCache::new(spec.feature_names.len()),
-            stored,
-            nuisance: None,
-            watch: Watch::default(),
-            pending_outcomes: 0,
+        let stored = match self.store.create_dataset(&spec, now_ms()).await {
+            Ok(stored) => stored,
+            Err(StoreError::Conflict(_)) if self.store.shared() => {
+                // Another server created it a moment ago: take it in, then
+                // answer as for a dataset this server knew.
+                self.adopt_new_datasets(&guard).await?;
+                let h = self.handle(&spec.name)?;
+                return Self::same_spec(&h, &spec).await;
+            }
+            Err(e) => return Err(e.into()),
         };
-        let info = state.info();
-        self.update_counts(&state);
-        let handle = self.install(state, Boards::new());
-        self.spawn_scheduler(handle);
+        let h = self.install(DatasetState::empty(stored), Boards::new());
+        self.claim(&h).await?;
+        let info = {
+            let st = h.state.lock().await;
+            self.update_counts(&st);
+            st.info()
+        };
+        self.spawn_scheduler(h);
         info!(dataset = %spec.name, features = spec.feature_names.len(), "dataset created");
         Ok(info)
+    }
+
+    /// A create of a dataset that exists: the same settings are a no-op.
+    async fn same_spec(h: &DatasetHandle, spec: &DatasetSpec) -> MonitorResult<DatasetInfo> {
+        let st = h.state.lock().await;
+        if st.stored.spec == *spec {
+            Ok(st.info())
+        } else {
+            Err(MonitorError::AlreadyExists(format!(
+                "dataset {:?} exists with other settings",
+                spec.name
+            )))
+        }
     }
 
     pub async fn dataset(&self, name: &str) -> MonitorResult<DatasetInfo> {
@@ -109,24 +120,39 @@ impl Monitor {
         }
         let h = self.handle(dataset)?;
         let mut st = h.state.lock().await;
-        if let Some(&m) = st.cache.model_index.get(name) {
-            let col = &st.cache.models[m];
-            return if col.model.version == version && col.model.description == description {
-                Ok((col.model.clone(), col.count))
-            } else {
-                Err(MonitorError::AlreadyExists(format!(
-                    "model {name:?} is registered with another version or description"
-                )))
-            };
-        }
-        let model = self
-            .store
-            .register_model(h.id, name, version, description, now_ms())
-            .await?;
+        self.fresh(&mut st).await?;
+        let mut retried = false;
+        let model = loop {
+            if let Some(&m) = st.cache.model_index.get(name) {
+                let col = &st.cache.models[m];
+                return if col.model.version == version && col.model.description == description {
+                    Ok((col.model.clone(), col.count))
+                } else {
+                    Err(MonitorError::AlreadyExists(format!(
+                        "model {name:?} is registered with another version or description"
+                    )))
+                };
+            }
+            match self
+                .store
+                .register_model(h.id, name, version, description, now_ms())
+                .await
+            {
+                Ok(model) => break model,
+                // Registered by another server a moment ago: read it and
+                // answer as for a model this server knew.
+                Err(StoreError::Conflict(_)) if self.store.shared() && !retried => {
+                    retried = true;
+                    self.catch_up(&mut st).await?;
+                }
+                Err(e) => return Err(e.into()),
+            }
+        };
         st.cache.add_model(model.clone());
         drop(st);
         self.raise(
             &h,
+            None,
             0,
             Raised {
                 kind: "model_registered",
@@ -161,6 +187,7 @@ impl Monitor {
     ) -> MonitorResult<(StoredModel, u64)> {
         let h = self.handle(dataset)?;
         let mut st = h.state.lock().await;
+        self.fresh(&mut st).await?;
         let Some(&m) = st.cache.model_index.get(name) else {
             return Err(MonitorError::NotFound(format!(
                 "model {name:?} is not registered"
@@ -179,6 +206,7 @@ impl Monitor {
         drop(st);
         self.raise(
             &h,
+            None,
             0,
             Raised {
                 kind: "model_retired",

@@ -7,8 +7,12 @@ use super::{DatasetHandle, Monitor, RecomputeOptions};
 use crate::shutdown::Shutdown;
 
 impl Monitor {
-    /// Starts the recompute scheduler of every dataset.
+    /// Starts the recompute scheduler of every dataset and, on a shared
+    /// store, the task that follows the other servers' writes.
     pub fn start_schedulers(self: &Arc<Self>) {
+        if self.store.shared() {
+            tokio::spawn(Arc::clone(self).follow());
+        }
         for h in self.handles() {
             if h.boards().is_empty() {
                 // Outcomes but no boards (see `rebuild`): recompute now.
@@ -44,7 +48,8 @@ impl Monitor {
                 return;
             }
             let pending = h.state.lock().await.pending_outcomes;
-            if pending == 0 {
+            // Only the dataset's owner recomputes it (see `leases.rs`).
+            if pending == 0 || h.fence().is_none() {
                 continue;
             }
             let _ = self.recompute(&h.name, RecomputeOptions::default()).await;

@@ -1,6 +1,7 @@
 //! Helpers shared by the integration tests.
 #![allow(dead_code)]
 
+pub mod pg;
 pub mod service;
 
 use std::path::PathBuf;

@@ -7,7 +7,7 @@ use std::net::{SocketAddr, TcpStream};
 use std::path::PathBuf;
 
 use plumbline::api::pb;
-use plumbline::config::{Config, LogFormat};
+use plumbline::config::Config;
 use plumbline::server::{start, Running};
 use plumbline::store::Durability;
 use tonic::transport::Channel;
@@ -39,14 +39,9 @@ pub fn config(dir: &TempDir) -> Config {
     Config {
         listen: "127.0.0.1:0".parse().expect("addr"),
         metrics_listen: "127.0.0.1:0".parse().expect("addr"),
-        data_dir: dir.0.clone(),
         durability: Durability::Normal,
-        log_format: LogFormat::Human,
         log_level: "warn".into(),
-        limits: Default::default(),
-        require_token: None,
-        metrics_require_token: false,
-        tls: None,
+        ..Config::in_dir(dir.0.clone())
     }
 }
 

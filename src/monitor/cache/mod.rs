@@ -211,6 +211,12 @@ impl DatasetCache {
     pub fn next_outcome_seq(&self) -> i64 {
         self.outcomes() as i64
     }
+
+    /// Predictions are numbered in arrival order; each stored one is counted
+    /// once in its model's column.
+    pub fn next_prediction_seq(&self) -> i64 {
+        self.predictions() as i64
+    }
 }
 
 #[cfg(test)]

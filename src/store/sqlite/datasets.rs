@@ -173,13 +173,14 @@ impl DatasetLog for SqliteStore {
         let mut tx = self.pool.begin().await?;
         for chunk in rows.chunks(INSERT_CHUNK) {
             let mut q: QueryBuilder<Sqlite> = QueryBuilder::new(
-                "INSERT INTO predictions (dataset_id, model_id, unit_seq, effect, predicted_at_ms, \
-                 received_at_ms) ",
+                "INSERT INTO predictions (dataset_id, model_id, unit_seq, seq, effect, \
+                 predicted_at_ms, received_at_ms) ",
             );
             q.push_values(chunk, |mut b, p| {
                 b.push_bind(dataset_id)
                     .push_bind(p.model_id)
                     .push_bind(p.unit_seq)
+                    .push_bind(p.seq)
                     .push_bind(p.effect)
                     .push_bind(p.predicted_at_ms)
                     .push_bind(now_ms);
@@ -190,14 +191,15 @@ impl DatasetLog for SqliteStore {
         Ok(())
     }
 
-    fn units(&self, dataset_id: i64) -> RowStream<'_, UnitRecord> {
+    fn units(&self, dataset_id: i64, from: i64) -> RowStream<'_, UnitRecord> {
         // Streamed one row at a time: a rebuild never holds the table.
         Box::pin(
             sqlx::query(
                 "SELECT seq, key, features, treatment, propensity, cohort, assigned_at_ms \
-                 FROM units WHERE dataset_id = ? ORDER BY seq",
+                 FROM units WHERE dataset_id = ? AND seq >= ? ORDER BY seq",
             )
             .bind(dataset_id)
+            .bind(from)
             .fetch(&self.pool)
             .map(|r| {
                 let r = r?;
@@ -214,13 +216,14 @@ impl DatasetLog for SqliteStore {
         )
     }
 
-    fn outcomes(&self, dataset_id: i64) -> RowStream<'_, OutcomeRecord> {
+    fn outcomes(&self, dataset_id: i64, from: i64) -> RowStream<'_, OutcomeRecord> {
         Box::pin(
             sqlx::query(
                 "SELECT unit_seq, seq, value, observed_at_ms FROM outcomes \
-                 WHERE dataset_id = ? ORDER BY seq",
+                 WHERE dataset_id = ? AND seq >= ? ORDER BY seq",
             )
             .bind(dataset_id)
+            .bind(from)
             .fetch(&self.pool)
             .map(|r| {
                 let r = r?;
@@ -234,21 +237,26 @@ impl DatasetLog for SqliteStore {
         )
     }
 
-    fn predictions(&self, dataset_id: i64) -> RowStream<'_, PredictionRecord> {
+    /// One server writes a SQLite store, so only a rebuild reads this, from
+    /// 0: no index on the order (it would slow every prediction batch), and
+    /// the rows come in the table's order.
+    fn predictions(&self, dataset_id: i64, from: i64) -> RowStream<'_, PredictionRecord> {
         Box::pin(
             sqlx::query(
-                "SELECT model_id, unit_seq, effect, predicted_at_ms FROM predictions \
-                 WHERE dataset_id = ?",
+                "SELECT model_id, unit_seq, seq, effect, predicted_at_ms FROM predictions \
+                 WHERE dataset_id = ? AND seq >= ?",
             )
             .bind(dataset_id)
+            .bind(from)
             .fetch(&self.pool)
             .map(|r| {
                 let r = r?;
                 Ok(PredictionRecord {
                     model_id: r.get(0),
                     unit_seq: r.get(1),
-                    effect: r.get(2),
-                    predicted_at_ms: r.get(3),
+                    seq: r.get(2),
+                    effect: r.get(3),
+                    predicted_at_ms: r.get(4),
                 })
             }),
         )

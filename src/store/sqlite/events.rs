@@ -3,36 +3,50 @@
 use async_trait::async_trait;
 use sqlx::Row;
 
-use super::SqliteStore;
+use super::{check_fence, SqliteStore};
 use crate::domain::EventRecord;
-use crate::store::{EventLog, StoreResult};
+use crate::store::{EventLog, Fence, NewEvent, StoreResult};
 
 #[async_trait]
 impl EventLog for SqliteStore {
-    async fn insert_event(
-        &self,
-        dataset_id: i64,
-        kind: &str,
-        at_ms: i64,
-        snapshot_id: i64,
-        summary: &str,
-        details_json: &str,
-    ) -> StoreResult<i64> {
-        Ok(sqlx::query_scalar(
+    async fn insert_event(&self, e: &NewEvent<'_>) -> StoreResult<i64> {
+        // One writer per SQLite store: ids are in commit order already.
+        let mut tx = self.pool.begin().await?;
+        let id = sqlx::query_scalar(
             "INSERT INTO events (dataset_id, kind, at_ms, snapshot_id, summary, details_json) \
              VALUES (?, ?, ?, ?, ?, ?) RETURNING id",
         )
-        .bind(dataset_id)
-        .bind(kind)
-        .bind(at_ms)
-        .bind(snapshot_id)
-        .bind(summary)
-        .bind(details_json)
-        .fetch_one(&self.pool)
-        .await?)
+        .bind(e.dataset_id)
+        .bind(e.kind)
+        .bind(e.at_ms)
+        .bind(e.snapshot_id)
+        .bind(e.summary)
+        .bind(e.details_json)
+        .fetch_one(&mut *tx)
+        .await?;
+        if let Some(epoch) = e.epoch {
+            check_fence(
+                &mut tx,
+                Fence {
+                    dataset_id: e.dataset_id,
+                    epoch,
+                },
+            )
+            .await?;
+        }
+        tx.commit().await?;
+        Ok(id)
     }
 
-    /// Events after an id, oldest first; `dataset_id` None for all datasets.
+    async fn last_event_id(&self, dataset_id: i64) -> StoreResult<i64> {
+        Ok(
+            sqlx::query_scalar("SELECT COALESCE(MAX(id), 0) FROM events WHERE dataset_id = ?")
+                .bind(dataset_id)
+                .fetch_one(&self.pool)
+                .await?,
+        )
+    }
+
     async fn events(
         &self,
         dataset_id: Option<i64>,

@@ -13,7 +13,9 @@
 //! [`CHECKPOINT_EVERY`] on a connection of its own, beside the writer, so an
 //! intake batch waits only for its own WAL append and fsync.
 
+use std::path::Path;
 use std::str::FromStr;
+use std::sync::atomic::AtomicI64;
 use std::sync::{Arc, Weak};
 use std::time::Duration;
 
@@ -21,32 +23,28 @@ use async_trait::async_trait;
 use sqlx::sqlite::{
     SqliteConnectOptions, SqliteJournalMode, SqlitePool, SqlitePoolOptions, SqliteSynchronous,
 };
+use sqlx::SqliteConnection;
 
-use super::{Backend, Durability, StoreConfig, StoreError, StoreResult};
+use super::{Backend, Durability, Fence, StoreConfig, StoreError, StoreResult};
 
 mod claim;
 mod datasets;
 mod events;
+mod leases;
 mod snapshots;
 mod tokens;
 
 pub use claim::Claim;
 
-impl From<sqlx::Error> for StoreError {
-    fn from(e: sqlx::Error) -> Self {
-        match &e {
-            sqlx::Error::Database(db) if db.is_unique_violation() => {
-                StoreError::Conflict(db.message().to_string())
-            }
-            _ => StoreError::Backend(e.to_string()),
-        }
-    }
-}
-
-impl From<sqlx::migrate::MigrateError> for StoreError {
-    fn from(e: sqlx::migrate::MigrateError) -> Self {
-        StoreError::Backend(format!("migration failed: {e}"))
-    }
+/// Refuses a fenced write (inside its transaction) unless the dataset's
+/// lease is still at the fence's epoch.
+async fn check_fence(conn: &mut SqliteConnection, fence: Fence) -> StoreResult<()> {
+    let epoch: Option<i64> =
+        sqlx::query_scalar("SELECT epoch FROM dataset_leases WHERE dataset_id = ?")
+            .bind(fence.dataset_id)
+            .fetch_optional(&mut *conn)
+            .await?;
+    fence.admits(epoch)
 }
 
 /// Packs features as little-endian doubles: 8 bytes a feature, exact.
@@ -111,20 +109,26 @@ pub struct SqliteStore {
     /// The data directory's claim, for a server; released on close (or
     /// drop), so a server stopped in-process can be started again.
     claim: std::sync::Mutex<Option<Claim>>,
+    /// The next snapshot id (see [`crate::store::SnapshotLog::next_snapshot_id`]).
+    next_snapshot: AtomicI64,
 }
 
 impl SqliteStore {
     /// Claims the data directory (for a server), opens (creating if needed)
     /// the database file and applies migrations.
-    pub async fn open(config: &StoreConfig) -> StoreResult<Self> {
+    pub async fn open(path: &Path, config: &StoreConfig) -> StoreResult<Self> {
+        if let Some(dir) = path.parent().filter(|d| !d.as_os_str().is_empty()) {
+            std::fs::create_dir_all(dir)
+                .map_err(|e| StoreError::Backend(format!("{}: {e}", dir.display())))?;
+        }
         let claim = if config.claim {
-            Some(Claim::take(&config.path)?)
+            Some(Claim::take(path)?)
         } else {
             None
         };
         let durability = config.durability;
         let options = SqliteConnectOptions::from_str("sqlite://")?
-            .filename(&config.path)
+            .filename(path)
             .create_if_missing(true)
             .journal_mode(SqliteJournalMode::Wal)
             .synchronous(match durability {
@@ -142,12 +146,23 @@ impl SqliteStore {
             .connect_with(options)
             .await?;
         sqlx::migrate!("./migrations/sqlite").run(&pool).await?;
+        if claim.is_some() {
+            // The claim proves every earlier server on this directory is
+            // gone: their leases are void, and this server takes them all.
+            sqlx::query("UPDATE dataset_leases SET expires_at_ms = 0")
+                .execute(&pool)
+                .await?;
+        }
+        let largest: i64 = sqlx::query_scalar("SELECT COALESCE(MAX(id), 0) FROM snapshots")
+            .fetch_one(&pool)
+            .await?;
         let alive = Arc::new(());
         tokio::spawn(checkpoints(pool.clone(), Arc::downgrade(&alive)));
         Ok(Self {
             pool,
             _alive: alive,
             claim: std::sync::Mutex::new(claim),
+            next_snapshot: AtomicI64::new(largest + 1),
         })
     }
 }

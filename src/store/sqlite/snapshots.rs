@@ -4,33 +4,39 @@
 use async_trait::async_trait;
 use sqlx::{QueryBuilder, Row, Sqlite};
 
-use super::{SqliteStore, INSERT_CHUNK};
+use std::sync::atomic::Ordering;
+
+use super::{check_fence, SqliteStore, INSERT_CHUNK};
 use crate::domain::{Board, FitRecord, HistoryRow};
-use crate::store::{HistoryQuery, NewSnapshot, SnapshotLog, StoreError, StoreResult};
+use crate::store::{Fence, HistoryQuery, NewSnapshot, SnapshotLog, StoreError, StoreResult};
 
 #[async_trait]
 impl SnapshotLog for SqliteStore {
     async fn insert_fit(
         &self,
-        dataset_id: i64,
+        fence: Fence,
         now_ms: i64,
         units: i64,
         last_outcome_seq: i64,
         seed: i64,
         report_json: &str,
     ) -> StoreResult<i64> {
-        Ok(sqlx::query_scalar(
+        let mut tx = self.pool.begin().await?;
+        let id = sqlx::query_scalar(
             "INSERT INTO nuisance_fits (dataset_id, fitted_at_ms, units, last_outcome_seq, seed, report_json) \
              VALUES (?, ?, ?, ?, ?, ?) RETURNING id",
         )
-        .bind(dataset_id)
+        .bind(fence.dataset_id)
         .bind(now_ms)
         .bind(units)
         .bind(last_outcome_seq)
         .bind(seed)
         .bind(report_json)
-        .fetch_one(&self.pool)
-        .await?)
+        .fetch_one(&mut *tx)
+        .await?;
+        check_fence(&mut tx, fence).await?;
+        tx.commit().await?;
+        Ok(id)
     }
 
     async fn latest_fit(&self, dataset_id: i64) -> StoreResult<Option<FitRecord>> {
@@ -54,7 +60,7 @@ impl SnapshotLog for SqliteStore {
     async fn insert_snapshot(&self, snap: &NewSnapshot<'_>) -> StoreResult<()> {
         let NewSnapshot {
             id,
-            dataset_id,
+            fence,
             computed_at_ms: now_ms,
             fit_id,
             refitted,
@@ -73,6 +79,7 @@ impl SnapshotLog for SqliteStore {
                     .map_err(|e| StoreError::Corrupt(format!("board {:?}: {e}", b.window)))
             })
             .collect::<StoreResult<Vec<_>>>()?;
+        let dataset_id = fence.dataset_id;
         let mut tx = self.pool.begin().await?;
         sqlx::query(
             "INSERT INTO snapshots (id, dataset_id, computed_at_ms, fit_id, refitted, millis) \
@@ -125,6 +132,7 @@ impl SnapshotLog for SqliteStore {
         .bind(watch)
         .execute(&mut *tx)
         .await?;
+        check_fence(&mut tx, fence).await?;
         tx.commit().await?;
         Ok(())
     }
@@ -162,10 +170,16 @@ impl SnapshotLog for SqliteStore {
         Ok(row.map(|r| r.get(0)))
     }
 
-    /// Largest snapshot id in the store (0 when none).
-    async fn max_snapshot_id(&self) -> StoreResult<i64> {
+    /// One server writes a SQLite store: a counter that started above the
+    /// largest stored id when the store opened.
+    async fn next_snapshot_id(&self) -> StoreResult<i64> {
+        Ok(self.next_snapshot.fetch_add(1, Ordering::Relaxed))
+    }
+
+    async fn latest_snapshot_id(&self, dataset_id: i64) -> StoreResult<i64> {
         Ok(
-            sqlx::query_scalar("SELECT COALESCE(MAX(id), 0) FROM snapshots")
+            sqlx::query_scalar("SELECT COALESCE(MAX(id), 0) FROM snapshots WHERE dataset_id = ?")
+                .bind(dataset_id)
                 .fetch_one(&self.pool)
                 .await?,
         )

@@ -1,0 +1,316 @@
+//! Datasets, models, and the rows they accept, in PostgreSQL.
+
+use async_trait::async_trait;
+use sqlx::Row;
+use tokio_stream::StreamExt;
+
+use super::{PgStore, INSERT_CHUNK};
+use crate::domain::{
+    DatasetSpec, OutcomeRecord, PredictionRecord, StoredDataset, StoredModel, UnitRecord,
+};
+use crate::store::sqlite::{pack_features, unpack_features};
+use crate::store::{DatasetLog, RowStream, StoreError, StoreResult};
+
+#[async_trait]
+impl DatasetLog for PgStore {
+    async fn create_dataset(&self, spec: &DatasetSpec, now_ms: i64) -> StoreResult<StoredDataset> {
+        let json = serde_json::to_string(spec).map_err(|e| StoreError::Corrupt(e.to_string()))?;
+        let mut tx = self.pool.begin().await?;
+        let id: i64 = sqlx::query_scalar(
+            "INSERT INTO datasets (name, spec_json, created_at_ms) VALUES ($1, $2, $3) RETURNING id",
+        )
+        .bind(&spec.name)
+        .bind(json)
+        .bind(now_ms)
+        .fetch_one(&mut *tx)
+        .await?;
+        // A lapsed lease from the start: the row every event writer of the
+        // dataset locks exists before any event is written.
+        sqlx::query(
+            "INSERT INTO dataset_leases (dataset_id, holder, epoch, expires_at_ms) \
+             VALUES ($1, '', 0, 0)",
+        )
+        .bind(id)
+        .execute(&mut *tx)
+        .await?;
+        tx.commit().await?;
+        Ok(StoredDataset {
+            id,
+            spec: spec.clone(),
+            created_at_ms: now_ms,
+        })
+    }
+
+    async fn datasets(&self) -> StoreResult<Vec<StoredDataset>> {
+        let rows = sqlx::query("SELECT id, spec_json, created_at_ms FROM datasets ORDER BY id")
+            .fetch_all(&self.pool)
+            .await?;
+        rows.into_iter()
+            .map(|r| {
+                let spec: DatasetSpec = serde_json::from_str(r.get::<&str, _>(1))
+                    .map_err(|e| StoreError::Corrupt(format!("dataset spec: {e}")))?;
+                Ok(StoredDataset {
+                    id: r.get(0),
+                    spec,
+                    created_at_ms: r.get(2),
+                })
+            })
+            .collect()
+    }
+
+    async fn register_model(
+        &self,
+        dataset_id: i64,
+        name: &str,
+        version: &str,
+        description: &str,
+        now_ms: i64,
+    ) -> StoreResult<StoredModel> {
+        let id: i64 = sqlx::query_scalar(
+            "INSERT INTO models (dataset_id, name, version, description, registered_at_ms) \
+             VALUES ($1, $2, $3, $4, $5) RETURNING id",
+        )
+        .bind(dataset_id)
+        .bind(name)
+        .bind(version)
+        .bind(description)
+        .bind(now_ms)
+        .fetch_one(&self.pool)
+        .await?;
+        Ok(StoredModel {
+            id,
+            dataset_id,
+            name: name.into(),
+            version: version.into(),
+            description: description.into(),
+            registered_at_ms: now_ms,
+            retired_at_ms: 0,
+        })
+    }
+
+    async fn retire_model(&self, model_id: i64, now_ms: i64) -> StoreResult<()> {
+        sqlx::query("UPDATE models SET retired_at_ms = $1 WHERE id = $2 AND retired_at_ms = 0")
+            .bind(now_ms)
+            .bind(model_id)
+            .execute(&self.pool)
+            .await?;
+        Ok(())
+    }
+
+    async fn models(&self, dataset_id: i64) -> StoreResult<Vec<StoredModel>> {
+        let rows = sqlx::query(
+            "SELECT id, name, version, description, registered_at_ms, retired_at_ms \
+             FROM models WHERE dataset_id = $1 ORDER BY id",
+        )
+        .bind(dataset_id)
+        .fetch_all(&self.pool)
+        .await?;
+        Ok(rows
+            .into_iter()
+            .map(|r| StoredModel {
+                id: r.get(0),
+                dataset_id,
+                name: r.get(1),
+                version: r.get(2),
+                description: r.get(3),
+                registered_at_ms: r.get(4),
+                retired_at_ms: r.get(5),
+            })
+            .collect())
+    }
+
+    async fn insert_units(
+        &self,
+        dataset_id: i64,
+        rows: &[UnitRecord],
+        now_ms: i64,
+    ) -> StoreResult<()> {
+        let mut tx = self.pool.begin().await?;
+        for chunk in rows.chunks(INSERT_CHUNK) {
+            let seq: Vec<i64> = chunk.iter().map(|u| u.seq).collect();
+            let key: Vec<&str> = chunk.iter().map(|u| u.key.as_str()).collect();
+            let features: Vec<Vec<u8>> = chunk.iter().map(|u| pack_features(&u.features)).collect();
+            let treatment: Vec<i16> = chunk.iter().map(|u| i16::from(u.treatment)).collect();
+            let propensity: Vec<Option<f64>> = chunk.iter().map(|u| u.propensity).collect();
+            let cohort: Vec<&str> = chunk.iter().map(|u| u.cohort.as_str()).collect();
+            let assigned: Vec<i64> = chunk.iter().map(|u| u.assigned_at_ms).collect();
+            sqlx::query(
+                "INSERT INTO units (dataset_id, seq, key, features, treatment, propensity, \
+                 cohort, assigned_at_ms, received_at_ms) \
+                 SELECT $1, u.seq, u.key, u.features, u.treatment, u.propensity, u.cohort, \
+                        u.assigned_at_ms, $2 \
+                 FROM UNNEST($3::BIGINT[], $4::TEXT[], $5::BYTEA[], $6::SMALLINT[], \
+                             $7::DOUBLE PRECISION[], $8::TEXT[], $9::BIGINT[]) \
+                      AS u (seq, key, features, treatment, propensity, cohort, assigned_at_ms)",
+            )
+            .bind(dataset_id)
+            .bind(now_ms)
+            .bind(seq)
+            .bind(key)
+            .bind(features)
+            .bind(treatment)
+            .bind(propensity)
+            .bind(cohort)
+            .bind(assigned)
+            .execute(&mut *tx)
+            .await?;
+        }
+        tx.commit().await?;
+        Ok(())
+    }
+
+    async fn insert_outcomes(
+        &self,
+        dataset_id: i64,
+        rows: &[OutcomeRecord],
+        now_ms: i64,
+    ) -> StoreResult<()> {
+        let mut tx = self.pool.begin().await?;
+        for chunk in rows.chunks(INSERT_CHUNK) {
+            let unit_seq: Vec<i64> = chunk.iter().map(|o| o.unit_seq).collect();
+            let seq: Vec<i64> = chunk.iter().map(|o| o.seq).collect();
+            let value: Vec<f64> = chunk.iter().map(|o| o.value).collect();
+            let observed: Vec<i64> = chunk.iter().map(|o| o.observed_at_ms).collect();
+            sqlx::query(
+                "INSERT INTO outcomes (dataset_id, unit_seq, seq, value, observed_at_ms, \
+                 received_at_ms) \
+                 SELECT $1, o.unit_seq, o.seq, o.value, o.observed_at_ms, $2 \
+                 FROM UNNEST($3::BIGINT[], $4::BIGINT[], $5::DOUBLE PRECISION[], $6::BIGINT[]) \
+                      AS o (unit_seq, seq, value, observed_at_ms)",
+            )
+            .bind(dataset_id)
+            .bind(now_ms)
+            .bind(unit_seq)
+            .bind(seq)
+            .bind(value)
+            .bind(observed)
+            .execute(&mut *tx)
+            .await?;
+        }
+        tx.commit().await?;
+        Ok(())
+    }
+
+    async fn insert_predictions(
+        &self,
+        dataset_id: i64,
+        rows: &[PredictionRecord],
+        now_ms: i64,
+    ) -> StoreResult<()> {
+        let mut tx = self.pool.begin().await?;
+        for chunk in rows.chunks(INSERT_CHUNK) {
+            let model: Vec<i64> = chunk.iter().map(|p| p.model_id).collect();
+            let unit_seq: Vec<i64> = chunk.iter().map(|p| p.unit_seq).collect();
+            let seq: Vec<i64> = chunk.iter().map(|p| p.seq).collect();
+            let effect: Vec<f64> = chunk.iter().map(|p| p.effect).collect();
+            let predicted: Vec<i64> = chunk.iter().map(|p| p.predicted_at_ms).collect();
+            sqlx::query(
+                "INSERT INTO predictions (dataset_id, model_id, unit_seq, seq, effect, \
+                 predicted_at_ms, received_at_ms) \
+                 SELECT $1, p.model_id, p.unit_seq, p.seq, p.effect, p.predicted_at_ms, $2 \
+                 FROM UNNEST($3::BIGINT[], $4::BIGINT[], $5::BIGINT[], \
+                             $6::DOUBLE PRECISION[], $7::BIGINT[]) \
+                      AS p (model_id, unit_seq, seq, effect, predicted_at_ms)",
+            )
+            .bind(dataset_id)
+            .bind(now_ms)
+            .bind(model)
+            .bind(unit_seq)
+            .bind(seq)
+            .bind(effect)
+            .bind(predicted)
+            .execute(&mut *tx)
+            .await?;
+        }
+        tx.commit().await?;
+        Ok(())
+    }
+
+    fn units(&self, dataset_id: i64, from: i64) -> RowStream<'_, UnitRecord> {
+        Box::pin(
+            sqlx::query(
+                "SELECT seq, key, features, treatment, propensity, cohort, assigned_at_ms \
+                 FROM units WHERE dataset_id = $1 AND seq >= $2 ORDER BY seq",
+            )
+            .bind(dataset_id)
+            .bind(from)
+            .fetch(&self.pool)
+            .map(|r| {
+                let r = r?;
+                Ok(UnitRecord {
+                    seq: r.get(0),
+                    key: r.get(1),
+                    features: unpack_features(r.get::<&[u8], _>(2))?,
+                    treatment: r.get::<i16, _>(3) as u8,
+                    propensity: r.get(4),
+                    cohort: r.get(5),
+                    assigned_at_ms: r.get(6),
+                })
+            }),
+        )
+    }
+
+    fn outcomes(&self, dataset_id: i64, from: i64) -> RowStream<'_, OutcomeRecord> {
+        Box::pin(
+            sqlx::query(
+                "SELECT unit_seq, seq, value, observed_at_ms FROM outcomes \
+                 WHERE dataset_id = $1 AND seq >= $2 ORDER BY seq",
+            )
+            .bind(dataset_id)
+            .bind(from)
+            .fetch(&self.pool)
+            .map(|r| {
+                let r = r?;
+                Ok(OutcomeRecord {
+                    unit_seq: r.get(0),
+                    seq: r.get(1),
+                    value: r.get(2),
+                    observed_at_ms: r.get(3),
+                })
+            }),
+        )
+    }
+
+    fn predictions(&self, dataset_id: i64, from: i64) -> RowStream<'_, PredictionRecord> {
+        Box::pin(
+            sqlx::query(
+                "SELECT model_id, unit_seq, seq, effect, predicted_at_ms FROM predictions \
+                 WHERE dataset_id = $1 AND seq >= $2",
+            )
+            .bind(dataset_id)
+            .bind(from)
+            .fetch(&self.pool)
+            .map(|r| {
+                let r = r?;
+                Ok(PredictionRecord {
+                    model_id: r.get(0),
+                    unit_seq: r.get(1),
+                    seq: r.get(2),
+                    effect: r.get(3),
+                    predicted_at_ms: r.get(4),
+                })
+            }),
+        )
+    }
+
+    async fn last_outcome_received_ms(&self, dataset_id: i64) -> StoreResult<Option<i64>> {
+        Ok(
+            sqlx::query_scalar("SELECT MAX(received_at_ms) FROM outcomes WHERE dataset_id = $1")
+                .bind(dataset_id)
+                .fetch_one(&self.pool)
+                .await?,
+        )
+    }
+
+    async fn counts(&self, dataset_id: i64) -> StoreResult<(i64, i64, i64)> {
+        let row = sqlx::query(
+            "SELECT (SELECT COUNT(*) FROM units WHERE dataset_id = $1), \
+                    (SELECT COUNT(*) FROM outcomes WHERE dataset_id = $1), \
+                    (SELECT COUNT(*) FROM predictions WHERE dataset_id = $1)",
+        )
+        .bind(dataset_id)
+        .fetch_one(&self.pool)
+        .await?;
+        Ok((row.get(0), row.get(1), row.get(2)))
+    }
+}
