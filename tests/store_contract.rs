@@ -216,8 +216,8 @@ async fn datasets_models_and_rows_keep_their_identity() {
             Some(15)
         );
 
-        // The streams: units by sequence, outcomes by arrival, each from a
-        // number on; predictions from a number on, in any order.
+        // The streams: each from a number on, in order of the numbers
+        // (a rebuild's predictions, from 0, in any order).
         let read = collect(s.units(d.id, 0)).await;
         assert_eq!(read, units, "{name}: units read back in order, bit for bit");
         let read = collect(s.units(d.id, 1_150)).await;

@@ -9,7 +9,8 @@
 //! every intake check on a shared store and every [`FOLLOW_EVERY`] in the
 //! background, so the owner's recomputes see rows accepted anywhere.
 //!
-//! Nothing here runs on SQLite, where one server writes everything.
+//! On SQLite, where one server writes everything, only a rebuild reads
+//! rows this way (from 0); nothing else here runs.
 
 use std::collections::BTreeSet;
 use std::sync::Arc;
@@ -21,6 +22,7 @@ use tracing::warn;
 
 use super::{Boards, DatasetHandle, DatasetState, Monitor, MonitorResult};
 use crate::domain::EventRecord;
+use crate::store::StoreError;
 
 /// How often a server on a shared store reads what the others wrote.
 pub const FOLLOW_EVERY: Duration = Duration::from_millis(250);
@@ -76,24 +78,42 @@ impl Monitor {
         Ok(())
     }
 
-    /// Reads the rows and models stored since the state was last caught up.
-    /// Outcomes count as pending for the owner's scheduler. Returns how many
-    /// outcomes were new.
+    /// Reads the rows and models stored since the state was last caught up
+    /// (all of them, for a rebuild). Outcomes count as pending for the
+    /// owner's scheduler. Returns how many outcomes were new.
     pub(super) async fn catch_up(&self, st: &mut DatasetState) -> MonitorResult<usize> {
         let id = st.stored.id;
-        let mut units = self.store.units(id, st.cache.units() as i64);
-        let mut batch = Vec::new();
+        let before = st.cache.units();
+        let mut units = self.store.units(id, before as i64);
         while let Some(u) = units.next().await {
-            batch.push(u?);
+            let u = u?;
+            // Keys are unique by intake's check (one SQLite server) or by a
+            // unique index (PostgreSQL): a store that holds one twice was
+            // written by something else, and is refused rather than served.
+            if let Some(first) = st.cache.unit_of(&u.key) {
+                return Err(StoreError::Corrupt(format!(
+                    "dataset {:?}: unit key {:?} is stored twice (units {first} and {})",
+                    st.stored.spec.name, u.key, u.seq
+                ))
+                .into());
+            }
+            st.cache.add_unit(&u);
         }
         drop(units);
-        if !batch.is_empty() {
-            st.cache.add_units(&batch);
-        }
+        // Tables are read one after another while other servers write: an
+        // outcome or prediction read now can name a unit or model committed
+        // after its table was read. Each is taken up to the first such row,
+        // so that what the cache holds stays a prefix in number order; the
+        // rest comes at the next catch-up.
+        let known_units = st.cache.units() as i64;
         let mut outcomes = self.store.outcomes(id, st.cache.next_outcome_seq());
         let mut new_outcomes = 0;
         while let Some(o) = outcomes.next().await {
-            st.cache.add_outcome(&o?);
+            let o = o?;
+            if o.unit_seq >= known_units {
+                break;
+            }
+            st.cache.add_outcome(&o);
             new_outcomes += 1;
         }
         drop(outcomes);
@@ -106,13 +126,18 @@ impl Monitor {
         let mut predictions = self.store.predictions(id, st.cache.next_prediction_seq());
         while let Some(p) = predictions.next().await {
             let p = p?;
-            if let Some(m) = st.cache.model_by_id(p.model_id) {
-                st.cache.add_prediction(m, &p);
-            }
+            let Some(m) = st
+                .cache
+                .model_by_id(p.model_id)
+                .filter(|_| p.unit_seq < known_units)
+            else {
+                break;
+            };
+            st.cache.add_prediction(m, &p);
         }
         drop(predictions);
         st.pending_outcomes += new_outcomes as u64;
-        if new_outcomes > 0 || !batch.is_empty() {
+        if new_outcomes > 0 || st.cache.units() > before {
             self.update_counts(st);
         }
         Ok(new_outcomes)

@@ -1,10 +1,8 @@
 //! A dataset restored from the store at start-up: its cache, its latest
 //! nuisance fit (reproduced), boards and stream watch.
 
-use tokio_stream::StreamExt;
 use tracing::{info, info_span, Instrument};
 
-use super::cache::DatasetCache;
 use super::recompute::NuisanceState;
 use super::{now_ms, Boards, DatasetState, Monitor, MonitorError, MonitorResult};
 use crate::domain::StoredDataset;
@@ -22,43 +20,9 @@ impl Monitor {
     ) -> MonitorResult<(DatasetState, Boards)> {
         let span = info_span!("rebuild", dataset = %stored.spec.name);
         async {
-            let mut cache = DatasetCache::new(stored.spec.feature_names.len());
-            // Keys are unique by intake's check, not by an index (see
-            // migrations/sqlite/0003): a store that holds one twice was
-            // written by something else, and is refused rather than served.
-            let mut units = self.store.units(stored.id, 0);
-            while let Some(u) = units.next().await {
-                let u = u?;
-                if let Some(first) = cache.unit_of(&u.key) {
-                    return Err(StoreError::Corrupt(format!(
-                        "dataset {:?}: unit key {:?} is stored twice (units {first} and {})",
-                        stored.spec.name, u.key, u.seq
-                    ))
-                    .into());
-                }
-                cache.add_unit(&u);
-            }
-            drop(units);
-            let mut outcomes = self.store.outcomes(stored.id, 0);
-            while let Some(o) = outcomes.next().await {
-                cache.add_outcome(&o?);
-            }
-            drop(outcomes);
-            for m in self.store.models(stored.id).await? {
-                cache.add_model(m);
-            }
-            let mut predictions = self.store.predictions(stored.id, 0);
-            while let Some(p) = predictions.next().await {
-                let p = p?;
-                if let Some(m) = cache.model_by_id(p.model_id) {
-                    cache.add_prediction(m, &p);
-                }
-            }
-            drop(predictions);
-            let mut state = DatasetState {
-                cache,
-                ..DatasetState::empty(stored.clone())
-            };
+            let mut state = DatasetState::empty(stored.clone());
+            self.catch_up(&mut state).await?;
+            state.pending_outcomes = 0;
             let mut latest = Boards::new();
             for board in self.store.latest_boards(stored.id).await? {
                 latest.insert(board.window.key(), board);

@@ -31,9 +31,9 @@
 //!   instead of leaving a gap or a double. Since a writer numbers a batch
 //!   after the rows it has read, a row with number n + 1 is only ever
 //!   committed after row n: reading "every row from n on" misses nothing.
-//! - Row streams start at a given number and hold every row from it on:
-//!   units and outcomes in order of their numbers, predictions in any
-//!   order (a prediction's place is its model and unit).
+//! - Row streams start at a given number and hold every row from it on, in
+//!   order of their numbers; a store with one writer (SQLite) may send the
+//!   predictions of a stream from 0 (a rebuild) in any order.
 //! - Fenced writes (fit records, snapshots, alert events) carry the epoch of the
 //!   writer's lease on the dataset and are refused with
 //!   [`StoreError::Fenced`] once another server has taken the lease: a
@@ -304,7 +304,8 @@ pub trait DatasetLog: Send + Sync {
     fn units(&self, dataset_id: i64, from: i64) -> RowStream<'_, UnitRecord>;
     /// A dataset's outcomes with sequence number `from` on, in arrival order.
     fn outcomes(&self, dataset_id: i64, from: i64) -> RowStream<'_, OutcomeRecord>;
-    /// A dataset's predictions with sequence number `from` on, in any order.
+    /// A dataset's predictions with sequence number `from` on, in arrival
+    /// order (from 0, on a store with one writer: in any order).
     fn predictions(&self, dataset_id: i64, from: i64) -> RowStream<'_, PredictionRecord>;
 
     /// When the dataset's last outcome was received (Unix ms), if any.

@@ -275,7 +275,7 @@ impl DatasetLog for PgStore {
         Box::pin(
             sqlx::query(
                 "SELECT model_id, unit_seq, seq, effect, predicted_at_ms FROM predictions \
-                 WHERE dataset_id = $1 AND seq >= $2",
+                 WHERE dataset_id = $1 AND seq >= $2 ORDER BY seq",
             )
             .bind(dataset_id)
             .bind(from)
