@@ -144,9 +144,15 @@ pub async fn start(config: &Config) -> Result<Running, StartError> {
         signal.subscribe(),
     ));
 
-    let monitor = Monitor::open(store.clone(), Arc::clone(&metrics), ready, signal.clone())
-        .await
-        .map_err(|e| format!("restoring state: {e}"))?;
+    let monitor = Monitor::open(
+        store.clone(),
+        Arc::clone(&metrics),
+        ready,
+        signal.clone(),
+        config.limits.max_fit_units,
+    )
+    .await
+    .map_err(|e| format!("restoring state: {e}"))?;
     monitor.start_schedulers();
 
     let (health, health_service) = tonic_health::server::health_reporter();

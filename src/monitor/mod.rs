@@ -102,7 +102,7 @@ impl DatasetState {
     /// What a recompute reads. The scoring memo moves into the input (the
     /// recompute installs its successor), so that the job owns it and can
     /// extend it in place; if the job fails the next recompute starts over.
-    fn recompute_input(&mut self, now: i64) -> RecomputeInput {
+    fn recompute_input(&mut self, now: i64, max_fit_units: usize) -> RecomputeInput {
         let nuisance = self.nuisance.as_mut().map(|n| NuisanceState {
             memo: std::mem::take(&mut n.memo),
             ..n.clone()
@@ -120,6 +120,7 @@ impl DatasetState {
                 .collect(),
             revision: c.revision,
             nuisance,
+            max_fit_units: Some(max_fit_units),
             now_ms: now,
             ranks_fresh_below: recompute::RANKS_ALWAYS_FRESH_BELOW,
             watch: self.watch.clone(),
@@ -164,6 +165,10 @@ pub struct Monitor {
     next_snapshot: AtomicI64,
     ready: Arc<AtomicBool>,
     shutdown: crate::shutdown::ShutdownSignal,
+    /// The most units a refit fits the nuisance models on
+    /// (`limits.max_fit_units`), so that a refit's time and memory stop
+    /// growing with the history.
+    max_fit_units: usize,
 }
 
 impl Monitor {
@@ -174,6 +179,7 @@ impl Monitor {
         metrics: Arc<Metrics>,
         ready: Arc<AtomicBool>,
         shutdown: crate::shutdown::ShutdownSignal,
+        max_fit_units: usize,
     ) -> MonitorResult<Arc<Self>> {
         let (events, _) = broadcast::channel(1024);
         let monitor = Arc::new(Self {
@@ -185,6 +191,7 @@ impl Monitor {
             events,
             ready,
             shutdown,
+            max_fit_units,
         });
         for stored in monitor.store.datasets().await? {
             let (state, boards) = monitor.rebuild(stored).await?;
