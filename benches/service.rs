@@ -23,6 +23,10 @@
 //! shows how the incremental recompute grows with the history, and
 //! `PLUMBLINE_BENCH_COHORT=5000` (or 20000, 40000) at one history size how it
 //! grows with the size of the arriving block (default 10,000).
+//! `PLUMBLINE_BENCH_MAX_FIT_UNITS=250000` starts the server with that
+//! `limits.max_fit_units`, so a refit fits its nuisance models on a sample
+//! of that many units (the server's default cap, 2,000,000, is above every
+//! default size).
 
 use std::net::TcpListener;
 use std::path::PathBuf;
@@ -50,6 +54,14 @@ fn arriving() -> usize {
         .filter(|&n| n > 0)
         .unwrap_or(COHORT)
 }
+/// The server's `limits.max_fit_units`, from `PLUMBLINE_BENCH_MAX_FIT_UNITS`
+/// (None: the server's default).
+fn max_fit_units() -> Option<usize> {
+    std::env::var("PLUMBLINE_BENCH_MAX_FIT_UNITS")
+        .ok()
+        .and_then(|v| v.replace('_', "").parse().ok())
+}
+
 /// Raw bytes per unit: features and outcome as f64, treatment as a byte,
 /// one f64 per model's prediction.
 const RAW_BYTES_PER_UNIT: usize = 8 * FEATURES + 8 + 1 + 8 * MODELS;
@@ -124,8 +136,15 @@ impl Server {
     }
 
     fn spawn(dir: &std::path::Path, addr: &str) -> Child {
-        Command::new(env!("CARGO_BIN_EXE_plumbline"))
-            .arg("serve")
+        let mut command = Command::new(env!("CARGO_BIN_EXE_plumbline"));
+        command.arg("serve");
+        if let Some(cap) = max_fit_units() {
+            let config = dir.with_extension("toml");
+            std::fs::write(&config, format!("[limits]\nmax_fit_units = {cap}\n"))
+                .expect("write the bench's configuration");
+            command.arg("--config").arg(config);
+        }
+        command
             .args(["--listen", addr])
             .args(["--metrics-listen", &format!("127.0.0.1:{}", free_port())])
             .arg("--data-dir")
@@ -158,6 +177,7 @@ impl Drop for Server {
         let _ = self.child.kill();
         let _ = self.child.wait();
         let _ = std::fs::remove_dir_all(&self.dir);
+        let _ = std::fs::remove_file(self.dir.with_extension("toml"));
     }
 }
 
@@ -448,7 +468,9 @@ async fn main() {
 {}-unit block of new units with the current fit, R where it refreshed the cumulative \
 window's rank metrics; refresh: a recompute asked to refresh them, server time; intake MiB: peak before the refit, \
 the cache and the store; raw: {RAW_BYTES_PER_UNIT} bytes per unit; restart: \
-SIGTERM, start on the same data, until the scoreboard is served, and that process's peak)",
-        arriving()
+SIGTERM, start on the same data, until the scoreboard is served, and that process's peak; \
+limits.max_fit_units: {})",
+        arriving(),
+        max_fit_units().map_or("the default".to_string(), |c| c.to_string())
     );
 }

@@ -288,6 +288,10 @@ mod tests {
             !c.tokens_required(),
             "loopback without require_token is open"
         );
+        // A refit cap below the minimum is refused at start-up, by name.
+        std::fs::write(&path, "[limits]\nmax_fit_units = 500\n").expect("write");
+        let err = Config::load(Some(&path), |_| None).expect_err("below the minimum");
+        assert!(err.to_string().contains("limits.max_fit_units"), "{err}");
         std::fs::write(
             &path,
             "listen = \"0.0.0.0:9000\"\n[tls]\ncert = \"c.pem\"\nkey = \"k.pem\"\n",

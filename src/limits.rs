@@ -1,4 +1,5 @@
-//! Resource limits: how much one client may ask of the server at once.
+//! Resource limits: how much one client may ask of the server at once,
+//! and how much work one nuisance refit may take (`max_fit_units`).
 //!
 //! Every limit has a production default, can be changed in the `[limits]`
 //! section of the server's TOML file, and is reported by name and value when
@@ -48,7 +49,21 @@ pub struct Limits {
     /// with DEADLINE_EXCEEDED, so a stalled client cannot hold a stream (and
     /// its connection slot) forever. What it committed before stays.
     pub stream_idle_seconds: u64,
+    /// The most units a nuisance refit fits its models on. Above it the
+    /// fold models are fitted on a seeded sample of this many units,
+    /// stratified by arm, and every unit still gets nuisance values from
+    /// models that never saw it; so a refit's time and memory stop growing
+    /// with the history. At least [`MIN_FIT_UNITS`]. A stored fit keeps the
+    /// cap it used, so changing this does not change how it is reproduced.
+    pub max_fit_units: usize,
 }
+
+/// The smallest `max_fit_units` a server accepts. The corrected estimates
+/// rely on the nuisance models' errors being small; fitted on fewer units
+/// than this, the learners' errors (and the product of the propensity's and
+/// the outcome models' errors that the estimates' bias is made of) would
+/// be far larger than the default's, for no saving worth having.
+pub const MIN_FIT_UNITS: usize = 1_000;
 
 impl Default for Limits {
     fn default() -> Self {
@@ -63,6 +78,10 @@ impl Default for Limits {
             max_key_bytes: MAX_KEY_BYTES,
             max_concurrent_streams: 64,
             stream_idle_seconds: 300,
+            // Far more than the learners need to fit three nuisance
+            // components on 20-odd features, and about twice the 1M-unit
+            // refit of BENCHMARKS.md (some 15 s on two cores).
+            max_fit_units: 2_000_000,
         }
     }
 }
@@ -110,6 +129,12 @@ impl Limits {
                 return Err(format!("limits.{name}: must be at least 1"));
             }
         }
+        if self.max_fit_units < MIN_FIT_UNITS {
+            return Err(format!(
+                "limits.max_fit_units: {} is below the minimum {MIN_FIT_UNITS} (the nuisance models need that many units to fit well)",
+                self.max_fit_units
+            ));
+        }
         Ok(())
     }
 
@@ -143,5 +168,27 @@ mod tests {
         assert_eq!(parsed.max_datasets, 3);
         assert_eq!(parsed.max_batch_rows, MAX_BATCH_ROWS);
         assert!(toml::from_str::<Limits>("max_dataset = 3\n").is_err());
+    }
+
+    #[test]
+    fn max_fit_units_defaults_to_two_million_and_refuses_less_than_the_minimum() {
+        assert_eq!(Limits::default().max_fit_units, 2_000_000);
+        let parsed: Limits = toml::from_str("max_fit_units = 250000\n").expect("toml");
+        assert_eq!(parsed.max_fit_units, 250_000);
+        assert_eq!(parsed.check(), Ok(()));
+        let at_minimum = Limits {
+            max_fit_units: MIN_FIT_UNITS,
+            ..Limits::default()
+        };
+        assert_eq!(at_minimum.check(), Ok(()));
+        let small = Limits {
+            max_fit_units: MIN_FIT_UNITS - 1,
+            ..Limits::default()
+        };
+        let err = small.check().expect_err("below the minimum");
+        assert!(
+            err.contains("limits.max_fit_units") && err.contains("999") && err.contains("1000"),
+            "{err}"
+        );
     }
 }

@@ -151,6 +151,7 @@ pub async fn start(config: &Config) -> Result<Running, StartError> {
         ready,
         signal.clone(),
         replica,
+        config.limits.max_fit_units,
     )
     .await
     .map_err(|e| format!("restoring state: {e}"))?;

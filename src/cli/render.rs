@@ -169,9 +169,18 @@ pub fn table(b: &Scoreboard, kind: OutcomeKind, folds: usize) -> String {
     overlap(&mut s, &b.overlap);
     if let Some(n) = &b.nuisance {
         let _ = writeln!(s);
+        // A capped fit says so: its models saw a sample, every unit was scored.
+        let sample = if n.fitted_units < n.units {
+            format!(
+                "; fitted on a sample of {} of {} units",
+                n.fitted_units, n.units
+            )
+        } else {
+            String::new()
+        };
         let _ = writeln!(
             s,
-            "Nuisance models ({}-fold cross-fit, seed {})",
+            "Nuisance models ({}-fold cross-fit, seed {}{sample})",
             n.folds, n.seed
         );
         match &n.propensity.fit {

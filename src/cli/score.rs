@@ -10,6 +10,7 @@ use super::{render, EXIT_BAD_INPUT, EXIT_DEGENERATE};
 use crate::estimate::crossfit::NuisanceSettings;
 use crate::estimate::{evaluate, EstimateError, OutcomeKind, Settings};
 use crate::input::{align, read_predictions, read_units};
+use crate::limits::MIN_FIT_UNITS;
 
 #[derive(Debug, Clone, Copy, ValueEnum)]
 pub enum Format {
@@ -42,6 +43,9 @@ pub struct ScoreArgs {
     /// Seed for folds, inner splits, bootstrap and p_best draws.
     #[arg(long, default_value_t = 0)]
     pub seed: u64,
+    /// Fit the nuisance models on a seeded sample of at most this many units (stratified by arm); every unit is still scored by models that never saw it. Default: every unit.
+    #[arg(long, value_name = "UNITS", value_parser = parse_max_fit_units)]
+    pub max_fit_units: Option<usize>,
     /// Cost of treating one unit, in outcome units (for policy gain).
     #[arg(long, default_value_t = 0.0)]
     pub cost: f64,
@@ -50,6 +54,15 @@ pub struct ScoreArgs {
     pub alpha: f64,
     #[arg(long, value_enum, default_value_t = Format::Table)]
     pub format: Format,
+}
+
+/// The same floor as the server's `limits.max_fit_units`.
+fn parse_max_fit_units(v: &str) -> Result<usize, String> {
+    let units: usize = v.parse().map_err(|e| format!("{e}"))?;
+    if units < MIN_FIT_UNITS {
+        return Err(format!("at least {MIN_FIT_UNITS} units"));
+    }
+    Ok(units)
 }
 
 pub fn run(args: &ScoreArgs) -> ExitCode {
@@ -83,6 +96,7 @@ pub fn run(args: &ScoreArgs) -> ExitCode {
         nuisance: NuisanceSettings {
             folds: args.folds,
             seed: args.seed,
+            max_fit_units: args.max_fit_units,
             ..NuisanceSettings::default()
         },
         cost: args.cost,

@@ -194,9 +194,10 @@ impl UnitTable {
 }
 
 /// Rows of features read in place: one row-major matrix, or chosen rows of
-/// a store kept in fixed-size chunks (the service's cache), so that a refit
-/// or a scored window reads the history's features where they are instead
-/// of copying them. Every row is a contiguous slice of `width` values.
+/// a store kept in fixed-size chunks (the service's cache), or chosen rows
+/// of either (a capped cross-fit's sample), so that a refit or a scored
+/// window reads the history's features where they are instead of copying
+/// them. Every row is a contiguous slice of `width` values.
 #[derive(Debug, Clone, Copy)]
 pub struct FeatureRows<'a> {
     width: usize,
@@ -212,6 +213,12 @@ enum Layout<'a> {
     Chunked {
         chunks: &'a [Arc<Vec<f64>>],
         chunk_rows: usize,
+        index: &'a [usize],
+    },
+    /// Row `i` is row `index[i]` of `from`: a sample of a cross-fit's
+    /// units, read where their rows already are.
+    Picked {
+        from: &'a FeatureRows<'a>,
         index: &'a [usize],
     },
 }
@@ -248,11 +255,22 @@ impl<'a> FeatureRows<'a> {
         }
     }
 
+    /// Rows `index` of these rows, in that order, read in place.
+    pub fn picked<'b>(&'b self, index: &'b [usize]) -> FeatureRows<'b>
+    where
+        'a: 'b,
+    {
+        FeatureRows {
+            width: self.width,
+            layout: Layout::Picked { from: self, index },
+        }
+    }
+
     /// Number of rows.
     pub fn len(&self) -> usize {
         match self.layout {
             Layout::Dense { values } => values.len().checked_div(self.width).unwrap_or(0),
-            Layout::Chunked { index, .. } => index.len(),
+            Layout::Chunked { index, .. } | Layout::Picked { index, .. } => index.len(),
         }
     }
 
@@ -280,7 +298,16 @@ impl<'a> FeatureRows<'a> {
                 let at = (u % chunk_rows) * d;
                 &chunks[u / chunk_rows][at..at + d]
             }
+            Layout::Picked { from, index } => from.row_for_pick(index[i]),
         }
+    }
+
+    /// Row `u`, for rows picked from these. Kept out of line so that
+    /// [`FeatureRows::row`] never calls itself: a function that does is
+    /// not inlined, and the plain layouts' rows are read in hot loops.
+    #[inline(never)]
+    fn row_for_pick(&self, u: usize) -> &'a [f64] {
+        self.row(u)
     }
 
     /// A copy of the rows `rows` as a matrix.

@@ -124,7 +124,7 @@ impl DatasetState {
     /// What a recompute reads. The scoring memo moves into the input (the
     /// recompute installs its successor), so that the job owns it and can
     /// extend it in place; if the job fails the next recompute starts over.
-    fn recompute_input(&mut self, now: i64) -> RecomputeInput {
+    fn recompute_input(&mut self, now: i64, max_fit_units: usize) -> RecomputeInput {
         let nuisance = self.nuisance.as_mut().map(|n| NuisanceState {
             memo: std::mem::take(&mut n.memo),
             ..n.clone()
@@ -142,6 +142,7 @@ impl DatasetState {
                 .collect(),
             revision: c.revision,
             nuisance,
+            max_fit_units: Some(max_fit_units),
             now_ms: now,
             ranks_fresh_below: recompute::RANKS_ALWAYS_FRESH_BELOW,
             watch: self.watch.clone(),
@@ -195,6 +196,10 @@ pub struct Monitor {
     ready: Arc<AtomicBool>,
     shutdown: crate::shutdown::ShutdownSignal,
     replica: Replica,
+    /// The most units a refit fits the nuisance models on
+    /// (`limits.max_fit_units`), so that a refit's time and memory stop
+    /// growing with the history.
+    max_fit_units: usize,
 }
 
 impl Monitor {
@@ -207,6 +212,7 @@ impl Monitor {
         ready: Arc<AtomicBool>,
         shutdown: crate::shutdown::ShutdownSignal,
         replica: Replica,
+        max_fit_units: usize,
     ) -> MonitorResult<Arc<Self>> {
         let (events, _) = broadcast::channel(1024);
         let monitor = Arc::new(Self {
@@ -218,6 +224,7 @@ impl Monitor {
             ready,
             shutdown,
             replica,
+            max_fit_units,
         });
         // Renewals run from the start: rebuilding a large dataset can take
         // longer than its lease.

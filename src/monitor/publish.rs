@@ -38,6 +38,16 @@ fn release_freed_memory() {
     }
 }
 
+/// How many units a refit's models were fitted on, in words: "N units", or
+/// "a sample of M of N units" when limits.max_fit_units capped it.
+fn fitted_on(fitted: usize, units: usize) -> String {
+    if fitted < units {
+        format!("a sample of {fitted} of {units} units")
+    } else {
+        format!("{units} units")
+    }
+}
+
 impl Monitor {
     /// Recomputes a dataset now, with a refit or a rank refresh if
     /// `options` ask for one.
@@ -98,7 +108,7 @@ impl Monitor {
             let mut st = h.state.lock().await;
             st.pending_outcomes = 0;
             let outcomes = st.cache.outcomes();
-            (st.recompute_input(now), outcomes)
+            (st.recompute_input(now, self.max_fit_units), outcomes)
         };
         if outcomes_in_input == 0 {
             return Err(MonitorError::FailedPrecondition(format!(
@@ -118,7 +128,11 @@ impl Monitor {
         .map_err(|e| MonitorError::Internal(e.to_string()))??;
         let mut nuisance = computed.nuisance;
         if computed.refit.is_some() {
-            let report = serde_json::to_string(&nuisance.report).unwrap_or_default();
+            // The report carries the cap the fit used, which a restart needs
+            // to draw the fit again: a record without it would be reproduced
+            // without a cap.
+            let report = serde_json::to_string(&nuisance.report)
+                .map_err(|e| MonitorError::Internal(format!("nuisance fit report: {e}")))?;
             nuisance.fit_id = self
                 .store
                 .insert_fit(
@@ -239,8 +253,10 @@ impl Monitor {
                 Raised {
                     kind: "nuisance_refit",
                     summary: format!(
-                        "{}: nuisance models refitted on {} units ({reason}); propensity AUC {:.3}",
-                        h.name, nuisance.fit_units, report.propensity.auc
+                        "{}: nuisance models refitted on {} ({reason}); propensity AUC {:.3}",
+                        h.name,
+                        fitted_on(report.fitted_units, report.units),
+                        report.propensity.auc
                     ),
                     details: serde_json::json!({
                         "reason": reason.code(),

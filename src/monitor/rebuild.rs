@@ -3,7 +3,7 @@
 
 use tracing::{info, info_span, Instrument};
 
-use super::recompute::NuisanceState;
+use super::recompute::{recorded_max_fit_units, NuisanceState};
 use super::{now_ms, Boards, DatasetState, Monitor, MonitorError, MonitorResult};
 use crate::domain::StoredDataset;
 use crate::metrics::DatasetLabels;
@@ -37,11 +37,20 @@ impl Monitor {
                 return Ok((state, latest));
             }
             if let Some(fit) = self.store.latest_fit(stored.id).await? {
-                let input = state.recompute_input(now_ms());
+                // The fit is drawn again with the cap it was fitted under,
+                // whatever limits.max_fit_units says now.
+                let cap = recorded_max_fit_units(&fit.report_json).map_err(|e| {
+                    StoreError::Corrupt(format!(
+                        "dataset {:?}, fit {}: {e}",
+                        stored.spec.name, fit.id
+                    ))
+                })?;
+                let input = state.recompute_input(now_ms(), self.max_fit_units);
                 let limit = fit.last_outcome_seq;
-                let reproduced = tokio::task::spawn_blocking(move || input.reproduce_fit(limit))
-                    .await
-                    .map_err(|e| MonitorError::Internal(e.to_string()))??;
+                let reproduced =
+                    tokio::task::spawn_blocking(move || input.reproduce_fit(limit, cap))
+                        .await
+                        .map_err(|e| MonitorError::Internal(e.to_string()))??;
                 state.nuisance = Some(NuisanceState {
                     fit_id: fit.id,
                     fitted_at_ms: fit.fitted_at_ms,

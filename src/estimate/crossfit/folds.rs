@@ -1,6 +1,7 @@
 //! Fold assignment: which of the K folds holds each unit out, stratified
 //! by arm so that each fold keeps the dataset's treated share, and
-//! reproducible for a seed.
+//! reproducible for a seed; and, under a cap on the units the models are
+//! fitted on, which units they are fitted on.
 
 use rand::seq::SliceRandom;
 use rand::SeedableRng;
@@ -8,18 +9,95 @@ use rand_chacha::ChaCha8Rng;
 
 /// Assigns each unit a fold in 0..k, stratified by arm, reproducibly for a seed.
 pub fn assign_folds(treatment: &[f64], k: usize, seed: u64) -> Vec<usize> {
+    assign_fit(treatment, k, seed, None, 0).fold_of_unit
+}
+
+/// Where each unit stands in one cross-fit.
+#[derive(Debug, Clone, PartialEq)]
+pub struct FitAssignment {
+    /// The fold that holds each unit out, in 0..k.
+    pub fold_of_unit: Vec<usize>,
+    /// The units the fold models are fitted on, in unit order; None when
+    /// they are fitted on every unit (no cap, or a cap of at least the
+    /// number of units). Fold f's models train on the sample's units
+    /// outside fold f, and every unit of fold f, in the sample or not, gets
+    /// its values from them: no unit's values come from a model that saw it.
+    pub sample: Option<Vec<usize>>,
+}
+
+/// The folds of a cross-fit and, when `max_fit_units` is below the number
+/// of units, the seeded sample the models are fitted on: a function of the
+/// seed, the units' treatments and the cap alone, so a recorded fit is
+/// drawn again exactly.
+///
+/// Each arm is shuffled once; a unit's fold is its position in its arm's
+/// shuffle modulo k (as without a cap), and the sample is the first m_a
+/// units of each arm's shuffle. So the sample is a uniform draw within each
+/// arm, spread evenly over the folds, and the folds are the same whatever
+/// the cap. The arms' shares m_1 = round(m n_1 / n), m_0 = m - m_1 keep the
+/// treated share of the data, which the propensity model is fitted to (a
+/// sample that over-drew one arm would shift every fitted propensity).
+/// When that share would leave an arm fewer than `min_per_arm` units, m
+/// grows, proportionally, until it does not (an arm that rare needs the
+/// units for its outcome model to be fitted on every fold at all).
+pub fn assign_fit(
+    treatment: &[f64],
+    k: usize,
+    seed: u64,
+    max_fit_units: Option<usize>,
+    min_per_arm: usize,
+) -> FitAssignment {
     let mut rng = ChaCha8Rng::seed_from_u64(seed);
-    let mut folds = vec![0; treatment.len()];
+    let k = k.max(1);
+    let mut fold_of_unit = vec![0; treatment.len()];
+    let mut arms: Vec<Vec<usize>> = Vec::with_capacity(2);
     for arm in [0.0, 1.0] {
         let mut idx: Vec<usize> = (0..treatment.len())
             .filter(|&i| treatment[i] == arm)
             .collect();
         idx.shuffle(&mut rng);
         for (pos, &i) in idx.iter().enumerate() {
-            folds[i] = pos % k;
+            fold_of_unit[i] = pos % k;
+        }
+        arms.push(idx);
+    }
+    let sample = max_fit_units
+        .and_then(|cap| sample_sizes([arms[0].len(), arms[1].len()], cap, min_per_arm))
+        .map(|sizes| {
+            let mut units: Vec<usize> = arms
+                .iter()
+                .zip(sizes)
+                .flat_map(|(arm, m)| arm[..m].iter().copied())
+                .collect();
+            units.sort_unstable();
+            units
+        });
+    FitAssignment {
+        fold_of_unit,
+        sample,
+    }
+}
+
+/// How many units of each arm (control, treated) a sample of at most `cap`
+/// units takes; None when the sample would hold every unit.
+pub(super) fn sample_sizes(arms: [usize; 2], cap: usize, min_per_arm: usize) -> Option<[usize; 2]> {
+    // u128: a cap set near usize::MAX must not overflow the products.
+    let n = (arms[0] + arms[1]) as u128;
+    let mut m = cap as u128;
+    for &a in &arms {
+        if a > 0 {
+            // Smallest m whose share of this arm, m a / n, reaches the minimum.
+            m = m.max((min_per_arm as u128 * n).div_ceil(a as u128));
         }
     }
-    folds
+    if m >= n {
+        return None;
+    }
+    // round(m n_1 / n), halves up, in integers.
+    let treated = ((2 * m * arms[1] as u128 + n) / (2 * n)) as usize;
+    let treated = treated.min(arms[1]);
+    let control = (m as usize - treated).min(arms[0]);
+    Some([control, treated])
 }
 
 /// The folds of one cross-fit: which fold each unit is in, and how many.

@@ -8,7 +8,8 @@
 //!
 //! This file runs a whole cross-fit ([`fit_nuisance_models_on`]); the parts
 //! it assembles have a file each: `settings.rs` (how to fit), `folds.rs`
-//! (which unit is held out where), `fitting.rs` (every fold fit of every
+//! (which unit is held out where, and which units the models are fitted on
+//! when their number is capped), `fitting.rs` (every fold fit of every
 //! learner as one queue over the worker threads), `screen.rs` (dropping a
 //! hopeless learner after the first fold), `choose.rs` (the learner each
 //! component keeps), `nuisance.rs` (the per-unit values), `report.rs` (what
@@ -29,11 +30,12 @@ mod tests;
 
 use super::data::{FeatureRows, OutcomeKind, UnitTable};
 use super::error::{Degenerate, EstimateError};
-use super::learner::{default_library, Learner, SharedFeatures, Task};
+use super::learner::{default_library, Fitted, Learner, SharedFeatures, Task};
 use super::stats::auc;
+use rayon::prelude::*;
 
 pub use fold_models::FittedNuisance;
-pub use folds::assign_folds;
+pub use folds::{assign_fit, assign_folds, FitAssignment};
 pub use nuisance::Nuisance;
 pub use report::{CandidateLoss, ComponentReport, NuisanceReport, PropensityReport};
 pub use settings::NuisanceSettings;
@@ -62,6 +64,14 @@ pub fn fit_nuisance_models(
 /// As [`fit_nuisance_models`], with the features given as `features`, one
 /// row per unit of `table`, wherever they are stored (the table's own
 /// feature matrix is not read).
+///
+/// With `settings.max_fit_units` below the number of units, the fold
+/// models are fitted on a seeded sample ([`assign_fit`]), the learners are
+/// chosen by their out-of-fold loss on it, and every unit outside it gets
+/// its values from the chosen learner's model of its own fold, which was
+/// fitted on sample units of the other folds only. Without a cap, or with
+/// one of at least the number of units, the fit is the uncapped one, bit
+/// for bit.
 pub fn fit_nuisance_models_on(
     table: &UnitTable,
     features: FeatureRows<'_>,
@@ -86,15 +96,41 @@ pub fn fit_nuisance_models_on(
     let propensity_learners = library(&settings.propensity_learners);
     let outcome_learners = library(&settings.outcome_learners);
     let k = settings.folds;
-    let x = &SharedFeatures::new(features);
-    let w = table.treatment();
-    let y = table.outcome();
-    let fold_of_unit = assign_folds(w, k, settings.seed);
+    let assignment = assign_fit(
+        table.treatment(),
+        k,
+        settings.seed,
+        settings.max_fit_units,
+        k * settings.min_units_per_fold,
+    );
+    // The units the models are fitted on: every unit (the columns as they
+    // are), or the sample (its rows read in place, its columns copied).
+    let sample = assignment.sample.as_deref();
+    let fitted_only = |v: &[f64]| -> Vec<f64> {
+        sample.map_or_else(Vec::new, |s| s.iter().map(|&i| v[i]).collect())
+    };
+    let (w_sample, y_sample) = (fitted_only(table.treatment()), fitted_only(table.outcome()));
+    let (w, y) = match sample {
+        None => (table.treatment(), table.outcome()),
+        Some(_) => (&w_sample[..], &y_sample[..]),
+    };
+    let sample_folds: Vec<usize> = sample.map_or_else(Vec::new, |s| {
+        s.iter().map(|&i| assignment.fold_of_unit[i]).collect()
+    });
+    let fold_of_unit = match sample {
+        None => &assignment.fold_of_unit[..],
+        Some(_) => &sample_folds[..],
+    };
+    let fit_rows = match sample {
+        None => features,
+        Some(s) => features.picked(s),
+    };
+    let x = &SharedFeatures::new(fit_rows);
     let folds = Folds {
-        of_unit: &fold_of_unit,
+        of_unit: fold_of_unit,
         count: k,
     };
-    let everyone = vec![true; table.len()];
+    let everyone = vec![true; w.len()];
     let outcome_task = match table.outcome_kind() {
         OutcomeKind::Continuous => Task::Regression,
         OutcomeKind::Binary => Task::Classification,
@@ -126,6 +162,15 @@ pub fn fit_nuisance_models_on(
     for learner in propensity_learners.iter().chain(&outcome_learners) {
         learner.prepare(x);
     }
+    // Values for every unit from values for the fitted ones: a unit outside
+    // the sample gets the prediction of its own fold's model.
+    let all_rows = SharedFeatures::new(features);
+    let spread = |fitted: Vec<f64>, models: &[Box<dyn Fitted>]| -> Vec<f64> {
+        match sample {
+            None => fitted,
+            Some(s) => spread_to_every_unit(fitted, s, &assignment.fold_of_unit, models, &all_rows),
+        }
+    };
     // Errors surface in the order a one-by-one fit of the components would
     // meet them: the propensity's own, then separated arms, then the
     // outcomes'.
@@ -146,10 +191,10 @@ pub fn fit_nuisance_models_on(
                 &everyone,
                 Task::Classification,
             );
-            (p, Some(report), Some(models))
+            (spread(p, &models), Some(report), Some(models))
         }
     };
-    let propensity_auc = auc(&raw_propensity, w);
+    let propensity_auc = auc(&raw_propensity, table.treatment());
     if propensity_auc >= settings.separation_auc {
         return Err(Degenerate::SeparatedArms {
             auc: propensity_auc,
@@ -159,13 +204,21 @@ pub fn fit_nuisance_models_on(
     }
     let (mu0, mu0_models, outcome_control) =
         choose(&outcome_learners, next()?, y, &control, outcome_task);
+    let mu0 = spread(mu0, &mu0_models);
     let (mu1, mu1_models, outcome_treated) =
         choose(&outcome_learners, next()?, y, &treated, outcome_task);
+    let mu1 = spread(mu1, &mu1_models);
 
     let (nuisance, clipped) = Nuisance::from_parts(raw_propensity, mu0, mu1, settings.clip);
     let report = NuisanceReport {
         folds: k,
         seed: settings.seed,
+        // Only a cap that drew a sample is recorded: a fit on every unit is
+        // the same fit under no cap and under any cap at or above the units,
+        // so its report (and its reproduction) is too.
+        max_fit_units: sample.and(settings.max_fit_units),
+        fitted_units: w.len(),
+        units: table.len(),
         propensity: PropensityReport {
             source: if propensity_fit.is_some() {
                 "fitted"
@@ -187,4 +240,42 @@ pub fn fit_nuisance_models_on(
         clip: settings.clip,
     };
     Ok((nuisance, report, fitted))
+}
+
+/// Rows predicted per task when the units outside a sample are scored.
+const SPREAD_BLOCK_ROWS: usize = 8192;
+
+/// One component's values for every unit: `fitted[j]` is the out-of-fold
+/// value of sample unit `sample[j]`; every other unit `i` gets the
+/// prediction of `models[fold_of_unit[i]]`, which was fitted on sample
+/// units outside that fold and so never saw it. The rest are predicted in
+/// blocks on every worker thread, from their raw feature values (`rows`
+/// is never binned).
+fn spread_to_every_unit(
+    fitted: Vec<f64>,
+    sample: &[usize],
+    fold_of_unit: &[usize],
+    models: &[Box<dyn Fitted>],
+    rows: &SharedFeatures<'_>,
+) -> Vec<f64> {
+    let n = fold_of_unit.len();
+    let mut all = vec![f64::NAN; n];
+    let mut in_sample = vec![false; n];
+    for (v, &i) in fitted.into_iter().zip(sample) {
+        all[i] = v;
+        in_sample[i] = true;
+    }
+    for (f, model) in models.iter().enumerate() {
+        let rest: Vec<usize> = (0..n)
+            .filter(|&i| !in_sample[i] && fold_of_unit[i] == f)
+            .collect();
+        let predicted: Vec<Vec<f64>> = rest
+            .par_chunks(SPREAD_BLOCK_ROWS)
+            .map(|block| model.predict_rows(rows, block))
+            .collect();
+        for (&i, v) in rest.iter().zip(predicted.into_iter().flatten()) {
+            all[i] = v;
+        }
+    }
+    all
 }

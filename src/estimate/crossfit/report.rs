@@ -25,7 +25,8 @@ pub struct ComponentReport {
     pub loss: &'static str,
     pub oof_loss: f64,
     pub candidates: Vec<CandidateLoss>,
-    /// Units whose outcome the loss was computed on.
+    /// Units whose outcome the loss was computed on: the component's units
+    /// among those the models were fitted on (out of fold, as always).
     pub units: usize,
 }
 
@@ -46,6 +47,17 @@ pub struct PropensityReport {
 pub struct NuisanceReport {
     pub folds: usize,
     pub seed: u64,
+    /// The cap on the units the models are fitted on under which this fit
+    /// drew its sample; None when they were fitted on every unit (no cap,
+    /// or one at or above the number of units: the same fit either way).
+    /// Kept with a stored fit so that the fit is drawn again with its own
+    /// cap whatever the setting is later; a record without it was fitted
+    /// on every unit.
+    pub max_fit_units: Option<usize>,
+    /// Units the fold models were fitted on: every unit, or the sample.
+    pub fitted_units: usize,
+    /// Units given nuisance values, each by models that never saw it.
+    pub units: usize,
     pub propensity: PropensityReport,
     pub outcome_control: ComponentReport,
     pub outcome_treated: ComponentReport,

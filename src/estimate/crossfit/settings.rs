@@ -26,6 +26,12 @@ pub struct NuisanceSettings {
     /// errors (paired over that fold's units) is not fitted on the other
     /// folds. None fits every learner on every fold.
     pub screening_z: Option<f64>,
+    /// The most units the fold models are fitted on: above it they are
+    /// fitted on a seeded sample stratified by arm, and every unit still
+    /// gets its values from the models of its own fold, which never saw it
+    /// ([`assign_fit`](super::assign_fit)). Bounds a fit's time and memory
+    /// whatever the history. None fits every unit.
+    pub max_fit_units: Option<usize>,
 }
 
 impl Default for NuisanceSettings {
@@ -41,6 +47,7 @@ impl Default for NuisanceSettings {
             // Four standard errors on a fifth of the data: a learner this far
             // behind on one fold is all but certain to lose on all five.
             screening_z: Some(4.0),
+            max_fit_units: None,
         }
     }
 }
@@ -59,6 +66,11 @@ impl NuisanceSettings {
                     "screening z must be a positive number (got {z})"
                 )));
             }
+        }
+        if self.max_fit_units == Some(0) {
+            return Err(EstimateError::invalid(
+                "max_fit_units must be at least 1 (or none, to fit every unit)",
+            ));
         }
         if !(self.clip >= 0.0 && self.clip < 0.5) {
             return Err(EstimateError::invalid(format!(

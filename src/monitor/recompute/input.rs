@@ -22,6 +22,10 @@ pub struct RecomputeInput {
     /// The cache's revision (see [`ScoringMemo`](super::ScoringMemo)).
     pub revision: u64,
     pub nuisance: Option<NuisanceState>,
+    /// The most units a refit fits the nuisance models on
+    /// (`limits.max_fit_units`); None fits every unit. A fit reproduced at
+    /// start-up uses the cap it recorded instead.
+    pub max_fit_units: Option<usize>,
     pub now_ms: i64,
     /// The cumulative window's rank metrics are refreshed on every
     /// recompute below this many units ([`RANKS_ALWAYS_FRESH_BELOW`](super::RANKS_ALWAYS_FRESH_BELOW)).

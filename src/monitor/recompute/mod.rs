@@ -38,7 +38,7 @@ use crate::estimate::EstimateError;
 pub use input::RecomputeInput;
 pub use memo::ScoringMemo;
 use nuisance::Fixed;
-pub use nuisance::{NuisanceState, RefitReason};
+pub use nuisance::{recorded_max_fit_units, NuisanceState, RefitReason};
 pub use windows::RANKS_ALWAYS_FRESH_BELOW;
 
 /// What a recompute was asked for beyond its schedule.

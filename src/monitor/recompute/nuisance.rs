@@ -5,8 +5,12 @@
 use std::collections::HashMap;
 use std::sync::Arc;
 
+use serde::Deserialize;
+
 use super::{settings, RecomputeInput, ScoringMemo};
-use crate::estimate::crossfit::{fit_nuisance_models_on, FittedNuisance, NuisanceReport};
+use crate::estimate::crossfit::{
+    fit_nuisance_models_on, FittedNuisance, NuisanceReport, NuisanceSettings,
+};
 use crate::estimate::EstimateError;
 use crate::monitor::cache::ChunkedColumn;
 
@@ -76,14 +80,37 @@ impl std::fmt::Display for RefitReason {
     }
 }
 
+/// The cap on the units a stored fit's models were fitted on, read from
+/// its report ([`NuisanceReport::max_fit_units`]); None (null, or no such
+/// field in a report written before fits were capped) for a fit on every
+/// unit.
+pub fn recorded_max_fit_units(report_json: &str) -> Result<Option<usize>, String> {
+    #[derive(Deserialize)]
+    struct Recorded {
+        #[serde(default)]
+        max_fit_units: Option<usize>,
+    }
+    serde_json::from_str::<Recorded>(report_json)
+        .map(|r| r.max_fit_units)
+        .map_err(|e| format!("nuisance fit report: {e}"))
+}
+
 impl RecomputeInput {
     /// Reproduces a recorded fit: the units whose outcome sequence is at most
-    /// `last_outcome_seq`, in unit order, with the dataset's seed.
-    pub fn reproduce_fit(&self, last_outcome_seq: i64) -> Result<NuisanceState, EstimateError> {
+    /// `last_outcome_seq`, in unit order, with the dataset's seed and the
+    /// cap the fit recorded (`max_fit_units`, from
+    /// [`recorded_max_fit_units`]), not the server's current one: the
+    /// sample is a function of the seed, the units and the cap, so the
+    /// reproduced values are the recorded fit's.
+    pub fn reproduce_fit(
+        &self,
+        last_outcome_seq: i64,
+        max_fit_units: Option<usize>,
+    ) -> Result<NuisanceState, EstimateError> {
         let outcomes = usize::try_from(last_outcome_seq.saturating_add(1))
             .unwrap_or(0)
             .min(self.columns.outcomes());
-        self.refit(&self.columns.arrived(0..outcomes))
+        self.refit(&self.columns.arrived(0..outcomes), max_fit_units)
             .map(|(s, _)| s)
     }
 
@@ -97,18 +124,21 @@ impl RecomputeInput {
     /// Full cross-fitted refit on `scorable`: the units of the first
     /// outcomes to arrive (all of them, or those of a recorded fit), in unit
     /// order; so the last outcome sequence number the fit used is their
-    /// count minus one.
+    /// count minus one. The models are fitted on at most `max_fit_units` of
+    /// them; every one gets values.
     pub(super) fn refit(
         &self,
         scorable: &[usize],
+        max_fit_units: Option<usize>,
     ) -> Result<(NuisanceState, usize), EstimateError> {
         let logged = self.all_logged(scorable);
         let table = self.table(scorable, logged)?;
-        let (values, report, fitted) = fit_nuisance_models_on(
-            &table,
-            self.features(scorable),
-            &settings(&self.spec).nuisance,
-        )?;
+        let nuisance_settings = NuisanceSettings {
+            max_fit_units,
+            ..settings(&self.spec).nuisance
+        };
+        let (values, report, fitted) =
+            fit_nuisance_models_on(&table, self.features(scorable), &nuisance_settings)?;
         let mut all = ChunkedColumn::filled(self.columns.units(), [f64::NAN; 3]);
         for (i, &u) in scorable.iter().enumerate() {
             all[u] = [values.propensity[i], values.mu0[i], values.mu1[i]];
@@ -231,7 +261,7 @@ impl RecomputeInput {
                 Ok((s, None, n))
             }
             (reason, _) => {
-                let (s, n) = self.refit(&self.scorable())?;
+                let (s, n) = self.refit(&self.scorable(), self.max_fit_units)?;
                 Ok((s, reason.or(Some(RefitReason::Requested)), n))
             }
         }

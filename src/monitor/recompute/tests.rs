@@ -50,6 +50,7 @@ fn input(units: usize, nuisance: Option<NuisanceState>) -> RecomputeInput {
             .collect(),
         revision: 0,
         nuisance,
+        max_fit_units: None,
         now_ms: 0,
         ranks_fresh_below: RANKS_ALWAYS_FRESH_BELOW,
         watch: Watch::default(),
@@ -207,4 +208,70 @@ fn cumulative_rank_metrics_wait_for_the_set_growth_and_the_rest_is_exact() {
     let refreshed = board(&third, "cumulative");
     assert_eq!(refreshed["rank_metrics_units"], 4300);
     assert_close(&refreshed, &board(&scratch(4300), "cumulative"), "");
+}
+
+/// Every unit's nuisance values under a fit, bit for bit.
+fn nuisance_values(state: &NuisanceState, units: usize) -> Vec<[u64; 3]> {
+    (0..units)
+        .map(|u| state.values[u].map(f64::to_bits))
+        .collect()
+}
+
+#[test]
+fn a_capped_fit_is_reproduced_from_its_record_whatever_the_setting_now() {
+    let units = 3000;
+    let mut capped = input(units, None);
+    capped.max_fit_units = Some(1200);
+    let first = capped
+        .compute(RecomputeOptions::default())
+        .expect("capped fit");
+    assert!(first.refit.is_some());
+    let fit = &first.nuisance;
+    assert_eq!(fit.report.max_fit_units, Some(1200));
+    assert_eq!((fit.report.fitted_units, fit.report.units), (1200, units));
+    assert_eq!(fit.fit_units, units);
+    assert!((0..units).all(|u| fit.values[u].iter().all(|v| v.is_finite())));
+
+    // What the store keeps, and what a restart reads back from it.
+    let record = serde_json::to_string(&fit.report).expect("report json");
+    let recorded = recorded_max_fit_units(&record).expect("readable");
+    assert_eq!(recorded, Some(1200));
+
+    // Restarted with another setting: the record's cap draws the same fit.
+    let mut restarted = input(units, None);
+    restarted.max_fit_units = Some(2_000_000);
+    let reproduced = restarted
+        .reproduce_fit(fit.last_outcome_seq, recorded)
+        .expect("reproduced");
+    assert_eq!(reproduced.report.fitted_units, 1200);
+    assert_eq!(
+        nuisance_values(&reproduced, units),
+        nuisance_values(fit, units)
+    );
+    assert_eq!(
+        serde_json::to_value(&reproduced.report).expect("json"),
+        serde_json::to_value(&fit.report).expect("json")
+    );
+
+    // A record from before the cap has no such field: it was fitted on
+    // every unit, and is reproduced so (here that is not the capped fit).
+    assert_eq!(recorded_max_fit_units(r#"{"folds":5,"seed":3}"#), Ok(None));
+    let uncapped = restarted
+        .reproduce_fit(fit.last_outcome_seq, None)
+        .expect("uncapped");
+    assert_eq!(uncapped.report.fitted_units, units);
+    assert_ne!(
+        nuisance_values(&uncapped, units),
+        nuisance_values(fit, units)
+    );
+    // A cap above the units draws no sample and records none.
+    let above = restarted
+        .reproduce_fit(fit.last_outcome_seq, Some(2_000_000))
+        .expect("above the units");
+    assert_eq!(above.report.max_fit_units, None);
+    assert_eq!(
+        nuisance_values(&above, units),
+        nuisance_values(&uncapped, units)
+    );
+    assert!(recorded_max_fit_units("not json").is_err());
 }
