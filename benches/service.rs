@@ -27,6 +27,12 @@
 //! `limits.max_fit_units`, so a refit fits its nuisance models on a sample
 //! of that many units (the server's default cap, 2,000,000, is above every
 //! default size).
+//!
+//! The store: SQLite by default, its WAL's size sampled every 20 ms (the
+//! largest is reported); `PLUMBLINE_BENCH_WAL_LIMIT_MIB=0` turns the WAL's
+//! bound off (default 64). `PLUMBLINE_BENCH_STORE_URL=postgres://...` runs
+//! the same on PostgreSQL instead: each size gets a new database on that
+//! server (the URL names one to connect to for creating it).
 
 use std::net::TcpListener;
 use std::path::PathBuf;
@@ -69,6 +75,8 @@ const NAME: &str = "bench";
 
 struct Row {
     units: usize,
+    /// The largest size the SQLite WAL reached (0 on PostgreSQL).
+    wal_max_mib: f64,
     ingest_units_per_s: f64,
     ingest_predictions_per_s: f64,
     refit_s: f64,
@@ -109,20 +117,91 @@ fn peak_mib(pid: u32) -> f64 {
         .unwrap_or(0.0)
 }
 
+fn wal_limit_mib() -> Option<u64> {
+    std::env::var("PLUMBLINE_BENCH_WAL_LIMIT_MIB")
+        .ok()
+        .and_then(|v| v.parse().ok())
+}
+
+fn store_url() -> Option<String> {
+    std::env::var("PLUMBLINE_BENCH_STORE_URL").ok()
+}
+
+/// A new database for one size on the PostgreSQL server the URL names; its
+/// URL.
+async fn new_database(url: &str, tag: usize) -> String {
+    use sqlx::Connection;
+    let name = format!("plumbline_bench_{}_{tag}", std::process::id());
+    let mut db = sqlx::PgConnection::connect(url)
+        .await
+        .expect("connect to PLUMBLINE_BENCH_STORE_URL");
+    sqlx::raw_sql(sqlx::AssertSqlSafe(format!("CREATE DATABASE {name}")))
+        .execute(&mut db)
+        .await
+        .expect("create the bench database");
+    let base = url.split('?').next().unwrap_or(url);
+    let server = base.rsplit_once('/').map_or(base, |(s, _)| s);
+    format!("{server}/{name}")
+}
+
+/// The largest size the WAL file reaches while the bench runs, sampled
+/// every 20 ms on a thread of its own.
+struct WalWatch {
+    largest: std::sync::Arc<std::sync::atomic::AtomicU64>,
+    stop: std::sync::Arc<std::sync::atomic::AtomicBool>,
+}
+
+impl WalWatch {
+    fn start(wal: PathBuf) -> WalWatch {
+        use std::sync::atomic::Ordering;
+        let largest = std::sync::Arc::new(std::sync::atomic::AtomicU64::new(0));
+        let stop = std::sync::Arc::new(std::sync::atomic::AtomicBool::new(false));
+        let (l, st) = (largest.clone(), stop.clone());
+        std::thread::spawn(move || {
+            while !st.load(Ordering::Relaxed) {
+                let size = std::fs::metadata(&wal).map(|m| m.len()).unwrap_or(0);
+                l.fetch_max(size, Ordering::Relaxed);
+                std::thread::sleep(Duration::from_millis(20));
+            }
+        });
+        WalWatch { largest, stop }
+    }
+
+    fn largest_mib(&self) -> f64 {
+        self.largest.load(std::sync::atomic::Ordering::Relaxed) as f64 / (1024.0 * 1024.0)
+    }
+}
+
+impl Drop for WalWatch {
+    fn drop(&mut self) {
+        self.stop.store(true, std::sync::atomic::Ordering::Relaxed);
+    }
+}
+
 struct Server {
     child: Child,
     dir: PathBuf,
     addr: String,
+    store_url: Option<String>,
 }
 
 impl Server {
-    fn start(tag: usize) -> Server {
+    async fn start(tag: usize) -> Server {
         let dir =
             std::env::temp_dir().join(format!("plumbline-bench-{}-{tag}", std::process::id()));
         let _ = std::fs::remove_dir_all(&dir);
         let addr = format!("127.0.0.1:{}", free_port());
-        let child = Self::spawn(&dir, &addr);
-        Server { child, dir, addr }
+        let store_url = match store_url() {
+            Some(url) => Some(new_database(&url, tag).await),
+            None => None,
+        };
+        let child = Self::spawn(&dir, &addr, store_url.as_deref());
+        Server {
+            child,
+            dir,
+            addr,
+            store_url,
+        }
     }
 
     /// Stops the server (SIGTERM, as an orchestrator does) and starts a new
@@ -132,17 +211,26 @@ impl Server {
             .args(["-TERM", &self.child.id().to_string()])
             .status();
         let _ = self.child.wait();
-        self.child = Self::spawn(&self.dir, &self.addr);
+        self.child = Self::spawn(&self.dir, &self.addr, self.store_url.as_deref());
     }
 
-    fn spawn(dir: &std::path::Path, addr: &str) -> Child {
+    fn spawn(dir: &std::path::Path, addr: &str, store_url: Option<&str>) -> Child {
         let mut command = Command::new(env!("CARGO_BIN_EXE_plumbline"));
         command.arg("serve");
+        let mut config = String::new();
+        if let Some(url) = store_url {
+            config.push_str(&format!("store_url = \"{url}\"\n"));
+        }
+        if let Some(mib) = wal_limit_mib() {
+            config.push_str(&format!("sqlite_wal_limit_mib = {mib}\n"));
+        }
         if let Some(cap) = max_fit_units() {
-            let config = dir.with_extension("toml");
-            std::fs::write(&config, format!("[limits]\nmax_fit_units = {cap}\n"))
-                .expect("write the bench's configuration");
-            command.arg("--config").arg(config);
+            config.push_str(&format!("[limits]\nmax_fit_units = {cap}\n"));
+        }
+        if !config.is_empty() {
+            let path = dir.with_extension("toml");
+            std::fs::write(&path, config).expect("write the bench's configuration");
+            command.arg("--config").arg(path);
         }
         command
             .args(["--listen", addr])
@@ -247,7 +335,8 @@ fn outcome_batches(data: &Draw, range: std::ops::Range<usize>) -> Vec<pb::Outcom
 }
 
 async fn measure(history: usize) -> Row {
-    let mut server = Server::start(history);
+    let mut server = Server::start(history).await;
+    let wal = WalWatch::start(server.dir.join("plumbline.sqlite-wal"));
     let channel = server.connect().await;
     let mut datasets = pb::dataset_registry_client::DatasetRegistryClient::new(channel.clone());
     let mut models = pb::model_registry_client::ModelRegistryClient::new(channel.clone());
@@ -398,6 +487,7 @@ async fn measure(history: usize) -> Row {
     let restart_s = t.elapsed().as_secs_f64();
     Row {
         units: history,
+        wal_max_mib: wal.largest_mib(),
         ingest_units_per_s,
         ingest_predictions_per_s,
         refit_s,
@@ -424,8 +514,8 @@ async fn main() {
     for &n in &sizes {
         let row = measure(n).await;
         eprintln!(
-            "n = {n}: ingest {:.0} units/s, refit {:.2} s, incremental {:.3} s",
-            row.ingest_units_per_s, row.refit_s, row.incremental_s
+            "n = {n}: ingest {:.0} units/s, refit {:.2} s, incremental {:.3} s, WAL at most {:.1} MiB",
+            row.ingest_units_per_s, row.refit_s, row.incremental_s, row.wal_max_mib
         );
         rows.push(row);
     }
@@ -469,8 +559,13 @@ async fn main() {
 window's rank metrics; refresh: a recompute asked to refresh them, server time; intake MiB: peak before the refit, \
 the cache and the store; raw: {RAW_BYTES_PER_UNIT} bytes per unit; restart: \
 SIGTERM, start on the same data, until the scoreboard is served, and that process's peak; \
-limits.max_fit_units: {})",
+limits.max_fit_units: {}; store: {}; largest SQLite WAL {})",
         arriving(),
-        max_fit_units().map_or("the default".to_string(), |c| c.to_string())
+        max_fit_units().map_or("the default".to_string(), |c| c.to_string()),
+        if store_url().is_some() { "PostgreSQL" } else { "SQLite" },
+        rows.iter()
+            .map(|r| format!("{:.1} MiB", r.wal_max_mib))
+            .collect::<Vec<_>>()
+            .join(", ")
     );
 }

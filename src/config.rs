@@ -7,7 +7,7 @@ use std::path::{Path, PathBuf};
 use serde::Deserialize;
 
 use crate::limits::Limits;
-use crate::store::{Durability, Location, StoreConfig};
+use crate::store::{Durability, Location, StoreConfig, DEFAULT_WAL_LIMIT_MIB};
 
 pub const DEFAULT_LISTEN: &str = "127.0.0.1:7070";
 pub const DEFAULT_METRICS_LISTEN: &str = "127.0.0.1:7071";
@@ -42,6 +42,9 @@ pub struct Config {
     /// This server's name among the servers sharing a store (the host's
     /// name when unset).
     pub replica_name: Option<String>,
+    /// SQLite: truncate the WAL once it passes this many MiB (0: never
+    /// while running).
+    pub sqlite_wal_limit_mib: u64,
     pub durability: Durability,
     pub log_format: LogFormat,
     /// A tracing filter, e.g. "info" or "plumbline=debug".
@@ -78,6 +81,7 @@ struct FileConfig {
     store_url: Option<String>,
     lease_seconds: Option<u64>,
     replica_name: Option<String>,
+    sqlite_wal_limit_mib: Option<u64>,
     durability: Option<Durability>,
     log_format: Option<LogFormat>,
     log_level: Option<String>,
@@ -150,6 +154,12 @@ impl Config {
                  an owner that long after a server dies)"
             ));
         }
+        let sqlite_wal_limit_mib = match env("PLUMBLINE_SQLITE_WAL_LIMIT_MIB") {
+            Some(v) => v.parse().map_err(|_| {
+                format!("PLUMBLINE_SQLITE_WAL_LIMIT_MIB: {v:?} is not a whole number")
+            })?,
+            None => f.sqlite_wal_limit_mib.unwrap_or(DEFAULT_WAL_LIMIT_MIB),
+        };
         let replica_name = env("PLUMBLINE_REPLICA_NAME")
             .or(f.replica_name)
             .filter(|n| !n.is_empty());
@@ -210,6 +220,7 @@ impl Config {
             store,
             lease_seconds,
             replica_name,
+            sqlite_wal_limit_mib,
             durability,
             log_format,
             log_level,
@@ -231,6 +242,7 @@ impl Config {
             data_dir,
             lease_seconds: DEFAULT_LEASE_SECONDS,
             replica_name: None,
+            sqlite_wal_limit_mib: DEFAULT_WAL_LIMIT_MIB,
             durability: Durability::default(),
             log_format: LogFormat::default(),
             log_level: "info".into(),
@@ -255,6 +267,7 @@ impl Config {
             location: self.store.clone(),
             durability: self.durability,
             claim: true,
+            wal_limit_bytes: self.sqlite_wal_limit_mib << 20,
         }
     }
 }

@@ -50,6 +50,7 @@ async fn backends(tag: &str) -> Vec<Backend> {
             location: Location::Postgres(url),
             durability: Durability::Full,
             claim: true,
+            wal_limit_bytes: 0,
         })
         .await
         .unwrap_or_else(|e| panic!("open postgres: {e}\n{}", cluster.log()));
@@ -659,4 +660,70 @@ async fn a_shared_store_refuses_stale_numbers_and_repeated_keys() {
         assert_eq!(s.counts(d.id).await.expect("counts"), (10, 2, 1), "{name}");
         s.close().await;
     }
+}
+
+/// A stream of unit batches into a fresh SQLite store for `seconds`, each
+/// committed as soon as the last one is: the largest WAL size seen, how
+/// often the file shrank, and the units written.
+async fn wal_under_stream(limit: u64, seconds: u64) -> (u64, usize, i64) {
+    let dir = TempDir::new("contract-wal");
+    let path = dir.0.join("plumbline.sqlite");
+    let s = store::open(&StoreConfig {
+        wal_limit_bytes: limit,
+        ..StoreConfig::sqlite(&path, Durability::Normal)
+    })
+    .await
+    .expect("open");
+    let d = s.create_dataset(&spec("a"), 1).await.expect("create");
+    let wal = dir.0.join("plumbline.sqlite-wal");
+    let size = || std::fs::metadata(&wal).map(|m| m.len()).unwrap_or(0);
+    let (mut seq, mut largest, mut cuts, mut last) = (0i64, 0u64, 0, 0u64);
+    let started = std::time::Instant::now();
+    while started.elapsed() < std::time::Duration::from_secs(seconds) {
+        let batch: Vec<UnitRecord> = (seq..seq + 200)
+            .map(|i| unit(i, &format!("k{i}")))
+            .collect();
+        s.insert_units(d.id, &batch, 1).await.expect("units");
+        seq += 200;
+        let now = size();
+        if now < last {
+            cuts += 1;
+        }
+        largest = largest.max(now);
+        last = now;
+    }
+    s.close().await;
+    (largest, cuts, seq)
+}
+
+/// SQLite's WAL under a stream that never pauses: passive checkpoints never
+/// catch up with it, so without a bound the file grows with everything
+/// written. With `wal_limit_bytes` a checkpoint cuts it back once it passes
+/// the bound; between checkpoints (every 500 ms) it grows by what is
+/// written in the meantime. The same 3 s stream runs without a bound and
+/// with a 2 MiB one.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn the_sqlite_wal_is_cut_back_once_it_passes_its_bound() {
+    let mib = |b: u64| b as f64 / f64::from(1 << 20);
+    let (free, free_cuts, free_units) = wal_under_stream(0, 3).await;
+    let limit: u64 = 2 << 20;
+    let (bounded, cuts, units) = wal_under_stream(limit, 3).await;
+    println!(
+        "3 s streams: unbounded WAL reached {:.1} MiB ({free_units} units, cut {free_cuts} \
+         times); bounded at {:.0} MiB it reached {:.1} MiB ({units} units, cut {cuts} times)",
+        mib(free),
+        mib(limit),
+        mib(bounded)
+    );
+    assert_eq!(free_cuts, 0, "without a bound the WAL only grows under a stream");
+    assert!(cuts >= 2, "the bounded WAL was cut back {cuts} times");
+    // The unbounded file holds the whole stream; the bounded one at most the
+    // bound plus what one or two checkpoint intervals wrote (a quarter of a
+    // 3 s stream leaves room for a slow interval).
+    let per_unit = free as f64 / free_units as f64;
+    assert!(
+        (bounded as f64) < limit as f64 + 0.34 * per_unit * units as f64,
+        "bounded WAL reached {:.1} MiB",
+        mib(bounded)
+    );
 }

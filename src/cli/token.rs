@@ -77,6 +77,7 @@ async fn apply(args: &TokenArgs) -> Result<(), (u8, String)> {
         location: location.clone(),
         durability: Durability::Full,
         claim: false,
+        wal_limit_bytes: 0,
     })
     .await
     .map_err(|e| fail(format!("{}: {e}", location.display())))?;

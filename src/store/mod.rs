@@ -127,6 +127,9 @@ pub struct StoreConfig {
     /// running server open without the claim. PostgreSQL takes several
     /// servers; they share datasets by leases ([`LeaseLog`]).
     pub claim: bool,
+    /// SQLite: the WAL file's size past which a checkpoint truncates it
+    /// (0: never truncate while running).
+    pub wal_limit_bytes: u64,
 }
 
 impl StoreConfig {
@@ -136,9 +139,13 @@ impl StoreConfig {
             location: Location::Sqlite(path.into()),
             durability,
             claim: true,
+            wal_limit_bytes: DEFAULT_WAL_LIMIT_MIB << 20,
         }
     }
 }
+
+/// The default bound on SQLite's WAL file, in MiB.
+pub const DEFAULT_WAL_LIMIT_MIB: u64 = 64;
 
 /// Which backend, and where: parsed from a `store_url` by [`Location::parse`].
 #[derive(Clone, PartialEq, Eq)]

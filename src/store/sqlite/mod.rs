@@ -11,9 +11,14 @@
 //! Commits never copy the WAL back into the database file themselves
 //! (`wal_autocheckpoint = 0`): a background task checkpoints every
 //! [`CHECKPOINT_EVERY`] on a connection of its own, beside the writer, so an
-//! intake batch waits only for its own WAL append and fsync.
+//! intake batch waits only for its own WAL append and fsync. Those passive
+//! checkpoints never wait, so under a stream that commits every few
+//! milliseconds they never catch up and the WAL file grows with everything
+//! written; once it passes [`StoreConfig::wal_limit_bytes`] the task runs a
+//! truncating checkpoint instead, which makes the writer wait while it
+//! copies what is left and cuts the file back to nothing.
 
-use std::path::Path;
+use std::path::{Path, PathBuf};
 use std::str::FromStr;
 use std::sync::atomic::AtomicI64;
 use std::sync::{Arc, Weak};
@@ -82,7 +87,7 @@ const INSERT_CHUNK: usize = 500;
 /// `alive` is dropped. PASSIVE never waits for the
 /// writer or for readers; frames it cannot copy yet are copied next time,
 /// and the writer starts the WAL over once a checkpoint has caught up.
-async fn checkpoints(pool: SqlitePool, alive: Weak<()>) {
+async fn checkpoints(pool: SqlitePool, alive: Weak<()>, wal: PathBuf, limit: u64) {
     let mut tick = tokio::time::interval(CHECKPOINT_EVERY);
     tick.set_missed_tick_behavior(tokio::time::MissedTickBehavior::Delay);
     loop {
@@ -90,10 +95,13 @@ async fn checkpoints(pool: SqlitePool, alive: Weak<()>) {
         if pool.is_closed() || alive.strong_count() == 0 {
             return;
         }
-        if let Err(e) = sqlx::query("PRAGMA wal_checkpoint(PASSIVE)")
-            .execute(&pool)
-            .await
-        {
+        let size = std::fs::metadata(&wal).map(|m| m.len()).unwrap_or(0);
+        let mode = if limit > 0 && size > limit {
+            "PRAGMA wal_checkpoint(TRUNCATE)"
+        } else {
+            "PRAGMA wal_checkpoint(PASSIVE)"
+        };
+        if let Err(e) = sqlx::query(mode).execute(&pool).await {
             if pool.is_closed() {
                 return;
             }
@@ -157,7 +165,14 @@ impl SqliteStore {
             .fetch_one(&pool)
             .await?;
         let alive = Arc::new(());
-        tokio::spawn(checkpoints(pool.clone(), Arc::downgrade(&alive)));
+        let mut wal = path.as_os_str().to_owned();
+        wal.push("-wal");
+        tokio::spawn(checkpoints(
+            pool.clone(),
+            Arc::downgrade(&alive),
+            PathBuf::from(wal),
+            config.wal_limit_bytes,
+        ));
         Ok(Self {
             pool,
             _alive: alive,
