@@ -14,12 +14,14 @@
 //! - [`domain`]: the service's own records (dataset settings, the rows
 //!   that arrive, published boards, history values, events), shared by the
 //!   store, the monitor and the api; free of the wire and of any backend.
-//! - [`store`]: the storage contract (four small traits in domain records,
-//!   with the integrity rules every backend keeps) and its SQLite backend
-//!   in `store::sqlite`; `store::open` is the one place naming a backend.
+//! - [`store`]: the storage contract (five small traits in domain records,
+//!   with the integrity rules every backend keeps, leases and fencing) and
+//!   its backends, `store::sqlite` (one server) and `store::postgres`
+//!   (several sharing it); `store::open` is the one place naming a backend.
 //! - [`monitor`]: per-dataset state: the in-memory columnar cache, intake
 //!   validation and the integrity rules, the recompute job and its scheduler,
-//!   windows, snapshots, and the events the stream watch raises.
+//!   windows, snapshots, the events the stream watch raises, and on a shared
+//!   store the datasets' ownership and catching up with the other servers.
 //! - [`api`]: the gRPC surface, thin adapters from the wire contract in
 //!   `proto/` to the monitor, the only module that converts to and from the
 //!   wire, with one mapping of errors to status codes.

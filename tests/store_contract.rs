@@ -715,7 +715,10 @@ async fn the_sqlite_wal_is_cut_back_once_it_passes_its_bound() {
         mib(limit),
         mib(bounded)
     );
-    assert_eq!(free_cuts, 0, "without a bound the WAL only grows under a stream");
+    assert_eq!(
+        free_cuts, 0,
+        "without a bound the WAL only grows under a stream"
+    );
     assert!(cuts >= 2, "the bounded WAL was cut back {cuts} times");
     // The unbounded file holds the whole stream; the bounded one at most the
     // bound plus what one or two checkpoint intervals wrote (a quarter of a

@@ -14,7 +14,8 @@
 //! have to lose. And were it to write anyway, the epoch check refuses it.
 //!
 //! On SQLite one server holds the directory (its claim), so it takes every
-//! lease at start; the same code runs, and never loses one.
+//! lease at start; the same code runs, never loses one, and keeps no local
+//! deadline.
 
 use std::sync::Arc;
 use std::time::{Duration, Instant};
@@ -127,12 +128,20 @@ impl Monitor {
     /// tick short of the store's lease: stop acting before anyone else may
     /// start.
     fn hold(&self, h: &DatasetHandle, fence: Fence, sent: Instant, active: bool) {
+        // One server per SQLite store (its claim on the directory): nobody
+        // can take a lease it lets lapse, so a slow renewal (the writer busy
+        // with a large batch) must not stop its recomputes.
+        let local = if self.store.shared() {
+            self.replica.ttl().saturating_sub(self.replica.tick())
+        } else {
+            Duration::from_secs(365 * 24 * 3600)
+        };
         let mut held = h.lease.lock().unwrap_or_else(|e| e.into_inner());
         *held = Held {
             fence: Some(fence),
             active,
             since: sent,
-            until: sent + self.replica.ttl().saturating_sub(self.replica.tick()),
+            until: sent + local,
         };
     }
 
