@@ -585,6 +585,33 @@ async fn leases_go_to_one_holder_and_fence_the_ones_before() {
             .expect("fenced event");
         s.insert_event(&event(None)).await.expect("registry event");
 
+        // A recompute asked of the owner waits open until answered.
+        let ask = store::RecomputeAsk {
+            dataset_id: d.id,
+            refit: true,
+            refresh_ranks: false,
+            asked_at_ms: 5,
+        };
+        let asked = s.ask_recompute(&ask).await.expect("ask");
+        assert_eq!(
+            s.open_asks(d.id).await.expect("open"),
+            vec![(asked, ask)],
+            "{name}"
+        );
+        assert_eq!(s.answer(asked).await.expect("answer"), None, "{name}");
+        s.answer_ask(asked, "{\"done\":1}", 6)
+            .await
+            .expect("answer it");
+        assert_eq!(
+            s.answer(asked).await.expect("answer").as_deref(),
+            Some("{\"done\":1}"),
+            "{name}"
+        );
+        assert!(
+            s.open_asks(d.id).await.expect("open").is_empty(),
+            "{name}: answered"
+        );
+
         // A lease lapses by the store's clock.
         let e = s.create_dataset(&spec("b"), 1).await.expect("create");
         s.acquire_lease(e.id, "one", 1)

@@ -191,7 +191,9 @@ impl Monitor {
             if due {
                 h.wake.notify_one();
             }
-            if !owner {
+            if owner {
+                self.answer_asks(&h).await?;
+            } else {
                 self.follow_boards(&h).await?;
             }
             self.follow_events(&h).await?;

@@ -22,10 +22,70 @@ use std::time::{Duration, Instant};
 
 use tracing::{info, warn};
 
-use super::{DatasetHandle, Monitor, MonitorResult};
+use super::{
+    now_ms, DatasetHandle, Monitor, MonitorError, MonitorResult, RecomputeOptions, RecomputeSummary,
+};
 use crate::metrics::http::Ownership;
 use crate::metrics::DatasetLabels;
-use crate::store::Fence;
+use crate::store::{Fence, RecomputeAsk};
+
+/// How long a recompute asked of another server's dataset waits for the
+/// owner's answer.
+const ASK_WAIT: Duration = Duration::from_secs(600);
+
+/// An owner's answer to a recompute asked at another server, as stored.
+#[derive(Debug, serde::Serialize, serde::Deserialize)]
+#[serde(rename_all = "snake_case")]
+enum Answer {
+    Done {
+        snapshot_id: u64,
+        refitted: bool,
+        units: u64,
+        millis: f64,
+    },
+    /// The recompute could not run as asked (no outcomes yet, data that
+    /// cannot support the estimates): the caller's to fix.
+    Refused(String),
+    Failed(String),
+}
+
+impl Answer {
+    fn of(result: &MonitorResult<RecomputeSummary>) -> Self {
+        match result {
+            Ok(s) => Answer::Done {
+                snapshot_id: s.snapshot_id,
+                refitted: s.refitted,
+                units: s.units,
+                millis: s.millis,
+            },
+            Err(e @ MonitorError::FailedPrecondition(_)) => Answer::Refused(e.to_string()),
+            Err(MonitorError::Estimate(crate::estimate::EstimateError::Degenerate(d))) => {
+                Answer::Refused(format!("the data cannot support the estimates: {d}"))
+            }
+            Err(e) => Answer::Failed(e.to_string()),
+        }
+    }
+
+    fn result(self) -> MonitorResult<RecomputeSummary> {
+        match self {
+            Answer::Done {
+                snapshot_id,
+                refitted,
+                units,
+                millis,
+            } => Ok(RecomputeSummary {
+                snapshot_id,
+                refitted,
+                units,
+                millis,
+            }),
+            Answer::Refused(m) => Err(MonitorError::FailedPrecondition(m)),
+            Answer::Failed(m) => Err(MonitorError::Internal(format!(
+                "the dataset's owner could not recompute it: {m}"
+            ))),
+        }
+    }
+}
 
 /// This server among the servers sharing a store.
 #[derive(Debug, Clone)]
@@ -292,6 +352,70 @@ impl Monitor {
                 });
                 owned += 1;
             }
+        }
+        Ok(())
+    }
+
+    /// A recompute asked of this server for a dataset another server owns:
+    /// left in the store for the owner, whose answer is awaited.
+    pub(super) async fn ask_owner(
+        &self,
+        h: &DatasetHandle,
+        options: RecomputeOptions,
+    ) -> MonitorResult<RecomputeSummary> {
+        let id = self
+            .store
+            .ask_recompute(&RecomputeAsk {
+                dataset_id: h.id,
+                refit: options.refit,
+                refresh_ranks: options.refresh_ranks,
+                asked_at_ms: now_ms(),
+            })
+            .await?;
+        let started = Instant::now();
+        loop {
+            if let Some(json) = self.store.answer(id).await? {
+                let answer: Answer = serde_json::from_str(&json)
+                    .map_err(|e| MonitorError::Internal(format!("recompute answer {id}: {e}")))?;
+                return answer.result();
+            }
+            if started.elapsed() > ASK_WAIT {
+                return Err(MonitorError::Internal(format!(
+                    "dataset {:?}: its owner did not answer a recompute within {} s",
+                    h.name,
+                    ASK_WAIT.as_secs()
+                )));
+            }
+            tokio::time::sleep(super::follow::FOLLOW_EVERY / 2).await;
+        }
+    }
+
+    /// Runs the recomputes other servers left for a dataset this server
+    /// owns, each once, and stores the answers.
+    pub(super) async fn answer_asks(self: &Arc<Self>, h: &Arc<DatasetHandle>) -> MonitorResult<()> {
+        for (id, ask) in self.store.open_asks(h.id).await? {
+            if !h
+                .asks_taken
+                .lock()
+                .unwrap_or_else(|e| e.into_inner())
+                .insert(id)
+            {
+                continue;
+            }
+            let (monitor, h) = (Arc::clone(self), Arc::clone(h));
+            tokio::spawn(async move {
+                let options = RecomputeOptions {
+                    refit: ask.refit,
+                    refresh_ranks: ask.refresh_ranks,
+                };
+                let result = monitor.recompute_here(&h, options).await;
+                let json = serde_json::to_string(&Answer::of(&result))
+                    .unwrap_or_else(|e| format!("{{\"failed\":\"{e}\"}}"));
+                if let Err(e) = monitor.store.answer_ask(id, &json, now_ms()).await {
+                    warn!(dataset = %h.name, ask = id, error = %e, "could not answer a recompute");
+                }
+                // Kept taken: an answered ask is no longer open.
+            });
         }
         Ok(())
     }

@@ -167,6 +167,8 @@ pub struct DatasetHandle {
     lease: std::sync::Mutex<leases::Held>,
     /// Events of the dataset read so far (see `follow.rs`).
     events_seen: std::sync::Mutex<follow::EventsSeen>,
+    /// Recomputes other servers asked of this owner, taken already.
+    asks_taken: std::sync::Mutex<std::collections::BTreeSet<i64>>,
 }
 
 impl DatasetHandle {
@@ -267,6 +269,7 @@ impl Monitor {
             state: Mutex::new(state),
             lease: std::sync::Mutex::new(leases::Held::none()),
             events_seen: std::sync::Mutex::new(follow::EventsSeen::default()),
+            asks_taken: std::sync::Mutex::new(Default::default()),
         });
         if let Ok(mut map) = self.datasets.write() {
             map.insert(handle.name.clone(), Arc::clone(&handle));

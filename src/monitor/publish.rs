@@ -17,7 +17,7 @@ use crate::metrics::{DatasetLabels, KindLabels, WindowLabels};
 use crate::store::{Fence, NewSnapshot, StoreError};
 
 /// What a recompute did.
-#[derive(Debug, Clone, Copy)]
+#[derive(Debug, Clone, Copy, PartialEq)]
 pub struct RecomputeSummary {
     pub snapshot_id: u64,
     pub refitted: bool,
@@ -57,13 +57,27 @@ impl Monitor {
         options: RecomputeOptions,
     ) -> MonitorResult<RecomputeSummary> {
         let h = self.handle(dataset)?;
+        if self.store.shared() && h.fence().is_none() {
+            // Another server owns it: ask the owner through the store.
+            return self.ask_owner(&h, options).await;
+        }
+        self.recompute_here(&h, options).await
+    }
+
+    /// Recomputes a dataset this server owns (refused if it does not).
+    pub(super) async fn recompute_here(
+        &self,
+        h: &Arc<DatasetHandle>,
+        options: RecomputeOptions,
+    ) -> MonitorResult<RecomputeSummary> {
+        let dataset = h.name.as_str();
         let span = info_span!(
             "recompute",
             dataset = %dataset,
             refit_requested = options.refit,
             rank_refresh_requested = options.refresh_ranks
         );
-        let result = self.recompute_handle(&h, options).instrument(span).await;
+        let result = self.recompute_handle(h, options).instrument(span).await;
         if let Err(e) = &result {
             warn!(dataset = %dataset, error = %e, "recompute failed");
             self.metrics
@@ -84,8 +98,7 @@ impl Monitor {
         let _one_at_a_time = h.recompute.lock().await;
         let Some(fence) = h.fence() else {
             return Err(MonitorError::FailedPrecondition(format!(
-                "dataset {:?} is recomputed by the server that owns it, not this one; \
-                 its scoreboards here follow that server's",
+                "dataset {:?} changed owner while the recompute was asked; ask again",
                 h.name
             )));
         };

@@ -420,6 +420,26 @@ pub trait LeaseLog: Send + Sync {
     async fn release_lease(&self, fence: Fence, holder: &str) -> StoreResult<()>;
     /// Every dataset's lease.
     async fn leases(&self) -> StoreResult<Vec<LeaseRecord>>;
+
+    /// Leaves a recompute asked of a server that does not own the dataset
+    /// for its owner; returns the ask's id.
+    async fn ask_recompute(&self, ask: &RecomputeAsk) -> StoreResult<i64>;
+    /// The dataset's asks not answered yet, oldest first.
+    async fn open_asks(&self, dataset_id: i64) -> StoreResult<Vec<(i64, RecomputeAsk)>>;
+    /// Answers an ask (JSON of the owner's summary or its error).
+    async fn answer_ask(&self, id: i64, answer_json: &str, now_ms: i64) -> StoreResult<()>;
+    /// An ask's answer, once given.
+    async fn answer(&self, id: i64) -> StoreResult<Option<String>>;
+}
+
+/// A recompute asked of a server that does not own the dataset (see
+/// [`LeaseLog::ask_recompute`]).
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct RecomputeAsk {
+    pub dataset_id: i64,
+    pub refit: bool,
+    pub refresh_ranks: bool,
+    pub asked_at_ms: i64,
 }
 
 /// A backend: the five logs, and closing.

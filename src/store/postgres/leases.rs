@@ -4,7 +4,7 @@ use async_trait::async_trait;
 use sqlx::Row;
 
 use super::{db_now_ms, PgStore};
-use crate::store::{Fence, LeaseLog, LeaseRecord, StoreResult};
+use crate::store::{Fence, LeaseLog, LeaseRecord, RecomputeAsk, StoreResult};
 
 #[async_trait]
 impl LeaseLog for PgStore {
@@ -78,5 +78,60 @@ impl LeaseLog for PgStore {
                 expires_in_ms: r.get(3),
             })
             .collect())
+    }
+
+    async fn ask_recompute(&self, ask: &RecomputeAsk) -> StoreResult<i64> {
+        Ok(sqlx::query_scalar(
+            "INSERT INTO recompute_asks (dataset_id, refit, refresh_ranks, asked_at_ms) VALUES ($1, $2, $3, $4) RETURNING id",
+        )
+        .bind(ask.dataset_id)
+        .bind(ask.refit)
+        .bind(ask.refresh_ranks)
+        .bind(ask.asked_at_ms)
+        .fetch_one(&self.pool)
+        .await?)
+    }
+
+    async fn open_asks(&self, dataset_id: i64) -> StoreResult<Vec<(i64, RecomputeAsk)>> {
+        let rows = sqlx::query(
+            "SELECT id, refit, refresh_ranks, asked_at_ms FROM recompute_asks WHERE dataset_id = $1 AND answered_at_ms = 0 ORDER BY id",
+        )
+        .bind(dataset_id)
+        .fetch_all(&self.pool)
+        .await?;
+        Ok(rows
+            .into_iter()
+            .map(|r| {
+                (
+                    r.get(0),
+                    RecomputeAsk {
+                        dataset_id,
+                        refit: r.get(1),
+                        refresh_ranks: r.get(2),
+                        asked_at_ms: r.get(3),
+                    },
+                )
+            })
+            .collect())
+    }
+
+    async fn answer_ask(&self, id: i64, answer_json: &str, now_ms: i64) -> StoreResult<()> {
+        sqlx::query("UPDATE recompute_asks SET answer = $1, answered_at_ms = $2 WHERE id = $3")
+            .bind(answer_json)
+            .bind(now_ms.max(1))
+            .bind(id)
+            .execute(&self.pool)
+            .await?;
+        Ok(())
+    }
+
+    async fn answer(&self, id: i64) -> StoreResult<Option<String>> {
+        Ok(sqlx::query_scalar::<_, Option<String>>(
+            "SELECT answer FROM recompute_asks WHERE id = $1",
+        )
+        .bind(id)
+        .fetch_optional(&self.pool)
+        .await?
+        .flatten())
     }
 }

@@ -6,7 +6,7 @@ use async_trait::async_trait;
 use sqlx::Row;
 
 use super::SqliteStore;
-use crate::store::{Fence, LeaseLog, LeaseRecord, StoreResult};
+use crate::store::{Fence, LeaseLog, LeaseRecord, RecomputeAsk, StoreResult};
 
 fn now_ms() -> i64 {
     crate::monitor::now_ms()
@@ -82,5 +82,60 @@ impl LeaseLog for SqliteStore {
                 expires_in_ms: r.get::<i64, _>(3) - now,
             })
             .collect())
+    }
+
+    async fn ask_recompute(&self, ask: &RecomputeAsk) -> StoreResult<i64> {
+        Ok(sqlx::query_scalar(
+            "INSERT INTO recompute_asks (dataset_id, refit, refresh_ranks, asked_at_ms) VALUES (?, ?, ?, ?) RETURNING id",
+        )
+        .bind(ask.dataset_id)
+        .bind(ask.refit)
+        .bind(ask.refresh_ranks)
+        .bind(ask.asked_at_ms)
+        .fetch_one(&self.pool)
+        .await?)
+    }
+
+    async fn open_asks(&self, dataset_id: i64) -> StoreResult<Vec<(i64, RecomputeAsk)>> {
+        let rows = sqlx::query(
+            "SELECT id, refit, refresh_ranks, asked_at_ms FROM recompute_asks WHERE dataset_id = ? AND answered_at_ms = 0 ORDER BY id",
+        )
+        .bind(dataset_id)
+        .fetch_all(&self.pool)
+        .await?;
+        Ok(rows
+            .into_iter()
+            .map(|r| {
+                (
+                    r.get(0),
+                    RecomputeAsk {
+                        dataset_id,
+                        refit: r.get(1),
+                        refresh_ranks: r.get(2),
+                        asked_at_ms: r.get(3),
+                    },
+                )
+            })
+            .collect())
+    }
+
+    async fn answer_ask(&self, id: i64, answer_json: &str, now_ms: i64) -> StoreResult<()> {
+        sqlx::query("UPDATE recompute_asks SET answer = ?, answered_at_ms = ? WHERE id = ?")
+            .bind(answer_json)
+            .bind(now_ms.max(1))
+            .bind(id)
+            .execute(&self.pool)
+            .await?;
+        Ok(())
+    }
+
+    async fn answer(&self, id: i64) -> StoreResult<Option<String>> {
+        Ok(sqlx::query_scalar::<_, Option<String>>(
+            "SELECT answer FROM recompute_asks WHERE id = ?",
+        )
+        .bind(id)
+        .fetch_optional(&self.pool)
+        .await?
+        .flatten())
     }
 }
