@@ -149,25 +149,7 @@ async fn connect(addr: SocketAddr) -> Channel {
 }
 
 async fn setup(ch: &Channel) {
-    let mut datasets = pb::dataset_registry_client::DatasetRegistryClient::new(ch.clone());
-    let mut spec = continuous_spec(DS, 2);
-    spec.folds = 3;
-    datasets
-        .create_dataset(pb::CreateDatasetRequest { spec: Some(spec) })
-        .await
-        .expect("create");
-    let mut models = pb::model_registry_client::ModelRegistryClient::new(ch.clone());
-    for m in MODELS {
-        models
-            .register_model(pb::RegisterModelRequest {
-                dataset: DS.into(),
-                name: m.into(),
-                version: "1".into(),
-                description: String::new(),
-            })
-            .await
-            .expect("register");
-    }
+    create_with_models(ch, DS, &MODELS).await;
 }
 
 /// Sends call `phase` of a batch; Ok((accepted, duplicate)) when acknowledged.

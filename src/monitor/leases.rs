@@ -123,7 +123,7 @@ impl Replica {
     }
 
     /// How often the lease task looks.
-    pub fn tick(&self) -> Duration {
+    fn tick(&self) -> Duration {
         (self.lease / 20).max(Duration::from_millis(20))
     }
 
@@ -215,15 +215,6 @@ impl Monitor {
         }
         self.export_ownership(h);
         Ok(())
-    }
-
-    /// The datasets this server owns now, by name.
-    pub fn owned(&self) -> Vec<String> {
-        self.handles()
-            .into_iter()
-            .filter(|h| h.fence().is_some())
-            .map(|h| h.name.clone())
-            .collect()
     }
 
     pub fn holder(&self) -> &str {

@@ -248,6 +248,30 @@ pub async fn send_predictions(
         .into_inner()
 }
 
+/// Creates a dataset of two continuous features and three folds over
+/// `ch`, and registers `models` on it.
+pub async fn create_with_models(ch: &Channel, dataset: &str, models: &[&str]) {
+    let mut datasets = pb::dataset_registry_client::DatasetRegistryClient::new(ch.clone());
+    let mut spec = continuous_spec(dataset, 2);
+    spec.folds = 3;
+    datasets
+        .create_dataset(pb::CreateDatasetRequest { spec: Some(spec) })
+        .await
+        .expect("create");
+    let mut registry = pb::model_registry_client::ModelRegistryClient::new(ch.clone());
+    for m in models {
+        registry
+            .register_model(pb::RegisterModelRequest {
+                dataset: dataset.into(),
+                name: (*m).into(),
+                version: "1".into(),
+                description: String::new(),
+            })
+            .await
+            .expect("register");
+    }
+}
+
 pub async fn register(c: &mut Clients, dataset: &str, name: &str) {
     c.models
         .register_model(pb::RegisterModelRequest {
