@@ -33,6 +33,11 @@
 //! bound off (default 64). `PLUMBLINE_BENCH_STORE_URL=postgres://...` runs
 //! the same on PostgreSQL instead: each size gets a new database on that
 //! server (the URL names one to connect to for creating it).
+//! `PLUMBLINE_BENCH_REPLICAS=3` (PostgreSQL only) starts that many servers
+//! on the database and spreads every ingest over them, one client stream
+//! per server, batches dealt in turn; refits and recomputes are asked of
+//! the first server (its owner runs them if it does not own the dataset),
+//! memory is the largest server's, and the restart is the first server's.
 
 use std::net::TcpListener;
 use std::path::PathBuf;
@@ -93,6 +98,9 @@ struct Row {
     raw_mib: f64,
     restart_s: f64,
     restart_peak_mib: f64,
+    /// Batches refused because another server numbered rows first, summed
+    /// over the servers (0 with one server).
+    conflicts: f64,
 }
 
 fn free_port() -> u16 {
@@ -125,6 +133,20 @@ fn wal_limit_mib() -> Option<u64> {
 
 fn store_url() -> Option<String> {
     std::env::var("PLUMBLINE_BENCH_STORE_URL").ok()
+}
+
+/// How many servers share the store (`PLUMBLINE_BENCH_REPLICAS`, default 1).
+fn replicas() -> usize {
+    let n = std::env::var("PLUMBLINE_BENCH_REPLICAS")
+        .ok()
+        .and_then(|v| v.parse().ok())
+        .filter(|&n| n > 0)
+        .unwrap_or(1);
+    assert!(
+        n == 1 || store_url().is_some(),
+        "PLUMBLINE_BENCH_REPLICAS above 1 needs PLUMBLINE_BENCH_STORE_URL (servers share a PostgreSQL store)"
+    );
+    n
 }
 
 /// A new database for one size on the PostgreSQL server the URL names; its
@@ -182,26 +204,55 @@ struct Server {
     child: Child,
     dir: PathBuf,
     addr: String,
+    metrics_addr: String,
     store_url: Option<String>,
 }
 
 impl Server {
-    async fn start(tag: usize) -> Server {
-        let dir =
-            std::env::temp_dir().join(format!("plumbline-bench-{}-{tag}", std::process::id()));
-        let _ = std::fs::remove_dir_all(&dir);
-        let addr = format!("127.0.0.1:{}", free_port());
+    /// The servers of one size: the first on a new store, the others on
+    /// the same store.
+    async fn start_all(tag: usize) -> Vec<Server> {
         let store_url = match store_url() {
             Some(url) => Some(new_database(&url, tag).await),
             None => None,
         };
-        let child = Self::spawn(&dir, &addr, store_url.as_deref());
+        (0..replicas())
+            .map(|i| Server::start(&format!("{tag}-{i}"), store_url.clone()))
+            .collect()
+    }
+
+    fn start(tag: &str, store_url: Option<String>) -> Server {
+        let dir =
+            std::env::temp_dir().join(format!("plumbline-bench-{}-{tag}", std::process::id()));
+        let _ = std::fs::remove_dir_all(&dir);
+        let addr = format!("127.0.0.1:{}", free_port());
+        let metrics_addr = format!("127.0.0.1:{}", free_port());
+        let child = Self::spawn(&dir, &addr, &metrics_addr, store_url.as_deref());
         Server {
             child,
             dir,
             addr,
+            metrics_addr,
             store_url,
         }
+    }
+
+    /// The sum of this server's samples of a counter.
+    fn counter(&self, name: &str) -> f64 {
+        use std::io::{Read, Write};
+        let mut text = String::new();
+        if let Ok(mut s) = std::net::TcpStream::connect(&self.metrics_addr) {
+            let _ = write!(
+                s,
+                "GET /metrics HTTP/1.0\r\nHost: {}\r\n\r\n",
+                self.metrics_addr
+            );
+            let _ = s.read_to_string(&mut text);
+        }
+        text.lines()
+            .filter(|l| l.starts_with(name))
+            .filter_map(|l| l.rsplit(' ').next().and_then(|v| v.parse::<f64>().ok()))
+            .sum()
     }
 
     /// Stops the server (SIGTERM, as an orchestrator does) and starts a new
@@ -211,10 +262,20 @@ impl Server {
             .args(["-TERM", &self.child.id().to_string()])
             .status();
         let _ = self.child.wait();
-        self.child = Self::spawn(&self.dir, &self.addr, self.store_url.as_deref());
+        self.child = Self::spawn(
+            &self.dir,
+            &self.addr,
+            &self.metrics_addr,
+            self.store_url.as_deref(),
+        );
     }
 
-    fn spawn(dir: &std::path::Path, addr: &str, store_url: Option<&str>) -> Child {
+    fn spawn(
+        dir: &std::path::Path,
+        addr: &str,
+        metrics_addr: &str,
+        store_url: Option<&str>,
+    ) -> Child {
         let mut command = Command::new(env!("CARGO_BIN_EXE_plumbline"));
         command.arg("serve");
         let mut config = String::new();
@@ -234,7 +295,7 @@ impl Server {
         }
         command
             .args(["--listen", addr])
-            .args(["--metrics-listen", &format!("127.0.0.1:{}", free_port())])
+            .args(["--metrics-listen", metrics_addr])
             .arg("--data-dir")
             .arg(dir)
             .env("PLUMBLINE_LOG", "warn")
@@ -334,13 +395,63 @@ fn outcome_batches(data: &Draw, range: std::ops::Range<usize>) -> Vec<pb::Outcom
         .collect()
 }
 
+/// Deals `batches` in turn over one client stream per server and sends
+/// the streams at once.
+async fn spread<B, F, Fut>(channels: &[Channel], batches: Vec<B>, send: F)
+where
+    B: Send + 'static,
+    F: Fn(pb::intake_client::IntakeClient<Channel>, Vec<B>) -> Fut,
+    Fut: std::future::Future<Output = ()> + Send + 'static,
+{
+    let n = channels.len();
+    let mut parts: Vec<Vec<B>> = (0..n).map(|_| Vec::new()).collect();
+    for (i, b) in batches.into_iter().enumerate() {
+        parts[i % n].push(b);
+    }
+    let tasks: Vec<_> = channels
+        .iter()
+        .zip(parts)
+        .map(|(ch, part)| {
+            tokio::spawn(send(pb::intake_client::IntakeClient::new(ch.clone()), part))
+        })
+        .collect();
+    for t in tasks {
+        t.await.expect("a client stream");
+    }
+}
+
+async fn units_stream(mut c: pb::intake_client::IntakeClient<Channel>, b: Vec<pb::UnitBatch>) {
+    c.send_units(tokio_stream::iter(b)).await.expect("units");
+}
+
+async fn predictions_stream(
+    mut c: pb::intake_client::IntakeClient<Channel>,
+    b: Vec<pb::PredictionBatch>,
+) {
+    c.send_predictions(tokio_stream::iter(b))
+        .await
+        .expect("predictions");
+}
+
+async fn outcomes_stream(
+    mut c: pb::intake_client::IntakeClient<Channel>,
+    b: Vec<pb::OutcomeBatch>,
+) {
+    c.send_outcomes(tokio_stream::iter(b))
+        .await
+        .expect("outcomes");
+}
+
 async fn measure(history: usize) -> Row {
-    let mut server = Server::start(history).await;
-    let wal = WalWatch::start(server.dir.join("plumbline.sqlite-wal"));
-    let channel = server.connect().await;
+    let mut servers = Server::start_all(history).await;
+    let wal = WalWatch::start(servers[0].dir.join("plumbline.sqlite-wal"));
+    let mut channels = Vec::new();
+    for s in &servers {
+        channels.push(s.connect().await);
+    }
+    let channel = channels[0].clone();
     let mut datasets = pb::dataset_registry_client::DatasetRegistryClient::new(channel.clone());
     let mut models = pb::model_registry_client::ModelRegistryClient::new(channel.clone());
-    let mut intake = pb::intake_client::IntakeClient::new(channel.clone());
     let mut scoring = pb::scoring_client::ScoringClient::new(channel.clone())
         .max_decoding_message_size(256 << 20);
     datasets
@@ -378,24 +489,30 @@ async fn measure(history: usize) -> Row {
 
     let batches = unit_batches(&data, 0..history);
     let t = Instant::now();
-    intake
-        .send_units(tokio_stream::iter(batches))
-        .await
-        .expect("units");
+    spread(&channels, batches, units_stream).await;
     let ingest_units_per_s = history as f64 / t.elapsed().as_secs_f64();
     let preds = prediction_batches(&cands, 0..history);
     let t = Instant::now();
-    intake
-        .send_predictions(tokio_stream::iter(preds))
-        .await
-        .expect("predictions");
+    spread(&channels, preds, predictions_stream).await;
     let ingest_predictions_per_s = (history * MODELS) as f64 / t.elapsed().as_secs_f64();
-    intake
-        .send_outcomes(tokio_stream::iter(outcome_batches(&data, 0..history)))
-        .await
-        .expect("outcomes");
+    spread(
+        &channels,
+        outcome_batches(&data, 0..history),
+        outcomes_stream,
+    )
+    .await;
+    let conflicts = servers
+        .iter()
+        .map(|s| s.counter("plumbline_ingest_conflicts_total"))
+        .sum::<f64>();
 
-    let intake_peak_mib = peak_mib(server.child.id());
+    let largest_peak = |servers: &[Server]| {
+        servers
+            .iter()
+            .map(|s| peak_mib(s.child.id()))
+            .fold(0.0, f64::max)
+    };
+    let intake_peak_mib = largest_peak(&servers);
     let t = Instant::now();
     let r = scoring
         .recompute(pb::RecomputeRequest {
@@ -409,21 +526,19 @@ async fn measure(history: usize) -> Row {
     assert!(r.refitted);
     let refit_s = t.elapsed().as_secs_f64();
 
-    intake
-        .send_units(tokio_stream::iter(unit_batches(&data, history..total)))
-        .await
-        .expect("cohort units");
-    intake
-        .send_predictions(tokio_stream::iter(prediction_batches(
-            &cands,
-            history..total,
-        )))
-        .await
-        .expect("cohort predictions");
-    intake
-        .send_outcomes(tokio_stream::iter(outcome_batches(&data, history..total)))
-        .await
-        .expect("cohort outcomes");
+    spread(&channels, unit_batches(&data, history..total), units_stream).await;
+    spread(
+        &channels,
+        prediction_batches(&cands, history..total),
+        predictions_stream,
+    )
+    .await;
+    spread(
+        &channels,
+        outcome_batches(&data, history..total),
+        outcomes_stream,
+    )
+    .await;
     let t = Instant::now();
     let r = scoring
         .recompute(pb::RecomputeRequest {
@@ -438,16 +553,23 @@ async fn measure(history: usize) -> Row {
     assert_eq!(r.units, total as u64);
     let incremental_s = t.elapsed().as_secs_f64();
     let incremental_server_ms = r.millis;
-    let board = |b: pb::Scoreboard| (b.units, b.rank_metrics_units);
-    let cumulative = scoring
-        .get_scoreboard(pb::GetScoreboardRequest {
-            dataset: NAME.into(),
-            window: None,
-        })
-        .await
-        .expect("board")
-        .into_inner();
-    let (units, ranked) = board(cumulative);
+    // The recompute's board (a server that does not own the dataset shows
+    // it after its next follow round).
+    let cumulative = loop {
+        let b = scoring
+            .get_scoreboard(pb::GetScoreboardRequest {
+                dataset: NAME.into(),
+                window: None,
+            })
+            .await
+            .expect("board")
+            .into_inner();
+        if b.snapshot_id >= r.snapshot_id {
+            break b;
+        }
+        tokio::time::sleep(Duration::from_millis(20)).await;
+    };
+    let (units, ranked) = (cumulative.units, cumulative.rank_metrics_units);
     let incremental_refreshed = units == ranked;
     // The rank refresh that the incremental recompute skipped (or did), on
     // request: what a recompute costs once the window has grown by the
@@ -462,9 +584,10 @@ async fn measure(history: usize) -> Row {
         .expect("rank refresh")
         .into_inner();
     let refresh_server_ms = r.millis;
-    let peak = peak_mib(server.child.id());
+    let peak = largest_peak(&servers);
 
     let t = Instant::now();
+    let server = &mut servers[0];
     server.restart();
     let mut scoring = pb::scoring_client::ScoringClient::new(server.connect().await)
         .max_decoding_message_size(256 << 20);
@@ -500,6 +623,7 @@ async fn measure(history: usize) -> Row {
         raw_mib: (total * RAW_BYTES_PER_UNIT) as f64 / (1024.0 * 1024.0),
         restart_s,
         restart_peak_mib: peak_mib(server.child.id()),
+        conflicts,
     }
 }
 
@@ -514,8 +638,9 @@ async fn main() {
     for &n in &sizes {
         let row = measure(n).await;
         eprintln!(
-            "n = {n}: ingest {:.0} units/s, refit {:.2} s, incremental {:.3} s, WAL at most {:.1} MiB",
-            row.ingest_units_per_s, row.refit_s, row.incremental_s, row.wal_max_mib
+            "n = {n}: ingest {:.0} units/s, refit {:.2} s, incremental {:.3} s, WAL at most {:.1} MiB, \
+             {} batches renumbered",
+            row.ingest_units_per_s, row.refit_s, row.incremental_s, row.wal_max_mib, row.conflicts as u64
         );
         rows.push(row);
     }
@@ -559,12 +684,17 @@ async fn main() {
 window's rank metrics; refresh: a recompute asked to refresh them, server time; intake MiB: peak before the refit, \
 the cache and the store; raw: {RAW_BYTES_PER_UNIT} bytes per unit; restart: \
 SIGTERM, start on the same data, until the scoreboard is served, and that process's peak; \
-limits.max_fit_units: {}; store: {}; largest SQLite WAL {})",
+limits.max_fit_units: {}; store: {}; servers: {}; largest SQLite WAL {}; batches renumbered {})",
         arriving(),
         max_fit_units().map_or("the default".to_string(), |c| c.to_string()),
         if store_url().is_some() { "PostgreSQL" } else { "SQLite" },
+        replicas(),
         rows.iter()
             .map(|r| format!("{:.1} MiB", r.wal_max_mib))
+            .collect::<Vec<_>>()
+            .join(", "),
+        rows.iter()
+            .map(|r| format!("{}", r.conflicts as u64))
             .collect::<Vec<_>>()
             .join(", ")
     );

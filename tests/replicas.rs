@@ -70,6 +70,20 @@ impl Replica {
         self.serve.as_ref().map(|s| s.grpc).expect("running")
     }
 
+    /// This server's samples of `metric` for the dataset.
+    fn samples(&self, metric: &str) -> Vec<f64> {
+        let http = self.serve.as_ref().map(|s| s.http).expect("running");
+        let (status, text) = http_get(http, "/metrics");
+        assert_eq!(status, 200, "/metrics");
+        parse_metrics(&text)
+            .into_iter()
+            .filter(|(name, labels, _)| {
+                name == metric && labels.iter().any(|(k, v)| k == "dataset" && v == DS)
+            })
+            .map(|(_, _, v)| v)
+            .collect()
+    }
+
     /// Whether `/readyz` says this server owns the dataset.
     fn owns(&self) -> bool {
         let Some(s) = &self.serve else { return false };
@@ -609,4 +623,80 @@ impl Call {
             Call::Outcomes(r) => r.chunks(n).map(|c| Call::Outcomes(c.to_vec())).collect(),
         }
     }
+}
+
+/// A server whose lease is taken from under it (rewritten in the store to
+/// another holder and a later epoch, as a server paused past its lease
+/// finds it) stops acting as the owner and takes down the series only an
+/// owner keeps current, so that a dashboard never reads its stale scores
+/// beside the new owner's; it still takes rows in.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_server_that_loses_its_lease_takes_down_its_scores() {
+    let Some(cluster) = PgCluster::start("lease_lost") else {
+        return;
+    };
+    let url = cluster.database("lost");
+    let dir = TempDir::new("lease_lost");
+    let server = Replica::start(&dir, &url, "r1");
+    let ch = channel(server.grpc()).await.expect("connect");
+    setup(&ch).await;
+    for b in 0..8 {
+        for call in batch(0, b) {
+            call.send(ch.clone()).await.expect("accepted");
+        }
+    }
+    refit_board(&ch).await;
+    assert!(server.owns(), "the only server owns the dataset");
+    let scores = server.samples("plumbline_model_score").len();
+    // Two models, two board windows, every estimator and measure.
+    assert!(scores >= 2 * 2 * 5, "{scores} score series before");
+    assert_eq!(server.samples("plumbline_dataset_owned"), vec![1.0]);
+
+    let mut db = sqlx::PgConnection::connect(&url).await.expect("connect");
+    sqlx::query(
+        "UPDATE dataset_leases SET holder = 'elsewhere/1', epoch = epoch + 1, \
+         expires_at_ms = (EXTRACT(EPOCH FROM clock_timestamp()) * 1000)::BIGINT + 3600000 \
+         WHERE dataset_id = (SELECT id FROM datasets WHERE name = $1)",
+    )
+    .bind(DS)
+    .execute(&mut db)
+    .await
+    .expect("take the lease");
+    let taken = Instant::now();
+    let deadline = taken + Duration::from_secs(LEASE_SECONDS + 2);
+    loop {
+        let left = server.samples("plumbline_model_score").len();
+        let owned = server.samples("plumbline_dataset_owned");
+        if !server.owns() && left == 0 && owned == vec![0.0] {
+            break;
+        }
+        assert!(
+            Instant::now() < deadline,
+            "{left} score series and owned = {owned:?} {:?} after the lease was taken",
+            taken.elapsed()
+        );
+        tokio::time::sleep(Duration::from_millis(50)).await;
+    }
+    println!(
+        "lease taken from under the server: it let go and took its {scores} score series \
+         down in {:.2} s (lease {LEASE_SECONDS} s)",
+        taken.elapsed().as_secs_f64()
+    );
+    for s in [
+        "plumbline_model_rank",
+        "plumbline_nuisance_loss",
+        "plumbline_leader_info",
+    ] {
+        assert_eq!(
+            server.samples(s),
+            Vec::<f64>::new(),
+            "{s} after the lease was lost"
+        );
+    }
+    // Rows still go in at a server that does not own the dataset.
+    for call in batch(0, 8) {
+        let (accepted, duplicate) = call.send(ch.clone()).await.expect("accepted");
+        assert_eq!((accepted, duplicate), (call.rows(), 0));
+    }
+    db.close().await.expect("close");
 }

@@ -630,10 +630,12 @@ async fn leases_go_to_one_holder_and_fence_the_ones_before() {
     }
 }
 
-/// Several servers on one store: a batch numbered from a stale view, or a
-/// unit key another server stored, is refused whole.
+/// Several servers on one store: a batch numbered from a stale view is
+/// stored after what the others appended (the store says where), and a
+/// batch that repeats a unit key, an outcome of a unit or a prediction of
+/// a (model, unit) pair another server stored is refused whole.
 #[tokio::test]
-async fn a_shared_store_refuses_stale_numbers_and_repeated_keys() {
+async fn a_shared_store_numbers_stale_batches_after_others_and_refuses_repeats() {
     for Backend { name, store: s, .. } in backends("shared").await {
         if !s.shared() {
             continue;
@@ -644,19 +646,30 @@ async fn a_shared_store_refuses_stale_numbers_and_repeated_keys() {
             .await
             .expect("model");
         let units: Vec<UnitRecord> = (0..10).map(|i| unit(i, &format!("k{i}"))).collect();
-        s.insert_units(d.id, &units, 2).await.expect("units");
-        let conflict = |r: Result<(), StoreError>| matches!(r, Err(StoreError::Conflict(_)));
-        assert!(
-            conflict(s.insert_units(d.id, &[unit(9, "other")], 3).await),
-            "{name}: a unit number stored twice"
+        assert_eq!(s.insert_units(d.id, &units, 2).await.expect("units"), 0);
+        // Numbered 9 from a view that missed unit 9: stored as 10.
+        assert_eq!(
+            s.insert_units(d.id, &[unit(9, "late")], 3)
+                .await
+                .expect("late"),
+            10,
+            "{name}: a stale unit number is moved to the next"
         );
+        let conflict = |r: Result<i64, StoreError>| matches!(r, Err(StoreError::Conflict(_)));
         assert!(
             conflict(
-                s.insert_units(d.id, &[unit(10, "new"), unit(11, "k3")], 3)
+                s.insert_units(d.id, &[unit(11, "new"), unit(12, "k3")], 3)
                     .await
             ),
             "{name}: a unit key stored twice"
         );
+        let stored: Vec<(i64, String)> = collect(s.units(d.id, 0))
+            .await
+            .into_iter()
+            .map(|u| (u.seq, u.key))
+            .collect();
+        assert_eq!(stored.len(), 11, "{name}: nothing of the refused batch");
+        assert_eq!(stored[10], (10, "late".to_string()), "{name}");
         let outcome = |unit_seq, seq| OutcomeRecord {
             unit_seq,
             seq,
@@ -666,9 +679,19 @@ async fn a_shared_store_refuses_stale_numbers_and_repeated_keys() {
         s.insert_outcomes(d.id, &[outcome(0, 0), outcome(1, 1)], 4)
             .await
             .expect("outcomes");
+        assert_eq!(
+            s.insert_outcomes(d.id, &[outcome(2, 1)], 5)
+                .await
+                .expect("stale outcome"),
+            2,
+            "{name}: a stale outcome number is moved to the next"
+        );
         assert!(
-            conflict(s.insert_outcomes(d.id, &[outcome(2, 1)], 5).await),
-            "{name}: an outcome number stored twice"
+            conflict(
+                s.insert_outcomes(d.id, &[outcome(3, 3), outcome(1, 4)], 5)
+                    .await
+            ),
+            "{name}: a second outcome of a unit"
         );
         let prediction = |unit_seq, seq| PredictionRecord {
             model_id: m.id,
@@ -680,11 +703,85 @@ async fn a_shared_store_refuses_stale_numbers_and_repeated_keys() {
         s.insert_predictions(d.id, &[prediction(0, 0)], 6)
             .await
             .expect("prediction");
-        assert!(
-            conflict(s.insert_predictions(d.id, &[prediction(1, 0)], 7).await),
-            "{name}: a prediction number stored twice"
+        assert_eq!(
+            s.insert_predictions(d.id, &[prediction(1, 0)], 7)
+                .await
+                .expect("stale prediction"),
+            1,
+            "{name}: a stale prediction number is moved to the next"
         );
-        assert_eq!(s.counts(d.id).await.expect("counts"), (10, 2, 1), "{name}");
+        assert!(
+            conflict(s.insert_predictions(d.id, &[prediction(0, 2)], 7).await),
+            "{name}: a second prediction of a (model, unit) pair"
+        );
+        assert_eq!(s.counts(d.id).await.expect("counts"), (11, 3, 2), "{name}");
+        let tip = s.tip(d.id).await.expect("tip");
+        assert_eq!(
+            (
+                tip.units,
+                tip.outcomes,
+                tip.predictions,
+                tip.models,
+                tip.retired
+            ),
+            (11, 3, 2, 1, 0),
+            "{name}: the tip"
+        );
+        s.close().await;
+    }
+}
+
+/// Writers appending to one dataset of a shared store at once, each from
+/// its own stale view, get gapless numbers: every batch is stored whole,
+/// in one run of numbers, where the store said.
+#[tokio::test]
+async fn concurrent_writers_of_a_shared_store_get_gapless_numbers() {
+    const WRITERS: usize = 4;
+    const BATCHES: usize = 25;
+    const ROWS: usize = 40;
+    for Backend { name, store: s, .. } in backends("gapless").await {
+        if !s.shared() {
+            continue;
+        }
+        let d = s.create_dataset(&spec("a"), 1).await.expect("create");
+        let tasks: Vec<_> = (0..WRITERS)
+            .map(|w| {
+                let s = s.clone();
+                tokio::spawn(async move {
+                    let mut placed = Vec::new();
+                    for b in 0..BATCHES {
+                        // Every writer proposes the numbers it would give
+                        // if it were alone.
+                        let rows: Vec<UnitRecord> = (0..ROWS)
+                            .map(|i| unit((b * ROWS + i) as i64, &format!("w{w}-b{b}-{i}")))
+                            .collect();
+                        let first = s.insert_units(d.id, &rows, 2).await.expect("append");
+                        placed.push((first, w, b));
+                    }
+                    placed
+                })
+            })
+            .collect();
+        let mut placed = Vec::new();
+        for t in tasks {
+            placed.extend(t.await.expect("writer"));
+        }
+        let stored = collect(s.units(d.id, 0)).await;
+        let total = WRITERS * BATCHES * ROWS;
+        assert_eq!(stored.len(), total, "{name}");
+        for (i, u) in stored.iter().enumerate() {
+            assert_eq!(u.seq, i as i64, "{name}: numbers without gaps");
+        }
+        for (first, w, b) in placed {
+            for i in 0..ROWS {
+                assert_eq!(
+                    stored[first as usize + i].key,
+                    format!("w{w}-b{b}-{i}"),
+                    "{name}: batch {b} of writer {w} in one run from {first}"
+                );
+            }
+        }
+        println!("{name}: {WRITERS} writers, {total} units in gapless runs");
         s.close().await;
     }
 }

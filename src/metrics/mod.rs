@@ -17,6 +17,8 @@
 //!   `plumbline_overlap_degraded`, `plumbline_overlap_extreme_share` {window}
 //! - `plumbline_overlap_effective_share` {window, arm}
 //! - `plumbline_ingest_rows_total` {kind, result}
+//! - `plumbline_ingest_conflicts_total` {kind}: batches another server
+//!   numbered first (shared store), checked and numbered again
 //! - `plumbline_recompute_duration_seconds` {kind} (histogram),
 //!   `plumbline_recompute_failures_total`
 //! - `plumbline_nuisance_oof_loss` {component}
@@ -112,6 +114,7 @@ pub struct Metrics {
     pub overlap_extreme_share: Family<WindowLabels, FloatGauge>,
     pub overlap_effective_share: Family<ArmLabels, FloatGauge>,
     pub ingest_rows: Family<IngestLabels, Counter>,
+    pub ingest_conflicts: Family<KindLabels, Counter>,
     pub recompute_seconds: Family<KindLabels, Histogram>,
     pub recompute_failures: Family<DatasetLabels, Counter>,
     pub nuisance_loss: Family<ComponentLabels, FloatGauge>,
@@ -140,6 +143,7 @@ impl Metrics {
             overlap_extreme_share: Family::default(),
             overlap_effective_share: Family::default(),
             ingest_rows: Family::default(),
+            ingest_conflicts: Family::default(),
             recompute_seconds: Family::new_with_constructor(|| {
                 Histogram::new(exponential_buckets(0.005, 2.0, 16))
             }),
@@ -213,6 +217,12 @@ impl Metrics {
             "ingest_rows",
             "Rows received by kind and result",
             m.ingest_rows.clone(),
+        );
+        registry.register(
+            "ingest_conflicts",
+            "Batches the store refused because another server numbered rows of the dataset first \
+             (several servers on one store); each is caught up, checked and numbered again",
+            m.ingest_conflicts.clone(),
         );
         registry.register(
             "recompute_duration_seconds",

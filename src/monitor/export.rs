@@ -160,4 +160,72 @@ impl Monitor {
                 .set(*smd);
         }
     }
+
+    /// Takes down the series only a dataset's owner keeps current (scores,
+    /// ranks, leaders, overlap, the watch's states, nuisance losses), when
+    /// this server stops owning it: left up, they would go stale beside the
+    /// new owner's. Row counts stay (every server keeps them current), and
+    /// so do counters.
+    pub(super) fn forget_exports(&self, dataset: &str, boards: &Boards, watch: &Watch) {
+        let m = &self.metrics;
+        let state = watch.state();
+        let mut windows: Vec<&str> = boards.keys().map(String::as_str).collect();
+        windows.push(alerts::STREAM);
+        for window in windows {
+            let wl = WindowLabels {
+                dataset: dataset.into(),
+                window: window.into(),
+            };
+            m.leader_uncertain.remove(&wl);
+            m.no_heterogeneity.remove(&wl);
+            m.overlap_degraded.remove(&wl);
+            m.overlap_extreme_share.remove(&wl);
+            for arm in ["treated", "control"] {
+                m.overlap_effective_share.remove(&ArmLabels {
+                    dataset: dataset.into(),
+                    window: window.into(),
+                    arm: arm.into(),
+                });
+            }
+            let mut models: Vec<String> = state.leader.iter().cloned().collect();
+            if let Some(b) = boards.get(window) {
+                models.extend(b.models.iter().map(|model| model.name.clone()));
+            }
+            for model in models {
+                let ml = ModelLabels {
+                    dataset: dataset.into(),
+                    model: model.clone(),
+                    window: window.into(),
+                };
+                m.leader_info.remove(&ml);
+                m.model_rank.remove(&ml);
+                m.model_p_best.remove(&ml);
+                for estimator in crate::domain::board::history_keys() {
+                    let sl = ScoreLabels {
+                        dataset: dataset.into(),
+                        model: model.clone(),
+                        estimator: estimator.into(),
+                        window: window.into(),
+                    };
+                    m.model_score.remove(&sl);
+                    m.model_score_se.remove(&sl);
+                }
+            }
+        }
+        for component in ["outcome_control", "outcome_treated", "propensity"] {
+            m.nuisance_loss.remove(&ComponentLabels {
+                dataset: dataset.into(),
+                component: component.into(),
+            });
+        }
+        m.watched_units.remove(&DatasetLabels {
+            dataset: dataset.into(),
+        });
+        for (quantity, _) in &state.drift {
+            m.drift.remove(&crate::metrics::QuantityLabels {
+                dataset: dataset.into(),
+                quantity: quantity.clone(),
+            });
+        }
+    }
 }

@@ -84,58 +84,83 @@ impl Monitor {
     pub(super) async fn catch_up(&self, st: &mut DatasetState) -> MonitorResult<usize> {
         let id = st.stored.id;
         let before = st.cache.units();
-        let mut units = self.store.units(id, before as i64);
-        while let Some(u) = units.next().await {
-            let u = u?;
-            // Keys are unique by intake's check (one SQLite server) or by a
-            // unique index (PostgreSQL): a store that holds one twice was
-            // written by something else, and is refused rather than served.
-            if let Some(first) = st.cache.unit_of(&u.key) {
-                return Err(StoreError::Corrupt(format!(
-                    "dataset {:?}: unit key {:?} is stored twice (units {first} and {})",
-                    st.stored.spec.name, u.key, u.seq
-                ))
-                .into());
-            }
-            st.cache.add_unit(&u);
+        // One statement says which tables moved; most catch-ups before an
+        // intake check find nothing new and stop here. A table written
+        // after the tip was read waits for the next catch-up (an intake
+        // check numbered from the older view is refused and retried).
+        let tip = self.store.tip(id).await?;
+        let retired = st
+            .cache
+            .models
+            .iter()
+            .filter(|m| m.model.retired_at_ms != 0)
+            .count() as i64;
+        let models_moved = tip.models != st.cache.models.len() as i64 || tip.retired != retired;
+        if tip.units == before as i64
+            && tip.outcomes == st.cache.next_outcome_seq()
+            && tip.predictions == st.cache.next_prediction_seq()
+            && !models_moved
+        {
+            return Ok(0);
         }
-        drop(units);
+        if tip.units > before as i64 {
+            let mut units = self.store.units(id, before as i64);
+            while let Some(u) = units.next().await {
+                let u = u?;
+                // Keys are unique by intake's check (one SQLite server) or
+                // by a unique index (PostgreSQL): a store that holds one
+                // twice was written by something else, and is refused
+                // rather than served.
+                if let Some(first) = st.cache.unit_of(&u.key) {
+                    return Err(StoreError::Corrupt(format!(
+                        "dataset {:?}: unit key {:?} is stored twice (units {first} and {})",
+                        st.stored.spec.name, u.key, u.seq
+                    ))
+                    .into());
+                }
+                st.cache.add_unit(&u);
+            }
+        }
         // Tables are read one after another while other servers write: an
         // outcome or prediction read now can name a unit or model committed
         // after its table was read. Each is taken up to the first such row,
         // so that what the cache holds stays a prefix in number order; the
         // rest comes at the next catch-up.
         let known_units = st.cache.units() as i64;
-        let mut outcomes = self.store.outcomes(id, st.cache.next_outcome_seq());
         let mut new_outcomes = 0;
-        while let Some(o) = outcomes.next().await {
-            let o = o?;
-            if o.unit_seq >= known_units {
-                break;
-            }
-            st.cache.add_outcome(&o);
-            new_outcomes += 1;
-        }
-        drop(outcomes);
-        for m in self.store.models(id).await? {
-            match st.cache.model_by_id(m.id) {
-                Some(i) => st.cache.models[i].model.retired_at_ms = m.retired_at_ms,
-                None => st.cache.add_model(m),
+        if tip.outcomes > st.cache.next_outcome_seq() {
+            let mut outcomes = self.store.outcomes(id, st.cache.next_outcome_seq());
+            while let Some(o) = outcomes.next().await {
+                let o = o?;
+                if o.unit_seq >= known_units {
+                    break;
+                }
+                st.cache.add_outcome(&o);
+                new_outcomes += 1;
             }
         }
-        let mut predictions = self.store.predictions(id, st.cache.next_prediction_seq());
-        while let Some(p) = predictions.next().await {
-            let p = p?;
-            let Some(m) = st
-                .cache
-                .model_by_id(p.model_id)
-                .filter(|_| p.unit_seq < known_units)
-            else {
-                break;
-            };
-            st.cache.add_prediction(m, &p);
+        if models_moved {
+            for m in self.store.models(id).await? {
+                match st.cache.model_by_id(m.id) {
+                    Some(i) => st.cache.models[i].model.retired_at_ms = m.retired_at_ms,
+                    None => st.cache.add_model(m),
+                }
+            }
         }
-        drop(predictions);
+        if tip.predictions > st.cache.next_prediction_seq() {
+            let mut predictions = self.store.predictions(id, st.cache.next_prediction_seq());
+            while let Some(p) = predictions.next().await {
+                let p = p?;
+                let Some(m) = st
+                    .cache
+                    .model_by_id(p.model_id)
+                    .filter(|_| p.unit_seq < known_units)
+                else {
+                    break;
+                };
+                st.cache.add_prediction(m, &p);
+            }
+        }
         st.pending_outcomes += new_outcomes as u64;
         if new_outcomes > 0 || st.cache.units() > before {
             self.update_counts(st);

@@ -2,29 +2,35 @@
 //! cache, written to the store and appended to the cache, and their
 //! counters.
 //!
-//! On a shared store the cache is caught up first (`follow.rs`), and a
-//! batch another server numbered the same way a moment earlier is refused
-//! by the store as a conflict: the cache catches up again and the batch is
-//! checked and numbered once more ([`RETRIES`] times at most).
+//! On a shared store the cache is caught up first (`follow.rs`); the store
+//! takes one writer at a time per dataset and numbers a batch after
+//! whatever another server appended since (the cache then reads both
+//! back, in number order). A batch that repeats a key another server
+//! stored a moment earlier is refused by the store as a conflict: the
+//! cache catches up again and the batch is checked once more ([`RETRIES`]
+//! times at most), so the repeat counts as a duplicate.
 
 use std::sync::Arc;
 
 use super::checks::{self, OutcomeIn, PredictionIn, Rejection, UnitIn};
 use super::{now_ms, DatasetState, Monitor, MonitorError, MonitorResult};
-use crate::metrics::{DatasetLabels, IngestLabels};
+use crate::metrics::{DatasetLabels, IngestLabels, KindLabels};
 use crate::store::StoreError;
 
-/// How often a batch refused as numbered from a stale view is tried again.
-const RETRIES: usize = 4;
+/// How often a batch refused for repeating a key another server stored a
+/// moment earlier is tried again (the retry finds the key and counts it a
+/// duplicate; more than one try is needed only when servers keep racing on
+/// the same keys). With the backoff below, 8 tries span about 0.3 s.
+const RETRIES: usize = 8;
 
-/// Whether a failed write should be checked and numbered again.
-fn again(e: &MonitorError, shared: bool, tries: &mut usize) -> bool {
-    if shared && matches!(e, MonitorError::Store(StoreError::Conflict(_))) && *tries < RETRIES {
-        *tries += 1;
-        true
-    } else {
-        false
-    }
+/// Waits before try `tries`: 2 ms doubling to 64 ms, times a random factor
+/// in [0.5, 1.5), so that servers refused by each other do not meet again
+/// in step.
+async fn back_off(tries: usize) {
+    use rand::Rng;
+    let base = 2.0 * f64::from(1u32 << tries.min(5));
+    let factor: f64 = rand::thread_rng().gen_range(0.5..1.5);
+    tokio::time::sleep(std::time::Duration::from_secs_f64(base * factor / 1000.0)).await;
 }
 
 /// Counts of one committed batch.
@@ -35,6 +41,24 @@ pub struct BatchCounts {
 }
 
 impl Monitor {
+    /// Whether a failed write should be checked and numbered again (and
+    /// counts it when so).
+    fn again(&self, e: &MonitorError, dataset: &str, kind: &str, tries: &mut usize) -> bool {
+        let conflict = matches!(e, MonitorError::Store(StoreError::Conflict(_)));
+        if !(conflict && self.store.shared() && *tries < RETRIES) {
+            return false;
+        }
+        *tries += 1;
+        self.metrics
+            .ingest_conflicts
+            .get_or_create(&KindLabels {
+                dataset: dataset.into(),
+                kind: kind.into(),
+            })
+            .inc();
+        true
+    }
+
     fn count_ingest(&self, dataset: &str, kind: &str, result: &str, n: usize) {
         if n > 0 {
             self.metrics
@@ -62,7 +86,6 @@ impl Monitor {
     pub async fn ingest_units(&self, dataset: &str, rows: &[UnitIn]) -> MonitorResult<BatchCounts> {
         let h = self.handle(dataset)?;
         let mut st = h.state.lock().await;
-        let shared = self.store.shared();
         let mut tries = 0;
         let (accepted, duplicate) = loop {
             self.fresh(&mut st).await?;
@@ -88,12 +111,21 @@ impl Monitor {
                 Err(e) => Err(MonitorError::Internal(format!("unit write: {e}"))),
             };
             match written {
-                Ok(()) => break (new_rows.len(), duplicate),
+                Ok(first) if first == new_rows[0].seq => break (new_rows.len(), duplicate),
+                Ok(_) => {
+                    // Another server appended first and the store numbered
+                    // the batch after its rows: the cache reads both back,
+                    // in number order.
+                    st.cache.truncate_units(mark);
+                    self.catch_up(&mut st).await?;
+                    break (new_rows.len(), duplicate);
+                }
                 Err(e) => {
                     st.cache.truncate_units(mark);
-                    if !again(&e, shared, &mut tries) {
+                    if !self.again(&e, dataset, "units", &mut tries) {
                         return Err(e);
                     }
+                    back_off(tries).await;
                 }
             }
         };
@@ -115,7 +147,6 @@ impl Monitor {
         let h = self.handle(dataset)?;
         let mut st = h.state.lock().await;
         let kind = st.stored.spec.outcome_kind;
-        let shared = self.store.shared();
         let mut tries = 0;
         let checked = loop {
             self.fresh(&mut st).await?;
@@ -130,11 +161,17 @@ impl Monitor {
                 .await
                 .map_err(MonitorError::from)
             {
-                Ok(()) => {
-                    for o in &checked.new_rows {
-                        st.cache.add_outcome(o);
+                Ok(first) => {
+                    if first == checked.new_rows[0].seq {
+                        for o in &checked.new_rows {
+                            st.cache.add_outcome(o);
+                        }
+                        st.pending_outcomes += checked.new_rows.len() as u64;
+                    } else {
+                        // Numbered after another server's rows: read back
+                        // (the catch-up counts them as pending).
+                        self.catch_up(&mut st).await?;
                     }
-                    st.pending_outcomes += checked.new_rows.len() as u64;
                     self.metrics
                         .last_outcome_seconds
                         .get_or_create(&DatasetLabels {
@@ -143,7 +180,7 @@ impl Monitor {
                         .set(now_ms() as f64 / 1000.0);
                     break checked;
                 }
-                Err(e) if again(&e, shared, &mut tries) => {}
+                Err(e) if self.again(&e, dataset, "outcomes", &mut tries) => back_off(tries).await,
                 Err(e) => return Err(e),
             }
         };
@@ -169,7 +206,6 @@ impl Monitor {
     ) -> MonitorResult<BatchCounts> {
         let h = self.handle(dataset)?;
         let mut st = h.state.lock().await;
-        let shared = self.store.shared();
         let mut tries = 0;
         let checked = loop {
             self.fresh(&mut st).await?;
@@ -184,7 +220,7 @@ impl Monitor {
                 .await
                 .map_err(MonitorError::from)
             {
-                Ok(()) => {
+                Ok(first) if first == checked.new_rows[0].seq => {
                     for p in &checked.new_rows {
                         if let Some(m) = st.cache.model_by_id(p.model_id) {
                             st.cache.add_prediction(m, p);
@@ -192,7 +228,14 @@ impl Monitor {
                     }
                     break checked;
                 }
-                Err(e) if again(&e, shared, &mut tries) => {}
+                Ok(_) => {
+                    // Numbered after another server's rows: read back.
+                    self.catch_up(&mut st).await?;
+                    break checked;
+                }
+                Err(e) if self.again(&e, dataset, "predictions", &mut tries) => {
+                    back_off(tries).await
+                }
                 Err(e) => return Err(e),
             }
         };

@@ -119,6 +119,10 @@ impl Monitor {
         let now = now_ms();
         let (input, outcomes_in_input) = {
             let mut st = h.state.lock().await;
+            // Rows acknowledged by another server before this was asked
+            // are in the recompute (a shared store's follow round may not
+            // have read them yet).
+            self.fresh(&mut st).await?;
             st.pending_outcomes = 0;
             let outcomes = st.cache.outcomes();
             (st.recompute_input(now, self.max_fit_units), outcomes)

@@ -262,6 +262,44 @@ pub struct LeaseRecord {
     pub expires_in_ms: i64,
 }
 
+/// How far a dataset's records reach: the next sequence number of each row
+/// table (rows are numbered from 0 without gaps, so also how many are
+/// stored) and how many models are registered and retired. One statement
+/// reads it, so a server on a shared store can tell in one round trip
+/// whether another server wrote anything since it last looked.
+#[derive(Debug, Clone, Copy, Default, PartialEq, Eq)]
+pub struct Tip {
+    pub units: i64,
+    pub outcomes: i64,
+    pub predictions: i64,
+    pub models: i64,
+    /// Retired models (a retired model stays retired, so this only grows).
+    pub retired: i64,
+}
+
+/// A row the store numbers within its dataset.
+pub trait Numbered {
+    fn seq(&self) -> i64;
+}
+
+impl Numbered for UnitRecord {
+    fn seq(&self) -> i64 {
+        self.seq
+    }
+}
+
+impl Numbered for OutcomeRecord {
+    fn seq(&self) -> i64 {
+        self.seq
+    }
+}
+
+impl Numbered for PredictionRecord {
+    fn seq(&self) -> i64 {
+        self.seq
+    }
+}
+
 /// Datasets, models and the rows they accept.
 #[async_trait]
 pub trait DatasetLog: Send + Sync {
@@ -285,27 +323,37 @@ pub trait DatasetLog: Send + Sync {
     /// A dataset's models, in registration order.
     async fn models(&self, dataset_id: i64) -> StoreResult<Vec<StoredModel>>;
 
-    /// Writes a batch of new units (one transaction).
+    /// Writes a batch of new units (one transaction), numbered from the
+    /// dataset's next unit number on in the batch's order, and returns the
+    /// number its first row was given. The rows' own numbers are the
+    /// caller's proposal, from its view of the dataset: a store with one
+    /// writer stores them as given (they are its next numbers); a shared
+    /// store takes turns per dataset and shifts them to its next number
+    /// when another server appended first. A repeated unit key refuses the
+    /// whole batch ([`StoreError::Conflict`]).
     async fn insert_units(
         &self,
         dataset_id: i64,
         rows: &[UnitRecord],
         now_ms: i64,
-    ) -> StoreResult<()>;
-    /// Writes a batch of new outcomes (one transaction).
+    ) -> StoreResult<i64>;
+    /// Writes a batch of new outcomes as [`DatasetLog::insert_units`] does
+    /// units; a second outcome of a unit refuses the whole batch.
     async fn insert_outcomes(
         &self,
         dataset_id: i64,
         rows: &[OutcomeRecord],
         now_ms: i64,
-    ) -> StoreResult<()>;
-    /// Writes a batch of new predictions (one transaction).
+    ) -> StoreResult<i64>;
+    /// Writes a batch of new predictions as [`DatasetLog::insert_units`]
+    /// does units; a second prediction of a (model, unit) pair refuses the
+    /// whole batch.
     async fn insert_predictions(
         &self,
         dataset_id: i64,
         rows: &[PredictionRecord],
         now_ms: i64,
-    ) -> StoreResult<()>;
+    ) -> StoreResult<i64>;
 
     /// A dataset's units with sequence number `from` on, in that order.
     fn units(&self, dataset_id: i64, from: i64) -> RowStream<'_, UnitRecord>;
@@ -319,6 +367,8 @@ pub trait DatasetLog: Send + Sync {
     async fn last_outcome_received_ms(&self, dataset_id: i64) -> StoreResult<Option<i64>>;
     /// Row counts of units, outcomes and predictions for one dataset.
     async fn counts(&self, dataset_id: i64) -> StoreResult<(i64, i64, i64)>;
+    /// The dataset's [`Tip`], in one statement.
+    async fn tip(&self, dataset_id: i64) -> StoreResult<Tip>;
 }
 
 /// Fit records, snapshots and history.

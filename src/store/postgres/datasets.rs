@@ -9,7 +9,40 @@ use crate::domain::{
     DatasetSpec, OutcomeRecord, PredictionRecord, StoredDataset, StoredModel, UnitRecord,
 };
 use crate::store::sqlite::{pack_features, unpack_features};
-use crate::store::{DatasetLog, RowStream, StoreError, StoreResult};
+use crate::store::Numbered;
+use crate::store::{DatasetLog, RowStream, StoreError, StoreResult, Tip};
+
+const NEXT_UNIT: &str = "SELECT COALESCE(MAX(seq) + 1, 0) FROM units WHERE dataset_id = $1";
+const NEXT_OUTCOME: &str = "SELECT COALESCE(MAX(seq) + 1, 0) FROM outcomes WHERE dataset_id = $1";
+const NEXT_PREDICTION: &str =
+    "SELECT COALESCE(MAX(seq) + 1, 0) FROM predictions WHERE dataset_id = $1";
+
+/// Takes the dataset's turn to append rows, held until the transaction
+/// ends (a row lock on the dataset that foreign-key checks do not wait
+/// for), and reads the next number of the table `next` asks about. The
+/// batch is stored from that number on: returns it, and how far the
+/// batch's own numbers are shifted to reach it.
+async fn take_turn<R: Numbered>(
+    tx: &mut sqlx::PgConnection,
+    dataset_id: i64,
+    next: &'static str,
+    rows: &[R],
+) -> StoreResult<(i64, i64)> {
+    let found: Option<i64> =
+        sqlx::query_scalar("SELECT id FROM datasets WHERE id = $1 FOR NO KEY UPDATE")
+            .bind(dataset_id)
+            .fetch_optional(&mut *tx)
+            .await?;
+    if found.is_none() {
+        return Err(StoreError::Backend(format!("no dataset {dataset_id}")));
+    }
+    let first: i64 = sqlx::query_scalar(next)
+        .bind(dataset_id)
+        .fetch_one(&mut *tx)
+        .await?;
+    let proposed = rows.first().map_or(first, Numbered::seq);
+    Ok((first, first - proposed))
+}
 
 #[async_trait]
 impl DatasetLog for PgStore {
@@ -124,10 +157,11 @@ impl DatasetLog for PgStore {
         dataset_id: i64,
         rows: &[UnitRecord],
         now_ms: i64,
-    ) -> StoreResult<()> {
+    ) -> StoreResult<i64> {
         let mut tx = self.pool.begin().await?;
+        let (first, shift) = take_turn(&mut tx, dataset_id, NEXT_UNIT, rows).await?;
         for chunk in rows.chunks(INSERT_CHUNK) {
-            let seq: Vec<i64> = chunk.iter().map(|u| u.seq).collect();
+            let seq: Vec<i64> = chunk.iter().map(|u| u.seq + shift).collect();
             let key: Vec<&str> = chunk.iter().map(|u| u.key.as_str()).collect();
             let features: Vec<Vec<u8>> = chunk.iter().map(|u| pack_features(&u.features)).collect();
             let treatment: Vec<i16> = chunk.iter().map(|u| i16::from(u.treatment)).collect();
@@ -156,7 +190,7 @@ impl DatasetLog for PgStore {
             .await?;
         }
         tx.commit().await?;
-        Ok(())
+        Ok(first)
     }
 
     async fn insert_outcomes(
@@ -164,11 +198,12 @@ impl DatasetLog for PgStore {
         dataset_id: i64,
         rows: &[OutcomeRecord],
         now_ms: i64,
-    ) -> StoreResult<()> {
+    ) -> StoreResult<i64> {
         let mut tx = self.pool.begin().await?;
+        let (first, shift) = take_turn(&mut tx, dataset_id, NEXT_OUTCOME, rows).await?;
         for chunk in rows.chunks(INSERT_CHUNK) {
             let unit_seq: Vec<i64> = chunk.iter().map(|o| o.unit_seq).collect();
-            let seq: Vec<i64> = chunk.iter().map(|o| o.seq).collect();
+            let seq: Vec<i64> = chunk.iter().map(|o| o.seq + shift).collect();
             let value: Vec<f64> = chunk.iter().map(|o| o.value).collect();
             let observed: Vec<i64> = chunk.iter().map(|o| o.observed_at_ms).collect();
             sqlx::query(
@@ -188,7 +223,7 @@ impl DatasetLog for PgStore {
             .await?;
         }
         tx.commit().await?;
-        Ok(())
+        Ok(first)
     }
 
     async fn insert_predictions(
@@ -196,12 +231,13 @@ impl DatasetLog for PgStore {
         dataset_id: i64,
         rows: &[PredictionRecord],
         now_ms: i64,
-    ) -> StoreResult<()> {
+    ) -> StoreResult<i64> {
         let mut tx = self.pool.begin().await?;
+        let (first, shift) = take_turn(&mut tx, dataset_id, NEXT_PREDICTION, rows).await?;
         for chunk in rows.chunks(INSERT_CHUNK) {
             let model: Vec<i64> = chunk.iter().map(|p| p.model_id).collect();
             let unit_seq: Vec<i64> = chunk.iter().map(|p| p.unit_seq).collect();
-            let seq: Vec<i64> = chunk.iter().map(|p| p.seq).collect();
+            let seq: Vec<i64> = chunk.iter().map(|p| p.seq + shift).collect();
             let effect: Vec<f64> = chunk.iter().map(|p| p.effect).collect();
             let predicted: Vec<i64> = chunk.iter().map(|p| p.predicted_at_ms).collect();
             sqlx::query(
@@ -223,7 +259,7 @@ impl DatasetLog for PgStore {
             .await?;
         }
         tx.commit().await?;
-        Ok(())
+        Ok(first)
     }
 
     fn units(&self, dataset_id: i64, from: i64) -> RowStream<'_, UnitRecord> {
@@ -312,5 +348,27 @@ impl DatasetLog for PgStore {
         .fetch_one(&self.pool)
         .await?;
         Ok((row.get(0), row.get(1), row.get(2)))
+    }
+
+    async fn tip(&self, dataset_id: i64) -> StoreResult<Tip> {
+        // MAX over the (dataset_id, seq) indexes reads one index entry each;
+        // COUNT(*) would read every row.
+        let row = sqlx::query(
+            "SELECT (SELECT COALESCE(MAX(seq) + 1, 0) FROM units WHERE dataset_id = $1), \
+                    (SELECT COALESCE(MAX(seq) + 1, 0) FROM outcomes WHERE dataset_id = $1), \
+                    (SELECT COALESCE(MAX(seq) + 1, 0) FROM predictions WHERE dataset_id = $1), \
+                    (SELECT COUNT(*) FROM models WHERE dataset_id = $1), \
+                    (SELECT COUNT(*) FROM models WHERE dataset_id = $1 AND retired_at_ms <> 0)",
+        )
+        .bind(dataset_id)
+        .fetch_one(&self.pool)
+        .await?;
+        Ok(Tip {
+            units: row.get(0),
+            outcomes: row.get(1),
+            predictions: row.get(2),
+            models: row.get(3),
+            retired: row.get(4),
+        })
     }
 }

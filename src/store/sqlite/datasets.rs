@@ -8,7 +8,7 @@ use super::{pack_features, unpack_features, SqliteStore, INSERT_CHUNK};
 use crate::domain::{
     DatasetSpec, OutcomeRecord, PredictionRecord, StoredDataset, StoredModel, UnitRecord,
 };
-use crate::store::{DatasetLog, RowStream, StoreError, StoreResult};
+use crate::store::{DatasetLog, RowStream, StoreError, StoreResult, Tip};
 
 #[async_trait]
 impl DatasetLog for SqliteStore {
@@ -113,7 +113,7 @@ impl DatasetLog for SqliteStore {
         dataset_id: i64,
         rows: &[UnitRecord],
         now_ms: i64,
-    ) -> StoreResult<()> {
+    ) -> StoreResult<i64> {
         let mut tx = self.pool.begin().await?;
         for chunk in rows.chunks(INSERT_CHUNK) {
             let mut q: QueryBuilder<Sqlite> = QueryBuilder::new(
@@ -134,7 +134,8 @@ impl DatasetLog for SqliteStore {
             q.build().execute(&mut *tx).await?;
         }
         tx.commit().await?;
-        Ok(())
+        // One writer: the caller's numbers are the next ones.
+        Ok(rows.first().map_or(0, |r| r.seq))
     }
 
     /// Writes a batch of new outcomes in one transaction.
@@ -143,7 +144,7 @@ impl DatasetLog for SqliteStore {
         dataset_id: i64,
         rows: &[OutcomeRecord],
         now_ms: i64,
-    ) -> StoreResult<()> {
+    ) -> StoreResult<i64> {
         let mut tx = self.pool.begin().await?;
         for chunk in rows.chunks(INSERT_CHUNK) {
             let mut q: QueryBuilder<Sqlite> = QueryBuilder::new(
@@ -160,7 +161,8 @@ impl DatasetLog for SqliteStore {
             q.build().execute(&mut *tx).await?;
         }
         tx.commit().await?;
-        Ok(())
+        // One writer: the caller's numbers are the next ones.
+        Ok(rows.first().map_or(0, |r| r.seq))
     }
 
     /// Writes a batch of new predictions in one transaction.
@@ -169,7 +171,7 @@ impl DatasetLog for SqliteStore {
         dataset_id: i64,
         rows: &[PredictionRecord],
         now_ms: i64,
-    ) -> StoreResult<()> {
+    ) -> StoreResult<i64> {
         let mut tx = self.pool.begin().await?;
         for chunk in rows.chunks(INSERT_CHUNK) {
             let mut q: QueryBuilder<Sqlite> = QueryBuilder::new(
@@ -188,7 +190,8 @@ impl DatasetLog for SqliteStore {
             q.build().execute(&mut *tx).await?;
         }
         tx.commit().await?;
-        Ok(())
+        // One writer: the caller's numbers are the next ones.
+        Ok(rows.first().map_or(0, |r| r.seq))
     }
 
     fn units(&self, dataset_id: i64, from: i64) -> RowStream<'_, UnitRecord> {
@@ -293,5 +296,25 @@ impl DatasetLog for SqliteStore {
                 .fetch_one(&self.pool)
                 .await?;
         Ok((units, outcomes, predictions))
+    }
+
+    async fn tip(&self, dataset_id: i64) -> StoreResult<Tip> {
+        // One writer: the row counts are the next numbers. Only a shared
+        // store's servers ask this often; here it serves the contract.
+        let (units, outcomes, predictions) = self.counts(dataset_id).await?;
+        let row = sqlx::query(
+            "SELECT COUNT(*), COALESCE(SUM(retired_at_ms <> 0), 0) FROM models \
+             WHERE dataset_id = ?",
+        )
+        .bind(dataset_id)
+        .fetch_one(&self.pool)
+        .await?;
+        Ok(Tip {
+            units,
+            outcomes,
+            predictions,
+            models: row.get(0),
+            retired: row.get(1),
+        })
     }
 }
