@@ -170,10 +170,16 @@ pub async fn start(config: &Config) -> Result<Running, StartError> {
     health
         .set_serving::<pb::scoring_server::ScoringServer<ScoringService>>()
         .await;
-    let reflection = tonic_reflection::server::Builder::configure()
-        .register_encoded_file_descriptor_set(pb::FILE_DESCRIPTOR_SET)
-        .register_encoded_file_descriptor_set(tonic_health::pb::FILE_DESCRIPTOR_SET)
-        .build_v1()
+    // Reflection in both versions of the protocol: v1, and v1alpha, which
+    // many gRPC tools still speak.
+    let reflection_builder = || {
+        tonic_reflection::server::Builder::configure()
+            .register_encoded_file_descriptor_set(pb::FILE_DESCRIPTOR_SET)
+            .register_encoded_file_descriptor_set(tonic_health::pb::FILE_DESCRIPTOR_SET)
+    };
+    let reflection = reflection_builder().build_v1().map_err(|e| e.to_string())?;
+    let reflection_v1alpha = reflection_builder()
+        .build_v1alpha()
         .map_err(|e| e.to_string())?;
 
     // Limits: message sizes on every service, streams per connection, and
@@ -191,6 +197,7 @@ pub async fn start(config: &Config) -> Result<Running, StartError> {
     let router = builder
         .add_service(health_service)
         .add_service(reflection)
+        .add_service(reflection_v1alpha)
         .add_service(gated(
             &gate,
             pb::dataset_registry_server::DatasetRegistryServer::new(Datasets {

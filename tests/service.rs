@@ -979,7 +979,119 @@ async fn metrics_carry_every_series_with_its_labels() {
     assert_eq!(accepted, Some(600.0));
     let (status, _) = http_get(srv.metrics_addr, "/readyz");
     assert_eq!(status, 200);
+
+    // A retired model's series go at once, in every window.
+    let of_m = |text: &str| {
+        parse_metrics(text)
+            .into_iter()
+            .filter(|(n, l, _)| {
+                n.starts_with("plumbline_model_") && l.contains(&("model".into(), "m".into()))
+            })
+            .count()
+    };
+    assert!(of_m(&text) > 10, "m's series before it is retired");
+    c.models
+        .retire_model(pb::RetireModelRequest {
+            dataset: name.into(),
+            name: "m".into(),
+        })
+        .await
+        .expect("retire");
+    let (_, after) = http_get(srv.metrics_addr, "/metrics");
+    assert_eq!(of_m(&after), 0, "m's series after it was retired:\n{after}");
     srv.stop().await.expect("stop");
+}
+
+/// What any Prometheus and gRPC tooling expects of a fresh server: a
+/// build-info series and the conventional process series before any
+/// dataset exists, reflection in both protocol versions listing the
+/// plumbline services, and plain logs (no colour codes) when stderr is not
+/// a terminal.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_fresh_server_speaks_the_ecosystems_conventions() {
+    let dir = TempDir::new("conventions");
+    let server = serve_binary(&dir, &[], "info", true);
+    let (_, text) = http_get(server.http, "/metrics");
+    let samples = parse_metrics(&text);
+    let value = |metric: &str| {
+        samples
+            .iter()
+            .find(|(n, _, _)| n == metric)
+            .map(|(_, l, v)| (l.clone(), *v))
+    };
+    let (labels, one) = value("plumbline_build_info").expect("plumbline_build_info");
+    assert_eq!(one, 1.0);
+    assert_eq!(
+        labels,
+        vec![("version".to_string(), env!("CARGO_PKG_VERSION").to_string())]
+    );
+    for metric in [
+        "process_cpu_seconds_total",
+        "process_resident_memory_bytes",
+        "process_virtual_memory_bytes",
+        "process_open_fds",
+        "process_max_fds",
+        "process_start_time_seconds",
+    ] {
+        let (_, v) = value(metric).unwrap_or_else(|| panic!("{metric} missing:\n{text}"));
+        assert!(v.is_finite() && v >= 0.0, "{metric} = {v}");
+    }
+    // The server holds some MiB and has its sockets and database open.
+    assert!(value("process_resident_memory_bytes").is_some_and(|(_, v)| v > 1e6));
+    assert!(value("process_open_fds").is_some_and(|(_, v)| v >= 5.0));
+
+    let channel = server.channel().await;
+    let want = [
+        "plumbline.v1.DatasetRegistry",
+        "plumbline.v1.Intake",
+        "plumbline.v1.Scoring",
+    ];
+    // The same exchange in each version's own types.
+    macro_rules! services_listed {
+        ($version:ident) => {{
+            use tonic_reflection::pb::$version::{
+                server_reflection_client::ServerReflectionClient,
+                server_reflection_request::MessageRequest,
+                server_reflection_response::MessageResponse, ServerReflectionRequest,
+            };
+            let mut client = ServerReflectionClient::new(channel.clone());
+            let mut answers = client
+                .server_reflection_info(tokio_stream::iter(vec![ServerReflectionRequest {
+                    host: String::new(),
+                    message_request: Some(MessageRequest::ListServices(String::new())),
+                }]))
+                .await
+                .expect(stringify!($version))
+                .into_inner();
+            let answer = answers
+                .message()
+                .await
+                .expect("answer")
+                .expect("one answer");
+            let Some(MessageResponse::ListServicesResponse(list)) = answer.message_response else {
+                panic!("{}: not a service list", stringify!($version));
+            };
+            list.service
+                .into_iter()
+                .map(|s| s.name)
+                .collect::<Vec<String>>()
+        }};
+    }
+    for (version, names) in [
+        ("v1", services_listed!(v1)),
+        ("v1alpha", services_listed!(v1alpha)),
+    ] {
+        for w in want {
+            assert!(names.iter().any(|n| n == w), "{version} lists {names:?}");
+        }
+    }
+    let out = server.terminate();
+    let logs = String::from_utf8_lossy(&out.stderr);
+    assert!(logs.contains("INFO"), "info logs were asked for:\n{logs}");
+    assert!(
+        !logs.contains('\u{1b}'),
+        "colour codes in logs written to a pipe:\n{logs}"
+    );
 }
 
 /// The binary as an operator runs it: `plumbline serve --data-dir D --listen

@@ -33,8 +33,12 @@ pub struct ServeArgs {
 
 pub fn init_logging(format: LogFormat, level: &str) {
     let filter = EnvFilter::try_new(level).unwrap_or_else(|_| EnvFilter::new("info"));
+    // Colour codes only for a person at a terminal: a file, a pipe or a
+    // log collector gets plain text.
+    let ansi = std::io::IsTerminal::is_terminal(&std::io::stderr());
     let builder = tracing_subscriber::fmt()
         .with_env_filter(filter)
+        .with_ansi(ansi)
         .with_writer(std::io::stderr);
     let _ = match format {
         LogFormat::Json => builder.json().try_init(),

@@ -25,6 +25,8 @@
 //! - `plumbline_units`, `plumbline_outcomes`,
 //!   `plumbline_last_outcome_timestamp_seconds`
 //! - `plumbline_events_total` {kind}
+//! - `plumbline_build_info` {version} = 1, and the conventional `process_*`
+//!   series (`process.rs`)
 
 use std::sync::atomic::AtomicU64;
 use std::sync::Arc;
@@ -37,6 +39,7 @@ use prometheus_client::metrics::histogram::{exponential_buckets, Histogram};
 use prometheus_client::registry::Registry;
 
 pub mod http;
+pub mod process;
 
 pub type FloatGaugeType = Gauge<f64, AtomicU64>;
 type FloatGauge = FloatGaugeType;
@@ -95,6 +98,11 @@ pub struct ComponentLabels {
 }
 
 #[derive(Clone, Debug, Hash, PartialEq, Eq, EncodeLabelSet)]
+pub struct BuildLabels {
+    pub version: String,
+}
+
+#[derive(Clone, Debug, Hash, PartialEq, Eq, EncodeLabelSet)]
 pub struct DatasetLabels {
     pub dataset: String,
 }
@@ -129,7 +137,9 @@ pub struct Metrics {
 
 impl Metrics {
     pub fn new() -> Arc<Self> {
-        let mut registry = Registry::with_prefix("plumbline");
+        let mut root = Registry::default();
+        root.register_collector(Box::new(process::ProcessCollector));
+        let registry = root.sub_registry_with_prefix("plumbline");
         let m = Metrics {
             model_score: Family::default(),
             model_score_se: Family::default(),
@@ -257,6 +267,17 @@ impl Metrics {
             m.last_outcome_seconds.clone(),
         );
         registry.register("events", "Events raised by kind", m.events.clone());
+        let build_info: Family<BuildLabels, FloatGauge> = Family::default();
+        build_info
+            .get_or_create(&BuildLabels {
+                version: env!("CARGO_PKG_VERSION").into(),
+            })
+            .set(1.0);
+        registry.register(
+            "build_info",
+            "1, labelled by the version of plumbline that runs",
+            build_info,
+        );
         registry.register(
             "dataset_owned",
             "1 while this server owns the dataset's lease (recomputes it, stores its snapshots, \
@@ -264,7 +285,7 @@ impl Metrics {
             m.dataset_owned.clone(),
         );
         let mut m = m;
-        m.registry = registry;
+        m.registry = root;
         Arc::new(m)
     }
 

@@ -191,26 +191,7 @@ impl Monitor {
             if let Some(b) = boards.get(window) {
                 models.extend(b.models.iter().map(|model| model.name.clone()));
             }
-            for model in models {
-                let ml = ModelLabels {
-                    dataset: dataset.into(),
-                    model: model.clone(),
-                    window: window.into(),
-                };
-                m.leader_info.remove(&ml);
-                m.model_rank.remove(&ml);
-                m.model_p_best.remove(&ml);
-                for estimator in crate::domain::board::history_keys() {
-                    let sl = ScoreLabels {
-                        dataset: dataset.into(),
-                        model: model.clone(),
-                        estimator: estimator.into(),
-                        window: window.into(),
-                    };
-                    m.model_score.remove(&sl);
-                    m.model_score_se.remove(&sl);
-                }
-            }
+            self.forget_models_in(dataset, window, &models);
         }
         for component in ["outcome_control", "outcome_treated", "propensity"] {
             m.nuisance_loss.remove(&ComponentLabels {
@@ -226,6 +207,38 @@ impl Monitor {
                 dataset: dataset.into(),
                 quantity: quantity.clone(),
             });
+        }
+    }
+
+    /// Takes down the per-model series of models no longer on the boards
+    /// (retired), in every window.
+    pub(super) fn forget_models(&self, dataset: &str, models: &[String]) {
+        for window in ["cumulative", "recent", alerts::STREAM] {
+            self.forget_models_in(dataset, window, models);
+        }
+    }
+
+    fn forget_models_in(&self, dataset: &str, window: &str, models: &[String]) {
+        let m = &self.metrics;
+        for model in models {
+            let ml = ModelLabels {
+                dataset: dataset.into(),
+                model: model.clone(),
+                window: window.into(),
+            };
+            m.leader_info.remove(&ml);
+            m.model_rank.remove(&ml);
+            m.model_p_best.remove(&ml);
+            for estimator in crate::domain::board::history_keys() {
+                let sl = ScoreLabels {
+                    dataset: dataset.into(),
+                    model: model.clone(),
+                    estimator: estimator.into(),
+                    window: window.into(),
+                };
+                m.model_score.remove(&sl);
+                m.model_score_se.remove(&sl);
+            }
         }
     }
 }

@@ -11,7 +11,7 @@ use tracing::{info, info_span, warn, Instrument};
 use super::alerts::{self, Raised};
 use super::board;
 use super::recompute::RecomputeOptions;
-use super::{now_ms, DatasetHandle, Monitor, MonitorError, MonitorResult};
+use super::{now_ms, Boards, DatasetHandle, Monitor, MonitorError, MonitorResult};
 use crate::domain::ScoreRow;
 use crate::metrics::{DatasetLabels, KindLabels, WindowLabels};
 use crate::store::{Fence, NewSnapshot, StoreError};
@@ -230,14 +230,21 @@ impl Monitor {
 
         // Install, then alert.
         let cumulative_units = boards.get("cumulative").map(|b| b.units).unwrap_or(0);
-        let (raised, previous, watched_leader) = {
+        let (raised, previous, watched_leader, gone) = {
             let mut st = h.state.lock().await;
             let watched_leader = st.watch.state().leader;
-            let previous: BTreeMap<String, String> = h
-                .boards()
+            let old_boards = h.boards();
+            let previous: BTreeMap<String, String> = old_boards
                 .iter()
                 .map(|(k, b)| (k.clone(), b.leader.clone()))
                 .collect();
+            // Models on the last boards and on none of these: retired.
+            let on = |bs: &Boards| -> std::collections::BTreeSet<String> {
+                bs.values()
+                    .flat_map(|b| b.models.iter().map(|m| m.name.clone()))
+                    .collect()
+            };
+            let gone: Vec<String> = on(&old_boards).difference(&on(&boards)).cloned().collect();
             st.nuisance = Some(nuisance.clone());
             st.watch = computed.watch.clone();
             let raised: Vec<Raised> = computed
@@ -246,7 +253,7 @@ impl Monitor {
                 .filter_map(|s| alerts::event(&h.name, s))
                 .collect();
             h.publish(boards.clone());
-            (raised, previous, watched_leader)
+            (raised, previous, watched_leader, gone)
         };
         // The watch looked before any refit: its events come first.
         for r in raised {
@@ -297,6 +304,7 @@ impl Monitor {
                 .into(),
             })
             .observe(seconds);
+        self.forget_models(&h.name, &gone);
         self.export_boards(&h.name, &boards, &previous, &nuisance);
         self.export_watch(&h.name, watched_leader, &computed.watch);
         info!(

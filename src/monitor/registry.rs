@@ -204,6 +204,9 @@ impl Monitor {
         st.cache.models[m].model.retired_at_ms = at;
         let out = (st.cache.models[m].model.clone(), st.cache.models[m].count);
         drop(st);
+        // Its series go at once (the next recompute leaves it off the
+        // boards; a server that does not own the dataset exports none).
+        self.forget_models(dataset, &[name.to_string()]);
         self.raise(
             &h,
             None,
