@@ -384,6 +384,19 @@ async fn token_commands_and_no_token_in_logs() {
         String::from_utf8_lossy(&listed.stderr)
     );
     assert!(String::from_utf8_lossy(&listed.stdout).contains("logged"));
+    // Without one, the client says where a token goes.
+    let refused = std::process::Command::new(bin)
+        .args(["datasets", "--server"])
+        .arg(format!("http://{grpc}"))
+        .env_remove("PLUMBLINE_TOKEN")
+        .output()
+        .expect("datasets");
+    let err = String::from_utf8_lossy(&refused.stderr);
+    assert_eq!(refused.status.code(), Some(1), "{err}");
+    assert!(
+        err.contains("--token") && err.contains("PLUMBLINE_TOKEN"),
+        "no token: {err}"
+    );
 
     let list = std::process::Command::new(bin)
         .args(["token", "list", "--data-dir"])

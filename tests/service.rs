@@ -1236,6 +1236,61 @@ async fn client_commands_work_and_backfills_resume() {
     let (board_json, _) = run(&["scoreboard", "--dataset", name, "--format", "json"]);
     let v: serde_json::Value = serde_json::from_str(&board_json).expect("json");
     assert_eq!(v["scoreboard"]["n_units"], 800);
+
+    // Rough edges a new user hits, each as the shell sees it.
+    let plumbline = |args: &[&str]| {
+        std::process::Command::new(env!("CARGO_BIN_EXE_plumbline"))
+            .args(args)
+            .stdout(std::process::Stdio::piped())
+            .stderr(std::process::Stdio::piped())
+            .output()
+            .expect("run")
+    };
+    // A model that was never registered has no history: not found, 2.
+    let out = plumbline(&[
+        "history",
+        "--dataset",
+        name,
+        "--model",
+        "NO-SUCH",
+        "--server",
+        &server,
+    ]);
+    let err = String::from_utf8_lossy(&out.stderr);
+    assert_eq!(
+        out.status.code(),
+        Some(2),
+        "history of an unknown model: {err}"
+    );
+    assert!(
+        err.contains("NO-SUCH") && err.contains("not registered"),
+        "{err}"
+    );
+    // A reader that stops early (`| head -1`) ends the command quietly.
+    let mut child = std::process::Command::new(env!("CARGO_BIN_EXE_plumbline"))
+        .args(["events", "--dataset", name, "--server", &server])
+        .stdout(std::process::Stdio::piped())
+        .stderr(std::process::Stdio::piped())
+        .spawn()
+        .expect("spawn");
+    drop(child.stdout.take());
+    let out = child.wait_with_output().expect("wait");
+    let err = String::from_utf8_lossy(&out.stderr);
+    assert!(!err.contains("panicked"), "closed pipe: {err}");
+    assert_ne!(out.status.code(), Some(101), "closed pipe: {err}");
+    // Nothing listening: say so, and what to try.
+    let closed = std::net::TcpListener::bind("127.0.0.1:0")
+        .and_then(|l| l.local_addr())
+        .expect("a port");
+    let out = plumbline(&["datasets", "--server", &format!("http://{closed}")]);
+    let err = String::from_utf8_lossy(&out.stderr);
+    assert_eq!(out.status.code(), Some(1), "{err}");
+    assert!(
+        err.contains(&format!("nothing answers at http://{closed}"))
+            && err.contains("plumbline serve")
+            && !err.contains("transport error"),
+        "{err}"
+    );
     srv.stop().await.expect("stop");
 }
 

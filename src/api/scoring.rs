@@ -99,6 +99,22 @@ impl pb::scoring_server::Scoring for ScoringService {
             })
             .await
             .map_err(|e| from_monitor(e.into()))?;
+        // No history for a name never registered (retired models keep
+        // theirs): say so, rather than answer an empty series.
+        if rows.is_empty()
+            && !self
+                .monitor
+                .models(&r.dataset, true)
+                .await
+                .map_err(from_monitor)?
+                .iter()
+                .any(|(m, _)| m.name == r.model)
+        {
+            return Err(Status::not_found(format!(
+                "model: {:?} is not registered in dataset {:?}",
+                r.model, r.dataset
+            )));
+        }
         Ok(Response::new(pb::GetHistoryResponse {
             points: rows
                 .into_iter()

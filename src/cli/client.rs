@@ -86,7 +86,22 @@ pub async fn connect(c: &Connection) -> Result<Channel, String> {
     endpoint
         .connect()
         .await
-        .map_err(|e| format!("cannot reach {uri}: {e}"))
+        .map_err(|e| nothing_answers(&uri, &e))
+}
+
+/// What to say when nothing answers: the address, the cause underneath
+/// tonic's "transport error", and what to try.
+fn nothing_answers(uri: &str, e: &dyn std::error::Error) -> String {
+    let mut cause = e.to_string();
+    let mut source = e.source();
+    while let Some(s) = source {
+        cause = s.to_string();
+        source = s.source();
+    }
+    format!(
+        "nothing answers at {uri} ({cause}); is `plumbline serve` running there? \
+         Point --server at it"
+    )
 }
 
 /// Wraps a message with the bearer token, if any.
@@ -102,7 +117,45 @@ pub fn request<T>(c: &Connection, message: T) -> Result<Request<T>, String> {
 }
 
 pub fn status(s: Status) -> String {
-    format!("{} ({:?})", s.message(), s.code())
+    match s.code() {
+        tonic::Code::Unauthenticated => format!(
+            "{} ({:?}); pass a token with --token or set PLUMBLINE_TOKEN",
+            s.message(),
+            s.code()
+        ),
+        tonic::Code::Unavailable => format!(
+            "{} ({:?}); is `plumbline serve` running at the --server address?",
+            s.message(),
+            s.code()
+        ),
+        _ => format!("{} ({:?})", s.message(), s.code()),
+    }
+}
+
+/// A client command's failure and its exit status: 2 when what was asked
+/// for does not exist (or the arguments are wrong), 1 otherwise.
+#[derive(Debug)]
+pub struct Failure {
+    code: u8,
+    message: String,
+}
+
+impl From<String> for Failure {
+    fn from(message: String) -> Self {
+        Failure { code: 1, message }
+    }
+}
+
+/// [`status`], keeping "not found" and "invalid argument" apart (status 2).
+pub fn failed(s: Status) -> Failure {
+    let code = match s.code() {
+        tonic::Code::NotFound | tonic::Code::InvalidArgument => 2,
+        _ => 1,
+    };
+    Failure {
+        code,
+        message: status(s),
+    }
 }
 
 #[derive(Debug, Args)]
@@ -160,8 +213,10 @@ pub(super) fn block_on_command<T>(
     })
 }
 
-fn run_async(f: impl std::future::Future<Output = Result<(), String>>) -> ExitCode {
-    match block_on_command("plumbline", async { f.await.map_err(|e| (1, e)) }) {
+fn run_async(f: impl std::future::Future<Output = Result<(), Failure>>) -> ExitCode {
+    match block_on_command("plumbline", async {
+        f.await.map_err(|e| (e.code, e.message))
+    }) {
         Ok(()) => ExitCode::SUCCESS,
         Err(code) => code,
     }
@@ -201,7 +256,7 @@ pub fn datasets(c: &Connection) -> ExitCode {
         let list = client
             .list_datasets(request(c, pb::ListDatasetsRequest {})?)
             .await
-            .map_err(status)?
+            .map_err(failed)?
             .into_inner()
             .datasets;
         if c.format == Output::Json {
@@ -252,7 +307,7 @@ pub fn models(c: &Connection, d: &DatasetArg, include_retired: bool) -> ExitCode
                 },
             )?)
             .await
-            .map_err(status)?
+            .map_err(failed)?
             .into_inner()
             .models;
         if c.format == Output::Json {
@@ -302,7 +357,7 @@ pub fn scoreboard(c: &Connection, d: &DatasetArg, w: &WindowArg) -> ExitCode {
                 },
             )?)
             .await
-            .map_err(status)?
+            .map_err(failed)?
             .into_inner();
         if c.format == Output::Json {
             let full: serde_json::Value =
@@ -454,7 +509,7 @@ pub fn history(c: &Connection, a: &HistoryArgs) -> ExitCode {
                 },
             )?)
             .await
-            .map_err(status)?
+            .map_err(failed)?
             .into_inner()
             .points;
         if c.format == Output::Json {
@@ -540,9 +595,9 @@ pub fn events(c: &Connection, a: &EventsArgs) -> ExitCode {
                     },
                 )?)
                 .await
-                .map_err(status)?
+                .map_err(failed)?
                 .into_inner();
-            while let Some(e) = stream.message().await.map_err(status)? {
+            while let Some(e) = stream.message().await.map_err(failed)? {
                 print_event(c, &e);
             }
             return Ok(());
@@ -557,7 +612,7 @@ pub fn events(c: &Connection, a: &EventsArgs) -> ExitCode {
                 },
             )?)
             .await
-            .map_err(status)?
+            .map_err(failed)?
             .into_inner()
             .events;
         if c.format == Output::Json {
@@ -584,7 +639,7 @@ pub fn overlap(c: &Connection, d: &DatasetArg, w: &WindowArg) -> ExitCode {
                 },
             )?)
             .await
-            .map_err(status)?
+            .map_err(failed)?
             .into_inner();
         let full: serde_json::Value =
             serde_json::from_str(&r.json).unwrap_or(serde_json::Value::Null);

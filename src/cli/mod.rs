@@ -110,8 +110,25 @@ pub const EXIT_BAD_INPUT: u8 = 2;
 /// Exit status when the data cannot support the estimates (named state).
 pub const EXIT_DEGENERATE: u8 = 3;
 
+/// Commands that print for a person or a pipeline stop quietly when what
+/// reads their output goes away (`plumbline scoreboard ... | head -1`), as
+/// other command-line tools do, instead of failing on the closed pipe.
+/// The server keeps Rust's default (the signal ignored; its sockets report
+/// the error to the call that wrote).
+fn stop_quietly_on_closed_pipe() {
+    #[cfg(unix)]
+    // SAFETY: restores the default disposition of one signal before any
+    // thread is started; no handler runs Rust code.
+    unsafe {
+        libc::signal(libc::SIGPIPE, libc::SIG_DFL);
+    }
+}
+
 pub fn run() -> ExitCode {
     let cli = Cli::parse();
+    if !matches!(cli.command, Command::Serve(_) | Command::Demo(_)) {
+        stop_quietly_on_closed_pipe();
+    }
     match cli.command {
         Command::Demo(args) => demo::run(&args),
         Command::Datasets { connection } => client::datasets(&connection),

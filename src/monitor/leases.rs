@@ -421,6 +421,12 @@ impl Monitor {
         let _one_at_a_time = h.recompute.lock().await;
         let mut st = h.state.lock().await;
         self.catch_up(&mut state).await?;
+        // A recompute is due at once only if the outcomes waiting reach the
+        // dataset's threshold, or there are outcomes and no boards yet; the
+        // rest waits for the schedule as it would have at the last owner.
+        // (Waking unconditionally raced a new dataset's first rows.)
+        let due = state.pending_outcomes >= u64::from(state.stored.spec.recompute_every_outcomes)
+            || (boards.is_empty() && state.cache.outcomes() > 0);
         *st = state;
         h.publish(boards);
         drop(st);
@@ -438,7 +444,9 @@ impl Monitor {
             millis = started.elapsed().as_secs_f64() * 1000.0,
             "took the dataset over"
         );
-        h.wake.notify_one();
+        if due {
+            h.wake.notify_one();
+        }
         Ok(())
     }
 
