@@ -22,7 +22,7 @@ use tracing::warn;
 
 use super::{Boards, DatasetHandle, DatasetState, Monitor, MonitorResult};
 use crate::domain::EventRecord;
-use crate::store::StoreError;
+use crate::store::{StoreError, Tip};
 
 /// How often a server on a shared store reads what the others wrote.
 pub const FOLLOW_EVERY: Duration = Duration::from_millis(250);
@@ -84,11 +84,18 @@ impl Monitor {
     pub(super) async fn catch_up(&self, st: &mut DatasetState) -> MonitorResult<usize> {
         let id = st.stored.id;
         let before = st.cache.units();
-        // One statement says which tables moved; most catch-ups before an
-        // intake check find nothing new and stop here. A table written
-        // after the tip was read waits for the next catch-up (an intake
-        // check numbered from the older view is refused and retried).
-        let tip = self.store.tip(id).await?;
+        // On a shared store one statement says which tables moved; most
+        // catch-ups before an intake check find nothing new and stop here.
+        // A table written after the tip was read waits for the next
+        // catch-up (an intake check numbered from the older view is
+        // renumbered by the store and read back). With one writer only a
+        // rebuild catches up, from nothing, so every table is read and the
+        // tip's counting would be start-up work for nothing.
+        let tip = if self.store.shared() {
+            self.store.tip(id).await?
+        } else {
+            Tip::everything()
+        };
         let retired = st
             .cache
             .models

@@ -277,6 +277,19 @@ pub struct Tip {
     pub retired: i64,
 }
 
+impl Tip {
+    /// A tip past any store: every table reads as moved.
+    pub fn everything() -> Tip {
+        Tip {
+            units: i64::MAX,
+            outcomes: i64::MAX,
+            predictions: i64::MAX,
+            models: -1,
+            retired: -1,
+        }
+    }
+}
+
 /// A row the store numbers within its dataset.
 pub trait Numbered {
     fn seq(&self) -> i64;
