@@ -18,7 +18,8 @@
 //!   reproduced) and the restarted server's peak memory.
 //!
 //! `cargo bench --bench service` runs n = 10,000 and 100,000 (about two
-//! minutes). `PLUMBLINE_BENCH_SIZES=10000,100000,1000000` adds the 1M run
+//! minutes). `PLUMBLINE_BENCH_MODELS=1000` registers a sweep of that many
+//! models (`synth::sweep`) instead of the ten of graded quality. `PLUMBLINE_BENCH_SIZES=10000,100000,1000000` adds the 1M run
 //! (several minutes); `PLUMBLINE_BENCH_SIZES=50000,100000,200000,400000`
 //! shows how the incremental recompute grows with the history, and
 //! `PLUMBLINE_BENCH_COHORT=5000` (or 20000, 40000) at one history size how it
@@ -45,12 +46,19 @@ use std::process::{Child, Command, Stdio};
 use std::time::{Duration, Instant};
 
 use plumbline::api::pb;
-use plumbline::synth::{candidates, draw, effect_moments, Candidate, Design, Draw};
+use plumbline::synth::{candidates, draw, effect_moments, sweep, Candidate, Design, Draw};
 use tonic::transport::Channel;
 
 const FEATURES: usize = 20;
 const BATCH: usize = 1000;
-const MODELS: usize = 10;
+/// Models registered and scored: 10 of graded quality, or with
+/// `PLUMBLINE_BENCH_MODELS` (above 10) a sweep of that many (`synth::sweep`).
+fn models_count() -> usize {
+    std::env::var("PLUMBLINE_BENCH_MODELS")
+        .ok()
+        .and_then(|v| v.parse().ok())
+        .unwrap_or(10)
+}
 /// Units per cohort label, and the default size of the block of new units
 /// scored by the incremental recompute.
 const COHORT: usize = 10_000;
@@ -75,7 +83,9 @@ fn max_fit_units() -> Option<usize> {
 
 /// Raw bytes per unit: features and outcome as f64, treatment as a byte,
 /// one f64 per model's prediction.
-const RAW_BYTES_PER_UNIT: usize = 8 * FEATURES + 8 + 1 + 8 * MODELS;
+fn raw_bytes_per_unit() -> usize {
+    8 * FEATURES + 8 + 1 + 8 * models_count()
+}
 const NAME: &str = "bench";
 
 struct Row {
@@ -285,8 +295,12 @@ impl Server {
         if let Some(mib) = wal_limit_mib() {
             config.push_str(&format!("sqlite_wal_limit_mib = {mib}\n"));
         }
+        config.push_str(&format!(
+            "[limits]\nmax_models_per_dataset = {}\n",
+            models_count().max(100)
+        ));
         if let Some(cap) = max_fit_units() {
-            config.push_str(&format!("[limits]\nmax_fit_units = {cap}\n"));
+            config.push_str(&format!("max_fit_units = {cap}\n"));
         }
         if !config.is_empty() {
             let path = dir.with_extension("toml");
@@ -474,7 +488,11 @@ async fn measure(history: usize) -> Row {
     let total = history + arriving();
     let data = draw(Design::NieWagerB, total, FEATURES, 1.0, 1);
     let (_, var_tau) = effect_moments(Design::NieWagerB, 100_000, 2);
-    let cands = candidates(&data.tau, var_tau, MODELS, 3);
+    let cands = if models_count() > 10 {
+        sweep(&data.tau, var_tau, models_count(), 3)
+    } else {
+        candidates(&data.tau, var_tau, models_count(), 3)
+    };
     for c in &cands {
         models
             .register_model(pb::RegisterModelRequest {
@@ -494,7 +512,7 @@ async fn measure(history: usize) -> Row {
     let preds = prediction_batches(&cands, 0..history);
     let t = Instant::now();
     spread(&channels, preds, predictions_stream).await;
-    let ingest_predictions_per_s = (history * MODELS) as f64 / t.elapsed().as_secs_f64();
+    let ingest_predictions_per_s = (history * models_count()) as f64 / t.elapsed().as_secs_f64();
     spread(
         &channels,
         outcome_batches(&data, 0..history),
@@ -620,7 +638,7 @@ async fn measure(history: usize) -> Row {
         refresh_server_ms,
         intake_peak_mib,
         peak_mib: peak,
-        raw_mib: (total * RAW_BYTES_PER_UNIT) as f64 / (1024.0 * 1024.0),
+        raw_mib: (total * raw_bytes_per_unit()) as f64 / (1024.0 * 1024.0),
         restart_s,
         restart_peak_mib: peak_mib(server.child.id()),
         conflicts,
@@ -682,10 +700,12 @@ async fn main() {
         "(refit: full cross-fitted refit and scoring of the history; incremental: recompute after a \
 {}-unit block of new units with the current fit, R where it refreshed the cumulative \
 window's rank metrics; refresh: a recompute asked to refresh them, server time; intake MiB: peak before the refit, \
-the cache and the store; raw: {RAW_BYTES_PER_UNIT} bytes per unit; restart: \
+the cache and the store; raw: {} bytes per unit; restart: \
 SIGTERM, start on the same data, until the scoreboard is served, and that process's peak; \
-limits.max_fit_units: {}; store: {}; servers: {}; largest SQLite WAL {}; batches renumbered {})",
+models: {}; limits.max_fit_units: {}; store: {}; servers: {}; largest SQLite WAL {}; batches renumbered {})",
         arriving(),
+        raw_bytes_per_unit(),
+        models_count(),
         max_fit_units().map_or("the default".to_string(), |c| c.to_string()),
         if store_url().is_some() { "PostgreSQL" } else { "SQLite" },
         replicas(),

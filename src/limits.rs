@@ -35,8 +35,11 @@ pub struct Limits {
     /// and its own recompute scheduler.
     pub max_datasets: usize,
     /// Most models registered on one dataset, retired ones included (their
-    /// predictions stay stored). Each recompute scores every active model
-    /// and compares every pair, so the cost grows with the square.
+    /// predictions stay stored), enough for a hyperparameter sweep. Each
+    /// recompute scores every active model: the ranking estimator's
+    /// co-moments grow with the square of their number (a tiled matrix
+    /// product), the rest with the number; the cache holds 8 bytes per
+    /// unit and model (BENCHMARKS.md, "A sweep of candidates").
     pub max_models_per_dataset: usize,
     /// Longest dataset or model name, in bytes. At most 128.
     pub max_name_bytes: usize,
@@ -73,7 +76,7 @@ impl Default for Limits {
             max_batch_rows: MAX_BATCH_ROWS,
             max_features: 256,
             max_datasets: 256,
-            max_models_per_dataset: 100,
+            max_models_per_dataset: 1_000,
             max_name_bytes: MAX_NAME_LEN,
             max_key_bytes: MAX_KEY_BYTES,
             max_concurrent_streams: 64,

@@ -221,3 +221,29 @@ pub fn candidates(tau: &[f64], var_tau: f64, count: usize, seed: u64) -> Vec<Can
         })
         .collect()
 }
+
+/// A sweep of `count` candidates, as a hyperparameter search would leave
+/// them: model k predicts a_k tau + (1 - a_k) mean + scale p_k e_k, with a
+/// shrinkage a_k spread over [0.5, 1], a noise level p_k over [0.1, 1]
+/// (the two stepping at different rates, so the sweep covers the plane)
+/// and e_k independent standard normal noise per unit. Population PEHE
+/// (1 - a_k)^2 Var(tau) + (scale p_k)^2. Named `sweep-0000`, ...
+pub fn sweep(tau: &[f64], var_tau: f64, count: usize, seed: u64) -> Vec<Candidate> {
+    let scale = if var_tau > 1e-12 { var_tau.sqrt() } else { 1.0 };
+    let mean = tau.iter().sum::<f64>() / tau.len().max(1) as f64;
+    let mut rng = ChaCha8Rng::seed_from_u64(seed);
+    (0..count)
+        .map(|k| {
+            let a = 0.5 + 0.5 * ((k * 7) % 97) as f64 / 96.0;
+            let p = 0.1 + 0.9 * ((k * 13) % 89) as f64 / 88.0;
+            let effects = tau
+                .iter()
+                .map(|&t| a * t + (1.0 - a) * mean + scale * p * standard_normal(&mut rng))
+                .collect();
+            Candidate {
+                predictions: ModelPredictions::new(format!("sweep-{k:04}"), effects),
+                true_pehe: (1.0 - a).powi(2) * var_tau + (scale * p).powi(2),
+            }
+        })
+        .collect()
+}

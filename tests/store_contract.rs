@@ -104,6 +104,8 @@ fn board(dataset: &str, window: Window, snapshot_id: u64, units: u64) -> Board {
         units,
         ate: None,
         leader: String::new(),
+        leader_vs_constant: None,
+        joint_critical_value: None,
         best_set: vec![],
         no_detectable_heterogeneity: false,
         models: vec![],

@@ -5,8 +5,8 @@ use tonic::Status;
 
 use super::pb;
 use crate::domain::{
-    AlertView, Board, BoardModel, Difference, IncompleteModel, NuisanceComponent, OverlapSummary,
-    Window,
+    Adjusted, AlertView, Board, BoardModel, Difference, IncompleteModel, NuisanceComponent,
+    OverlapSummary, Window,
 };
 use crate::estimate::stats::Estimate;
 
@@ -60,6 +60,18 @@ impl From<Difference> for pb::Difference {
             ci_low: d.ci_low,
             ci_high: d.ci_high,
             p_value: d.p_value,
+            joint_low: d.joint.map(|j| j.0),
+            joint_high: d.joint.map(|j| j.1),
+        }
+    }
+}
+
+impl From<Adjusted> for pb::AdjustedInterval {
+    fn from(a: Adjusted) -> Self {
+        pb::AdjustedInterval {
+            estimate: a.estimate,
+            ci_low: a.ci_low,
+            ci_high: a.ci_high,
         }
     }
 }
@@ -81,12 +93,14 @@ impl From<BoardModel> for pb::ModelScore {
                 .collect(),
             vs_constant: Some(m.vs_constant.into()),
             p_best: m.p_best,
+            chance_lowest: m.chance_lowest,
             in_best_set: m.in_best_set,
             policy_gain: Some(m.policy_gain.into()),
             treated_share: m.treated_share,
             autoc: Some(m.autoc.into()),
             qini: Some(m.qini.into()),
             blp_slope: m.blp_slope.map(Into::into),
+            top_minus_bottom: m.top_minus_bottom.map(Into::into),
         }
     }
 }
@@ -171,6 +185,8 @@ impl From<Board> for pb::Scoreboard {
             json: b.detail_json,
             rank_metrics_units: b.rank_metrics_units,
             alerts: b.alerts.map(Into::into),
+            leader_vs_constant: b.leader_vs_constant.map(Into::into),
+            joint_critical_value: b.joint_critical_value,
         }
     }
 }

@@ -172,7 +172,9 @@ impl pb::scoring_server::Scoring for ScoringService {
             }));
         }
         Err(Status::not_found(format!(
-            "{:?} and {:?} are not both ranked in this window",
+            "no difference of {:?} and {:?} is kept in this window: both must be ranked, and a \
+             board keeps every pair among its top-ranked models and the leader against each \
+             of the others",
             r.first, r.second
         )))
     }

@@ -74,7 +74,7 @@ pub fn table(b: &Scoreboard, kind: OutcomeKind, folds: usize) -> String {
     let _ = writeln!(
         s,
         "  {:>4}  {:<name_w$}  {:>12}  {:>27}  {:>6}  {:>4}  verdict",
-        "rank", "model", "difference", "95% CI", "p_best", "best"
+        "rank", "model", "difference", "95% CI", "chance", "best"
     );
     for m in &b.models {
         let ci = format!(
@@ -89,7 +89,7 @@ pub fn table(b: &Scoreboard, kind: OutcomeKind, folds: usize) -> String {
             m.name,
             num(m.vs_constant.estimate),
             ci,
-            m.p_best,
+            m.chance_lowest,
             if m.in_best_set { "yes" } else { "" },
             verdict(m)
         );
@@ -101,6 +101,23 @@ pub fn table(b: &Scoreboard, kind: OutcomeKind, folds: usize) -> String {
         b.leader,
         b.alpha,
         b.best_set.join(", ")
+    );
+    let _ = writeln!(
+        s,
+        "{} against constant-effect, allowing for its being the lowest of {} on these units: \
+         {} [{}, {}].",
+        b.leader,
+        b.models.len(),
+        num(b.leader_vs_constant.estimate),
+        num(b.leader_vs_constant.ci_low),
+        num(b.leader_vs_constant.ci_high)
+    );
+    let _ = writeln!(
+        s,
+        "Chance: of having the lowest true error (pooled over the models, even when they tie). \
+         Intervals holding for all {} rows at once: difference +- {} se.",
+        b.models.len(),
+        num(b.joint_critical_value)
     );
     if b.no_detectable_heterogeneity {
         let _ = writeln!(

@@ -50,6 +50,19 @@ pub struct Difference {
     pub ci_low: f64,
     pub ci_high: f64,
     pub p_value: f64,
+    /// The interval at the same level holding for every difference of its
+    /// family at once (max-t); absent on boards stored before it existed.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub joint: Option<(f64, f64)>,
+}
+
+/// An estimate with an interval that is not estimate +- z se: the
+/// leader's difference from constant-effect, adjusted for its selection.
+#[derive(Debug, Clone, Copy, Default, PartialEq, Serialize, Deserialize)]
+pub struct Adjusted {
+    pub estimate: f64,
+    pub ci_low: f64,
+    pub ci_high: f64,
 }
 
 /// One ranked model (or baseline) of a board.
@@ -66,6 +79,10 @@ pub struct BoardModel {
     /// "no lower error").
     pub vs_constant: Difference,
     pub p_best: f64,
+    /// Chance of the lowest true error, the models pooled (empirical
+    /// Bayes); absent on boards stored before it existed.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub chance_lowest: Option<f64>,
     pub in_best_set: bool,
     /// Per unit over treating nobody, at the dataset's cost.
     pub policy_gain: Estimate,
@@ -74,6 +91,10 @@ pub struct BoardModel {
     pub qini: Estimate,
     /// None when the predictions do not vary.
     pub blp_slope: Option<Estimate>,
+    /// The top fifth's ATE minus the bottom fifth's; absent when the
+    /// predictions do not vary or on boards stored before it existed.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub top_minus_bottom: Option<Estimate>,
 }
 
 /// Per-model values kept in history besides the estimators' scores.
@@ -187,6 +208,14 @@ pub struct Board {
     pub ate: Option<Estimate>,
     /// Empty when degenerate.
     pub leader: String,
+    /// The leader's difference from constant-effect with an interval that
+    /// allows for its selection; absent when degenerate or stored before it
+    /// existed.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub leader_vs_constant: Option<Adjusted>,
+    /// Max-t critical value of the models' joint intervals.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub joint_critical_value: Option<f64>,
     pub best_set: Vec<String>,
     pub no_detectable_heterogeneity: bool,
     /// By rank.
@@ -221,6 +250,7 @@ impl Board {
                     estimate: -d.estimate,
                     ci_low: -d.ci_high,
                     ci_high: -d.ci_low,
+                    joint: d.joint.map(|(low, high)| (-high, -low)),
                     ..d
                 })
             } else {
@@ -244,6 +274,8 @@ mod tests {
             units: 10,
             ate: None,
             leader: String::new(),
+            leader_vs_constant: None,
+            joint_critical_value: None,
             best_set: vec![],
             no_detectable_heterogeneity: true,
             models: vec![],
@@ -259,6 +291,7 @@ mod tests {
                     ci_low: 0.3,
                     ci_high: 0.7,
                     p_value: 0.01,
+                    joint: Some((0.2, 0.8)),
                 },
             }],
             degenerate: String::new(),

@@ -9,7 +9,7 @@ pub mod records;
 pub mod spec;
 
 pub use board::{
-    AlertView, Board, BoardModel, Difference, Drift, IncompleteModel, NuisanceComponent,
+    Adjusted, AlertView, Board, BoardModel, Difference, Drift, IncompleteModel, NuisanceComponent,
     OverlapSummary, Pair, Score, Window,
 };
 pub use records::{

@@ -29,6 +29,23 @@ pub struct Calibration {
     /// "ok" or "constant_predictions".
     pub state: &'static str,
     pub groups: Vec<GroupAte>,
+    /// The top fifth's ATE minus the bottom fifth's (the GATES contrast of
+    /// Chernozhukov et al.): how much more the units the model ranks first
+    /// gain than those it ranks last. The groups are disjoint sets of
+    /// units and the model was fitted elsewhere, so the se is the two
+    /// groups' in quadrature. None when fewer than two groups exist.
+    pub top_minus_bottom: Option<Estimate>,
+}
+
+/// The highest group's ATE minus the lowest's.
+fn top_minus_bottom(groups: &[GroupAte]) -> Option<Estimate> {
+    match (groups.first(), groups.last()) {
+        (Some(low), Some(high)) if groups.len() >= 2 => Some(Estimate::new(
+            high.ate.estimate - low.ate.estimate,
+            (high.ate.se.powi(2) + low.ate.se.powi(2)).sqrt(),
+        )),
+        _ => None,
+    }
 }
 
 pub fn calibration(phi: &[f64], tau_hat: &[f64]) -> Calibration {
@@ -61,6 +78,7 @@ pub fn calibration_ranked(phi: &[f64], tau_hat: &[f64], ranked: &Ranked) -> Cali
             intercept: ate,
             state: "constant_predictions",
             groups: Vec::new(),
+            top_minus_bottom: None,
         };
     }
     let slope = centered.iter().zip(phi).map(|(c, p)| c * p).sum::<f64>() / sxx;
@@ -76,11 +94,13 @@ pub fn calibration_ranked(phi: &[f64], tau_hat: &[f64], ranked: &Ranked) -> Cali
     let se_slope = (hc1 * meat_b).sqrt() / sxx;
     let se_intercept = (hc1 * meat_a).sqrt() / nf;
 
+    let groups = quintile_groups(ranked);
     Calibration {
         slope: Some(Estimate::new(slope, se_slope)),
         intercept: Estimate::new(intercept, se_intercept),
         state: "ok",
-        groups: quintile_groups(ranked),
+        top_minus_bottom: top_minus_bottom(&groups),
+        groups,
     }
 }
 
@@ -128,6 +148,11 @@ mod tests {
         assert_eq!(c.groups.len(), 5);
         assert!(c.groups.iter().all(|g| g.units == 20));
         assert!((c.intercept.estimate - 2.0).abs() < 1e-12);
+        // Fifths of 0.0..9.9 step 0.1: group means 0.95 and 8.95 apart by 8.
+        let d = c.top_minus_bottom.expect("five groups");
+        assert!((d.estimate - 8.0).abs() < 1e-12, "{d:?}");
+        let (low, high) = (&c.groups[0].ate, &c.groups[4].ate);
+        assert!((d.se - (low.se.powi(2) + high.se.powi(2)).sqrt()).abs() < 1e-15);
     }
 
     #[test]

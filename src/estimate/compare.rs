@@ -1,15 +1,17 @@
 //! Ranking models on one estimator: pairwise differences, the best set,
-//! p_best and the leader.
+//! p_best and the leader, with the joint (max-t) critical values and the
+//! selection-adjusted interval of [`super::selection`].
 //!
 //! Everything here is built on differences between models' contributions,
 //! because for the corrected PEHE only differences are unbiased (see
 //! `estimators::corrected_pehe`).
 
-use rand::SeedableRng;
-use rand_chacha::ChaCha8Rng;
 use serde::Serialize;
 
-use super::stats::{holm_reject, p_greater, p_two_sided, standard_normal, Estimate};
+use super::selection::{
+    chance_lowest, correlated_draws, count_lowest, hybrid_interval, semidefinite_cholesky,
+};
+use super::stats::{holm_reject, p_greater, p_two_sided, sorted_quantile, Estimate};
 use super::sums::ScoreSums;
 
 /// A difference in mean error between two models (first minus second).
@@ -22,11 +24,22 @@ pub struct Difference {
     pub p_value: f64,
     pub ci_low: f64,
     pub ci_high: f64,
+    /// The interval at the same level that holds jointly for every
+    /// difference of its family (the pairs on a board): max-t.
+    pub joint_low: f64,
+    pub joint_high: f64,
 }
 
 impl Difference {
-    pub fn from_estimate(e: Estimate, level: f64) -> Self {
+    /// `e` with its pointwise interval at `level` and the joint one for the
+    /// critical value `joint` (the pointwise one when `joint` is 0).
+    pub fn from_estimate(e: Estimate, level: f64, joint: f64) -> Self {
         let (ci_low, ci_high) = e.interval(level);
+        let (joint_low, joint_high) = if joint > 0.0 {
+            (e.estimate - joint * e.se, e.estimate + joint * e.se)
+        } else {
+            (ci_low, ci_high)
+        };
         Self {
             estimate: e.estimate,
             se: e.se,
@@ -34,8 +47,29 @@ impl Difference {
             p_value: p_two_sided(e),
             ci_low,
             ci_high,
+            joint_low,
+            joint_high,
         }
     }
+}
+
+/// What shapes a ranking besides the aggregates.
+#[derive(Debug, Clone, Copy)]
+pub struct RankSettings {
+    /// Family-wise level of the best set.
+    pub alpha: f64,
+    /// Level of the intervals, pointwise and joint.
+    pub level: f64,
+    /// Normal draws behind the joint critical values and the chances.
+    pub draws: usize,
+    pub seed: u64,
+    /// Pairs are kept among this many top-ranked models, plus the leader
+    /// against every other model.
+    pub pairwise_top: usize,
+    /// Columns from this one on are the candidates whose errors share the
+    /// chances' pooled prior; those before it (the baselines) are not
+    /// pooled with them.
+    pub first_candidate: usize,
 }
 
 /// The outcome of ranking m models on one aggregate.
@@ -47,11 +81,31 @@ pub struct Ranking {
     pub leader: usize,
     /// Whether each model is in the best set.
     pub in_best_set: Vec<bool>,
-    /// Share of draws in which each model had the lowest error.
+    /// Share of draws from N(estimates, Cov) in which each model had the
+    /// lowest error (ties split). Centered on the estimates, it overstates
+    /// the leader when models tie; see `chance_lowest`.
     pub p_best: Vec<f64>,
+    /// Chance that each model has the lowest true error: the candidates'
+    /// from their pooled empirical-Bayes prior ([`chance_lowest`]), near
+    /// 1/m when they tie; see [`pooled_chances`].
+    pub chance_lowest: Vec<f64>,
+    /// Max-t critical value for the differences from the reference column
+    /// at `level`, jointly over every column.
+    pub joint_critical: f64,
+    /// The leader's difference from the reference, adjusted for its having
+    /// been picked as the minimum ([`hybrid_interval`]) at `level`.
+    pub leader_interval: (f64, f64),
+    /// The pairs kept, (a, b) with a ranked above b: every pair among the
+    /// top `pairwise_top`, then the leader against each model below them.
+    pub pairs: Vec<(usize, usize)>,
+    /// Max-t critical value jointly over `pairs` at `level`.
+    pub pair_critical: f64,
 }
 
-/// Ranks the models of `sums` and forms the best set at level `alpha`.
+/// Ranks the models of `sums` (which must keep every co-moment) and forms
+/// the best set at level `alpha`; intervals and chances are taken in the
+/// frame of differences from column `reference` (constant-effect), whose
+/// ordering is the same.
 ///
 /// Best set: the leader, plus every model whose excess mean error over the
 /// leader is not significant in a one-sided test at family-wise level alpha,
@@ -59,9 +113,12 @@ pub struct Ranking {
 /// confidence set of Hansen, Lunde & Nason 2011; the leader is chosen from
 /// the same data, so the set errs towards including models).
 ///
-/// p_best: share of `draws` draws from N(means, Cov(means)) in which the
-/// model has the lowest mean; ties split equally.
-pub fn rank(sums: &ScoreSums, alpha: f64, draws: usize, seed: u64) -> Ranking {
+/// One set of `draws` draws of the estimates' noise, Z ~ N(0, Cov), gives
+/// the max-t critical values (the quantiles of the largest standardized
+/// |Z_k| over the columns, and of |Z_a - Z_b| over the pairs) and
+/// `p_best`, the share of draws of estimates + Z in which each model is
+/// lowest.
+pub fn rank(sums: &ScoreSums, reference: usize, settings: &RankSettings) -> Ranking {
     let m = sums.models();
     let means = sums.means();
     let mut order: Vec<usize> = (0..m).collect();
@@ -77,83 +134,149 @@ pub fn rank(sums: &ScoreSums, alpha: f64, draws: usize, seed: u64) -> Ranking {
         .iter()
         .map(|&k| p_greater(sums.difference(k, leader)))
         .collect();
-    let rejected = holm_reject(&p, alpha);
+    let rejected = holm_reject(&p, settings.alpha);
     let mut in_best_set = vec![true; m];
     for (&k, &out) in others.iter().zip(&rejected) {
         in_best_set[k] = !out;
     }
 
+    let top = settings.pairwise_top.min(m);
+    let mut pairs = Vec::new();
+    for (i, &a) in order[..top].iter().enumerate() {
+        pairs.extend(order[i + 1..top].iter().map(|&b| (a, b)));
+    }
+    if top > 0 {
+        pairs.extend(order[top..].iter().map(|&b| (leader, b)));
+    }
+
+    // Differences from the reference: the same ordering, the reference a
+    // fixed competitor at zero.
+    let whole = sums.covariance_matrix();
+    let r = reference.min(m.saturating_sub(1));
+    let x: Vec<f64> = (0..m).map(|k| means[k] - means[r]).collect();
+    let mut cov = vec![0.0; m * m];
+    for k in 0..m {
+        for l in 0..m {
+            cov[k * m + l] =
+                whole[k * m + l] - whole[k * m + r] - whole[r * m + l] + whole[r * m + r];
+        }
+    }
+    let sd: Vec<f64> = (0..m).map(|k| cov[k * m + k].max(0.0).sqrt()).collect();
+    let floor = sd.iter().copied().fold(0.0, f64::max) * 1e-9;
+    let varying: Vec<usize> = (0..m).filter(|&k| sd[k] > floor).collect();
+    let pair_sd: Vec<f64> = pairs
+        .iter()
+        .map(|&(a, b)| {
+            (cov[a * m + a] + cov[b * m + b] - 2.0 * cov[a * m + b])
+                .max(0.0)
+                .sqrt()
+        })
+        .collect();
+    let pair_floor = pair_sd.iter().copied().fold(0.0, f64::max) * 1e-9;
+
+    let chol = semidefinite_cholesky(&cov, m);
+    let mut column_max = Vec::with_capacity(settings.draws);
+    let mut pair_max = Vec::with_capacity(settings.draws);
+    let mut wins = vec![0.0; m];
+    correlated_draws(&chol, m, settings.draws, settings.seed, |z, rows| {
+        for row in z.chunks_exact(m).take(rows) {
+            column_max.push(
+                varying
+                    .iter()
+                    .map(|&k| (row[k] / sd[k]).abs())
+                    .fold(0.0, f64::max),
+            );
+            pair_max.push(
+                pairs
+                    .iter()
+                    .zip(&pair_sd)
+                    .filter(|(_, &s)| s > pair_floor)
+                    .map(|(&(a, b), s)| ((row[a] - row[b]) / s).abs())
+                    .fold(0.0, f64::max),
+            );
+            count_lowest(&x, row, &mut wins);
+        }
+    });
+    column_max.sort_by(f64::total_cmp);
+    pair_max.sort_by(f64::total_cmp);
+    let draws = settings.draws.max(1) as f64;
+    let p_best: Vec<f64> = wins.iter().map(|w| w / draws).collect();
+    let joint_critical = sorted_quantile(&column_max, settings.level);
+    let pair_critical = sorted_quantile(&pair_max, settings.level);
+    // The projection step of the hybrid at beta = (1 - level) / 10.
+    let beta = (1.0 - settings.level) / 10.0;
+    let c_beta = sorted_quantile(&column_max, 1.0 - beta);
+    let leader_interval = if m == 0 {
+        (0.0, 0.0)
+    } else {
+        hybrid_interval(&x, &cov, m, leader, 1.0 - settings.level, beta, c_beta)
+    };
+    let chance_lowest = pooled_chances(&x, &cov, m, &p_best, settings);
     Ranking {
         rank,
         leader,
         in_best_set,
-        p_best: p_best(sums, draws, seed),
+        p_best,
+        chance_lowest,
+        joint_critical,
+        leader_interval,
+        pairs,
+        pair_critical,
     }
 }
 
-/// Lower-triangular L with L L' = a for a symmetric positive semidefinite
-/// m x m matrix; directions with (numerically) zero variance get a zero
-/// column instead of failing.
-fn semidefinite_cholesky(a: &[f64], m: usize) -> Vec<f64> {
-    let mut l = vec![0.0; m * m];
-    let scale = (0..m).map(|k| a[k * m + k].abs()).fold(0.0, f64::max);
-    let tol = scale * 1e-12;
-    for j in 0..m {
-        let mut d = a[j * m + j];
-        for k in 0..j {
-            d -= l[j * m + k] * l[j * m + k];
-        }
-        if d <= tol {
-            continue;
-        }
-        let ljj = d.sqrt();
-        l[j * m + j] = ljj;
-        for i in (j + 1)..m {
-            let mut s = a[i * m + j];
-            for k in 0..j {
-                s -= l[i * m + k] * l[j * m + k];
-            }
-            l[i * m + j] = s / ljj;
-        }
+/// The chances of [`Ranking::chance_lowest`]. The empirical-Bayes prior
+/// pools the candidates (columns `first_candidate..`), which a sweep makes
+/// alike; the baselines are of another kind (zero-effect is often far from
+/// every candidate) and would inflate the prior's spread. So a baseline's
+/// chance is its share of draws around the estimates (a flat prior, nothing
+/// pooled with it), and the candidates divide what remains by their pooled
+/// chances. An approximation: exact when no baseline is near the top.
+pub fn pooled_chances(
+    x: &[f64],
+    cov: &[f64],
+    m: usize,
+    p_best: &[f64],
+    settings: &RankSettings,
+) -> Vec<f64> {
+    let first = settings.first_candidate.min(m);
+    let c = m - first;
+    let mut chances = p_best.to_vec();
+    if c == 0 {
+        return chances;
     }
-    l
-}
-
-fn p_best(sums: &ScoreSums, draws: usize, seed: u64) -> Vec<f64> {
-    let m = sums.models();
-    if m == 0 || draws == 0 {
-        return vec![0.0; m];
+    let sub: Vec<f64> = (first..m)
+        .flat_map(|k| (first..m).map(move |l| (k, l)))
+        .map(|(k, l)| cov[k * m + l])
+        .collect();
+    let pooled = chance_lowest(
+        &x[first..],
+        &sub,
+        c,
+        settings.draws,
+        settings.seed.wrapping_add(1),
+    );
+    let rest = (1.0 - p_best[..first].iter().sum::<f64>()).max(0.0);
+    for (out, p) in chances[first..].iter_mut().zip(pooled) {
+        *out = rest * p;
     }
-    let mut cov = vec![0.0; m * m];
-    for k in 0..m {
-        for l in 0..m {
-            cov[k * m + l] = sums.mean_covariance(k, l);
-        }
-    }
-    let chol = semidefinite_cholesky(&cov, m);
-    let mut rng = ChaCha8Rng::seed_from_u64(seed);
-    let mut wins = vec![0.0; m];
-    let mut z = vec![0.0; m];
-    let mut x = vec![0.0; m];
-    for _ in 0..draws {
-        for v in z.iter_mut() {
-            *v = standard_normal(&mut rng);
-        }
-        for i in 0..m {
-            x[i] = sums.mean(i) + (0..=i).map(|k| chol[i * m + k] * z[k]).sum::<f64>();
-        }
-        let best = x.iter().copied().fold(f64::INFINITY, f64::min);
-        let tied: Vec<usize> = (0..m).filter(|&i| x[i] == best).collect();
-        for &i in &tied {
-            wins[i] += 1.0 / tied.len() as f64;
-        }
-    }
-    wins.iter().map(|w| w / draws as f64).collect()
+    chances
 }
 
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    fn settings(draws: usize, seed: u64) -> RankSettings {
+        RankSettings {
+            alpha: 0.05,
+            level: 0.95,
+            draws,
+            seed,
+            pairwise_top: 20,
+            first_candidate: 0,
+        }
+    }
 
     fn sums_from(columns: &[Vec<f64>]) -> ScoreSums {
         let mut s = ScoreSums::new(columns.len());
@@ -177,7 +300,7 @@ mod tests {
             .map(|(i, v)| v + 0.5 + 0.01 * (i % 3) as f64)
             .collect();
         let c: Vec<f64> = noise.iter().map(|v| v + 0.001).collect();
-        let r = rank(&sums_from(&[a, b, c]), 0.05, 2000, 1);
+        let r = rank(&sums_from(&[a, b, c]), 1, &settings(2000, 1));
         assert_eq!(r.leader, 0);
         assert_eq!(r.rank, vec![1, 3, 2]);
         assert!(r.in_best_set[0]);
@@ -205,7 +328,7 @@ mod tests {
             .enumerate()
             .map(|(i, v)| v - 0.05 * ((i % 2) as f64 - 0.5))
             .collect();
-        let r = rank(&sums_from(&[a, b]), 0.05, 4000, 3);
+        let r = rank(&sums_from(&[a, b]), 0, &settings(4000, 3));
         assert!(r.in_best_set.iter().all(|&x| x));
         // Means are equal, so p_best is close to one half for each.
         assert!((r.p_best[0] - 0.5).abs() < 0.05, "{:?}", r.p_best);

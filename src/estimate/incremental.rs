@@ -63,22 +63,11 @@ impl ConstantBasis {
     /// Maps aggregates over the columns [0, s, -s, registered...] to the
     /// scored columns [zero-effect, constant-effect at `ate`, registered...].
     pub fn resolve(&self, sums: &ScoreSums, ate: f64) -> ScoreSums {
-        let m = sums.models();
         let t = ate / self.scale;
-        let mut weights = Vec::with_capacity(m - 1);
-        let unit = |k: usize| {
-            let mut w = vec![0.0; m];
-            w[k] = 1.0;
-            w
-        };
-        weights.push(unit(0));
-        let mut constant = vec![0.0; m];
-        constant[0] = 1.0 - t * t;
-        constant[1] = t * (t + 1.0) / 2.0;
-        constant[2] = t * (t - 1.0) / 2.0;
-        weights.push(constant);
-        weights.extend((3..m).map(unit));
-        sums.linear_map(&weights)
+        sums.map_leading(&[
+            vec![1.0, 0.0, 0.0],
+            vec![1.0 - t * t, t * (t + 1.0) / 2.0, t * (t - 1.0) / 2.0],
+        ])
     }
 }
 
@@ -109,6 +98,7 @@ fn basis_sums(
             phi,
         },
         &columns,
+        3,
     )
 }
 

@@ -3,7 +3,8 @@
 //! Read in this order: [`data`] (the unit table and its checks),
 //! [`learner`] and [`crossfit`] (nuisance models), [`pseudo`] (the AIPW
 //! pseudo-outcome), [`estimators`] (per-unit contributions, one file each),
-//! [`sums`] and [`compare`] (mergeable aggregates, ranking, best set),
+//! [`sums`], [`compare`] and [`selection`] (mergeable aggregates, ranking,
+//! best set, inference that survives choosing the top model),
 //! [`policy`], [`targeting`], [`calibration`] and [`overlap`] (the other
 //! reports), and [`scoreboard`], which runs a whole pass, with
 //! [`incremental`], its twin for a window that grows; then [`sequential`]
@@ -21,6 +22,7 @@ pub mod overlap;
 pub mod policy;
 pub mod pseudo;
 pub mod scoreboard;
+pub mod selection;
 pub mod sequential;
 pub mod stats;
 pub mod sums;

@@ -6,7 +6,7 @@ use rayon::prelude::*;
 use serde::Serialize;
 
 use super::calibration::{calibration_ranked, Calibration};
-use super::compare::{rank, Difference};
+use super::compare::{rank, Difference, RankSettings};
 use super::crossfit::{fit_nuisance, Nuisance, NuisanceReport, NuisanceSettings};
 use super::data::{FeatureRows, ModelPredictions, UnitTable, CONSTANT_EFFECT, ZERO_EFFECT};
 use super::error::EstimateError;
@@ -33,7 +33,13 @@ pub struct Settings {
     /// jackknife, one O(n) pass per model; otherwise the number of
     /// nonparametric bootstrap replicates (see `targeting`).
     pub bootstrap_replicates: usize,
+    /// Normal draws behind p_best, the chances and the joint critical
+    /// values.
     pub p_best_draws: usize,
+    /// Pairwise differences are reported among this many top-ranked
+    /// models (and the leader against every other): a sweep of a thousand
+    /// models would otherwise carry half a million pairs.
+    pub pairwise_top: usize,
 }
 
 impl Default for Settings {
@@ -45,6 +51,7 @@ impl Default for Settings {
             overlap_eps: 0.05,
             bootstrap_replicates: 0,
             p_best_draws: 4000,
+            pairwise_top: 20,
         }
     }
 }
@@ -99,6 +106,24 @@ pub struct VsConstant {
     pub ci_high: f64,
     /// One-sided p-value for "this model has no lower error than constant-effect".
     pub p_value: f64,
+    /// The interval at the same level holding jointly for every model's
+    /// difference from constant-effect (max-t over the board's columns):
+    /// the one to read when scanning a sweep for models that beat it.
+    pub joint_low: f64,
+    pub joint_high: f64,
+}
+
+/// The leader's difference from constant-effect with an interval that
+/// accounts for its having been picked as the lowest of every column on
+/// the same data (hybrid inference on winners, Andrews, Kitagawa &
+/// McCloskey 2024; see `estimate::selection`). Among many models of equal
+/// error the leader's own `vs_constant` interval sits too low; this one
+/// does not.
+#[derive(Debug, Clone, Serialize)]
+pub struct SelectionAdjusted {
+    pub estimate: f64,
+    pub ci_low: f64,
+    pub ci_high: f64,
 }
 
 #[derive(Debug, Clone, Serialize)]
@@ -114,7 +139,12 @@ pub struct ModelScore {
     /// corrected PEHE of this model minus that of constant-effect (negative:
     /// lower error than treating everyone alike).
     pub vs_constant: VsConstant,
+    /// Share of draws around the estimates in which the model is lowest;
+    /// overstates the leader when models tie (see `chance_lowest`).
     pub p_best: f64,
+    /// Empirical-Bayes chance that the model has the lowest true error:
+    /// near 1/m when the models tie.
+    pub chance_lowest: f64,
     pub in_best_set: bool,
     pub policy_gain: PolicyGain,
     pub autoc: Estimate,
@@ -148,6 +178,10 @@ pub struct Scoreboard {
     pub n_control: usize,
     pub ate: AteSummary,
     pub leader: String,
+    /// The leader's difference from constant-effect, selection-adjusted.
+    pub leader_vs_constant: SelectionAdjusted,
+    /// Max-t critical value behind every model's `vs_constant.joint_*`.
+    pub joint_critical_value: f64,
     pub best_set: Vec<String>,
     /// True when no registered model beats constant-effect significantly.
     pub no_detectable_heterogeneity: bool,
@@ -159,6 +193,8 @@ pub struct Scoreboard {
     /// whose ranks are refreshed when it has grown by a set share, where
     /// it can be fewer (see [`RankMetrics`]).
     pub rank_metrics_units: usize,
+    /// Every pair among the `pairwise_top` top-ranked models, then the
+    /// leader against each model below them, by rank.
     pub pairwise: Vec<PairwiseDifference>,
     pub overlap: OverlapReport,
     pub nuisance: Option<NuisanceReport>,
@@ -295,11 +331,30 @@ impl Column<'_> {
 /// [`CHUNK`] in parallel.
 pub fn contribution_sums(units: &UnitColumns<'_>, effects: &[&[f64]]) -> Vec<ScoreSums> {
     let columns: Vec<Column<'_>> = effects.iter().map(|e| Column::Slice(e)).collect();
-    column_sums(units, &columns)
+    column_sums(units, &columns, columns.len())
 }
 
-/// [`contribution_sums`] over columns read a block at a time.
-pub fn column_sums(units: &UnitColumns<'_>, effects: &[Column<'_>]) -> Vec<ScoreSums> {
+/// The aggregates a pass starts from: the ranking estimator's keeps every
+/// co-moment (pairwise differences, the joint intervals); the others keep
+/// those with the first `lead` columns (the baselines), enough for their
+/// scores and their differences from the baselines, at n m rather than
+/// n m^2.
+fn empty_sums(m: usize, lead: usize) -> Vec<ScoreSums> {
+    (0..estimators::ALL.len())
+        .map(|e| {
+            if e == estimators::RANKED_BY {
+                ScoreSums::new(m)
+            } else {
+                ScoreSums::with_lead(m, lead)
+            }
+        })
+        .collect()
+}
+
+/// [`contribution_sums`] over columns read a block at a time, the
+/// estimators other than the ranking one keeping the co-moments with the
+/// first `lead` columns only (see [`ScoreSums::with_lead`]).
+pub fn column_sums(units: &UnitColumns<'_>, effects: &[Column<'_>], lead: usize) -> Vec<ScoreSums> {
     let n = units.len();
     let m = effects.len();
     let chunks: Vec<(usize, usize)> = (0..n)
@@ -308,9 +363,9 @@ pub fn column_sums(units: &UnitColumns<'_>, effects: &[Column<'_>]) -> Vec<Score
         .collect();
     let parts: Vec<Vec<ScoreSums>> = chunks
         .par_iter()
-        .map(|&(start, end)| chunk_sums(units, effects, start, end))
+        .map(|&(start, end)| chunk_sums(units, effects, start, end, lead))
         .collect();
-    let mut total: Vec<ScoreSums> = estimators::ALL.iter().map(|_| ScoreSums::new(m)).collect();
+    let mut total = empty_sums(m, lead);
     for part in &parts {
         for (t, p) in total.iter_mut().zip(part) {
             t.merge(p);
@@ -324,9 +379,10 @@ fn chunk_sums(
     effects: &[Column<'_>],
     start: usize,
     end: usize,
+    lead: usize,
 ) -> Vec<ScoreSums> {
     let m = effects.len();
-    let mut sums: Vec<ScoreSums> = estimators::ALL.iter().map(|_| ScoreSums::new(m)).collect();
+    let mut sums = empty_sums(m, lead);
     let mut views: Vec<UnitView> = Vec::with_capacity(BLOCK);
     let mut columns = vec![0.0; m * BLOCK];
     let mut predictions = vec![0.0; m * BLOCK];
@@ -488,7 +544,8 @@ pub fn score_keeping(
         mu1: &nuisance.mu1,
         phi: &phi,
     };
-    let sums = column_sums(&units, &columns);
+    // The baselines, zero-effect and constant-effect, lead.
+    let sums = column_sums(&units, &columns, 2);
     type Whole = (Vec<Vec<u32>>, (Vec<RankMetrics>, Vec<PolicySums>));
     let (mut orders, (rank, policy)): Whole = columns
         .par_iter()
@@ -557,10 +614,17 @@ pub fn assemble(parts: Parts<'_>, settings: &Settings) -> Scoreboard {
     let corrected = &sums[estimators::RANKED_BY];
     let ranking = rank(
         corrected,
-        settings.alpha,
-        settings.p_best_draws,
-        settings.nuisance.seed,
+        constant,
+        &RankSettings {
+            alpha: settings.alpha,
+            level: CI_LEVEL,
+            draws: settings.p_best_draws,
+            seed: settings.nuisance.seed,
+            pairwise_top: settings.pairwise_top,
+            first_candidate: 2,
+        },
     );
+    let joint = ranking.joint_critical;
 
     let registered: Vec<usize> = (2..m).collect();
     let p_beats: Vec<f64> = registered
@@ -591,8 +655,11 @@ pub fn assemble(parts: Parts<'_>, settings: &Settings) -> Scoreboard {
                     ci_low,
                     ci_high,
                     p_value: p_greater(Estimate::new(-d.estimate, d.se)),
+                    joint_low: d.estimate - joint * d.se,
+                    joint_high: d.estimate + joint * d.se,
                 },
                 p_best: ranking.p_best[k],
+                chance_lowest: ranking.chance_lowest[k],
                 in_best_set: ranking.in_best_set[k],
                 policy_gain,
                 autoc: r.targeting.autoc,
@@ -603,16 +670,19 @@ pub fn assemble(parts: Parts<'_>, settings: &Settings) -> Scoreboard {
         })
         .collect();
 
-    let mut pairwise = Vec::new();
-    for a in 0..m {
-        for b in (a + 1)..m {
-            pairwise.push(PairwiseDifference {
-                first: all[a].0.clone(),
-                second: all[b].0.clone(),
-                difference: Difference::from_estimate(corrected.difference(a, b), CI_LEVEL),
-            });
-        }
-    }
+    let pairwise = ranking
+        .pairs
+        .iter()
+        .map(|&(a, b)| PairwiseDifference {
+            first: all[a].0.clone(),
+            second: all[b].0.clone(),
+            difference: Difference::from_estimate(
+                corrected.difference(a, b),
+                CI_LEVEL,
+                ranking.pair_critical,
+            ),
+        })
+        .collect();
 
     let mut ordered = model_scores;
     ordered.sort_by_key(|s| s.rank);
@@ -633,6 +703,12 @@ pub fn assemble(parts: Parts<'_>, settings: &Settings) -> Scoreboard {
             ci_high,
         },
         leader: all[ranking.leader].0.clone(),
+        leader_vs_constant: SelectionAdjusted {
+            estimate: corrected.mean(ranking.leader) - corrected.mean(constant),
+            ci_low: ranking.leader_interval.0,
+            ci_high: ranking.leader_interval.1,
+        },
+        joint_critical_value: joint,
         best_set,
         no_detectable_heterogeneity,
         alpha: settings.alpha,

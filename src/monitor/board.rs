@@ -2,7 +2,7 @@
 //! publishes, stores with its snapshot and reads back after a restart.
 
 use crate::domain::{
-    AlertView, Board, BoardModel, Difference, Drift, IncompleteModel, NuisanceComponent,
+    Adjusted, AlertView, Board, BoardModel, Difference, Drift, IncompleteModel, NuisanceComponent,
     OverlapSummary, Pair, Score, Window,
 };
 use crate::estimate::scoreboard::{ModelScore, Scoreboard};
@@ -27,14 +27,17 @@ fn model(m: &ModelScore) -> BoardModel {
             ci_low: m.vs_constant.ci_low,
             ci_high: m.vs_constant.ci_high,
             p_value: m.vs_constant.p_value,
+            joint: Some((m.vs_constant.joint_low, m.vs_constant.joint_high)),
         },
         p_best: m.p_best,
+        chance_lowest: Some(m.chance_lowest),
         in_best_set: m.in_best_set,
         policy_gain: Estimate::new(m.policy_gain.estimate, m.policy_gain.se),
         treated_share: m.policy_gain.treated_share,
         autoc: m.autoc,
         qini: m.qini,
         blp_slope: m.blp_slope,
+        top_minus_bottom: m.calibration.top_minus_bottom,
     }
 }
 
@@ -126,6 +129,12 @@ pub fn scoreboard(parts: BoardParts<'_>, b: &Scoreboard) -> Board {
         units: b.n_units as u64,
         ate: Some(Estimate::new(b.ate.estimate, b.ate.se)),
         leader: b.leader.clone(),
+        leader_vs_constant: Some(Adjusted {
+            estimate: b.leader_vs_constant.estimate,
+            ci_low: b.leader_vs_constant.ci_low,
+            ci_high: b.leader_vs_constant.ci_high,
+        }),
+        joint_critical_value: Some(b.joint_critical_value),
         best_set: b.best_set.clone(),
         no_detectable_heterogeneity: b.no_detectable_heterogeneity,
         models: b.models.iter().map(model).collect(),
@@ -148,6 +157,7 @@ pub fn scoreboard(parts: BoardParts<'_>, b: &Scoreboard) -> Board {
                     ci_low: p.difference.ci_low,
                     ci_high: p.difference.ci_high,
                     p_value: p.difference.p_value,
+                    joint: Some((p.difference.joint_low, p.difference.joint_high)),
                 },
             })
             .collect(),
@@ -169,6 +179,8 @@ pub fn degenerate(parts: BoardParts<'_>, units: u64, state: String) -> Board {
         units,
         ate: None,
         leader: String::new(),
+        leader_vs_constant: None,
+        joint_critical_value: None,
         best_set: Vec::new(),
         no_detectable_heterogeneity: false,
         models: Vec::new(),
