@@ -223,7 +223,8 @@ pub struct Board {
     pub incomplete: Vec<IncompleteModel>,
     pub overlap: Option<OverlapSummary>,
     pub nuisance: Vec<NuisanceComponent>,
-    /// Every pair of ranked models once.
+    /// The pairs the board keeps: every pair among the top-ranked models
+    /// (`pairwise_top`), then the leader against each of the others.
     pub pairwise: Vec<Pair>,
     /// Why the window has no scores; empty when it has.
     pub degenerate: String,
