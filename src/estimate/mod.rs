@@ -5,9 +5,10 @@
 //! pseudo-outcome), [`estimators`] (per-unit contributions, one file each),
 //! [`sums`] and [`compare`] (mergeable aggregates, ranking, best set),
 //! [`policy`], [`targeting`], [`calibration`] and [`overlap`] (the other
-//! reports), and [`scoreboard`], which runs a whole pass, with
-//! [`incremental`], its twin for a window that grows; then [`sequential`]
-//! and [`watch`], the statistics behind the alerts.
+//! reports), [`level`] (a lower bound on each model's RMSE that needs no
+//! nuisance model to be right), and [`scoreboard`], which runs a whole
+//! pass, with [`incremental`], its twin for a window that grows; then
+//! [`sequential`] and [`watch`], the statistics behind the alerts.
 
 pub mod calibration;
 pub mod compare;
@@ -17,6 +18,7 @@ pub mod error;
 pub mod estimators;
 pub mod incremental;
 pub mod learner;
+pub mod level;
 pub mod overlap;
 pub mod policy;
 pub mod pseudo;
