@@ -58,7 +58,7 @@
 //! expectation is ||g*||^2: no bias at all. Otherwise the part of m outside
 //! G enters only through its sample projection, whose size is
 //! O(sqrt(p / n_f)), and multiplies a mean-zero cross term: a bias of
-//! order p / n_f times ||g*|| ||m - g*||, second order. A plain in-sample
+//! order p / n_f times ||m|| ||m - g*||, second order. A plain in-sample
 //! R^2, (1/n_f) sum_i r_i g_hat(x_i) with g_hat fitted on every unit,
 //! would instead add the diagonal (1/n_f) sum_i h_ii r_i^2 (h the
 //! leverages), about p Var(r) / n_f: first order in the noise, and large
@@ -347,7 +347,7 @@ impl FoldGram {
 /// A fold's whitening of its sieve: the Cholesky factor L (row-major,
 /// lower triangular) of the Gram matrix restricted to the `kept` terms, so
 /// that e_i = L^{-1} b_i[kept] has sum_i e_i e_i' = I over the fold, and
-/// the whitened least-squares coefficients alpha = L^{-1} sum b_i[kept] r_i.
+/// the whitened least-squares coefficients alpha = L^{-1} (sum b_i r_i)[kept].
 /// Then the full fit is g(x_i) = e_i . alpha and the leverage h_ii = |e_i|^2.
 struct Whitening {
     kept: Vec<usize>,
@@ -387,33 +387,33 @@ impl Whitening {
         for (a, row) in rows.iter().enumerate() {
             factor[a * m..a * m + row.len()].copy_from_slice(row);
         }
-        let cross: Vec<f64> = kept.iter().map(|&j| fold.cross[j]).collect();
         let mut whitening = Self {
             kept,
             factor,
             alpha: Vec::new(),
         };
-        whitening.alpha = whitening.solve(&cross);
+        let mut alpha = Vec::with_capacity(m);
+        whitening.whiten(&fold.cross, &mut alpha);
+        whitening.alpha = alpha;
         whitening
     }
 
-    /// L^{-1} v by forward substitution, v over the kept terms.
-    fn solve(&self, v: &[f64]) -> Vec<f64> {
+    /// `out` = L^{-1} v[kept] by forward substitution, v over every term.
+    fn whiten(&self, v: &[f64], out: &mut Vec<f64>) {
         let m = self.kept.len();
-        let mut out = vec![0.0; m];
-        for a in 0..m {
+        out.clear();
+        for (a, &j) in self.kept.iter().enumerate() {
             let row = &self.factor[a * m..a * m + a + 1];
-            let dot: f64 = row[..a].iter().zip(&out[..a]).map(|(x, y)| x * y).sum();
-            out[a] = (v[a] - dot) / row[a];
+            let dot: f64 = row[..a].iter().zip(out.iter()).map(|(x, y)| x * y).sum();
+            out.push((v[j] - dot) / row[a]);
         }
-        out
     }
 
     /// The leave-one-out fit g_{-i}(x_i) of a unit with basis vector `b`
     /// and residual pseudo-outcome `r`: (g_i - h_ii r_i) / (1 - h_ii).
-    fn left_out_fit(&self, b: &[f64], r: f64) -> f64 {
-        let picked: Vec<f64> = self.kept.iter().map(|&j| b[j]).collect();
-        let e = self.solve(&picked);
+    /// `e` is scratch space for the whitened basis vector.
+    fn left_out_fit(&self, b: &[f64], r: f64, e: &mut Vec<f64>) -> f64 {
+        self.whiten(b, e);
         let fit: f64 = e.iter().zip(&self.alpha).map(|(x, y)| x * y).sum();
         let leverage: f64 = e.iter().map(|v| v * v).sum();
         if leverage >= LEVERAGE_LIMIT {
@@ -471,12 +471,12 @@ fn project_plugin_error(
         .par_chunks(CHUNK)
         .enumerate()
         .map(|(c, chunk)| {
-            let mut b = vec![0.0; p];
+            let (mut b, mut e) = (vec![0.0; p], Vec::with_capacity(p));
             (c * CHUNK..)
                 .zip(chunk)
                 .map(|(i, &f)| {
                     basis(i, rows, nuisance, &scales, &mut b);
-                    whitenings[f].left_out_fit(&b, residual(i))
+                    whitenings[f].left_out_fit(&b, residual(i), &mut e)
                 })
                 .collect()
         })
