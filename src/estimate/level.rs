@@ -108,8 +108,8 @@ pub const BOUND_LEVEL: f64 = 0.95;
 const COLLINEAR_SHARE: f64 = 1e-10;
 
 /// A unit whose leverage is this close to 1 is the only one to fix some
-/// direction of the sieve, so no fit without it predicts it; its term is
-/// set to 0, which can only lower the estimate.
+/// direction of the sieve, so no fit without it predicts it; its fit is
+/// set to 0, so the unit adds nothing to the projection or its variance.
 const LEVERAGE_LIMIT: f64 = 1.0 - 1e-9;
 
 /// Chunk of units per parallel task in the passes over units.
