@@ -309,6 +309,24 @@ fn five_thousand_units_ten_models_json_carries_every_key() {
         .map(|m| m["p_best"].as_f64().unwrap_or(0.0))
         .sum();
     assert!((p_best - 1.0).abs() < 1e-9);
+    // Every model, baselines included, has its lower bounds, and the RMSE
+    // bound is the root of the PEHE floor less 1.645 standard errors.
+    let levels = &v["levels"];
+    for k in ["estimate", "se"] {
+        assert!(
+            levels["plugin_error_projection"][k].is_f64(),
+            "projection.{k}"
+        );
+    }
+    let bounds = levels["models"].as_array().expect("levels.models");
+    assert_eq!(bounds.len(), 12);
+    for l in bounds {
+        let floor = l["pehe_floor"]["estimate"].as_f64().expect("floor");
+        let se = l["pehe_floor"]["se"].as_f64().expect("se");
+        let bound = l["rmse_lower_bound"].as_f64().expect("bound");
+        let expected = (floor - 1.644854 * se).max(0.0).sqrt();
+        assert!((bound - expected).abs() < 1e-5, "{}: {bound}", l["name"]);
+    }
     // The pipeline is deterministic for a seed.
     let (_, again, _) = score(
         &d.0.join("units.csv"),
@@ -321,6 +339,7 @@ fn five_thousand_units_ten_models_json_carries_every_key() {
     assert_eq!(code, 0);
     assert!(table.contains("Error against constant-effect"));
     assert!(table.contains("lower estimate"));
+    assert!(table.contains("RMSE at least"));
 }
 
 /// The quick-start demo finishes by itself and its summary shows both a

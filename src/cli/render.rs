@@ -5,6 +5,7 @@ use std::fmt::Write;
 
 use crate::estimate::crossfit::ComponentReport;
 use crate::estimate::estimators;
+use crate::estimate::level::LevelReport;
 use crate::estimate::overlap::{OverlapReport, CRUMP_LOW, SMD_FLAG};
 use crate::estimate::scoreboard::{ModelScore, Scoreboard};
 use crate::estimate::OutcomeKind;
@@ -182,6 +183,10 @@ pub fn table(b: &Scoreboard, kind: OutcomeKind, folds: usize) -> String {
         "  policy gain: per unit over treating nobody, at cost {}",
         b.cost
     );
+    if let Some(levels) = &b.levels {
+        let _ = writeln!(s);
+        rmse_at_least(&mut s, b, levels, name_w);
+    }
     let _ = writeln!(s);
     overlap(&mut s, &b.overlap);
     if let Some(n) = &b.nuisance {
@@ -221,6 +226,47 @@ pub fn table(b: &Scoreboard, kind: OutcomeKind, folds: usize) -> String {
     let _ = writeln!(s);
     let _ = writeln!(s, "Note: {}", b.caveat);
     s
+}
+
+/// Each registered model's lower bound on its RMSE, in rank order.
+fn rmse_at_least(s: &mut String, b: &Scoreboard, levels: &LevelReport, name_w: usize) {
+    let _ = writeln!(
+        s,
+        "RMSE at least ({:.0}% one-sided lower bound)",
+        100.0 * levels.level
+    );
+    let _ = writeln!(
+        s,
+        "  {:<name_w$}  {:>13}  {:>22}",
+        "model", "RMSE at least", "PEHE floor (se)"
+    );
+    for m in b.models.iter().filter(|m| !m.baseline) {
+        if let Some(l) = levels.models.iter().find(|l| l.name == m.name) {
+            let _ = writeln!(
+                s,
+                "  {:<name_w$}  {:>13}  {:>22}",
+                m.name,
+                num(l.rmse_lower_bound),
+                format!("{} ({})", num(l.pehe_floor.estimate), num(l.pehe_floor.se))
+            );
+        }
+    }
+    let p = &levels.plugin_error_projection;
+    let _ = writeln!(
+        s,
+        "  PEHE floor: corrected PEHE plus the part of the plug-in effect model's own error \
+         that a sieve (constant, tau_tilde, the first {} features) sees, {} (se {})",
+        levels.sieve_features,
+        num(p.estimate),
+        num(p.se)
+    );
+    let _ = writeln!(
+        s,
+        "  Each bound is a one-sided {:.0}% lower bound on the model's root mean squared error \
+         under any nuisance quality, up to the product-of-errors term; it is not an estimate \
+         of the error, and a bound of 0 says nothing.",
+        100.0 * levels.level
+    );
 }
 
 fn component(s: &mut String, label: &str, c: &ComponentReport) {

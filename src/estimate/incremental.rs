@@ -88,18 +88,7 @@ fn basis_sums(
         Column::Uniform(down),
     ];
     columns.extend_from_slice(effects);
-    column_sums(
-        &UnitColumns {
-            outcome: table.outcome(),
-            treatment: table.treatment(),
-            propensity: &values.propensity,
-            mu0: &values.mu0,
-            mu1: &values.mu1,
-            phi,
-        },
-        &columns,
-        3,
-    )
+    column_sums(&UnitColumns::new(table, values, phi), &columns, 3)
 }
 
 /// A growing window's scoreboard as mergeable parts, over the registered

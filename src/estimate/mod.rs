@@ -6,9 +6,10 @@
 //! [`sums`], [`compare`] and [`selection`] (mergeable aggregates, ranking,
 //! best set, inference that survives choosing the top model),
 //! [`policy`], [`targeting`], [`calibration`] and [`overlap`] (the other
-//! reports), and [`scoreboard`], which runs a whole pass, with
-//! [`incremental`], its twin for a window that grows; then [`sequential`]
-//! and [`watch`], the statistics behind the alerts.
+//! reports), [`level`] (a lower bound on each model's RMSE that needs no
+//! nuisance model to be right), and [`scoreboard`], which runs a whole
+//! pass, with [`incremental`], its twin for a window that grows; then
+//! [`sequential`] and [`watch`], the statistics behind the alerts.
 
 pub mod calibration;
 pub mod compare;
@@ -18,6 +19,7 @@ pub mod error;
 pub mod estimators;
 pub mod incremental;
 pub mod learner;
+pub mod level;
 pub mod overlap;
 pub mod policy;
 pub mod pseudo;

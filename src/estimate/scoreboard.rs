@@ -7,10 +7,11 @@ use serde::Serialize;
 
 use super::calibration::{calibration_ranked, Calibration};
 use super::compare::{rank, Difference, RankSettings};
-use super::crossfit::{fit_nuisance, Nuisance, NuisanceReport, NuisanceSettings};
+use super::crossfit::{assign_folds, fit_nuisance, Nuisance, NuisanceReport, NuisanceSettings};
 use super::data::{FeatureRows, ModelPredictions, UnitTable, CONSTANT_EFFECT, ZERO_EFFECT};
 use super::error::EstimateError;
 use super::estimators::{self, Scores, UnitView};
+use super::level::{level_report, LevelReport};
 use super::overlap::{overlap_report, OverlapReport};
 use super::policy::{PolicyGain, PolicySums};
 use super::pseudo::{aipw_ate, aipw_pseudo_outcome};
@@ -199,6 +200,13 @@ pub struct Scoreboard {
     pub overlap: OverlapReport,
     pub nuisance: Option<NuisanceReport>,
     pub caveat: &'static str,
+    /// One-sided 95% lower bounds on each model's PEHE and RMSE that hold
+    /// whatever the nuisance models' quality (up to the product-of-errors
+    /// term), where the corrected PEHE alone is only a lower estimate (see
+    /// [`level`](super::level)). Filled by [`evaluate`], which knows the
+    /// cross-fit's folds; None from the other paths.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub levels: Option<LevelReport>,
 }
 
 /// Fits the nuisance components by cross-fitting, then scores.
@@ -214,14 +222,48 @@ pub fn evaluate(
     progress.stage("fitting nuisance models");
     let (nuisance, report) = fit_nuisance(table, &settings.nuisance)?;
     progress.stage("scoring models");
-    Ok(score(
+    let mut board = score(
         table,
         feature_names,
         &nuisance,
         Some(report),
         models,
         settings,
-    ))
+    );
+    progress.stage("bounding each model's error");
+    board.levels = Some(levels(
+        table,
+        &nuisance,
+        models,
+        board.ate.estimate,
+        settings,
+    ));
+    Ok(board)
+}
+
+/// The [`LevelReport`] of the baselines (constant-effect predicting `ate`)
+/// and `models`, on the cross-fit's own folds: [`assign_folds`] with the
+/// nuisance settings draws them again exactly (a capped fit keeps them).
+fn levels(
+    table: &UnitTable,
+    nuisance: &Nuisance,
+    models: &[ModelPredictions],
+    ate: f64,
+    settings: &Settings,
+) -> LevelReport {
+    let folds = settings.nuisance.folds;
+    let fold_of_unit = assign_folds(table.treatment(), folds, settings.nuisance.seed);
+    let phi = aipw_pseudo_outcome(table.outcome(), table.treatment(), nuisance);
+    let mut columns = vec![
+        (ZERO_EFFECT, Column::Uniform(0.0)),
+        (CONSTANT_EFFECT, Column::Uniform(ate)),
+    ];
+    columns.extend(
+        models
+            .iter()
+            .map(|m| (m.name.as_str(), Column::Slice(&m.effects))),
+    );
+    level_report(table, nuisance, &phi, &fold_of_unit, folds, &columns)
 }
 
 fn check_predictions(table: &UnitTable, models: &[ModelPredictions]) -> Result<(), EstimateError> {
@@ -270,6 +312,21 @@ pub struct UnitColumns<'a> {
     pub phi: &'a [f64],
 }
 
+impl<'a> UnitColumns<'a> {
+    /// The columns of `table`'s units with their nuisance values and
+    /// pseudo-outcomes `phi`.
+    pub fn new(table: &'a UnitTable, nuisance: &'a Nuisance, phi: &'a [f64]) -> Self {
+        Self {
+            outcome: table.outcome(),
+            treatment: table.treatment(),
+            propensity: &nuisance.propensity,
+            mu0: &nuisance.mu0,
+            mu1: &nuisance.mu1,
+            phi,
+        }
+    }
+}
+
 impl UnitColumns<'_> {
     pub fn len(&self) -> usize {
         self.phi.len()
@@ -279,7 +336,7 @@ impl UnitColumns<'_> {
         self.phi.is_empty()
     }
 
-    fn view(&self, i: usize) -> UnitView {
+    pub(crate) fn view(&self, i: usize) -> UnitView {
         UnitView {
             outcome: self.outcome[i],
             treatment: self.treatment[i],
@@ -536,14 +593,7 @@ pub fn score_keeping(
     let ate = aipw_ate(&phi);
     let mut columns = vec![Column::Uniform(0.0), Column::Uniform(ate.estimate)];
     columns.extend(models.iter().map(|m| m.effects));
-    let units = UnitColumns {
-        outcome: y,
-        treatment: w,
-        propensity: &nuisance.propensity,
-        mu0: &nuisance.mu0,
-        mu1: &nuisance.mu1,
-        phi: &phi,
-    };
+    let units = UnitColumns::new(table, nuisance, &phi);
     // The baselines, zero-effect and constant-effect, lead.
     let sums = column_sums(&units, &columns, 2);
     type Whole = (Vec<Vec<u32>>, (Vec<RankMetrics>, Vec<PolicySums>));
@@ -719,5 +769,6 @@ pub fn assemble(parts: Parts<'_>, settings: &Settings) -> Scoreboard {
         overlap,
         nuisance: nuisance_report,
         caveat: CORRECTED_PEHE_CAVEAT,
+        levels: None,
     }
 }
