@@ -1,8 +1,10 @@
 //! The person-readable scoreboard: differences to constant-effect first,
-//! then the best set, overlap, nuisance fits and the caveat.
+//! then the best set, the per-model scores, the blend, overlap, nuisance
+//! fits and the caveat.
 
 use std::fmt::Write;
 
+use crate::estimate::blend::{BlendReport, SHOWN_WEIGHT};
 use crate::estimate::crossfit::ComponentReport;
 use crate::estimate::estimators;
 use crate::estimate::overlap::{OverlapReport, CRUMP_LOW, SMD_FLAG};
@@ -166,6 +168,10 @@ pub fn table(b: &Scoreboard, kind: OutcomeKind, folds: usize) -> String {
         b.cost
     );
     let _ = writeln!(s);
+    if let Some(report) = &b.blend {
+        blend(&mut s, report);
+        let _ = writeln!(s);
+    }
     overlap(&mut s, &b.overlap);
     if let Some(n) = &b.nuisance {
         let _ = writeln!(s);
@@ -228,6 +234,74 @@ fn component(s: &mut String, label: &str, c: &ComponentReport) {
         num(c.oof_loss),
         others.join(", ")
     );
+}
+
+fn blend(s: &mut String, b: &BlendReport) {
+    let _ = writeln!(
+        s,
+        "Blend: convex weights on the registered models minimising corrected PEHE, each fold's \
+         units scored with weights fitted on the other folds"
+    );
+    let mut shown: Vec<_> = b
+        .weights
+        .iter()
+        .filter(|w| w.weight > SHOWN_WEIGHT)
+        .collect();
+    shown.sort_by(|x, y| y.weight.total_cmp(&x.weight));
+    let name_w = shown.iter().map(|w| w.model.len()).max().unwrap_or(5);
+    for w in &shown {
+        let _ = writeln!(
+            s,
+            "  {:<name_w$}  weight {:.3}  (fitted without one fold: {:.3} to {:.3})",
+            w.model, w.weight, w.fold_min, w.fold_max
+        );
+    }
+    let rest = b.weights.len() - shown.len();
+    if rest > 0 {
+        let _ = writeln!(
+            s,
+            "  ({rest} other models at weight {SHOWN_WEIGHT} or below)"
+        );
+    }
+    for (label, d) in [
+        (format!("best single model ({})", b.best_model), &b.vs_best),
+        ("constant-effect".to_string(), &b.vs_constant),
+    ] {
+        let _ = writeln!(
+            s,
+            "  blend minus {label}: {}  95% CI [{}, {}]",
+            num(d.estimate),
+            num(d.ci_low),
+            num(d.ci_high)
+        );
+    }
+    let meaning = if b.vs_best.ci_high < 0.0 {
+        format!(
+            "The blend has lower error than {} alone, measured on units its weights never saw.",
+            b.best_model
+        )
+    } else if b.vs_best.ci_low > 0.0 {
+        format!(
+            "The blend has higher error than {} alone: deploy that model.",
+            b.best_model
+        )
+    } else {
+        format!(
+            "The blend is not distinguishable from {} alone: blending adds nothing measurable here.",
+            b.best_model
+        )
+    };
+    let _ = writeln!(
+        s,
+        "  {meaning} {} was picked on the same data, which favours it.",
+        b.best_model
+    );
+    if !b.converged {
+        let _ = writeln!(
+            s,
+            "  (a weight fit stopped at its iteration cap: the weights may not be the exact minimum)"
+        );
+    }
 }
 
 fn overlap(s: &mut String, o: &OverlapReport) {

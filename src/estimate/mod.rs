@@ -6,9 +6,11 @@
 //! [`sums`] and [`compare`] (mergeable aggregates, ranking, best set),
 //! [`policy`], [`targeting`], [`calibration`] and [`overlap`] (the other
 //! reports), and [`scoreboard`], which runs a whole pass, with
-//! [`incremental`], its twin for a window that grows; then [`sequential`]
+//! [`incremental`], its twin for a window that grows, and [`blend`], the
+//! cross-fitted convex blend of the models the offline pass adds; then [`sequential`]
 //! and [`watch`], the statistics behind the alerts.
 
+pub mod blend;
 pub mod calibration;
 pub mod compare;
 pub mod crossfit;

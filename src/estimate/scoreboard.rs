@@ -5,6 +5,7 @@
 use rayon::prelude::*;
 use serde::Serialize;
 
+use super::blend::{blend_report, BlendReport};
 use super::calibration::{calibration_ranked, Calibration};
 use super::compare::{rank, Difference};
 use super::crossfit::{fit_nuisance, Nuisance, NuisanceReport, NuisanceSettings};
@@ -163,9 +164,15 @@ pub struct Scoreboard {
     pub overlap: OverlapReport,
     pub nuisance: Option<NuisanceReport>,
     pub caveat: &'static str,
+    /// The cross-fitted convex blend of the registered models and its
+    /// held-out error (see [`blend`](super::blend)): filled by [`evaluate`]
+    /// when at least two models are registered, None elsewhere.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub blend: Option<BlendReport>,
 }
 
-/// Fits the nuisance components by cross-fitting, then scores.
+/// Fits the nuisance components by cross-fitting, then scores, then blends
+/// the registered models.
 pub fn evaluate(
     table: &UnitTable,
     feature_names: &[String],
@@ -178,14 +185,17 @@ pub fn evaluate(
     progress.stage("fitting nuisance models");
     let (nuisance, report) = fit_nuisance(table, &settings.nuisance)?;
     progress.stage("scoring models");
-    Ok(score(
+    let mut board = score(
         table,
         feature_names,
         &nuisance,
         Some(report),
         models,
         settings,
-    ))
+    );
+    progress.stage("blending models");
+    board.blend = blend_report(table, &nuisance, models, settings, &board);
+    Ok(board)
 }
 
 fn check_predictions(table: &UnitTable, models: &[ModelPredictions]) -> Result<(), EstimateError> {
@@ -643,5 +653,6 @@ pub fn assemble(parts: Parts<'_>, settings: &Settings) -> Scoreboard {
         overlap,
         nuisance: nuisance_report,
         caveat: CORRECTED_PEHE_CAVEAT,
+        blend: None,
     }
 }
