@@ -239,8 +239,8 @@ fn component(s: &mut String, label: &str, c: &ComponentReport) {
 fn blend(s: &mut String, b: &BlendReport) {
     let _ = writeln!(
         s,
-        "Blend: convex weights on the registered models minimising corrected PEHE, each fold's \
-         units scored with weights fitted on the other folds"
+        "Blend: convex weights on the registered models that minimise corrected PEHE\n  \
+         (each fold's units scored with weights fitted on the other folds)"
     );
     let mut shown: Vec<_> = b
         .weights
@@ -252,7 +252,7 @@ fn blend(s: &mut String, b: &BlendReport) {
     for w in &shown {
         let _ = writeln!(
             s,
-            "  {:<name_w$}  weight {:.3}  (fitted without one fold: {:.3} to {:.3})",
+            "  {:<name_w$}  weight {:.3}  (without one fold: {:.3} to {:.3})",
             w.model, w.weight, w.fold_min, w.fold_max
         );
     }
@@ -275,26 +275,21 @@ fn blend(s: &mut String, b: &BlendReport) {
             num(d.ci_high)
         );
     }
+    let best = &b.best_model;
     let meaning = if b.vs_best.ci_high < 0.0 {
-        format!(
-            "The blend has lower error than {} alone, measured on units its weights never saw.",
-            b.best_model
-        )
+        format!("The blend has lower error than {best} alone")
     } else if b.vs_best.ci_low > 0.0 {
-        format!(
-            "The blend has higher error than {} alone: deploy that model.",
-            b.best_model
-        )
+        format!("The blend has higher error than {best} alone (deploy that model)")
     } else {
         format!(
-            "The blend is not distinguishable from {} alone: blending adds nothing measurable here.",
-            b.best_model
+            "The blend is not distinguishable from {best} alone (blending adds nothing \
+             measurable here)"
         )
     };
     let _ = writeln!(
         s,
-        "  {meaning} {} was picked on the same data, which favours it.",
-        b.best_model
+        "  {meaning}, measured on units its weights never saw; {best} was picked as best on the \
+         same data, which favours it."
     );
     if !b.converged {
         let _ = writeln!(

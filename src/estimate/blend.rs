@@ -57,9 +57,9 @@ use serde::Serialize;
 use super::compare::Difference;
 use super::crossfit::{assign_folds, Nuisance};
 use super::data::{ModelPredictions, UnitTable};
-use super::estimators::{UnitView, ALL, RANKED_BY};
+use super::estimators::{ALL, RANKED_BY};
 use super::pseudo::aipw_pseudo_outcome;
-use super::scoreboard::{Scoreboard, Settings, CI_LEVEL};
+use super::scoreboard::{Scoreboard, Settings, UnitColumns, CI_LEVEL};
 use super::stats::mean_se;
 
 /// The ridge added to A's diagonal, as a share of A's mean diagonal. A is
@@ -591,19 +591,13 @@ pub fn blend_report(
         Vec::with_capacity(n),
         Vec::with_capacity(n),
     );
-    for i in 0..n {
-        let unit = UnitView {
-            outcome: y[i],
-            treatment: w[i],
-            propensity: nuisance.propensity[i],
-            mu0: nuisance.mu0[i],
-            mu1: nuisance.mu1[i],
-            phi: phi[i],
-        };
-        let c = estimator.contribution(&unit, blend.held_out[i]);
+    let units = UnitColumns::of(table, nuisance, &phi);
+    for (i, (&held_out, &single)) in blend.held_out.iter().zip(effects[best]).enumerate() {
+        let unit = units.view(i);
+        let c = estimator.contribution(&unit, held_out);
         own.push(c);
         vs_constant.push(c - estimator.contribution(&unit, constant));
-        vs_best.push(c - estimator.contribution(&unit, effects[best][i]));
+        vs_best.push(c - estimator.contribution(&unit, single));
     }
     let weights = registered
         .iter()

@@ -244,7 +244,20 @@ pub struct UnitColumns<'a> {
     pub phi: &'a [f64],
 }
 
-impl UnitColumns<'_> {
+impl<'a> UnitColumns<'a> {
+    /// The columns of `table`'s units with their nuisance values and
+    /// pseudo-outcomes.
+    pub fn of(table: &'a UnitTable, nuisance: &'a Nuisance, phi: &'a [f64]) -> Self {
+        Self {
+            outcome: table.outcome(),
+            treatment: table.treatment(),
+            propensity: &nuisance.propensity,
+            mu0: &nuisance.mu0,
+            mu1: &nuisance.mu1,
+            phi,
+        }
+    }
+
     pub fn len(&self) -> usize {
         self.phi.len()
     }
@@ -253,7 +266,7 @@ impl UnitColumns<'_> {
         self.phi.is_empty()
     }
 
-    fn view(&self, i: usize) -> UnitView {
+    pub fn view(&self, i: usize) -> UnitView {
         UnitView {
             outcome: self.outcome[i],
             treatment: self.treatment[i],
@@ -490,14 +503,7 @@ pub fn score_keeping(
     let ate = aipw_ate(&phi);
     let mut columns = vec![Column::Uniform(0.0), Column::Uniform(ate.estimate)];
     columns.extend(models.iter().map(|m| m.effects));
-    let units = UnitColumns {
-        outcome: y,
-        treatment: w,
-        propensity: &nuisance.propensity,
-        mu0: &nuisance.mu0,
-        mu1: &nuisance.mu1,
-        phi: &phi,
-    };
+    let units = UnitColumns::of(table, nuisance, &phi);
     let sums = column_sums(&units, &columns);
     type Whole = (Vec<Vec<u32>>, (Vec<RankMetrics>, Vec<PolicySums>));
     let (mut orders, (rank, policy)): Whole = columns
