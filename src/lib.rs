@@ -8,7 +8,8 @@
 //!   nuisance models, the AIPW pseudo-outcome, one file per error estimator
 //!   (corrected PEHE, plug-in PEHE, DR loss, R-loss, IPW loss), mergeable
 //!   aggregates, ranking with a best set, policy gain, targeting curves,
-//!   calibration and overlap, and the stream watch behind the alerts
+//!   calibration and overlap, cross-fitted convex blends of the models, and
+//!   the stream watch behind the alerts
 //!   (confidence sequences and change detectors that stay valid however
 //!   often they are looked at). Knows nothing of files, networks or async.
 //! - [`domain`]: the service's own records (dataset settings, the rows
