@@ -9,7 +9,8 @@
 //!   (corrected PEHE, plug-in PEHE, DR loss, R-loss, IPW loss), mergeable
 //!   aggregates, ranking with a best set, policy gain, targeting curves,
 //!   calibration and overlap, a lower bound on each model's RMSE that
-//!   needs no nuisance model to be right, and the stream watch behind the alerts
+//!   needs no nuisance model to be right, cross-fitted convex blends of the
+//!   models, and the stream watch behind the alerts
 //!   (confidence sequences and change detectors that stay valid however
 //!   often they are looked at). Knows nothing of files, networks or async.
 //! - [`domain`]: the service's own records (dataset settings, the rows

@@ -1,8 +1,10 @@
 //! The person-readable scoreboard: differences to constant-effect first,
-//! then the best set, overlap, nuisance fits and the caveat.
+//! then the best set, the per-model scores, the blend, overlap, nuisance
+//! fits and the caveat.
 
 use std::fmt::Write;
 
+use crate::estimate::blend::{BlendReport, SHOWN_WEIGHT};
 use crate::estimate::crossfit::ComponentReport;
 use crate::estimate::estimators;
 use crate::estimate::level::LevelReport;
@@ -188,6 +190,10 @@ pub fn table(b: &Scoreboard, kind: OutcomeKind, folds: usize) -> String {
         rmse_at_least(&mut s, b, levels, name_w);
     }
     let _ = writeln!(s);
+    if let Some(report) = &b.blend {
+        blend(&mut s, report);
+        let _ = writeln!(s);
+    }
     overlap(&mut s, &b.overlap);
     if let Some(n) = &b.nuisance {
         let _ = writeln!(s);
@@ -291,6 +297,69 @@ fn component(s: &mut String, label: &str, c: &ComponentReport) {
         num(c.oof_loss),
         others.join(", ")
     );
+}
+
+fn blend(s: &mut String, b: &BlendReport) {
+    let _ = writeln!(
+        s,
+        "Blend: convex weights on the registered models that minimise corrected PEHE\n  \
+         (each fold's units scored with weights fitted on the other folds)"
+    );
+    let mut shown: Vec<_> = b
+        .weights
+        .iter()
+        .filter(|w| w.weight > SHOWN_WEIGHT)
+        .collect();
+    shown.sort_by(|x, y| y.weight.total_cmp(&x.weight));
+    let name_w = shown.iter().map(|w| w.model.len()).max().unwrap_or(5);
+    for w in &shown {
+        let _ = writeln!(
+            s,
+            "  {:<name_w$}  weight {:.3}  (without one fold: {:.3} to {:.3})",
+            w.model, w.weight, w.fold_min, w.fold_max
+        );
+    }
+    let rest = b.weights.len() - shown.len();
+    if rest > 0 {
+        let _ = writeln!(
+            s,
+            "  ({rest} other models at weight {SHOWN_WEIGHT} or below)"
+        );
+    }
+    for (label, d) in [
+        (format!("best single model ({})", b.best_model), &b.vs_best),
+        ("constant-effect".to_string(), &b.vs_constant),
+    ] {
+        let _ = writeln!(
+            s,
+            "  blend minus {label}: {}  95% CI [{}, {}]",
+            num(d.estimate),
+            num(d.ci_low),
+            num(d.ci_high)
+        );
+    }
+    let best = &b.best_model;
+    let meaning = if b.vs_best.ci_high < 0.0 {
+        format!("The blend has lower error than {best} alone")
+    } else if b.vs_best.ci_low > 0.0 {
+        format!("The blend has higher error than {best} alone (deploy that model)")
+    } else {
+        format!(
+            "The blend is not distinguishable from {best} alone (blending adds nothing \
+             measurable here)"
+        )
+    };
+    let _ = writeln!(
+        s,
+        "  {meaning}, measured on units its weights never saw; {best} was picked as best on the \
+         same data, which favours it."
+    );
+    if !b.converged {
+        let _ = writeln!(
+            s,
+            "  (a weight fit stopped at its iteration cap: the weights may not be the exact minimum)"
+        );
+    }
 }
 
 fn overlap(s: &mut String, o: &OverlapReport) {

@@ -31,15 +31,10 @@ pub struct Difference {
 }
 
 impl Difference {
-    /// `e` with its pointwise interval at `level` and the joint one for the
-    /// critical value `joint` (the pointwise one when `joint` is 0).
-    pub fn from_estimate(e: Estimate, level: f64, joint: f64) -> Self {
+    /// `e` with its interval at `level`; alone, its joint interval is the
+    /// same (see [`Difference::with_joint`]).
+    pub fn from_estimate(e: Estimate, level: f64) -> Self {
         let (ci_low, ci_high) = e.interval(level);
-        let (joint_low, joint_high) = if joint > 0.0 {
-            (e.estimate - joint * e.se, e.estimate + joint * e.se)
-        } else {
-            (ci_low, ci_high)
-        };
         Self {
             estimate: e.estimate,
             se: e.se,
@@ -47,8 +42,18 @@ impl Difference {
             p_value: p_two_sided(e),
             ci_low,
             ci_high,
-            joint_low,
-            joint_high,
+            joint_low: ci_low,
+            joint_high: ci_high,
+        }
+    }
+
+    /// The joint interval estimate +- `critical` se of a difference that
+    /// is one of a family (a max-t critical value).
+    pub fn with_joint(self, critical: f64) -> Self {
+        Self {
+            joint_low: self.estimate - critical * self.se,
+            joint_high: self.estimate + critical * self.se,
+            ..self
         }
     }
 }

@@ -7,10 +7,12 @@
 //! best set, inference that survives choosing the top model),
 //! [`policy`], [`targeting`], [`calibration`] and [`overlap`] (the other
 //! reports), [`level`] (a lower bound on each model's RMSE that needs no
-//! nuisance model to be right), and [`scoreboard`], which runs a whole
+//! nuisance model to be right), [`blend`] (the cross-fitted convex blend of
+//! the models the offline pass adds), and [`scoreboard`], which runs a whole
 //! pass, with [`incremental`], its twin for a window that grows; then
 //! [`sequential`] and [`watch`], the statistics behind the alerts.
 
+pub mod blend;
 pub mod calibration;
 pub mod compare;
 pub mod crossfit;

@@ -5,6 +5,7 @@
 use rayon::prelude::*;
 use serde::Serialize;
 
+use super::blend::{blend_report, BlendReport};
 use super::calibration::{calibration_ranked, Calibration};
 use super::compare::{rank, Difference, RankSettings};
 use super::crossfit::{assign_folds, fit_nuisance, Nuisance, NuisanceReport, NuisanceSettings};
@@ -207,9 +208,15 @@ pub struct Scoreboard {
     /// cross-fit's folds; None from the other paths.
     #[serde(skip_serializing_if = "Option::is_none")]
     pub levels: Option<LevelReport>,
+    /// The cross-fitted convex blend of the registered models and its
+    /// held-out error (see [`blend`](super::blend)): filled by [`evaluate`]
+    /// when at least two models are registered, None elsewhere.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub blend: Option<BlendReport>,
 }
 
-/// Fits the nuisance components by cross-fitting, then scores.
+/// Fits the nuisance components by cross-fitting, then scores, then blends
+/// the registered models.
 pub fn evaluate(
     table: &UnitTable,
     feature_names: &[String],
@@ -230,6 +237,8 @@ pub fn evaluate(
         models,
         settings,
     );
+    progress.stage("blending models");
+    board.blend = blend_report(table, &nuisance, models, settings, &board);
     progress.stage("bounding each model's error");
     board.levels = Some(levels(
         table,
@@ -726,11 +735,8 @@ pub fn assemble(parts: Parts<'_>, settings: &Settings) -> Scoreboard {
         .map(|&(a, b)| PairwiseDifference {
             first: all[a].0.clone(),
             second: all[b].0.clone(),
-            difference: Difference::from_estimate(
-                corrected.difference(a, b),
-                CI_LEVEL,
-                ranking.pair_critical,
-            ),
+            difference: Difference::from_estimate(corrected.difference(a, b), CI_LEVEL)
+                .with_joint(ranking.pair_critical),
         })
         .collect();
 
@@ -770,5 +776,6 @@ pub fn assemble(parts: Parts<'_>, settings: &Settings) -> Scoreboard {
         nuisance: nuisance_report,
         caveat: CORRECTED_PEHE_CAVEAT,
         levels: None,
+        blend: None,
     }
 }
