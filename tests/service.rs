@@ -139,9 +139,7 @@ async fn lifecycle_matches_the_offline_score_and_survives_a_restart() {
     // the cross-fit's folds, which a growing window does not keep): every
     // other number must agree, and those two must be there.
     for offline_only in ["blend", "levels"] {
-        let removed = offline
-            .as_object_mut()
-            .and_then(|o| o.remove(offline_only));
+        let removed = offline.as_object_mut().and_then(|o| o.remove(offline_only));
         assert!(removed.is_some(), "plumbline score lacks {offline_only}");
         assert!(online.get(offline_only).is_none());
     }

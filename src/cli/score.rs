@@ -82,7 +82,7 @@ pub fn run(args: &ScoreArgs) -> ExitCode {
             Ok(p) => p?,
             Err(panic) => std::panic::resume_unwind(panic),
         };
-        let models = align(&units, &args.units, &preds, &args.predictions)?;
+        let models = align(&units, &args.units, preds, &args.predictions)?;
         Ok((units, models))
     });
     let (units, models) = match loaded {
