@@ -1409,6 +1409,44 @@ async fn every_estimator_reaches_the_board_metrics_history_and_table() {
             e.label()
         );
     }
+    assert!(header.contains("chance"), "{header:?}");
+
+    // The selection-aware figures reach the wire: every model's chance of
+    // the lowest error (they sum to one), the joint bounds around the
+    // pointwise interval, and the leader's adjusted difference.
+    let out = std::process::Command::new(env!("CARGO_BIN_EXE_plumbline"))
+        .args(["scoreboard", "--server", &addr, "--dataset", name])
+        .args(["--format", "json"])
+        .output()
+        .expect("run plumbline scoreboard --format json");
+    let v: serde_json::Value = serde_json::from_slice(&out.stdout).expect("json");
+    let board = &v["scoreboard"];
+    let models = board["models"].as_array().expect("models");
+    let chances: Vec<f64> = models
+        .iter()
+        .map(|m| m["chance_lowest"].as_f64().expect("chance_lowest"))
+        .collect();
+    assert!(
+        (chances.iter().sum::<f64>() - 1.0).abs() < 1e-9,
+        "{chances:?}"
+    );
+    for m in models {
+        let d = &m["vs_constant"];
+        let (low, high) = (d["ci_low"].as_f64(), d["ci_high"].as_f64());
+        let (joint_low, joint_high) = (d["joint_low"].as_f64(), d["joint_high"].as_f64());
+        if m["baseline"].as_bool() != Some(true) {
+            assert!(joint_low <= low && joint_high >= high, "{d}");
+        }
+    }
+    let critical = board["joint_critical_value"]
+        .as_f64()
+        .expect("joint_critical_value");
+    assert!(critical > 1.9, "{critical}");
+    let adjusted = &board["leader_vs_constant"];
+    assert!(
+        adjusted["ci_low"].as_f64() <= adjusted["ci_high"].as_f64(),
+        "{adjusted}"
+    );
     srv.stop().await.expect("stop");
 }
 

@@ -412,7 +412,7 @@ pub fn scoreboard(c: &Connection, d: &DatasetArg, w: &WindowArg) -> ExitCode {
             .unwrap_or_default();
         let mut header = format!(
             "{:>4}  {:<24} {:>11} {:>24} {:>7}",
-            "rank", "model", "vs constant", "95% CI", "p_best"
+            "rank", "model", "vs constant", "95% CI", "chance"
         );
         for (label, w) in &columns {
             header.push_str(&format!("  {label:>w$}"));
@@ -421,12 +421,12 @@ pub fn scoreboard(c: &Connection, d: &DatasetArg, w: &WindowArg) -> ExitCode {
         for m in &b.models {
             let v = m.vs_constant.unwrap_or_default();
             let mut line = format!(
-                "{:>4}  {:<24} {:>11.4} {:>24} {:>7.3}",
+                "{:>4}  {:<24} {:>11.4} {:>24} {:>7}",
                 m.rank,
                 m.name,
                 v.estimate,
                 format!("[{:.4}, {:.4}]", v.ci_low, v.ci_high),
-                m.p_best,
+                super::render::chance(m.chance_lowest),
             );
             for (i, (s, (_, w))) in m.scores.iter().zip(&columns).enumerate() {
                 let cell = if i == 0 {

@@ -241,7 +241,7 @@ fn print_board(b: &pb::Scoreboard) {
     );
     println!(
         "    {:<16} {:>11}  {:>20}  {:>6}  best",
-        "model", "vs constant", "95% interval", "p_best"
+        "model", "vs constant", "95% interval", "chance"
     );
     for m in &b.models {
         let v = m.vs_constant.unwrap_or_default();
@@ -253,8 +253,13 @@ fn print_board(b: &pb::Scoreboard) {
             ""
         };
         println!(
-            "    {:<16} {:>+11.3}  [{:>+8.3}, {:>+8.3}]  {:>6.3}  {}",
-            m.name, v.estimate, v.ci_low, v.ci_high, m.p_best, marker
+            "    {:<16} {:>+11.3}  [{:>+8.3}, {:>+8.3}]  {:>6}  {}",
+            m.name,
+            v.estimate,
+            v.ci_low,
+            v.ci_high,
+            super::render::chance(m.chance_lowest),
+            marker
         );
     }
     if let Some(o) = &b.overlap {

@@ -37,6 +37,12 @@ fn verdict(m: &ModelScore) -> &'static str {
     }
 }
 
+/// A model's chance of the lowest error, or "-" on a board from a server
+/// that predates it.
+pub fn chance(c: Option<f64>) -> String {
+    c.map_or_else(|| "-".to_string(), |c| format!("{c:.3}"))
+}
+
 fn pct(v: f64) -> String {
     format!("{:.1}%", 100.0 * v)
 }
