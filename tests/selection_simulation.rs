@@ -25,6 +25,7 @@ use ndarray::Array2;
 use plumbline::estimate::crossfit::NuisanceSettings;
 use plumbline::estimate::learner::Linear;
 use plumbline::estimate::scoreboard::{evaluate, Settings, Silent};
+use plumbline::estimate::stats::standard_normal;
 use plumbline::estimate::{ModelPredictions, OutcomeKind, UnitTable, CONSTANT_EFFECT, ZERO_EFFECT};
 use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;
@@ -44,12 +45,6 @@ struct Rep {
     leader_registered: bool,
 }
 
-fn normal(rng: &mut ChaCha8Rng) -> f64 {
-    let u1: f64 = rng.gen_range(f64::EPSILON..1.0);
-    let u2: f64 = rng.gen();
-    (-2.0 * u1.ln()).sqrt() * (std::f64::consts::TAU * u2).cos()
-}
-
 fn one_rep(seed: u64) -> Rep {
     let mut rng = ChaCha8Rng::seed_from_u64(seed);
     let mut x = Array2::zeros((UNITS, 4));
@@ -62,7 +57,7 @@ fn one_rep(seed: u64) -> Rep {
         cell[i] = (x[[i, 1]] * 4.0) as usize * 4 + (x[[i, 2]] * 4.0) as usize;
         tau[i] = 1.0 + 2.0 * x[[i, 0]];
         w[i] = f64::from(u8::from(rng.gen::<f64>() < 0.5));
-        y[i] = x[[i, 1]] + x[[i, 2]] + w[i] * tau[i] + normal(&mut rng);
+        y[i] = x[[i, 1]] + x[[i, 2]] + w[i] * tau[i] + standard_normal(&mut rng);
     }
     let models: Vec<ModelPredictions> = (0..CANDIDATES)
         .map(|k| {
