@@ -224,7 +224,7 @@ fi
 # family with no series is left out of /metrics entirely, `# HELP` and
 # `# TYPE` lines included (a fresh server serves only `# EOF`). So every name
 # is checked after the example's recompute (which creates the per-window
-# series, leader_changes_total at 0 included) and after the provoked failure
+# series, front_runner_changes_total at 0 included) and after the provoked failure
 # above (which creates recompute_failures_total); none is exempt. A counter
 # X_total has `# TYPE X counter`; a histogram X has X_bucket, X_count and
 # X_sum samples under `# TYPE X histogram`.

@@ -1,6 +1,6 @@
-//! Leader-change alerts through the real service: false alarms when two
+//! Front-runner-change alerts through the real service: false alarms when two
 //! models have exactly equal true error, and detection when the reported
-//! leader's error grows halfway through.
+//! front-runner's error grows halfway through.
 //!
 //! Each stream is its own dataset on a real server (ephemeral loopback
 //! ports, temporary SQLite directory): a continuous outcome with four
@@ -24,16 +24,16 @@
 //!   0.35^2 E[(0.5 + |x1|)^2] = 0.1225 (1.25 + sqrt(2 / pi)) = 0.251;
 //! - model "cedar": the same with 0.7 instead of 0.35 (true PEHE 1.003).
 //!
-//! Null scenario: nothing changes; any `leader_changed` event is false.
-//! Change scenario: from cohort 13 on, the model reported as leader after
+//! Null scenario: nothing changes; any `front_runner_changed` event is false.
+//! Change scenario: from cohort 13 on, the model reported as front-runner after
 //! cohort 12 gets extra independent noise N(0, 0.2 Var(tau)), i.e. its true
 //! PEHE grows by 0.30 (to 0.551) while the other equal model stays at
-//! 0.251. The reported leader after cohort 12 is the one the scoreboard's
-//! alert view names (`Scoreboard.alerts.leader`), read right after the
-//! recompute of cohort 12. The alerts appoint their first leader without an
+//! 0.251. The reported front-runner after cohort 12 is the one the scoreboard's
+//! alert view names (`Scoreboard.alerts.front_runner`), read right after the
+//! recompute of cohort 12. The alerts appoint their first front-runner without an
 //! event, from the first watched cohort, so it may differ from the recent
-//! board's point-estimate leader; each change stream's line also prints
-//! the recent board's leader after cohorts 1 and 12.
+//! board's point-estimate front-runner; each change stream's line also prints
+//! the recent board's front-runner after cohorts 1 and 12.
 //!
 //! Events are read with `EventFeed.ListEvents` (dataset filter, paged by
 //! `after_id`); an event's recompute is its `snapshot_id`, matched to the
@@ -56,10 +56,10 @@ use tokio::sync::Semaphore;
 // ------------------------------------------------------------ pass criteria
 
 /// Null scenario: at most this many of the streams may raise a (false)
-/// `leader_changed` event.
+/// `front_runner_changed` event.
 const NULL_MAX_STREAMS_WITH_FALSE_CHANGE: usize = 1;
 /// Change scenario: at least this many streams must raise a
-/// `leader_changed` naming a model other than the degraded one after the
+/// `front_runner_changed` naming a model other than the degraded one after the
 /// change point.
 const CHANGE_MIN_DETECTED: usize = 16;
 /// Change scenario: median delay in recomputes (cohort of the first
@@ -131,7 +131,7 @@ impl Scenario {
     }
 }
 
-/// One `leader_changed` event, placed at the cohort whose recompute raised it.
+/// One `front_runner_changed` event, placed at the cohort whose recompute raised it.
 #[derive(Debug, Clone)]
 struct Change {
     cohort: usize,
@@ -145,12 +145,12 @@ struct StreamResult {
     changes: Vec<Change>,
     /// Change scenario: the model degraded from cohort 13 on.
     degraded: Option<String>,
-    /// Change scenario: where the reported leader came from.
-    leader_source: &'static str,
-    /// Change scenario: the recent scoreboard's leader after cohorts 1 and
-    /// 12 (a diagnostic: without events, the rule's reported leader may be
+    /// Change scenario: where the reported front-runner came from.
+    front_runner_source: &'static str,
+    /// Change scenario: the recent scoreboard's front-runner after cohorts 1 and
+    /// 12 (a diagnostic: without events, the rule's reported front-runner may be
     /// either).
-    recent_leaders: Option<(String, String)>,
+    recent_front_runners: Option<(String, String)>,
 }
 
 impl StreamResult {
@@ -161,7 +161,7 @@ impl StreamResult {
             .count()
     }
 
-    /// Delay in recomputes of the first post-change event naming a leader
+    /// Delay in recomputes of the first post-change event naming a front-runner
     /// other than the degraded model.
     fn detection_delay(&self) -> Option<usize> {
         let degraded = self.degraded.as_deref()?;
@@ -227,12 +227,12 @@ fn draw_unit(rng: &mut ChaCha8Rng) -> UnitDraw {
     }
 }
 
-/// The `leader_changed` events, each at the cohort whose recompute raised it
+/// The `front_runner_changed` events, each at the cohort whose recompute raised it
 /// (`snapshots` maps a recompute's snapshot id to its cohort).
-fn leader_changes(events: &[pb::Event], snapshots: &BTreeMap<u64, usize>) -> Vec<Change> {
+fn front_runner_changes(events: &[pb::Event], snapshots: &BTreeMap<u64, usize>) -> Vec<Change> {
     events
         .iter()
-        .filter(|e| e.kind == "leader_changed")
+        .filter(|e| e.kind == "front_runner_changed")
         .map(|e| {
             // A snapshot no Recompute call returned (none is expected: the
             // scheduler's thresholds are far away) is placed at the next
@@ -242,13 +242,13 @@ fn leader_changes(events: &[pb::Event], snapshots: &BTreeMap<u64, usize>) -> Vec
                 .copied()
                 .or_else(|| snapshots.range(e.snapshot_id..).next().map(|(_, k)| *k))
                 .unwrap_or(COHORTS);
-            let details: serde_json::Value =
-                serde_json::from_str(&e.details_json).expect("leader_changed details are JSON");
+            let details: serde_json::Value = serde_json::from_str(&e.details_json)
+                .expect("front_runner_changed details are JSON");
             let name = |field: &str| {
                 details[field]
                     .as_str()
                     .unwrap_or_else(|| {
-                        panic!("leader_changed details lack a string `{field}`: {details}")
+                        panic!("front_runner_changed details lack a string `{field}`: {details}")
                     })
                     .to_string()
             };
@@ -278,9 +278,9 @@ async fn run_stream(addr: std::net::SocketAddr, scenario: Scenario, stream: usiz
     let mut rng = ChaCha8Rng::seed_from_u64(seed);
     let mut snapshots: BTreeMap<u64, usize> = BTreeMap::new();
     let mut degraded: Option<usize> = None;
-    let mut leader_source = "";
-    let mut first_recent_leader = String::new();
-    let mut recent_leaders = None;
+    let mut front_runner_source = "";
+    let mut first_recent_front_runner = String::new();
+    let mut recent_front_runners = None;
     for k in 1..=COHORTS {
         let draws: Vec<UnitDraw> = (0..PER_COHORT).map(|_| draw_unit(&mut rng)).collect();
         let key = |i: usize| format!("c{k}-{i}");
@@ -321,32 +321,39 @@ async fn run_stream(addr: std::net::SocketAddr, scenario: Scenario, stream: usiz
         let r = recompute(&mut c, &name, false).await;
         snapshots.insert(r.snapshot_id, k);
         if scenario == Scenario::Change && k == 1 {
-            first_recent_leader = board(&mut c, &name, pb::window::Kind::Recent).await.leader;
+            first_recent_front_runner = board(&mut c, &name, pb::window::Kind::Recent)
+                .await
+                .front_runner;
         }
 
         if scenario == Scenario::Change && k == LAST_CLEAN_COHORT {
             let recent = board(&mut c, &name, pb::window::Kind::Recent).await;
-            recent_leaders = Some((first_recent_leader.clone(), recent.leader.clone()));
-            leader_source = "the scoreboard's alert view";
-            let leader = recent
+            recent_front_runners = Some((
+                first_recent_front_runner.clone(),
+                recent.front_runner.clone(),
+            ));
+            front_runner_source = "the scoreboard's alert view";
+            let front_runner = recent
                 .alerts
-                .map(|a| a.leader)
+                .map(|a| a.front_runner)
                 .filter(|l| !l.is_empty())
-                .unwrap_or_else(|| panic!("{name}: the alerts report no leader"));
+                .unwrap_or_else(|| panic!("{name}: the alerts report no front-runner"));
             let m = MODELS
                 .iter()
-                .position(|&n| n == leader)
-                .unwrap_or_else(|| panic!("{name}: reported leader {leader:?} is not a model"));
+                .position(|&n| n == front_runner)
+                .unwrap_or_else(|| {
+                    panic!("{name}: reported front-runner {front_runner:?} is not a model")
+                });
             degraded = Some(m);
         }
     }
-    let changes = leader_changes(&all_events(&mut c, &name).await, &snapshots);
+    let changes = front_runner_changes(&all_events(&mut c, &name).await, &snapshots);
     StreamResult {
         stream,
         changes,
         degraded: degraded.map(|m| MODELS[m].to_string()),
-        leader_source,
-        recent_leaders,
+        front_runner_source,
+        recent_front_runners,
     }
 }
 
@@ -384,15 +391,15 @@ fn print_design(tag: &str) {
 }
 
 /// Two models of exactly equal true error (and a clearly worse third): any
-/// `leader_changed` event is a false alarm. Source: the generating process
+/// `front_runner_changed` event is a false alarm. Source: the generating process
 /// in this file's header.
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
-async fn equal_models_raise_no_false_leader_change() {
+async fn equal_models_raise_no_false_front_runner_change() {
     print_design("null");
     let (results, seconds) = run_scenario(Scenario::Null).await;
     for r in &results {
         println!(
-            "null stream {:02}: {} leader_changed {}",
+            "null stream {:02}: {} front_runner_changed {}",
             r.stream,
             r.changes.len(),
             r.describe()
@@ -401,26 +408,26 @@ async fn equal_models_raise_no_false_leader_change() {
     let with_false = results.iter().filter(|r| !r.changes.is_empty()).count();
     let total: usize = results.iter().map(|r| r.changes.len()).sum();
     println!(
-        "null: {with_false}/{STREAMS} streams with a false leader_changed \
+        "null: {with_false}/{STREAMS} streams with a false front_runner_changed \
          (mean {:.2} per stream, {total} in all); criterion at most {} streams; {seconds:.1} s",
         total as f64 / STREAMS as f64,
         NULL_MAX_STREAMS_WITH_FALSE_CHANGE
     );
     assert!(
         with_false <= NULL_MAX_STREAMS_WITH_FALSE_CHANGE,
-        "null: {with_false}/{STREAMS} streams raised a false leader_changed \
+        "null: {with_false}/{STREAMS} streams raised a false front_runner_changed \
          (at most {NULL_MAX_STREAMS_WITH_FALSE_CHANGE} allowed)"
     );
 }
 
-/// The reported leader's true PEHE grows by 0.2 Var(tau) from cohort 13 on:
-/// a `leader_changed` naming another model should follow within a few
+/// The reported front-runner's true PEHE grows by 0.2 Var(tau) from cohort 13 on:
+/// a `front_runner_changed` naming another model should follow within a few
 /// recomputes. Source: the generating process in this file's header.
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
-async fn degraded_leader_is_replaced_promptly() {
+async fn degraded_front_runner_is_replaced_promptly() {
     print_design("change");
     println!(
-        "change: from cohort {} the reported leader gets extra noise N(0, {:.2}), \
+        "change: from cohort {} the reported front-runner gets extra noise N(0, {:.2}), \
          true PEHE +{:.3}",
         LAST_CLEAN_COHORT + 1,
         DEGRADE_SHARE_OF_VAR_TAU * VAR_TAU,
@@ -430,13 +437,13 @@ async fn degraded_leader_is_replaced_promptly() {
     let mut delays: Vec<f64> = Vec::new();
     for r in &results {
         let delay = r.detection_delay();
-        let (c1, c12) = r.recent_leaders.clone().unwrap_or_default();
+        let (c1, c12) = r.recent_front_runners.clone().unwrap_or_default();
         println!(
-            "change stream {:02}: degraded {} (from {}; recent leader c1 {c1}, c12 {c12}), \
-             delay {}, leader_changed {}",
+            "change stream {:02}: degraded {} (from {}; recent front-runner c1 {c1}, c12 {c12}), \
+             delay {}, front_runner_changed {}",
             r.stream,
             r.degraded.as_deref().unwrap_or("?"),
-            r.leader_source,
+            r.front_runner_source,
             delay.map_or("never".to_string(), |d| d.to_string()),
             r.describe()
         );
@@ -448,18 +455,18 @@ async fn degraded_leader_is_replaced_promptly() {
         .iter()
         .filter(|r| r.changes_before_change_point() > 0)
         .count();
-    // Streams whose recent board named another leader after cohort 12
+    // Streams whose recent board named another front-runner after cohort 12
     // than the alerts: the board ranks by point estimate, the alerts only
     // move on evidence.
     let differ = results
         .iter()
-        .filter(|r| r.recent_leaders.as_ref().is_some_and(|(a, b)| a != b))
+        .filter(|r| r.recent_front_runners.as_ref().is_some_and(|(a, b)| a != b))
         .count();
     println!(
         "change: detected {detected}/{STREAMS}, median delay {} recomputes \
          (undetected count as never); criteria at least {CHANGE_MIN_DETECTED} detected, \
          median at most {CHANGE_MAX_MEDIAN_DELAY}; {early}/{STREAMS} streams had a false \
-         leader_changed before the change; the recent board's leader moved between \
+         front_runner_changed before the change; the recent board's front_runner moved between \
          cohorts 1 and 12 in {differ}/{STREAMS}; {seconds:.1} s",
         if median.is_finite() {
             format!("{median}")

@@ -97,8 +97,8 @@ fn replicate(seed: u64, functions: &[usize], sizes: &[f64]) -> Scoreboard {
             outcome_learners: linear,
             ..NuisanceSettings::default()
         },
-        // p_best is not checked here.
-        p_best_draws: 100,
+        // draw_share is not checked here.
+        draw_share_draws: 100,
         ..Settings::default()
     };
     let names: Vec<String> = (1..=3).map(|j| format!("x{j}")).collect();

@@ -254,7 +254,14 @@ fn five_thousand_units_ten_models_json_carries_every_key() {
     assert_eq!(code, 0, "{stderr}");
     let v: serde_json::Value = serde_json::from_str(&stdout).expect("json");
     for key in [
-        "n_units", "ate", "leader", "best_set", "models", "overlap", "nuisance", "pairwise",
+        "n_units",
+        "ate",
+        "front_runner",
+        "best_set",
+        "models",
+        "overlap",
+        "nuisance",
+        "pairwise",
     ] {
         assert!(v.get(key).is_some(), "missing {key}");
     }
@@ -275,7 +282,7 @@ fn five_thousand_units_ten_models_json_carries_every_key() {
             "plugin_pehe",
             "dr_loss",
             "r_loss",
-            "p_best",
+            "draw_share",
             "in_best_set",
             "policy_gain",
             "autoc",
@@ -304,11 +311,11 @@ fn five_thousand_units_ten_models_json_carries_every_key() {
             m["name"]
         );
     }
-    let p_best: f64 = models
+    let draw_share: f64 = models
         .iter()
-        .map(|m| m["p_best"].as_f64().unwrap_or(0.0))
+        .map(|m| m["draw_share"].as_f64().unwrap_or(0.0))
         .sum();
-    assert!((p_best - 1.0).abs() < 1e-9);
+    assert!((draw_share - 1.0).abs() < 1e-9);
     // Every model, baselines included, has its lower bounds, and the RMSE
     // bound is the root of the PEHE floor less 1.645 standard errors.
     let levels = &v["levels"];
@@ -343,9 +350,9 @@ fn five_thousand_units_ten_models_json_carries_every_key() {
 }
 
 /// The quick-start demo finishes by itself and its summary shows both a
-/// leader change and an overlap alert.
+/// front-runner change and an overlap alert.
 #[test]
-fn demo_summary_shows_a_leader_change_and_an_overlap_alert() {
+fn demo_summary_shows_a_front_runner_change_and_an_overlap_alert() {
     let out = bin().arg("demo").output().expect("demo");
     assert!(
         out.status.success(),
@@ -355,7 +362,7 @@ fn demo_summary_shows_a_leader_change_and_an_overlap_alert() {
     let text = String::from_utf8_lossy(&out.stdout);
     let summary = text.split("\nsummary").nth(1).expect("a summary");
     assert!(
-        summary.contains("leader changed from credit-gbm-v3 to commuter-rules"),
+        summary.contains("front-runner changed from credit-gbm-v3 to commuter-rules"),
         "{summary}"
     );
     assert!(summary.contains("overlap degraded"), "{summary}");

@@ -685,7 +685,7 @@ async fn a_server_that_loses_its_lease_takes_down_its_scores() {
     for s in [
         "plumbline_model_rank",
         "plumbline_nuisance_loss",
-        "plumbline_leader_info",
+        "plumbline_front_runner_info",
     ] {
         assert_eq!(
             server.samples(s),

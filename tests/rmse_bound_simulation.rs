@@ -137,7 +137,7 @@ fn replicate(t: &Truth, seed: u64) -> (Vec<Outcome>, f64) {
             seed,
             ..NuisanceSettings::default()
         },
-        p_best_draws: 200,
+        draw_share_draws: 200,
         ..Settings::default()
     };
     let names: Vec<String> = (1..=FEATURES).map(|j| format!("x{j}")).collect();

@@ -456,10 +456,10 @@ async fn one_model_scored(c: &mut Clients, name: &str, n: usize, seed: u64, rese
 }
 
 /// A challenger becomes best after cohort 3: exactly one significant
-/// leader-changed event, visible through watch and list, and the
-/// leader-change counter on /metrics moves.
+/// front-runner-changed event, visible through watch and list, and the
+/// front-runner-change counter on /metrics moves.
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
-async fn drift_raises_exactly_one_significant_leader_change() {
+async fn drift_raises_exactly_one_significant_front_runner_change() {
     use rand::{Rng, SeedableRng};
     let dir = TempDir::new("drift");
     let srv = server(&dir).await;
@@ -525,7 +525,7 @@ async fn drift_raises_exactly_one_significant_leader_change() {
         recompute(&mut c, s.name, false).await;
         let recent = board(&mut c, s.name, pb::window::Kind::Recent).await;
         let expected = if drifted { "challenger" } else { "incumbent" };
-        assert_eq!(recent.leader, expected, "cohort {k}");
+        assert_eq!(recent.front_runner, expected, "cohort {k}");
     }
     let events = c
         .events
@@ -540,7 +540,7 @@ async fn drift_raises_exactly_one_significant_leader_change() {
         .events;
     let changes: Vec<&pb::Event> = events
         .iter()
-        .filter(|e| e.kind == "leader_changed")
+        .filter(|e| e.kind == "front_runner_changed")
         .collect();
     assert_eq!(changes.len(), 1, "{changes:?}");
     let details: serde_json::Value = serde_json::from_str(&changes[0].details_json).expect("json");
@@ -573,7 +573,7 @@ async fn drift_raises_exactly_one_significant_leader_change() {
     }
     assert!(seen
         .iter()
-        .any(|e| e.id == changes[0].id && e.kind == "leader_changed"));
+        .any(|e| e.id == changes[0].id && e.kind == "front_runner_changed"));
 
     let (status, text) = http_get(srv.metrics_addr, "/metrics");
     assert_eq!(status, 200);
@@ -581,7 +581,7 @@ async fn drift_raises_exactly_one_significant_leader_change() {
     let counter = samples
         .iter()
         .find(|(n, l, _)| {
-            n == "plumbline_leader_changes_total"
+            n == "plumbline_front_runner_changes_total"
                 && l.contains(&("dataset".into(), "drift".into()))
                 && l.contains(&("window".into(), "stream".into()))
         })
@@ -688,6 +688,11 @@ async fn a_policy_switch_is_found_and_refits() {
 /// One cohort of the restart test: two models, a policy that switches to
 /// targeting on x1 from cohort 4.
 async fn send_cohort(c: &mut Clients, name: &str, k: usize) {
+    send_cohort_of(c, name, k, true).await
+}
+
+/// As [`send_cohort`], with or without the two models' predictions.
+async fn send_cohort_of(c: &mut Clients, name: &str, k: usize, with_models: bool) {
     use rand::{Rng, SeedableRng};
     let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(1000 + k as u64);
     let (mut units, mut preds, mut outcomes) = (Vec::new(), Vec::new(), Vec::new());
@@ -717,9 +722,64 @@ async fn send_cohort(c: &mut Clients, name: &str, k: usize) {
         });
     }
     send_units(c, name, units).await;
-    send_predictions(c, name, preds).await;
+    if with_models {
+        send_predictions(c, name, preds).await;
+    }
     send_outcomes(c, name, outcomes).await;
     recompute(c, name, false).await;
+}
+
+/// A dataset whose units and outcomes arrive before any model is
+/// registered has only the two baselines on its boards: nothing to rank, so
+/// no front-runner alerts and no heterogeneity verdict between
+/// constant-effect and zero-effect (the second is a straw man, not a
+/// candidate). Overlap and nuisance alerts still apply.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_dataset_without_models_raises_no_model_alerts() {
+    let name = "no-models";
+    let dir = TempDir::new("no-models");
+    let srv = server(&dir).await;
+    let mut c = clients(srv.grpc_addr).await;
+    c.datasets
+        .create_dataset(pb::CreateDatasetRequest {
+            spec: Some(continuous_spec(name, 3)),
+        })
+        .await
+        .expect("create");
+    for k in 0..4 {
+        send_cohort_of(&mut c, name, k, false).await;
+    }
+    let kinds: Vec<String> = all_events(&mut c, name)
+        .await
+        .into_iter()
+        .map(|e| e.kind)
+        .collect();
+    println!("events: {kinds:?}");
+    assert!(kinds.iter().any(|k| k == "nuisance_refit"), "{kinds:?}");
+    for k in &kinds {
+        assert!(
+            !k.starts_with("front_runner") && !k.contains("heterogeneity"),
+            "a dataset without models raised {k}: {kinds:?}"
+        );
+    }
+    for kind in [pb::window::Kind::Cumulative, pb::window::Kind::Recent] {
+        let b = board(&mut c, name, kind).await;
+        assert!(
+            !b.no_detectable_heterogeneity,
+            "no heterogeneity verdict without a candidate ({kind:?})"
+        );
+        let view = b.alerts.expect("alert view");
+        assert_eq!(view.front_runner, "", "{view:?}");
+    }
+    let (_, text) = http_get(srv.metrics_addr, "/metrics");
+    for sample in parse_metrics(&text) {
+        if sample.0 == "plumbline_front_runner_uncertain"
+            || sample.0 == "plumbline_no_detectable_heterogeneity"
+        {
+            assert_eq!(sample.2, 0.0, "{sample:?}");
+        }
+    }
+    srv.stop().await.expect("stop");
 }
 
 /// The stream watch is stored with every snapshot: a server restarted
@@ -764,7 +824,7 @@ async fn the_watch_resumes_after_a_restart() {
     }
     println!("events: {:#?}\nview: {:?}", runs[0].0, runs[0].1);
     assert!(runs[0].1.looks >= 6, "{:?}", runs[0].1);
-    assert_eq!(runs[0].1.leader, "sharp");
+    assert_eq!(runs[0].1.front_runner, "sharp");
     assert!(runs[0].0.iter().any(|(k, _)| k == "nuisance_misfit"));
     assert_eq!(runs[0], runs[1]);
 }
@@ -897,21 +957,27 @@ async fn metrics_carry_every_series_with_its_labels() {
             vec![d, ("model", "m"), ("window", "cumulative")],
         ),
         (
-            "plumbline_model_p_best",
+            "plumbline_model_draw_share",
             vec![d, ("model", "m"), ("window", "recent")],
         ),
         (
-            "plumbline_leader_info",
+            "plumbline_front_runner_info",
             vec![d, ("model", ""), ("window", "recent")],
         ),
         (
-            "plumbline_leader_changes_total",
+            "plumbline_front_runner_changes_total",
             vec![d, ("window", "stream")],
         ),
-        ("plumbline_leader_uncertain", vec![d, ("window", "stream")]),
+        (
+            "plumbline_front_runner_uncertain",
+            vec![d, ("window", "stream")],
+        ),
         ("plumbline_overlap_degraded", vec![d, ("window", "stream")]),
         ("plumbline_watched_units", vec![d]),
-        ("plumbline_leader_uncertain", vec![d, ("window", "recent")]),
+        (
+            "plumbline_front_runner_uncertain",
+            vec![d, ("window", "recent")],
+        ),
         (
             "plumbline_no_detectable_heterogeneity",
             vec![d, ("window", "recent")],
@@ -967,15 +1033,19 @@ async fn metrics_carry_every_series_with_its_labels() {
     ] {
         assert!(has(metric, &labels), "missing {metric} {labels:?}");
     }
-    let leaders: Vec<_> = samples
+    let front_runners: Vec<_> = samples
         .iter()
         .filter(|(n, l, v)| {
-            n == "plumbline_leader_info"
+            n == "plumbline_front_runner_info"
                 && *v == 1.0
                 && l.contains(&("window".into(), "recent".into()))
         })
         .collect();
-    assert_eq!(leaders.len(), 1, "exactly one leader per window");
+    assert_eq!(
+        front_runners.len(),
+        1,
+        "exactly one front-runner per window"
+    );
     let accepted = samples
         .iter()
         .find(|(n, l, _)| {
@@ -1413,7 +1483,7 @@ async fn every_estimator_reaches_the_board_metrics_history_and_table() {
 
     // The selection-aware figures reach the wire: every model's chance of
     // the lowest error (they sum to one), the joint bounds around the
-    // pointwise interval, and the leader's adjusted difference.
+    // pointwise interval, and the front-runner's adjusted difference.
     let out = std::process::Command::new(env!("CARGO_BIN_EXE_plumbline"))
         .args(["scoreboard", "--server", &addr, "--dataset", name])
         .args(["--format", "json"])
@@ -1442,7 +1512,7 @@ async fn every_estimator_reaches_the_board_metrics_history_and_table() {
         .as_f64()
         .expect("joint_critical_value");
     assert!(critical > 1.9, "{critical}");
-    let adjusted = &board["leader_vs_constant"];
+    let adjusted = &board["front_runner_vs_constant"];
     assert!(
         adjusted["ci_low"].as_f64() <= adjusted["ci_high"].as_f64(),
         "{adjusted}"

@@ -34,7 +34,7 @@ fn settings(seed: u64) -> Settings {
         },
         // Targeting bootstraps are not checked here.
         bootstrap_replicates: 0,
-        p_best_draws: 200,
+        draw_share_draws: 200,
         ..Settings::default()
     }
 }

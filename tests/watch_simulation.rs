@@ -168,11 +168,11 @@ fn fit(batches: &[&Batch], seed: u64) -> FittedNuisance {
 }
 
 /// The alert rule this replaces, on the same fixed values: on the recent
-/// window, the top model by mean error becomes leader when its advantage
-/// over the reported leader is significant at one look (one-sided, level
+/// window, the top model by mean error becomes front-runner when its advantage
+/// over the reported front-runner is significant at one look (one-sided, level
 /// alpha), or when it has stayed on top for three looks.
 struct OldRule {
-    leader: Option<usize>,
+    front_runner: Option<usize>,
     challenger: Option<(usize, u32)>,
     /// Per unit in arrival order: each model's squared error.
     losses: Vec<Vec<f64>>,
@@ -190,8 +190,8 @@ impl OldRule {
         let top = (0..m)
             .min_by(|&a, &b| mean(a).total_cmp(&mean(b)))
             .expect("models");
-        let Some(reported) = self.leader else {
-            self.leader = Some(top);
+        let Some(reported) = self.front_runner else {
+            self.front_runner = Some(top);
             return false;
         };
         if top == reported {
@@ -207,7 +207,7 @@ impl OldRule {
             _ => 1,
         };
         if significant || held >= PERSISTENCE {
-            self.leader = Some(top);
+            self.front_runner = Some(top);
             self.challenger = None;
             true
         } else {
@@ -219,12 +219,12 @@ impl OldRule {
 
 #[derive(Default)]
 struct Stream {
-    /// Looks at which the watch changed leader (and to whom), and the
+    /// Looks at which the watch changed front-runner (and to whom), and the
     /// model degraded at the halfway look.
     changes: Vec<(usize, String)>,
     degraded: Option<String>,
     old_changes: Vec<usize>,
-    old_leader_at_change: Option<usize>,
+    old_front_runner_at_change: Option<usize>,
     overlap_alarms: usize,
     drift_alarms: usize,
     misfits: usize,
@@ -253,7 +253,7 @@ fn run(seed: u64, batch: usize, design: Design, plant: bool, views: &[usize]) ->
     let mut olds: Vec<OldRule> = views
         .iter()
         .map(|&count| OldRule {
-            leader: None,
+            front_runner: None,
             challenger: None,
             losses: vec![Vec::new(); count],
         })
@@ -262,14 +262,17 @@ fn run(seed: u64, batch: usize, design: Design, plant: bool, views: &[usize]) ->
     let mut degraded = None;
     for look in 0..LOOKS {
         if plant && look == LOOKS / 2 {
-            // The leader the (first) watch reports now is the one that
+            // The front-runner the (first) watch reports now is the one that
             // degrades.
-            let leader = watches[0].state().leader.expect("a leader by halfway");
-            degraded = leader
+            let front_runner = watches[0]
+                .state()
+                .front_runner
+                .expect("a front-runner by halfway");
+            degraded = front_runner
                 .strip_prefix("model-")
                 .and_then(|k| k.parse::<usize>().ok());
-            out[0].degraded = Some(leader);
-            out[0].old_leader_at_change = olds[0].leader;
+            out[0].degraded = Some(front_runner);
+            out[0].old_front_runner_at_change = olds[0].front_runner;
         }
         let b = draw(&mut rng, &mut normals, batch, design, degraded);
         let x = ndarray::ArrayView2::from_shape((batch, FEATURES), &b.x).expect("shape");
@@ -299,7 +302,7 @@ fn run(seed: u64, batch: usize, design: Design, plant: bool, views: &[usize]) ->
             }
             for s in signals {
                 match s {
-                    Signal::LeaderChanged { new, .. } => out[v].changes.push((look, new)),
+                    Signal::FrontRunnerChanged { new, .. } => out[v].changes.push((look, new)),
                     Signal::OverlapDegraded { .. } => out[v].overlap_alarms += 1,
                     Signal::PopulationDrift { .. } => out[v].drift_alarms += 1,
                     Signal::NuisanceMisfit { .. } => {
@@ -367,7 +370,7 @@ fn median(mut v: Vec<usize>) -> Option<usize> {
 }
 
 #[test]
-fn tied_models_raise_no_leader_change() {
+fn tied_models_raise_no_front_runner_change() {
     let mut failures = Vec::new();
     for batch in [1000, 20] {
         // The 2-model watch sees the first two of the 5-model stream's models.
@@ -386,7 +389,7 @@ fn tied_models_raise_no_leader_change() {
             let drifted = runs.iter().filter(|r| r.drift_alarms > 0).count();
             println!(
                 "{count} tied models, batches of {batch}, {LOOKS} looks, {STREAMS} streams: \
-                 P(any false leader change) {:.3} (old rule {:.3}); P(any population_drift) \
+                 P(any false front_runner change) {:.3} (old rule {:.3}); P(any population_drift) \
                  {:.3}; nuisance refits asked {misfits}",
                 share(false_new),
                 share(false_old),
@@ -426,7 +429,7 @@ fn overlap_at_eight_percent_against_ten_raises_nothing() {
 }
 
 #[test]
-fn a_degraded_leader_is_replaced() {
+fn a_degraded_front_runner_is_replaced() {
     let mut failures = Vec::new();
     for (batch, count) in [(1000, 2), (1000, 5), (20, 2)] {
         let runs = streams(
@@ -449,11 +452,11 @@ fn a_degraded_leader_is_replaced() {
                     .map(|(look, _)| (look - half + 1) * batch)
             })
             .collect();
-        // The old rule, on the streams where its leader was the degraded
+        // The old rule, on the streams where its front-runner was the degraded
         // model at halfway.
         let old_delays: Vec<usize> = runs
             .iter()
-            .filter(|r| r.old_leader_at_change.map(|k| format!("model-{k}")) == r.degraded)
+            .filter(|r| r.old_front_runner_at_change.map(|k| format!("model-{k}")) == r.degraded)
             .filter_map(|r| {
                 r.old_changes
                     .iter()
@@ -463,11 +466,11 @@ fn a_degraded_leader_is_replaced() {
             .collect();
         let old_eligible = runs
             .iter()
-            .filter(|r| r.old_leader_at_change.map(|k| format!("model-{k}")) == r.degraded)
+            .filter(|r| r.old_front_runner_at_change.map(|k| format!("model-{k}")) == r.degraded)
             .count();
         let power = share(delays.len());
         println!(
-            "{count} models, batches of {batch}: leader's error +0.2 Var(tau) at look {half}: \
+            "{count} models, batches of {batch}: front-runner's error +0.2 Var(tau) at look {half}: \
              detected in {power:.3} of {STREAMS} streams, median delay {:?} units \
              (old rule: {}/{old_eligible}, median delay {:?} units)",
             median(delays),

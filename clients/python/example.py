@@ -103,7 +103,7 @@ def main(argv: list[str]) -> int:
     print()
     print(
         f"Cumulative scoreboard of {a['dataset']!r} (snapshot {a['snapshot_id']}, {a['units']} units); "
-        f"ATE {a['ate']:.3f} (se {a['ate_se']:.3f}); leader {a['leader']}; best set {a['best_set']}"
+        f"ATE {a['ate']:.3f} (se {a['ate_se']:.3f}); front-runner {a['front_runner']}; best set {a['best_set']}"
     )
     if a["no_detectable_heterogeneity"]:
         print("No detectable heterogeneity: no model beats constant-effect significantly.")
@@ -112,8 +112,8 @@ def main(argv: list[str]) -> int:
         print("Alerts: not watching yet; they start with the units that arrive after the first fit.")
     else:
         print(
-            f"Alerts: leader {alerts['leader'] or 'none yet'}"
-            f"{' (settled)' if alerts['leader_settled'] else ''}, on {alerts['units']} units watched "
+            f"Alerts: front-runner {alerts['front_runner'] or 'none yet'}"
+            f"{' (settled)' if alerts['front_runner_settled'] else ''}, on {alerts['units']} units watched "
             f"over {alerts['looks']} recomputes; heterogeneity {alerts['heterogeneity']}"
         )
     shown = [
@@ -124,7 +124,7 @@ def main(argv: list[str]) -> int:
         "vs_constant_se",
         "vs_constant_ci_low",
         "vs_constant_ci_high",
-        "p_best",
+        "draw_share",
         "in_best_set",
         "corrected_pehe",
         "policy_gain",
@@ -153,9 +153,9 @@ def main(argv: list[str]) -> int:
         fail(f"ranks are not 1..{len(expected)}: {sorted(board['rank'])}")
     if set(board.loc[board["baseline"], "model"]) != set(pc.BASELINES):
         fail("the baseline flags do not mark exactly zero-effect and constant-effect")
-    if a["leader"] != board.iloc[0]["model"]:
-        fail(f"leader {a['leader']!r} is not the rank-1 model {board.iloc[0]['model']!r}")
-    numeric = board[["vs_constant_estimate", "vs_constant_se", "p_best", "corrected_pehe", "policy_gain"]]
+    if a["front_runner"] != board.iloc[0]["model"]:
+        fail(f"front-runner {a['front_runner']!r} is not the rank-1 model {board.iloc[0]['model']!r}")
+    numeric = board[["vs_constant_estimate", "vs_constant_se", "draw_share", "corrected_pehe", "policy_gain"]]
     if numeric.isna().any().any():
         fail("scoreboard holds NaN in a core column")
     print(f"example: OK: {len(got)} models ranked ({len(models)} registered + 2 baselines)")

@@ -92,7 +92,7 @@ impl From<BoardModel> for pb::ModelScore {
                 })
                 .collect(),
             vs_constant: Some(m.vs_constant.into()),
-            p_best: m.p_best,
+            draw_share: m.draw_share,
             chance_lowest: m.chance_lowest,
             in_best_set: m.in_best_set,
             policy_gain: Some(m.policy_gain.into()),
@@ -146,8 +146,8 @@ impl From<OverlapSummary> for pb::OverlapSummary {
 impl From<AlertView> for pb::AlertView {
     fn from(a: AlertView) -> Self {
         pb::AlertView {
-            leader: a.leader,
-            leader_settled: a.leader_settled,
+            front_runner: a.front_runner,
+            front_runner_settled: a.front_runner_settled,
             heterogeneity: a.heterogeneity,
             overlap_degraded: a.overlap_degraded,
             looks: a.looks,
@@ -173,7 +173,7 @@ impl From<Board> for pb::Scoreboard {
             computed_at_ms: b.computed_at_ms,
             units: b.units,
             ate: b.ate.map(Into::into),
-            leader: b.leader,
+            front_runner: b.front_runner,
             best_set: b.best_set,
             no_detectable_heterogeneity: b.no_detectable_heterogeneity,
             models: b.models.into_iter().map(Into::into).collect(),
@@ -185,7 +185,7 @@ impl From<Board> for pb::Scoreboard {
             json: b.detail_json,
             rank_metrics_units: b.rank_metrics_units,
             alerts: b.alerts.map(Into::into),
-            leader_vs_constant: b.leader_vs_constant.map(Into::into),
+            front_runner_vs_constant: b.front_runner_vs_constant.map(Into::into),
             joint_critical_value: b.joint_critical_value,
         }
     }

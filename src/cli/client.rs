@@ -445,22 +445,26 @@ pub fn scoreboard(c: &Connection, d: &DatasetArg, w: &WindowArg) -> ExitCode {
                 100.0 * i.coverage
             );
         }
-        println!("leader {}; best set {}", b.leader, b.best_set.join(", "));
+        println!(
+            "front-runner {}; best set {}",
+            b.front_runner,
+            b.best_set.join(", ")
+        );
         if b.no_detectable_heterogeneity {
             println!("no detectable heterogeneity: no model beats constant-effect significantly");
         }
         if let Some(a) = b.alerts.as_ref().filter(|a| a.looks > 0) {
             println!(
-                "alerts (on {} units watched as they arrived, {} recomputes): leader {}{}; \
+                "alerts (on {} units watched as they arrived, {} recomputes): front-runner {}{}; \
                  heterogeneity {}; overlap {}",
                 a.units,
                 a.looks,
-                if a.leader.is_empty() {
+                if a.front_runner.is_empty() {
                     "none yet"
                 } else {
-                    &a.leader
+                    &a.front_runner
                 },
-                if a.leader_settled {
+                if a.front_runner_settled {
                     ", settled"
                 } else {
                     ", not yet separated from every other model"

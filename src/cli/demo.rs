@@ -245,8 +245,8 @@ fn print_board(b: &pb::Scoreboard) {
     );
     for m in &b.models {
         let v = m.vs_constant.unwrap_or_default();
-        let marker = if m.name == b.leader {
-            "leader"
+        let marker = if m.name == b.front_runner {
+            "front_runner"
         } else if m.in_best_set {
             "tied"
         } else {
@@ -408,16 +408,16 @@ async fn drive(
     println!("\nsummary after {:.1} s", started.elapsed().as_secs_f64());
     let view = cumulative.alerts.clone().unwrap_or_default();
     println!(
-        "  {} members with ride counts; lowest error over all weeks: {}; leader the alerts \
+        "  {} members with ride counts; lowest error over all weeks: {}; front-runner the alerts \
          report now: {} ({}, on {} members watched as they arrived)",
         cumulative.units,
-        cumulative.leader,
-        if view.leader.is_empty() {
+        cumulative.front_runner,
+        if view.front_runner.is_empty() {
             "none yet"
         } else {
-            view.leader.as_str()
+            view.front_runner.as_str()
         },
-        if view.leader_settled {
+        if view.front_runner_settled {
             "settled"
         } else {
             "not yet separated from every other model"
@@ -438,7 +438,7 @@ async fn drive(
     for e in events.iter().filter(|e| {
         matches!(
             e.kind.as_str(),
-            "leader_changed" | "nuisance_misfit" | "population_drift"
+            "front_runner_changed" | "nuisance_misfit" | "population_drift"
         ) || e.kind.starts_with("overlap")
     }) {
         println!("    - {}", e.summary);

@@ -106,8 +106,8 @@ pub fn table(b: &Scoreboard, kind: OutcomeKind, folds: usize) -> String {
     let _ = writeln!(s);
     let _ = writeln!(
         s,
-        "Leader: {}. Best set at alpha {} (Holm-corrected): {}.",
-        b.leader,
+        "Front-runner: {}. Best set at alpha {} (Holm-corrected): {}.",
+        b.front_runner,
         b.alpha,
         b.best_set.join(", ")
     );
@@ -115,11 +115,11 @@ pub fn table(b: &Scoreboard, kind: OutcomeKind, folds: usize) -> String {
         s,
         "{} against constant-effect, allowing for its being the lowest of {} on these units: \
          {} [{}, {}].",
-        b.leader,
+        b.front_runner,
         b.models.len(),
-        num(b.leader_vs_constant.estimate),
-        num(b.leader_vs_constant.ci_low),
-        num(b.leader_vs_constant.ci_high)
+        num(b.front_runner_vs_constant.estimate),
+        num(b.front_runner_vs_constant.ci_low),
+        num(b.front_runner_vs_constant.ci_high)
     );
     let _ = writeln!(
         s,

@@ -40,7 +40,7 @@ pub struct ScoreArgs {
     /// Number of cross-fitting folds.
     #[arg(long, default_value_t = 5)]
     pub folds: usize,
-    /// Seed for folds, inner splits, bootstrap and p_best draws.
+    /// Seed for folds, inner splits, bootstrap and draw-share draws.
     #[arg(long, default_value_t = 0)]
     pub seed: u64,
     /// Fit the nuisance models on a seeded sample of at most this many units (stratified by arm); every unit is still scored by models that never saw it. Default: every unit.

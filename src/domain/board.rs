@@ -57,7 +57,7 @@ pub struct Difference {
 }
 
 /// An estimate with an interval that is not estimate +- z se: the
-/// leader's difference from constant-effect, adjusted for its selection.
+/// front-runner's difference from constant-effect, adjusted for its selection.
 #[derive(Debug, Clone, Copy, Default, PartialEq, Serialize, Deserialize)]
 pub struct Adjusted {
     pub estimate: f64,
@@ -78,7 +78,10 @@ pub struct BoardModel {
     /// Corrected PEHE minus that of constant-effect (one-sided p-value for
     /// "no lower error").
     pub vs_constant: Difference,
-    pub p_best: f64,
+    /// Share of correlated draws in which the model has the lowest error
+    /// (overstates the front-runner among ties; see `chance_lowest`).
+    #[serde(alias = "p_best")]
+    pub draw_share: f64,
     /// Chance of the lowest true error, the models pooled (empirical
     /// Bayes); absent on boards stored before it existed.
     #[serde(default, skip_serializing_if = "Option::is_none")]
@@ -185,9 +188,12 @@ pub struct Drift {
 /// board of a recompute carries.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct AlertView {
-    /// Empty until the watch appoints one.
-    pub leader: String,
-    pub leader_settled: bool,
+    /// Empty until the watch appoints one. (Records stored before the
+    /// rename carry the older keys; the aliases read them.)
+    #[serde(alias = "leader")]
+    pub front_runner: String,
+    #[serde(alias = "leader_settled")]
+    pub front_runner_settled: bool,
     /// "unknown", "detected" or "absent".
     pub heterogeneity: String,
     pub overlap_degraded: bool,
@@ -207,12 +213,17 @@ pub struct Board {
     /// None when the window cannot support scores (see `degenerate`).
     pub ate: Option<Estimate>,
     /// Empty when degenerate.
-    pub leader: String,
-    /// The leader's difference from constant-effect with an interval that
+    #[serde(alias = "leader")]
+    pub front_runner: String,
+    /// The front-runner's difference from constant-effect with an interval that
     /// allows for its selection; absent when degenerate or stored before it
     /// existed.
-    #[serde(default, skip_serializing_if = "Option::is_none")]
-    pub leader_vs_constant: Option<Adjusted>,
+    #[serde(
+        default,
+        alias = "leader_vs_constant",
+        skip_serializing_if = "Option::is_none"
+    )]
+    pub front_runner_vs_constant: Option<Adjusted>,
     /// Max-t critical value of the models' joint intervals.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub joint_critical_value: Option<f64>,
@@ -224,7 +235,7 @@ pub struct Board {
     pub overlap: Option<OverlapSummary>,
     pub nuisance: Vec<NuisanceComponent>,
     /// The pairs the board keeps: every pair among the top-ranked models
-    /// (`pairwise_top`), then the leader against each of the others.
+    /// (`pairwise_top`), then the front-runner against each of the others.
     pub pairwise: Vec<Pair>,
     /// Why the window has no scores; empty when it has.
     pub degenerate: String,
@@ -274,8 +285,8 @@ mod tests {
             computed_at_ms: 0,
             units: 10,
             ate: None,
-            leader: String::new(),
-            leader_vs_constant: None,
+            front_runner: String::new(),
+            front_runner_vs_constant: None,
             joint_critical_value: None,
             best_set: vec![],
             no_detectable_heterogeneity: true,
@@ -308,6 +319,46 @@ mod tests {
         );
         assert_eq!(board.compare("a", "b").map(|d| d.estimate), Some(0.5));
         assert!(board.compare("a", "c").is_none());
+    }
+
+    /// Boards and alert views stored before the front-runner and draw-share
+    /// names read back under the new ones.
+    #[test]
+    fn records_stored_under_the_older_keys_read_back() {
+        let old = serde_json::json!({
+            "dataset": "d", "window": "cumulative", "snapshot_id": 3, "computed_at_ms": 0,
+            "units": 10, "ate": null, "leader": "m1",
+            "leader_vs_constant": {"estimate": -0.5, "ci_low": -0.9, "ci_high": -0.1},
+            "best_set": ["m1"], "no_detectable_heterogeneity": false,
+            "models": [{
+                "name": "m1", "baseline": false, "rank": 1, "scores": [],
+                "vs_constant": {"estimate": -0.5, "se": 0.2, "ci_low": -0.9, "ci_high": -0.1,
+                                "p_value": 0.01},
+                "p_best": 0.75, "in_best_set": true, "treated_share": 0.5,
+                "policy_gain": {"estimate": 0.1, "se": 0.05},
+                "autoc": {"estimate": 0.1, "se": 0.05}, "qini": {"estimate": 0.1, "se": 0.05}
+            }],
+            "incomplete": [], "overlap": null, "nuisance": [], "pairwise": [],
+            "degenerate": "", "caveat": "", "detail_json": "", "rank_metrics_units": 10,
+            "alerts": {"leader": "m1", "leader_settled": true, "heterogeneity": "detected",
+                       "overlap_degraded": false, "looks": 2, "units": 10, "drift": []}
+        });
+        let board: Board = serde_json::from_value(old).expect("an older board reads back");
+        assert_eq!(board.front_runner, "m1");
+        assert_eq!(
+            board.front_runner_vs_constant.map(|a| a.estimate),
+            Some(-0.5)
+        );
+        assert_eq!(board.models[0].draw_share, 0.75);
+        let view = board.alerts.expect("alert view");
+        assert_eq!(view.front_runner, "m1");
+        assert!(view.front_runner_settled);
+        // Written back, the new keys only.
+        let text = serde_json::to_string(&board.models[0]).expect("encode");
+        assert!(
+            text.contains("draw_share") && !text.contains("p_best"),
+            "{text}"
+        );
     }
 
     #[test]

@@ -1,5 +1,5 @@
 //! Ranking models on one estimator: pairwise differences, the best set,
-//! p_best and the leader, with the joint (max-t) critical values and the
+//! draw_share and the front-runner, with the joint (max-t) critical values and the
 //! selection-adjusted interval of [`super::selection`].
 //!
 //! Everything here is built on differences between models' contributions,
@@ -68,7 +68,7 @@ pub struct RankSettings {
     /// Normal draws behind the joint critical values and the chances.
     pub draws: usize,
     pub seed: u64,
-    /// Pairs are kept among this many top-ranked models, plus the leader
+    /// Pairs are kept among this many top-ranked models, plus the front-runner
     /// against every other model.
     pub pairwise_top: usize,
     /// Columns from this one on are the candidates whose errors share the
@@ -83,13 +83,13 @@ pub struct Ranking {
     /// 1-based rank per model (1 = lowest mean error).
     pub rank: Vec<usize>,
     /// Index of the model with the lowest mean error.
-    pub leader: usize,
+    pub front_runner: usize,
     /// Whether each model is in the best set.
     pub in_best_set: Vec<bool>,
     /// Share of draws from N(estimates, Cov) in which each model had the
     /// lowest error (ties split). Centered on the estimates, it overstates
-    /// the leader when models tie; see `chance_lowest`.
-    pub p_best: Vec<f64>,
+    /// the front-runner when models tie; see `chance_lowest`.
+    pub draw_share: Vec<f64>,
     /// Chance that each model has the lowest true error: the candidates'
     /// from their pooled empirical-Bayes prior ([`chance_lowest`]), near
     /// 1/m when they tie; see [`pooled_chances`].
@@ -97,11 +97,11 @@ pub struct Ranking {
     /// Max-t critical value for the differences from the reference column
     /// at `level`, jointly over every column.
     pub joint_critical: f64,
-    /// The leader's difference from the reference, adjusted for its having
+    /// The front-runner's difference from the reference, adjusted for its having
     /// been picked as the minimum ([`hybrid_interval`]) at `level`.
-    pub leader_interval: (f64, f64),
+    pub front_runner_interval: (f64, f64),
     /// The pairs kept, (a, b) with a ranked above b: every pair among the
-    /// top `pairwise_top`, then the leader against each model below them.
+    /// top `pairwise_top`, then the front-runner against each model below them.
     pub pairs: Vec<(usize, usize)>,
     /// Max-t critical value jointly over `pairs` at `level`.
     pub pair_critical: f64,
@@ -112,16 +112,16 @@ pub struct Ranking {
 /// frame of differences from column `reference` (constant-effect), whose
 /// ordering is the same.
 ///
-/// Best set: the leader, plus every model whose excess mean error over the
-/// leader is not significant in a one-sided test at family-wise level alpha,
+/// Best set: the front-runner, plus every model whose excess mean error over the
+/// front-runner is not significant in a one-sided test at family-wise level alpha,
 /// Holm-corrected over the m - 1 comparisons (in the spirit of the model
-/// confidence set of Hansen, Lunde & Nason 2011; the leader is chosen from
+/// confidence set of Hansen, Lunde & Nason 2011; the front-runner is chosen from
 /// the same data, so the set errs towards including models).
 ///
 /// One set of `draws` draws of the estimates' noise, Z ~ N(0, Cov), gives
 /// the max-t critical values (the quantiles of the largest standardized
 /// |Z_k| over the columns, and of |Z_a - Z_b| over the pairs) and
-/// `p_best`, the share of draws of estimates + Z in which each model is
+/// `draw_share`, the share of draws of estimates + Z in which each model is
 /// lowest.
 pub fn rank(sums: &ScoreSums, reference: usize, settings: &RankSettings) -> Ranking {
     let m = sums.models();
@@ -132,12 +132,12 @@ pub fn rank(sums: &ScoreSums, reference: usize, settings: &RankSettings) -> Rank
     for (pos, &k) in order.iter().enumerate() {
         rank[k] = pos + 1;
     }
-    let leader = order.first().copied().unwrap_or(0);
+    let front_runner = order.first().copied().unwrap_or(0);
 
-    let others: Vec<usize> = (0..m).filter(|&k| k != leader).collect();
+    let others: Vec<usize> = (0..m).filter(|&k| k != front_runner).collect();
     let p: Vec<f64> = others
         .iter()
-        .map(|&k| p_greater(sums.difference(k, leader)))
+        .map(|&k| p_greater(sums.difference(k, front_runner)))
         .collect();
     let rejected = holm_reject(&p, settings.alpha);
     let mut in_best_set = vec![true; m];
@@ -151,7 +151,7 @@ pub fn rank(sums: &ScoreSums, reference: usize, settings: &RankSettings) -> Rank
         pairs.extend(order[i + 1..top].iter().map(|&b| (a, b)));
     }
     if top > 0 {
-        pairs.extend(order[top..].iter().map(|&b| (leader, b)));
+        pairs.extend(order[top..].iter().map(|&b| (front_runner, b)));
     }
 
     // Differences from the reference: the same ordering, the reference a
@@ -205,26 +205,34 @@ pub fn rank(sums: &ScoreSums, reference: usize, settings: &RankSettings) -> Rank
     column_max.sort_by(f64::total_cmp);
     pair_max.sort_by(f64::total_cmp);
     let draws = settings.draws.max(1) as f64;
-    let p_best: Vec<f64> = wins.iter().map(|w| w / draws).collect();
+    let draw_share: Vec<f64> = wins.iter().map(|w| w / draws).collect();
     let joint_critical = sorted_quantile(&column_max, settings.level);
     let pair_critical = sorted_quantile(&pair_max, settings.level);
     // The projection step of the hybrid at beta = (1 - level) / 10.
     let beta = (1.0 - settings.level) / 10.0;
     let c_beta = sorted_quantile(&column_max, 1.0 - beta);
-    let leader_interval = if m == 0 {
+    let front_runner_interval = if m == 0 {
         (0.0, 0.0)
     } else {
-        hybrid_interval(&x, &cov, m, leader, 1.0 - settings.level, beta, c_beta)
+        hybrid_interval(
+            &x,
+            &cov,
+            m,
+            front_runner,
+            1.0 - settings.level,
+            beta,
+            c_beta,
+        )
     };
-    let chance_lowest = pooled_chances(&x, &cov, m, &p_best, settings);
+    let chance_lowest = pooled_chances(&x, &cov, m, &draw_share, settings);
     Ranking {
         rank,
-        leader,
+        front_runner,
         in_best_set,
-        p_best,
+        draw_share,
         chance_lowest,
         joint_critical,
-        leader_interval,
+        front_runner_interval,
         pairs,
         pair_critical,
     }
@@ -241,12 +249,12 @@ pub fn pooled_chances(
     x: &[f64],
     cov: &[f64],
     m: usize,
-    p_best: &[f64],
+    draw_share: &[f64],
     settings: &RankSettings,
 ) -> Vec<f64> {
     let first = settings.first_candidate.min(m);
     let c = m - first;
-    let mut chances = p_best.to_vec();
+    let mut chances = draw_share.to_vec();
     if c == 0 {
         return chances;
     }
@@ -261,7 +269,7 @@ pub fn pooled_chances(
         settings.draws,
         settings.seed.wrapping_add(1),
     );
-    let rest = (1.0 - p_best[..first].iter().sum::<f64>()).max(0.0);
+    let rest = (1.0 - draw_share[..first].iter().sum::<f64>()).max(0.0);
     for (out, p) in chances[first..].iter_mut().zip(pooled) {
         *out = rest * p;
     }
@@ -306,19 +314,19 @@ mod tests {
             .collect();
         let c: Vec<f64> = noise.iter().map(|v| v + 0.001).collect();
         let r = rank(&sums_from(&[a, b, c]), 1, &settings(2000, 1));
-        assert_eq!(r.leader, 0);
+        assert_eq!(r.front_runner, 0);
         assert_eq!(r.rank, vec![1, 3, 2]);
         assert!(r.in_best_set[0]);
         assert!(!r.in_best_set[1]);
         // c is worse by a constant 0.001: its difference has zero variance
         // and a positive mean, so it is significantly worse.
         assert!(!r.in_best_set[2]);
-        assert!((r.p_best.iter().sum::<f64>() - 1.0).abs() < 1e-9);
-        assert!(r.p_best[0] > 0.99);
+        assert!((r.draw_share.iter().sum::<f64>() - 1.0).abs() < 1e-9);
+        assert!(r.draw_share[0] > 0.99);
     }
 
     #[test]
-    fn indistinguishable_models_share_the_best_set_and_p_best() {
+    fn indistinguishable_models_share_the_best_set_and_draw_share() {
         let n = 4000;
         let base: Vec<f64> = (0..n)
             .map(|i| ((i * 104_729) % 997) as f64 / 997.0)
@@ -335,8 +343,8 @@ mod tests {
             .collect();
         let r = rank(&sums_from(&[a, b]), 0, &settings(4000, 3));
         assert!(r.in_best_set.iter().all(|&x| x));
-        // Means are equal, so p_best is close to one half for each.
-        assert!((r.p_best[0] - 0.5).abs() < 0.05, "{:?}", r.p_best);
+        // Means are equal, so draw_share is close to one half for each.
+        assert!((r.draw_share[0] - 0.5).abs() < 0.05, "{:?}", r.draw_share);
     }
 
     #[test]

@@ -366,7 +366,7 @@ mod tests {
     /// from a one-pass sum only in the order of additions and in the
     /// constant-effect basis's linear map, both of which move values by a
     /// few units of 1e-16 relative, while any difference of formula would
-    /// show near 1e-3. p_best counts seeded draws, which would differ by
+    /// show near 1e-3. draw_share counts seeded draws, which would differ by
     /// 1/4000 only if a draw sat within rounding of a tie. Everything
     /// that is not a number is equal.
     fn assert_close(a: &serde_json::Value, b: &serde_json::Value, path: &str) {

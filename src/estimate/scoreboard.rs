@@ -35,11 +35,11 @@ pub struct Settings {
     /// jackknife, one O(n) pass per model; otherwise the number of
     /// nonparametric bootstrap replicates (see `targeting`).
     pub bootstrap_replicates: usize,
-    /// Normal draws behind p_best, the chances and the joint critical
+    /// Normal draws behind draw_share, the chances and the joint critical
     /// values.
-    pub p_best_draws: usize,
+    pub draw_share_draws: usize,
     /// Pairwise differences are reported among this many top-ranked
-    /// models (and the leader against every other): a sweep of a thousand
+    /// models (and the front-runner against every other): a sweep of a thousand
     /// models would otherwise carry half a million pairs.
     pub pairwise_top: usize,
 }
@@ -52,7 +52,7 @@ impl Default for Settings {
             alpha: 0.05,
             overlap_eps: 0.05,
             bootstrap_replicates: 0,
-            p_best_draws: 4000,
+            draw_share_draws: 4000,
             pairwise_top: 20,
         }
     }
@@ -115,11 +115,11 @@ pub struct VsConstant {
     pub joint_high: f64,
 }
 
-/// The leader's difference from constant-effect with an interval that
+/// The front-runner's difference from constant-effect with an interval that
 /// accounts for its having been picked as the lowest of every column on
 /// the same data (hybrid inference on winners, Andrews, Kitagawa &
 /// McCloskey 2024; see `estimate::selection`). Among many models of equal
-/// error the leader's own `vs_constant` interval sits too low; this one
+/// error the front-runner's own `vs_constant` interval sits too low; this one
 /// does not.
 #[derive(Debug, Clone, Serialize)]
 pub struct SelectionAdjusted {
@@ -142,8 +142,8 @@ pub struct ModelScore {
     /// lower error than treating everyone alike).
     pub vs_constant: VsConstant,
     /// Share of draws around the estimates in which the model is lowest;
-    /// overstates the leader when models tie (see `chance_lowest`).
-    pub p_best: f64,
+    /// overstates the front-runner when models tie (see `chance_lowest`).
+    pub draw_share: f64,
     /// Empirical-Bayes chance that the model has the lowest true error:
     /// near 1/m when the models tie.
     pub chance_lowest: f64,
@@ -179,13 +179,14 @@ pub struct Scoreboard {
     pub n_treated: usize,
     pub n_control: usize,
     pub ate: AteSummary,
-    pub leader: String,
-    /// The leader's difference from constant-effect, selection-adjusted.
-    pub leader_vs_constant: SelectionAdjusted,
+    pub front_runner: String,
+    /// The front-runner's difference from constant-effect, selection-adjusted.
+    pub front_runner_vs_constant: SelectionAdjusted,
     /// Max-t critical value behind every model's `vs_constant.joint_*`.
     pub joint_critical_value: f64,
     pub best_set: Vec<String>,
-    /// True when no registered model beats constant-effect significantly.
+    /// True when models are registered and none beats constant-effect
+    /// significantly (Holm); false with no registered model.
     pub no_detectable_heterogeneity: bool,
     pub alpha: f64,
     pub cost: f64,
@@ -196,7 +197,7 @@ pub struct Scoreboard {
     /// it can be fewer (see [`RankMetrics`]).
     pub rank_metrics_units: usize,
     /// Every pair among the `pairwise_top` top-ranked models, then the
-    /// leader against each model below them, by rank.
+    /// front-runner against each model below them, by rank.
     pub pairwise: Vec<PairwiseDifference>,
     pub overlap: OverlapReport,
     pub nuisance: Option<NuisanceReport>,
@@ -677,7 +678,7 @@ pub fn assemble(parts: Parts<'_>, settings: &Settings) -> Scoreboard {
         &RankSettings {
             alpha: settings.alpha,
             level: CI_LEVEL,
-            draws: settings.p_best_draws,
+            draws: settings.draw_share_draws,
             seed: settings.nuisance.seed,
             pairwise_top: settings.pairwise_top,
             first_candidate: 2,
@@ -693,7 +694,10 @@ pub fn assemble(parts: Parts<'_>, settings: &Settings) -> Scoreboard {
             p_greater(Estimate::new(-d.estimate, d.se))
         })
         .collect();
-    let no_detectable_heterogeneity = !holm_reject(&p_beats, settings.alpha).iter().any(|&r| r);
+    // Without a registered model there is no verdict to give: the two
+    // baselines are references, not candidates.
+    let no_detectable_heterogeneity =
+        !registered.is_empty() && !holm_reject(&p_beats, settings.alpha).iter().any(|&r| r);
 
     let model_scores: Vec<ModelScore> = all
         .iter()
@@ -717,7 +721,7 @@ pub fn assemble(parts: Parts<'_>, settings: &Settings) -> Scoreboard {
                     joint_low: d.estimate - joint * d.se,
                     joint_high: d.estimate + joint * d.se,
                 },
-                p_best: ranking.p_best[k],
+                draw_share: ranking.draw_share[k],
                 chance_lowest: ranking.chance_lowest[k],
                 in_best_set: ranking.in_best_set[k],
                 policy_gain,
@@ -758,11 +762,11 @@ pub fn assemble(parts: Parts<'_>, settings: &Settings) -> Scoreboard {
             ci_low,
             ci_high,
         },
-        leader: all[ranking.leader].0.clone(),
-        leader_vs_constant: SelectionAdjusted {
-            estimate: corrected.mean(ranking.leader) - corrected.mean(constant),
-            ci_low: ranking.leader_interval.0,
-            ci_high: ranking.leader_interval.1,
+        front_runner: all[ranking.front_runner].0.clone(),
+        front_runner_vs_constant: SelectionAdjusted {
+            estimate: corrected.mean(ranking.front_runner) - corrected.mean(constant),
+            ci_low: ranking.front_runner_interval.0,
+            ci_high: ranking.front_runner_interval.1,
         },
         joint_critical_value: joint,
         best_set,

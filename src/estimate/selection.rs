@@ -217,7 +217,7 @@ const TIE_TEST_Z: f64 = 1.645;
 /// (Efron & Morris 1973 in spirit) is positive half the time under a tie,
 /// and when the models' noise is strongly correlated, as in a sweep, S^2
 /// has few degrees of freedom and that positive part is large: the
-/// leader's chance then averaged 0.1 over a thousand tied models, a
+/// front-runner's chance then averaged 0.1 over a thousand tied models, a
 /// hundred times 1/m. Testing the spread first leaves the chances even in
 /// 95% of ties and costs little when some model is truly ahead, where the
 /// spread dwarfs its noise. The posterior of theta is normal with

@@ -40,7 +40,7 @@ pub fn normal_cdf(z: f64) -> f64 {
 }
 
 /// One standard normal draw by the Box-Muller transform (the cosine of the
-/// pair). p_best's draws, the simulations and the tests all take their
+/// pair). draw_share's draws, the simulations and the tests all take their
 /// normals from here, so a seed gives the same values wherever it is used.
 pub fn standard_normal(rng: &mut impl Rng) -> f64 {
     let u1: f64 = rng.gen_range(f64::EPSILON..1.0);

@@ -3,9 +3,9 @@
 //!
 //! Series, all labelled by `dataset`:
 //! - `plumbline_model_score` / `plumbline_model_score_se` {model, estimator, window}
-//! - `plumbline_model_rank`, `plumbline_model_p_best` {model, window}
-//! - `plumbline_leader_info` {window, model} = 1 for the current leader
-//! - `plumbline_leader_changes_total` {window}
+//! - `plumbline_model_rank`, `plumbline_model_draw_share` {model, window}
+//! - `plumbline_front_runner_info` {window, model} = 1 for the current front-runner
+//! - `plumbline_front_runner_changes_total` {window}
 //! - `plumbline_watched_units`: units the alerts' stream watch has taken
 //! - `plumbline_drift_standardized_difference` {quantity}: a feature's or
 //!   the propensity's drift from the watch's reference population
@@ -13,7 +13,7 @@
 //! `window="stream"` series come from the stream watch behind the alerts
 //! (anytime-valid: see `estimate::watch`); `cumulative` and `recent`
 //! series are the boards' point estimates of the latest look.
-//! - `plumbline_leader_uncertain`, `plumbline_no_detectable_heterogeneity`,
+//! - `plumbline_front_runner_uncertain`, `plumbline_no_detectable_heterogeneity`,
 //!   `plumbline_overlap_degraded`, `plumbline_overlap_extreme_share` {window}
 //! - `plumbline_overlap_effective_share` {window, arm}
 //! - `plumbline_ingest_rows_total` {kind, result}
@@ -113,10 +113,10 @@ pub struct Metrics {
     pub model_score: Family<ScoreLabels, FloatGauge>,
     pub model_score_se: Family<ScoreLabels, FloatGauge>,
     pub model_rank: Family<ModelLabels, FloatGauge>,
-    pub model_p_best: Family<ModelLabels, FloatGauge>,
-    pub leader_info: Family<ModelLabels, FloatGauge>,
-    pub leader_changes: Family<WindowLabels, Counter>,
-    pub leader_uncertain: Family<WindowLabels, FloatGauge>,
+    pub model_draw_share: Family<ModelLabels, FloatGauge>,
+    pub front_runner_info: Family<ModelLabels, FloatGauge>,
+    pub front_runner_changes: Family<WindowLabels, Counter>,
+    pub front_runner_uncertain: Family<WindowLabels, FloatGauge>,
     pub no_heterogeneity: Family<WindowLabels, FloatGauge>,
     pub overlap_degraded: Family<WindowLabels, FloatGauge>,
     pub overlap_extreme_share: Family<WindowLabels, FloatGauge>,
@@ -144,10 +144,10 @@ impl Metrics {
             model_score: Family::default(),
             model_score_se: Family::default(),
             model_rank: Family::default(),
-            model_p_best: Family::default(),
-            leader_info: Family::default(),
-            leader_changes: Family::default(),
-            leader_uncertain: Family::default(),
+            model_draw_share: Family::default(),
+            front_runner_info: Family::default(),
+            front_runner_changes: Family::default(),
+            front_runner_uncertain: Family::default(),
             no_heterogeneity: Family::default(),
             overlap_degraded: Family::default(),
             overlap_extreme_share: Family::default(),
@@ -184,24 +184,24 @@ impl Metrics {
             m.model_rank.clone(),
         );
         registry.register(
-            "model_p_best",
-            "Probability that the model is best",
-            m.model_p_best.clone(),
+            "model_draw_share",
+            "Share of correlated draws around the estimates in which the model has the lowest corrected PEHE (overstates the front-runner among ties)",
+            m.model_draw_share.clone(),
         );
         registry.register(
-            "leader_info",
-            "1 for the current leader of each window (window=\"stream\": the leader the alerts report)",
-            m.leader_info.clone(),
+            "front_runner_info",
+            "1 for the current front-runner of each window (window=\"stream\": the front-runner the alerts report)",
+            m.front_runner_info.clone(),
         );
         registry.register(
-            "leader_changes",
-            "Leader-changed events raised (window=\"stream\")",
-            m.leader_changes.clone(),
+            "front_runner_changes",
+            "Front-runner-changed events raised (window=\"stream\")",
+            m.front_runner_changes.clone(),
         );
         registry.register(
-            "leader_uncertain",
-            "1 while the leader is not separated from another model (stream: by the alerts' confidence sequences; a board window: its best set holds more than one model)",
-            m.leader_uncertain.clone(),
+            "front_runner_uncertain",
+            "1 while the front-runner is not separated from another model (stream: by the alerts' confidence sequences; a board window: its best set holds more than one model)",
+            m.front_runner_uncertain.clone(),
         );
         registry.register(
             "no_detectable_heterogeneity",

@@ -34,7 +34,7 @@ fn how(e: &Evidence) -> String {
             "change detector at {:.1} against its threshold {:.1} (log scale) after {} looks",
             e.log_statistic, e.log_threshold, e.looks
         ),
-        Route::Gone => "the previous leader no longer predicts".into(),
+        Route::Gone => "the previous front-runner no longer predicts".into(),
     }
 }
 
@@ -50,28 +50,28 @@ pub fn event(dataset: &str, signal: &Signal) -> Option<Raised> {
         })
     };
     match signal {
-        Signal::LeaderAppointed { .. } => None,
-        Signal::LeaderChanged { old, new, evidence } => raised(
-            "leader_changed",
+        Signal::FrontRunnerAppointed { .. } => None,
+        Signal::FrontRunnerChanged { old, new, evidence } => raised(
+            "front_runner_changed",
             format!(
-                "{dataset}: leader changed from {old} to {new}: lower error by {:.4} ({})",
+                "{dataset}: front-runner changed from {old} to {new}: lower error by {:.4} ({})",
                 evidence.estimate,
                 how(evidence)
             ),
             json!({ "old": old, "new": new, "margin": evidence.estimate, "evidence": evidence }),
         ),
-        Signal::LeaderUncertain { leader, tied } => raised(
-            "leader_uncertain",
+        Signal::FrontRunnerUncertain { front_runner, tied } => raised(
+            "front_runner_uncertain",
             format!(
-                "{dataset}: leader {leader} is not yet separated from {}",
+                "{dataset}: front-runner {front_runner} is not yet separated from {}",
                 tied.join(", ")
             ),
-            json!({ "leader": leader, "tied": tied }),
+            json!({ "front_runner": front_runner, "tied": tied }),
         ),
-        Signal::LeaderSettled { leader } => raised(
-            "leader_settled",
-            format!("{dataset}: leader {leader} now errs less than every other model"),
-            json!({ "leader": leader }),
+        Signal::FrontRunnerSettled { front_runner } => raised(
+            "front_runner_settled",
+            format!("{dataset}: front-runner {front_runner} now errs less than every other model"),
+            json!({ "front_runner": front_runner }),
         ),
         Signal::HeterogeneityDetected { model, evidence } => raised(
             "heterogeneity_detected",

@@ -29,7 +29,7 @@ fn model(m: &ModelScore) -> BoardModel {
             p_value: m.vs_constant.p_value,
             joint: Some((m.vs_constant.joint_low, m.vs_constant.joint_high)),
         },
-        p_best: m.p_best,
+        draw_share: m.draw_share,
         chance_lowest: Some(m.chance_lowest),
         in_best_set: m.in_best_set,
         policy_gain: Estimate::new(m.policy_gain.estimate, m.policy_gain.se),
@@ -128,11 +128,11 @@ pub fn scoreboard(parts: BoardParts<'_>, b: &Scoreboard) -> Board {
         computed_at_ms: parts.computed_at_ms,
         units: b.n_units as u64,
         ate: Some(Estimate::new(b.ate.estimate, b.ate.se)),
-        leader: b.leader.clone(),
-        leader_vs_constant: Some(Adjusted {
-            estimate: b.leader_vs_constant.estimate,
-            ci_low: b.leader_vs_constant.ci_low,
-            ci_high: b.leader_vs_constant.ci_high,
+        front_runner: b.front_runner.clone(),
+        front_runner_vs_constant: Some(Adjusted {
+            estimate: b.front_runner_vs_constant.estimate,
+            ci_low: b.front_runner_vs_constant.ci_low,
+            ci_high: b.front_runner_vs_constant.ci_high,
         }),
         joint_critical_value: Some(b.joint_critical_value),
         best_set: b.best_set.clone(),
@@ -178,8 +178,8 @@ pub fn degenerate(parts: BoardParts<'_>, units: u64, state: String) -> Board {
         computed_at_ms: parts.computed_at_ms,
         units,
         ate: None,
-        leader: String::new(),
-        leader_vs_constant: None,
+        front_runner: String::new(),
+        front_runner_vs_constant: None,
         joint_critical_value: None,
         best_set: Vec::new(),
         no_detectable_heterogeneity: false,
@@ -201,8 +201,8 @@ pub fn alert_view(watch: &crate::estimate::watch::Watch) -> AlertView {
     use crate::estimate::watch::Heterogeneity;
     let s = watch.state();
     AlertView {
-        leader: s.leader.unwrap_or_default(),
-        leader_settled: s.leader_settled,
+        front_runner: s.front_runner.unwrap_or_default(),
+        front_runner_settled: s.front_runner_settled,
         heterogeneity: match s.heterogeneity {
             Heterogeneity::Unknown => "unknown",
             Heterogeneity::Detected => "detected",

@@ -27,26 +27,33 @@ impl Monitor {
                 dataset: dataset.into(),
                 window: window.into(),
             };
-            // Forget the previous leader's label so exactly one series is 1.
+            // Forget the previous front-runner's label so exactly one series is 1.
             if let Some(old) = previous.get(window) {
-                m.leader_info.remove(&ModelLabels {
+                m.front_runner_info.remove(&ModelLabels {
                     dataset: dataset.into(),
                     model: old.clone(),
                     window: window.into(),
                 });
             }
-            if !b.leader.is_empty() {
-                m.leader_info
+            if !b.front_runner.is_empty() {
+                m.front_runner_info
                     .get_or_create(&ModelLabels {
                         dataset: dataset.into(),
-                        model: b.leader.clone(),
+                        model: b.front_runner.clone(),
                         window: window.into(),
                     })
                     .set(1.0);
             }
-            m.leader_uncertain
+            m.front_runner_uncertain
                 .get_or_create(&wl)
-                .set(if b.best_set.len() > 1 { 1.0 } else { 0.0 });
+                // Only candidates can be uncertain; two tied baselines are not.
+                .set(
+                    if b.best_set.len() > 1 && b.models.iter().any(|m| !m.baseline) {
+                        1.0
+                    } else {
+                        0.0
+                    },
+                );
             m.no_heterogeneity
                 .get_or_create(&wl)
                 .set(if b.no_detectable_heterogeneity {
@@ -81,7 +88,7 @@ impl Monitor {
                     window: window.into(),
                 };
                 m.model_rank.get_or_create(&ml).set(f64::from(model.rank));
-                m.model_p_best.get_or_create(&ml).set(model.p_best);
+                m.model_draw_share.get_or_create(&ml).set(model.draw_share);
                 for (estimator, e) in model.history_values() {
                     let sl = ScoreLabels {
                         dataset: dataset.into(),
@@ -122,26 +129,29 @@ impl Monitor {
             dataset: dataset.into(),
             window: alerts::STREAM.into(),
         };
-        let leader_labels = |model: String| ModelLabels {
+        let front_runner_labels = |model: String| ModelLabels {
             dataset: dataset.into(),
             model,
             window: alerts::STREAM.into(),
         };
-        if let Some(old) = previous.filter(|old| state.leader.as_ref() != Some(old)) {
-            m.leader_info.remove(&leader_labels(old));
+        if let Some(old) = previous.filter(|old| state.front_runner.as_ref() != Some(old)) {
+            m.front_runner_info.remove(&front_runner_labels(old));
         }
-        if let Some(leader) = &state.leader {
-            m.leader_info
-                .get_or_create(&leader_labels(leader.clone()))
+        if let Some(front_runner) = &state.front_runner {
+            m.front_runner_info
+                .get_or_create(&front_runner_labels(front_runner.clone()))
                 .set(1.0);
         }
-        let _ = m.leader_changes.get_or_create(&wl);
+        let _ = m.front_runner_changes.get_or_create(&wl);
         let flag = |b: bool| if b { 1.0 } else { 0.0 };
-        m.leader_uncertain
-            .get_or_create(&wl)
-            .set(flag(state.leader.is_some() && !state.leader_settled));
+        m.front_runner_uncertain.get_or_create(&wl).set(flag(
+            state.front_runner.is_some() && !state.front_runner_settled,
+        ));
+        // No verdict before a model predicts: the watch appoints a
+        // front-runner at the first look with a candidate's predictions.
         m.no_heterogeneity.get_or_create(&wl).set(flag(
-            state.heterogeneity != crate::estimate::watch::Heterogeneity::Detected,
+            state.front_runner.is_some()
+                && state.heterogeneity != crate::estimate::watch::Heterogeneity::Detected,
         ));
         m.overlap_degraded
             .get_or_create(&wl)
@@ -162,7 +172,7 @@ impl Monitor {
     }
 
     /// Takes down the series only a dataset's owner keeps current (scores,
-    /// ranks, leaders, overlap, the watch's states, nuisance losses), when
+    /// ranks, front-runners, overlap, the watch's states, nuisance losses), when
     /// this server stops owning it: left up, they would go stale beside the
     /// new owner's. Row counts stay (every server keeps them current), and
     /// so do counters.
@@ -176,7 +186,7 @@ impl Monitor {
                 dataset: dataset.into(),
                 window: window.into(),
             };
-            m.leader_uncertain.remove(&wl);
+            m.front_runner_uncertain.remove(&wl);
             m.no_heterogeneity.remove(&wl);
             m.overlap_degraded.remove(&wl);
             m.overlap_extreme_share.remove(&wl);
@@ -187,7 +197,7 @@ impl Monitor {
                     arm: arm.into(),
                 });
             }
-            let mut models: Vec<String> = state.leader.iter().cloned().collect();
+            let mut models: Vec<String> = state.front_runner.iter().cloned().collect();
             if let Some(b) = boards.get(window) {
                 models.extend(b.models.iter().map(|model| model.name.clone()));
             }
@@ -226,9 +236,9 @@ impl Monitor {
                 model: model.clone(),
                 window: window.into(),
             };
-            m.leader_info.remove(&ml);
+            m.front_runner_info.remove(&ml);
             m.model_rank.remove(&ml);
-            m.model_p_best.remove(&ml);
+            m.model_draw_share.remove(&ml);
             for estimator in crate::domain::board::history_keys() {
                 let sl = ScoreLabels {
                     dataset: dataset.into(),

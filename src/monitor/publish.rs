@@ -230,13 +230,13 @@ impl Monitor {
 
         // Install, then alert.
         let cumulative_units = boards.get("cumulative").map(|b| b.units).unwrap_or(0);
-        let (raised, previous, watched_leader, gone) = {
+        let (raised, previous, watched_front_runner, gone) = {
             let mut st = h.state.lock().await;
-            let watched_leader = st.watch.state().leader;
+            let watched_front_runner = st.watch.state().front_runner;
             let old_boards = h.boards();
             let previous: BTreeMap<String, String> = old_boards
                 .iter()
-                .map(|(k, b)| (k.clone(), b.leader.clone()))
+                .map(|(k, b)| (k.clone(), b.front_runner.clone()))
                 .collect();
             // Models on the last boards and on none of these: retired.
             let on = |bs: &Boards| -> std::collections::BTreeSet<String> {
@@ -253,13 +253,13 @@ impl Monitor {
                 .filter_map(|s| alerts::event(&h.name, s))
                 .collect();
             h.publish(boards.clone());
-            (raised, previous, watched_leader, gone)
+            (raised, previous, watched_front_runner, gone)
         };
         // The watch looked before any refit: its events come first.
         for r in raised {
-            if r.kind == "leader_changed" {
+            if r.kind == "front_runner_changed" {
                 self.metrics
-                    .leader_changes
+                    .front_runner_changes
                     .get_or_create(&WindowLabels {
                         dataset: h.name.clone(),
                         window: alerts::STREAM.into(),
@@ -306,7 +306,7 @@ impl Monitor {
             .observe(seconds);
         self.forget_models(&h.name, &gone);
         self.export_boards(&h.name, &boards, &previous, &nuisance);
-        self.export_watch(&h.name, watched_leader, &computed.watch);
+        self.export_watch(&h.name, watched_front_runner, &computed.watch);
         info!(
             snapshot = snapshot_id,
             refitted = computed.refit.is_some(),

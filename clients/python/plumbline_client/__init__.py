@@ -93,7 +93,7 @@ SCOREBOARD_COLUMNS = [
     "vs_constant_ci_low",
     "vs_constant_ci_high",
     "vs_constant_p_value",
-    "p_best",
+    "draw_share",
     "in_best_set",
     "policy_gain",
     "policy_gain_se",
@@ -643,7 +643,7 @@ class Client:
           ``_p_value``: corrected PEHE minus that of constant-effect, with its
           95% interval; below 0 means lower error than treating everyone
           alike (the p-value is one-sided for "no lower error");
-        * ``p_best``, ``in_best_set``;
+        * ``draw_share``, ``in_best_set``;
         * two columns per error estimator the server scores with, in its
           order: ``<key>`` and ``<key>_se`` (``corrected_pehe``,
           ``plugin_pehe``, ``dr_loss``, ``r_loss``, ``ipw_loss`` today). The
@@ -659,11 +659,11 @@ class Client:
 
         The scoreboard's own fields travel in ``df.attrs``: ``dataset``,
         ``window``, ``snapshot_id``, ``computed_at_ms``, ``units``, ``ate``
-        and ``ate_se``, ``leader``, ``best_set``,
+        and ``ate_se``, ``front_runner``, ``best_set``,
         ``no_detectable_heterogeneity``, ``incomplete`` (model -> coverage),
         ``overlap_degraded``, ``degenerate``, ``caveat``, ``json`` (the
-        full document) and ``alerts`` (the alerts' view: their leader,
-        ``leader_settled``, ``heterogeneity``, ``overlap_degraded``,
+        full document) and ``alerts`` (the alerts' view: their front-runner,
+        ``front_runner_settled``, ``heterogeneity``, ``overlap_degraded``,
         ``looks``, ``units`` and ``drift``, feature -> standardized
         difference). Raises ``FAILED_PRECONDITION`` before the first
         recompute.
@@ -798,7 +798,7 @@ def scoreboard_frame(board: "pb.Scoreboard") -> pd.DataFrame:
                 "vs_constant_ci_low": m.vs_constant.ci_low,
                 "vs_constant_ci_high": m.vs_constant.ci_high,
                 "vs_constant_p_value": m.vs_constant.p_value,
-                "p_best": m.p_best,
+                "draw_share": m.draw_share,
                 "in_best_set": m.in_best_set,
                 **{k: v for s in m.scores for k, v in ((s.estimator, s.estimate), (f"{s.estimator}_se", s.se))},
                 "policy_gain": m.policy_gain.estimate,
@@ -833,7 +833,7 @@ def scoreboard_frame(board: "pb.Scoreboard") -> pd.DataFrame:
             "units": board.units,
             "ate": board.ate.estimate,
             "ate_se": board.ate.se,
-            "leader": board.leader,
+            "front_runner": board.front_runner,
             "best_set": list(board.best_set),
             "no_detectable_heterogeneity": board.no_detectable_heterogeneity,
             "incomplete": {m.name: m.coverage for m in board.incomplete},
@@ -841,11 +841,11 @@ def scoreboard_frame(board: "pb.Scoreboard") -> pd.DataFrame:
             "degenerate": board.degenerate,
             "caveat": board.caveat,
             "json": board.json,
-            # The alerts' view: their leader moves only on evidence that
+            # The alerts' view: their front-runner moves only on evidence that
             # stays valid however often the service looks (README, "Alerts").
             "alerts": {
-                "leader": board.alerts.leader,
-                "leader_settled": board.alerts.leader_settled,
+                "front_runner": board.alerts.front_runner,
+                "front_runner_settled": board.alerts.front_runner_settled,
                 "heterogeneity": board.alerts.heterogeneity,
                 "overlap_degraded": board.alerts.overlap_degraded,
                 "looks": board.alerts.looks,

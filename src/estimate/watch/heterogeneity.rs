@@ -1,7 +1,7 @@
 //! Heterogeneity of the effect: detected when a model's confidence
 //! sequence against constant-effect (the pseudo-outcomes' running mean)
 //! excludes zero in the model's favour, lost when a detector finds the
-//! leader's advantage has fallen below zero.
+//! front-runner's advantage has fallen below zero.
 
 use std::collections::BTreeMap;
 
@@ -40,7 +40,7 @@ impl Watch {
         &mut self,
         losses: &[(&str, Vec<f64>)],
         baseline: &[f64],
-        leader: Option<&str>,
+        front_runner: Option<&str>,
         s: &WatchSettings,
         out: &mut Vec<Signal>,
     ) {
@@ -56,12 +56,14 @@ impl Watch {
         let log_a = log_threshold(s.alpha / 2.0, s.horizon, 1);
         match h.state {
             Heterogeneity::Detected => {
-                // The advantage watched is the reported leader's: when the
-                // leader changes, its own advantage is watched from here on
+                // The advantage watched is the reported front-runner's: when the
+                // front-runner changes, its own advantage is watched from here on
                 // (the first look places the detector's grid).
-                if let Some(leader) = leader.filter(|l| losses.iter().any(|(n, _)| n == l)) {
-                    if h.lead.as_ref().is_none_or(|(m, _)| m != leader) {
-                        h.lead = Some((leader.to_string(), Tracked::new(Side::Below)));
+                if let Some(front_runner) =
+                    front_runner.filter(|l| losses.iter().any(|(n, _)| n == l))
+                {
+                    if h.lead.as_ref().is_none_or(|(m, _)| m != front_runner) {
+                        h.lead = Some((front_runner.to_string(), Tracked::new(Side::Below)));
                     }
                 }
                 let Some((model, tracked)) = h.lead.as_mut() else {

@@ -8,19 +8,19 @@
 //! models' predictions. From these the watch keeps, with the error rates
 //! of [`super::sequential`] whatever the number of looks:
 //!
-//! - **the reported leader**: a challenger replaces it when a confidence
+//! - **the reported front-runner**: a challenger replaces it when a confidence
 //!   sequence on the mean difference of their squared pseudo-outcome errors
-//!   (since the leader was appointed) excludes zero in the challenger's
+//!   (since the front-runner was appointed) excludes zero in the challenger's
 //!   favour, or when a change detector finds the difference has turned in
 //!   the challenger's favour since some recent look. Half of alpha goes to
 //!   each route, shared over the challengers. A change restarts both.
-//! - **leader uncertain / settled**: a new leader is uncertain until the
+//! - **front-runner uncertain / settled**: a new front-runner is uncertain until the
 //!   confidence sequence of every challenger excludes zero in its favour.
-//!   Only a change of leader makes it uncertain again, so it cannot flap.
+//!   Only a change of front-runner makes it uncertain again, so it cannot flap.
 //! - **heterogeneity**: detected when a model's confidence sequence against
 //!   constant-effect (the pseudo-outcomes' running mean, as of the look
 //!   before) excludes zero in the model's favour; lost when a detector
-//!   finds the leader's advantage has fallen below zero.
+//!   finds the front-runner's advantage has fallen below zero.
 //! - **overlap**: degraded when a detector finds the share of units with a
 //!   propensity outside [eps, 1 - eps] above the dataset's limit; recovered
 //!   when the opposite detector finds it below. A share that sits at the
@@ -40,15 +40,15 @@
 //! detector's statistic against its threshold, and the alpha it spends.
 //!
 //! This file holds the watch's state and folds a look through the checks,
-//! one file each: `leader.rs`, `heterogeneity.rs`, `overlap.rs`,
+//! one file each: `front_runner.rs`, `heterogeneity.rs`, `overlap.rs`,
 //! `drift.rs` and `misfit.rs`. They share the vocabulary of `signal.rs`
 //! (what a look decides and the evidence for it), the settings of
 //! `settings.rs`, and `tracked.rs`, the running mean with a detector that
 //! every check is built from.
 
 mod drift;
+mod front_runner;
 mod heterogeneity;
-mod leader;
 mod misfit;
 mod overlap;
 mod settings;
@@ -73,8 +73,8 @@ pub use settings::{
 pub use signal::{Evidence, Route, Signal};
 
 use drift::DriftWatch;
+use front_runner::FrontRunnerWatch;
 use heterogeneity::HeterogeneityWatch;
-use leader::LeaderWatch;
 use misfit::FitWatch;
 use overlap::OverlapWatch;
 
@@ -111,7 +111,9 @@ pub struct Watch {
     outcome: Moments,
     /// Watched features, to standardize them in the calibration checks.
     features: Vec<Moments>,
-    leader: Option<LeaderWatch>,
+    /// (Stored watches from before the rename carry the key `leader`.)
+    #[serde(alias = "leader")]
+    front_runner: Option<FrontRunnerWatch>,
     heterogeneity: HeterogeneityWatch,
     overlap: OverlapWatch,
     fit: FitWatch,
@@ -122,8 +124,8 @@ pub struct Watch {
 /// The public state of a watch, for boards and metrics.
 #[derive(Debug, Clone, PartialEq)]
 pub struct WatchState {
-    pub leader: Option<String>,
-    pub leader_settled: bool,
+    pub front_runner: Option<String>,
+    pub front_runner_settled: bool,
     pub heterogeneity: Heterogeneity,
     pub overlap_degraded: bool,
     pub looks: u64,
@@ -138,9 +140,9 @@ pub struct WatchState {
 impl Watch {
     pub fn state(&self) -> WatchState {
         WatchState {
-            leader: self.leader.as_ref().map(|l| l.name.clone()),
-            leader_settled: self
-                .leader
+            front_runner: self.front_runner.as_ref().map(|l| l.name.clone()),
+            front_runner_settled: self
+                .front_runner
                 .as_ref()
                 .is_some_and(|l| l.settled || !l.contested),
             heterogeneity: self.heterogeneity.state,
@@ -215,12 +217,12 @@ impl Watch {
             })
             .filter(|(_, l): &(&str, Vec<f64>)| l.iter().any(|v| !v.is_nan()))
             .collect();
-        self.check_leader(&losses, a.models, s, &mut out);
+        self.check_front_runner(&losses, a.models, s, &mut out);
         if self.ate.count() >= 2 {
             let constant = self.ate.mean();
             let baseline: Vec<f64> = phi.iter().map(|p| (p - constant).powi(2)).collect();
-            let leader = self.leader.as_ref().map(|l| l.name.clone());
-            self.check_heterogeneity(&losses, &baseline, leader.as_deref(), s, &mut out);
+            let front_runner = self.front_runner.as_ref().map(|l| l.name.clone());
+            self.check_heterogeneity(&losses, &baseline, front_runner.as_deref(), s, &mut out);
         }
         self.ate.merge(&Moments::of(&phi));
         self.outcome.merge(&Moments::of(a.outcome));

@@ -5,7 +5,7 @@
 /// How a watch decides.
 #[derive(Debug, Clone, PartialEq)]
 pub struct WatchSettings {
-    /// Each family of alerts (leader, heterogeneity, overlap, misfit)
+    /// Each family of alerts (front-runner, heterogeneity, overlap, misfit)
     /// keeps its false-alarm probability at most this.
     pub alpha: f64,
     /// Looks over which a detector's false-alarm probability is at most

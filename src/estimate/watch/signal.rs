@@ -12,7 +12,7 @@ pub enum Route {
     Sequence,
     /// A change detector crossed its threshold.
     Detector,
-    /// The reported leader no longer predicts.
+    /// The reported front-runner no longer predicts.
     Gone,
 }
 
@@ -45,32 +45,32 @@ pub struct Evidence {
 /// What a look decided.
 #[derive(Debug, Clone, PartialEq)]
 pub enum Signal {
-    /// The first leader: no event, the watch has just started.
-    LeaderAppointed {
-        leader: String,
+    /// The first front-runner: no event, the watch has just started.
+    FrontRunnerAppointed {
+        front_runner: String,
     },
     /// `evidence` is on the difference old minus new in squared error
-    /// (positive: the new leader errs less).
-    LeaderChanged {
+    /// (positive: the new front-runner errs less).
+    FrontRunnerChanged {
         old: String,
         new: String,
         evidence: Evidence,
     },
-    /// The leader is not yet separated from these challengers.
-    LeaderUncertain {
-        leader: String,
+    /// The front-runner is not yet separated from these challengers.
+    FrontRunnerUncertain {
+        front_runner: String,
         tied: Vec<String>,
     },
-    /// Every challenger is separated from the leader.
-    LeaderSettled {
-        leader: String,
+    /// Every challenger is separated from the front-runner.
+    FrontRunnerSettled {
+        front_runner: String,
     },
     /// `evidence` is on constant-effect's error minus the model's.
     HeterogeneityDetected {
         model: String,
         evidence: Evidence,
     },
-    /// The leader's advantage over constant-effect has gone.
+    /// The front-runner's advantage over constant-effect has gone.
     HeterogeneityLost {
         model: String,
         evidence: Evidence,

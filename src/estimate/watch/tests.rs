@@ -106,7 +106,7 @@ fn a_feature_drift_is_found_and_named() {
     assert!(within >= 95, "{within}");
 }
 
-/// A leader with no predictions for one look keeps its place; a retired
+/// A front-runner with no predictions for one look keeps its place; a retired
 /// one (no longer among the active models) hands it to a challenger,
 /// and the event says why.
 #[test]
@@ -137,22 +137,25 @@ fn a_missing_batch_is_not_a_retirement() {
     // One model alone has no one to be separated from.
     let mut alone = Watch::default();
     observe(&mut alone, &["m1"], None);
-    assert!(alone.state().leader_settled);
+    assert!(alone.state().front_runner_settled);
     observe(&mut watch, &["m1", "m2"], None);
-    assert!(!watch.state().leader_settled);
-    let leader = watch.state().leader.expect("appointed");
-    let other = if leader == "m1" { "m2" } else { "m1" };
-    let signals = observe(&mut watch, &["m1", "m2"], Some(leader.as_str()));
+    assert!(!watch.state().front_runner_settled);
+    let front_runner = watch.state().front_runner.expect("appointed");
+    let other = if front_runner == "m1" { "m2" } else { "m1" };
+    let signals = observe(&mut watch, &["m1", "m2"], Some(front_runner.as_str()));
     assert!(
         !signals
             .iter()
-            .any(|s| matches!(s, Signal::LeaderChanged { .. })),
+            .any(|s| matches!(s, Signal::FrontRunnerChanged { .. })),
         "{signals:?}"
     );
-    assert_eq!(watch.state().leader.as_deref(), Some(leader.as_str()));
+    assert_eq!(
+        watch.state().front_runner.as_deref(),
+        Some(front_runner.as_str())
+    );
     let signals = observe(&mut watch, &[other], None);
     let changed = signals.iter().find_map(|s| match s {
-        Signal::LeaderChanged { new, evidence, .. } => Some((new.clone(), evidence.route)),
+        Signal::FrontRunnerChanged { new, evidence, .. } => Some((new.clone(), evidence.route)),
         _ => None,
     });
     assert_eq!(changed, Some((other.to_string(), Route::Gone)));

@@ -59,7 +59,7 @@ fn input(units: usize, nuisance: Option<NuisanceState>) -> RecomputeInput {
 }
 
 /// Numbers agree to 1e-9 relative (rounding of merged versus one-pass
-/// sums is near 1e-15; p_best counts draws, which would differ by
+/// sums is near 1e-15; draw_share counts draws, which would differ by
 /// 1/4000 only if a draw sat within rounding of a tie); everything else
 /// is equal.
 fn assert_close(a: &serde_json::Value, b: &serde_json::Value, path: &str) {

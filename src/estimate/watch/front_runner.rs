@@ -1,7 +1,7 @@
-//! The reported leader: the model with the lowest squared pseudo-outcome
+//! The reported front-runner: the model with the lowest squared pseudo-outcome
 //! error, replaced when a challenger's confidence sequence or change
 //! detector shows it errs less, and settled once every challenger is
-//! separated from it. A retired leader hands over to the best challenger.
+//! separated from it. A retired front-runner hands over to the best challenger.
 
 use std::collections::BTreeMap;
 
@@ -14,10 +14,10 @@ use super::tracked::Tracked;
 use super::{Watch, WatchSettings};
 
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
-pub(super) struct LeaderWatch {
+pub(super) struct FrontRunnerWatch {
     pub(super) name: String,
     pub(super) settled: bool,
-    /// Per challenger: the leader's squared error minus the challenger's
+    /// Per challenger: the front-runner's squared error minus the challenger's
     /// (positive: the challenger errs less), since the appointment.
     pairs: BTreeMap<String, Tracked>,
     /// Another model has predicted since the appointment: with none, there
@@ -27,14 +27,14 @@ pub(super) struct LeaderWatch {
 }
 
 impl Watch {
-    pub(super) fn check_leader(
+    pub(super) fn check_front_runner(
         &mut self,
         losses: &[(&str, Vec<f64>)],
         active: &[(String, Vec<f64>)],
         s: &WatchSettings,
         out: &mut Vec<Signal>,
     ) {
-        let Some(leader) = self.leader.as_mut() else {
+        let Some(front_runner) = self.front_runner.as_mut() else {
             // Appoint the model with the lowest mean error on this look.
             let best = losses
                 .iter()
@@ -42,18 +42,18 @@ impl Watch {
                 .filter(|(_, m)| m.is_finite())
                 .min_by(|a, b| a.1.total_cmp(&b.1));
             if let Some((name, _)) = best {
-                self.leader = Some(LeaderWatch {
+                self.front_runner = Some(FrontRunnerWatch {
                     name: name.to_string(),
                     settled: false,
                     pairs: BTreeMap::new(),
                     contested: losses.len() > 1,
                 });
-                out.push(Signal::LeaderAppointed {
-                    leader: name.to_string(),
+                out.push(Signal::FrontRunnerAppointed {
+                    front_runner: name.to_string(),
                 });
                 if losses.len() > 1 {
-                    out.push(Signal::LeaderUncertain {
-                        leader: name.to_string(),
+                    out.push(Signal::FrontRunnerUncertain {
+                        front_runner: name.to_string(),
                         tied: losses
                             .iter()
                             .map(|(n, _)| n.to_string())
@@ -64,19 +64,19 @@ impl Watch {
             }
             return;
         };
-        let Some(leader_losses) = losses
+        let Some(front_runner_losses) = losses
             .iter()
-            .find(|(n, _)| *n == leader.name)
+            .find(|(n, _)| *n == front_runner.name)
             .map(|(_, l)| l)
         else {
-            if active.iter().any(|(n, _)| *n == leader.name) {
+            if active.iter().any(|(n, _)| *n == front_runner.name) {
                 // Still active, but no prediction for these units (a late
                 // or failed batch of its predictions): nothing to compare.
                 return;
             }
-            // The leader was retired: the best challenger so far takes
+            // The front-runner was retired: the best challenger so far takes
             // over.
-            let next = leader
+            let next = front_runner
                 .pairs
                 .iter()
                 .filter(|(n, _)| losses.iter().any(|(m, _)| m == n))
@@ -88,10 +88,10 @@ impl Watch {
                         .map(|(n, _)| (n.to_string(), Tracked::new(Side::Above)))
                 });
             if let Some((name, tracked)) = next {
-                let old = leader.name.clone();
+                let old = front_runner.name.clone();
                 let evidence = tracked.evidence(Route::Gone, 0.0, 1.0, f64::INFINITY, 0.0);
                 self.appoint(name.clone(), losses.len() > 1);
-                out.push(Signal::LeaderChanged {
+                out.push(Signal::FrontRunnerChanged {
                     old,
                     new: name,
                     evidence,
@@ -103,16 +103,16 @@ impl Watch {
         let cs_alpha = s.alpha / 2.0 / challengers as f64;
         let log_a = log_threshold(s.alpha / 2.0, s.horizon, challengers);
         for (name, l) in losses {
-            if *name == leader.name {
+            if *name == front_runner.name {
                 continue;
             }
-            let d: Vec<f64> = leader_losses
+            let d: Vec<f64> = front_runner_losses
                 .iter()
                 .zip(l)
                 .filter(|(a, b)| !a.is_nan() && !b.is_nan())
                 .map(|(a, b)| a - b)
                 .collect();
-            leader
+            front_runner
                 .pairs
                 .entry(name.to_string())
                 .or_insert_with(|| Tracked::new(Side::Above))
@@ -121,7 +121,7 @@ impl Watch {
         // Challengers that are still predicting, with their evidence.
         let mut best: Option<(String, Evidence, f64)> = None;
         let mut tied = Vec::new();
-        for (name, t) in &leader.pairs {
+        for (name, t) in &front_runner.pairs {
             if !losses.iter().any(|(n, _)| n == name) {
                 continue;
             }
@@ -158,16 +158,16 @@ impl Watch {
             }
         }
         if let Some((new, evidence, _)) = best {
-            let old = leader.name.clone();
+            let old = front_runner.name.clone();
             self.appoint(new.clone(), losses.len() > 1);
-            out.push(Signal::LeaderChanged {
+            out.push(Signal::FrontRunnerChanged {
                 old,
                 new: new.clone(),
                 evidence,
             });
             if losses.len() > 1 {
-                out.push(Signal::LeaderUncertain {
-                    leader: new.clone(),
+                out.push(Signal::FrontRunnerUncertain {
+                    front_runner: new.clone(),
                     tied: losses
                         .iter()
                         .map(|(n, _)| n.to_string())
@@ -177,17 +177,17 @@ impl Watch {
             }
             return;
         }
-        leader.contested |= !leader.pairs.is_empty();
-        if !leader.settled && tied.is_empty() && !leader.pairs.is_empty() {
-            leader.settled = true;
-            out.push(Signal::LeaderSettled {
-                leader: leader.name.clone(),
+        front_runner.contested |= !front_runner.pairs.is_empty();
+        if !front_runner.settled && tied.is_empty() && !front_runner.pairs.is_empty() {
+            front_runner.settled = true;
+            out.push(Signal::FrontRunnerSettled {
+                front_runner: front_runner.name.clone(),
             });
         }
     }
 
     fn appoint(&mut self, name: String, contested: bool) {
-        self.leader = Some(LeaderWatch {
+        self.front_runner = Some(FrontRunnerWatch {
             name,
             settled: false,
             pairs: BTreeMap::new(),
