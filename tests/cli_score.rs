@@ -347,6 +347,19 @@ fn five_thousand_units_ten_models_json_carries_every_key() {
     assert!(table.contains("Error against constant-effect"));
     assert!(table.contains("lower estimate"));
     assert!(table.contains("RMSE at least"));
+    // The default report fits 100 columns (it once ran to 234); the wide
+    // view carries every estimator's column and each model's interval
+    // taken alone.
+    let widest = |t: &str| t.lines().map(|l| l.chars().count()).max().unwrap_or(0);
+    assert!(widest(&table) <= 100, "{} columns:\n{table}", widest(&table));
+    assert!(table.contains("95% joint interval") && !table.contains("R-loss"));
+    let (code, wide, _) = score(
+        &d.0.join("units.csv"),
+        &d.0.join("predictions.csv"),
+        &["--wide"],
+    );
+    assert_eq!(code, 0);
+    assert!(wide.contains("95% alone") && wide.contains("R-loss"), "{wide}");
 }
 
 /// The quick-start demo finishes by itself and its summary shows both a

@@ -13,6 +13,8 @@ use tonic::{Request, Status};
 use crate::api::pb;
 use crate::estimate::estimators;
 
+use super::board_table::{self, Row};
+
 #[derive(Debug, Clone, Copy, ValueEnum, PartialEq, Eq)]
 pub enum Output {
     Table,
@@ -344,7 +346,7 @@ pub fn models(c: &Connection, d: &DatasetArg, include_retired: bool) -> ExitCode
     })
 }
 
-pub fn scoreboard(c: &Connection, d: &DatasetArg, w: &WindowArg) -> ExitCode {
+pub fn scoreboard(c: &Connection, d: &DatasetArg, w: &WindowArg, wide: bool) -> ExitCode {
     run_async(async {
         let mut client = pb::scoring_client::ScoringClient::new(connect(c).await?)
             .max_decoding_message_size(256 << 20);
@@ -383,60 +385,59 @@ pub fn scoreboard(c: &Connection, d: &DatasetArg, w: &WindowArg) -> ExitCode {
         }
         let ate = b.ate.unwrap_or_default();
         println!(
-            "{} units; ATE (AIPW) {:.4} (se {:.4})",
-            b.units, ate.estimate, ate.se
+            "{} units; ATE (AIPW) {} (se {})",
+            b.units,
+            board_table::num(ate.estimate),
+            board_table::num(ate.se)
         );
-        // One column per estimator the server sent, in its order (the
-        // first ranks); a key this build does not know shows as sent.
-        let columns: Vec<(String, usize)> = b
+        let rows: Vec<Row> = b
             .models
-            .first()
-            .map(|m| {
-                m.scores
-                    .iter()
-                    .enumerate()
-                    .map(|(i, s)| {
-                        let label = estimators::by_key(&s.estimator)
-                            .map(|e| e.label())
-                            .unwrap_or(&s.estimator);
-                        let label = if i == 0 {
-                            format!("{label} (lower)")
-                        } else {
-                            label.to_string()
-                        };
-                        let w = label.len().max(if i == 0 { 22 } else { 10 });
-                        (label, w)
-                    })
-                    .collect()
-            })
-            .unwrap_or_default();
-        let mut header = format!(
-            "{:>4}  {:<24} {:>11} {:>24} {:>7}",
-            "rank", "model", "vs constant", "95% CI", "chance"
-        );
-        for (label, w) in &columns {
-            header.push_str(&format!("  {label:>w$}"));
+            .iter()
+            .map(|m| Row::from_wire(m, &b.front_runner))
+            .collect();
+        print!("{}", board_table::render(&rows, wide, ""));
+        print!("{}", board_table::legend(&rows, b.joint_critical_value, ""));
+        if let Some(line) = board_table::verdict_line(&rows) {
+            println!("{line}");
         }
-        println!("{header}  best");
-        for m in &b.models {
-            let v = m.vs_constant.unwrap_or_default();
-            let mut line = format!(
-                "{:>4}  {:<24} {:>11.4} {:>24} {:>7}",
-                m.rank,
-                m.name,
-                v.estimate,
-                format!("[{:.4}, {:.4}]", v.ci_low, v.ci_high),
-                super::render::chance(m.chance_lowest),
-            );
-            for (i, (s, (_, w))) in m.scores.iter().zip(&columns).enumerate() {
-                let cell = if i == 0 {
-                    format!("{:.4} ({:.4})", s.estimate, s.se)
-                } else {
-                    format!("{:.4}", s.estimate)
-                };
-                line.push_str(&format!("  {cell:>w$}"));
+        if wide {
+            // One column per estimator the server sent, in its order (the
+            // first ranks, with its se); a key this build does not know
+            // shows as sent.
+            let mut header = vec!["model".to_string()];
+            if let Some(m) = b.models.first() {
+                for (i, s) in m.scores.iter().enumerate() {
+                    let label = estimators::by_key(&s.estimator)
+                        .map(|e| e.label())
+                        .unwrap_or(&s.estimator);
+                    header.push(if i == 0 {
+                        format!("{label} (lower)")
+                    } else {
+                        label.to_string()
+                    });
+                }
             }
-            println!("{line}  {}", if m.in_best_set { "yes" } else { "" });
+            let lines: Vec<Vec<String>> = b
+                .models
+                .iter()
+                .map(|m| {
+                    let mut line = vec![m.name.clone()];
+                    for (i, s) in m.scores.iter().enumerate() {
+                        line.push(if i == 0 {
+                            format!(
+                                "{} ({})",
+                                board_table::num(s.estimate),
+                                board_table::num(s.se)
+                            )
+                        } else {
+                            board_table::num(s.estimate)
+                        });
+                    }
+                    line
+                })
+                .collect();
+            println!();
+            print!("{}", super::render::grid("", &header, &lines));
         }
         for i in &b.incomplete {
             println!(
@@ -450,9 +451,6 @@ pub fn scoreboard(c: &Connection, d: &DatasetArg, w: &WindowArg) -> ExitCode {
             b.front_runner,
             b.best_set.join(", ")
         );
-        if b.no_detectable_heterogeneity {
-            println!("no detectable heterogeneity: no model beats constant-effect significantly");
-        }
         if let Some(a) = b.alerts.as_ref().filter(|a| a.looks > 0) {
             println!(
                 "alerts (on {} units watched as they arrived, {} recomputes): front-runner {}{}; \

@@ -26,6 +26,8 @@ use crate::config::{Config, LogFormat};
 use crate::store::Durability;
 use crate::synth::standard_normal;
 
+use super::board_table::{self, Row};
+
 #[derive(Debug, Args)]
 pub struct DemoArgs {
     /// Seed of the invented scenario.
@@ -229,6 +231,9 @@ async fn send_outcomes(c: &mut Client, members: &[Member]) -> DemoResult<u64> {
         .accepted)
 }
 
+/// Set once the demo has printed what its table's columns mean.
+static LEGEND_SHOWN: std::sync::atomic::AtomicBool = std::sync::atomic::AtomicBool::new(false);
+
 fn print_board(b: &pb::Scoreboard) {
     if !b.degenerate.is_empty() {
         println!("    (no scores yet: {})", b.degenerate);
@@ -239,27 +244,17 @@ fn print_board(b: &pb::Scoreboard) {
         "    recent window: {} members, average effect of a credit {:+.2} rides (se {:.2})",
         b.units, ate.estimate, ate.se
     );
-    println!(
-        "    {:<16} {:>11}  {:>20}  {:>6}  best",
-        "model", "vs constant", "95% interval", "chance"
-    );
-    for m in &b.models {
-        let v = m.vs_constant.unwrap_or_default();
-        let marker = if m.name == b.front_runner {
-            "front_runner"
-        } else if m.in_best_set {
-            "tied"
-        } else {
-            ""
-        };
-        println!(
-            "    {:<16} {:>+11.3}  [{:>+8.3}, {:>+8.3}]  {:>6}  {}",
-            m.name,
-            v.estimate,
-            v.ci_low,
-            v.ci_high,
-            super::render::chance(m.chance_lowest),
-            marker
+    let rows: Vec<Row> = b
+        .models
+        .iter()
+        .map(|m| Row::from_wire(m, &b.front_runner))
+        .collect();
+    print!("{}", board_table::render(&rows, false, "    "));
+    // The columns are explained under the first table only.
+    if !LEGEND_SHOWN.swap(true, std::sync::atomic::Ordering::Relaxed) {
+        print!(
+            "{}",
+            board_table::legend(&rows, b.joint_critical_value, "    ")
         );
     }
     if let Some(o) = &b.overlap {
@@ -273,11 +268,10 @@ fn print_board(b: &pb::Scoreboard) {
             if o.degraded { "  <- degraded" } else { "" }
         );
     }
-    if b.no_detectable_heterogeneity {
-        println!(
-            "    no model beats constant-effect once all {} comparisons are accounted for (Holm, level 0.05)",
-            b.models.iter().filter(|m| !m.baseline).count()
-        );
+    // Said only when no model beats constant-effect, read off the intervals
+    // above; the table shows the others.
+    if let Some(line) = board_table::verdict_line(&rows).filter(|l| l.starts_with("no model")) {
+        println!("    {line}");
     }
 }
 

@@ -1,6 +1,7 @@
 //! The `plumbline` command line. One file per command; each parses its
 //! arguments into a request and applies it.
 
+mod board_table;
 mod client;
 mod demo;
 mod ingest;
@@ -68,6 +69,10 @@ pub enum Command {
         dataset: client::DatasetArg,
         #[command(flatten)]
         window: client::WindowArg,
+        /// Every column: each model's se, its interval taken alone, and
+        /// every estimator's score.
+        #[arg(long)]
+        wide: bool,
     },
     /// One model's score over time.
     History {
@@ -141,7 +146,8 @@ pub fn run() -> ExitCode {
             connection,
             dataset,
             window,
-        } => client::scoreboard(&connection, &dataset, &window),
+            wide,
+        } => client::scoreboard(&connection, &dataset, &window, wide),
         Command::History { connection, args } => client::history(&connection, &args),
         Command::Events { connection, args } => client::events(&connection, &args),
         Command::Overlap {

@@ -9,46 +9,20 @@ use crate::estimate::crossfit::ComponentReport;
 use crate::estimate::estimators;
 use crate::estimate::level::LevelReport;
 use crate::estimate::overlap::{OverlapReport, CRUMP_LOW, SMD_FLAG};
-use crate::estimate::scoreboard::{ModelScore, Scoreboard};
+use crate::estimate::scoreboard::Scoreboard;
+use crate::estimate::stats::Estimate;
+
+use super::board_table::{self, num, Row};
 use crate::estimate::OutcomeKind;
-
-fn num(v: f64) -> String {
-    // Rounding residue of an exact zero (e.g. the AUTOC of a constant model).
-    let v = if v.abs() < 1e-12 { 0.0 } else { v };
-    let a = v.abs();
-    if a != 0.0 && !(1e-3..1e6).contains(&a) {
-        format!("{v:.3e}")
-    } else if a >= 1000.0 {
-        format!("{v:.1}")
-    } else {
-        format!("{v:.4}")
-    }
-}
-
-fn verdict(m: &ModelScore) -> &'static str {
-    if m.name == crate::estimate::CONSTANT_EFFECT {
-        "reference"
-    } else if m.vs_constant.ci_high < 0.0 {
-        "lower error"
-    } else if m.vs_constant.ci_low > 0.0 {
-        "higher error"
-    } else {
-        "not distinguishable"
-    }
-}
-
-/// A model's chance of the lowest error, or "-" on a board from a server
-/// that predates it.
-pub fn chance(c: Option<f64>) -> String {
-    c.map_or_else(|| "-".to_string(), |c| format!("{c:.3}"))
-}
 
 fn pct(v: f64) -> String {
     format!("{:.1}%", 100.0 * v)
 }
 
 /// Renders the scoreboard as text.
-pub fn table(b: &Scoreboard, kind: OutcomeKind, folds: usize) -> String {
+/// `wide` adds each model's standard error, its interval taken alone and
+/// every estimator's column; the default stays under 100 columns.
+pub fn table(b: &Scoreboard, kind: OutcomeKind, folds: usize, wide: bool) -> String {
     let mut s = String::new();
     let kind = match kind {
         OutcomeKind::Continuous => "continuous",
@@ -73,35 +47,19 @@ pub fn table(b: &Scoreboard, kind: OutcomeKind, folds: usize) -> String {
         "Error against constant-effect: corrected PEHE of the model minus that of constant-effect \
          (below 0 = lower error)"
     );
-    let name_w = b
+    let rows: Vec<Row> = b
         .models
         .iter()
-        .map(|m| m.name.len())
-        .max()
-        .unwrap_or(5)
-        .max(5);
-    let _ = writeln!(
-        s,
-        "  {:>4}  {:<name_w$}  {:>12}  {:>27}  {:>6}  {:>4}  verdict",
-        "rank", "model", "difference", "95% CI", "chance", "best"
-    );
-    for m in &b.models {
-        let ci = format!(
-            "[{}, {}]",
-            num(m.vs_constant.ci_low),
-            num(m.vs_constant.ci_high)
-        );
-        let _ = writeln!(
-            s,
-            "  {:>4}  {:<name_w$}  {:>12}  {:>27}  {:>6.3}  {:>4}  {}",
-            m.rank,
-            m.name,
-            num(m.vs_constant.estimate),
-            ci,
-            m.chance_lowest,
-            if m.in_best_set { "yes" } else { "" },
-            verdict(m)
-        );
+        .map(|m| Row::from_offline(m, &b.front_runner))
+        .collect();
+    s.push_str(&board_table::render(&rows, wide, "  "));
+    s.push_str(&board_table::legend(
+        &rows,
+        Some(b.joint_critical_value),
+        "  ",
+    ));
+    if let Some(line) = board_table::verdict_line(&rows) {
+        let _ = writeln!(s, "  {line}");
     }
     let _ = writeln!(s);
     let _ = writeln!(
@@ -121,71 +79,52 @@ pub fn table(b: &Scoreboard, kind: OutcomeKind, folds: usize) -> String {
         num(b.front_runner_vs_constant.ci_low),
         num(b.front_runner_vs_constant.ci_high)
     );
-    let _ = writeln!(
-        s,
-        "Chance: of having the lowest true error (pooled over the models, even when they tie). \
-         Intervals holding for all {} rows at once: difference +- {} se.",
-        b.models.len(),
-        num(b.joint_critical_value)
-    );
-    if b.no_detectable_heterogeneity {
-        let _ = writeln!(
-            s,
-            "No detectable heterogeneity: no model has significantly lower error than \
-             constant-effect, so targeting on these models adds nothing measurable here."
-        );
-    }
     let _ = writeln!(s);
     let _ = writeln!(s, "Per-model scores (mean, se in parentheses)");
-    // One column per estimator of `estimators::ALL`; the ranking one, first,
-    // carries its standard error.
-    let columns: Vec<(String, usize)> = estimators::ALL
+    let with_se = |e: &Estimate| format!("{} ({})", num(e.estimate), num(e.se));
+    // The ranking estimator first, with its standard error; the wide view
+    // adds every other estimator, the share treated and the BLP slope.
+    let mut header = vec!["model".to_string()];
+    for (i, e) in estimators::ALL.iter().enumerate() {
+        if i == estimators::RANKED_BY {
+            header.push(format!("{} (lower)", e.label()));
+        } else if wide {
+            header.push(e.label().to_string());
+        }
+    }
+    header.extend(["policy gain".to_string(), "AUTOC".to_string()]);
+    if wide {
+        header.extend(["treats".to_string(), "BLP slope".to_string()]);
+    }
+    let lines: Vec<Vec<String>> = b
+        .models
         .iter()
-        .enumerate()
-        .map(|(i, e)| {
-            if i == estimators::RANKED_BY {
-                (format!("{} (lower)", e.label()), 22)
-            } else {
-                (e.label().to_string(), e.label().len().max(10))
+        .map(|m| {
+            let mut line = vec![m.name.clone()];
+            for (i, (_, e)) in m.scores.iter().enumerate() {
+                if i == estimators::RANKED_BY {
+                    line.push(with_se(&e));
+                } else if wide {
+                    line.push(num(e.estimate));
+                }
             }
+            line.push(with_se(&Estimate::new(
+                m.policy_gain.estimate,
+                m.policy_gain.se,
+            )));
+            line.push(with_se(&m.autoc));
+            if wide {
+                line.push(pct(m.policy_gain.treated_share));
+                line.push(
+                    m.blp_slope
+                        .as_ref()
+                        .map_or_else(|| "no variation".into(), with_se),
+                );
+            }
+            line
         })
         .collect();
-    let mut header = format!("  {:<name_w$}", "model");
-    for (label, w) in &columns {
-        let _ = write!(header, "  {label:>w$}");
-    }
-    let _ = writeln!(
-        s,
-        "{header}  {:>22}  {:>7}  {:>20}  {:>18}",
-        "policy gain", "treats", "AUTOC", "BLP slope"
-    );
-    for m in &b.models {
-        let slope = match &m.blp_slope {
-            Some(e) => format!("{} ({})", num(e.estimate), num(e.se)),
-            None => "no variation".to_string(),
-        };
-        let mut line = format!("  {:<name_w$}", m.name);
-        for (i, ((_, e), (_, w))) in m.scores.iter().zip(&columns).enumerate() {
-            let cell = if i == estimators::RANKED_BY {
-                format!("{} ({})", num(e.estimate), num(e.se))
-            } else {
-                num(e.estimate)
-            };
-            let _ = write!(line, "  {cell:>w$}");
-        }
-        let _ = writeln!(
-            s,
-            "{line}  {:>22}  {:>7}  {:>20}  {:>18}",
-            format!(
-                "{} ({})",
-                num(m.policy_gain.estimate),
-                num(m.policy_gain.se)
-            ),
-            pct(m.policy_gain.treated_share),
-            format!("{} ({})", num(m.autoc.estimate), num(m.autoc.se)),
-            slope
-        );
-    }
+    s.push_str(&grid("  ", &header, &lines));
     let _ = writeln!(
         s,
         "  policy gain: per unit over treating nobody, at cost {}",
@@ -193,7 +132,7 @@ pub fn table(b: &Scoreboard, kind: OutcomeKind, folds: usize) -> String {
     );
     if let Some(levels) = &b.levels {
         let _ = writeln!(s);
-        rmse_at_least(&mut s, b, levels, name_w);
+        rmse_at_least(&mut s, b, levels);
     }
     let _ = writeln!(s);
     if let Some(report) = &b.blend {
@@ -237,11 +176,22 @@ pub fn table(b: &Scoreboard, kind: OutcomeKind, folds: usize) -> String {
     }
     let _ = writeln!(s);
     let _ = writeln!(s, "Note: {}", b.caveat);
-    s
+    if wide {
+        s
+    } else {
+        wrap_prose(&s, PROSE_WIDTH)
+    }
 }
 
 /// Each registered model's lower bound on its RMSE, in rank order.
-fn rmse_at_least(s: &mut String, b: &Scoreboard, levels: &LevelReport, name_w: usize) {
+fn rmse_at_least(s: &mut String, b: &Scoreboard, levels: &LevelReport) {
+    let name_w = b
+        .models
+        .iter()
+        .map(|m| m.name.len())
+        .max()
+        .unwrap_or(5)
+        .max(5);
     let _ = writeln!(
         s,
         "RMSE at least ({:.0}% one-sided lower bound)",
@@ -414,4 +364,109 @@ fn overlap(s: &mut String, o: &OverlapReport) {
             flagged.join(", ")
         }
     );
+}
+
+/// A table whose first column is left-aligned and the others right-aligned,
+/// each as wide as its widest cell.
+pub(super) fn grid(indent: &str, header: &[String], lines: &[Vec<String>]) -> String {
+    let widths: Vec<usize> = (0..header.len())
+        .map(|j| {
+            lines
+                .iter()
+                .filter_map(|l| l.get(j))
+                .chain(std::iter::once(&header[j]))
+                .map(|c| c.chars().count())
+                .max()
+                .unwrap_or(0)
+        })
+        .collect();
+    let mut out = String::new();
+    for line in std::iter::once(header).chain(lines.iter().map(Vec::as_slice)) {
+        let mut text = indent.to_string();
+        for (j, (cell, w)) in line.iter().zip(&widths).enumerate() {
+            if j == 0 {
+                let _ = write!(text, "{cell:<w$}");
+            } else {
+                let _ = write!(text, "  {cell:>w$}");
+            }
+        }
+        let _ = writeln!(out, "{}", text.trim_end());
+    }
+    out
+}
+
+/// Width that prose lines of the report are wrapped to.
+const PROSE_WIDTH: usize = 100;
+
+/// Wraps each line longer than `width` at spaces. A line's last cell (what
+/// follows its last run of two spaces, or the whole text after the indent)
+/// continues on the next lines under where that cell began, so a labelled
+/// line such as "  treated  propensity min ..." keeps its label column.
+/// The wide view is not wrapped: its rows are meant to be long.
+fn wrap_prose(text: &str, width: usize) -> String {
+    let mut out = String::with_capacity(text.len() + text.len() / 50);
+    for line in text.lines() {
+        if line.chars().count() <= width || !line.is_ascii() {
+            out.push_str(line);
+            out.push('\n');
+            continue;
+        }
+        let body = line.trim_start();
+        let indent = line.len() - body.len();
+        let cell = |i: usize| indent + i + body[i..].len() - body[i..].trim_start().len();
+        // Under the last cell, unless that leaves too little room; then under
+        // the second.
+        let start = match body.rfind("  ").map(cell) {
+            Some(c) if c <= width / 2 => c,
+            _ => body
+                .find("  ")
+                .map(cell)
+                .filter(|&c| c <= width / 2)
+                .unwrap_or(indent),
+        };
+        let hang = " ".repeat(start);
+        let mut current = line[..start].to_string();
+        let mut empty = true;
+        for word in line[start..].split(' ') {
+            if !empty && current.len() + 1 + word.len() > width {
+                out.push_str(&current);
+                out.push('\n');
+                current.clone_from(&hang);
+                empty = true;
+            }
+            if !empty {
+                current.push(' ');
+            }
+            current.push_str(word);
+            empty = false;
+        }
+        out.push_str(&current);
+        out.push('\n');
+    }
+    out
+}
+
+#[cfg(test)]
+mod tests {
+    use super::wrap_prose;
+
+    #[test]
+    fn prose_wraps_and_tables_stay_whole() {
+        let prose = format!("  {}", "word ".repeat(40).trim_end());
+        let row = format!("  a  {}", "1234567890 ".repeat(12));
+        let text = wrap_prose(&format!("{prose}\n{row}\nshort\n"), 60);
+        let lines: Vec<&str> = text.lines().collect();
+        assert!(lines.len() > 4, "{text}");
+        for l in &lines {
+            assert!(l.chars().count() <= 60, "{l:?}");
+        }
+        assert!(lines.iter().all(|l| l.starts_with("  ")) || lines.last() == Some(&"short"));
+        // The labelled row continues under its last cell.
+        let labelled = wrap_prose(&format!("  label  {}", "word ".repeat(20)), 40);
+        for l in labelled.lines().skip(1) {
+            assert!(l.starts_with("         word"), "{l:?}");
+        }
+        assert_eq!(lines[lines.len() - 1], "short");
+        assert_eq!(text.split_whitespace().filter(|w| *w == "word").count(), 40);
+    }
 }

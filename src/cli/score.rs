@@ -54,6 +54,10 @@ pub struct ScoreArgs {
     pub alpha: f64,
     #[arg(long, value_enum, default_value_t = Format::Table)]
     pub format: Format,
+    /// Tables with every column: each model's se, its interval taken alone,
+    /// every estimator, the share treated and the BLP slope.
+    #[arg(long)]
+    pub wide: bool,
 }
 
 /// The same floor as the server's `limits.max_fit_units`.
@@ -134,7 +138,7 @@ pub fn run(args: &ScoreArgs) -> ExitCode {
                 return ExitCode::FAILURE;
             }
         },
-        Format::Table => render::table(&board, units.table.outcome_kind(), args.folds),
+        Format::Table => render::table(&board, units.table.outcome_kind(), args.folds, args.wide),
     };
     println!("{out}");
     ExitCode::SUCCESS
