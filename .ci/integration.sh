@@ -13,6 +13,7 @@
 #   - clients/python/example.py streams the committed simulated dataset,
 #     recomputes with a refit and gets a scoreboard ranking every model plus
 #     the two baselines;
+#   - the Python client's unit tests (clients/python/tests) pass;
 #   - a recompute of a dataset with no outcomes fails as documented
 #     (FAILED_PRECONDITION), which the service counts in
 #     plumbline_recompute_failures_total;
@@ -189,6 +190,14 @@ if python3 "$client_dir/example.py" "$grpc_addr" --dataset integration-nie-wager
     pass "clients/python/example.py against the live server"
 else
     fail "clients/python/example.py against the live server"
+fi
+
+# The client's frames and defaults, against messages built in the test (no
+# server), and its history default against the binary's --help.
+if PLUMBLINE_BIN="$bin" python3 -m unittest discover -s "$client_dir/tests"; then
+    pass "clients/python/tests (frames and defaults)"
+else
+    fail "clients/python/tests (frames and defaults)"
 fi
 
 # A recompute of a dataset without outcomes must fail with

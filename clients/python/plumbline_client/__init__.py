@@ -93,6 +93,9 @@ SCOREBOARD_COLUMNS = [
     "vs_constant_ci_low",
     "vs_constant_ci_high",
     "vs_constant_p_value",
+    "vs_constant_joint_low",
+    "vs_constant_joint_high",
+    "chance_lowest",
     "draw_share",
     "in_best_set",
     "policy_gain",
@@ -103,7 +106,24 @@ SCOREBOARD_COLUMNS = [
     "qini",
     "qini_se",
     "blp_slope",
+    "top_minus_bottom",
+    "top_minus_bottom_se",
 ]
+
+#: Columns of :meth:`Client.list_datasets`.
+DATASET_COLUMNS = [
+    "name",
+    "outcome_kind",
+    "features",
+    "units",
+    "outcomes",
+    "predictions",
+    "active_models",
+    "created_at",
+]
+
+#: Columns of :meth:`Client.overlap`: one row per arm.
+OVERLAP_COLUMNS = ["arm", "effective_share", "max_weight"]
 
 
 # --------------------------------------------------------------------- results
@@ -370,13 +390,20 @@ class Client:
         """Returns one dataset with its counts; ``NOT_FOUND`` if unknown."""
         return self._call("DatasetRegistry.GetDataset", self.datasets.GetDataset, pb.GetDatasetRequest(name=name))
 
-    def list_datasets(self) -> List["pb.Dataset"]:
-        """Returns every dataset."""
+    def dataset_messages(self) -> List["pb.Dataset"]:
+        """Every dataset as the raw protobuf messages (with the full spec)."""
         return list(
             self._call(
                 "DatasetRegistry.ListDatasets", self.datasets.ListDatasets, pb.ListDatasetsRequest()
             ).datasets
         )
+
+    def list_datasets(self) -> pd.DataFrame:
+        """Every dataset as a DataFrame, one row each (``DATASET_COLUMNS``):
+        name, outcome_kind (``continuous`` or ``binary``), features (count),
+        units, outcomes, predictions, active_models, created_at (UTC). The
+        full specs are in :meth:`dataset_messages`."""
+        return datasets_frame(self.dataset_messages())
 
     # -- models
 
@@ -674,7 +701,7 @@ class Client:
         self,
         dataset: str,
         model: str,
-        estimator: str = "corrected_pehe",
+        estimator: str = "vs_constant",
         window: str = "cumulative",
         cohort: Optional[str] = None,
         from_ms: int = 0,
@@ -682,8 +709,9 @@ class Client:
     ) -> pd.DataFrame:
         """One model's value of one estimator over time, oldest first.
 
-        Estimators: corrected_pehe, vs_constant, plugin_pehe, dr_loss, r_loss,
-        ipw_loss, policy_gain, autoc, qini. Columns: snapshot_id, computed_at
+        Estimators: vs_constant (the default, as for ``plumbline history``:
+        corrected PEHE minus constant-effect's), corrected_pehe, plugin_pehe,
+        dr_loss, r_loss, ipw_loss, policy_gain, autoc, qini. Columns: snapshot_id, computed_at
         (UTC datetime), estimate, se, rank, units.
         """
         r = self._call(
@@ -737,13 +765,24 @@ class Client:
             "units": r.units,
         }
 
-    def overlap(self, dataset: str, window: str = "cumulative", cohort: Optional[str] = None) -> "pb.OverlapReport":
-        """The latest overlap report (summary plus the full report as JSON)."""
+    def overlap_message(
+        self, dataset: str, window: str = "cumulative", cohort: Optional[str] = None
+    ) -> "pb.OverlapReport":
+        """The latest overlap report as the raw protobuf message."""
         return self._call(
             "Scoring.GetOverlap",
             self.scoring.GetOverlap,
             pb.GetOverlapRequest(dataset=dataset, window=_window(window, cohort)),
         )
+
+    def overlap(self, dataset: str, window: str = "cumulative", cohort: Optional[str] = None) -> pd.DataFrame:
+        """The latest overlap report as a DataFrame, one row per arm
+        (``OVERLAP_COLUMNS``: arm, effective_share, max_weight). The summary
+        travels in ``df.attrs``: eps, extreme_share (units outside
+        [eps, 1 - eps]), outside_crump_share, imbalanced_features,
+        propensity_auc, clipped, degraded and json (the full report, with the
+        histograms)."""
+        return overlap_frame(self.overlap_message(dataset, window, cohort))
 
     # -- events
 
@@ -784,6 +823,57 @@ class Client:
                 raise PlumblineError.from_rpc_error("EventFeed.WatchEvents", e) from None
 
 
+def _optional(message: Any, field: str) -> float:
+    """An optional double, or NaN when the server did not send it."""
+    return getattr(message, field) if message.HasField(field) else float("nan")
+
+
+def datasets_frame(datasets: Iterable["pb.Dataset"]) -> pd.DataFrame:
+    """Turns ``Dataset`` messages into the DataFrame of :meth:`Client.list_datasets`."""
+    kinds = {pb.OUTCOME_KIND_BINARY: "binary"}
+    return pd.DataFrame(
+        [
+            {
+                "name": d.spec.name,
+                "outcome_kind": kinds.get(d.spec.outcome_kind, "continuous"),
+                "features": len(d.spec.feature_names),
+                "units": d.units,
+                "outcomes": d.outcomes,
+                "predictions": d.predictions,
+                "active_models": d.active_models,
+                "created_at": pd.to_datetime(d.created_at_ms, unit="ms", utc=True),
+            }
+            for d in datasets
+        ],
+        columns=DATASET_COLUMNS,
+    )
+
+
+def overlap_frame(report: "pb.OverlapReport") -> pd.DataFrame:
+    """Turns an ``OverlapReport`` message into the DataFrame of :meth:`Client.overlap`."""
+    o = report.summary
+    df = pd.DataFrame(
+        [
+            {"arm": "treated", "effective_share": o.treated_effective_share, "max_weight": o.treated_max_weight},
+            {"arm": "control", "effective_share": o.control_effective_share, "max_weight": o.control_max_weight},
+        ],
+        columns=OVERLAP_COLUMNS,
+    )
+    df.attrs.update(
+        {
+            "eps": o.eps,
+            "extreme_share": o.extreme_share,
+            "outside_crump_share": o.outside_crump_share,
+            "imbalanced_features": list(o.imbalanced_features),
+            "propensity_auc": o.propensity_auc,
+            "clipped": o.clipped,
+            "degraded": o.degraded,
+            "json": report.json,
+        }
+    )
+    return df
+
+
 def scoreboard_frame(board: "pb.Scoreboard") -> pd.DataFrame:
     """Turns a ``Scoreboard`` message into the DataFrame of :meth:`Client.scoreboard`."""
     rows = []
@@ -798,6 +888,11 @@ def scoreboard_frame(board: "pb.Scoreboard") -> pd.DataFrame:
                 "vs_constant_ci_low": m.vs_constant.ci_low,
                 "vs_constant_ci_high": m.vs_constant.ci_high,
                 "vs_constant_p_value": m.vs_constant.p_value,
+                # Joint (max-t) interval and the pooled chance: NaN from a
+                # server that predates them.
+                "vs_constant_joint_low": _optional(m.vs_constant, "joint_low"),
+                "vs_constant_joint_high": _optional(m.vs_constant, "joint_high"),
+                "chance_lowest": _optional(m, "chance_lowest"),
                 "draw_share": m.draw_share,
                 "in_best_set": m.in_best_set,
                 **{k: v for s in m.scores for k, v in ((s.estimator, s.estimate), (f"{s.estimator}_se", s.se))},
@@ -809,6 +904,8 @@ def scoreboard_frame(board: "pb.Scoreboard") -> pd.DataFrame:
                 "qini": m.qini.estimate,
                 "qini_se": m.qini.se,
                 "blp_slope": m.blp_slope.estimate if m.HasField("blp_slope") else float("nan"),
+                "top_minus_bottom": m.top_minus_bottom.estimate if m.HasField("top_minus_bottom") else float("nan"),
+                "top_minus_bottom_se": m.top_minus_bottom.se if m.HasField("top_minus_bottom") else float("nan"),
             }
         )
     keys = [s.estimator for s in board.models[0].scores] if board.models else []
@@ -834,6 +931,16 @@ def scoreboard_frame(board: "pb.Scoreboard") -> pd.DataFrame:
             "ate": board.ate.estimate,
             "ate_se": board.ate.se,
             "front_runner": board.front_runner,
+            # The front-runner's difference from constant-effect, its interval
+            # allowing for its having been picked as the lowest.
+            "front_runner_vs_constant": {
+                "estimate": board.front_runner_vs_constant.estimate,
+                "ci_low": board.front_runner_vs_constant.ci_low,
+                "ci_high": board.front_runner_vs_constant.ci_high,
+            }
+            if board.HasField("front_runner_vs_constant")
+            else None,
+            "joint_critical_value": _optional(board, "joint_critical_value"),
             "best_set": list(board.best_set),
             "no_detectable_heterogeneity": board.no_detectable_heterogeneity,
             "incomplete": {m.name: m.coverage for m in board.incomplete},

@@ -1,0 +1,136 @@
+"""The client's frames and defaults, without a server: each call is given a
+stand-in for its gRPC stub that answers with a message built here.
+
+Run after ``generate.sh``: ``python3 -m unittest discover -s clients/python/tests``.
+Set ``PLUMBLINE_BIN`` to a built ``plumbline`` binary to also hold the
+client's ``history`` default to the command line's.
+"""
+
+import inspect
+import math
+import os
+import re
+import subprocess
+import sys
+import unittest
+from pathlib import Path
+
+sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
+
+import grpc  # noqa: E402
+import pandas as pd  # noqa: E402
+
+import plumbline_client as pc  # noqa: E402
+from plumbline_client._pb import plumbline_pb2 as pb  # noqa: E402
+
+
+class Answer:
+    """A stub method that records its request and returns ``reply``."""
+
+    def __init__(self, reply):
+        self.reply = reply
+        self.requests = []
+
+    def __call__(self, request, timeout=None):
+        self.requests.append(request)
+        return self.reply
+
+
+class Stub:
+    def __init__(self, **methods):
+        self.__dict__.update(methods)
+
+
+def client() -> pc.Client:
+    # A channel that is never used: every stub below is replaced.
+    return pc.Client(grpc.insecure_channel("127.0.0.1:9"), timeout=1.0)
+
+
+def spec(name: str, kind: int) -> "pb.DatasetSpec":
+    return pb.DatasetSpec(name=name, feature_names=["x1", "x2", "x3"], outcome_kind=kind)
+
+
+class Frames(unittest.TestCase):
+    def test_list_datasets_is_a_frame(self):
+        c = client()
+        c.datasets = Stub(
+            ListDatasets=Answer(
+                pb.ListDatasetsResponse(
+                    datasets=[
+                        pb.Dataset(spec=spec("a", pb.OUTCOME_KIND_CONTINUOUS), units=10, outcomes=7,
+                                   predictions=20, active_models=2, created_at_ms=1_700_000_000_000),
+                        pb.Dataset(spec=spec("b", pb.OUTCOME_KIND_BINARY), units=3),
+                    ]
+                )
+            )
+        )
+        df = c.list_datasets()
+        self.assertIsInstance(df, pd.DataFrame)
+        self.assertEqual(list(df.columns), pc.DATASET_COLUMNS)
+        self.assertEqual(list(df["name"]), ["a", "b"])
+        self.assertEqual(list(df["outcome_kind"]), ["continuous", "binary"])
+        self.assertEqual(int(df.loc[0, "features"]), 3)
+        self.assertEqual(int(df.loc[0, "outcomes"]), 7)
+        self.assertEqual(df.loc[0, "created_at"], pd.Timestamp(1_700_000_000_000, unit="ms", tz="UTC"))
+
+    def test_overlap_is_a_frame_with_the_summary_in_attrs(self):
+        c = client()
+        summary = pb.OverlapSummary(eps=0.05, extreme_share=0.3, treated_effective_share=0.87,
+                                    control_effective_share=0.21, treated_max_weight=0.01,
+                                    control_max_weight=0.2, imbalanced_features=["x2"], degraded=True)
+        c.scoring = Stub(GetOverlap=Answer(pb.OverlapReport(summary=summary, json="{}")))
+        df = c.overlap("a", window="recent")
+        self.assertIsInstance(df, pd.DataFrame)
+        self.assertEqual(list(df.columns), pc.OVERLAP_COLUMNS)
+        self.assertEqual(list(df["arm"]), ["treated", "control"])
+        self.assertAlmostEqual(df.loc[1, "effective_share"], 0.21)
+        self.assertTrue(df.attrs["degraded"])
+        self.assertEqual(df.attrs["imbalanced_features"], ["x2"])
+        self.assertAlmostEqual(df.attrs["extreme_share"], 0.3)
+
+    def test_scoreboard_carries_the_joint_interval_chance_and_contrast(self):
+        new = pb.ModelScore(
+            name="m1", rank=1, chance_lowest=0.4, draw_share=0.6,
+            vs_constant=pb.Difference(estimate=-0.5, se=0.1, ci_low=-0.7, ci_high=-0.3,
+                                      joint_low=-0.8, joint_high=-0.2),
+            top_minus_bottom=pb.Estimate(estimate=1.5, se=0.3),
+        )
+        old = pb.ModelScore(name="m0", rank=2,
+                            vs_constant=pb.Difference(estimate=0.1, se=0.1, ci_low=-0.1, ci_high=0.3))
+        board = pb.Scoreboard(
+            dataset="a", models=[new, old], front_runner="m1", joint_critical_value=2.4,
+            front_runner_vs_constant=pb.AdjustedInterval(estimate=-0.5, ci_low=-0.9, ci_high=-0.1),
+        )
+        df = pc.scoreboard_frame(board)
+        self.assertEqual(list(df.columns), pc.SCOREBOARD_COLUMNS)
+        self.assertEqual(df.loc[0, "chance_lowest"], 0.4)
+        self.assertEqual((df.loc[0, "vs_constant_joint_low"], df.loc[0, "vs_constant_joint_high"]), (-0.8, -0.2))
+        self.assertEqual((df.loc[0, "top_minus_bottom"], df.loc[0, "top_minus_bottom_se"]), (1.5, 0.3))
+        # A board from a server that predates them: NaN, not zero.
+        self.assertTrue(math.isnan(df.loc[1, "chance_lowest"]))
+        self.assertTrue(math.isnan(df.loc[1, "vs_constant_joint_low"]))
+        self.assertTrue(math.isnan(df.loc[1, "top_minus_bottom"]))
+        self.assertEqual(df.attrs["front_runner"], "m1")
+        self.assertEqual(df.attrs["front_runner_vs_constant"], {"estimate": -0.5, "ci_low": -0.9, "ci_high": -0.1})
+        self.assertEqual(df.attrs["joint_critical_value"], 2.4)
+
+
+class Defaults(unittest.TestCase):
+    def test_history_asks_for_what_the_command_line_asks_for(self):
+        default = inspect.signature(pc.Client.history).parameters["estimator"].default
+        self.assertEqual(default, "vs_constant")
+        c = client()
+        c.scoring = Stub(GetHistory=Answer(pb.GetHistoryResponse()))
+        c.history("a", "m1")
+        self.assertEqual(c.scoring.GetHistory.requests[0].estimator, default)
+        binary = os.environ.get("PLUMBLINE_BIN")
+        if binary:
+            help_text = subprocess.run([binary, "history", "--help"], capture_output=True, text=True,
+                                       check=True).stdout
+            cli = re.search(r"--estimator <ESTIMATOR>.*?\[default: (\w+)\]", help_text, re.S)
+            self.assertIsNotNone(cli, help_text)
+            self.assertEqual(cli.group(1), default)
+
+
+if __name__ == "__main__":
+    unittest.main()
