@@ -466,7 +466,7 @@ async fn degraded_front_runner_is_replaced_promptly() {
         "change: detected {detected}/{STREAMS}, median delay {} recomputes \
          (undetected count as never); criteria at least {CHANGE_MIN_DETECTED} detected, \
          median at most {CHANGE_MAX_MEDIAN_DELAY}; {early}/{STREAMS} streams had a false \
-         front_runner_changed before the change; the recent board's front_runner moved between \
+         front_runner_changed before the change; the recent board's front-runner moved between \
          cohorts 1 and 12 in {differ}/{STREAMS}; {seconds:.1} s",
         if median.is_finite() {
             format!("{median}")

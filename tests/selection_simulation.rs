@@ -130,10 +130,10 @@ fn a_thousand_tied_candidates_keep_honest_intervals_and_chances() {
     let m = CANDIDATES as f64;
     println!(
         "{CANDIDATES} tied candidates, n = {UNITS}, {REPLICATIONS} replications:\n  \
-         front_runner's selection-adjusted 95% interval covers {adjusted:.3} (its unadjusted interval {plain:.3})\n  \
+         front-runner's selection-adjusted 95% interval covers {adjusted:.3} (its unadjusted interval {plain:.3})\n  \
          joint 95% intervals of every difference from constant-effect cover together {joint:.3}\n  \
-         front_runner's chance of the lowest error averages {chance:.4} (1/m = {:.4}; share of draws {draws:.4})\n  \
-         front_runner is a candidate, not a baseline: {registered:.3}",
+         front-runner's chance of the lowest error averages {chance:.4} (1/m = {:.4}; share of draws {draws:.4})\n  \
+         front-runner is a candidate, not a baseline: {registered:.3}",
         1.0 / m
     );
     assert!(registered == 1.0, "a baseline led: the design is broken");

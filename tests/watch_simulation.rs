@@ -389,7 +389,7 @@ fn tied_models_raise_no_front_runner_change() {
             let drifted = runs.iter().filter(|r| r.drift_alarms > 0).count();
             println!(
                 "{count} tied models, batches of {batch}, {LOOKS} looks, {STREAMS} streams: \
-                 P(any false front_runner change) {:.3} (old rule {:.3}); P(any population_drift) \
+                 P(any false front-runner change) {:.3} (old rule {:.3}); P(any population_drift) \
                  {:.3}; nuisance refits asked {misfits}",
                 share(false_new),
                 share(false_old),

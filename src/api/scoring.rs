@@ -173,7 +173,7 @@ impl pb::scoring_server::Scoring for ScoringService {
         }
         Err(Status::not_found(format!(
             "no difference of {:?} and {:?} is kept in this window: both must be ranked, and a \
-             board keeps every pair among its top-ranked models and the front_runner against each \
+             board keeps every pair among its top-ranked models and the front-runner against each \
              of the others",
             r.first, r.second
         )))
