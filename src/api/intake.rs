@@ -212,9 +212,7 @@ where
                 receipt.accepted += c.accepted as u64;
                 receipt.duplicate += c.duplicate as u64;
             }
-            Ok(Err(MonitorError::Rejected(r))) => {
-                return Err(refused(batch, &r, receipt))
-            }
+            Ok(Err(MonitorError::Rejected(r))) => return Err(refused(batch, &r, receipt)),
             Ok(Err(e)) => return Err(from_monitor(e)),
             Err(e) => {
                 return Err(with_receipt(

@@ -314,7 +314,11 @@ fn dataset_text(d: &pb::Dataset) -> String {
     for (key, value) in dataset_fields(d) {
         let text = match (key, &value) {
             ("created_at_ms", _) => {
-                out.push_str(&format!("{:<28} {}\n", "created", ms_to_text(d.created_at_ms)));
+                out.push_str(&format!(
+                    "{:<28} {}\n",
+                    "created",
+                    ms_to_text(d.created_at_ms)
+                ));
                 continue;
             }
             (_, Value::Array(items)) => items
@@ -351,10 +355,7 @@ pub fn dataset(c: &Connection, action: DatasetAction) -> ExitCode {
         DatasetAction::Create(a) => run_async(async move {
             let spec = create_request(*a)?;
             let d = registry(connect(c).await?)
-                .create_dataset(request(
-                    c,
-                    pb::CreateDatasetRequest { spec: Some(spec) },
-                )?)
+                .create_dataset(request(c, pb::CreateDatasetRequest { spec: Some(spec) })?)
                 .await
                 .map_err(failed)?
                 .into_inner();
@@ -440,7 +441,7 @@ fn models_text(list: &[pb::Model]) -> String {
             state,
             m.description
         );
-        out.push_str(&cut(&line, 100));
+        out.push_str(cut(&line, 100).trim_end());
         out.push('\n');
     }
     out
@@ -720,7 +721,11 @@ mod tests {
 
         let err = create_request(Probe::parse_from(["probe", "x", "--features", "a"]).create)
             .expect_err("no outcome kind");
-        assert!(err.message().starts_with("outcome_kind"), "{}", err.message());
+        assert!(
+            err.message().starts_with("outcome_kind"),
+            "{}",
+            err.message()
+        );
         let err = create_request(
             Probe::parse_from(["probe", "--features", "a", "--outcome-kind", "binary"]).create,
         )

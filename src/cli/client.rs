@@ -12,8 +12,8 @@ use tonic::metadata::MetadataValue;
 use tonic::transport::{Certificate, Channel, ClientTlsConfig, Identity};
 use tonic::{Request, Status};
 
-use super::clock::{now_ms, parse_time};
 pub(super) use super::clock::ms_to_text;
+use super::clock::{now_ms, parse_time};
 use crate::api::pb;
 use crate::estimate::estimators;
 
@@ -516,10 +516,7 @@ const EVENT_LEAD: usize = 6 + 2 + 20 + 2 + 27 + 2;
 const TABLE_WIDTH: usize = 100;
 
 pub(super) fn events_header() -> String {
-    format!(
-        "{:>6}  {:<20}  {:<27}  summary",
-        "id", "time", "kind"
-    )
+    format!("{:>6}  {:<20}  {:<27}  summary", "id", "time", "kind")
 }
 
 /// `text` broken at spaces into lines of at most `width` characters (a

@@ -179,7 +179,10 @@ mod tests {
             Ok(t - ((16 * 60 + 59) * 60 + 23) * 1000)
         );
         // 2000-03-01 is day 11,017 since the epoch (a leap century).
-        assert_eq!(parse_time("2000-03-01T00:00:00Z", NOW), Ok(11_017 * 86_400_000));
+        assert_eq!(
+            parse_time("2000-03-01T00:00:00Z", NOW),
+            Ok(11_017 * 86_400_000)
+        );
     }
 
     #[test]
@@ -191,7 +194,13 @@ mod tests {
 
     #[test]
     fn what_is_not_a_time_says_what_to_write() {
-        for bad in ["yesterday", "2026-13-01", "2026-12-04T16:59:23", "h", "2026-12-04T25:00:00Z"] {
+        for bad in [
+            "yesterday",
+            "2026-13-01",
+            "2026-12-04T16:59:23",
+            "h",
+            "2026-12-04T25:00:00Z",
+        ] {
             let e = parse_time(bad, NOW).expect_err(bad);
             assert!(e.contains(bad), "{e}");
         }

@@ -143,12 +143,24 @@ impl Layout {
         rec.get(col).unwrap_or("").trim()
     }
 
-    fn number(&self, rec: &csv::StringRecord, col: usize, row: usize, name: &str) -> Result<f64, InputError> {
+    fn number(
+        &self,
+        rec: &csv::StringRecord,
+        col: usize,
+        row: usize,
+        name: &str,
+    ) -> Result<f64, InputError> {
         let v = Self::cell(rec, col);
         v.parse::<f64>()
             .ok()
             .filter(|x| x.is_finite())
-            .ok_or_else(|| self.err(Some(row), Some(name), format!("{v:?} is not a finite number")))
+            .ok_or_else(|| {
+                self.err(
+                    Some(row),
+                    Some(name),
+                    format!("{v:?} is not a finite number"),
+                )
+            })
     }
 
     fn optional_int(
@@ -161,14 +173,20 @@ impl Layout {
         match col {
             Some(c) if !Self::cell(rec, c).is_empty() => {
                 let v = Self::cell(rec, c);
-                v.parse::<i64>()
-                    .map_err(|_| self.err(Some(row), Some(name), format!("{v:?} is not an integer")))
+                v.parse::<i64>().map_err(|_| {
+                    self.err(Some(row), Some(name), format!("{v:?} is not an integer"))
+                })
             }
             _ => Ok(0),
         }
     }
 
-    fn treatment(&self, rec: &csv::StringRecord, col: usize, row: usize) -> Result<u32, InputError> {
+    fn treatment(
+        &self,
+        rec: &csv::StringRecord,
+        col: usize,
+        row: usize,
+    ) -> Result<u32, InputError> {
         match Self::cell(rec, col) {
             "0" | "0.0" => Ok(0),
             "1" | "1.0" => Ok(1),
@@ -303,12 +321,10 @@ fn layout(kind: Kind, file: &Path, features: &[String]) -> Result<Layout, InputE
             features: features
                 .iter()
                 .map(|f| {
-                    need(f)
-                        .map(|c| (c, f.clone()))
-                        .map_err(|e| InputError {
-                            message: "the dataset's feature is missing from the file".into(),
-                            ..e
-                        })
+                    need(f).map(|c| (c, f.clone())).map_err(|e| InputError {
+                        message: "the dataset's feature is missing from the file".into(),
+                        ..e
+                    })
                 })
                 .collect::<Result<_, _>>()?,
             treatment: need("treatment")?,
@@ -397,7 +413,11 @@ impl From<String> for Failed {
     }
 }
 
-async fn dataset_features(c: &Connection, a: &IngestArgs, channel: tonic::transport::Channel) -> Result<Vec<String>, Failed> {
+async fn dataset_features(
+    c: &Connection,
+    a: &IngestArgs,
+    channel: tonic::transport::Channel,
+) -> Result<Vec<String>, Failed> {
     if a.kind != Kind::Units {
         return Ok(Vec::new());
     }
@@ -537,18 +557,30 @@ async fn ingest(c: &Connection, a: &IngestArgs) -> Result<Located, Failed> {
 /// One refused row as the file numbers it.
 struct RefusedRow {
     row: usize,
+    /// The model whose prediction was refused (predictions files only).
+    model: Option<String>,
     column: String,
     reason: String,
 }
 
 /// The refused rows of a receipt, numbered as the file's data rows.
-fn refused_rows(receipt: &pb::IntakeReceipt, lines_per_batch: usize, layout: &Layout) -> Vec<RefusedRow> {
+fn refused_rows(
+    receipt: &pb::IntakeReceipt,
+    lines_per_batch: usize,
+    layout: &Layout,
+) -> Vec<RefusedRow> {
     let per_line = layout.rows_per_line();
     receipt
         .rejections
         .iter()
         .map(|r| RefusedRow {
             row: r.batch as usize * lines_per_batch + r.row as usize / per_line + 1,
+            model: match &layout.plan {
+                Plan::Predictions { models, .. } => models
+                    .get(r.row as usize % per_line)
+                    .map(|(_, m)| m.clone()),
+                _ => None,
+            },
             column: layout.column_of(&r.field, r.row as usize),
             reason: r.reason.clone(),
         })
@@ -562,6 +594,9 @@ impl Outcome {
             outcome: self,
             rows,
             file: layout.file.clone(),
+            lines_per_batch,
+            models: layout.rows_per_line(),
+            predictions: matches!(layout.plan, Plan::Predictions { .. }),
         }
     }
 }
@@ -571,40 +606,87 @@ struct Located {
     outcome: Outcome,
     rows: Vec<RefusedRow>,
     file: PathBuf,
+    lines_per_batch: usize,
+    /// Wire rows per line of the file (the models, for predictions).
+    models: usize,
+    predictions: bool,
 }
 
-/// The message for a refused batch: what was refused (counted from the
-/// receipt, not from the reasons it lists), each listed reason with its
-/// data row and column, and what is committed (said once).
+/// `n thing` or `n things`.
+fn count(n: u64, thing: &str) -> String {
+    format!("{n} {thing}{}", if n == 1 { "" } else { "s" })
+}
+
+/// A status code as the gRPC specification spells it (FAILED_PRECONDITION).
+fn code_name(code: tonic::Code) -> String {
+    let mut out = String::new();
+    for (i, ch) in format!("{code:?}").chars().enumerate() {
+        if ch.is_uppercase() && i > 0 {
+            out.push('_');
+        }
+        out.push(ch.to_ascii_uppercase());
+    }
+    out
+}
+
+/// The message for a refused batch: which rows of the file it held, how
+/// many were refused (counted by the server over the whole batch, not from
+/// the reasons it lists), each listed reason with its data row and column,
+/// and what is committed (said once).
 fn refusal_text(l: &Located, code: tonic::Code) -> String {
     let r = &l.outcome.receipt;
     let refused = r.rejected.max(l.rows.len() as u64);
+    let first = r.batches as usize * l.lines_per_batch + 1;
+    let last = (first + l.lines_per_batch - 1).min(l.outcome.lines.max(first));
+    let what = if l.predictions && l.models > 1 {
+        format!(
+            "{} ({} a row)",
+            count(refused, "prediction"),
+            count(l.models as u64, "model")
+        )
+    } else {
+        count(refused, "row")
+    };
     let mut s = format!(
-        "{}: batch {} refused ({code:?}), nothing of it written: {refused} row{} refused",
+        "{}: the batch of data rows {first} to {last} was refused ({}), nothing of it written; \
+         {what} refused",
         l.file.display(),
-        r.batches + 1,
-        if refused == 1 { "" } else { "s" },
+        code_name(code),
     );
     if (l.rows.len() as u64) < refused {
         s.push_str(&format!(", the first {} listed", l.rows.len()));
     }
     s.push(':');
     for row in &l.rows {
+        let model = row
+            .model
+            .as_ref()
+            .map(|m| format!(", model {m:?}"))
+            .unwrap_or_default();
         s.push_str(&format!(
-            "\n  row {} (line {}), column {:?}: {}",
+            "\n  row {} (line {}){model}, column {:?}: {}",
             row.row,
             row.row + 1,
             row.column,
             row.reason
         ));
     }
+    if last < l.outcome.lines {
+        s.push_str(&format!(
+            "\nrows {} to {} were not sent",
+            last + 1,
+            l.outcome.lines
+        ));
+    }
     if r.batches == 0 {
         s.push_str("\nnothing was committed; fix the rows and run the command again");
     } else {
         s.push_str(&format!(
-            "\n{} batches committed before it ({} new rows, {} already stored); fix the rows \
-             and run the command again: the committed rows count as already stored",
-            r.batches, r.accepted, r.duplicate
+            "\n{} committed before it ({} new, {} already stored); fix the rows and run the \
+             command again: what is committed counts as already stored",
+            count(u64::from(r.batches), "batch"),
+            count(r.accepted, "row"),
+            r.duplicate
         ));
     }
     s
@@ -618,10 +700,10 @@ fn report(c: &Connection, a: &IngestArgs, l: &Located) -> Result<(), (u8, String
             "rows_read": l.outcome.lines, "batches": r.batches,
             "accepted": r.accepted, "duplicate": r.duplicate,
             "refused": l.outcome.refused.as_ref().map(|s| json!({
-                "code": format!("{:?}", s.code()),
-                "rows": r.rejected.max(l.rows.len() as u64),
+                "code": code_name(s.code()),
+                "refused": r.rejected.max(l.rows.len() as u64),
                 "reasons": l.rows.iter().map(|x| json!({
-                    "row": x.row, "column": x.column, "reason": x.reason,
+                    "row": x.row, "model": x.model, "column": x.column, "reason": x.reason,
                 })).collect::<Vec<_>>(),
             })),
         }));
@@ -629,12 +711,11 @@ fn report(c: &Connection, a: &IngestArgs, l: &Located) -> Result<(), (u8, String
     match &l.outcome.refused {
         None => {
             eprintln!(
-                "plumbline ingest: {} {} rows read, {} batches committed: {} rows new, {} \
-                 already stored",
-                l.outcome.lines,
+                "plumbline ingest: {} of {} read; {} committed: {} new, {} already stored",
+                count(l.outcome.lines as u64, "row"),
                 a.kind.name(),
-                r.batches,
-                r.accepted,
+                count(u64::from(r.batches), "batch"),
+                count(r.accepted, "row"),
                 r.duplicate
             );
             Ok(())
@@ -693,19 +774,20 @@ mod tests {
             rejections: (0..37).map(|i| rejection(0, i)).collect(),
             ..Default::default()
         };
-        let rows = refused_rows(&receipt, 500, &layout);
-        let l = Located {
-            outcome: Outcome {
-                lines: 500,
-                receipt,
-                refused: None,
-            },
-            rows,
-            file: PathBuf::from("p.csv"),
-        };
+        let l = Outcome {
+            lines: 500,
+            receipt,
+            refused: None,
+        }
+        .with_lines_per_batch(500, &layout);
         let text = refusal_text(&l, tonic::Code::FailedPrecondition);
-        assert!(text.contains("1000 rows refused, the first 37 listed"), "{text}");
-        assert!(text.contains("row 1 (line 2)"), "{text}");
+        assert!(
+            text.contains("1000 predictions (2 models a row) refused, the first 37 listed"),
+            "{text}"
+        );
+        assert!(text.contains("data rows 1 to 500"), "{text}");
+        assert!(text.contains("(FAILED_PRECONDITION)"), "{text}");
+        assert!(text.contains("row 1 (line 2), model \"m2\""), "{text}");
         assert!(!text.contains("row 0"), "{text}");
         assert_eq!(text.matches("committed").count(), 1, "{text}");
     }

@@ -167,7 +167,9 @@ fn tidy_env_help(command: clap::Command) -> clap::Command {
         let hide = match arg.get_env() {
             Some(name) => {
                 std::env::var_os(name).is_none()
-                    || SECRET_VARIABLES.iter().any(|s| name == std::ffi::OsStr::new(s))
+                    || SECRET_VARIABLES
+                        .iter()
+                        .any(|s| name == std::ffi::OsStr::new(s))
             }
             None => false,
         };
@@ -181,9 +183,9 @@ fn tidy_env_help(command: clap::Command) -> clap::Command {
         .get_subcommands()
         .map(|s| s.get_name().to_string())
         .collect();
-    names.iter().fold(command, |c, name| {
-        c.mut_subcommand(name, tidy_env_help)
-    })
+    names
+        .iter()
+        .fold(command, |c, name| c.mut_subcommand(name, tidy_env_help))
 }
 
 /// The command line as parsed, with the help tidied by [`tidy_env_help`].

@@ -56,7 +56,12 @@ impl Drop for NarrateOnStderr {
 
 /// The demo's summary: the cumulative board's front-runner, the alerts'
 /// view, how many events of each kind fired and the notable ones.
-pub fn demo_json(seconds: f64, cumulative: &pb::Scoreboard, events: &[pb::Event], metrics: &str) -> Value {
+pub fn demo_json(
+    seconds: f64,
+    cumulative: &pb::Scoreboard,
+    events: &[pb::Event],
+    metrics: &str,
+) -> Value {
     let view = cumulative.alerts.clone().unwrap_or_default();
     let mut kinds: Vec<(String, usize)> = Vec::new();
     for e in events {

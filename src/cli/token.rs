@@ -6,8 +6,8 @@ use std::process::ExitCode;
 
 use clap::{Args, Subcommand};
 
-use super::clock::{ms_to_text, now_ms};
 use super::client::{print_json, Output};
+use super::clock::{ms_to_text, now_ms};
 use super::EXIT_BAD_INPUT;
 use crate::auth::{issue, Scope};
 use crate::config::{DEFAULT_DATA_DIR, DEFAULT_STORE_URL};
@@ -155,7 +155,11 @@ fn tokens_text(tokens: &[TokenRecord]) -> String {
         "id", "state", "created", "revoked", "label"
     );
     for t in tokens {
-        let state = if t.revoked_at_ms == 0 { "live" } else { "revoked" };
+        let state = if t.revoked_at_ms == 0 {
+            "live"
+        } else {
+            "revoked"
+        };
         out.push_str(&super::admin::cut(
             &format!(
                 "{:<12}  {:<7}  {:<20}  {:<20}  {:<18}  {}",
@@ -201,7 +205,10 @@ mod tests {
         assert!(line.ends_with("read:*, write:ride-credits"), "{line}");
         assert!(!line.contains('['), "{line}");
         let v = token_json(&t);
-        assert_eq!(v["scopes"], serde_json::json!(["read:*", "write:ride-credits"]));
+        assert_eq!(
+            v["scopes"],
+            serde_json::json!(["read:*", "write:ride-credits"])
+        );
         assert_eq!(v["state"], "live");
         assert!(v["revoked_at_ms"].is_null());
     }
