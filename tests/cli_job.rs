@@ -262,7 +262,6 @@ fn the_readme_job_runs_through_the_command_line_alone() {
         .expect("pairwise")
         .iter()
         .find(|p| p["first"] == a && p["second"] == b)
-        .or_else(|| None)
         .cloned();
     let (sign, pair) = match pair {
         Some(p) => (1.0, p),

@@ -582,19 +582,20 @@ pub fn recompute(c: &Connection, a: &RecomputeArgs) -> ExitCode {
                 "dataset": a.dataset.dataset, "snapshot_id": r.snapshot_id,
                 "refitted": r.refitted, "units": r.units, "millis": r.millis,
             })),
-            Output::Table => println!(
-                "{}: snapshot {} in {:.0} ms, {} units in the cumulative window, nuisance \
-                 models {}",
-                a.dataset.dataset,
-                r.snapshot_id,
-                r.millis,
-                r.units,
-                if r.refitted {
-                    "refitted"
-                } else {
-                    "kept (new units scored with the current fits)"
-                }
-            ),
+            Output::Table => {
+                println!(
+                    "{}: snapshot {} in {:.0} ms, {} units in the cumulative window",
+                    a.dataset.dataset, r.snapshot_id, r.millis, r.units
+                );
+                println!(
+                    "nuisance models {}",
+                    if r.refitted {
+                        "refitted"
+                    } else {
+                        "kept: the new units were scored with the current fits"
+                    }
+                );
+            }
         }
         Ok(())
     })

@@ -139,7 +139,7 @@ impl Layout {
         }
     }
 
-    fn cell<'r>(rec: &'r csv::StringRecord, col: usize) -> &'r str {
+    fn cell(rec: &csv::StringRecord, col: usize) -> &str {
         rec.get(col).unwrap_or("").trim()
     }
 

@@ -147,12 +147,16 @@ fn token_json(t: &TokenRecord) -> serde_json::Value {
     })
 }
 
+/// Columns of the tokens table before the scopes.
+const TOKEN_LEAD: usize = 12 + 2 + 7 + 2 + 20 + 2 + 18 + 2;
+
 /// Tokens as a table: times as every table prints them, scopes separated
-/// by commas, the label cut so a line stays within 100 columns.
+/// by commas (wrapped under their column, so a line stays within 100
+/// columns), the label cut to its column. Revocation times are in the JSON.
 fn tokens_text(tokens: &[TokenRecord]) -> String {
     let mut out = format!(
-        "{:<12}  {:<7}  {:<20}  {:<20}  {:<18}  scopes\n",
-        "id", "state", "created", "revoked", "label"
+        "{:<12}  {:<7}  {:<20}  {:<18}  scopes\n",
+        "id", "state", "created", "label"
     );
     for t in tokens {
         let state = if t.revoked_at_ms == 0 {
@@ -160,19 +164,18 @@ fn tokens_text(tokens: &[TokenRecord]) -> String {
         } else {
             "revoked"
         };
-        out.push_str(&super::admin::cut(
-            &format!(
-                "{:<12}  {:<7}  {:<20}  {:<20}  {:<18}  {}",
-                t.id,
-                state,
-                ms_to_text(t.created_at_ms),
-                ms_to_text(t.revoked_at_ms),
-                super::admin::cut(&t.label, 18),
-                scope_list(&t.scopes).join(", ")
-            ),
-            100,
+        let scopes = super::client::wrap(&scope_list(&t.scopes).join(", "), 100 - TOKEN_LEAD);
+        out.push_str(&format!(
+            "{:<12}  {:<7}  {:<20}  {:<18}  {}\n",
+            t.id,
+            state,
+            ms_to_text(t.created_at_ms),
+            super::admin::cut(&t.label, 18),
+            scopes.first().map(String::as_str).unwrap_or("")
         ));
-        out.push('\n');
+        for more in scopes.iter().skip(1) {
+            out.push_str(&format!("{}{more}\n", " ".repeat(TOKEN_LEAD)));
+        }
     }
     out
 }
