@@ -633,3 +633,67 @@ fn help_shows_set_variables_only_and_never_a_secret() {
     let create = help(&["dataset", "create"], &[]);
     assert!(create.contains("[server default: 5]"), "{create}");
 }
+
+/// `simulate` and `demo` keep stdout for one JSON document under
+/// `--format json`; the demo narrates its run on stderr meanwhile.
+#[test]
+fn simulate_and_the_demo_summary_print_json() {
+    let files = TempDir::new("cli-json");
+    let out = files.0.join("sim");
+    let sim = json(&[
+        "simulate",
+        "--units",
+        "300",
+        "--features",
+        "5",
+        "--models",
+        "2",
+        "--out",
+        &path(&out),
+        "--format",
+        "json",
+    ]);
+    assert_eq!(sim["units"], 300);
+    let truth = std::fs::read_to_string(out.join("truth.csv")).expect("truth");
+    for m in sim["models"].as_array().expect("models") {
+        let line = format!(
+            "{},{}",
+            m["name"].as_str().expect("name"),
+            num(&m["true_pehe"])
+        );
+        assert!(truth.lines().any(|l| l == line), "{line} not in {truth}");
+    }
+
+    let r = run(&[
+        "demo",
+        "--weeks",
+        "9",
+        "--members",
+        "200",
+        "--format",
+        "json",
+    ]);
+    assert_eq!(r.code, Some(0), "{}", r.stderr);
+    let summary: Value =
+        serde_json::from_str(&r.stdout).unwrap_or_else(|e| panic!("{e}: {}", r.stdout));
+    // Every week's ride counts arrive, the last at the end.
+    assert_eq!(summary["units"], 9 * 200, "{summary}");
+    let registered = summary["events"]
+        .as_array()
+        .expect("events")
+        .iter()
+        .find(|e| e["kind"] == "model_registered")
+        .map(|e| e["count"].clone());
+    assert_eq!(registered, Some(Value::from(4)), "{summary}");
+    assert!(
+        summary["front_runner"]
+            .as_str()
+            .is_some_and(|s| !s.is_empty()),
+        "{summary}"
+    );
+    assert!(
+        r.stderr.contains("week  9"),
+        "the narration is on stderr: {}",
+        r.stderr
+    );
+}

@@ -87,6 +87,7 @@ fn server_default(what: &str, default: impl std::fmt::Display) -> String {
 /// `dataset show` can be copied into a file as it stands.
 #[derive(Debug, Default, Args, Deserialize)]
 #[serde(deny_unknown_fields)]
+#[command(next_help_heading = "Dataset settings (each also a --spec file key)")]
 pub struct SpecSettings {
     /// The dataset's name: only in the file (on the command line it is the
     /// first argument).
@@ -97,7 +98,7 @@ pub struct SpecSettings {
     #[serde(alias = "feature_names")]
     pub features: Option<Vec<String>>,
     /// continuous (outcome models are regressions) or binary (0/1 outcomes).
-    #[arg(long, value_enum)]
+    #[arg(long, value_enum, value_name = "KIND")]
     pub outcome_kind: Option<OutcomeKindArg>,
     #[arg(long, help = server_default("Cost of treating one unit, in outcome units, for policy gain", 0))]
     pub treatment_cost: Option<f64>,

@@ -25,6 +25,7 @@ pub enum Output {
 
 /// Where the server is and how to talk to it.
 #[derive(Debug, Args, Clone)]
+#[command(next_help_heading = "Connection")]
 pub struct Connection {
     /// Server address.
     #[arg(long, default_value = "http://127.0.0.1:7070", global = true)]
