@@ -25,19 +25,35 @@ pub enum Output {
 
 /// Where the server is and how to talk to it.
 #[derive(Debug, Args, Clone)]
-#[command(next_help_heading = "Connection")]
 pub struct Connection {
     /// Server address.
-    #[arg(long, default_value = "http://127.0.0.1:7070", global = true)]
+    #[arg(
+        long,
+        default_value = "http://127.0.0.1:7070",
+        global = true,
+        help_heading = "Connection"
+    )]
     pub server: String,
     /// Bearer token, when the server requires one.
-    #[arg(long, env = "PLUMBLINE_TOKEN", global = true, hide_env_values = true)]
+    #[arg(
+        long,
+        env = "PLUMBLINE_TOKEN",
+        global = true,
+        help_heading = "Connection",
+        hide_env_values = true
+    )]
     pub token: Option<String>,
     /// A table for people, or JSON for programs.
     #[arg(long, value_enum, default_value_t = Output::Table, global = true)]
     pub format: Output,
     /// PEM authority that signed the server's certificate (https:// servers).
-    #[arg(long, env = "PLUMBLINE_CA_CERT", value_name = "FILE", global = true)]
+    #[arg(
+        long,
+        env = "PLUMBLINE_CA_CERT",
+        value_name = "FILE",
+        global = true,
+        help_heading = "Connection"
+    )]
     pub ca_cert: Option<std::path::PathBuf>,
     /// PEM client certificate, for servers that verify clients.
     #[arg(
@@ -45,6 +61,7 @@ pub struct Connection {
         env = "PLUMBLINE_CLIENT_CERT",
         value_name = "FILE",
         global = true,
+        help_heading = "Connection",
         requires = "client_key"
     )]
     pub client_cert: Option<std::path::PathBuf>,
@@ -54,6 +71,7 @@ pub struct Connection {
         env = "PLUMBLINE_CLIENT_KEY",
         value_name = "FILE",
         global = true,
+        help_heading = "Connection",
         requires = "client_cert"
     )]
     pub client_key: Option<std::path::PathBuf>,
@@ -493,7 +511,7 @@ pub struct EventsArgs {
     #[arg(long, default_value_t = 0)]
     pub after: u64,
     /// Only events of these kinds (repeatable or comma-separated), e.g.
-    /// leader_changed, overlap_degraded, nuisance_refit, model_retired.
+    /// overlap_degraded, nuisance_refit, model_retired.
     #[arg(long = "kind", value_delimiter = ',', value_name = "KIND")]
     pub kinds: Vec<String>,
     /// At most this many events, oldest first (not with --follow).

@@ -489,6 +489,9 @@ async fn ingest(c: &Connection, a: &IngestArgs) -> Result<Located, Failed> {
             let _ = tx.blocking_send(batch);
         }
         sending.finish_and_clear();
+        // The closed-channel stop carries no file; anything else is a row
+        // the first pass accepted and this one did not (the file changed).
+        result.err().filter(|e| !e.file.as_os_str().is_empty())
     });
     let dataset = a.dataset.clone();
     let mut intake = pb::intake_client::IntakeClient::new(channel);
@@ -535,7 +538,16 @@ async fn ingest(c: &Connection, a: &IngestArgs) -> Result<Located, Failed> {
             intake.send_predictions(request(c, s)?).await
         }
     };
-    let _ = reader.await;
+    if let Ok(Some(e)) = reader.await {
+        return Err(Failed::Input(InputError {
+            message: format!(
+                "{} (the file changed while it was sent; the batches before this row may be \
+                 committed: run the command again to resume)",
+                e.message
+            ),
+            ..e
+        }));
+    }
     Ok(match result {
         Ok(r) => Outcome {
             lines,
