@@ -391,13 +391,13 @@ pub fn datasets(c: &Connection) -> ExitCode {
             return Ok(());
         }
         println!(
-            "{:<24} {:>9} {:>9} {:>11} {:>6} {:>8}  {:<20}",
-            "dataset", "units", "outcomes", "predictions", "models", "features", "created"
+            "{:<24} {:>9} {:>9} {:>11} {:>6} {:>8}  created",
+            "dataset", "units", "outcomes", "predictions", "models", "features"
         );
         for d in list {
             let s = d.spec.clone().unwrap_or_default();
             println!(
-                "{:<24} {:>9} {:>9} {:>11} {:>6} {:>8}  {:<20}",
+                "{:<24} {:>9} {:>9} {:>11} {:>6} {:>8}  {}",
                 s.name,
                 d.units,
                 d.outcomes,

@@ -624,9 +624,10 @@ struct Located {
     predictions: bool,
 }
 
-/// `n thing` or `n things`.
+/// `n thing` or `n things` (`batches` for `batch`).
 fn count(n: u64, thing: &str) -> String {
-    format!("{n} {thing}{}", if n == 1 { "" } else { "s" })
+    let plural = if thing.ends_with("ch") { "es" } else { "s" };
+    format!("{n} {thing}{}", if n == 1 { "" } else { plural })
 }
 
 /// A status code as the gRPC specification spells it (FAILED_PRECONDITION).
@@ -802,5 +803,7 @@ mod tests {
         assert!(text.contains("row 1 (line 2), model \"m2\""), "{text}");
         assert!(!text.contains("row 0"), "{text}");
         assert_eq!(text.matches("committed").count(), 1, "{text}");
+        assert_eq!(count(3, "batch"), "3 batches");
+        assert_eq!(count(1, "row"), "1 row");
     }
 }
