@@ -697,3 +697,58 @@ fn simulate_and_the_demo_summary_print_json() {
         r.stderr
     );
 }
+
+/// `token list` prints times as the other tables do and scopes as a list;
+/// its JSON holds them as values.
+#[test]
+fn token_list_reads_like_the_other_tables() {
+    let dir = TempDir::new("cli-tokens");
+    let data = path(&dir.0);
+    let created = json(&[
+        "token",
+        "create",
+        "--scope",
+        "read:*",
+        "--scope",
+        "write:rides",
+        "--label",
+        "pipeline",
+        "--data-dir",
+        &data,
+        "--format",
+        "json",
+    ]);
+    let id = created["id"].as_str().expect("id").to_string();
+    assert!(created["token"]
+        .as_str()
+        .is_some_and(|t| t.starts_with(&format!("plb_{id}"))));
+    let r = run(&["token", "revoke", &id, "--data-dir", &data]);
+    assert_eq!(r.code, Some(0), "{}", r.stderr);
+
+    let table = run(&["token", "list", "--data-dir", &data]);
+    assert_eq!(table.code, Some(0), "{}", table.stderr);
+    let row = table.stdout.lines().nth(1).expect("a token row");
+    let created_ms = created["created_at_ms"].as_i64().expect("time");
+    assert!(
+        !row.contains(&created_ms.to_string()),
+        "raw milliseconds: {row}"
+    );
+    // The tables' time form: 2026-12-04 16:59:23Z.
+    let time = row.split_whitespace().nth(2).unwrap_or("");
+    assert!(time.len() == 10 && time.as_bytes()[4] == b'-', "{row}");
+    assert!(
+        row.contains("revoked") && row.ends_with("read:*, write:rides"),
+        "{row}"
+    );
+
+    let listed = json(&["token", "list", "--data-dir", &data, "--format", "json"]);
+    let t = &listed[0];
+    assert_eq!(t["scopes"], serde_json::json!(["read:*", "write:rides"]));
+    assert_eq!(t["state"], "revoked");
+    assert!(
+        t["revoked_at_ms"]
+            .as_i64()
+            .is_some_and(|ms| ms >= created_ms),
+        "{t}"
+    );
+}
