@@ -351,7 +351,11 @@ fn five_thousand_units_ten_models_json_carries_every_key() {
     // view carries every estimator's column and each model's interval
     // taken alone.
     let widest = |t: &str| t.lines().map(|l| l.chars().count()).max().unwrap_or(0);
-    assert!(widest(&table) <= 100, "{} columns:\n{table}", widest(&table));
+    assert!(
+        widest(&table) <= 100,
+        "{} columns:\n{table}",
+        widest(&table)
+    );
     assert!(table.contains("95% joint interval") && !table.contains("R-loss"));
     let (code, wide, _) = score(
         &d.0.join("units.csv"),
@@ -359,7 +363,10 @@ fn five_thousand_units_ten_models_json_carries_every_key() {
         &["--wide"],
     );
     assert_eq!(code, 0);
-    assert!(wide.contains("95% alone") && wide.contains("R-loss"), "{wide}");
+    assert!(
+        wide.contains("95% alone") && wide.contains("R-loss"),
+        "{wide}"
+    );
 }
 
 /// The quick-start demo finishes by itself and its summary shows both a

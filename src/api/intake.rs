@@ -106,7 +106,7 @@ fn check_limits<R: LengthLimited>(l: &Limits, rows: &[R]) -> Result<(), Vec<Reje
     let mut faults = Vec::new();
     for (i, r) in rows.iter().enumerate() {
         for (field, value, limit, max) in r.limited(l) {
-            if value.len() > max && faults.len() < MAX_DETAIL_ROWS {
+            if value.len() > max {
                 faults.push(invalid(
                     i,
                     field,
@@ -120,25 +120,6 @@ fn check_limits<R: LengthLimited>(l: &Limits, rows: &[R]) -> Result<(), Vec<Reje
     } else {
         Err(faults)
     }
-}
-
-/// The row-level reasons of a refused batch travel in a response header,
-/// which clients cap (16 KiB by default in the Rust and Go stacks); the
-/// reasons are cut to fit well inside it, the first one always kept.
-const MAX_DETAIL_BYTES: usize = 6 * 1024;
-const MAX_DETAIL_ROWS: usize = crate::monitor::checks::MAX_REJECTIONS;
-
-fn fit_details(mut r: Vec<Rejection>) -> Vec<Rejection> {
-    let mut total = 0;
-    let keep = r
-        .iter()
-        .take_while(|x| {
-            total += x.field.len() + x.reason.len() + 16;
-            total <= MAX_DETAIL_BYTES
-        })
-        .count();
-    r.truncate(keep.max(1));
-    r
 }
 
 /// A stream-level failure after `receipt.batches` commits, with the receipt
@@ -222,7 +203,7 @@ where
             Some(_) => {}
         }
         if let Err(r) = check_limits(limits, &rows) {
-            return Err(refused(batch, &fit_details(r), receipt));
+            return Err(refused(batch, &r, receipt));
         }
         let task = tokio::spawn(apply(Arc::clone(monitor), name, rows));
         match task.await {
@@ -231,9 +212,7 @@ where
                 receipt.accepted += c.accepted as u64;
                 receipt.duplicate += c.duplicate as u64;
             }
-            Ok(Err(MonitorError::Rejected(r))) => {
-                return Err(refused(batch, &fit_details(r), receipt))
-            }
+            Ok(Err(MonitorError::Rejected(r))) => return Err(refused(batch, &r, receipt)),
             Ok(Err(e)) => return Err(from_monitor(e)),
             Err(e) => {
                 return Err(with_receipt(

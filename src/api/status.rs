@@ -4,12 +4,34 @@ use prost::Message;
 use tonic::{Code, Status};
 
 use super::pb;
-use crate::monitor::checks::{Fault, Rejection};
+use crate::monitor::checks::{Fault, Rejection, MAX_REJECTIONS};
 use crate::monitor::MonitorError;
+
+/// The row-level reasons of a refused batch travel in a response header,
+/// which clients cap (16 KiB by default in the Rust and Go stacks; grpcio
+/// warns from 8 KiB); the reasons are cut to fit well inside it, the first
+/// one always kept, and to at most [`MAX_REJECTIONS`].
+const MAX_DETAIL_BYTES: usize = 6 * 1024;
+
+/// How many of `rejections` fit in the status details.
+fn reasons_that_fit(rejections: &[Rejection]) -> usize {
+    let mut total = 0;
+    let keep = rejections
+        .iter()
+        .take(MAX_REJECTIONS)
+        .take_while(|x| {
+            total += x.field.len() + x.reason.len() + 16;
+            total <= MAX_DETAIL_BYTES
+        })
+        .count();
+    keep.max(1).min(rejections.len())
+}
 
 /// Status for a refused intake batch: the code of its first problem, a
 /// message naming the batch, row and field, and the receipt (what was
-/// committed before, and the row-level reasons) in the status details.
+/// committed before, how many rows were refused, and as many row-level
+/// reasons as fit) in the status details. `rejections` holds every fault
+/// found, so the count is of every refused row, not of the reasons sent.
 pub fn refused(batch: u32, rejections: &[Rejection], mut receipt: pb::IntakeReceipt) -> Status {
     let code = match rejections
         .first()
@@ -21,8 +43,9 @@ pub fn refused(batch: u32, rejections: &[Rejection], mut receipt: pb::IntakeRece
         Fault::Unknown => Code::NotFound,
         Fault::Order => Code::FailedPrecondition,
     };
-    receipt.rejected = rejections.len() as u64;
-    receipt.rejections = rejections
+    let rows: std::collections::BTreeSet<usize> = rejections.iter().map(|r| r.row).collect();
+    receipt.rejected = rows.len() as u64;
+    receipt.rejections = rejections[..reasons_that_fit(rejections)]
         .iter()
         .map(|r| pb::RowRejection {
             batch,
@@ -37,8 +60,8 @@ pub fn refused(batch: u32, rejections: &[Rejection], mut receipt: pb::IntakeRece
             r.row,
             r.field,
             r.reason,
-            if rejections.len() > 1 {
-                format!("; and {} more problem rows", rejections.len() - 1)
+            if rows.len() > 1 {
+                format!("; and {} more problem rows", rows.len() - 1)
             } else {
                 String::new()
             },

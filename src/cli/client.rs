@@ -1,6 +1,8 @@
-//! Client commands for people talking to a running server: `datasets`,
-//! `models`, `scoreboard`, `history`, `events`, `overlap`. Each prints a
-//! readable table, or JSON with `--format json`.
+//! Client commands for people reading a running server: `scoreboard`,
+//! `history`, `events`, `overlap`, and what every client command shares
+//! (the connection, requests, failures and their exit statuses). Each
+//! prints a readable table, or JSON with `--format json`. The commands
+//! that create and change things are in `admin.rs`.
 
 use std::process::ExitCode;
 
@@ -10,6 +12,8 @@ use tonic::metadata::MetadataValue;
 use tonic::transport::{Certificate, Channel, ClientTlsConfig, Identity};
 use tonic::{Request, Status};
 
+pub(super) use super::clock::ms_to_text;
+use super::clock::{now_ms, parse_time};
 use crate::api::pb;
 use crate::estimate::estimators;
 
@@ -25,15 +29,33 @@ pub enum Output {
 #[derive(Debug, Args, Clone)]
 pub struct Connection {
     /// Server address.
-    #[arg(long, default_value = "http://127.0.0.1:7070", global = true)]
+    #[arg(
+        long,
+        default_value = "http://127.0.0.1:7070",
+        global = true,
+        help_heading = "Connection"
+    )]
     pub server: String,
     /// Bearer token, when the server requires one.
-    #[arg(long, env = "PLUMBLINE_TOKEN", global = true, hide_env_values = true)]
+    #[arg(
+        long,
+        env = "PLUMBLINE_TOKEN",
+        global = true,
+        help_heading = "Connection",
+        hide_env_values = true
+    )]
     pub token: Option<String>,
+    /// A table for people, or JSON for programs.
     #[arg(long, value_enum, default_value_t = Output::Table, global = true)]
     pub format: Output,
     /// PEM authority that signed the server's certificate (https:// servers).
-    #[arg(long, env = "PLUMBLINE_CA_CERT", value_name = "FILE", global = true)]
+    #[arg(
+        long,
+        env = "PLUMBLINE_CA_CERT",
+        value_name = "FILE",
+        global = true,
+        help_heading = "Connection"
+    )]
     pub ca_cert: Option<std::path::PathBuf>,
     /// PEM client certificate, for servers that verify clients.
     #[arg(
@@ -41,14 +63,17 @@ pub struct Connection {
         env = "PLUMBLINE_CLIENT_CERT",
         value_name = "FILE",
         global = true,
+        help_heading = "Connection",
         requires = "client_key"
     )]
     pub client_cert: Option<std::path::PathBuf>,
+    /// PEM private key of --client-cert.
     #[arg(
         long,
         env = "PLUMBLINE_CLIENT_KEY",
         value_name = "FILE",
         global = true,
+        help_heading = "Connection",
         requires = "client_cert"
     )]
     pub client_key: Option<std::path::PathBuf>,
@@ -142,6 +167,20 @@ pub struct Failure {
     message: String,
 }
 
+impl Failure {
+    pub fn new(code: u8, message: String) -> Self {
+        Failure { code, message }
+    }
+    #[cfg(test)]
+    pub fn code(&self) -> u8 {
+        self.code
+    }
+    #[cfg(test)]
+    pub fn message(&self) -> &str {
+        &self.message
+    }
+}
+
 impl From<String> for Failure {
     fn from(message: String) -> Self {
         Failure { code: 1, message }
@@ -174,7 +213,7 @@ pub struct WindowArg {
     pub window: String,
 }
 
-fn window(w: &str) -> Result<pb::Window, String> {
+pub(super) fn window(w: &str) -> Result<pb::Window, String> {
     use pb::window::Kind;
     let (kind, cohort) = match w {
         "cumulative" => (Kind::Cumulative, String::new()),
@@ -215,7 +254,7 @@ pub(super) fn block_on_command<T>(
     })
 }
 
-fn run_async(f: impl std::future::Future<Output = Result<(), Failure>>) -> ExitCode {
+pub(super) fn run_async(f: impl std::future::Future<Output = Result<(), Failure>>) -> ExitCode {
     match block_on_command("plumbline", async {
         f.await.map_err(|e| (e.code, e.message))
     }) {
@@ -224,126 +263,8 @@ fn run_async(f: impl std::future::Future<Output = Result<(), Failure>>) -> ExitC
     }
 }
 
-fn print_json(v: serde_json::Value) {
+pub(super) fn print_json(v: serde_json::Value) {
     println!("{}", serde_json::to_string_pretty(&v).unwrap_or_default());
-}
-
-fn ms_to_text(ms: i64) -> String {
-    if ms <= 0 {
-        return "-".into();
-    }
-    let secs = ms / 1000;
-    let (days, rem) = (secs / 86_400, secs % 86_400);
-    // Civil date from days since 1970-01-01 (Howard Hinnant's algorithm).
-    let z = days + 719_468;
-    let era = z.div_euclid(146_097);
-    let doe = z - era * 146_097;
-    let yoe = (doe - doe / 1460 + doe / 36_524 - doe / 146_096) / 365;
-    let doy = doe - (365 * yoe + yoe / 4 - yoe / 100);
-    let mp = (5 * doy + 2) / 153;
-    let d = doy - (153 * mp + 2) / 5 + 1;
-    let m = if mp < 10 { mp + 3 } else { mp - 9 };
-    let y = yoe + era * 400 + i64::from(m <= 2);
-    format!(
-        "{y:04}-{m:02}-{d:02} {:02}:{:02}:{:02}Z",
-        rem / 3600,
-        rem % 3600 / 60,
-        rem % 60
-    )
-}
-
-pub fn datasets(c: &Connection) -> ExitCode {
-    run_async(async {
-        let mut client = pb::dataset_registry_client::DatasetRegistryClient::new(connect(c).await?);
-        let list = client
-            .list_datasets(request(c, pb::ListDatasetsRequest {})?)
-            .await
-            .map_err(failed)?
-            .into_inner()
-            .datasets;
-        if c.format == Output::Json {
-            print_json(json!(list
-                .iter()
-                .map(|d| {
-                    let s = d.spec.clone().unwrap_or_default();
-                    json!({
-                        "name": s.name, "features": s.feature_names,
-                        "outcome_kind": pb::OutcomeKind::try_from(s.outcome_kind).map(|k| k.as_str_name()).unwrap_or(""),
-                        "units": d.units, "outcomes": d.outcomes, "predictions": d.predictions,
-                        "active_models": d.active_models, "created_at_ms": d.created_at_ms,
-                    })
-                })
-                .collect::<Vec<_>>()));
-            return Ok(());
-        }
-        println!(
-            "{:<24} {:>9} {:>9} {:>11} {:>7} {:>9}  created",
-            "dataset", "units", "outcomes", "predictions", "models", "features"
-        );
-        for d in list {
-            let s = d.spec.unwrap_or_default();
-            println!(
-                "{:<24} {:>9} {:>9} {:>11} {:>7} {:>9}  {}",
-                s.name,
-                d.units,
-                d.outcomes,
-                d.predictions,
-                d.active_models,
-                s.feature_names.len(),
-                ms_to_text(d.created_at_ms)
-            );
-        }
-        Ok(())
-    })
-}
-
-pub fn models(c: &Connection, d: &DatasetArg, include_retired: bool) -> ExitCode {
-    run_async(async {
-        let mut client = pb::model_registry_client::ModelRegistryClient::new(connect(c).await?);
-        let list = client
-            .list_models(request(
-                c,
-                pb::ListModelsRequest {
-                    dataset: d.dataset.clone(),
-                    include_retired,
-                },
-            )?)
-            .await
-            .map_err(failed)?
-            .into_inner()
-            .models;
-        if c.format == Output::Json {
-            print_json(json!(list
-                .iter()
-                .map(|m| json!({
-                    "name": m.name, "version": m.version, "description": m.description,
-                    "predictions": m.predictions, "registered_at_ms": m.registered_at_ms,
-                    "retired_at_ms": m.retired_at_ms,
-                }))
-                .collect::<Vec<_>>()));
-            return Ok(());
-        }
-        println!(
-            "{:<24} {:<10} {:>11}  {:<20}  description",
-            "model", "version", "predictions", "registered"
-        );
-        for m in list {
-            println!(
-                "{:<24} {:<10} {:>11}  {:<20}  {}{}",
-                m.name,
-                m.version,
-                m.predictions,
-                ms_to_text(m.registered_at_ms),
-                m.description,
-                if m.retired_at_ms > 0 {
-                    " (retired)"
-                } else {
-                    ""
-                }
-            );
-        }
-        Ok(())
-    })
 }
 
 pub fn scoreboard(c: &Connection, d: &DatasetArg, w: &WindowArg, wide: bool) -> ExitCode {
@@ -493,10 +414,44 @@ pub struct HistoryArgs {
     pub estimator: String,
     #[command(flatten)]
     pub window: WindowArg,
+    /// Only snapshots at or after this time: RFC 3339 (2026-12-04T16:00:00Z),
+    /// a date (2026-12-04, midnight UTC) or an age before now (30m, 2h, 7d).
+    #[arg(long, value_name = "TIME")]
+    pub since: Option<String>,
+    /// Only snapshots at or before this time (the same forms as --since).
+    #[arg(long, value_name = "TIME")]
+    pub until: Option<String>,
+}
+
+/// `--since` / `--until` as the request's bounds (0 = open), checked so a
+/// range that ends before it starts is refused instead of answered empty.
+fn time_range(since: Option<&str>, until: Option<&str>) -> Result<(i64, i64), Failure> {
+    let now = now_ms();
+    let bad = |flag: &str, e: String| Failure::new(super::EXIT_BAD_INPUT, format!("--{flag} {e}"));
+    let from = since
+        .map(|t| parse_time(t, now).map_err(|e| bad("since", e)))
+        .transpose()?
+        .unwrap_or(0);
+    let to = until
+        .map(|t| parse_time(t, now).map_err(|e| bad("until", e)))
+        .transpose()?
+        .unwrap_or(0);
+    if from > 0 && to > 0 && to < from {
+        return Err(Failure::new(
+            super::EXIT_BAD_INPUT,
+            format!(
+                "--until {} is before --since {}",
+                ms_to_text(to),
+                ms_to_text(from)
+            ),
+        ));
+    }
+    Ok((from.max(0), to.max(0)))
 }
 
 pub fn history(c: &Connection, a: &HistoryArgs) -> ExitCode {
     run_async(async {
+        let (from_ms, to_ms) = time_range(a.since.as_deref(), a.until.as_deref())?;
         let mut client = pb::scoring_client::ScoringClient::new(connect(c).await?);
         let points = client
             .get_history(request(
@@ -506,8 +461,8 @@ pub fn history(c: &Connection, a: &HistoryArgs) -> ExitCode {
                     model: a.model.clone(),
                     estimator: a.estimator.clone(),
                     window: Some(window(&a.window.window)?),
-                    from_ms: 0,
-                    to_ms: 0,
+                    from_ms,
+                    to_ms,
                 },
             )?)
             .await
@@ -557,6 +512,13 @@ pub struct EventsArgs {
     /// Only events after this id.
     #[arg(long, default_value_t = 0)]
     pub after: u64,
+    /// Only events of these kinds (repeatable or comma-separated), e.g.
+    /// overlap_degraded, nuisance_refit, model_retired.
+    #[arg(long = "kind", value_delimiter = ',', value_name = "KIND")]
+    pub kinds: Vec<String>,
+    /// At most this many events, oldest first (not with --follow).
+    #[arg(long, default_value_t = 1000, conflicts_with = "follow")]
+    pub limit: usize,
     /// Keep streaming new events as they happen.
     #[arg(long)]
     pub follow: bool,
@@ -569,18 +531,53 @@ fn event_json(e: &pb::Event) -> serde_json::Value {
            "snapshot_id": e.snapshot_id, "summary": e.summary, "details": details})
 }
 
-fn print_event(c: &Connection, e: &pb::Event) {
-    if c.format == Output::Json {
-        println!("{}", event_json(e));
-    } else {
-        println!(
-            "{:>6}  {:<20}  {:<28}  {}",
-            e.id,
-            ms_to_text(e.at_ms),
-            e.kind,
-            e.summary
-        );
+/// Columns of the events table before the summary, which wraps under its
+/// own column so a line stays within 100 columns.
+const EVENT_LEAD: usize = 6 + 2 + 20 + 2 + 27 + 2;
+const TABLE_WIDTH: usize = 100;
+
+pub(super) fn events_header() -> String {
+    format!("{:>6}  {:<20}  {:<27}  summary", "id", "time", "kind")
+}
+
+/// `text` broken at spaces into lines of at most `width` characters (a
+/// word longer than that keeps its own line).
+pub(super) fn wrap(text: &str, width: usize) -> Vec<String> {
+    let mut lines = vec![String::new()];
+    for word in text.split_whitespace() {
+        let last = lines.last_mut().map(|l| l.chars().count()).unwrap_or(0);
+        if last > 0 && last + 1 + word.chars().count() > width {
+            lines.push(String::new());
+        }
+        if let Some(l) = lines.last_mut() {
+            if !l.is_empty() {
+                l.push(' ');
+            }
+            l.push_str(word);
+        }
     }
+    lines
+}
+
+pub(super) fn event_text(e: &pb::Event) -> String {
+    let summary = wrap(&e.summary, TABLE_WIDTH - EVENT_LEAD);
+    let mut out = format!(
+        "{:>6}  {:<20}  {:<27}  {}",
+        e.id,
+        ms_to_text(e.at_ms),
+        e.kind,
+        summary.first().map(String::as_str).unwrap_or("")
+    );
+    for line in summary.iter().skip(1) {
+        out.push('\n');
+        out.push_str(&" ".repeat(EVENT_LEAD));
+        out.push_str(line);
+    }
+    out
+}
+
+fn wanted(a: &EventsArgs, e: &pb::Event) -> bool {
+    a.kinds.is_empty() || a.kinds.iter().any(|k| k == &e.kind)
 }
 
 pub fn events(c: &Connection, a: &EventsArgs) -> ExitCode {
@@ -599,30 +596,50 @@ pub fn events(c: &Connection, a: &EventsArgs) -> ExitCode {
                 .await
                 .map_err(failed)?
                 .into_inner();
+            if c.format == Output::Table {
+                println!("{}", events_header());
+            }
             while let Some(e) = stream.message().await.map_err(failed)? {
-                print_event(c, &e);
+                if !wanted(a, &e) {
+                    continue;
+                }
+                match c.format {
+                    Output::Json => println!("{}", event_json(&e)),
+                    Output::Table => println!("{}", event_text(&e)),
+                }
             }
             return Ok(());
         }
-        let list = client
-            .list_events(request(
-                c,
-                pb::ListEventsRequest {
-                    dataset,
-                    after_id: a.after,
-                    limit: 1000,
-                },
-            )?)
-            .await
-            .map_err(failed)?
-            .into_inner()
-            .events;
-        if c.format == Output::Json {
-            let all: Vec<serde_json::Value> = list.iter().map(event_json).collect();
-            print_json(json!(all));
-        } else {
-            for e in &list {
-                print_event(c, e);
+        // The kind filter is applied here, so pages are read until enough
+        // events of the kinds asked for are found or none are left.
+        let mut list: Vec<pb::Event> = Vec::new();
+        let mut after_id = a.after;
+        while list.len() < a.limit {
+            let page = client
+                .list_events(request(
+                    c,
+                    pb::ListEventsRequest {
+                        dataset: dataset.clone(),
+                        after_id,
+                        limit: 1000,
+                    },
+                )?)
+                .await
+                .map_err(failed)?
+                .into_inner()
+                .events;
+            let Some(last) = page.last() else { break };
+            after_id = last.id;
+            list.extend(page.into_iter().filter(|e| wanted(a, e)));
+        }
+        list.truncate(a.limit);
+        match c.format {
+            Output::Json => print_json(json!(list.iter().map(event_json).collect::<Vec<_>>())),
+            Output::Table => {
+                println!("{}", events_header());
+                for e in &list {
+                    println!("{}", event_text(e));
+                }
             }
         }
         Ok(())

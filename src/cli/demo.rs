@@ -33,13 +33,17 @@ pub struct DemoArgs {
     /// Seed of the invented scenario.
     #[arg(long, default_value_t = 7)]
     pub seed: u64,
-    /// Weeks (cohorts) to run; the policy change and the population shift
-    /// happen at weeks 4 and 7.
+    /// Weeks (cohorts) to run, at least 9; the policy change and the
+    /// population shift happen at weeks 4 and 7.
     #[arg(long, default_value_t = 10)]
     pub weeks: usize,
-    /// Members per weekly cohort.
+    /// Members per weekly cohort, at least 200.
     #[arg(long, default_value_t = 1500)]
     pub members: usize,
+    /// table: the run as it happens; json: the run on stderr and the final
+    /// summary as JSON on stdout.
+    #[arg(long, value_enum, default_value_t = super::client::Output::Table)]
+    pub format: super::client::Output,
     /// Leave the server running after the summary, for exploring with the
     /// client commands; stop it with Ctrl-C.
     #[arg(long)]
@@ -64,6 +68,9 @@ const MODELS: [(&str, &str); 4] = [
     ("commuter-rules", "challenger built for weekday commuters"),
 ];
 const SHIFT_WEEK: usize = 7;
+/// The smallest run that still shows the shift's consequences.
+const MIN_WEEKS: usize = SHIFT_WEEK + 2;
+const MIN_MEMBERS: usize = 200;
 const TARGETED: std::ops::RangeInclusive<usize> = 4..=6;
 
 struct Member {
@@ -301,7 +308,7 @@ async fn drive(
     args: &DemoArgs,
     grpc: std::net::SocketAddr,
     metrics: std::net::SocketAddr,
-) -> DemoResult<()> {
+) -> DemoResult<serde_json::Value> {
     let started = Instant::now();
     let channel = Channel::from_shared(format!("http://{grpc}"))
         .map_err(|e| e.to_string())?
@@ -438,7 +445,12 @@ async fn drive(
         println!("    - {}", e.summary);
     }
     println!("  metrics were served at http://{metrics}/metrics");
-    Ok(())
+    Ok(super::summary::demo_json(
+        started.elapsed().as_secs_f64(),
+        &cumulative,
+        &events,
+        &format!("http://{metrics}/metrics"),
+    ))
 }
 
 async fn deliver(
@@ -485,10 +497,10 @@ async fn deliver(
 }
 
 pub fn run(args: &DemoArgs) -> ExitCode {
-    if args.weeks < SHIFT_WEEK + 2 || args.members < 200 {
+    if args.weeks < MIN_WEEKS || args.members < MIN_MEMBERS {
         eprintln!(
-            "plumbline demo: needs at least {} weeks and 200 members per week to show the shift",
-            SHIFT_WEEK + 2
+            "plumbline demo: needs at least {MIN_WEEKS} weeks and {MIN_MEMBERS} members per week \
+             to show the shift"
         );
         return ExitCode::from(super::EXIT_BAD_INPUT);
     }
@@ -523,6 +535,10 @@ pub fn run(args: &DemoArgs) -> ExitCode {
                 return ExitCode::FAILURE;
             }
         };
+        // With --format json the narration goes to stderr and stdout carries
+        // only the summary's JSON document.
+        let json = args.format == super::client::Output::Json;
+        let mut narration = json.then(super::summary::NarrateOnStderr::start);
         println!("plumbline demo: ride-credit offers of an invented bike-share scheme (seed {})", args.seed);
         println!(
             "service on {} (gRPC), http://{}/metrics, store {}\n",
@@ -531,8 +547,14 @@ pub fn run(args: &DemoArgs) -> ExitCode {
             config.store.display()
         );
         let result = drive(args, running.grpc_addr, running.metrics_addr).await;
-        if let Err(e) = &result {
-            eprintln!("plumbline demo: {e}");
+        match &result {
+            Err(e) => eprintln!("plumbline demo: {e}"),
+            Ok(summary) if json => {
+                drop(narration.take());
+                super::client::print_json(summary.clone());
+                narration = Some(super::summary::NarrateOnStderr::start());
+            }
+            Ok(_) => {}
         }
         if args.keep_serving && result.is_ok() {
             println!(
@@ -542,11 +564,31 @@ pub fn run(args: &DemoArgs) -> ExitCode {
             let _ = tokio::signal::ctrl_c().await;
         }
         let stopped = running.stop().await;
+        drop(narration);
         match (result, stopped) {
-            (Ok(()), Ok(())) => ExitCode::SUCCESS,
+            (Ok(_), Ok(())) => ExitCode::SUCCESS,
             _ => ExitCode::FAILURE,
         }
     });
     let _ = std::fs::remove_dir_all(&dir);
     code
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use clap::CommandFactory;
+
+    #[derive(Debug, clap::Parser)]
+    struct Probe {
+        #[command(flatten)]
+        demo: DemoArgs,
+    }
+
+    #[test]
+    fn help_states_the_smallest_run_the_demo_accepts() {
+        let help = Probe::command().render_help().to_string();
+        assert!(help.contains(&format!("at least {MIN_WEEKS}")), "{help}");
+        assert!(help.contains(&format!("at least {MIN_MEMBERS}")), "{help}");
+    }
 }

@@ -1,8 +1,10 @@
 //! The `plumbline` command line. One file per command; each parses its
 //! arguments into a request and applies it.
 
+mod admin;
 mod board_table;
 mod client;
+mod clock;
 mod demo;
 mod ingest;
 mod loadtest;
@@ -11,11 +13,12 @@ mod render;
 mod score;
 mod serve;
 mod simulate;
+mod summary;
 mod token;
 
 use std::process::ExitCode;
 
-use clap::{Parser, Subcommand};
+use clap::{CommandFactory, FromArgMatches, Parser, Subcommand};
 
 pub use demo::DemoArgs;
 pub use score::ScoreArgs;
@@ -46,12 +49,40 @@ pub enum Command {
     Score(ScoreArgs),
     /// Write a units / predictions CSV pair from a design with known effects.
     Simulate(SimulateArgs),
-    /// List the datasets of a running server.
+    /// Create a dataset, show one, or list them.
+    Dataset {
+        #[command(flatten)]
+        connection: client::Connection,
+        #[command(subcommand)]
+        action: admin::DatasetAction,
+    },
+    /// Register, retire or list a dataset's models.
+    Model {
+        #[command(flatten)]
+        connection: client::Connection,
+        #[command(subcommand)]
+        action: admin::ModelAction,
+    },
+    /// Recompute a dataset's scores now (optionally with a nuisance refit) and say what it did.
+    Recompute {
+        #[command(flatten)]
+        connection: client::Connection,
+        #[command(flatten)]
+        args: admin::RecomputeArgs,
+    },
+    /// Compare two models: corrected PEHE of the first minus the second's, with its interval.
+    Compare {
+        #[command(flatten)]
+        connection: client::Connection,
+        #[command(flatten)]
+        args: admin::CompareArgs,
+    },
+    /// List the datasets of a running server (`dataset list`).
     Datasets {
         #[command(flatten)]
         connection: client::Connection,
     },
-    /// List a dataset's models.
+    /// List a dataset's models (`model list`).
     Models {
         #[command(flatten)]
         connection: client::Connection,
@@ -129,19 +160,62 @@ fn stop_quietly_on_closed_pipe() {
     }
 }
 
+/// Environment variables whose values must never reach a screen or a log
+/// (a token; a store URL may hold a password).
+const SECRET_VARIABLES: [&str; 2] = ["PLUMBLINE_TOKEN", "PLUMBLINE_STORE_URL"];
+
+/// Help shows an option's variable as `[env: NAME=value]`, and as
+/// `[env: NAME=]` when it is not set, which reads as "set to empty". The
+/// value is shown only when the variable is set and not a secret.
+fn tidy_env_help(command: clap::Command) -> clap::Command {
+    let command = command.mut_args(|arg| {
+        let hide = match arg.get_env() {
+            Some(name) => {
+                std::env::var_os(name).is_none()
+                    || SECRET_VARIABLES
+                        .iter()
+                        .any(|s| name == std::ffi::OsStr::new(s))
+            }
+            None => false,
+        };
+        if hide {
+            arg.hide_env_values(true)
+        } else {
+            arg
+        }
+    });
+    let names: Vec<String> = command
+        .get_subcommands()
+        .map(|s| s.get_name().to_string())
+        .collect();
+    names
+        .iter()
+        .fold(command, |c, name| c.mut_subcommand(name, tidy_env_help))
+}
+
+/// The command line as parsed, with the help tidied by [`tidy_env_help`].
+pub fn parse() -> Cli {
+    let matches = tidy_env_help(Cli::command()).get_matches();
+    Cli::from_arg_matches(&matches).unwrap_or_else(|e| e.exit())
+}
+
 pub fn run() -> ExitCode {
-    let cli = Cli::parse();
+    let cli = parse();
     if !matches!(cli.command, Command::Serve(_) | Command::Demo(_)) {
         stop_quietly_on_closed_pipe();
     }
     match cli.command {
         Command::Demo(args) => demo::run(&args),
-        Command::Datasets { connection } => client::datasets(&connection),
+        Command::Dataset { connection, action } => admin::dataset(&connection, action),
+        Command::Model { connection, action } => admin::model(&connection, action),
+        Command::Recompute { connection, args } => admin::recompute(&connection, &args),
+        Command::Compare { connection, args } => admin::compare(&connection, &args),
+        Command::Datasets { connection } => admin::datasets(&connection),
         Command::Models {
             connection,
             dataset,
             retired,
-        } => client::models(&connection, &dataset, retired),
+        } => admin::models(&connection, &dataset, retired),
         Command::Scoreboard {
             connection,
             dataset,

@@ -10,6 +10,7 @@ use std::process::ExitCode;
 
 use clap::Args;
 
+use super::client::{print_json, Output};
 use super::EXIT_BAD_INPUT;
 use crate::synth::{candidates, draw, effect_moments, Design};
 
@@ -34,9 +35,13 @@ pub struct SimulateArgs {
     /// Directory for units.csv, predictions.csv and truth.csv.
     #[arg(long, value_name = "DIR")]
     pub out: PathBuf,
+    /// table: a line on stderr; json: what was written, on stdout.
+    #[arg(long, value_enum, default_value_t = Output::Table)]
+    pub format: Output,
 }
 
-fn write_all(args: &SimulateArgs, design: Design) -> std::io::Result<()> {
+/// Writes the three files; returns each model's name and true PEHE.
+fn write_all(args: &SimulateArgs, design: Design) -> std::io::Result<Vec<(String, f64)>> {
     std::fs::create_dir_all(&args.out)?;
     let data = draw(design, args.units, args.features, args.sigma, args.seed);
     let (_, var_tau) = effect_moments(design, 200_000, args.seed ^ 0x5eed);
@@ -82,7 +87,11 @@ fn write_all(args: &SimulateArgs, design: Design) -> std::io::Result<()> {
     for m in &models {
         writeln!(truth, "{},{}", m.predictions.name, m.true_pehe)?;
     }
-    truth.flush()
+    truth.flush()?;
+    Ok(models
+        .iter()
+        .map(|m| (m.predictions.name.clone(), m.true_pehe))
+        .collect())
 }
 
 pub fn run(args: &SimulateArgs) -> ExitCode {
@@ -91,7 +100,20 @@ pub fn run(args: &SimulateArgs) -> ExitCode {
         return ExitCode::from(EXIT_BAD_INPUT);
     };
     match write_all(args, design) {
-        Ok(()) => {
+        Ok(models) if args.format == Output::Json => {
+            let file = |f: &str| args.out.join(f).display().to_string();
+            print_json(serde_json::json!({
+                "design": args.design, "units": args.units, "features": args.features,
+                "sigma": args.sigma, "seed": args.seed,
+                "units_file": file("units.csv"), "predictions_file": file("predictions.csv"),
+                "truth_file": file("truth.csv"),
+                "models": models.iter().map(|(name, pehe)| serde_json::json!({
+                    "name": name, "true_pehe": pehe,
+                })).collect::<Vec<_>>(),
+            }));
+            ExitCode::SUCCESS
+        }
+        Ok(_) => {
             eprintln!(
                 "plumbline simulate: wrote {} units and {} models to {}",
                 args.units,

@@ -20,7 +20,9 @@ pub const MAX_KEY_BYTES: usize = 256;
 pub const MAX_COHORT_BYTES: usize = 128;
 /// Most rows in one batch.
 pub const MAX_BATCH_ROWS: usize = 10_000;
-/// Most row-level reasons returned for a refused batch.
+/// Most row-level reasons returned for a refused batch. Every faulty row
+/// is recorded (a batch holds at most [`MAX_BATCH_ROWS`]), so the receipt
+/// can count them all; only the reasons sent back are capped.
 pub const MAX_REJECTIONS: usize = 100;
 
 /// What kind of problem a row has; decides the status code.
@@ -106,14 +108,12 @@ impl Faults {
         fault: Fault,
         reason: impl Into<String>,
     ) {
-        if self.0.len() < MAX_REJECTIONS {
-            self.0.push(Rejection {
-                row,
-                field: field.into(),
-                reason: reason.into(),
-                fault,
-            });
-        }
+        self.0.push(Rejection {
+            row,
+            field: field.into(),
+            reason: reason.into(),
+            fault,
+        });
     }
 }
 
