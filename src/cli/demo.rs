@@ -238,6 +238,18 @@ async fn send_outcomes(c: &mut Client, members: &[Member]) -> DemoResult<u64> {
         .accepted)
 }
 
+/// Prints `text` after `lead`, wrapped to 100 columns, continuing under its
+/// first word.
+fn say(lead: &str, text: &str) {
+    let hang = " ".repeat(lead.len());
+    for (i, line) in super::client::wrap(text, 100 - lead.len())
+        .iter()
+        .enumerate()
+    {
+        println!("{}{line}", if i == 0 { lead } else { &hang });
+    }
+}
+
 /// Set once the demo has printed what its table's columns mean.
 static LEGEND_SHOWN: std::sync::atomic::AtomicBool = std::sync::atomic::AtomicBool::new(false);
 
@@ -266,13 +278,14 @@ fn print_board(b: &pb::Scoreboard) {
     }
     if let Some(o) = &b.overlap {
         println!(
-            "    overlap: {:.1}% of members with propensity outside [{}, {}]; effective sample {:.0}% treated / {:.0}% control{}",
+            "    overlap{}: {:.1}% with propensity outside [{}, {}]; ESS {:.0}% treated, \
+             {:.0}% control",
+            if o.degraded { " DEGRADED" } else { "" },
             100.0 * o.extreme_share,
             o.eps,
             1.0 - o.eps,
             100.0 * o.treated_effective_share,
             100.0 * o.control_effective_share,
-            if o.degraded { "  <- degraded" } else { "" }
         );
     }
     // Said only when no model beats constant-effect, read off the intervals
@@ -297,7 +310,7 @@ async fn new_events(c: &mut Client, after: &mut u64, all: &mut Vec<pb::Event>) -
     for e in events {
         *after = e.id;
         if !matches!(e.kind.as_str(), "model_registered") {
-            println!("  * event {}: {}", e.kind, e.summary);
+            say("  * ", &format!("event {}: {}", e.kind, e.summary));
         }
         all.push(e);
     }
@@ -370,7 +383,7 @@ async fn drive(
         if week <= args.weeks {
             let members = cohort(week, args.members, &mut rng);
             let policy = if TARGETED.contains(&week) {
-                "credits targeted at low-usage members (97% of them, 35% of others)"
+                "credits to 97% of low-usage members, 35% of others"
             } else {
                 "credits by coin flip (50%)"
             };
@@ -409,10 +422,11 @@ async fn drive(
     println!("\nsummary after {:.1} s", started.elapsed().as_secs_f64());
     let view = cumulative.alerts.clone().unwrap_or_default();
     println!(
-        "  {} members with ride counts; lowest error over all weeks: {}; front-runner the alerts \
-         report now: {} ({}, on {} members watched as they arrived)",
-        cumulative.units,
-        cumulative.front_runner,
+        "  {} members with ride counts; lowest error over all weeks: {}",
+        cumulative.units, cumulative.front_runner
+    );
+    println!(
+        "  front-runner per the alerts: {} ({}; {} members watched as they arrived)",
         if view.front_runner.is_empty() {
             "none yet"
         } else {
@@ -442,7 +456,7 @@ async fn drive(
             "front_runner_changed" | "nuisance_misfit" | "population_drift"
         ) || e.kind.starts_with("overlap")
     }) {
-        println!("    - {}", e.summary);
+        say("    - ", &e.summary);
     }
     println!("  metrics were served at http://{metrics}/metrics");
     Ok(super::summary::demo_json(
