@@ -424,24 +424,13 @@ fn wrap_prose(text: &str, width: usize) -> String {
                 .filter(|&c| c <= width / 2)
                 .unwrap_or(indent),
         };
-        let hang = " ".repeat(start);
-        let mut current = line[..start].to_string();
-        let mut empty = true;
-        for word in line[start..].split(' ') {
-            if !empty && current.len() + 1 + word.len() > width {
-                out.push_str(&current);
-                out.push('\n');
-                current.clone_from(&hang);
-                empty = true;
-            }
-            if !empty {
-                current.push(' ');
-            }
-            current.push_str(word);
-            empty = false;
+        for (i, piece) in super::client::wrap(&line[start..], width - start)
+            .iter()
+            .enumerate()
+        {
+            let lead = if i == 0 { &line[..start] } else { "" };
+            let _ = writeln!(out, "{lead:<start$}{piece}");
         }
-        out.push_str(&current);
-        out.push('\n');
     }
     out
 }
