@@ -401,6 +401,24 @@ fn the_readme_job_runs_through_the_command_line_alone() {
     drop(srv);
 }
 
+/// Writes `units` simulated units with five features and one model's
+/// predictions under `sim`.
+fn simulate_one_model(sim: &Path, units: usize) {
+    let units = units.to_string();
+    let r = run(&[
+        "simulate",
+        "--units",
+        &units,
+        "--features",
+        "5",
+        "--models",
+        "1",
+        "--out",
+        &path(sim),
+    ]);
+    assert_eq!(r.code, Some(0), "{}", r.stderr);
+}
+
 /// Predictions sent after their outcomes are all refused: the message
 /// counts every refused row, numbers rows from 1 as `score` does, lists
 /// the reasons the server sent (at most 100), and says once what is
@@ -412,18 +430,7 @@ fn refused_predictions_are_counted_and_numbered_as_the_file() {
     let server = srv.url();
     let files = TempDir::new("cli-refused-files");
     let sim = files.0.join("sim");
-    let r = run(&[
-        "simulate",
-        "--units",
-        "1000",
-        "--features",
-        "5",
-        "--models",
-        "1",
-        "--out",
-        &path(&sim),
-    ]);
-    assert_eq!(r.code, Some(0), "{}", r.stderr);
+    simulate_one_model(&sim, 1000);
     let units = path(&sim.join("units.csv"));
     let predictions = path(&sim.join("predictions.csv"));
     let header = std::fs::read_to_string(&predictions).expect("predictions");
@@ -504,18 +511,7 @@ fn ingest_shows_progress_on_a_terminal_and_only_the_summary_elsewhere() {
     let server = srv.url();
     let files = TempDir::new("cli-progress-files");
     let sim = files.0.join("sim");
-    let r = run(&[
-        "simulate",
-        "--units",
-        "20000",
-        "--features",
-        "5",
-        "--models",
-        "1",
-        "--out",
-        &path(&sim),
-    ]);
-    assert_eq!(r.code, Some(0), "{}", r.stderr);
+    simulate_one_model(&sim, 20000);
     let units = path(&sim.join("units.csv"));
     let r = run(&[
         "dataset",
