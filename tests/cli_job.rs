@@ -254,6 +254,40 @@ fn the_readme_job_runs_through_the_command_line_alone() {
     // block-wise sums (tests/service.rs holds the same bound).
     assert_json_close(&board["scoreboard"], &offline, 1e-9, "scoreboard");
 
+    // The service's table and the offline report print the same rows with
+    // the same labels and numbers (they once used three vocabularies).
+    let served = call(&["scoreboard", "--dataset", "job"]);
+    assert_eq!(served.code, Some(0), "{}", served.stderr);
+    let report = run(&[
+        "score",
+        "--units",
+        &units,
+        "--predictions",
+        &predictions,
+        "--seed",
+        "3",
+        "--folds",
+        "5",
+    ]);
+    assert_eq!(report.code, Some(0), "{}", report.stderr);
+    let table_rows = |text: &str| -> Vec<String> {
+        let lines: Vec<&str> = text.lines().collect();
+        let start = lines
+            .iter()
+            .position(|l| l.trim_start().starts_with("rank  model"))
+            .unwrap_or_else(|| panic!("no board table in:\n{text}"));
+        lines[start..]
+            .iter()
+            .take(names.len() + 1)
+            .map(|l| l.trim().to_string())
+            .collect()
+    };
+    assert_eq!(table_rows(&served.stdout), table_rows(&report.stdout));
+    for text in [&served.stdout, &report.stdout] {
+        let widest = text.lines().map(|l| l.chars().count()).max().unwrap_or(0);
+        assert!(widest <= 100, "{widest} columns:\n{text}");
+    }
+
     // A comparison is the board's kept pair, read either way round.
     let (a, b) = (names[0].as_str(), names[1].as_str());
     let cmp = call_json(&["compare", "--dataset", "job", a, b]);

@@ -374,8 +374,8 @@ pub fn scoreboard(c: &Connection, d: &DatasetArg, w: &WindowArg, wide: bool) -> 
         );
         if let Some(a) = b.alerts.as_ref().filter(|a| a.looks > 0) {
             println!(
-                "alerts (on {} units watched as they arrived, {} recomputes): front-runner {}{}; \
-                 heterogeneity {}; overlap {}",
+                "alerts (on {} units watched as they arrived, {} recomputes):\n  front-runner \
+                 {}{}; heterogeneity {}; overlap {}",
                 a.units,
                 a.looks,
                 if a.front_runner.is_empty() {
@@ -396,7 +396,9 @@ pub fn scoreboard(c: &Connection, d: &DatasetArg, w: &WindowArg, wide: bool) -> 
                 }
             );
         }
-        println!("{}", b.caveat);
+        for line in wrap(&b.caveat, TABLE_WIDTH) {
+            println!("{line}");
+        }
         Ok(())
     })
 }
