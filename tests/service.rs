@@ -1459,7 +1459,7 @@ async fn every_estimator_reaches_the_board_metrics_history_and_table() {
 
     let addr = format!("http://{}", srv.grpc_addr);
     let out = std::process::Command::new(env!("CARGO_BIN_EXE_plumbline"))
-        .args(["scoreboard", "--server", &addr, "--dataset", name])
+        .args(["scoreboard", "--server", &addr, "--dataset", name, "--wide"])
         .output()
         .expect("run plumbline scoreboard");
     assert!(
@@ -1467,10 +1467,18 @@ async fn every_estimator_reaches_the_board_metrics_history_and_table() {
         "{}",
         String::from_utf8_lossy(&out.stderr)
     );
+    // The wide view carries a column per estimator; the default view, the
+    // board table, leads with the differences and the chance.
     let table = String::from_utf8_lossy(&out.stdout);
+    assert!(
+        table
+            .lines()
+            .any(|l| l.trim_start().starts_with("rank") && l.contains("chance")),
+        "{table}"
+    );
     let header = table
         .lines()
-        .find(|l| l.trim_start().starts_with("rank"))
+        .find(|l| l.trim_start().starts_with("model"))
         .unwrap_or_default();
     for e in estimators::ALL {
         assert!(
@@ -1479,7 +1487,6 @@ async fn every_estimator_reaches_the_board_metrics_history_and_table() {
             e.label()
         );
     }
-    assert!(header.contains("chance"), "{header:?}");
 
     // The selection-aware figures reach the wire: every model's chance of
     // the lowest error (they sum to one), the joint bounds around the
