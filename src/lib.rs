@@ -32,6 +32,9 @@
 //!   interceptor and by each handler for its dataset.
 //! - [`metrics`]: Prometheus series and the HTTP listener for `/metrics`,
 //!   `/healthz` and `/readyz`.
+//! - [`page`]: the status page on that listener (`/`): each dataset's
+//!   board, history, propensities, events and alert states, drawn on the
+//!   server as HTML with inline SVG by pure functions.
 //! - [`server`], [`config`], [`shutdown`]: starting, configuring and
 //!   draining the service; [`limits`]: what one client may ask of it.
 //! - [`input`]: reading units and predictions from CSV files, with errors that
@@ -52,6 +55,7 @@ pub mod input;
 pub mod limits;
 pub mod metrics;
 pub mod monitor;
+pub mod page;
 pub mod server;
 pub mod shutdown;
 pub mod store;

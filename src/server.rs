@@ -3,7 +3,7 @@
 
 use std::net::SocketAddr;
 use std::sync::atomic::AtomicBool;
-use std::sync::Arc;
+use std::sync::{Arc, OnceLock};
 
 use tokio::net::TcpListener;
 use tokio::task::JoinHandle;
@@ -117,6 +117,8 @@ pub async fn start(config: &Config) -> Result<Running, StartError> {
     let metrics = Metrics::new();
     let ready = Arc::new(AtomicBool::new(false));
     let ownership = Arc::new(Ownership::default());
+    // The status page reads through the monitor once it is restored.
+    let page_monitor = Arc::new(OnceLock::new());
     let signal = ShutdownSignal::new();
 
     let grpc_listener = TcpListener::bind(config.listen)
@@ -136,6 +138,7 @@ pub async fn start(config: &Config) -> Result<Running, StartError> {
             ready: Arc::clone(&ready),
             ownership: Arc::clone(&ownership),
             gate: config.metrics_require_token.then(|| Arc::clone(&gate)),
+            monitor: Arc::clone(&page_monitor),
         },
         signal.subscribe(),
     ));
@@ -155,6 +158,7 @@ pub async fn start(config: &Config) -> Result<Running, StartError> {
     )
     .await
     .map_err(|e| format!("restoring state: {e}"))?;
+    let _ = page_monitor.set(Arc::clone(&monitor));
     monitor.start_schedulers();
 
     let (health, health_service) = tonic_health::server::health_reporter();

@@ -1,5 +1,6 @@
 //! Prometheus metrics (prefix `plumbline_`) and the HTTP listener that
-//! serves them with the health probes.
+//! serves them with the health probes and the status page
+//! ([`crate::page`]).
 //!
 //! Series, all labelled by `dataset`:
 //! - `plumbline_model_score` / `plumbline_model_score_se` {model, estimator, window}

@@ -21,4 +21,15 @@ impl Monitor {
     pub fn dataset_id(&self, dataset: &str) -> MonitorResult<i64> {
         Ok(self.handle(dataset)?.id)
     }
+
+    /// The latest published board of a window, None before the dataset's
+    /// first recompute. Waits on no lock that intake or a recompute holds.
+    pub fn published_board(&self, dataset: &str, window: &str) -> MonitorResult<Option<Board>> {
+        Ok(self.handle(dataset)?.boards().get(window).cloned())
+    }
+
+    /// Every dataset's name, in creation order.
+    pub fn dataset_names(&self) -> Vec<String> {
+        self.handles().into_iter().map(|h| h.name.clone()).collect()
+    }
 }

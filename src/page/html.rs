@@ -1,0 +1,623 @@
+//! Whole HTML documents: the index of datasets, one dataset's page, the
+//! sign-in page a refused browser gets, and plain messages. One embedded
+//! style sheet, no script, no external resource.
+
+use std::fmt::Write;
+
+use super::conditions::{Condition, State};
+use super::scale;
+use super::svg::{self, Colors};
+use super::{url_segment, DatasetSummary, DatasetView, Esc, Frame, HISTORY_SPAN_MS, WINDOW};
+
+macro_rules! put {
+    ($($t:tt)*) => {{ let _ = write!($($t)*); }};
+}
+
+const STYLE: &str = r#"
+:root { color-scheme: light; }
+* { box-sizing: border-box; }
+body { margin: 0; font: 15px/1.45 system-ui, -apple-system, "Segoe UI", Roboto, "Noto Sans", "DejaVu Sans", Arial, sans-serif; color: #222; background: #eef0f3; }
+.bar { background: #1f2a36; color: #e8edf2; padding: 10px 24px; display: flex; gap: 8px 22px; align-items: center; flex-wrap: wrap; }
+.bar a { color: #bcd8ff; }
+.bar .brand { font-weight: 700; color: #fff; font-size: 16px; }
+.bar form { margin: 0 0 0 auto; }
+.bar button { font: inherit; font-size: 13px; padding: 3px 10px; }
+main { max-width: 1320px; margin: 0 auto; padding: 12px 20px 32px; }
+section { background: #fff; border: 1px solid #d9dde3; border-radius: 6px; padding: 14px 18px; margin: 16px 0; }
+h1 { font-size: 26px; margin: 10px 0 4px; }
+h2 { font-size: 19px; margin: 0 0 4px; }
+p { margin: 4px 0 10px; }
+.lede, .note { color: #555; }
+.facts { display: flex; flex-wrap: wrap; gap: 4px 24px; margin: 6px 0 4px; padding: 0; list-style: none; }
+.facts b { font-variant-numeric: tabular-nums; }
+svg { display: block; max-width: 100%; height: auto; }
+svg text { font-family: inherit; font-size: 13.5px; fill: #222; }
+svg .tick { font-size: 12.5px; fill: #555; font-variant-numeric: tabular-nums; }
+svg .head { font-size: 12.5px; font-weight: 600; fill: #555; }
+svg .axis { font-size: 13.5px; fill: #333; }
+svg .small { font-size: 12.5px; fill: #444; }
+svg .muted, svg tspan.muted { fill: #777; }
+svg .front { font-weight: 700; }
+svg .num { font-variant-numeric: tabular-nums; }
+svg .threshold { fill: #C0392B; font-weight: 600; }
+svg .arm { font-size: 14.5px; font-weight: 600; }
+svg .legend text { font-size: 12.5px; fill: #333; }
+.conditions { display: grid; grid-template-columns: repeat(auto-fill, minmax(235px, 1fr)); gap: 10px; margin: 8px 0; }
+.condition { border-radius: 5px; padding: 8px 11px; border-left: 6px solid #9aa0a6; background: #f1f2f4; }
+.condition.active { background: #fdecea; border-color: #C0392B; }
+.condition.clear { background: #edf7f0; border-color: #2E7D4F; }
+.condition .state { font-weight: 700; text-transform: uppercase; font-size: 12px; letter-spacing: .05em; }
+.condition.active .state { color: #A52A1E; }
+.condition.clear .state { color: #2E7D4F; }
+.condition .title { font-weight: 600; }
+.condition .detail { color: #444; font-size: 13.5px; }
+.chip { display: inline-block; border-radius: 10px; padding: 1px 9px; margin: 1px 4px 1px 0; font-size: 13px; background: #fdecea; color: #A52A1E; border: 1px solid #f3c4bd; }
+.chip.none { background: #edf7f0; color: #2E7D4F; border-color: #bfe0cb; }
+table { border-collapse: collapse; width: 100%; }
+th, td { text-align: left; padding: 6px 8px; border-bottom: 1px solid #e6e8eb; vertical-align: top; }
+th { font-size: 13px; color: #555; font-weight: 600; }
+td.time, td.num { white-space: nowrap; font-variant-numeric: tabular-nums; }
+.kind { font-family: ui-monospace, "DejaVu Sans Mono", Menlo, Consolas, monospace; font-size: 13px; white-space: nowrap; }
+.dot { display: inline-block; width: 10px; height: 10px; border-radius: 5px; margin-right: 6px; vertical-align: baseline; }
+form.sign-in label { display: block; font-weight: 600; margin: 10px 0 4px; }
+form.sign-in input[type=password] { width: 100%; max-width: 560px; padding: 8px; font: inherit; font-family: ui-monospace, "DejaVu Sans Mono", monospace; }
+form.sign-in button { font: inherit; padding: 7px 16px; margin-top: 10px; }
+.problem { color: #A52A1E; font-weight: 600; }
+footer { color: #666; font-size: 13px; text-align: center; margin: 8px 0 24px; }
+"#;
+
+/// A whole document around `body`; `refresh` reloads it every so many
+/// seconds.
+fn document(title: &str, refresh: Option<u32>, bar: &str, body: &str, footer: &str) -> String {
+    let mut out = String::with_capacity(body.len() + STYLE.len() + 1024);
+    out.push_str("<!DOCTYPE html>\n<html lang=\"en\"><head><meta charset=\"utf-8\">");
+    out.push_str("<meta name=\"viewport\" content=\"width=device-width, initial-scale=1\">");
+    if let Some(s) = refresh {
+        put!(out, "<meta http-equiv=\"refresh\" content=\"{s}\">");
+    }
+    put!(
+        out,
+        "<title>{}</title><style>{STYLE}</style></head><body>",
+        Esc(title)
+    );
+    put!(out, "<div class=\"bar\">{bar}</div><main>{body}</main>");
+    put!(
+        out,
+        "<footer data-kind=\"drawn\">{footer}</footer></body></html>\n"
+    );
+    out
+}
+
+/// The top bar: name, a link to the index, when drawn, and a way to forget
+/// the page's cookie.
+fn bar(f: &Frame, index_link: bool) -> String {
+    let mut out = String::from(r#"<span class="brand">plumbline status</span>"#);
+    if index_link {
+        out.push_str(r#"<a href="/" data-kind="index-link">all datasets</a>"#);
+    }
+    put!(
+        out,
+        r#"<span>drawn <time data-kind="drawn-at" data-ms="{}">{}</time></span><span>reloads every {} s</span>"#,
+        f.drawn_at_ms,
+        scale::datetime(f.drawn_at_ms),
+        f.refresh_seconds
+    );
+    if f.signed_in {
+        out.push_str(
+            r#"<form method="post" action="/sign-out"><button type="submit">forget my token</button></form>"#,
+        );
+    }
+    out
+}
+
+fn footer(f: &Frame) -> String {
+    format!(
+        "Drawn by this server at {}; the page reloads itself every {} seconds.",
+        scale::datetime(f.drawn_at_ms),
+        f.refresh_seconds
+    )
+}
+
+fn conditions_grid(out: &mut String, list: &[Condition]) {
+    out.push_str(r#"<div class="conditions">"#);
+    for c in list {
+        put!(
+            out,
+            r#"<div class="condition {state}" data-kind="alert" data-alert="{}" data-state="{state}"><div class="state">{state}</div><div class="title">{}</div><div class="detail">{}</div></div>"#,
+            c.key,
+            Esc(c.title),
+            Esc(&c.detail),
+            state = c.state.word()
+        );
+    }
+    out.push_str("</div>");
+}
+
+/// The index: each dataset with its latest board's facts and the alert
+/// conditions active now, linking to its own page.
+pub fn index_page(list: &[DatasetSummary], f: &Frame) -> String {
+    let mut body = String::from("<h1>Datasets</h1>");
+    if list.is_empty() {
+        body.push_str(
+            r#"<section><p class="note" data-kind="no-data">No datasets yet. Create one with the DatasetRegistry API (<code>CreateDataset</code>) and it will be listed here.</p></section>"#,
+        );
+        return document(
+            "plumbline status",
+            Some(f.refresh_seconds),
+            &bar(f, false),
+            &body,
+            &footer(f),
+        );
+    }
+    put!(
+        body,
+        r#"<p class="lede">The {WINDOW} window of each dataset, as its latest recompute left it. Open a dataset for its board, history, overlap and events.</p><section><table><thead><tr><th>dataset</th><th>units</th><th>front-runner</th><th>last recompute</th><th>alerts now</th></tr></thead><tbody>"#
+    );
+    for d in list {
+        put!(
+            body,
+            r#"<tr data-kind="dataset" data-dataset="{}"><td><a data-kind="dataset-link" href="/datasets/{}">{}</a></td>"#,
+            Esc(&d.name),
+            url_segment(&d.name),
+            Esc(&d.name)
+        );
+        match &d.board {
+            None => body.push_str(
+                r#"<td class="num">–</td><td class="note">not scored yet</td><td class="time">–</td>"#,
+            ),
+            Some(b) => {
+                let front = if !b.degenerate.is_empty() {
+                    format!(r#"<span class="note">no scores: {}</span>"#, Esc(&b.degenerate))
+                } else if b.front_runner.is_empty() {
+                    "–".into()
+                } else {
+                    Esc(&b.front_runner).to_string()
+                };
+                put!(
+                    body,
+                    r#"<td class="num">{}</td><td>{front}</td><td class="time">{} ({} ago)</td>"#,
+                    b.units,
+                    scale::datetime(b.computed_at_ms),
+                    scale::ago(f.drawn_at_ms - b.computed_at_ms)
+                );
+            }
+        }
+        body.push_str("<td>");
+        let active: Vec<&Condition> = d
+            .conditions
+            .iter()
+            .filter(|c| c.state == State::Active)
+            .collect();
+        if active.is_empty() {
+            body.push_str(r#"<span class="chip none">none</span>"#);
+        }
+        for c in active {
+            put!(
+                body,
+                r#"<span class="chip" data-kind="alert-chip" data-alert="{}">{}</span>"#,
+                c.key,
+                Esc(c.title)
+            );
+        }
+        body.push_str("</td></tr>");
+    }
+    body.push_str("</tbody></table></section>");
+    document(
+        "plumbline status: datasets",
+        Some(f.refresh_seconds),
+        &bar(f, false),
+        &body,
+        &footer(f),
+    )
+}
+
+/// One dataset: facts, alert conditions, board, history, propensities and
+/// events.
+pub fn dataset_page(v: &DatasetView, f: &Frame) -> String {
+    let mut body = String::new();
+    put!(
+        body,
+        r#"<h1 data-kind="dataset-name">{}</h1>"#,
+        Esc(&v.name)
+    );
+    let colors = v.board.as_ref().map(Colors::of).unwrap_or_default();
+
+    // Facts of the latest board.
+    body.push_str(r#"<ul class="facts" data-kind="facts">"#);
+    put!(body, "<li>window <b>{WINDOW}</b></li>");
+    match &v.board {
+        None => body.push_str("<li>not scored yet: send outcomes or call Recompute</li>"),
+        Some(b) => {
+            put!(body, "<li>units with outcomes <b>{}</b></li>", b.units);
+            if let Some(ate) = b.ate {
+                put!(
+                    body,
+                    "<li>average effect <b>{}</b> (se {})</li>",
+                    scale::signed(ate.estimate),
+                    scale::sig(ate.se)
+                );
+            }
+            if !b.front_runner.is_empty() {
+                put!(
+                    body,
+                    "<li>front-runner <b>{}</b></li>",
+                    Esc(&b.front_runner)
+                );
+            }
+            put!(
+                body,
+                "<li>last recompute <b>{}</b> ({} ago), snapshot {}</li>",
+                scale::datetime(b.computed_at_ms),
+                scale::ago(f.drawn_at_ms - b.computed_at_ms),
+                b.snapshot_id
+            );
+        }
+    }
+    body.push_str("</ul>");
+
+    // Alerts now.
+    body.push_str(r#"<section id="alerts"><h2>Alerts now</h2><p class="lede">The state of each alert condition at this moment, from the alerts' watch of the arriving units (the Prometheus rules add how long a condition must last before it fires).</p>"#);
+    conditions_grid(&mut body, &v.conditions);
+    if let Some(view) = v.board.as_ref().and_then(|b| b.alerts.as_ref()) {
+        put!(
+            body,
+            r#"<p class="note">The watch has taken {} units over {} looks."#,
+            view.units,
+            view.looks
+        );
+        if !view.drift.is_empty() {
+            let mut drift: Vec<_> = view.drift.iter().collect();
+            drift.sort_by(|a, b| {
+                b.standardized_difference
+                    .abs()
+                    .total_cmp(&a.standardized_difference.abs())
+            });
+            body.push_str(
+                " Largest drifts from the reference population (standardized mean difference): ",
+            );
+            let parts: Vec<String> = drift
+                .iter()
+                .take(5)
+                .map(|d| {
+                    format!(
+                        "{} {}",
+                        Esc(&d.quantity),
+                        scale::signed(d.standardized_difference)
+                    )
+                })
+                .collect();
+            body.push_str(&parts.join(", "));
+            body.push('.');
+        }
+        body.push_str("</p>");
+    }
+    if v.recompute_failures > 0 {
+        put!(
+            body,
+            r#"<p class="problem" data-kind="recompute-failures">{} recomputes of this dataset failed on this server since it started; the service log names the cause.</p>"#,
+            v.recompute_failures
+        );
+    }
+    body.push_str("</section>");
+
+    // The board.
+    body.push_str(r#"<section id="board"><h2>Board</h2>"#);
+    match &v.board {
+        None => body.push_str(r#"<p class="note" data-kind="no-data">Not scored yet: send outcomes or call Recompute.</p>"#),
+        Some(b) => {
+            body.push_str(r#"<p class="lede">Each ranked model's corrected PEHE minus constant-effect's, with its 95% interval; left of the dashed zero line a model errs less than predicting the average effect for everyone. "Chance lowest" is each model's chance of having the lowest error of all.</p>"#);
+            body.push_str(&svg::board_chart(b, &colors));
+            if !b.incomplete.is_empty() {
+                let parts: Vec<String> = b
+                    .incomplete
+                    .iter()
+                    .map(|m| format!("{} ({} of units)", Esc(&m.name), scale::percent(m.coverage)))
+                    .collect();
+                put!(
+                    body,
+                    r#"<p class="note">Left out for predicting too few units: {}.</p>"#,
+                    parts.join(", ")
+                );
+            }
+            if !b.caveat.is_empty() {
+                put!(body, r#"<p class="note">{}</p>"#, Esc(&b.caveat));
+            }
+        }
+    }
+    body.push_str("</section>");
+
+    // History.
+    put!(
+        body,
+        r#"<section id="history"><h2>Scores over time</h2><p class="lede">Each model's difference from constant-effect after every recompute of the last {} days before the latest board, with its 95% band (± 1.96 standard errors) shaded. Baselines are left out: the dashed zero line is constant-effect.</p>"#,
+        HISTORY_SPAN_MS / 86_400_000
+    );
+    body.push_str(&svg::history_chart(&v.history, &colors));
+    body.push_str("</section>");
+
+    // Overlap.
+    body.push_str(r#"<section id="overlap"><h2>Propensity by arm</h2>"#);
+    let t = &v.thresholds;
+    put!(
+        body,
+        r#"<p class="lede">How likely each unit was to be treated, for treated units (above) and control units (below). Units in the shaded ends, outside [{}, {}], have an extreme propensity: their effects rest on extrapolation.</p>"#,
+        t.eps,
+        1.0 - t.eps
+    );
+    match &v.propensities {
+        Some(p) => body.push_str(&svg::propensity_chart(p, t)),
+        None => body.push_str(r#"<p class="note" data-kind="no-data">No propensities yet.</p>"#),
+    }
+    if let Some(o) = v.board.as_ref().and_then(|b| b.overlap.as_ref()) {
+        body.push_str(r#"<ul class="facts" data-kind="overlap-facts">"#);
+        put!(
+            body,
+            "<li>extreme share <b>{}</b> (limit {})</li>",
+            scale::percent(o.extreme_share),
+            scale::percent(t.max_extreme_share)
+        );
+        put!(
+            body,
+            "<li>effective sample <b>{}</b> of treated, <b>{}</b> of control (least {})</li>",
+            scale::percent(o.treated_effective_share),
+            scale::percent(o.control_effective_share),
+            scale::percent(t.min_effective_share)
+        );
+        put!(
+            body,
+            "<li>outside [0.1, 0.9] <b>{}</b></li>",
+            scale::percent(o.outside_crump_share)
+        );
+        put!(
+            body,
+            "<li>largest weight <b>{}</b> treated, <b>{}</b> control</li>",
+            scale::percent(o.treated_max_weight),
+            scale::percent(o.control_max_weight)
+        );
+        put!(
+            body,
+            "<li>at this look <b>{}</b></li>",
+            if o.degraded {
+                "beyond a limit"
+            } else {
+                "within limits"
+            }
+        );
+        if !o.imbalanced_features.is_empty() {
+            let names: Vec<String> = o
+                .imbalanced_features
+                .iter()
+                .map(|n| Esc(n).to_string())
+                .collect();
+            put!(
+                body,
+                "<li>imbalanced after weighting <b>{}</b></li>",
+                names.join(", ")
+            );
+        }
+        body.push_str("</ul>");
+    }
+    body.push_str("</section>");
+
+    // Events.
+    body.push_str(r#"<section id="events"><h2>Events</h2>"#);
+    put!(
+        body,
+        r#"<p class="lede">The latest {} events of the dataset on a timeline, one lane per kind; the list below has the newest first.</p>"#,
+        v.events.len()
+    );
+    body.push_str(&svg::event_timeline(&v.events));
+    if !v.events.is_empty() {
+        body.push_str(r#"<table><thead><tr><th>time (UTC)</th><th>kind</th><th>message</th></tr></thead><tbody>"#);
+        for e in v.events.iter().rev() {
+            put!(
+                body,
+                r#"<tr data-kind="event-row" data-event="{}"><td class="time">{}</td><td class="kind"><span class="dot" style="background:{}"></span>{}</td><td>{}</td></tr>"#,
+                Esc(&e.kind),
+                scale::datetime(e.at_ms),
+                svg::event_color(&e.kind),
+                Esc(&e.kind),
+                Esc(&e.summary)
+            );
+        }
+        body.push_str("</tbody></table>");
+    }
+    body.push_str("</section>");
+
+    document(
+        &format!("{}: plumbline status", v.name),
+        Some(f.refresh_seconds),
+        &bar(f, true),
+        &body,
+        &footer(f),
+    )
+}
+
+/// What a browser without an acceptable token gets: why, and a form that
+/// keeps a token in a cookie for this site only.
+pub fn sign_in_page(problem: &str, next: &str, f: &Frame) -> String {
+    let mut body = String::from("<h1>Sign in</h1><section>");
+    body.push_str("<p>This page shows every dataset, so it needs an access token with the <code>admin</code> or <code>read:*</code> scope (the rule of <code>/metrics</code>). <code>plumbline token create --scope 'read:*'</code> makes one.</p>");
+    if !problem.is_empty() {
+        put!(
+            body,
+            r#"<p class="problem" data-kind="problem">{}</p>"#,
+            Esc(problem)
+        );
+    }
+    put!(
+        body,
+        r#"<form class="sign-in" data-kind="sign-in" method="post" action="/sign-in"><label for="token">Access token</label><input id="token" name="token" type="password" autocomplete="off" required placeholder="plb_…"><input type="hidden" name="next" value="{}"><br><button type="submit">Open the page</button></form>"#,
+        Esc(next)
+    );
+    body.push_str(r#"<p class="note">The token is kept in a cookie that only this server receives and that scripts cannot read (HttpOnly, SameSite=Strict), never in the address. "Forget my token" at the top of the page removes it. Tools can send <code>authorization: Bearer &lt;token&gt;</code> instead.</p></section>"#);
+    document(
+        "plumbline status: sign in",
+        None,
+        r#"<span class="brand">plumbline status</span>"#,
+        &body,
+        &format!(
+            "Drawn by this server at {}.",
+            scale::datetime(f.drawn_at_ms)
+        ),
+    )
+}
+
+/// A plain message (not found, starting, unavailable).
+pub fn message_page(title: &str, message: &str, f: &Frame) -> String {
+    let body = format!(
+        r#"<h1>{}</h1><section><p data-kind="message">{}</p><p><a href="/">all datasets</a></p></section>"#,
+        Esc(title),
+        Esc(message)
+    );
+    document(
+        title,
+        Some(f.refresh_seconds),
+        &bar(f, true),
+        &body,
+        &footer(f),
+    )
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::page::conditions::conditions;
+    use crate::page::tests::board;
+    use crate::page::{BoardFacts, Propensities, Thresholds};
+
+    const EVIL: &str = "<script>alert(1)</script>";
+
+    fn frame() -> Frame {
+        Frame {
+            drawn_at_ms: 1_709_210_096_000,
+            signed_in: true,
+            refresh_seconds: 60,
+        }
+    }
+
+    fn view(name: &str, models: &[&str]) -> DatasetView {
+        let b = board(name, models);
+        DatasetView {
+            name: name.into(),
+            thresholds: Thresholds {
+                eps: 0.05,
+                max_extreme_share: 0.1,
+                min_effective_share: 0.2,
+            },
+            conditions: conditions(Some(&b), &[], None, 0),
+            board: Some(b),
+            propensities: Some(Propensities {
+                treated: vec![1, 2],
+                control: vec![2, 1],
+            }),
+            history: vec![],
+            events: vec![],
+            recompute_failures: 0,
+        }
+    }
+
+    #[test]
+    fn a_dataset_page_is_one_document_that_refreshes_and_says_when() {
+        let s = dataset_page(&view("shop", &["a", "b"]), &frame());
+        assert!(s.starts_with("<!DOCTYPE html>"));
+        assert!(s.contains(r#"<meta http-equiv="refresh" content="60">"#));
+        assert!(s.contains("2024-02-29 12:34:56 UTC"));
+        assert!(s.contains(r#"data-kind="board-chart""#));
+        assert!(s.contains(r#"data-kind="propensity-chart""#));
+        assert_eq!(s.matches(r#"data-kind="alert""#).count(), 5);
+        assert!(
+            s.contains(r#"action="/sign-out""#),
+            "a signed-in page offers to forget"
+        );
+        for banned in ["<script", "http://", "https://", "@import", "url("] {
+            let outside_svg_namespace = s.replace("http://www.w3.org/2000/svg", "");
+            assert!(
+                !outside_svg_namespace.contains(banned),
+                "{banned} found: the page must fetch nothing"
+            );
+        }
+    }
+
+    #[test]
+    fn a_dataset_not_yet_scored_says_so_in_every_section() {
+        let v = DatasetView {
+            board: None,
+            propensities: None,
+            conditions: conditions(None, &[], None, 0),
+            ..view("new", &["a"])
+        };
+        let s = dataset_page(&v, &frame());
+        assert!(s.contains("Not scored yet"));
+        assert!(s.contains("No history yet"));
+        assert!(s.contains("No propensities yet"));
+        assert!(s.contains("No events yet"));
+        assert!(!s.contains(r#"data-kind="interval""#));
+        assert_eq!(s.matches(r#"data-state="unknown""#).count(), 4);
+    }
+
+    #[test]
+    fn names_with_markup_come_out_escaped() {
+        let mut v = view(EVIL, &[EVIL, "b"]);
+        v.events.push(crate::domain::EventRecord {
+            id: 1,
+            dataset: EVIL.into(),
+            kind: "model_registered".into(),
+            at_ms: 0,
+            snapshot_id: 0,
+            summary: format!("model {EVIL} registered"),
+            details_json: String::new(),
+        });
+        let page = dataset_page(&v, &frame());
+        let index = index_page(
+            &[DatasetSummary {
+                name: EVIL.into(),
+                board: Some(BoardFacts {
+                    units: 1,
+                    front_runner: EVIL.into(),
+                    computed_at_ms: 0,
+                    degenerate: String::new(),
+                }),
+                conditions: vec![],
+            }],
+            &frame(),
+        );
+        let sign_in = sign_in_page(EVIL, EVIL, &frame());
+        let message = message_page(EVIL, EVIL, &frame());
+        for s in [page, index, sign_in, message] {
+            assert!(!s.contains("<script"), "{s}");
+            assert!(s.contains("&lt;script&gt;"));
+        }
+    }
+
+    #[test]
+    fn the_index_links_each_dataset_and_lists_active_alerts() {
+        let b = board("shop", &["a"]);
+        let mut c = conditions(Some(&b), &[], Some(0), 100 * 86_400_000);
+        c.retain(|c| c.key == "no-outcomes");
+        let s = index_page(
+            &[DatasetSummary {
+                name: "shop".into(),
+                board: Some(BoardFacts::of(&b)),
+                conditions: c,
+            }],
+            &frame(),
+        );
+        assert!(s.contains(r#"<a data-kind="dataset-link" href="/datasets/shop">shop</a>"#));
+        assert_eq!(s.matches(r#"data-kind="alert-chip""#).count(), 1);
+        assert!(index_page(&[], &frame()).contains("No datasets yet"));
+    }
+
+    #[test]
+    fn the_sign_in_form_posts_and_never_puts_the_token_in_the_address() {
+        let s = sign_in_page("", "/datasets/shop", &frame());
+        assert!(s.contains(r#"method="post" action="/sign-in""#));
+        assert!(s.contains(r#"type="password""#));
+        assert!(s.contains(r#"name="next" value="/datasets/shop""#));
+        assert!(
+            !s.contains("http-equiv=\"refresh\""),
+            "no reload while typing"
+        );
+        assert!(!s.contains("reloads itself"));
+    }
+}
