@@ -84,6 +84,20 @@ fn open(out: &mut String, kind: &str, width: f64, height: f64, label: &str) {
     );
 }
 
+/// Vertical grid lines at about `n` round times between `t0` and `t1`,
+/// labelled under `bottom`: the time axis of the history and the timeline.
+fn time_grid(out: &mut String, x: &Linear, (t0, t1): (i64, i64), n: usize, top: f64, bottom: f64) {
+    for (t, label) in scale::time_ticks(t0, t1, n) {
+        let px = x.at(t as f64);
+        put!(
+            out,
+            r#"<line x1="{px:.1}" y1="{top}" x2="{px:.1}" y2="{bottom}" stroke="{GRID}"/><text class="tick" x="{px:.1}" y="{:.1}" text-anchor="middle">{}</text>"#,
+            bottom + 18.0,
+            Esc(&label)
+        );
+    }
+}
+
 fn note(message: &str) -> String {
     format!(
         r#"<p class="note" data-kind="no-data">{}</p>"#,
@@ -456,15 +470,7 @@ pub fn history_chart(lines: &[ModelHistory], colors: &Colors) -> String {
             scale::tick_label(v, ticks.step)
         );
     }
-    for (t, label) in scale::time_ticks(t0, t1, 7) {
-        let px = x.at(t as f64);
-        put!(
-            out,
-            r#"<line x1="{px:.1}" y1="{top}" x2="{px:.1}" y2="{bottom}" stroke="{GRID}"/><text class="tick" x="{px:.1}" y="{:.1}" text-anchor="middle">{}</text>"#,
-            bottom + 18.0,
-            Esc(&label)
-        );
-    }
+    time_grid(&mut out, &x, (t0, t1), 7, top, bottom);
     put!(
         out,
         r#"<line x1="{left}" y1="{bottom}" x2="{right}" y2="{bottom}" stroke="{INK}"/><line x1="{left}" y1="{top}" x2="{left}" y2="{bottom}" stroke="{INK}"/>"#
@@ -763,15 +769,7 @@ pub fn event_timeline(events: &[EventRecord]) -> String {
             Esc(&short(k, 30))
         );
     }
-    for (t, label) in scale::time_ticks(t0, t1, 8) {
-        let px = x.at(t as f64);
-        put!(
-            out,
-            r#"<line x1="{px:.1}" y1="{top}" x2="{px:.1}" y2="{bottom}" stroke="{GRID}"/><text class="tick" x="{px:.1}" y="{:.1}" text-anchor="middle">{}</text>"#,
-            bottom + 18.0,
-            Esc(&label)
-        );
-    }
+    time_grid(&mut out, &x, (t0, t1), 8, top, bottom);
     put!(
         out,
         r#"<line x1="{left}" y1="{bottom}" x2="{right}" y2="{bottom}" stroke="{INK}"/><text class="axis" x="{:.1}" y="{:.1}" text-anchor="middle">time (UTC)</text>"#,
