@@ -359,6 +359,7 @@ fn unit_batches(data: &Draw, range: std::ops::Range<usize>) -> Vec<pb::UnitBatch
                     propensity: None,
                     cohort: format!("c{}", i / COHORT),
                     assigned_at_ms: 0,
+                    arm: String::new(),
                 })
                 .collect(),
         })
@@ -383,6 +384,7 @@ fn prediction_batches(
                             unit_key: format!("u{i}"),
                             effect: c.predictions.effects[i],
                             predicted_at_ms: 0,
+                            arm: String::new(),
                         })
                         .collect(),
                 })

@@ -12,7 +12,10 @@ use ndarray::Array2;
 
 use crate::estimate::{ModelPredictions, OutcomeKind, UnitTable};
 
+mod arms;
 mod fast;
+
+pub use arms::{group_arm_predictions, read_arm_units, split_arm_column, ArmUnitsFile};
 
 /// Columns of a units file that are not features.
 pub const UNIT_ID: &str = "unit_id";
@@ -354,6 +357,35 @@ fn units_careful(
     Ok(c)
 }
 
+/// The outcome kind given, or detected when `kind` is None (binary when
+/// every outcome is 0 or 1); a binary kind with another value is an error
+/// naming its row.
+fn outcome_kind(
+    kind: Option<OutcomeKind>,
+    outcome: &[f64],
+    at: &Located<'_>,
+) -> Result<OutcomeKind, InputError> {
+    let binary_values = outcome.iter().all(|&y| y == 0.0 || y == 1.0);
+    let kind = match kind {
+        Some(k) => k,
+        None if binary_values => OutcomeKind::Binary,
+        None => OutcomeKind::Continuous,
+    };
+    if kind == OutcomeKind::Binary {
+        if let Some(i) = outcome.iter().position(|&y| y != 0.0 && y != 1.0) {
+            return Err(at.err(
+                Some(i + 1),
+                Some(OUTCOME),
+                format!(
+                    "{} is not 0 or 1, but the outcome kind is binary",
+                    outcome[i]
+                ),
+            ));
+        }
+    }
+    Ok(kind)
+}
+
 /// Reads a units file. `kind` None detects the outcome kind: binary when every
 /// outcome is 0 or 1.
 pub fn read_units(file: &Path, kind: Option<OutcomeKind>) -> Result<UnitsFile, InputError> {
@@ -378,24 +410,7 @@ pub fn read_units(file: &Path, kind: Option<OutcomeKind>) -> Result<UnitsFile, I
         None => units_careful(&mut sheet, &at, &layout)?,
     };
     let n = ids.len();
-    let binary_values = outcome.iter().all(|&y| y == 0.0 || y == 1.0);
-    let kind = match kind {
-        Some(k) => k,
-        None if binary_values => OutcomeKind::Binary,
-        None => OutcomeKind::Continuous,
-    };
-    if kind == OutcomeKind::Binary {
-        if let Some(i) = outcome.iter().position(|&y| y != 0.0 && y != 1.0) {
-            return Err(at.err(
-                Some(i + 1),
-                Some(OUTCOME),
-                format!(
-                    "{} is not 0 or 1, but the outcome kind is binary",
-                    outcome[i]
-                ),
-            ));
-        }
-    }
+    let kind = outcome_kind(kind, &outcome, &at)?;
     let features = Array2::from_shape_vec((n, d), features)
         .map_err(|e| at.err(None, None, format!("internal shape error: {e}")))?;
     let table = UnitTable::new(features, treatment, outcome, propensity, kind)
@@ -512,9 +527,20 @@ pub fn align(
     preds: PredictionsFile,
     preds_path: &Path,
 ) -> Result<Vec<ModelPredictions>, InputError> {
+    align_ids(&units.ids, units_path, preds, preds_path)
+}
+
+/// [`align`] for the units whose ids are `unit_ids`, in their file's order
+/// (a units file of a dataset with several arms, too).
+pub fn align_ids(
+    unit_ids: &[String],
+    units_path: &Path,
+    preds: PredictionsFile,
+    preds_path: &Path,
+) -> Result<Vec<ModelPredictions>, InputError> {
     // Files written together list the units in the same order: then the
     // columns line up as they are, with no lookup.
-    if preds.ids == units.ids {
+    if preds.ids == *unit_ids {
         return Ok(preds
             .models
             .into_iter()
@@ -528,12 +554,12 @@ pub fn align(
         .enumerate()
         .map(|(i, id)| (id.as_str(), i))
         .collect();
-    let unit_ids: HashSet<&str> = units.ids.iter().map(String::as_str).collect();
+    let known: HashSet<&str> = unit_ids.iter().map(String::as_str).collect();
     if let Some((i, id)) = preds
         .ids
         .iter()
         .enumerate()
-        .find(|(_, id)| !unit_ids.contains(id.as_str()))
+        .find(|(_, id)| !known.contains(id.as_str()))
     {
         return Err(InputError {
             file: preds_path.to_path_buf(),
@@ -542,8 +568,8 @@ pub fn align(
             message: format!("unit id {id:?} is not in {}", units_path.display()),
         });
     }
-    let mut order = Vec::with_capacity(units.ids.len());
-    for (i, id) in units.ids.iter().enumerate() {
+    let mut order = Vec::with_capacity(unit_ids.len());
+    for (i, id) in unit_ids.iter().enumerate() {
         match position.get(id.as_str()) {
             Some(&p) => order.push(p),
             None => {

@@ -59,6 +59,11 @@ pub struct Limits {
     /// with the history. At least [`MIN_FIT_UNITS`]. A stored fit keeps the
     /// cap it used, so changing this does not change how it is reproduced.
     pub max_fit_units: usize,
+    /// The most models a window's blend takes, the first by rank: its
+    /// per-fold sums cost this squared per unit and each of its K + 1
+    /// weight fits this squared per step, so a sweep of a thousand models
+    /// is blended over its top-ranked models. At least 2.
+    pub max_blend_models: usize,
 }
 
 /// The smallest `max_fit_units` a server accepts. The corrected estimates
@@ -85,6 +90,7 @@ impl Default for Limits {
             // components on 20-odd features, and about twice the 1M-unit
             // refit of BENCHMARKS.md (some 15 s on two cores).
             max_fit_units: 2_000_000,
+            max_blend_models: crate::monitor::recompute::BLEND_MODELS,
         }
     }
 }
@@ -132,6 +138,12 @@ impl Limits {
                 return Err(format!("limits.{name}: must be at least 1"));
             }
         }
+        if self.max_blend_models < 2 {
+            return Err(format!(
+                "limits.max_blend_models: {} is below 2 (a blend needs two models)",
+                self.max_blend_models
+            ));
+        }
         if self.max_fit_units < MIN_FIT_UNITS {
             return Err(format!(
                 "limits.max_fit_units: {} is below the minimum {MIN_FIT_UNITS} (the nuisance models need that many units to fit well)",
@@ -171,6 +183,20 @@ mod tests {
         assert_eq!(parsed.max_datasets, 3);
         assert_eq!(parsed.max_batch_rows, MAX_BATCH_ROWS);
         assert!(toml::from_str::<Limits>("max_dataset = 3\n").is_err());
+    }
+
+    #[test]
+    fn max_blend_models_defaults_to_fifty_and_refuses_fewer_than_two() {
+        assert_eq!(Limits::default().max_blend_models, 50);
+        let parsed: Limits = toml::from_str("max_blend_models = 200\n").expect("toml");
+        assert_eq!(parsed.max_blend_models, 200);
+        let err = Limits {
+            max_blend_models: 1,
+            ..Limits::default()
+        }
+        .check()
+        .expect_err("one model cannot be blended");
+        assert!(err.contains("limits.max_blend_models"), "{err}");
     }
 
     #[test]

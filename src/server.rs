@@ -155,6 +155,7 @@ pub async fn start(config: &Config) -> Result<Running, StartError> {
         signal.clone(),
         replica,
         config.limits.max_fit_units,
+        config.limits.max_blend_models,
     )
     .await
     .map_err(|e| format!("restoring state: {e}"))?;

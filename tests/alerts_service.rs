@@ -304,6 +304,7 @@ async fn run_stream(addr: std::net::SocketAddr, scenario: Scenario, stream: usiz
                     unit_key: key(i),
                     effect: u.predictions[m] + extra,
                     predicted_at_ms: 0,
+                    arm: String::new(),
                 });
             }
         }

@@ -59,6 +59,7 @@ fn units(n: usize) -> Vec<pb::UnitRow> {
                 propensity: Some(0.5),
                 cohort: "c0".into(),
                 assigned_at_ms: 0,
+                arm: String::new(),
             }
         })
         .collect()

@@ -242,12 +242,10 @@ fn the_readme_job_runs_through_the_command_line_alone() {
         "5",
     ]);
     assert_eq!(offline.code, Some(0), "{}", offline.stderr);
-    let mut offline: Value = serde_json::from_str(&offline.stdout).expect("score json");
-    for offline_only in ["blend", "levels"] {
-        assert!(offline
-            .as_object_mut()
-            .and_then(|o| o.remove(offline_only))
-            .is_some());
+    let offline: Value = serde_json::from_str(&offline.stdout).expect("score json");
+    // The RMSE bounds and the blend are on the service's board too.
+    for key in ["blend", "levels"] {
+        assert!(offline.get(key).is_some(), "offline {key}");
     }
     // Both passes run the same arithmetic on the same rows in the same
     // order; 1e-9 allows only for summation order inside the service's

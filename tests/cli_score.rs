@@ -388,4 +388,65 @@ fn demo_summary_shows_a_front_runner_change_and_an_overlap_alert() {
     assert!(summary.contains("overlap degraded"), "{summary}");
     assert!(summary.contains("overlap recovered"), "{summary}");
     assert!(summary.contains("/metrics"), "{summary}");
+    // The cumulative board's blend, in one wrapped sentence.
+    assert!(summary.contains("\n  blend: "), "{summary}");
+    assert!(summary.contains("blend minus"), "{summary}");
+    // (The summary, not the opening lines, which name a temporary path.)
+    for line in summary.lines() {
+        assert!(line.chars().count() <= 100, "{line}");
+    }
+}
+
+/// `--fold-repeats`: the JSON report and the table say how many fold
+/// splits the nuisance values were averaged over, the values differ from
+/// one split's, and a count outside 1..=20 is refused before any fit.
+#[test]
+fn fold_repeats_are_reported_and_checked() {
+    let d = Dir::new("repeats");
+    let status = bin()
+        .args([
+            "simulate", "--units", "2000", "--models", "3", "--seed", "5", "--out",
+        ])
+        .arg(&d.0)
+        .status()
+        .expect("simulate");
+    assert!(status.success());
+    let (u, p) = (d.0.join("units.csv"), d.0.join("predictions.csv"));
+    let json = |repeats: &str| -> serde_json::Value {
+        let (code, stdout, stderr) =
+            score(&u, &p, &["--format", "json", "--fold-repeats", repeats]);
+        assert_eq!(code, 0, "{stderr}");
+        serde_json::from_str(&stdout).expect("json")
+    };
+    let (one, three) = (json("1"), json("3"));
+    assert_eq!(one["nuisance"]["fold_repeats"], 1);
+    assert_eq!(three["nuisance"]["fold_repeats"], 3);
+    // The report's losses are the first split's, the same as one split's.
+    assert_eq!(
+        one["nuisance"]["outcome_control"]["oof_loss"],
+        three["nuisance"]["outcome_control"]["oof_loss"]
+    );
+    // The averaged values move the estimates.
+    assert_ne!(one["ate"]["estimate"], three["ate"]["estimate"]);
+    // By default the propensity's last stage is chosen by loss among
+    // three; --recalibrate-propensity fixes Platt's. The report says
+    // which, and its calibration error is of the values used.
+    let chosen = &one["nuisance"]["propensity"]["recalibration"];
+    assert_eq!(chosen["how"], "chosen by loss", "{chosen}");
+    assert_eq!(chosen["candidates"].as_array().map(Vec::len), Some(3));
+    let (code, stdout, stderr) = score(&u, &p, &["--format", "json", "--recalibrate-propensity"]);
+    assert_eq!(code, 0, "{stderr}");
+    let platt: serde_json::Value = serde_json::from_str(&stdout).expect("json");
+    let fixed = &platt["nuisance"]["propensity"]["recalibration"];
+    assert_eq!(fixed["chosen"], "platt", "{fixed}");
+    assert_eq!(fixed["how"], "fixed", "{fixed}");
+    assert!(platt["nuisance"]["propensity"]["calibration_error"].is_f64());
+    let (code, table, stderr) = score(&u, &p, &["--fold-repeats", "2"]);
+    assert_eq!(code, 0, "{stderr}");
+    assert!(table.contains("averaged over 2 fold splits"), "{table}");
+    for bad in ["0", "21"] {
+        let (code, _, stderr) = score(&u, &p, &["--fold-repeats", bad]);
+        assert_eq!(code, 2, "--fold-repeats {bad}: {stderr}");
+        assert!(stderr.contains("--fold-repeats"), "{stderr}");
+    }
 }

@@ -81,6 +81,7 @@ fn prediction(model: &str, key: &str, effect: f64, at: i64) -> pb::PredictionRow
         unit_key: key.into(),
         effect,
         predicted_at_ms: at,
+        arm: String::new(),
     }
 }
 

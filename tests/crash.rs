@@ -65,6 +65,7 @@ fn workload(seed: u64) -> Vec<Batch> {
                         unit_key: key.clone(),
                         effect,
                         predicted_at_ms: 0,
+                        arm: String::new(),
                     });
                 }
                 batch.outcomes.push(pb::OutcomeRow {

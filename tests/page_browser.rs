@@ -205,6 +205,7 @@ fn round(rng: &mut ChaCha8Rng, round: usize, n: usize) -> Round {
                 unit_key: key.clone(),
                 effect,
                 predicted_at_ms: 0,
+                arm: String::new(),
             });
         }
     }
@@ -417,7 +418,11 @@ async fn a_gated_page_wants_a_token_that_reads_everything_by_header_or_cookie() 
     assert_eq!(get("/metrics", &[("Cookie", &cookie(everything))]).0, 200);
     assert_eq!(get("/metrics", &[]).0, 401);
     // A stale cookie is refused and removed.
-    let stale = format!("plumbline_token={}0", &everything[..everything.len() - 1]);
+    // The last character changed to one it is not (a fixed '0' would be no
+    // change at all for one token in the alphabet's size).
+    let last = everything.chars().last().expect("a token");
+    let other = if last == '0' { '1' } else { '0' };
+    let stale = format!("plumbline_token={}{other}", &everything[..everything.len() - 1]);
     let (status, headers, _) = get("/", &[("Cookie", &stale)]);
     assert_eq!(status, 401);
     assert!(header(&headers, "set-cookie").is_some_and(|c| c.contains("Max-Age=0")));

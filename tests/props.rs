@@ -298,6 +298,7 @@ fn cache() -> DatasetCache {
             description: String::new(),
             registered_at_ms: 1,
             retired_at_ms: retired,
+            blend: None,
         });
     }
     for u in [10, 11] {
@@ -309,6 +310,7 @@ fn cache() -> DatasetCache {
                 seq: u - 10,
                 effect: 0.5,
                 predicted_at_ms: 0,
+                arm: 1,
             },
         );
     }
@@ -385,6 +387,7 @@ proptest! {
                 propensity: Some(0.5),
                 cohort: "c".into(),
                 assigned_at_ms: 0,
+                arm: String::new(),
             };
             let why = match f {
                 Flaw::None => None,
@@ -435,7 +438,7 @@ proptest! {
         let mut flawed = BTreeMap::new();
         let rows: Vec<PredictionIn> = flaws.iter().enumerate().map(|(i, f)| {
             // Units k12..k19 have neither an outcome nor a prediction from m1.
-            let mut r = PredictionIn { model: "m1".into(), unit_key: format!("k{}", 12 + i), effect: 0.1, predicted_at_ms: 0 };
+            let mut r = PredictionIn { model: "m1".into(), unit_key: format!("k{}", 12 + i), effect: 0.1, predicted_at_ms: 0, arm: String::new() };
             let why = match f {
                 Flaw::None => None,
                 Flaw::One => { r.effect = f64::NAN; Some(("effect", Fault::Invalid)) }

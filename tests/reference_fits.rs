@@ -81,3 +81,30 @@ fn logistic_models_the_event_whichever_label_is_the_majority() {
     let negated: Vec<f64> = fit.coef.iter().map(|b| -b).collect();
     assert_close("coef", &negated, &nums(&r["coef"]));
 }
+
+/// The multinomial logit against statsmodels' `MNLogit` (base category 0,
+/// unpenalized maximum likelihood): every coefficient and the fitted
+/// probabilities of the first 50 units agree to 1e-4 (the bar;
+/// both solvers run Newton's method to ~1e-11).
+#[test]
+fn multinomial_logit_matches_statsmodels_mnlogit() {
+    use plumbline::estimate::learner::multinomial_fit;
+    use plumbline::estimate::FeatureRows;
+    let f = fixture("multinomial_reference.json");
+    let x = matrix(&f["x"]);
+    let labels: Vec<usize> = nums(&f["y"]).iter().map(|&v| v as usize).collect();
+    let r = &f["fits"]["statsmodels_mnlogit"];
+    let rows = FeatureRows::of_matrix(x.view()).expect("row-major");
+    let fit = multinomial_fit(rows, &labels, 3, 0.0).expect("fit");
+    assert_close("intercept", &fit.intercept, &nums(&r["intercept"]));
+    let coef = r["coef"].as_array().expect("coef rows");
+    assert_eq!(coef.len(), 2);
+    for (k, want) in coef.iter().enumerate() {
+        assert_close(&format!("coef arm {}", k + 1), &fit.coef[k], &nums(want));
+    }
+    let probs = r["probabilities_first_50"].as_array().expect("rows");
+    for (i, want) in probs.iter().enumerate() {
+        let got = fit.probabilities_of(rows.row(i));
+        assert_close(&format!("probabilities row {i}"), &got, &nums(want));
+    }
+}

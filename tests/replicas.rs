@@ -181,6 +181,7 @@ fn batch(c: usize, b: usize) -> [Call; 3] {
                 unit_key: key.clone(),
                 effect,
                 predicted_at_ms: 0,
+                arm: String::new(),
             });
         }
         outcomes.push(pb::OutcomeRow {

@@ -59,6 +59,7 @@ async fn lifecycle_matches_the_offline_score_and_survives_a_restart() {
                     unit_key: format!("u{i}"),
                     effect: m.predictions.effects[i],
                     predicted_at_ms: 0,
+                    arm: String::new(),
                 })
             })
             .collect();
@@ -133,17 +134,91 @@ async fn lifecycle_matches_the_offline_score_and_survives_a_restart() {
         "{}",
         String::from_utf8_lossy(&out.stderr)
     );
-    let mut offline: serde_json::Value = serde_json::from_slice(&out.stdout).expect("json");
+    let offline: serde_json::Value = serde_json::from_slice(&out.stdout).expect("json");
     let online: serde_json::Value = serde_json::from_str(&served.json).expect("json");
-    // The offline pass alone adds the blend and the RMSE bounds (they need
-    // the cross-fit's folds, which a growing window does not keep): every
-    // other number must agree, and those two must be there.
-    for offline_only in ["blend", "levels"] {
-        let removed = offline.as_object_mut().and_then(|o| o.remove(offline_only));
-        assert!(removed.is_some(), "plumbline score lacks {offline_only}");
-        assert!(online.get(offline_only).is_none());
+    // Every number agrees, the RMSE bounds and the blend among them: the
+    // service keeps each unit's cross-fit fold, which after a refit on
+    // every unit is the fold `plumbline score` draws from the same seed,
+    // and its blend is fitted from per-fold sums of the same products
+    // (summed in another order: rounding near 1e-15, which the weight fits
+    // do not amplify past 1e-9 at an optimum where the active set is clear).
+    for both in ["levels", "blend"] {
+        assert!(online.get(both).is_some(), "the board lacks {both}");
+        assert!(offline.get(both).is_some(), "plumbline score lacks {both}");
     }
     assert_json_close(&online, &offline, 1e-9, "scoreboard");
+    // The wire fields carry the same bounds: 1e-9 relative, the rounding
+    // of sums taken in another order (both are one pass over 5,000 units).
+    let close = |a: f64, b: f64| (a - b).abs() <= 1e-9 * b.abs().max(1.0);
+    for m in &served.models {
+        let level = offline["levels"]["models"]
+            .as_array()
+            .and_then(|l| l.iter().find(|l| l["name"] == m.name.as_str()))
+            .unwrap_or_else(|| panic!("no offline bound for {}", m.name));
+        let bound = m.rmse_lower_bound.expect("a bound on the wire");
+        let expected = level["rmse_lower_bound"].as_f64().expect("number");
+        println!("{}: RMSE at least {bound} (offline {expected})", m.name);
+        assert!(close(bound, expected), "{}: {bound} vs {expected}", m.name);
+    }
+    // The blend on the wire: the nonzero weights of the offline report,
+    // largest first, and its difference from the best single model.
+    let blend = served.blend.as_ref().expect("blend on the wire");
+    let mut expected: Vec<(String, f64)> = offline["blend"]["weights"]
+        .as_array()
+        .expect("weights")
+        .iter()
+        .map(|w| {
+            (
+                w["model"].as_str().expect("model").to_string(),
+                w["weight"].as_f64().expect("weight"),
+            )
+        })
+        .filter(|(_, w)| *w > 0.0)
+        .collect();
+    expected.sort_by(|a, b| b.1.total_cmp(&a.1));
+    assert_eq!(blend.weights.len(), expected.len(), "{blend:?}");
+    for (w, (model, weight)) in blend.weights.iter().zip(&expected) {
+        assert_eq!(&w.model, model);
+        assert!(
+            close(w.weight, *weight),
+            "{}: {} vs {weight}",
+            w.model,
+            w.weight
+        );
+    }
+    let vs_best = blend.vs_best.expect("vs_best");
+    let offline_vs_best = &offline["blend"]["vs_best"];
+    println!(
+        "blend: {:?}; minus {} {} [{}, {}]",
+        blend.weights, blend.best_model, vs_best.estimate, vs_best.ci_low, vs_best.ci_high
+    );
+    assert_eq!(
+        blend.best_model,
+        offline["blend"]["best_model"].as_str().expect("best")
+    );
+    for (got, key) in [
+        (vs_best.estimate, "estimate"),
+        (vs_best.ci_low, "ci_low"),
+        (vs_best.ci_high, "ci_high"),
+    ] {
+        assert!(
+            close(got, offline_vs_best[key].as_f64().expect("number")),
+            "{key}"
+        );
+    }
+    assert_eq!(blend.models_offered, 3);
+    let projection = served
+        .plugin_error_projection
+        .expect("projection on the wire");
+    let offline_projection = &offline["levels"]["plugin_error_projection"];
+    assert!(close(
+        projection.estimate,
+        offline_projection["estimate"].as_f64().expect("number")
+    ));
+    assert!(close(
+        projection.se,
+        offline_projection["se"].as_f64().expect("number")
+    ));
 
     // History: one point per recompute.
     let history = c
@@ -344,12 +419,14 @@ async fn integrity_rules_answer_with_their_codes_and_write_nothing() {
                     unit_key: "k2".into(),
                     effect: 0.3,
                     predicted_at_ms: 0,
+                    arm: String::new(),
                 },
                 pb::PredictionRow {
                     model: "m1".into(),
                     unit_key: "k0".into(),
                     effect: 0.3,
                     predicted_at_ms: 0,
+                    arm: String::new(),
                 },
             ],
         }]))
@@ -383,6 +460,7 @@ async fn integrity_rules_answer_with_their_codes_and_write_nothing() {
             unit_key: "late".into(),
             effect: 0.1,
             predicted_at_ms: 1_000,
+            arm: String::new(),
         }],
     )
     .await;
@@ -439,6 +517,7 @@ async fn one_model_scored(c: &mut Clients, name: &str, n: usize, seed: u64, rese
             unit_key: key.clone(),
             effect: x[0],
             predicted_at_ms: 0,
+            arm: String::new(),
         });
         outcomes.push(pb::OutcomeRow {
             unit_key: key,
@@ -511,6 +590,7 @@ async fn drift_raises_exactly_one_significant_front_runner_change() {
                     unit_key: key.clone(),
                     effect: e,
                     predicted_at_ms: 0,
+                    arm: String::new(),
                 });
             }
             outcomes.push(pb::OutcomeRow {
@@ -628,6 +708,7 @@ async fn a_policy_switch_is_found_and_refits() {
                 unit_key: key.clone(),
                 effect: 1.0 + x[1],
                 predicted_at_ms: 0,
+                arm: String::new(),
             });
             outcomes.push(pb::OutcomeRow {
                 unit_key: key,
@@ -713,6 +794,7 @@ async fn send_cohort_of(c: &mut Clients, name: &str, k: usize, with_models: bool
                 unit_key: key.clone(),
                 effect: e + 0.3 * plumbline::synth::standard_normal(&mut rng),
                 predicted_at_ms: 0,
+                arm: String::new(),
             });
         }
         outcomes.push(pb::OutcomeRow {
@@ -866,6 +948,7 @@ async fn overlap_degrades_and_recovers() {
                 unit_key: key.clone(),
                 effect: 1.0 + x[2],
                 predicted_at_ms: 0,
+                arm: String::new(),
             });
             outcomes.push(pb::OutcomeRow {
                 unit_key: key,
@@ -959,6 +1042,10 @@ async fn metrics_carry_every_series_with_its_labels() {
         (
             "plumbline_model_draw_share",
             vec![d, ("model", "m"), ("window", "recent")],
+        ),
+        (
+            "plumbline_model_rmse_lower_bound",
+            vec![d, ("model", "m"), ("window", "cumulative")],
         ),
         (
             "plumbline_front_runner_info",
@@ -1487,6 +1574,28 @@ async fn every_estimator_reaches_the_board_metrics_history_and_table() {
             e.label()
         );
     }
+    // The board table's wide view ends each row with the model's RMSE
+    // bound, as the board gives it (four decimals, the tables' format).
+    let served = board(&mut c, name, pb::window::Kind::Cumulative).await;
+    assert!(
+        table
+            .lines()
+            .any(|l| l.trim_start().starts_with("rank") && l.contains("RMSE at least")),
+        "{table}"
+    );
+    for m in &served.models {
+        let bound = m.rmse_lower_bound.expect("bound on the wire");
+        let row = table
+            .lines()
+            .find(|l| l.split_whitespace().nth(1) == Some(m.name.as_str()))
+            .unwrap_or_else(|| panic!("no row for {} in {table}", m.name));
+        // The tables print four decimals between 0.001 and 1000, and an
+        // exact 0 as 0.0000.
+        if bound == 0.0 || (1e-3..1e3).contains(&bound) {
+            let shown = format!("{bound:.4}");
+            assert!(row.contains(&shown), "{row} lacks {shown}");
+        }
+    }
 
     // The selection-aware figures reach the wire: every model's chance of
     // the lowest error (they sum to one), the joint bounds around the
@@ -1515,6 +1624,9 @@ async fn every_estimator_reaches_the_board_metrics_history_and_table() {
             assert!(joint_low <= low && joint_high >= high, "{d}");
         }
     }
+    // The JSON output carries the bounds of every column.
+    let levels = board["levels"]["models"].as_array().expect("levels");
+    assert_eq!(levels.len(), models.len());
     let critical = board["joint_critical_value"]
         .as_f64()
         .expect("joint_critical_value");
@@ -1607,5 +1719,169 @@ async fn boards_missing_at_start_are_recomputed_unasked() {
     assert_eq!(after.units, before.units);
     // The fit is reproduced exactly and no unit arrived: the same numbers.
     assert_eq!(after.models, before.models);
+    srv.stop().await.expect("stop");
+}
+
+/// CompareModels answers any pair of the cumulative window's ranked
+/// models, not only the pairs a board keeps: with 23 models a board keeps
+/// the pairs among its top 20 and the front-runner against the rest, so
+/// the two lowest-ranked models' pair is not on it. Its difference is
+/// the difference of the two models' corrected PEHE on the board (a mean
+/// of differences is the difference of means; 1e-9 relative allows for
+/// the rounding of merged sums), and its standard error lies between the
+/// difference and the sum of theirs (a covariance bound that fails if the
+/// co-moment read is the wrong one). The recent window, which keeps no
+/// co-moments between recomputes, still answers only its kept pairs.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn compare_models_answers_any_ranked_pair_of_the_cumulative_window() {
+    use rand::SeedableRng;
+    let dir = TempDir::new("any-pair");
+    let srv = server(&dir).await;
+    let mut c = clients(srv.grpc_addr).await;
+    let name = "sweep";
+    // Nie & Wager's setup B draws at least five features.
+    let d = 6;
+    c.datasets
+        .create_dataset(pb::CreateDatasetRequest {
+            spec: Some(continuous_spec(name, d)),
+        })
+        .await
+        .expect("create");
+    let n = 2000;
+    let data = draw(Design::NieWagerB, n, d, 1.0, 5);
+    let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(11);
+    let models: Vec<(String, Vec<f64>)> = (0..23)
+        .map(|j| {
+            let noise = 0.2 + 0.1 * j as f64;
+            let effects = data
+                .tau
+                .iter()
+                .map(|t| t + noise * plumbline::estimate::stats::standard_normal(&mut rng))
+                .collect();
+            (format!("m{j:02}"), effects)
+        })
+        .collect();
+    for (m, _) in &models {
+        register(&mut c, name, m).await;
+    }
+    let units: Vec<pb::UnitRow> = (0..n)
+        .map(|i| {
+            let x: Vec<f64> = data.features.row(i).to_vec();
+            unit_row(&format!("u{i}"), &x, data.treatment[i], None, "c")
+        })
+        .collect();
+    send_units(&mut c, name, units).await;
+    let preds: Vec<pb::PredictionRow> = models
+        .iter()
+        .flat_map(|(m, e)| {
+            (0..n).map(move |i| pb::PredictionRow {
+                model: m.clone(),
+                unit_key: format!("u{i}"),
+                effect: e[i],
+                predicted_at_ms: 0,
+                arm: String::new(),
+            })
+        })
+        .collect();
+    for chunk in preds.chunks(10_000) {
+        send_predictions(&mut c, name, chunk.to_vec()).await;
+    }
+    let outcomes: Vec<pb::OutcomeRow> = (0..n)
+        .map(|i| pb::OutcomeRow {
+            unit_key: format!("u{i}"),
+            value: data.outcome[i],
+            observed_at_ms: 0,
+        })
+        .collect();
+    send_outcomes(&mut c, name, outcomes).await;
+    recompute(&mut c, name, false).await;
+    let b = board(&mut c, name, pb::window::Kind::Cumulative).await;
+    let registered: Vec<&pb::ModelScore> = b.models.iter().filter(|m| !m.baseline).collect();
+    assert_eq!(registered.len(), 23);
+    let (first, second) = (registered[21], registered[22]);
+    let document: serde_json::Value = serde_json::from_str(&b.json).expect("json");
+    let kept = document["pairwise"]
+        .as_array()
+        .expect("pairwise")
+        .iter()
+        .any(|p| {
+            let names = [p["first"].as_str(), p["second"].as_str()];
+            names.contains(&Some(first.name.as_str()))
+                && names.contains(&Some(second.name.as_str()))
+        });
+    assert!(!kept, "the board keeps the pair: pick another");
+    let request = |window: pb::window::Kind| pb::CompareModelsRequest {
+        dataset: name.into(),
+        window: Some(pb::Window {
+            kind: window as i32,
+            ..Default::default()
+        }),
+        first: first.name.clone(),
+        second: second.name.clone(),
+        arm: String::new(),
+    };
+    let answer = c
+        .scoring
+        .compare_models(request(pb::window::Kind::Cumulative))
+        .await
+        .expect("any ranked pair")
+        .into_inner();
+    let diff = answer.difference.expect("difference");
+    let (a, z) = (&first.scores[0], &second.scores[0]);
+    assert_eq!(
+        (a.estimator.as_str(), z.estimator.as_str()),
+        ("corrected_pehe", "corrected_pehe")
+    );
+    let expected = a.estimate - z.estimate;
+    println!(
+        "{} minus {}: {} (se {}), board {} - {}",
+        first.name, second.name, diff.estimate, diff.se, a.estimate, z.estimate
+    );
+    assert!(
+        (diff.estimate - expected).abs() <= 1e-9 * expected.abs().max(1.0),
+        "{} vs {expected}",
+        diff.estimate
+    );
+    assert!(
+        diff.se >= (a.se - z.se).abs() - 1e-12 && diff.se <= a.se + z.se + 1e-12,
+        "se {} outside [{}, {}]",
+        diff.se,
+        (a.se - z.se).abs(),
+        a.se + z.se
+    );
+    assert!(diff.ci_low < diff.estimate && diff.estimate < diff.ci_high);
+    assert_eq!(answer.units, b.units);
+    // Read backwards, the same pair flips its sign.
+    let back = c
+        .scoring
+        .compare_models(pb::CompareModelsRequest {
+            first: second.name.clone(),
+            second: first.name.clone(),
+            ..request(pb::window::Kind::Cumulative)
+        })
+        .await
+        .expect("backwards")
+        .into_inner()
+        .difference
+        .expect("difference");
+    assert!((back.estimate + diff.estimate).abs() <= 1e-12 * diff.estimate.abs().max(1.0));
+    assert!((back.se - diff.se).abs() <= 1e-12 * diff.se.max(1.0));
+    // The recent window keeps only its board's pairs.
+    let err = c
+        .scoring
+        .compare_models(request(pb::window::Kind::Recent))
+        .await
+        .expect_err("not kept in the recent window");
+    assert_eq!(err.code(), Code::NotFound);
+    // A model that is not ranked is not found in either.
+    let err = c
+        .scoring
+        .compare_models(pb::CompareModelsRequest {
+            second: "no-such-model".into(),
+            ..request(pb::window::Kind::Cumulative)
+        })
+        .await
+        .expect_err("unknown model");
+    assert_eq!(err.code(), Code::NotFound);
     srv.stop().await.expect("stop");
 }

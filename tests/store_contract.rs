@@ -14,7 +14,8 @@ use std::any::Any;
 use common::pg::PgCluster;
 use common::service::TempDir;
 use plumbline::domain::{
-    Board, DatasetSpec, OutcomeRecord, PredictionRecord, ScoreRow, UnitRecord, Window,
+    BlendDefinition, BlendMember, Board, DatasetSpec, OutcomeRecord, PredictionRecord, ScoreRow,
+    UnitRecord, Window,
 };
 use plumbline::estimate::OutcomeKind;
 use plumbline::store::{
@@ -117,7 +118,13 @@ fn board(dataset: &str, window: Window, snapshot_id: u64, units: u64) -> Board {
         caveat: String::new(),
         detail_json: String::new(),
         rank_metrics_units: 0,
+        plugin_error_projection: None,
+        blend: None,
         alerts: None,
+        arm: String::new(),
+        reference_arm: String::new(),
+        contrasts: Vec::new(),
+        arm_policy: None,
     }
 }
 
@@ -155,6 +162,43 @@ async fn datasets_models_and_rows_keep_their_identity() {
         s.retire_model(m.id, 10).await.expect("retire again");
         let models = s.models(d.id).await.expect("models");
         assert_eq!(models[0].retired_at_ms, 9, "{name}: retired stays retired");
+        assert_eq!(models[0].blend, None, "{name}: a sent-predictions model");
+
+        // A registered blend reads back with its definition whole (weights
+        // bit for bit: serde_json writes the shortest string that parses
+        // back to the same double), and its name is taken like any model's.
+        let definition = BlendDefinition {
+            snapshot_id: 41,
+            window: Window::Cohort("spring".into()),
+            members: vec![
+                BlendMember {
+                    model_id: m.id,
+                    model: "m".into(),
+                    weight: 0.1 + 0.2,
+                },
+                BlendMember {
+                    model_id: m.id + 100,
+                    model: "other".into(),
+                    weight: 1.0 - (0.1 + 0.2),
+                },
+            ],
+        };
+        let b = s
+            .register_blend_model(d.id, "mix", "v", "a blend", 10, &definition)
+            .await
+            .expect("blend model");
+        assert_eq!(b.blend.as_ref(), Some(&definition), "{name}");
+        assert!(
+            matches!(
+                s.register_blend_model(d.id, "m", "1", "", 10, &definition)
+                    .await,
+                Err(StoreError::Conflict(_))
+            ),
+            "{name}: a blend cannot take a registered name"
+        );
+        let models = s.models(d.id).await.expect("models");
+        assert_eq!(models.len(), 2, "{name}");
+        assert_eq!(models[1], b, "{name}: the blend reads back as registered");
 
         let units: Vec<UnitRecord> = (0..1_200).map(|i| unit(i, &format!("k{i}"))).collect();
         s.insert_units(d.id, &units, 11).await.expect("units");
@@ -197,6 +241,7 @@ async fn datasets_models_and_rows_keep_their_identity() {
                 seq: u,
                 effect: -(u as f64),
                 predicted_at_ms: 3,
+                arm: 1,
             })
             .collect();
         s.insert_predictions(d.id, &predictions, 16)
@@ -712,6 +757,7 @@ async fn a_shared_store_numbers_stale_batches_after_others_and_refuses_repeats()
             seq,
             effect: 0.5,
             predicted_at_ms: 1,
+            arm: 1,
         };
         s.insert_predictions(d.id, &[prediction(0, 0)], 6)
             .await
@@ -866,4 +912,151 @@ async fn the_sqlite_wal_is_cut_back_once_it_passes_its_bound() {
         "bounded WAL reached {:.1} MiB",
         mib(bounded)
     );
+}
+
+fn arms_spec(name: &str) -> DatasetSpec {
+    DatasetSpec {
+        arms: vec!["none".into(), "text".into(), "mail".into()],
+        arm_costs: vec![0.0, 0.1, 0.3],
+        ..spec(name)
+    }
+    .normalized()
+    .expect("a valid spec with arms")
+}
+
+#[tokio::test]
+async fn a_dataset_with_arms_keeps_each_units_arm_and_each_predictions_arm() {
+    for Backend { name, store: s, .. } in backends("arms").await {
+        let d = s
+            .create_dataset(&arms_spec("three"), 5)
+            .await
+            .expect("create");
+        let listed = s.datasets().await.expect("datasets");
+        assert_eq!(
+            listed[0].spec,
+            arms_spec("three"),
+            "{name}: arms and costs read back"
+        );
+        let m = s
+            .register_model(d.id, "m", "1", "", 6)
+            .await
+            .expect("model");
+        // Arm indices 0, 1 and 2 in the treatment column.
+        let units: Vec<UnitRecord> = (0..30)
+            .map(|i| UnitRecord {
+                treatment: (i % 3) as u8,
+                ..unit(i, &format!("k{i}"))
+            })
+            .collect();
+        s.insert_units(d.id, &units, 7).await.expect("units");
+        assert_eq!(collect(s.units(d.id, 0)).await, units, "{name}");
+        // One model predicts each unit twice: once per arm.
+        let predictions: Vec<PredictionRecord> = (0..60)
+            .map(|j| PredictionRecord {
+                model_id: m.id,
+                unit_seq: j / 2,
+                seq: j,
+                arm: 1 + (j % 2) as u8,
+                effect: j as f64 * 0.25,
+                predicted_at_ms: 3,
+            })
+            .collect();
+        s.insert_predictions(d.id, &predictions, 8)
+            .await
+            .expect("predictions of two arms");
+        // The same (model, arm, unit) again is refused whole.
+        let again = vec![PredictionRecord {
+            seq: 60,
+            ..predictions[5].clone()
+        }];
+        assert!(
+            matches!(
+                s.insert_predictions(d.id, &again, 9).await,
+                Err(StoreError::Conflict(_))
+            ),
+            "{name}: a model's prediction of one arm for a unit is stored once"
+        );
+        let mut read = collect(s.predictions(d.id, 0)).await;
+        read.sort_by_key(|p| p.seq);
+        assert_eq!(read, predictions, "{name}: each prediction keeps its arm");
+        assert_eq!(s.counts(d.id).await.expect("counts"), (30, 0, 60), "{name}");
+        s.close().await;
+    }
+}
+
+/// A SQLite store written before arms existed (migrations 1 to 8) opens
+/// under the current schema with its rows as they were and every
+/// prediction for arm 1, the binary treatment.
+#[tokio::test]
+async fn a_sqlite_store_from_before_arms_reads_back_its_binary_rows() {
+    use sqlx::sqlite::{SqliteConnectOptions, SqlitePoolOptions};
+    let dir = TempDir::new("contract-before-arms");
+    let old = dir.0.join("migrations");
+    std::fs::create_dir_all(&old).expect("dir");
+    let here = std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("migrations/sqlite");
+    for e in std::fs::read_dir(&here).expect("migrations") {
+        let path = e.expect("entry").path();
+        let file = path.file_name().and_then(|f| f.to_str()).unwrap_or("");
+        if file.get(..4).is_some_and(|v| v <= "0008") {
+            std::fs::copy(&path, old.join(file)).expect("copy");
+        }
+    }
+    let db = dir.0.join("plumbline.sqlite");
+    {
+        let pool = SqlitePoolOptions::new()
+            .connect_with(
+                SqliteConnectOptions::new()
+                    .filename(&db)
+                    .create_if_missing(true),
+            )
+            .await
+            .expect("open");
+        sqlx::migrate::Migrator::new(old.as_path())
+            .await
+            .expect("migrator")
+            .run(&pool)
+            .await
+            .expect("migrate to 8");
+        let spec_json = serde_json::to_string(&spec("old")).expect("json");
+        // The spec as stored before arms existed: without the new keys.
+        let spec_json = spec_json.replace(",\"arms\":[],\"arm_costs\":[]", "");
+        assert!(!spec_json.contains("arms"), "{spec_json}");
+        sqlx::query("INSERT INTO datasets VALUES (1, 'old', ?, 1)")
+            .bind(&spec_json)
+            .execute(&pool)
+            .await
+            .expect("dataset");
+        for sql in [
+            "INSERT INTO models VALUES (1, 1, 'm', '1', '', 2, 0)",
+            "INSERT INTO units VALUES (1, 0, 'a', x'0000000000000000', 1, 0.25, 'c', 3, 4)",
+            "INSERT INTO units VALUES (1, 1, 'b', x'000000000000F03F', 0, NULL, 'c', 3, 4)",
+            "INSERT INTO predictions VALUES (1, 1, 0, 0.5, 5, 6, 0)",
+            "INSERT INTO predictions VALUES (1, 1, 1, -0.5, 5, 6, 1)",
+        ] {
+            sqlx::query(sql).execute(&pool).await.expect(sql);
+        }
+        pool.close().await;
+    }
+    let s = store::open(&StoreConfig::sqlite(&db, Durability::Normal))
+        .await
+        .expect("open and migrate");
+    let d = &s.datasets().await.expect("datasets")[0];
+    assert_eq!(d.spec, spec("old"), "a spec from before reads as binary");
+    assert!(d.spec.arms.is_empty());
+    let units = collect(s.units(d.id, 0)).await;
+    assert_eq!(
+        units.iter().map(|u| u.treatment).collect::<Vec<_>>(),
+        vec![1, 0]
+    );
+    assert_eq!(units[1].features, vec![1.0]);
+    let mut read = collect(s.predictions(d.id, 0)).await;
+    read.sort_by_key(|p| p.seq);
+    assert_eq!(
+        read.iter()
+            .map(|p| (p.unit_seq, p.seq, p.arm, p.effect))
+            .collect::<Vec<_>>(),
+        vec![(0, 0, 1, 0.5), (1, 1, 1, -0.5)],
+        "predictions stored before arms are the treatment's, arm 1"
+    );
+    s.close().await;
 }

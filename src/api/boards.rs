@@ -4,10 +4,12 @@
 use tonic::Status;
 
 use super::pb;
+use crate::domain::ArmPolicyBoard;
 use crate::domain::{
-    Adjusted, AlertView, Board, BoardModel, Difference, IncompleteModel, NuisanceComponent,
-    OverlapSummary, Window,
+    Adjusted, AlertView, Board, BoardBlend, BoardModel, Difference, IncompleteModel,
+    NuisanceComponent, OverlapSummary, Window,
 };
+use crate::estimate::arms::Valued;
 use crate::estimate::stats::Estimate;
 
 /// A request's window; cumulative when absent.
@@ -66,6 +68,26 @@ impl From<Difference> for pb::Difference {
     }
 }
 
+impl From<BoardBlend> for pb::Blend {
+    fn from(b: BoardBlend) -> Self {
+        pb::Blend {
+            weights: b
+                .weights
+                .into_iter()
+                .map(|w| pb::BlendWeight {
+                    model: w.model,
+                    weight: w.weight,
+                })
+                .collect(),
+            corrected_pehe: b.corrected_pehe,
+            best_model: b.best_model,
+            vs_best: Some(b.vs_best.into()),
+            vs_constant: Some(b.vs_constant.into()),
+            models_offered: b.models_offered,
+        }
+    }
+}
+
 impl From<Adjusted> for pb::AdjustedInterval {
     fn from(a: Adjusted) -> Self {
         pb::AdjustedInterval {
@@ -101,6 +123,8 @@ impl From<BoardModel> for pb::ModelScore {
             qini: Some(m.qini.into()),
             blp_slope: m.blp_slope.map(Into::into),
             top_minus_bottom: m.top_minus_bottom.map(Into::into),
+            rmse_lower_bound: m.rmse_lower_bound,
+            registered_blend: m.registered_blend,
         }
     }
 }
@@ -187,6 +211,69 @@ impl From<Board> for pb::Scoreboard {
             alerts: b.alerts.map(Into::into),
             front_runner_vs_constant: b.front_runner_vs_constant.map(Into::into),
             joint_critical_value: b.joint_critical_value,
+            plugin_error_projection: b.plugin_error_projection.map(Into::into),
+            blend: b.blend.map(Into::into),
+            arm: b.arm,
+            reference_arm: b.reference_arm,
+            contrasts: b.contrasts.into_iter().map(Into::into).collect(),
+            arm_policy: b.arm_policy.map(Into::into),
+        }
+    }
+}
+
+impl From<Valued> for pb::IntervalValue {
+    fn from(v: Valued) -> Self {
+        pb::IntervalValue {
+            estimate: v.estimate,
+            se: v.se,
+            ci_low: v.ci_low,
+            ci_high: v.ci_high,
+        }
+    }
+}
+
+impl From<ArmPolicyBoard> for pb::ArmPolicyReport {
+    fn from(r: ArmPolicyBoard) -> Self {
+        pb::ArmPolicyReport {
+            costs: r
+                .costs
+                .into_iter()
+                .map(|c| pb::ArmCost {
+                    arm: c.arm,
+                    cost: c.cost,
+                })
+                .collect(),
+            reference_value: Some(r.reference_value.into()),
+            best_single_arm: r.best_single_arm,
+            best_single_arm_value: Some(r.best_single_arm_value.into()),
+            note: r.note,
+            models: r
+                .models
+                .into_iter()
+                .map(|m| pb::ArmPolicy {
+                    model: m.model,
+                    value: Some(m.value.into()),
+                    vs_reference: Some(m.vs_reference.into()),
+                    vs_best_single_arm: Some(m.vs_best_single_arm.into()),
+                    shares: m
+                        .shares
+                        .into_iter()
+                        .map(|s| pb::ArmShare {
+                            arm: s.arm,
+                            share: s.share,
+                        })
+                        .collect(),
+                })
+                .collect(),
+            pairwise: r
+                .pairwise
+                .into_iter()
+                .map(|d| pb::PolicyDifference {
+                    first: d.first,
+                    second: d.second,
+                    difference: Some(d.difference.into()),
+                })
+                .collect(),
         }
     }
 }

@@ -29,6 +29,7 @@ impl From<pb::UnitRow> for UnitIn {
             propensity: r.propensity,
             cohort: r.cohort,
             assigned_at_ms: r.assigned_at_ms,
+            arm: r.arm,
         }
     }
 }
@@ -50,6 +51,7 @@ impl From<pb::PredictionRow> for PredictionIn {
             unit_key: r.unit_key,
             effect: r.effect,
             predicted_at_ms: r.predicted_at_ms,
+            arm: r.arm,
         }
     }
 }
@@ -64,7 +66,10 @@ trait LengthLimited {
 
 impl LengthLimited for UnitIn {
     fn limited<'a>(&'a self, l: &Limits) -> Vec<(&'static str, &'a str, &'static str, usize)> {
-        vec![("key", &self.key, "max_key_bytes", l.max_key_bytes)]
+        vec![
+            ("key", &self.key, "max_key_bytes", l.max_key_bytes),
+            ("arm", &self.arm, "max_name_bytes", l.max_name_bytes),
+        ]
     }
 }
 
@@ -79,6 +84,7 @@ impl LengthLimited for PredictionIn {
         vec![
             ("model", &self.model, "max_name_bytes", l.max_name_bytes),
             ("unit_key", &self.unit_key, "max_key_bytes", l.max_key_bytes),
+            ("arm", &self.arm, "max_name_bytes", l.max_name_bytes),
         ]
     }
 }

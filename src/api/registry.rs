@@ -4,6 +4,7 @@ use std::sync::Arc;
 
 use tonic::{Request, Response, Status};
 
+use super::boards::window_of;
 use super::pb;
 use super::status::{from_monitor, missing};
 use crate::auth::{caller, Access};
@@ -54,6 +55,7 @@ impl TryFrom<pb::DatasetSpec> for DatasetSpec {
         let overlap = s.overlap.unwrap_or_default();
         let recent = s.recent.unwrap_or_default();
         let recompute = s.recompute.unwrap_or_default();
+        let arm_costs = arm_costs(&s.arms, &s.arm_costs)?;
         Ok(DatasetSpec {
             name: s.name,
             feature_names: s.feature_names,
@@ -74,8 +76,41 @@ impl TryFrom<pb::DatasetSpec> for DatasetSpec {
             min_coverage: s.min_coverage,
             alpha: s.alpha,
             seed: s.seed,
+            arms: s.arms,
+            arm_costs,
         })
     }
+}
+
+/// The wire's named costs as one cost per declared arm (0 where an arm is
+/// not named); an unknown or repeated arm is refused, naming the entry.
+fn arm_costs(arms: &[String], named: &[pb::ArmCost]) -> Result<Vec<f64>, Status> {
+    if named.is_empty() {
+        return Ok(Vec::new());
+    }
+    if arms.is_empty() {
+        return Err(Status::invalid_argument(
+            "arm_costs: arm costs need declared arms (a binary dataset has treatment_cost)",
+        ));
+    }
+    let mut costs = vec![0.0; arms.len()];
+    let mut seen = vec![false; arms.len()];
+    for (j, c) in named.iter().enumerate() {
+        let Some(k) = arms.iter().position(|a| *a == c.arm) else {
+            return Err(Status::invalid_argument(format!(
+                "arm_costs[{j}].arm: {:?} is not a declared arm",
+                c.arm
+            )));
+        };
+        if std::mem::replace(&mut seen[k], true) {
+            return Err(Status::invalid_argument(format!(
+                "arm_costs[{j}].arm: arm {:?} is given a cost twice",
+                c.arm
+            )));
+        }
+        costs[k] = c.cost;
+    }
+    Ok(costs)
 }
 
 impl From<&DatasetSpec> for pb::DatasetSpec {
@@ -109,6 +144,16 @@ impl From<&DatasetSpec> for pb::DatasetSpec {
             min_coverage: s.min_coverage,
             alpha: s.alpha,
             seed: s.seed,
+            arms: s.arms.clone(),
+            arm_costs: s
+                .arms
+                .iter()
+                .zip(&s.arm_costs)
+                .map(|(arm, &cost)| pb::ArmCost {
+                    arm: arm.clone(),
+                    cost,
+                })
+                .collect(),
         }
     }
 }
@@ -135,6 +180,18 @@ fn model_pb(dataset: &str, (m, count): (StoredModel, u64)) -> pb::Model {
         registered_at_ms: m.registered_at_ms,
         retired_at_ms: m.retired_at_ms,
         predictions: count,
+        blend: m.blend.map(|b| pb::ModelBlend {
+            snapshot_id: b.snapshot_id,
+            window: Some((&b.window).into()),
+            members: b
+                .members
+                .into_iter()
+                .map(|x| pb::BlendWeight {
+                    model: x.model,
+                    weight: x.weight,
+                })
+                .collect(),
+        }),
     }
 }
 
@@ -216,6 +273,33 @@ impl pb::dataset_registry_server::DatasetRegistry for Datasets {
     }
 }
 
+impl Models {
+    /// Refuses a new model name once the dataset has
+    /// `limits.max_models_per_dataset` (a registered name passes: its
+    /// re-send is a no-op or a conflict).
+    async fn room_for(&self, dataset: &str, name: &str) -> Result<(), Status> {
+        let l = &self.limits;
+        let registered = self
+            .monitor
+            .models(dataset, true)
+            .await
+            .map_err(from_monitor)?;
+        if registered.len() >= l.max_models_per_dataset
+            && !registered.iter().any(|(m, _)| m.name == name)
+        {
+            return Err(Status::resource_exhausted(format!(
+                "models: {}",
+                exceeded(
+                    "max_models_per_dataset",
+                    l.max_models_per_dataset,
+                    format!("a new model would be number {}", registered.len() + 1)
+                )
+            )));
+        }
+        Ok(())
+    }
+}
+
 #[tonic::async_trait]
 impl pb::model_registry_server::ModelRegistry for Models {
     #[tracing::instrument(skip_all, fields(rpc = "RegisterModel"))]
@@ -229,26 +313,31 @@ impl pb::model_registry_server::ModelRegistry for Models {
         let l = &self.limits;
         bounded(l, "dataset", &r.dataset)?;
         bounded(l, "name", &r.name)?;
-        let registered = self
-            .monitor
-            .models(&r.dataset, true)
-            .await
-            .map_err(from_monitor)?;
-        if registered.len() >= l.max_models_per_dataset
-            && !registered.iter().any(|(m, _)| m.name == r.name)
-        {
-            return Err(Status::resource_exhausted(format!(
-                "models: {}",
-                exceeded(
-                    "max_models_per_dataset",
-                    l.max_models_per_dataset,
-                    format!("a new model would be number {}", registered.len() + 1)
-                )
-            )));
-        }
+        self.room_for(&r.dataset, &r.name).await?;
         let m = self
             .monitor
             .register_model(&r.dataset, &r.name, &r.version, &r.description)
+            .await
+            .map_err(from_monitor)?;
+        Ok(Response::new(model_pb(&r.dataset, m)))
+    }
+
+    #[tracing::instrument(skip_all, fields(rpc = "RegisterBlend"))]
+    async fn register_blend(
+        &self,
+        request: Request<pb::RegisterBlendRequest>,
+    ) -> Result<Response<pb::Model>, Status> {
+        let who = caller(&request)?;
+        let r = request.into_inner();
+        who.require(Access::Write, &r.dataset)?;
+        let l = &self.limits;
+        bounded(l, "dataset", &r.dataset)?;
+        bounded(l, "name", &r.name)?;
+        let window = window_of(&r.window)?;
+        self.room_for(&r.dataset, &r.name).await?;
+        let m = self
+            .monitor
+            .register_blend(&r.dataset, &window, &r.name, &r.version, &r.description)
             .await
             .map_err(from_monitor)?;
         Ok(Response::new(model_pb(&r.dataset, m)))

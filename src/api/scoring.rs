@@ -9,7 +9,9 @@ use super::pb;
 use super::status::from_monitor;
 use crate::auth::{caller, Access};
 use crate::domain::board::history_keys;
-use crate::domain::Board;
+use crate::domain::{Board, Window};
+use crate::estimate::compare;
+use crate::estimate::scoreboard::CI_LEVEL;
 use crate::monitor::Monitor;
 use crate::monitor::RecomputeOptions;
 use crate::store::HistoryQuery;
@@ -26,6 +28,41 @@ impl ScoringService {
             .await
             .map_err(from_monitor)
     }
+}
+
+/// The board a comparison reads: a binary dataset's window board (no arm
+/// named), or on a dataset with arms the board of the named arm's
+/// contrast. Naming no arm there, or an arm the board lacks, is refused
+/// with the arms there are.
+fn contrast(board: Board, arm: &str) -> Result<Board, Status> {
+    if board.contrasts.is_empty() {
+        // A binary dataset's board, or a window without scores (whose
+        // state the caller reports).
+        if !arm.is_empty() && board.degenerate.is_empty() {
+            return Err(Status::invalid_argument(format!(
+                "arm: {arm:?} given, but the dataset declares no arms"
+            )));
+        }
+        return Ok(board);
+    }
+    let arms: Vec<&str> = board.contrasts.iter().map(|c| c.arm.as_str()).collect();
+    if arm.is_empty() {
+        return Err(Status::invalid_argument(format!(
+            "arm: the dataset has arms; name the contrast to compare on (one of {})",
+            arms.join(", ")
+        )));
+    }
+    let named = arms.join(", ");
+    board
+        .contrasts
+        .into_iter()
+        .find(|c| c.arm == arm)
+        .ok_or_else(|| {
+            Status::invalid_argument(format!(
+                "arm: {arm:?} has no board against {} (one of {named})",
+                board.reference_arm
+            ))
+        })
 }
 
 #[tonic::async_trait]
@@ -159,7 +196,7 @@ impl pb::scoring_server::Scoring for ScoringService {
         let who = caller(&request)?;
         let r = request.into_inner();
         who.require(Access::Read, &r.dataset)?;
-        let board = self.latest(&r.dataset, &r.window).await?;
+        let board = contrast(self.latest(&r.dataset, &r.window).await?, &r.arm)?;
         if !board.degenerate.is_empty() {
             return Err(Status::failed_precondition(
                 "the window has no scores (see its degenerate state)",
@@ -171,10 +208,36 @@ impl pb::scoring_server::Scoring for ScoringService {
                 units: board.units,
             }));
         }
+        // Any other pair of the cumulative window, from the co-moments its
+        // last recompute keeps: the board's pair interval taken alone (the
+        // joint one is for the family of pairs the board keeps). A
+        // contrast's board keeps no co-moments.
+        if board.window == Window::Cumulative && r.arm.is_empty() {
+            if let Some(e) = self
+                .monitor
+                .cumulative_difference(&r.dataset, board.units, &r.first, &r.second)
+                .await
+                .map_err(from_monitor)?
+            {
+                let d = compare::Difference::from_estimate(e, CI_LEVEL);
+                return Ok(Response::new(pb::CompareModelsResponse {
+                    difference: Some(pb::Difference {
+                        estimate: d.estimate,
+                        se: d.se,
+                        ci_low: d.ci_low,
+                        ci_high: d.ci_high,
+                        p_value: d.p_value,
+                        joint_low: None,
+                        joint_high: None,
+                    }),
+                    units: board.units,
+                }));
+            }
+        }
         Err(Status::not_found(format!(
-            "no difference of {:?} and {:?} is kept in this window: both must be ranked, and a \
-             board keeps every pair among its top-ranked models and the front-runner against each \
-             of the others",
+            "no difference of {:?} and {:?} is kept in this window: both must be ranked; the \
+             cumulative window answers any ranked pair between recomputes, the others keep every \
+             pair among their top-ranked models and the front-runner against each of the others",
             r.first, r.second
         )))
     }

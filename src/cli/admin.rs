@@ -53,6 +53,25 @@ pub enum ModelAction {
         #[arg(long, default_value = "")]
         description: String,
     },
+    /// Register a window's current blend (the scoreboard's blend row) as a
+    /// model: the server predicts, for every unit all its members have
+    /// predicted, the weighted sum of their predictions, with the weights
+    /// frozen now. It is ranked from the next recompute; its error there is
+    /// in-sample for the weights (the blend row stays the honest figure).
+    RegisterBlend {
+        #[command(flatten)]
+        dataset: DatasetArg,
+        /// The new model's name.
+        name: String,
+        #[command(flatten)]
+        window: WindowArg,
+        /// Version label.
+        #[arg(long, default_value = "")]
+        version: String,
+        /// Description for people.
+        #[arg(long, default_value = "")]
+        description: String,
+    },
     /// Retire a model: it stops being ranked; its data is kept.
     Retire {
         #[command(flatten)]
@@ -135,6 +154,16 @@ pub struct SpecSettings {
     pub alpha: Option<f64>,
     #[arg(long, help = server_default("Seed of folds, inner splits and draws", 0))]
     pub seed: Option<u64>,
+    /// The arms of a dataset with more than two, the reference first
+    /// (comma-separated); left out, the dataset is binary (treatment 0 or 1).
+    /// Units then name their arm in `treatment`, and predictions the arm
+    /// whose effect against the reference they are (`MODEL:ARM` columns).
+    #[arg(long, value_delimiter = ',', value_name = "REF,ARM,...")]
+    pub arms: Option<Vec<String>>,
+    /// With --arms: the cost of giving a unit an arm, in outcome units, as
+    /// ARM=COST,... (arms not named cost 0; --treatment-cost is for two arms).
+    #[arg(long, value_name = "ARM=COST,...")]
+    pub arm_cost: Option<String>,
 }
 
 #[derive(Debug, Args)]
@@ -192,6 +221,8 @@ impl SpecSettings {
             min_coverage: self.min_coverage.or(file.min_coverage),
             alpha: self.alpha.or(file.alpha),
             seed: self.seed.or(file.seed),
+            arms: self.arms.or(file.arms),
+            arm_cost: self.arm_cost.or(file.arm_cost),
         }
     }
 
@@ -212,6 +243,36 @@ impl SpecSettings {
                     "outcome_kind: required (--outcome-kind continuous|binary)".into(),
                 ))
             }
+        };
+        let arms: Vec<String> = self
+            .arms
+            .iter()
+            .flatten()
+            .map(|a| a.trim().to_string())
+            .collect();
+        if self
+            .arm_cost
+            .as_deref()
+            .is_some_and(|c| !c.trim().is_empty())
+            && arms.is_empty()
+        {
+            return Err(bad_input(
+                "arm_cost: needs --arms (a binary dataset has --treatment-cost)".into(),
+            ));
+        }
+        let arm_costs = if arms.is_empty() {
+            Vec::new()
+        } else {
+            super::score_arms::arm_costs(self.arm_cost.as_deref(), &arms)
+                .map_err(bad_input)?
+                .into_iter()
+                .zip(&arms)
+                .filter(|(cost, _)| *cost != 0.0)
+                .map(|(cost, arm)| pb::ArmCost {
+                    arm: arm.clone(),
+                    cost,
+                })
+                .collect()
         };
         Ok(pb::DatasetSpec {
             name,
@@ -239,6 +300,8 @@ impl SpecSettings {
             min_coverage: self.min_coverage.unwrap_or(0.0),
             alpha: self.alpha.unwrap_or(0.0),
             seed: self.seed.unwrap_or(0),
+            arms,
+            arm_costs,
         })
     }
 }
@@ -272,7 +335,7 @@ fn dataset_fields(d: &pb::Dataset) -> Vec<(&'static str, Value)> {
         Ok(pb::OutcomeKind::Binary) => "binary",
         _ => "unspecified",
     };
-    vec![
+    let mut fields = vec![
         ("name", json!(s.name)),
         ("features", json!(s.feature_names)),
         ("outcome_kind", json!(kind)),
@@ -297,7 +360,20 @@ fn dataset_fields(d: &pb::Dataset) -> Vec<(&'static str, Value)> {
         ("outcomes", json!(d.outcomes)),
         ("predictions", json!(d.predictions)),
         ("active_models", json!(d.active_models)),
-    ]
+    ];
+    // A binary dataset's settings read as they always did.
+    if !s.arms.is_empty() {
+        let costs: Vec<String> = s
+            .arm_costs
+            .iter()
+            .filter(|c| c.cost != 0.0)
+            .map(|c| format!("{}={}", c.arm, c.cost))
+            .collect();
+        let at = fields.len() - 5;
+        fields.insert(at, ("arms", json!(s.arms)));
+        fields.insert(at + 1, ("arm_cost", json!(costs.join(","))));
+    }
+    fields
 }
 
 pub fn dataset_json(d: &pb::Dataset) -> Value {
@@ -417,6 +493,12 @@ fn model_json(m: &pb::Model) -> Value {
         "description": m.description, "predictions": m.predictions,
         "registered_at_ms": m.registered_at_ms, "retired_at_ms": m.retired_at_ms,
         "retired": m.retired_at_ms > 0,
+        "blend": m.blend.as_ref().map(|b| json!({
+            "snapshot_id": b.snapshot_id,
+            "members": b.members.iter()
+                .map(|x| json!({"model": x.model, "weight": x.weight}))
+                .collect::<Vec<_>>(),
+        })),
     })
 }
 
@@ -520,6 +602,48 @@ pub fn model(c: &Connection, action: ModelAction) -> ExitCode {
             }
             Ok(())
         }),
+        ModelAction::RegisterBlend {
+            dataset,
+            name,
+            window: w,
+            version,
+            description,
+        } => run_async(async move {
+            let m = models_client(connect(c).await?)
+                .register_blend(request(
+                    c,
+                    pb::RegisterBlendRequest {
+                        dataset: dataset.dataset,
+                        name,
+                        version,
+                        description,
+                        window: Some(window(&w.window)?),
+                    },
+                )?)
+                .await
+                .map_err(failed)?
+                .into_inner();
+            match c.format {
+                Output::Json => print_json(model_json(&m)),
+                Output::Table => {
+                    print!("{}", models_text(std::slice::from_ref(&m)));
+                    if let Some(b) = &m.blend {
+                        println!(
+                            "the {} board's blend of snapshot {}, predicted by the server as",
+                            w.window, b.snapshot_id
+                        );
+                        for x in &b.members {
+                            println!("  {:>8.4}  {}", x.weight, x.model);
+                        }
+                        println!(
+                            "ranked from the next recompute; its error there is in-sample for \
+                             these weights"
+                        );
+                    }
+                }
+            }
+            Ok(())
+        }),
         ModelAction::Retire { dataset, name } => run_async(async move {
             let m = models_client(connect(c).await?)
                 .retire_model(request(
@@ -612,6 +736,10 @@ pub struct CompareArgs {
     pub second: String,
     #[command(flatten)]
     pub window: WindowArg,
+    /// On a dataset with arms, the contrast to compare on: the arm whose
+    /// board against the reference holds the pair.
+    #[arg(long, value_name = "ARM")]
+    pub arm: Option<String>,
 }
 
 /// The reading of a difference for people: which model errs less, if the
@@ -639,6 +767,7 @@ pub fn compare(c: &Connection, a: &CompareArgs) -> ExitCode {
                     first: a.first.clone(),
                     second: a.second.clone(),
                     window: Some(window(&a.window.window)?),
+                    arm: a.arm.clone().unwrap_or_default(),
                 },
             )?)
             .await

@@ -7,11 +7,13 @@
 //! for every row at once. The sentence under the table that says whether any
 //! model beats constant-effect is read off those same intervals, so the
 //! table and the sentence cannot disagree. The wide view adds each model's
-//! standard error and its interval taken alone.
+//! standard error, its interval taken alone and the one-sided lower bound
+//! on its RMSE.
 
 use std::fmt::Write;
 
 use crate::api::pb;
+use crate::estimate::blend::SHOWN_WEIGHT;
 use crate::estimate::scoreboard::ModelScore;
 use crate::estimate::CONSTANT_EFFECT;
 
@@ -33,6 +35,9 @@ pub struct Row {
     pub chance: Option<f64>,
     pub in_best_set: bool,
     pub front_runner: bool,
+    /// One-sided 95% lower bound on the model's RMSE (the wide view's "RMSE
+    /// at least"); absent on boards without it.
+    pub rmse_at_least: Option<f64>,
 }
 
 impl Row {
@@ -49,6 +54,7 @@ impl Row {
             chance: Some(m.chance_lowest),
             in_best_set: m.in_best_set,
             front_runner: m.name == front_runner,
+            rmse_at_least: None,
         }
     }
 
@@ -65,6 +71,7 @@ impl Row {
             chance: m.chance_lowest,
             in_best_set: m.in_best_set,
             front_runner: m.name == front_runner,
+            rmse_at_least: m.rmse_lower_bound,
         }
     }
 
@@ -184,8 +191,8 @@ pub fn render(rows: &[Row], wide: bool, indent: &str) -> String {
     if wide {
         let _ = write!(
             s,
-            "  {:>8}  {:<alone_w$}  {:<19}",
-            "se", "95% alone", "verdict"
+            "  {:>8}  {:<alone_w$}  {:<19}  {:>13}",
+            "se", "95% alone", "verdict", "RMSE at least"
         );
     }
     let _ = writeln!(s, "  note");
@@ -199,9 +206,10 @@ pub fn render(rows: &[Row], wide: bool, indent: &str) -> String {
         if wide {
             let _ = write!(
                 line,
-                "  {:>8}  {alone:<alone_w$}  {:<19}",
+                "  {:>8}  {alone:<alone_w$}  {:<19}  {:>13}",
                 num(r.se),
-                r.verdict()
+                r.verdict(),
+                r.rmse_at_least.map_or_else(|| "-".to_string(), num)
             );
         }
         let _ = writeln!(s, "{}", format!("{line}  {}", r.note()).trim_end());
@@ -239,6 +247,37 @@ pub fn verdict_line(rows: &[Row]) -> Option<String> {
     })
 }
 
+/// The blend in one line under the table: the models with a nonzero
+/// weight (largest first, those above 0.01 by name and the rest counted,
+/// as `plumbline score` shows them), its corrected PEHE (a lower estimate
+/// of its error, which can fall below zero) and its difference
+/// from the best single model with the interval.
+pub fn blend_line(b: &pb::Blend) -> String {
+    let shown: Vec<String> = b
+        .weights
+        .iter()
+        .filter(|w| w.weight > SHOWN_WEIGHT)
+        .map(|w| format!("{} {:.3}", w.model, w.weight))
+        .collect();
+    let rest = b.weights.len() - shown.len();
+    let rest = if rest > 0 {
+        format!(", {rest} more at {SHOWN_WEIGHT} or below")
+    } else {
+        String::new()
+    };
+    let d = b.vs_best.unwrap_or_default();
+    format!(
+        "blend: {} ({} offered{rest}); corrected PEHE {} (a lower estimate); blend minus {} {}, \
+         95% interval {}",
+        shown.join(", "),
+        b.models_offered,
+        num(b.corrected_pehe),
+        b.best_model,
+        signed(d.estimate),
+        interval((d.ci_low, d.ci_high))
+    )
+}
+
 /// The legend under a table: what the columns mean, one line each, every
 /// line starting with `indent`.
 pub fn legend(rows: &[Row], joint_critical: Option<f64>, indent: &str) -> String {
@@ -273,6 +312,7 @@ mod tests {
             chance: Some(0.5),
             in_best_set: rank == 1,
             front_runner: rank == 1,
+            rmse_at_least: Some(0.25),
         }
     }
 
@@ -307,6 +347,10 @@ mod tests {
             "{wide}"
         );
         assert!(wide.contains("not distinguishable"), "{wide}");
+        assert!(
+            wide.contains("RMSE at least") && wide.contains("0.2500"),
+            "{wide}"
+        );
     }
 
     #[test]
@@ -318,6 +362,42 @@ mod tests {
             line,
             "1 of 1 models beat constant-effect (interval below 0, all 3 holding at once): \
              credit-gbm-v3"
+        );
+    }
+
+    #[test]
+    fn the_blend_reads_in_one_line() {
+        let blend = pb::Blend {
+            weights: vec![
+                pb::BlendWeight {
+                    model: "gbm".into(),
+                    weight: 0.605,
+                },
+                pb::BlendWeight {
+                    model: "linear".into(),
+                    weight: 0.39,
+                },
+                pb::BlendWeight {
+                    model: "old".into(),
+                    weight: 0.005,
+                },
+            ],
+            corrected_pehe: 0.1234,
+            best_model: "gbm".into(),
+            vs_best: Some(pb::Difference {
+                estimate: -0.02,
+                ci_low: -0.035,
+                ci_high: -0.005,
+                ..Default::default()
+            }),
+            vs_constant: None,
+            models_offered: 4,
+        };
+        assert_eq!(
+            blend_line(&blend),
+            "blend: gbm 0.605, linear 0.390 (4 offered, 1 more at 0.01 or below); corrected \
+             PEHE 0.1234 (a lower estimate); blend minus gbm -0.0200, 95% interval [-0.0350, \
+             -0.0050]"
         );
     }
 
@@ -344,6 +424,7 @@ mod tests {
                 chance: Some(0.001),
                 in_best_set: true,
                 front_runner: true,
+                rmse_at_least: None,
             },
             row(2, "constant-effect", 0.0, (0.0, 0.0), (0.0, 0.0)),
             row(3, "tiny", 1.5e-5, (-2.5e-5, 5.5e-5), (-3.5e-5, 6.5e-5)),

@@ -304,103 +304,211 @@ pub fn scoreboard(c: &Connection, d: &DatasetArg, w: &WindowArg, wide: bool) -> 
             println!("no scores: {}", b.degenerate);
             return Ok(());
         }
-        let ate = b.ate.unwrap_or_default();
-        println!(
-            "{} units; ATE (AIPW) {} (se {})",
-            b.units,
-            board_table::num(ate.estimate),
-            board_table::num(ate.se)
-        );
-        let rows: Vec<Row> = b
-            .models
-            .iter()
-            .map(|m| Row::from_wire(m, &b.front_runner))
-            .collect();
-        print!("{}", board_table::render(&rows, wide, ""));
-        print!("{}", board_table::legend(&rows, b.joint_critical_value, ""));
-        if let Some(line) = board_table::verdict_line(&rows) {
-            println!("{line}");
+        if !b.contrasts.is_empty() {
+            print_arms(&b, wide);
+            return Ok(());
         }
-        if wide {
-            // One column per estimator the server sent, in its order (the
-            // first ranks, with its se); a key this build does not know
-            // shows as sent.
-            let mut header = vec!["model".to_string()];
-            if let Some(m) = b.models.first() {
-                for (i, s) in m.scores.iter().enumerate() {
-                    let label = estimators::by_key(&s.estimator)
-                        .map(|e| e.label())
-                        .unwrap_or(&s.estimator);
-                    header.push(if i == 0 {
-                        format!("{label} (lower)")
-                    } else {
-                        label.to_string()
-                    });
-                }
-            }
-            let lines: Vec<Vec<String>> = b
-                .models
-                .iter()
-                .map(|m| {
-                    let mut line = vec![m.name.clone()];
-                    for (i, s) in m.scores.iter().enumerate() {
-                        line.push(if i == 0 {
-                            format!(
-                                "{} ({})",
-                                board_table::num(s.estimate),
-                                board_table::num(s.se)
-                            )
-                        } else {
-                            board_table::num(s.estimate)
-                        });
-                    }
-                    line
-                })
-                .collect();
-            println!();
-            print!("{}", super::render::grid("", &header, &lines));
-        }
-        for i in &b.incomplete {
-            println!(
-                "      {:<24} not ranked: predicted {:.1}% of the window",
-                i.name,
-                100.0 * i.coverage
-            );
-        }
-        println!(
-            "front-runner {}; best set {}",
-            b.front_runner,
-            b.best_set.join(", ")
-        );
-        if let Some(a) = b.alerts.as_ref().filter(|a| a.looks > 0) {
-            println!(
-                "alerts (on {} units watched as they arrived, {} recomputes):\n  front-runner \
-                 {}{}; heterogeneity {}; overlap {}",
-                a.units,
-                a.looks,
-                if a.front_runner.is_empty() {
-                    "none yet"
-                } else {
-                    &a.front_runner
-                },
-                if a.front_runner_settled {
-                    ", settled"
-                } else {
-                    ", not yet separated from every other model"
-                },
-                a.heterogeneity,
-                if a.overlap_degraded {
-                    "degraded"
-                } else {
-                    "fine"
-                }
-            );
-        }
-        for line in wrap(&b.caveat, TABLE_WIDTH) {
-            println!("{line}");
-        }
+        print_board(&b, wide);
         Ok(())
     })
+}
+
+/// One board's table for a person: the ATE, the ranked models, the
+/// blend, the incomplete models, the front-runner, the alerts and the
+/// caveat.
+fn print_board(b: &pb::Scoreboard, wide: bool) {
+    let ate = b.ate.unwrap_or_default();
+    println!(
+        "{} units; ATE (AIPW) {} (se {})",
+        b.units,
+        board_table::num(ate.estimate),
+        board_table::num(ate.se)
+    );
+    let rows: Vec<Row> = b
+        .models
+        .iter()
+        .map(|m| Row::from_wire(m, &b.front_runner))
+        .collect();
+    print!("{}", board_table::render(&rows, wide, ""));
+    print!("{}", board_table::legend(&rows, b.joint_critical_value, ""));
+    if let Some(line) = board_table::verdict_line(&rows) {
+        println!("{line}");
+    }
+    if let Some(blend) = &b.blend {
+        // Wrapped to 100 columns, continuing under the first word after
+        // "blend: ".
+        for (i, line) in wrap(&board_table::blend_line(blend), 93).iter().enumerate() {
+            println!("{}{line}", if i == 0 { "" } else { "       " });
+        }
+    }
+    if wide {
+        // One column per estimator the server sent, in its order (the
+        // first ranks, with its se); a key this build does not know
+        // shows as sent.
+        let mut header = vec!["model".to_string()];
+        if let Some(m) = b.models.first() {
+            for (i, s) in m.scores.iter().enumerate() {
+                let label = estimators::by_key(&s.estimator)
+                    .map(|e| e.label())
+                    .unwrap_or(&s.estimator);
+                header.push(if i == 0 {
+                    format!("{label} (lower)")
+                } else {
+                    label.to_string()
+                });
+            }
+        }
+        let lines: Vec<Vec<String>> = b
+            .models
+            .iter()
+            .map(|m| {
+                let mut line = vec![m.name.clone()];
+                for (i, s) in m.scores.iter().enumerate() {
+                    line.push(if i == 0 {
+                        format!(
+                            "{} ({})",
+                            board_table::num(s.estimate),
+                            board_table::num(s.se)
+                        )
+                    } else {
+                        board_table::num(s.estimate)
+                    });
+                }
+                line
+            })
+            .collect();
+        println!();
+        print!("{}", super::render::grid("", &header, &lines));
+    }
+    for i in &b.incomplete {
+        println!(
+            "      {:<24} not ranked: predicted {:.1}% of the window",
+            i.name,
+            100.0 * i.coverage
+        );
+    }
+    println!(
+        "front-runner {}; best set {}",
+        b.front_runner,
+        b.best_set.join(", ")
+    );
+    if let Some(a) = b.alerts.as_ref().filter(|a| a.looks > 0) {
+        println!(
+            "alerts (on {} units watched as they arrived, {} recomputes):\n  front-runner \
+             {}{}; heterogeneity {}; overlap {}",
+            a.units,
+            a.looks,
+            if a.front_runner.is_empty() {
+                "none yet"
+            } else {
+                &a.front_runner
+            },
+            if a.front_runner_settled {
+                ", settled"
+            } else {
+                ", not yet separated from every other model"
+            },
+            a.heterogeneity,
+            if a.overlap_degraded {
+                "degraded"
+            } else {
+                "fine"
+            }
+        );
+    }
+    for line in wrap(&b.caveat, TABLE_WIDTH) {
+        println!("{line}");
+    }
+}
+
+/// The boards of a dataset with arms: one per contrast, then the value of
+/// each model's arm choice.
+fn print_arms(b: &pb::Scoreboard, wide: bool) {
+    println!("{} units; reference arm {}", b.units, b.reference_arm);
+    for c in &b.contrasts {
+        println!();
+        println!("=== Contrast {} against {} ===", c.arm, c.reference_arm);
+        if c.degenerate.is_empty() {
+            print_board(c, wide);
+        } else {
+            println!("no scores: {}", c.degenerate);
+        }
+    }
+    if let Some(p) = &b.arm_policy {
+        println!();
+        for line in arm_policy_lines(p, &b.reference_arm) {
+            println!("{line}");
+        }
+    }
+}
+
+fn interval(v: &Option<pb::IntervalValue>) -> String {
+    let v = v.unwrap_or_default();
+    format!(
+        "{}  [{}, {}]",
+        board_table::num(v.estimate),
+        board_table::num(v.ci_low),
+        board_table::num(v.ci_high)
+    )
+}
+
+/// The arm-choice table: the two fixed policies, then each model's value
+/// and its differences from them (95% intervals), then model pairs.
+fn arm_policy_lines(p: &pb::ArmPolicyReport, reference: &str) -> Vec<String> {
+    let mut out = wrap(
+        "Arm choice: each unit gets the arm with the largest predicted effect net of its \
+         cost, the reference when none is positive; value per unit net of cost (95% CI)",
+        TABLE_WIDTH,
+    );
+    out.push(format!(
+        "  everyone {reference}: {}",
+        interval(&p.reference_value)
+    ));
+    out.push(format!(
+        "  everyone {} (best single arm): {}",
+        p.best_single_arm,
+        interval(&p.best_single_arm_value)
+    ));
+    let heads = vec![
+        "model".to_string(),
+        "value".to_string(),
+        format!("vs everyone {reference}"),
+        format!("vs everyone {}", p.best_single_arm),
+    ];
+    let lines: Vec<Vec<String>> = p
+        .models
+        .iter()
+        .map(|m| {
+            vec![
+                m.model.clone(),
+                interval(&m.value),
+                interval(&m.vs_reference),
+                interval(&m.vs_best_single_arm),
+            ]
+        })
+        .collect();
+    out.extend(
+        super::render::grid("  ", &heads, &lines)
+            .lines()
+            .map(str::to_string),
+    );
+    if !p.pairwise.is_empty() {
+        out.push("  Pairwise (first's value minus second's):".into());
+        for d in &p.pairwise {
+            out.push(format!(
+                "    {} - {}: {}",
+                d.first,
+                d.second,
+                interval(&d.difference)
+            ));
+        }
+    }
+    out.extend(
+        wrap(&format!("({})", p.note), TABLE_WIDTH - 2)
+            .into_iter()
+            .map(|l| format!("  {l}")),
+    );
+    out
 }
 
 #[derive(Debug, Args)]

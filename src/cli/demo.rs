@@ -174,6 +174,7 @@ async fn send_week(c: &mut Client, week: usize, members: &[Member]) -> DemoResul
             propensity: Some(m.propensity),
             cohort: format!("week-{week:02}"),
             assigned_at_ms: 0,
+            arm: String::new(),
         })
         .collect();
     let batches: Vec<pb::UnitBatch> = rows
@@ -202,6 +203,7 @@ async fn send_week(c: &mut Client, week: usize, members: &[Member]) -> DemoResul
                             unit_key: m.key.clone(),
                             effect: m.predictions[k],
                             predicted_at_ms: 0,
+                            arm: String::new(),
                         })
                         .collect(),
                 })
@@ -439,6 +441,10 @@ async fn drive(
         },
         view.units
     );
+    // The cross-fitted blend of the ranked models, as `scoreboard` shows it.
+    if let Some(blend) = &cumulative.blend {
+        say("  ", &board_table::blend_line(blend));
+    }
     let mut kinds: Vec<(&str, usize)> = Vec::new();
     for e in &events {
         match kinds.iter_mut().find(|(k, _)| *k == e.kind) {
@@ -555,7 +561,7 @@ pub fn run(args: &DemoArgs) -> ExitCode {
         let mut narration = json.then(super::summary::NarrateOnStderr::start);
         println!("plumbline demo: ride-credit offers of an invented bike-share scheme (seed {})", args.seed);
         println!(
-            "service on {} (gRPC), http://{}/metrics, store {}\n",
+            "service on {} (gRPC), metrics and status page on http://{}/\nstore {}\n",
             running.grpc_addr,
             running.metrics_addr,
             config.store.display()

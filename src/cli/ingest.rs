@@ -11,6 +11,10 @@
 //! - predictions: `unit_id`, optional `predicted_at_ms`, then one column per
 //!   model holding its predicted effects.
 //!
+//! On a dataset with arms, `treatment` holds a declared arm's label and a
+//! prediction column is named `MODEL:ARM` (the effect of ARM against the
+//! reference), as `plumbline score --arms` reads them.
+//!
 //! The file is read twice and never held whole: once to check every row
 //! (so a typo in the last row is found before anything is written), then
 //! again while its batches stream to the server. Both passes show a
@@ -74,13 +78,20 @@ enum Plan {
         propensity: Option<usize>,
         cohort: Option<usize>,
         assigned_at: Option<usize>,
+        /// The dataset's arms (empty: binary), whose labels `treatment`
+        /// holds.
+        arms: Vec<String>,
     },
     Outcomes {
         outcome: usize,
         observed_at: Option<usize>,
     },
     Predictions {
+        /// Each prediction column: its index and header.
         models: Vec<(usize, String)>,
+        /// Per column, the model and the arm label it is for (`MODEL:ARM`
+        /// on a dataset with arms; the header and "" on a binary one).
+        targets: Vec<(String, String)>,
         predicted_at: Option<usize>,
     },
 }
@@ -181,15 +192,33 @@ impl Layout {
         }
     }
 
+    /// The unit's treatment and arm label: 0 or 1 and "" on a binary
+    /// dataset, 0 and a declared arm's label on a dataset with arms.
     fn treatment(
         &self,
         rec: &csv::StringRecord,
         col: usize,
         row: usize,
-    ) -> Result<u32, InputError> {
+        arms: &[String],
+    ) -> Result<(u32, String), InputError> {
+        if !arms.is_empty() {
+            let label = Self::cell(rec, col);
+            return if arms.iter().any(|a| a == label) {
+                Ok((0, label.to_string()))
+            } else {
+                Err(self.err(
+                    Some(row),
+                    Some("treatment"),
+                    format!(
+                        "arm {label:?} is not one of the dataset's arms ({})",
+                        arms.join(", ")
+                    ),
+                ))
+            };
+        }
         match Self::cell(rec, col) {
-            "0" | "0.0" => Ok(0),
-            "1" | "1.0" => Ok(1),
+            "0" | "0.0" => Ok((0, String::new())),
+            "1" | "1.0" => Ok((1, String::new())),
             v => Err(self.err(Some(row), Some("treatment"), format!("{v:?} is not 0 or 1"))),
         }
     }
@@ -204,24 +233,29 @@ impl Layout {
                 propensity,
                 cohort,
                 assigned_at,
-            } => Parsed::Unit(pb::UnitRow {
-                features: features
-                    .iter()
-                    .map(|(col, name)| self.number(rec, *col, row, name))
-                    .collect::<Result<_, _>>()?,
-                treatment: self.treatment(rec, *treatment, row)?,
-                propensity: match propensity {
-                    Some(col) if !Self::cell(rec, *col).is_empty() => {
-                        Some(self.number(rec, *col, row, "propensity")?)
-                    }
-                    _ => None,
-                },
-                cohort: cohort
-                    .map(|col| Self::cell(rec, col).to_string())
-                    .unwrap_or_default(),
-                assigned_at_ms: self.optional_int(rec, *assigned_at, row, "assigned_at_ms")?,
-                key,
-            }),
+                arms,
+            } => {
+                let (treatment, arm) = self.treatment(rec, *treatment, row, arms)?;
+                Parsed::Unit(pb::UnitRow {
+                    features: features
+                        .iter()
+                        .map(|(col, name)| self.number(rec, *col, row, name))
+                        .collect::<Result<_, _>>()?,
+                    treatment,
+                    propensity: match propensity {
+                        Some(col) if !Self::cell(rec, *col).is_empty() => {
+                            Some(self.number(rec, *col, row, "propensity")?)
+                        }
+                        _ => None,
+                    },
+                    cohort: cohort
+                        .map(|col| Self::cell(rec, col).to_string())
+                        .unwrap_or_default(),
+                    assigned_at_ms: self.optional_int(rec, *assigned_at, row, "assigned_at_ms")?,
+                    key,
+                    arm,
+                })
+            }
             Plan::Outcomes {
                 outcome,
                 observed_at,
@@ -232,18 +266,21 @@ impl Layout {
             }),
             Plan::Predictions {
                 models,
+                targets,
                 predicted_at,
             } => {
                 let at = self.optional_int(rec, *predicted_at, row, "predicted_at_ms")?;
                 Parsed::Predictions(
                     models
                         .iter()
-                        .map(|(col, model)| {
+                        .zip(targets)
+                        .map(|((col, header), (model, arm))| {
                             Ok(pb::PredictionRow {
                                 model: model.clone(),
                                 unit_key: key.clone(),
-                                effect: self.number(rec, *col, row, model)?,
+                                effect: self.number(rec, *col, row, header)?,
                                 predicted_at_ms: at,
+                                arm: arm.clone(),
                             })
                         })
                         .collect::<Result<_, InputError>>()?,
@@ -299,8 +336,13 @@ fn open(path: &Path) -> Result<csv::Reader<std::fs::File>, InputError> {
 }
 
 /// The columns of `file` for `kind`, checked against the dataset's
-/// features (units).
-fn layout(kind: Kind, file: &Path, features: &[String]) -> Result<Layout, InputError> {
+/// features (units) and arms (units and predictions).
+fn layout(
+    kind: Kind,
+    file: &Path,
+    features: &[String],
+    arms: &[String],
+) -> Result<Layout, InputError> {
     let at = |column: Option<&str>, message: &str| InputError {
         file: file.to_path_buf(),
         row: None,
@@ -331,6 +373,7 @@ fn layout(kind: Kind, file: &Path, features: &[String]) -> Result<Layout, InputE
             propensity: col("propensity"),
             cohort: col("cohort"),
             assigned_at: col("assigned_at_ms"),
+            arms: arms.to_vec(),
         },
         Kind::Outcomes => Plan::Outcomes {
             outcome: need("outcome")?,
@@ -347,8 +390,20 @@ fn layout(kind: Kind, file: &Path, features: &[String]) -> Result<Layout, InputE
             if models.is_empty() {
                 return Err(at(None, "no model columns (one per model after unit_id)"));
             }
+            let targets = models
+                .iter()
+                .map(|(_, header)| {
+                    if arms.is_empty() {
+                        return Ok((header.clone(), String::new()));
+                    }
+                    let (model, k) = crate::input::split_arm_column(header, arms)
+                        .map_err(|m| at(Some(header), &m))?;
+                    Ok((model.to_string(), arms[k].clone()))
+                })
+                .collect::<Result<_, InputError>>()?;
             Plan::Predictions {
                 models,
+                targets,
                 predicted_at,
             }
         }
@@ -413,13 +468,14 @@ impl From<String> for Failed {
     }
 }
 
+/// The dataset's features and arms (empty: binary).
 async fn dataset_features(
     c: &Connection,
     a: &IngestArgs,
     channel: tonic::transport::Channel,
-) -> Result<Vec<String>, Failed> {
-    if a.kind != Kind::Units {
-        return Ok(Vec::new());
+) -> Result<(Vec<String>, Vec<String>), Failed> {
+    if a.kind == Kind::Outcomes {
+        return Ok((Vec::new(), Vec::new()));
     }
     let spec = pb::dataset_registry_client::DatasetRegistryClient::new(channel)
         .get_dataset(request(
@@ -433,7 +489,7 @@ async fn dataset_features(
         .into_inner()
         .spec
         .unwrap_or_default();
-    Ok(spec.feature_names)
+    Ok((spec.feature_names, spec.arms))
 }
 
 async fn ingest(c: &Connection, a: &IngestArgs) -> Result<Located, Failed> {
@@ -446,8 +502,8 @@ async fn ingest(c: &Connection, a: &IngestArgs) -> Result<Located, Failed> {
         })?
         .len();
     let channel = connect(c).await?;
-    let features = dataset_features(c, a, channel.clone()).await?;
-    let layout = std::sync::Arc::new(layout(a.kind, &a.file, &features)?);
+    let (features, arms) = dataset_features(c, a, channel.clone()).await?;
+    let layout = std::sync::Arc::new(layout(a.kind, &a.file, &features, &arms)?);
 
     // Pass 1: every row checked before anything is sent.
     let check = std::sync::Arc::clone(&layout);
@@ -747,6 +803,7 @@ mod tests {
             id: 0,
             plan: Plan::Predictions {
                 models: vec![(1, "m1".into()), (2, "m2".into())],
+                targets: vec![("m1".into(), String::new()), ("m2".into(), String::new())],
                 predicted_at: None,
             },
         }

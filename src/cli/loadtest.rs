@@ -136,6 +136,7 @@ fn plan(args: &LoadtestArgs, name: String) -> Plan {
             propensity: None,
             cohort: format!("c{}", i / 10_000),
             assigned_at_ms: 0,
+            arm: String::new(),
         })
         .collect();
     let outcomes = (0..args.units)
@@ -213,6 +214,7 @@ impl Shared {
                             unit_key: p.units[i].key.clone(),
                             effect: effects[i],
                             predicted_at_ms: 0,
+                            arm: String::new(),
                         })
                         .collect(),
                 })

@@ -11,6 +11,7 @@ mod loadtest;
 mod progress;
 mod render;
 mod score;
+mod score_arms;
 mod serve;
 mod simulate;
 mod summary;

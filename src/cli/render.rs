@@ -151,17 +151,52 @@ pub fn table(b: &Scoreboard, kind: OutcomeKind, folds: usize, wide: bool) -> Str
         } else {
             String::new()
         };
+        // Repeated splits say so, and that the losses below are the
+        // first split's.
+        let repeats = if n.fold_repeats > 1 {
+            format!(
+                "; values averaged over {} fold splits, losses of the first",
+                n.fold_repeats
+            )
+        } else {
+            String::new()
+        };
         let _ = writeln!(
             s,
-            "Nuisance models ({}-fold cross-fit, seed {}{sample})",
+            "Nuisance models ({}-fold cross-fit, seed {}{sample}{repeats})",
             n.folds, n.seed
         );
         match &n.propensity.fit {
-            Some(c) => component(&mut s, "propensity", c),
+            Some(c) => {
+                component(&mut s, "propensity", c);
+                if let Some(r) = &n.propensity.recalibration {
+                    let losses: Vec<String> = r
+                        .candidates
+                        .iter()
+                        .map(|k| format!("{} {}", k.stage.name(), num(k.oof_loss)))
+                        .collect();
+                    let _ = writeln!(
+                        s,
+                        "  {:<18}  last stage {} ({}; out-of-fold log loss {})",
+                        "",
+                        r.chosen.name(),
+                        r.how,
+                        losses.join(", ")
+                    );
+                }
+            }
             None => {
                 let _ = writeln!(s, "  {:<18}  logged (not fitted)", "propensity");
             }
         }
+        let _ = writeln!(
+            s,
+            "  {:<18}  calibration error {} over {} bins (noise level {})",
+            "",
+            num(n.propensity.calibration_error),
+            crate::estimate::crossfit::CALIBRATION_BINS,
+            num(n.propensity.calibration_noise)
+        );
         let _ = writeln!(
             s,
             "  {:<18}  AUC {:.3}; clipped {} units to [{}, {}]",
@@ -396,14 +431,14 @@ pub(super) fn grid(indent: &str, header: &[String], lines: &[Vec<String>]) -> St
 }
 
 /// Width that prose lines of the report are wrapped to.
-const PROSE_WIDTH: usize = 100;
+pub(crate) const PROSE_WIDTH: usize = 100;
 
 /// Wraps each line longer than `width` at spaces. A line's last cell (what
 /// follows its last run of two spaces, or the whole text after the indent)
 /// continues on the next lines under where that cell began, so a labelled
 /// line such as "  treated  propensity min ..." keeps its label column.
 /// The wide view is not wrapped: its rows are meant to be long.
-fn wrap_prose(text: &str, width: usize) -> String {
+pub(crate) fn wrap_prose(text: &str, width: usize) -> String {
     let mut out = String::with_capacity(text.len() + text.len() / 50);
     for line in text.lines() {
         if line.chars().count() <= width || !line.is_ascii() {

@@ -7,7 +7,7 @@ use clap::{Args, ValueEnum};
 
 use super::progress::StderrProgress;
 use super::{render, EXIT_BAD_INPUT, EXIT_DEGENERATE};
-use crate::estimate::crossfit::NuisanceSettings;
+use crate::estimate::crossfit::{NuisanceSettings, Recalibration, RecalibrationChoice};
 use crate::estimate::{evaluate, EstimateError, OutcomeKind, Settings};
 use crate::input::{align, read_predictions, read_units};
 use crate::limits::MIN_FIT_UNITS;
@@ -28,10 +28,10 @@ pub enum KindArg {
 
 #[derive(Debug, Args)]
 pub struct ScoreArgs {
-    /// Units CSV: unit_id, treatment (0/1), outcome, optional propensity; other columns are numeric features.
+    /// Units CSV: unit_id, treatment (0/1, or an arm label with --arms), outcome, optional propensity (with --arms: of the arm the unit got; may be empty); other columns are numeric features.
     #[arg(long, value_name = "FILE")]
     pub units: PathBuf,
-    /// Predictions CSV: unit_id, then one column of predicted effects per model.
+    /// Predictions CSV: unit_id, then one column of predicted effects per model (with --arms: per model and arm, named MODEL:ARM, the effect of ARM against the reference).
     #[arg(long, value_name = "FILE")]
     pub predictions: PathBuf,
     /// Outcome kind; detected from the data when omitted (binary if every outcome is 0 or 1).
@@ -46,9 +46,21 @@ pub struct ScoreArgs {
     /// Fit the nuisance models on a seeded sample of at most this many units (stratified by arm); every unit is still scored by models that never saw it. Default: every unit.
     #[arg(long, value_name = "UNITS", value_parser = parse_max_fit_units)]
     pub max_fit_units: Option<usize>,
+    /// Fold splits the cross-fit is repeated on, each unit's nuisance values averaged over them (less dependence on one split; each split costs a whole cross-fit).
+    #[arg(long, value_name = "SPLITS", default_value_t = 1, value_parser = clap::value_parser!(u64).range(1..=20))]
+    pub fold_repeats: u64,
+    /// Recalibrate the fitted propensity fold by fold (a logistic curve in its logit, fitted on the other folds' out-of-fold propensities): for a propensity whose report shows a calibration error well above its noise level.
+    #[arg(long)]
+    pub recalibrate_propensity: bool,
     /// Cost of treating one unit, in outcome units (for policy gain).
     #[arg(long, default_value_t = 0.0)]
     pub cost: f64,
+    /// The dataset's arms, the reference first (e.g. none,text,mail): the treatment column holds these labels, and each contrast gets a board.
+    #[arg(long, value_name = "REF,ARM,...", value_parser = super::score_arms::parse_arms)]
+    pub arms: Option<super::score_arms::ArmList>,
+    /// With --arms: cost of giving a unit each arm, in outcome units (ARM=COST,...; 0 where not named).
+    #[arg(long, value_name = "ARM=COST,...", requires = "arms")]
+    pub arm_cost: Option<String>,
     /// Family-wise level of the best set and the heterogeneity test.
     #[arg(long, default_value_t = 0.05)]
     pub alpha: f64,
@@ -74,6 +86,20 @@ pub fn run(args: &ScoreArgs) -> ExitCode {
         KindArg::Continuous => OutcomeKind::Continuous,
         KindArg::Binary => OutcomeKind::Binary,
     });
+    if let Some(arms) = &args.arms {
+        // The arms fit has one split and no recalibration yet: refuse
+        // rather than ignore a setting the user asked for.
+        let unsupported = [
+            (args.max_fit_units.is_some(), "--max-fit-units"),
+            (args.fold_repeats != 1, "--fold-repeats"),
+            (args.recalibrate_propensity, "--recalibrate-propensity"),
+        ];
+        if let Some((_, flag)) = unsupported.iter().find(|(given, _)| *given) {
+            eprintln!("plumbline score: {flag} is not yet supported with --arms");
+            return ExitCode::from(EXIT_BAD_INPUT);
+        }
+        return super::score_arms::run(args, &arms.0, kind);
+    }
     // The two files are independent until they are aligned: read them at
     // the same time.
     let (units, preds) = std::thread::scope(|s| {
@@ -101,6 +127,12 @@ pub fn run(args: &ScoreArgs) -> ExitCode {
             folds: args.folds,
             seed: args.seed,
             max_fit_units: args.max_fit_units,
+            fold_repeats: args.fold_repeats as usize,
+            propensity_recalibration: if args.recalibrate_propensity {
+                RecalibrationChoice::Fixed(Recalibration::Platt)
+            } else {
+                RecalibrationChoice::ByLoss
+            },
             ..NuisanceSettings::default()
         },
         cost: args.cost,
@@ -116,6 +148,20 @@ pub fn run(args: &ScoreArgs) -> ExitCode {
         &progress,
     );
     progress.finish();
+    let kind = units.table.outcome_kind();
+    finish(args, result, |board| {
+        render::table(board, kind, args.folds, args.wide)
+    })
+}
+
+/// Prints a pass's result as `args.format` asks (`table` renders it for a
+/// person) and says how the command ends: a degenerate data set exits
+/// with [`EXIT_DEGENERATE`], any other error with [`EXIT_BAD_INPUT`].
+pub(super) fn finish<B: serde::Serialize>(
+    args: &ScoreArgs,
+    result: Result<B, EstimateError>,
+    table: impl FnOnce(&B) -> String,
+) -> ExitCode {
     let board = match result {
         Ok(b) => b,
         Err(EstimateError::Degenerate(state)) => {
@@ -138,7 +184,7 @@ pub fn run(args: &ScoreArgs) -> ExitCode {
                 return ExitCode::FAILURE;
             }
         },
-        Format::Table => render::table(&board, units.table.outcome_kind(), args.folds, args.wide),
+        Format::Table => table(&board),
     };
     println!("{out}");
     ExitCode::SUCCESS

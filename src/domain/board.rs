@@ -6,6 +6,7 @@
 
 use serde::{Deserialize, Serialize};
 
+use crate::estimate::arms::{ArmCost, ArmPolicy, ArmPolicyReport, PolicyDifference, Valued};
 use crate::estimate::estimators;
 use crate::estimate::stats::Estimate;
 
@@ -98,7 +99,23 @@ pub struct BoardModel {
     /// predictions do not vary or on boards stored before it existed.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub top_minus_bottom: Option<Estimate>,
+    /// One-sided 95% lower confidence bound on the model's RMSE that holds
+    /// whatever the nuisance models' quality (up to the product-of-errors
+    /// term), where the corrected PEHE alone is only a lower estimate (see
+    /// `estimate::level`); absent on boards stored before it existed.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub rmse_lower_bound: Option<f64>,
+    /// A registered blend's row: its weights were chosen on these units, so
+    /// its scores are in-sample for the weights (the board's `blend`, fitted
+    /// on other folds, is the honest figure); see [`REGISTERED_BLEND_NOTE`].
+    #[serde(default, skip_serializing_if = "std::ops::Not::not")]
+    pub registered_blend: bool,
 }
+
+/// Added to a board's caveat when a registered blend is ranked on it.
+pub const REGISTERED_BLEND_NOTE: &str = "A registered blend (registered_blend) is scored on the \
+     units its weights were chosen on, so its error here is an in-sample figure that favours it; \
+     the board's own blend, whose weights are fitted on the other folds, is the honest one.";
 
 /// Per-model values kept in history besides the estimators' scores.
 pub const MEASURES: [&str; 4] = ["vs_constant", "policy_gain", "autoc", "qini"];
@@ -247,6 +264,94 @@ pub struct Board {
     /// `units` between rank refreshes.
     pub rank_metrics_units: u64,
     pub alerts: Option<AlertView>,
+    /// The part of the plug-in effect model's own error that the error
+    /// bounds add to each model's corrected PEHE (a lower estimate of it,
+    /// with its standard error); computed with the rank metrics, so as of
+    /// `rank_metrics_units`. Absent when degenerate or stored before it
+    /// existed.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub plugin_error_projection: Option<Estimate>,
+    /// The cross-fitted convex blend of the window's leading models; absent
+    /// with fewer than two ranked models, when degenerate, or on boards
+    /// stored before it existed.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub blend: Option<BoardBlend>,
+    /// On a contrast's board (one of `contrasts`), the arm compared with
+    /// `reference_arm`; empty on a binary dataset's board and on the top
+    /// board of a dataset with arms.
+    #[serde(default, skip_serializing_if = "String::is_empty")]
+    pub arm: String,
+    #[serde(default, skip_serializing_if = "String::is_empty")]
+    pub reference_arm: String,
+    /// On a dataset with arms: one board per arm other than the reference,
+    /// in the arms' order (the top board then has no models of its own).
+    /// Empty on a binary dataset, and on every board stored before arms.
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub contrasts: Vec<Board>,
+    /// On a dataset with arms: each model's arm choice, valued.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub arm_policy: Option<ArmPolicyBoard>,
+}
+
+/// The value of each model's arm choice on a window of a dataset with
+/// arms, as [`crate::estimate::arms::ArmPolicyReport`] computes it (kept
+/// here with an owned note, so a stored board reads back).
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct ArmPolicyBoard {
+    /// Cost per arm, the reference first.
+    pub costs: Vec<ArmCost>,
+    /// Everyone the reference arm.
+    pub reference_value: Valued,
+    pub best_single_arm: String,
+    pub best_single_arm_value: Valued,
+    pub note: String,
+    pub models: Vec<ArmPolicy>,
+    pub pairwise: Vec<PolicyDifference>,
+}
+
+impl From<&ArmPolicyReport> for ArmPolicyBoard {
+    fn from(r: &ArmPolicyReport) -> Self {
+        Self {
+            costs: r.costs.clone(),
+            reference_value: r.reference_value,
+            best_single_arm: r.best_single_arm.clone(),
+            best_single_arm_value: r.best_single_arm_value,
+            note: r.note.into(),
+            models: r.models.clone(),
+            pairwise: r.pairwise.clone(),
+        }
+    }
+}
+
+/// A window's blend: a convex combination of its leading ranked models
+/// whose weights are fitted on the other folds of each fold's units, so its
+/// error is estimated on units its weights never saw (see
+/// `estimate::blend`).
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct BoardBlend {
+    /// The models with a nonzero weight fitted on every unit (the blend a
+    /// user would deploy), largest first.
+    pub weights: Vec<BlendShare>,
+    /// Mean corrected PEHE of the held-out blend: a lower estimate of its
+    /// PEHE, as for any model.
+    pub corrected_pehe: f64,
+    /// The registered model ranked first, which the blend is compared with.
+    pub best_model: String,
+    /// Corrected PEHE of the held-out blend minus `best_model`'s (below 0:
+    /// the blend has lower error).
+    pub vs_best: Difference,
+    /// Corrected PEHE of the held-out blend minus constant-effect's.
+    pub vs_constant: Difference,
+    /// Ranked models the blend could take (at most the window's first
+    /// `limits.max_blend_models` by rank).
+    pub models_offered: u32,
+}
+
+/// One model's weight in a blend.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct BlendShare {
+    pub model: String,
+    pub weight: f64,
 }
 
 impl Board {
@@ -311,6 +416,12 @@ mod tests {
             detail_json: String::new(),
             rank_metrics_units: 10,
             alerts: None,
+            plugin_error_projection: None,
+            blend: None,
+            arm: String::new(),
+            reference_arm: String::new(),
+            contrasts: Vec::new(),
+            arm_policy: None,
         };
         let back = board.compare("b", "a").expect("pair");
         assert_eq!(

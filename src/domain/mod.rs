@@ -9,11 +9,11 @@ pub mod records;
 pub mod spec;
 
 pub use board::{
-    Adjusted, AlertView, Board, BoardModel, Difference, Drift, IncompleteModel, NuisanceComponent,
-    OverlapSummary, Pair, Score, Window,
+    Adjusted, AlertView, ArmPolicyBoard, BlendShare, Board, BoardBlend, BoardModel, Difference,
+    Drift, IncompleteModel, NuisanceComponent, OverlapSummary, Pair, Score, Window,
 };
 pub use records::{
-    EventRecord, FitRecord, HistoryRow, OutcomeRecord, PredictionRecord, ScoreRow, StoredDataset,
-    StoredModel, UnitRecord,
+    BlendDefinition, BlendMember, EventRecord, FitRecord, HistoryRow, OutcomeRecord,
+    PredictionRecord, ScoreRow, StoredDataset, StoredModel, UnitRecord,
 };
 pub use spec::DatasetSpec;

@@ -20,6 +20,37 @@ pub struct StoredModel {
     pub description: String,
     pub registered_at_ms: i64,
     pub retired_at_ms: i64,
+    /// Set for a registered blend: a model whose predictions the service
+    /// computes itself from other models' (see [`BlendDefinition`]); None
+    /// for a model whose predictions are sent.
+    pub blend: Option<BlendDefinition>,
+}
+
+/// What a registered blend is, frozen when it was registered: the models
+/// it averages and their weights, and the board it was taken from. The
+/// service predicts for a unit the weighted sum of the members'
+/// predictions once every member has predicted it; a unit some member has
+/// not predicted stays unpredicted, as for any model.
+#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
+pub struct BlendDefinition {
+    /// The recompute whose board's blend this is.
+    pub snapshot_id: u64,
+    /// That board's window.
+    pub window: super::board::Window,
+    /// Weights over models with sent predictions (a blend of a registered
+    /// blend is stored over that blend's own members), largest first,
+    /// summing to 1.
+    pub members: Vec<BlendMember>,
+}
+
+/// One model's weight in a registered blend.
+#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
+pub struct BlendMember {
+    /// The member's model id (names are unique within a dataset, ids
+    /// across the store; the id is what the cache looks members up by).
+    pub model_id: i64,
+    pub model: String,
+    pub weight: f64,
 }
 
 #[derive(Debug, Clone, PartialEq)]
@@ -27,6 +58,8 @@ pub struct UnitRecord {
     pub seq: i64,
     pub key: String,
     pub features: Vec<f64>,
+    /// 0 or 1 on a binary dataset; on a dataset with arms, the index of the
+    /// unit's arm in the spec's `arms` (0 the reference).
     pub treatment: u8,
     pub propensity: Option<f64>,
     pub cohort: String,
@@ -47,6 +80,9 @@ pub struct PredictionRecord {
     pub unit_seq: i64,
     /// Arrival order of predictions within the dataset, from 0.
     pub seq: i64,
+    /// The arm whose effect against arm 0 this is: 1 on a binary dataset
+    /// (the treatment), an index into the spec's `arms` otherwise.
+    pub arm: u8,
     pub effect: f64,
     pub predicted_at_ms: i64,
 }

@@ -36,6 +36,16 @@ pub struct DatasetSpec {
     pub min_coverage: f64,
     pub alpha: f64,
     pub seed: u64,
+    /// The arms of a dataset with more than two, the reference first; empty
+    /// for a binary dataset (treatment 0 or 1), as every spec stored before
+    /// arms existed reads. A unit's arm is stored as its index here.
+    #[serde(default)]
+    pub arms: Vec<String>,
+    /// Cost of giving a unit each arm, in outcome units, one per arm (the
+    /// reference's first); empty: every arm costs 0. A binary dataset's
+    /// cost stays in `treatment_cost`.
+    #[serde(default)]
+    pub arm_costs: Vec<f64>,
 }
 
 pub const DEFAULT_FOLDS: u32 = 5;
@@ -58,6 +68,10 @@ fn default_alert_horizon() -> u32 {
 }
 pub const DEFAULT_MIN_COVERAGE: f64 = 0.95;
 pub const DEFAULT_ALPHA: f64 = 0.05;
+
+/// Most arms a dataset declares: a unit's arm is stored as a small index,
+/// and each arm beyond the reference adds a board to every recompute.
+pub const MAX_ARMS: usize = 32;
 
 /// Longest dataset or model name.
 pub const MAX_NAME_LEN: usize = 128;
@@ -117,6 +131,23 @@ impl DatasetSpec {
             min_coverage: 0.0,
             alpha: 0.0,
             seed: 0,
+            arms: Vec::new(),
+            arm_costs: Vec::new(),
+        }
+    }
+
+    /// Whether the dataset declares arms (more than two); false for a
+    /// binary dataset.
+    pub fn has_arms(&self) -> bool {
+        !self.arms.is_empty()
+    }
+
+    /// One cost per arm, the reference's first (zeros when none given).
+    pub fn costs_per_arm(&self) -> Vec<f64> {
+        if self.arm_costs.is_empty() {
+            vec![0.0; self.arms.len()]
+        } else {
+            self.arm_costs.clone()
         }
     }
 
@@ -217,6 +248,103 @@ impl DatasetSpec {
         if !(self.alpha > 0.0 && self.alpha < 1.0) {
             return bad("alpha", format!("{} is outside (0, 1)", self.alpha));
         }
+        self.check_arms()?;
         Ok(self)
+    }
+
+    /// Arms: none (binary), or 2 to [`MAX_ARMS`] distinct names (safe as
+    /// names, so `MODEL:ARM` columns and metric labels stay unambiguous);
+    /// costs none or one finite value per arm; a binary `treatment_cost`
+    /// is refused beside arms, whose costs are per arm.
+    fn check_arms(&self) -> Result<(), (String, String)> {
+        let bad = |field: String, why: String| Err((field, why));
+        if self.arms.is_empty() {
+            if !self.arm_costs.is_empty() {
+                return bad(
+                    "arm_costs".into(),
+                    "arm costs need declared arms (a binary dataset has treatment_cost)".into(),
+                );
+            }
+            return Ok(());
+        }
+        if self.arms.len() < 2 || self.arms.len() > MAX_ARMS {
+            return bad(
+                "arms".into(),
+                format!(
+                    "{} arms; declare a reference arm and 1 to {} others",
+                    self.arms.len(),
+                    MAX_ARMS - 1
+                ),
+            );
+        }
+        for (j, a) in self.arms.iter().enumerate() {
+            if let Err(e) = check_name("arm", a) {
+                return bad(format!("arms[{j}]"), e);
+            }
+            if self.arms[..j].contains(a) {
+                return bad(format!("arms[{j}]"), format!("arm {a:?} is declared twice"));
+            }
+        }
+        if self.treatment_cost != 0.0 {
+            return bad(
+                "treatment_cost".into(),
+                "is for two arms; with arms give arm_costs, one per arm".into(),
+            );
+        }
+        if !self.arm_costs.is_empty() && self.arm_costs.len() != self.arms.len() {
+            return bad(
+                "arm_costs".into(),
+                format!(
+                    "{} costs for {} arms; give one per arm, the reference's first",
+                    self.arm_costs.len(),
+                    self.arms.len()
+                ),
+            );
+        }
+        if let Some(j) = self.arm_costs.iter().position(|c| !c.is_finite()) {
+            return bad(format!("arm_costs[{j}]"), "must be finite".into());
+        }
+        Ok(())
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn with_arms(arms: &[&str], costs: &[f64], treatment_cost: f64) -> DatasetSpec {
+        DatasetSpec {
+            arms: arms.iter().map(|a| a.to_string()).collect(),
+            arm_costs: costs.to_vec(),
+            treatment_cost,
+            ..DatasetSpec::new("d", vec!["x".into()], OutcomeKind::Continuous)
+        }
+    }
+
+    #[test]
+    fn arms_are_checked_and_named_in_the_refusal() {
+        let ok = with_arms(&["none", "text", "mail"], &[0.0, 0.1, 0.3], 0.0)
+            .normalized()
+            .expect("valid arms");
+        assert_eq!(ok.costs_per_arm(), vec![0.0, 0.1, 0.3]);
+        let free = with_arms(&["a", "b"], &[], 0.0)
+            .normalized()
+            .expect("no costs");
+        assert_eq!(free.costs_per_arm(), vec![0.0, 0.0]);
+        for (spec, field) in [
+            (with_arms(&["only"], &[], 0.0), "arms"),
+            (with_arms(&["a", "a"], &[], 0.0), "arms[1]"),
+            (with_arms(&["a", "b:c"], &[], 0.0), "arms[1]"),
+            (with_arms(&["a", "b"], &[], 1.0), "treatment_cost"),
+            (with_arms(&["a", "b"], &[0.0], 0.0), "arm_costs"),
+            (
+                with_arms(&["a", "b"], &[0.0, f64::NAN], 0.0),
+                "arm_costs[1]",
+            ),
+            (with_arms(&[], &[0.5], 0.0), "arm_costs"),
+        ] {
+            let (got, why) = spec.normalized().expect_err(field);
+            assert_eq!(got, field, "{why}");
+        }
     }
 }

@@ -64,7 +64,7 @@ use super::crossfit::{assign_folds, Nuisance};
 use super::data::{ModelPredictions, UnitTable};
 use super::estimators::{ALL, RANKED_BY};
 use super::pseudo::aipw_pseudo_outcome;
-use super::scoreboard::{Scoreboard, Settings, UnitColumns, CI_LEVEL};
+use super::scoreboard::{Column, Scoreboard, Settings, UnitColumns, CI_LEVEL};
 use super::stats::mean_se;
 
 /// The ridge added to A's diagonal, as a share of A's mean diagonal. A is
@@ -90,6 +90,9 @@ const GRAM_BLOCK: usize = 512;
 /// number of threads.
 const MAX_PARTS_PER_FOLD: usize = 4;
 const MIN_PART_UNITS: usize = 4096;
+
+/// Units per parallel part of [`FoldGrams::of_columns`].
+const COLUMN_PART: usize = 1 << 15;
 
 /// Weights shown as nonzero in reports are above this (also used by the
 /// text report).
@@ -481,29 +484,153 @@ pub fn cross_fit_blend(
     fold_of_unit: &[usize],
     folds: usize,
 ) -> CrossFitBlend {
-    let n = phi.len();
-    let grams = fold_grams(effects, phi, fold_of_unit, folds);
-    let p = effects.len() + 1;
-    let mut total = Array2::zeros((p, p));
-    for (_, g) in &grams {
-        total += g;
+    let grams = FoldGrams::of(effects, phi, fold_of_unit, folds);
+    let (weights, fold_weights) = grams.solve();
+    let held_out = held_out_blend(effects, fold_of_unit, &fold_weights);
+    CrossFitBlend {
+        weights,
+        fold_weights,
+        fold_units: grams.fold_units(),
+        held_out,
     }
-    let (a, b) = problem_of(&total, n);
-    let jobs: Vec<Option<usize>> = std::iter::once(None).chain((0..folds).map(Some)).collect();
-    let mut solved: Vec<SimplexSolution> = jobs
-        .par_iter()
-        .map(|job| match job {
-            None => solve_simplex(&a, &b),
-            Some(f) => {
-                let (units, gram) = &grams[*f];
-                let (a, b) = problem_of(&(&total - gram), n - units);
-                solve_simplex(&a, &b)
-            }
-        })
-        .collect();
-    let weights = solved.remove(0);
-    let fold_weights = solved;
+}
 
+/// The per-fold sums of [tau_hat, phi] products the weights are fitted
+/// from: a window that only grows merges its new units into them
+/// ([`FoldGrams::add`]), at O(m^2) per unit, and solves again, at
+/// O(K m^2) per warm-start step, without a pass over the units it holds.
+#[derive(Debug, Clone)]
+pub struct FoldGrams {
+    grams: Vec<(usize, Array2<f64>)>,
+}
+
+impl FoldGrams {
+    /// The sums over the units of `effects` (model k's predictions per
+    /// unit) and `phi`, each in its fold of `fold_of_unit` (in `0..folds`).
+    pub fn of(effects: &[&[f64]], phi: &[f64], fold_of_unit: &[usize], folds: usize) -> Self {
+        Self {
+            grams: fold_grams(effects, phi, fold_of_unit, folds),
+        }
+    }
+
+    /// As [`FoldGrams::of`], the predictions read from `columns` a block
+    /// of units at a time, wherever they are stored (the service reads
+    /// them from its cache and never holds every model's column). Units go
+    /// in parts of [`COLUMN_PART`] in parallel, merged in order, so the
+    /// sums do not depend on the number of threads.
+    pub fn of_columns(
+        columns: &[Column<'_>],
+        phi: &[f64],
+        fold_of_unit: &[usize],
+        folds: usize,
+    ) -> Self {
+        let p = columns.len() + 1;
+        let n = phi.len();
+        let parts: Vec<Vec<(usize, Array2<f64>)>> = (0..n.div_ceil(COLUMN_PART))
+            .into_par_iter()
+            .map(|c| {
+                let end = ((c + 1) * COLUMN_PART).min(n);
+                let mut grams = vec![(0usize, Array2::zeros((p, p))); folds];
+                let mut block = Array2::zeros((p, GRAM_BLOCK));
+                let mut values = vec![0.0; GRAM_BLOCK];
+                for start in (c * COLUMN_PART..end).step_by(GRAM_BLOCK) {
+                    let len = GRAM_BLOCK.min(end - start);
+                    for (mut row, column) in block.outer_iter_mut().zip(columns) {
+                        column.fill(start, &mut values[..len]);
+                        for (cell, &v) in row.iter_mut().zip(&values[..len]) {
+                            *cell = v;
+                        }
+                    }
+                    for (cell, &v) in block
+                        .row_mut(p - 1)
+                        .iter_mut()
+                        .zip(&phi[start..start + len])
+                    {
+                        *cell = v;
+                    }
+                    for (f, (units, gram)) in grams.iter_mut().enumerate() {
+                        let members: Vec<usize> =
+                            (0..len).filter(|&j| fold_of_unit[start + j] == f).collect();
+                        if members.is_empty() {
+                            continue;
+                        }
+                        let part = block.select(ndarray::Axis(1), &members);
+                        general_mat_mul(1.0, &part, &part.t(), 1.0, gram);
+                        *units += members.len();
+                    }
+                }
+                grams
+            })
+            .collect();
+        let mut grams = vec![(0usize, Array2::zeros((p, p))); folds];
+        for part in parts {
+            for ((units, gram), (u, g)) in grams.iter_mut().zip(part) {
+                *units += u;
+                *gram += &g;
+            }
+        }
+        Self { grams }
+    }
+
+    /// Merges more units (their predictions `columns`, for the same models
+    /// in the same order, their `phi` and folds).
+    pub fn add(&mut self, columns: &[Column<'_>], phi: &[f64], fold_of_unit: &[usize]) {
+        let more = Self::of_columns(columns, phi, fold_of_unit, self.grams.len());
+        for ((units, gram), (u, g)) in self.grams.iter_mut().zip(more.grams) {
+            *units += u;
+            *gram += &g;
+        }
+    }
+
+    /// Models the sums are over.
+    pub fn models(&self) -> usize {
+        self.grams.first().map_or(0, |(_, g)| g.nrows() - 1)
+    }
+
+    /// Units per fold.
+    pub fn fold_units(&self) -> Vec<usize> {
+        self.grams.iter().map(|(u, _)| *u).collect()
+    }
+
+    /// The weights fitted on every unit, and per fold the weights fitted
+    /// on the other folds' units.
+    pub fn solve(&self) -> (SimplexSolution, Vec<SimplexSolution>) {
+        let grams = &self.grams;
+        let p = grams.first().map_or(1, |(_, g)| g.nrows());
+        let n: usize = grams.iter().map(|(u, _)| u).sum();
+        let mut total = Array2::zeros((p, p));
+        for (_, g) in grams {
+            total += g;
+        }
+        let (a, b) = problem_of(&total, n);
+        let jobs: Vec<Option<usize>> = std::iter::once(None)
+            .chain((0..grams.len()).map(Some))
+            .collect();
+        let mut solved: Vec<SimplexSolution> = jobs
+            .par_iter()
+            .map(|job| match job {
+                None => solve_simplex(&a, &b),
+                Some(f) => {
+                    let (units, gram) = &grams[*f];
+                    let (a, b) = problem_of(&(&total - gram), n - units);
+                    solve_simplex(&a, &b)
+                }
+            })
+            .collect();
+        let weights = solved.remove(0);
+        (weights, solved)
+    }
+}
+
+/// The held-out blend's prediction per unit: its fold's weights applied to
+/// the models' predictions (a model with no weight in any fold is not
+/// read).
+pub fn held_out_blend(
+    effects: &[&[f64]],
+    fold_of_unit: &[usize],
+    fold_weights: &[SimplexSolution],
+) -> Vec<f64> {
+    let n = fold_of_unit.len();
     let mut held_out = vec![0.0; n];
     held_out
         .par_chunks_mut(1 << 14)
@@ -520,12 +647,7 @@ pub fn cross_fit_blend(
                 }
             }
         });
-    CrossFitBlend {
-        weights,
-        fold_weights,
-        fold_units: grams.iter().map(|(u, _)| *u).collect(),
-        held_out,
-    }
+    held_out
 }
 
 /// One registered model's place in the blend.
@@ -593,30 +715,52 @@ pub fn blend_report(
     let fold_of_unit = assign_folds(w, folds, settings.nuisance.seed);
     let effects: Vec<&[f64]> = registered.iter().map(|m| m.effects.as_slice()).collect();
     let blend = cross_fit_blend(&effects, &phi, &fold_of_unit, folds);
+    let names: Vec<String> = registered.iter().map(|m| m.name.clone()).collect();
+    Some(report_of_blend(
+        &names,
+        &blend,
+        best_model,
+        effects[best],
+        &UnitColumns::new(table, nuisance, &phi),
+        board.ate.estimate,
+    ))
+}
 
-    let constant = board.ate.estimate;
+/// The report of a cross-fitted `blend` of the models `names` (in the
+/// blend's order): its held-out error, and its difference from
+/// constant-effect (predicting `constant`, the window's ATE) and from
+/// `best_model`, whose predictions are `best_effects`; `units` are the
+/// per-unit values every estimator reads. Shared by `plumbline score` and
+/// the service's boards, so both say the same thing of the same blend.
+pub fn report_of_blend(
+    names: &[String],
+    blend: &CrossFitBlend,
+    best_model: String,
+    best_effects: &[f64],
+    units: &UnitColumns<'_>,
+    constant: f64,
+) -> BlendReport {
     let estimator = ALL[RANKED_BY];
-    let n = phi.len();
+    let n = blend.held_out.len();
     let (mut own, mut vs_constant, mut vs_best) = (
         Vec::with_capacity(n),
         Vec::with_capacity(n),
         Vec::with_capacity(n),
     );
-    let units = UnitColumns::new(table, nuisance, &phi);
-    for (i, (&held_out, &single)) in blend.held_out.iter().zip(effects[best]).enumerate() {
+    for (i, (&held_out, &single)) in blend.held_out.iter().zip(best_effects).enumerate() {
         let unit = units.view(i);
         let c = estimator.contribution(&unit, held_out);
         own.push(c);
         vs_constant.push(c - estimator.contribution(&unit, constant));
         vs_best.push(c - estimator.contribution(&unit, single));
     }
-    let weights = registered
+    let weights = names
         .iter()
         .enumerate()
-        .map(|(k, m)| {
+        .map(|(k, name)| {
             let fold_weights: Vec<f64> = blend.fold_weights.iter().map(|s| s.weights[k]).collect();
             BlendWeight {
-                model: m.name.clone(),
+                model: name.clone(),
                 weight: blend.weights.weights[k],
                 fold_min: fold_weights.iter().copied().fold(f64::INFINITY, f64::min),
                 fold_max: fold_weights
@@ -627,16 +771,16 @@ pub fn blend_report(
             }
         })
         .collect();
-    Some(BlendReport {
+    BlendReport {
         weights,
-        fold_units: blend.fold_units,
+        fold_units: blend.fold_units.clone(),
         corrected_pehe: mean_se(&own).estimate,
         vs_constant: Difference::from_estimate(mean_se(&vs_constant), CI_LEVEL),
         best_model,
         vs_best: Difference::from_estimate(mean_se(&vs_best), CI_LEVEL),
         converged: blend.weights.converged && blend.fold_weights.iter().all(|s| s.converged),
         caveat: BLEND_CAVEAT,
-    })
+    }
 }
 
 #[cfg(test)]

@@ -68,13 +68,7 @@ impl UnitTable {
                 )));
             }
         }
-        for (row, x) in features.outer_iter().enumerate() {
-            if let Some(col) = x.iter().position(|v| !v.is_finite()) {
-                return Err(EstimateError::invalid(format!(
-                    "row {row}: feature {col} is not finite"
-                )));
-            }
-        }
+        let features = checked_features(features)?;
         for (row, &w) in treatment.iter().enumerate() {
             if w != 0.0 && w != 1.0 {
                 return Err(EstimateError::invalid(format!(
@@ -103,12 +97,6 @@ impl UnitTable {
                 }
             }
         }
-        // Rows must be contiguous for [`UnitTable::rows`].
-        let features = if features.is_standard_layout() {
-            features
-        } else {
-            features.as_standard_layout().into_owned()
-        };
         Ok(Self {
             features,
             treatment,
@@ -191,6 +179,24 @@ impl UnitTable {
         }
         Ok(())
     }
+}
+
+/// `features` with every value finite, in row-major layout (so that its
+/// rows are contiguous slices for [`FeatureRows::dense`]); a value that is
+/// not finite is an error naming its row and column.
+pub(crate) fn checked_features(features: Array2<f64>) -> Result<Array2<f64>, EstimateError> {
+    for (row, x) in features.outer_iter().enumerate() {
+        if let Some(col) = x.iter().position(|v| !v.is_finite()) {
+            return Err(EstimateError::invalid(format!(
+                "row {row}: feature {col} is not finite"
+            )));
+        }
+    }
+    Ok(if features.is_standard_layout() {
+        features
+    } else {
+        features.as_standard_layout().into_owned()
+    })
 }
 
 /// Rows of features read in place: one row-major matrix, or chosen rows of

@@ -20,6 +20,7 @@ use rayon::prelude::*;
 
 use super::crossfit::{Nuisance, NuisanceReport};
 use super::data::{FeatureRows, UnitTable, CONSTANT_EFFECT, ZERO_EFFECT};
+use super::estimators::RANKED_BY;
 use super::overlap::OverlapSums;
 use super::policy::{uniform_policy_gain, PolicySums};
 use super::pseudo::aipw_pseudo_outcome;
@@ -27,7 +28,7 @@ use super::scoreboard::{
     assemble, column_rank_metrics, column_sums, Column, Parts, RankMetrics, Scoreboard, Scored,
     Settings, UnitColumns,
 };
-use super::stats::Moments;
+use super::stats::{Estimate, Moments};
 use super::sums::ScoreSums;
 use super::targeting::{descending_order, merge_orders};
 
@@ -173,6 +174,43 @@ impl GrowingWindow {
         self.treated += table.n_treated();
         self.overlap
             .add(features, table.treatment(), &nuisance.propensity);
+    }
+
+    /// The pseudo-outcome of every unit, in the order units joined: what a
+    /// pass over the whole window that does not merge (the error bounds)
+    /// reads.
+    pub fn phi(&self) -> &[f64] {
+        &self.phi
+    }
+
+    /// Corrected PEHE of scored column `first` minus that of `second`
+    /// (zero-effect, constant-effect, then the registered models in the
+    /// order the window was started with), from the ranking estimator's
+    /// whole co-moment matrix: any pair, not only those a board keeps, with
+    /// the standard error the board's pairs have. A pair of registered
+    /// models (or zero-effect) reads its three co-moments as kept; a pair
+    /// with constant-effect maps the sums to the current ATE first (see
+    /// [`ConstantBasis`]).
+    pub fn difference(&self, first: usize, second: usize) -> Estimate {
+        let sums = &self.sums[RANKED_BY];
+        // Scored column -> column of the kept sums [0, s, -s, models...].
+        let kept = |c: usize| match c {
+            0 => Some(0),
+            1 => None,
+            c => Some(c + 1),
+        };
+        match (kept(first), kept(second)) {
+            (Some(a), Some(b)) => sums.difference(a, b),
+            _ => self
+                .basis
+                .resolve(sums, self.ate())
+                .difference(first, second),
+        }
+    }
+
+    /// The window's ATE (constant-effect's prediction).
+    pub fn ate(&self) -> f64 {
+        self.ate.estimate().estimate
     }
 
     /// Units in the window.

@@ -173,15 +173,55 @@ pub fn level_report(
     folds: usize,
     models: &[(&str, Column<'_>)],
 ) -> LevelReport {
-    let n = table.len();
-    let projection = project_plugin_error(table.rows(), nuisance, phi, fold_of_unit, folds);
+    level_report_on(
+        table.rows(),
+        table,
+        nuisance,
+        phi,
+        fold_of_unit,
+        folds,
+        models,
+    )
+}
+
+/// [`level_report`] with the features read from `rows` (one per unit of
+/// `table`) wherever they are stored: the service keeps them in its cache
+/// and builds tables without them.
+pub fn level_report_on(
+    rows: FeatureRows<'_>,
+    table: &UnitTable,
+    nuisance: &Nuisance,
+    phi: &[f64],
+    fold_of_unit: &[usize],
+    folds: usize,
+    models: &[(&str, Column<'_>)],
+) -> LevelReport {
+    let units = UnitColumns::new(table, nuisance, phi);
+    level_report_of_units(rows, &units, nuisance, fold_of_unit, folds, models)
+}
+
+/// [`level_report_on`] for units given column by column: a contrast of
+/// several arms has no binary table, only its columns (treatment the
+/// contrast's arm, the conditional propensity, the two arms' outcome
+/// models, its pseudo-outcome), and `nuisance` holds the same propensity
+/// and outcome models, which the sieve reads.
+pub fn level_report_of_units(
+    rows: FeatureRows<'_>,
+    units: &UnitColumns<'_>,
+    nuisance: &Nuisance,
+    fold_of_unit: &[usize],
+    folds: usize,
+    models: &[(&str, Column<'_>)],
+) -> LevelReport {
+    let n = units.len();
+    let phi = units.phi;
+    let projection = project_plugin_error(rows, nuisance, phi, fold_of_unit, folds);
     let theta = mean(&projection.terms);
     let plugin_error_projection = Estimate::new(
         theta,
         fold_centered_se(&projection.influence, fold_of_unit, folds),
     );
     let z = normal_quantile(BOUND_LEVEL);
-    let units = UnitColumns::new(table, nuisance, phi);
     let models = models
         .par_iter()
         .map(|(name, column)| {

@@ -9,9 +9,11 @@
 //! reports), [`level`] (a lower bound on each model's RMSE that needs no
 //! nuisance model to be right), [`blend`] (the cross-fitted convex blend of
 //! the models the offline pass adds), and [`scoreboard`], which runs a whole
-//! pass, with [`incremental`], its twin for a window that grows; then
+//! pass, with [`incremental`], its twin for a window that grows, and
+//! [`arms`], the same per contrast for datasets with more than two arms; then
 //! [`sequential`] and [`watch`], the statistics behind the alerts.
 
+pub mod arms;
 pub mod blend;
 pub mod calibration;
 pub mod compare;

@@ -276,14 +276,20 @@ fn levels(
     level_report(table, nuisance, &phi, &fold_of_unit, folds, &columns)
 }
 
+/// A registered model may not take a built-in baseline's name: the board
+/// would list two models under one name.
+pub(crate) fn check_model_name(name: &str) -> Result<(), EstimateError> {
+    if name == ZERO_EFFECT || name == CONSTANT_EFFECT {
+        return Err(EstimateError::invalid(format!(
+            "model name {name:?} is reserved for a built-in baseline"
+        )));
+    }
+    Ok(())
+}
+
 fn check_predictions(table: &UnitTable, models: &[ModelPredictions]) -> Result<(), EstimateError> {
     for m in models {
-        if m.name == ZERO_EFFECT || m.name == CONSTANT_EFFECT {
-            return Err(EstimateError::invalid(format!(
-                "model name {:?} is reserved for a built-in baseline",
-                m.name
-            )));
-        }
+        check_model_name(&m.name)?;
         if m.effects.len() != table.len() {
             return Err(EstimateError::invalid(format!(
                 "model {}: {} predictions for {} units",
@@ -374,7 +380,8 @@ pub enum Column<'a> {
 }
 
 impl Column<'_> {
-    fn fill(&self, start: usize, out: &mut [f64]) {
+    /// The predictions of units `start..start + out.len()`.
+    pub fn fill(&self, start: usize, out: &mut [f64]) {
         match self {
             Column::Slice(values) => out.copy_from_slice(&values[start..start + out.len()]),
             Column::Uniform(value) => out.fill(*value),
@@ -597,44 +604,15 @@ pub fn score_keeping(
     models: &[ScoredColumn<'_>],
     settings: &Settings,
 ) -> Scored {
-    let n = table.len();
     let (y, w) = (table.outcome(), table.treatment());
     let phi = aipw_pseudo_outcome(y, w, nuisance);
-    let ate = aipw_ate(&phi);
-    let mut columns = vec![Column::Uniform(0.0), Column::Uniform(ate.estimate)];
-    columns.extend(models.iter().map(|m| m.effects));
     let units = UnitColumns::new(table, nuisance, &phi);
-    // The baselines, zero-effect and constant-effect, lead.
-    let sums = column_sums(&units, &columns, 2);
-    type Whole = (Vec<Vec<u32>>, (Vec<RankMetrics>, Vec<PolicySums>));
-    let (mut orders, (rank, policy)): Whole = columns
-        .par_iter()
-        .enumerate()
-        .map(|(k, column)| {
-            let tau = column.collect(n);
-            let order = descending_order(&tau);
-            let rank = column_rank_metrics(&phi, &tau, &order, k, settings);
-            let mut policy = PolicySums::default();
-            policy.add(&phi, &tau, settings.cost);
-            (order, (rank, policy))
-        })
-        .unzip();
-    orders.drain(..2);
-    let mut names = vec![
-        (ZERO_EFFECT.to_string(), true),
-        (CONSTANT_EFFECT.to_string(), true),
-    ];
-    names.extend(models.iter().map(|m| (m.name.clone(), m.baseline)));
-    let board = assemble(
-        Parts {
-            models: names,
-            n_units: n,
-            ate,
+    let (board, orders, rank, policy) = score_pass(
+        Pass {
+            units,
+            binary_units: None,
             n_treated: table.n_treated(),
-            sums,
-            policy: policy.iter().map(PolicySums::gain).collect(),
-            rank: &rank,
-            rank_units: n,
+            cost: settings.cost,
             overlap: overlap_report(
                 features,
                 feature_names,
@@ -644,6 +622,7 @@ pub fn score_keeping(
             ),
             nuisance: nuisance_report,
         },
+        models,
         settings,
     );
     Scored {
@@ -653,6 +632,104 @@ pub fn score_keeping(
         rank,
         policy,
     }
+}
+
+/// The units of one scoring pass and what the board reports beside the
+/// models. The binary pass and each contrast of a dataset with several
+/// arms ([`crate::estimate::arms`]) are both one of these, so both run the
+/// same code.
+pub struct Pass<'a> {
+    /// Every unit, with its pseudo-outcome: the estimators that read only
+    /// the pseudo-outcome and the outcome models run on these.
+    pub units: UnitColumns<'a>,
+    /// Where the treatment of `units` is not binary (a contrast of several
+    /// arms), the units of the contrast's two arms, whose treatment and
+    /// (conditional) propensity are: the estimators that need a binary
+    /// treatment ([`estimators::Estimator::needs_binary_treatment`]) run
+    /// on these instead. None: they run on `units`.
+    pub binary_units: Option<BinaryUnits<'a>>,
+    pub n_treated: usize,
+    /// Cost of treating one unit, for the policy gains.
+    pub cost: f64,
+    pub overlap: OverlapReport,
+    pub nuisance: Option<NuisanceReport>,
+}
+
+/// A subset of a pass's units with a binary treatment: their columns and
+/// their positions among the pass's units.
+pub struct BinaryUnits<'a> {
+    pub units: UnitColumns<'a>,
+    pub index: &'a [usize],
+}
+
+/// A pass's board, the registered models' orders, and the rank metrics and
+/// policy sums per column.
+type PassResult = (Scoreboard, Vec<Vec<u32>>, Vec<RankMetrics>, Vec<PolicySums>);
+
+/// Scores every model of `models` (after the two baselines) on a pass's
+/// units.
+pub fn score_pass(pass: Pass<'_>, models: &[ScoredColumn<'_>], settings: &Settings) -> PassResult {
+    let units = &pass.units;
+    let n = units.len();
+    let phi = units.phi;
+    let ate = aipw_ate(phi);
+    let mut columns = vec![Column::Uniform(0.0), Column::Uniform(ate.estimate)];
+    columns.extend(models.iter().map(|m| m.effects));
+    // The baselines, zero-effect and constant-effect, lead.
+    let mut sums = column_sums(units, &columns, 2);
+    if let Some(binary) = &pass.binary_units {
+        let picked: Vec<Vec<f64>> = columns[2..]
+            .iter()
+            .map(|c| {
+                let all = c.collect(n);
+                binary.index.iter().map(|&i| all[i]).collect()
+            })
+            .collect();
+        let mut binary_columns = columns[..2].to_vec();
+        binary_columns.extend(picked.iter().map(|v| Column::Slice(v)));
+        let binary_sums = column_sums(&binary.units, &binary_columns, 2);
+        for ((e, s), b) in estimators::ALL.iter().zip(sums.iter_mut()).zip(binary_sums) {
+            if e.needs_binary_treatment() {
+                *s = b;
+            }
+        }
+    }
+    type Whole = (Vec<Vec<u32>>, (Vec<RankMetrics>, Vec<PolicySums>));
+    let (mut orders, (rank, policy)): Whole = columns
+        .par_iter()
+        .enumerate()
+        .map(|(k, column)| {
+            let tau = column.collect(n);
+            let order = descending_order(&tau);
+            let rank = column_rank_metrics(phi, &tau, &order, k, settings);
+            let mut policy = PolicySums::default();
+            policy.add(phi, &tau, pass.cost);
+            (order, (rank, policy))
+        })
+        .unzip();
+    orders.drain(..2);
+    let mut names = vec![
+        (ZERO_EFFECT.to_string(), true),
+        (CONSTANT_EFFECT.to_string(), true),
+    ];
+    names.extend(models.iter().map(|m| (m.name.clone(), m.baseline)));
+    let mut board = assemble(
+        Parts {
+            models: names,
+            n_units: n,
+            ate,
+            n_treated: pass.n_treated,
+            sums,
+            policy: policy.iter().map(PolicySums::gain).collect(),
+            rank: &rank,
+            rank_units: n,
+            overlap: pass.overlap,
+            nuisance: pass.nuisance,
+        },
+        settings,
+    );
+    board.cost = pass.cost;
+    (board, orders, rank, policy)
 }
 
 /// Ranks, compares and summarizes the models from a pass's parts.

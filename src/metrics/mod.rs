@@ -4,7 +4,8 @@
 //!
 //! Series, all labelled by `dataset`:
 //! - `plumbline_model_score` / `plumbline_model_score_se` {model, estimator, window}
-//! - `plumbline_model_rank`, `plumbline_model_draw_share` {model, window}
+//! - `plumbline_model_rank`, `plumbline_model_draw_share`,
+//!   `plumbline_model_rmse_lower_bound` {model, window}
 //! - `plumbline_front_runner_info` {window, model} = 1 for the current front-runner
 //! - `plumbline_front_runner_changes_total` {window}
 //! - `plumbline_watched_units`: units the alerts' stream watch has taken
@@ -115,6 +116,7 @@ pub struct Metrics {
     pub model_score_se: Family<ScoreLabels, FloatGauge>,
     pub model_rank: Family<ModelLabels, FloatGauge>,
     pub model_draw_share: Family<ModelLabels, FloatGauge>,
+    pub model_rmse_lower_bound: Family<ModelLabels, FloatGauge>,
     pub front_runner_info: Family<ModelLabels, FloatGauge>,
     pub front_runner_changes: Family<WindowLabels, Counter>,
     pub front_runner_uncertain: Family<WindowLabels, FloatGauge>,
@@ -146,6 +148,7 @@ impl Metrics {
             model_score_se: Family::default(),
             model_rank: Family::default(),
             model_draw_share: Family::default(),
+            model_rmse_lower_bound: Family::default(),
             front_runner_info: Family::default(),
             front_runner_changes: Family::default(),
             front_runner_uncertain: Family::default(),
@@ -188,6 +191,11 @@ impl Metrics {
             "model_draw_share",
             "Share of correlated draws around the estimates in which the model has the lowest corrected PEHE (overstates the front-runner among ties)",
             m.model_draw_share.clone(),
+        );
+        registry.register(
+            "model_rmse_lower_bound",
+            "One-sided 95% lower confidence bound on the model's RMSE, valid whatever the nuisance models' quality up to the product-of-errors term (0 says nothing)",
+            m.model_rmse_lower_bound.clone(),
         );
         registry.register(
             "front_runner_info",

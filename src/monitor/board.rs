@@ -2,13 +2,18 @@
 //! publishes, stores with its snapshot and reads back after a restart.
 
 use crate::domain::{
-    Adjusted, AlertView, Board, BoardModel, Difference, Drift, IncompleteModel, NuisanceComponent,
-    OverlapSummary, Pair, Score, Window,
+    Adjusted, AlertView, BlendShare, Board, BoardBlend, BoardModel, Difference, Drift,
+    IncompleteModel, NuisanceComponent, OverlapSummary, Pair, Score, Window,
 };
+use crate::estimate::arms::ArmsScoreboard;
+use crate::estimate::blend::BlendReport;
+use crate::estimate::compare;
+use crate::estimate::level::LevelReport;
 use crate::estimate::scoreboard::{ModelScore, Scoreboard};
 use crate::estimate::stats::Estimate;
 
-fn model(m: &ModelScore) -> BoardModel {
+/// `levels` gives the model's error bound, looked up by name.
+fn model(m: &ModelScore, levels: Option<&LevelReport>) -> BoardModel {
     BoardModel {
         name: m.name.clone(),
         baseline: m.baseline,
@@ -38,6 +43,47 @@ fn model(m: &ModelScore) -> BoardModel {
         qini: m.qini,
         blp_slope: m.blp_slope,
         top_minus_bottom: m.calibration.top_minus_bottom,
+        rmse_lower_bound: levels.and_then(|l| {
+            l.models
+                .iter()
+                .find(|level| level.name == m.name)
+                .map(|level| level.rmse_lower_bound)
+        }),
+        registered_blend: false,
+    }
+}
+
+fn difference(d: &compare::Difference) -> Difference {
+    Difference {
+        estimate: d.estimate,
+        se: d.se,
+        ci_low: d.ci_low,
+        ci_high: d.ci_high,
+        p_value: d.p_value,
+        joint: None,
+    }
+}
+
+/// The board's view of a window's blend: the nonzero weights, largest
+/// first, and the held-out error.
+fn blend(b: &BlendReport) -> BoardBlend {
+    let mut weights: Vec<BlendShare> = b
+        .weights
+        .iter()
+        .filter(|w| w.weight > 0.0)
+        .map(|w| BlendShare {
+            model: w.model.clone(),
+            weight: w.weight,
+        })
+        .collect();
+    weights.sort_by(|a, b| b.weight.total_cmp(&a.weight));
+    BoardBlend {
+        weights,
+        corrected_pehe: b.corrected_pehe,
+        best_model: b.best_model.clone(),
+        vs_best: difference(&b.vs_best),
+        vs_constant: difference(&b.vs_constant),
+        models_offered: b.weights.len() as u32,
     }
 }
 
@@ -137,7 +183,11 @@ pub fn scoreboard(parts: BoardParts<'_>, b: &Scoreboard) -> Board {
         joint_critical_value: Some(b.joint_critical_value),
         best_set: b.best_set.clone(),
         no_detectable_heterogeneity: b.no_detectable_heterogeneity,
-        models: b.models.iter().map(model).collect(),
+        models: b
+            .models
+            .iter()
+            .map(|m| model(m, b.levels.as_ref()))
+            .collect(),
         incomplete: parts.incomplete,
         overlap: Some(overlap_summary(
             b,
@@ -166,6 +216,29 @@ pub fn scoreboard(parts: BoardParts<'_>, b: &Scoreboard) -> Board {
         detail_json: serde_json::to_string(b).unwrap_or_default(),
         rank_metrics_units: b.rank_metrics_units as u64,
         alerts: None,
+        plugin_error_projection: b.levels.as_ref().map(|l| l.plugin_error_projection),
+        blend: b.blend.as_ref().map(blend),
+        arm: String::new(),
+        reference_arm: String::new(),
+        contrasts: Vec::new(),
+        arm_policy: None,
+    }
+}
+
+/// Marks the rows of registered blends, whose scores are in-sample for
+/// their weights, and says so in the caveat.
+pub fn mark_registered_blends(b: &mut Board, blends: &std::collections::HashSet<String>) {
+    let mut any = false;
+    for m in &mut b.models {
+        if blends.contains(&m.name) {
+            m.registered_blend = true;
+            any = true;
+        }
+    }
+    if any {
+        b.caveat.push(' ');
+        b.caveat
+            .push_str(crate::domain::board::REGISTERED_BLEND_NOTE);
     }
 }
 
@@ -193,6 +266,12 @@ pub fn degenerate(parts: BoardParts<'_>, units: u64, state: String) -> Board {
         detail_json: String::new(),
         rank_metrics_units: 0,
         alerts: None,
+        plugin_error_projection: None,
+        blend: None,
+        arm: String::new(),
+        reference_arm: String::new(),
+        contrasts: Vec::new(),
+        arm_policy: None,
     }
 }
 
@@ -220,5 +299,64 @@ pub fn alert_view(watch: &crate::estimate::watch::Watch) -> AlertView {
                 standardized_difference,
             })
             .collect(),
+    }
+}
+
+/// The board of one window of a dataset with arms: a top board with the
+/// window, its units, the nuisance components (the multinomial propensity
+/// and one outcome model per arm) and the value of each model's arm
+/// choice; under it one board per contrast, each the binary board of that
+/// arm against the reference.
+pub fn arms_board(parts: BoardParts<'_>, b: &ArmsScoreboard) -> Board {
+    let contrasts = b
+        .contrasts
+        .iter()
+        .map(|c| {
+            let parts = BoardParts {
+                dataset: parts.dataset,
+                window: parts.window.clone(),
+                snapshot_id: parts.snapshot_id,
+                computed_at_ms: parts.computed_at_ms,
+                incomplete: parts.incomplete.clone(),
+                max_extreme_share: parts.max_extreme_share,
+                min_effective_share: parts.min_effective_share,
+            };
+            Board {
+                arm: c.arm.clone(),
+                reference_arm: c.reference.clone(),
+                ..scoreboard(parts, &c.board)
+            }
+        })
+        .collect();
+    let nuisance = b
+        .nuisance
+        .as_ref()
+        .map(|n| {
+            let mut v = vec![NuisanceComponent {
+                component: "propensity".into(),
+                learner: n.propensity.learner.clone(),
+                oof_loss: n.propensity.oof_loss,
+                loss: n.propensity.loss.into(),
+            }];
+            for (arm, c) in b.arms.iter().zip(&n.outcome) {
+                v.push(NuisanceComponent {
+                    component: format!("outcome_{arm}"),
+                    learner: c.learner.clone(),
+                    oof_loss: c.oof_loss,
+                    loss: c.loss.into(),
+                });
+            }
+            v
+        })
+        .unwrap_or_default();
+    let units = b.n_units as u64;
+    Board {
+        nuisance,
+        contrasts,
+        arm_policy: Some((&b.policy).into()),
+        reference_arm: b.reference.clone(),
+        detail_json: serde_json::to_string(b).unwrap_or_default(),
+        rank_metrics_units: units,
+        ..degenerate(parts, units, String::new())
     }
 }

@@ -89,6 +89,9 @@ impl Monitor {
                 };
                 m.model_rank.get_or_create(&ml).set(f64::from(model.rank));
                 m.model_draw_share.get_or_create(&ml).set(model.draw_share);
+                if let Some(bound) = model.rmse_lower_bound {
+                    m.model_rmse_lower_bound.get_or_create(&ml).set(bound);
+                }
                 for (estimator, e) in model.history_values() {
                     let sl = ScoreLabels {
                         dataset: dataset.into(),
@@ -239,6 +242,7 @@ impl Monitor {
             m.front_runner_info.remove(&ml);
             m.model_rank.remove(&ml);
             m.model_draw_share.remove(&ml);
+            m.model_rmse_lower_bound.remove(&ml);
             for estimator in crate::domain::board::history_keys() {
                 let sl = ScoreLabels {
                     dataset: dataset.into(),

@@ -36,6 +36,7 @@ mod follow;
 mod intake;
 mod leases;
 mod publish;
+mod publish_arms;
 mod reads;
 mod rebuild;
 pub mod recompute;
@@ -113,7 +114,10 @@ impl DatasetState {
     /// A dataset with nothing read yet.
     fn empty(stored: StoredDataset) -> Self {
         Self {
-            cache: DatasetCache::new(stored.spec.feature_names.len()),
+            cache: DatasetCache::with_arms(
+                stored.spec.feature_names.len(),
+                stored.spec.arms.clone(),
+            ),
             stored,
             nuisance: None,
             watch: Watch::default(),
@@ -124,7 +128,12 @@ impl DatasetState {
     /// What a recompute reads. The scoring memo moves into the input (the
     /// recompute installs its successor), so that the job owns it and can
     /// extend it in place; if the job fails the next recompute starts over.
-    fn recompute_input(&mut self, now: i64, max_fit_units: usize) -> RecomputeInput {
+    fn recompute_input(
+        &mut self,
+        now: i64,
+        max_fit_units: usize,
+        blend_models: usize,
+    ) -> RecomputeInput {
         let nuisance = self.nuisance.as_mut().map(|n| NuisanceState {
             memo: std::mem::take(&mut n.memo),
             ..n.clone()
@@ -140,9 +149,22 @@ impl DatasetState {
                 .filter(|m| m.active())
                 .map(|m| (m.model.name.clone(), m.effects.clone()))
                 .collect(),
+            arm_models: if self.stored.spec.has_arms() {
+                c.models
+                    .iter()
+                    .filter(|m| m.active())
+                    .map(|m| {
+                        let columns = m.arms().map(|(_, e, _)| e.clone()).collect();
+                        (m.model.name.clone(), columns)
+                    })
+                    .collect()
+            } else {
+                Vec::new()
+            },
             revision: c.revision,
             nuisance,
             max_fit_units: Some(max_fit_units),
+            blend_models,
             now_ms: now,
             ranks_fresh_below: recompute::RANKS_ALWAYS_FRESH_BELOW,
             watch: self.watch.clone(),
@@ -202,6 +224,8 @@ pub struct Monitor {
     /// (`limits.max_fit_units`), so that a refit's time and memory stop
     /// growing with the history.
     max_fit_units: usize,
+    /// The most models a window's blend takes (`limits.max_blend_models`).
+    blend_models: usize,
 }
 
 impl Monitor {
@@ -215,6 +239,7 @@ impl Monitor {
         shutdown: crate::shutdown::ShutdownSignal,
         replica: Replica,
         max_fit_units: usize,
+        blend_models: usize,
     ) -> MonitorResult<Arc<Self>> {
         let (events, _) = broadcast::channel(1024);
         let monitor = Arc::new(Self {
@@ -227,6 +252,7 @@ impl Monitor {
             shutdown,
             replica,
             max_fit_units,
+            blend_models,
         });
         // Renewals run from the start: rebuilding a large dataset can take
         // longer than its lease.

@@ -2,7 +2,7 @@
 //! pool, its nuisance fit and snapshot are stored, its boards installed,
 //! and the watch's events raised.
 
-use std::collections::BTreeMap;
+use std::collections::{BTreeMap, HashSet};
 use std::sync::Arc;
 use std::time::Instant;
 
@@ -117,7 +117,7 @@ impl Monitor {
     ) -> MonitorResult<RecomputeSummary> {
         let started = Instant::now();
         let now = now_ms();
-        let (input, outcomes_in_input) = {
+        let (input, outcomes_in_input, registered_blends) = {
             let mut st = h.state.lock().await;
             // Rows acknowledged by another server before this was asked
             // are in the recompute (a shared store's follow round may not
@@ -125,13 +125,27 @@ impl Monitor {
             self.fresh(&mut st).await?;
             st.pending_outcomes = 0;
             let outcomes = st.cache.outcomes();
-            (st.recompute_input(now, self.max_fit_units), outcomes)
+            let blends: HashSet<String> = st
+                .cache
+                .models
+                .iter()
+                .filter(|m| m.model.blend.is_some())
+                .map(|m| m.model.name.clone())
+                .collect();
+            (
+                st.recompute_input(now, self.max_fit_units, self.blend_models),
+                outcomes,
+                blends,
+            )
         };
         if outcomes_in_input == 0 {
             return Err(MonitorError::FailedPrecondition(format!(
                 "dataset {:?} has no outcomes yet",
                 h.name
             )));
+        }
+        if input.spec.has_arms() {
+            return self.publish_arms(h, fence, input, started, now).await;
         }
         let spec = input.spec.clone();
         let computed = tokio::task::spawn_blocking(move || {
@@ -191,6 +205,7 @@ impl Monitor {
                 Err(state) => board::degenerate(parts, w.units as u64, state.clone()),
             };
             b.alerts = Some(board::alert_view(&computed.watch));
+            board::mark_registered_blends(&mut b, &registered_blends);
             for m in &b.models {
                 for (estimator, e) in m.history_values() {
                     scores.push(ScoreRow {

@@ -2,6 +2,7 @@
 
 use super::{Monitor, MonitorError, MonitorResult};
 use crate::domain::Board;
+use crate::estimate::stats::Estimate;
 
 impl Monitor {
     pub async fn scoreboard(&self, dataset: &str, window: &str) -> MonitorResult<Board> {
@@ -16,6 +17,27 @@ impl Monitor {
             .get(window)
             .cloned()
             .ok_or_else(|| MonitorError::NotFound(format!("no scoreboard for window {window:?}")))
+    }
+
+    /// Corrected PEHE of `first` minus that of `second` in the cumulative
+    /// window whose board has `units` units, for any two ranked models (or
+    /// baselines), from the co-moments the last recompute kept; None when
+    /// they are not at hand (a recompute is running, or the kept window is
+    /// not that board's). Waits for the dataset's lock, which intake and a
+    /// recompute's set-up hold only briefly.
+    pub async fn cumulative_difference(
+        &self,
+        dataset: &str,
+        units: u64,
+        first: &str,
+        second: &str,
+    ) -> MonitorResult<Option<Estimate>> {
+        let h = self.handle(dataset)?;
+        let st = h.state.lock().await;
+        Ok(st
+            .nuisance
+            .as_ref()
+            .and_then(|n| n.memo.cumulative_difference(units, first, second)))
     }
 
     pub fn dataset_id(&self, dataset: &str) -> MonitorResult<i64> {

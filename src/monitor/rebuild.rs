@@ -45,7 +45,7 @@ impl Monitor {
                         stored.spec.name, fit.id
                     ))
                 })?;
-                let input = state.recompute_input(now_ms(), self.max_fit_units);
+                let input = state.recompute_input(now_ms(), self.max_fit_units, self.blend_models);
                 let limit = fit.last_outcome_seq;
                 let reproduced =
                     tokio::task::spawn_blocking(move || input.reproduce_fit(limit, cap))

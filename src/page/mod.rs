@@ -228,6 +228,8 @@ pub(crate) mod tests {
                     qini: Estimate::new(0.0, 0.0),
                     blp_slope: None,
                     top_minus_bottom: None,
+                    rmse_lower_bound: None,
+                    registered_blend: false,
                 }
             })
             .collect();
@@ -260,7 +262,13 @@ pub(crate) mod tests {
             caveat: String::new(),
             detail_json: String::new(),
             rank_metrics_units: 1200,
+            plugin_error_projection: None,
+            blend: None,
             alerts: None,
+            arm: String::new(),
+            reference_arm: String::new(),
+            contrasts: Vec::new(),
+            arm_policy: None,
         }
     }
 

@@ -52,8 +52,8 @@ use async_trait::async_trait;
 use tokio_stream::Stream;
 
 use crate::domain::{
-    Board, DatasetSpec, EventRecord, FitRecord, HistoryRow, OutcomeRecord, PredictionRecord,
-    ScoreRow, StoredDataset, StoredModel, UnitRecord,
+    BlendDefinition, Board, DatasetSpec, EventRecord, FitRecord, HistoryRow, OutcomeRecord,
+    PredictionRecord, ScoreRow, StoredDataset, StoredModel, UnitRecord,
 };
 
 pub mod postgres;
@@ -99,6 +99,12 @@ impl From<sqlx::migrate::MigrateError> for StoreError {
     fn from(e: sqlx::migrate::MigrateError) -> Self {
         StoreError::Backend(format!("migration failed: {e}"))
     }
+}
+
+/// A stored treatment or arm index as the record's small integer: the
+/// schema bounds it, so a value outside u8 is stored data gone wrong.
+pub(crate) fn arm_of(v: i64) -> StoreResult<u8> {
+    u8::try_from(v).map_err(|_| StoreError::Corrupt(format!("arm index {v} is out of range")))
 }
 
 /// A stream of stored rows, for rebuilding state at start without holding
@@ -330,6 +336,20 @@ pub trait DatasetLog: Send + Sync {
         version: &str,
         description: &str,
         now_ms: i64,
+    ) -> StoreResult<StoredModel>;
+    /// Registers a blend: a model whose predictions the service derives
+    /// from its members' (see [`BlendDefinition`]), stored with its
+    /// definition so that a restart derives them again. Refuses a name
+    /// already registered with [`StoreError::Conflict`], as
+    /// `register_model` does.
+    async fn register_blend_model(
+        &self,
+        dataset_id: i64,
+        name: &str,
+        version: &str,
+        description: &str,
+        now_ms: i64,
+        blend: &BlendDefinition,
     ) -> StoreResult<StoredModel>;
     /// Marks a model retired at `now_ms`; a retired model stays retired.
     async fn retire_model(&self, model_id: i64, now_ms: i64) -> StoreResult<()>;

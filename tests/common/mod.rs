@@ -9,6 +9,29 @@ use std::path::PathBuf;
 use ndarray::Array2;
 use serde_json::Value;
 
+/// One unit of the three-arm design tests/cli_arms.rs and
+/// tests/service_arms.rs share: x1, x2 ~ U(-1, 1); arm 0, 1 or 2 (none,
+/// text, mail) drawn with probabilities softmax(0, 0.5 x1, -0.5 x1);
+/// effects 1 + x1 (text) and 0.5 - x2 (mail);
+/// y = x1 + x2 + effect + U(-1, 1). Returns (x1, x2, arm, y, every arm's
+/// effect).
+pub fn three_arm_unit(rng: &mut impl rand::Rng) -> (f64, f64, usize, f64, [f64; 3]) {
+    let (x1, x2): (f64, f64) = (rng.gen_range(-1.0..1.0), rng.gen_range(-1.0..1.0));
+    let eta = [0.0, 0.5 * x1, -0.5 * x1];
+    let total: f64 = eta.iter().map(|v: &f64| v.exp()).sum();
+    let u: f64 = rng.gen::<f64>() * total;
+    let arm = if u < eta[0].exp() {
+        0
+    } else if u < eta[0].exp() + eta[1].exp() {
+        1
+    } else {
+        2
+    };
+    let tau = [0.0, 1.0 + x1, 0.5 - x2];
+    let y = x1 + x2 + tau[arm] + rng.gen_range(-1.0..1.0);
+    (x1, x2, arm, y, tau)
+}
+
 pub fn repo_path(rel: &str) -> PathBuf {
     PathBuf::from(env!("CARGO_MANIFEST_DIR")).join(rel)
 }

@@ -188,6 +188,7 @@ pub fn unit_row(key: &str, x: &[f64], w: f64, p: Option<f64>, cohort: &str) -> p
         propensity: p,
         cohort: cohort.into(),
         assigned_at_ms: 0,
+        arm: String::new(),
     }
 }
 
@@ -411,15 +412,39 @@ impl ServeBinary {
             .expect("connect to plumbline serve")
     }
 
-    /// Sends SIGTERM and waits for the exit.
-    pub fn terminate(self) -> std::process::Output {
+    /// Sends SIGTERM and waits for the exit; the output holds the piped
+    /// stderr when the server was started with `capture_logs`.
+    pub fn terminate(mut self) -> std::process::Output {
+        use std::io::Read;
         let pid = self.child.id().to_string();
         let killed = std::process::Command::new("kill")
             .args(["-TERM", &pid])
             .status()
             .expect("kill");
         assert!(killed.success());
-        self.child.wait_with_output().expect("wait")
+        let mut stderr = Vec::new();
+        if let Some(mut pipe) = self.child.stderr.take() {
+            pipe.read_to_end(&mut stderr)
+                .expect("read the server's stderr");
+        }
+        let status = self.child.wait().expect("wait");
+        std::process::Output {
+            status,
+            stdout: Vec::new(),
+            stderr,
+        }
+    }
+}
+
+/// A test that fails (panics) part-way must not leave its server running
+/// until the whole test binary exits: dropping the handle kills a child
+/// that is still alive and reaps it.
+impl Drop for ServeBinary {
+    fn drop(&mut self) {
+        if let Ok(None) = self.child.try_wait() {
+            let _ = self.child.kill();
+            let _ = self.child.wait();
+        }
     }
 }
 

@@ -36,7 +36,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field
-from typing import Any, Callable, Iterable, Iterator, List, Optional, Sequence
+from typing import Any, Callable, Dict, Iterable, Iterator, List, Optional, Sequence
 
 import grpc
 import pandas as pd
@@ -108,6 +108,7 @@ SCOREBOARD_COLUMNS = [
     "blp_slope",
     "top_minus_bottom",
     "top_minus_bottom_se",
+    "rmse_lower_bound",
 ]
 
 #: Columns of :meth:`Client.list_datasets`.
@@ -419,6 +420,36 @@ class Client:
             pb.RegisterModelRequest(dataset=dataset, name=name, version=version, description=description),
         )
 
+    def register_blend(
+        self,
+        dataset: str,
+        name: str,
+        version: str = "",
+        description: str = "",
+        window: str = "cumulative",
+        cohort: Optional[str] = None,
+    ) -> "pb.Model":
+        """Registers the blend of a window's latest scoreboard as a model.
+
+        The server computes its predictions: for each unit every member has
+        predicted, the weighted sum of the members' predictions, with the
+        weights frozen now (``Model.blend`` holds them and the snapshot they
+        came from). It is ranked from the next recompute, where its error is
+        in-sample for its weights (``registered_blend`` marks the row); the
+        scoreboard's blend line stays the honest figure.
+        """
+        return self._call(
+            "ModelRegistry.RegisterBlend",
+            self.models.RegisterBlend,
+            pb.RegisterBlendRequest(
+                dataset=dataset,
+                name=name,
+                version=version,
+                description=description,
+                window=_window(window, cohort),
+            ),
+        )
+
     def list_models(self, dataset: str, include_retired: bool = False) -> List["pb.Model"]:
         """Returns a dataset's models, by registration time."""
         return list(
@@ -682,12 +713,20 @@ class Client:
           whoever the model predicts an effect above the cost),
           ``treated_share``;
         * ``autoc``, ``autoc_se``, ``qini``, ``qini_se``, ``blp_slope`` (NaN
-          when the predictions do not vary).
+          when the predictions do not vary);
+        * ``rmse_lower_bound``: a one-sided 95% lower confidence bound on the
+          model's RMSE that holds whatever the nuisance models' quality (0
+          says nothing; NaN from a server that predates it).
 
         The scoreboard's own fields travel in ``df.attrs``: ``dataset``,
         ``window``, ``snapshot_id``, ``computed_at_ms``, ``units``, ``ate``
         and ``ate_se``, ``front_runner``, ``best_set``,
-        ``no_detectable_heterogeneity``, ``incomplete`` (model -> coverage),
+        ``no_detectable_heterogeneity``, ``plugin_error_projection`` (what
+        the RMSE bounds add to the corrected PEHE, ``estimate`` and ``se``),
+        ``blend`` (the cross-fitted blend of the leading models: its nonzero
+        ``weights``, ``corrected_pehe``, ``vs_best`` with its interval; None
+        with fewer than two ranked models),
+        ``incomplete`` (model -> coverage),
         ``overlap_degraded``, ``degenerate``, ``caveat``, ``json`` (the
         full document) and ``alerts`` (the alerts' view: their front-runner,
         ``front_runner_settled``, ``heterogeneity``, ``overlap_degraded``,
@@ -828,6 +867,25 @@ def _optional(message: Any, field: str) -> float:
     return getattr(message, field) if message.HasField(field) else float("nan")
 
 
+def _blend(b: "pb.Blend") -> Dict[str, Any]:
+    """A board's blend as plain values: ``weights`` (model -> nonzero weight,
+    largest first), ``corrected_pehe``, ``best_model``, ``vs_best`` and
+    ``vs_constant`` (each ``estimate``, ``se``, ``ci_low``, ``ci_high``,
+    ``p_value``) and ``models_offered``."""
+
+    def difference(d: "pb.Difference") -> Dict[str, float]:
+        return {"estimate": d.estimate, "se": d.se, "ci_low": d.ci_low, "ci_high": d.ci_high, "p_value": d.p_value}
+
+    return {
+        "weights": {w.model: w.weight for w in b.weights},
+        "corrected_pehe": b.corrected_pehe,
+        "best_model": b.best_model,
+        "vs_best": difference(b.vs_best),
+        "vs_constant": difference(b.vs_constant),
+        "models_offered": b.models_offered,
+    }
+
+
 def datasets_frame(datasets: Iterable["pb.Dataset"]) -> pd.DataFrame:
     """Turns ``Dataset`` messages into the DataFrame of :meth:`Client.list_datasets`."""
     kinds = {pb.OUTCOME_KIND_BINARY: "binary"}
@@ -906,6 +964,7 @@ def scoreboard_frame(board: "pb.Scoreboard") -> pd.DataFrame:
                 "blp_slope": m.blp_slope.estimate if m.HasField("blp_slope") else float("nan"),
                 "top_minus_bottom": m.top_minus_bottom.estimate if m.HasField("top_minus_bottom") else float("nan"),
                 "top_minus_bottom_se": m.top_minus_bottom.se if m.HasField("top_minus_bottom") else float("nan"),
+                "rmse_lower_bound": _optional(m, "rmse_lower_bound"),
             }
         )
     keys = [s.estimator for s in board.models[0].scores] if board.models else []
@@ -941,6 +1000,13 @@ def scoreboard_frame(board: "pb.Scoreboard") -> pd.DataFrame:
             if board.HasField("front_runner_vs_constant")
             else None,
             "joint_critical_value": _optional(board, "joint_critical_value"),
+            "plugin_error_projection": {
+                "estimate": board.plugin_error_projection.estimate,
+                "se": board.plugin_error_projection.se,
+            }
+            if board.HasField("plugin_error_projection")
+            else None,
+            "blend": _blend(board.blend) if board.HasField("blend") else None,
             "best_set": list(board.best_set),
             "no_detectable_heterogeneity": board.no_detectable_heterogeneity,
             "incomplete": {m.name: m.coverage for m in board.incomplete},

@@ -94,12 +94,19 @@ class Frames(unittest.TestCase):
             vs_constant=pb.Difference(estimate=-0.5, se=0.1, ci_low=-0.7, ci_high=-0.3,
                                       joint_low=-0.8, joint_high=-0.2),
             top_minus_bottom=pb.Estimate(estimate=1.5, se=0.3),
+            rmse_lower_bound=0.7,
         )
         old = pb.ModelScore(name="m0", rank=2,
                             vs_constant=pb.Difference(estimate=0.1, se=0.1, ci_low=-0.1, ci_high=0.3))
         board = pb.Scoreboard(
             dataset="a", models=[new, old], front_runner="m1", joint_critical_value=2.4,
             front_runner_vs_constant=pb.AdjustedInterval(estimate=-0.5, ci_low=-0.9, ci_high=-0.1),
+            plugin_error_projection=pb.Estimate(estimate=0.2, se=0.05),
+            blend=pb.Blend(
+                weights=[pb.BlendWeight(model="m1", weight=0.7), pb.BlendWeight(model="m0", weight=0.3)],
+                corrected_pehe=0.1, best_model="m1", models_offered=2,
+                vs_best=pb.Difference(estimate=-0.02, se=0.01, ci_low=-0.04, ci_high=0.0),
+            ),
         )
         df = pc.scoreboard_frame(board)
         self.assertEqual(list(df.columns), pc.SCOREBOARD_COLUMNS)
@@ -110,6 +117,13 @@ class Frames(unittest.TestCase):
         self.assertTrue(math.isnan(df.loc[1, "chance_lowest"]))
         self.assertTrue(math.isnan(df.loc[1, "vs_constant_joint_low"]))
         self.assertTrue(math.isnan(df.loc[1, "top_minus_bottom"]))
+        self.assertEqual(df.loc[0, "rmse_lower_bound"], 0.7)
+        self.assertTrue(math.isnan(df.loc[1, "rmse_lower_bound"]))
+        self.assertEqual(df.attrs["plugin_error_projection"], {"estimate": 0.2, "se": 0.05})
+        blend = df.attrs["blend"]
+        self.assertEqual(blend["weights"], {"m1": 0.7, "m0": 0.3})
+        self.assertEqual((blend["best_model"], blend["models_offered"]), ("m1", 2))
+        self.assertEqual((blend["vs_best"]["estimate"], blend["vs_best"]["ci_low"]), (-0.02, -0.04))
         self.assertEqual(df.attrs["front_runner"], "m1")
         self.assertEqual(df.attrs["front_runner_vs_constant"], {"estimate": -0.5, "ci_low": -0.9, "ci_high": -0.1})
         self.assertEqual(df.attrs["joint_critical_value"], 2.4)
@@ -127,7 +141,8 @@ class Defaults(unittest.TestCase):
         if binary:
             help_text = subprocess.run([binary, "history", "--help"], capture_output=True, text=True,
                                        check=True).stdout
-            cli = re.search(r"--estimator <ESTIMATOR>.*?\[default: (\w+)\]", help_text, re.S)
+            # clap wraps long help, so "[default:" and its value may sit on two lines.
+            cli = re.search(r"--estimator <ESTIMATOR>.*?\[default:\s+(\w+)\]", help_text, re.S)
             self.assertIsNotNone(cli, help_text)
             self.assertEqual(cli.group(1), default)
 

@@ -16,11 +16,13 @@
 //! the fit reports) and `fold_models.rs` (the kept fold models, which score
 //! units that arrive later).
 
+mod arms;
 mod choose;
 mod fitting;
 mod fold_models;
 mod folds;
 mod nuisance;
+mod recalibrate;
 mod report;
 mod screen;
 mod settings;
@@ -34,10 +36,21 @@ use super::learner::{default_library, Fitted, Learner, SharedFeatures, Task};
 use super::stats::auc;
 use rayon::prelude::*;
 
+pub use arms::{
+    assign_arm_folds, fit_arm_nuisance, ArmCandidateLoss, ArmNuisance, ArmNuisanceReport,
+    ArmPropensityReport,
+};
 pub use fold_models::FittedNuisance;
 pub use folds::{assign_fit, assign_folds, FitAssignment};
 pub use nuisance::Nuisance;
-pub use report::{CandidateLoss, ComponentReport, NuisanceReport, PropensityReport};
+pub use recalibrate::{
+    recalibrate_propensity, PropensityMap, Recalibration, RecalibrationChoice, RecalibrationReport,
+    StageLoss,
+};
+pub use report::{
+    binned_calibration, CandidateLoss, ComponentReport, NuisanceReport, PropensityReport,
+    CALIBRATION_BINS,
+};
 pub use settings::NuisanceSettings;
 
 use choose::choose;
@@ -72,12 +85,67 @@ pub fn fit_nuisance_models(
 /// fitted on sample units of the other folds only. Without a cap, or with
 /// one of at least the number of units, the fit is the uncapped one, bit
 /// for bit.
+///
+/// With more than one fold split (`settings.fold_repeats`),
+/// the cross-fit runs once per split, the splits' seeds stepping from
+/// `settings.seed`, and each unit's values are the mean over the splits of
+/// its out-of-fold values. The report's per-learner losses and the fold
+/// models kept for later units are the first split's, which is the
+/// single-split fit bit for bit.
 pub fn fit_nuisance_models_on(
     table: &UnitTable,
     features: FeatureRows<'_>,
     settings: &NuisanceSettings,
 ) -> Result<(Nuisance, NuisanceReport, FittedNuisance), EstimateError> {
     settings.check()?;
+    let repeats = settings.fold_repeats;
+    let (mut nuisance, mut report, fitted) =
+        fit_one_split(table, features, settings, settings.seed)?;
+    report.fold_repeats = repeats;
+    if repeats > 1 {
+        for split in 1..repeats {
+            let seed = settings
+                .seed
+                .wrapping_add((split as u64).wrapping_mul(SPLIT_SEED_STEP));
+            let (more, _, _) = fit_one_split(table, features, settings, seed)?;
+            for (sum, v) in [
+                (&mut nuisance.propensity, &more.propensity),
+                (&mut nuisance.mu0, &more.mu0),
+                (&mut nuisance.mu1, &more.mu1),
+            ] {
+                sum.iter_mut().zip(v).for_each(|(s, v)| *s += v);
+            }
+        }
+        let scale = 1.0 / repeats as f64;
+        for values in [
+            &mut nuisance.propensity,
+            &mut nuisance.mu0,
+            &mut nuisance.mu1,
+        ] {
+            values.iter_mut().for_each(|v| *v *= scale);
+        }
+    }
+    // On the values the scores weight with: clipped, and averaged over
+    // the splits when there are several.
+    let (error, noise) =
+        binned_calibration(&nuisance.propensity, table.treatment(), CALIBRATION_BINS);
+    report.propensity.calibration_error = error;
+    report.propensity.calibration_noise = noise;
+    Ok((nuisance, report, fitted))
+}
+
+/// The step between the seeds of successive fold splits: odd and far from
+/// small numbers, so that split seeds never meet the `seed + 1` and
+/// `seed + 2` the outcome components of a split derive from its seed.
+const SPLIT_SEED_STEP: u64 = 0x9e37_79b9_7f4a_7c15;
+
+/// One cross-fit on one fold split, drawn from `seed`.
+fn fit_one_split(
+    table: &UnitTable,
+    features: FeatureRows<'_>,
+    settings: &NuisanceSettings,
+    seed: u64,
+) -> Result<(Nuisance, NuisanceReport, FittedNuisance), EstimateError> {
     if features.len() != table.len() {
         return Err(EstimateError::invalid(format!(
             "{} feature rows for {} units",
@@ -99,7 +167,7 @@ pub fn fit_nuisance_models_on(
     let assignment = assign_fit(
         table.treatment(),
         k,
-        settings.seed,
+        seed,
         settings.max_fit_units,
         k * settings.min_units_per_fold,
     );
@@ -147,7 +215,7 @@ pub fn fit_nuisance_models_on(
             train_mask: &everyone,
             learners: &propensity_learners,
             task: Task::Classification,
-            seed: settings.seed,
+            seed,
         });
     }
     for (arm, mask) in [(0u64, &control), (1, &treated)] {
@@ -156,7 +224,7 @@ pub fn fit_nuisance_models_on(
             train_mask: mask,
             learners: &outcome_learners,
             task: outcome_task,
-            seed: settings.seed.wrapping_add(1 + arm),
+            seed: seed.wrapping_add(1 + arm),
         });
     }
     for learner in propensity_learners.iter().chain(&outcome_learners) {
@@ -202,6 +270,19 @@ pub fn fit_nuisance_models_on(
         }
         .into());
     }
+    // A logged propensity is the one the assignment used: never remapped.
+    let (raw_propensity, propensity_maps, recalibration) = if logged.is_none() {
+        let (p, maps, report) = recalibrate::last_stage(
+            settings.propensity_recalibration,
+            &raw_propensity,
+            table.treatment(),
+            &assignment.fold_of_unit,
+            k,
+        );
+        (p, maps, Some(report))
+    } else {
+        (raw_propensity, Vec::new(), None)
+    };
     let (mu0, mu0_models, outcome_control) =
         choose(&outcome_learners, next()?, y, &control, outcome_task);
     let mu0 = spread(mu0, &mu0_models);
@@ -213,6 +294,7 @@ pub fn fit_nuisance_models_on(
     let report = NuisanceReport {
         folds: k,
         seed: settings.seed,
+        fold_repeats: 1,
         // Only a cap that drew a sample is recorded: a fit on every unit is
         // the same fit under no cap and under any cap at or above the units,
         // so its report (and its reproduction) is too.
@@ -226,7 +308,11 @@ pub fn fit_nuisance_models_on(
                 "logged"
             },
             fit: propensity_fit,
+            recalibration,
             auc: propensity_auc,
+            // Filled in by the caller, on the values of every split.
+            calibration_error: f64::NAN,
+            calibration_noise: f64::NAN,
             clip: settings.clip,
             clipped,
         },
@@ -235,6 +321,7 @@ pub fn fit_nuisance_models_on(
     };
     let fitted = FittedNuisance {
         propensity: propensity_models,
+        propensity_maps,
         mu0: mu0_models,
         mu1: mu1_models,
         clip: settings.clip,

@@ -16,6 +16,10 @@ impl Estimator for IpwLoss {
         "IPW loss"
     }
 
+    fn needs_binary_treatment(&self) -> bool {
+        true
+    }
+
     #[inline]
     fn contribution(&self, u: &UnitView, tau_hat: f64) -> f64 {
         let p = u.propensity;

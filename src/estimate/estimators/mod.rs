@@ -62,6 +62,15 @@ pub trait Estimator: Sync + Send {
     fn label(&self) -> &'static str;
     /// Contribution of one unit for predicted effect `tau_hat`.
     fn contribution(&self, unit: &UnitView, tau_hat: f64) -> f64;
+    /// True when the contribution reads the treatment and propensity as a
+    /// binary assignment (R-loss, IPW loss). With several arms such an
+    /// estimator runs, per contrast, on the units of that contrast's two
+    /// arms only, with the conditional propensity e_k / (e_k + e_0); the
+    /// others read only the pseudo-outcome and the outcome models and run
+    /// on every unit.
+    fn needs_binary_treatment(&self) -> bool {
+        false
+    }
     /// Contributions of a block of units, `out[i]` for `units[i]` and
     /// `tau_hat[i]`. One dynamic call per block: the loop below is compiled
     /// for each estimator, with `contribution` inlined.

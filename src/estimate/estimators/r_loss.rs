@@ -15,6 +15,10 @@ impl Estimator for RLoss {
         "R-loss"
     }
 
+    fn needs_binary_treatment(&self) -> bool {
+        true
+    }
+
     #[inline]
     fn contribution(&self, u: &UnitView, tau_hat: f64) -> f64 {
         ((u.outcome - u.m_tilde()) - (u.treatment - u.propensity) * tau_hat).powi(2)

@@ -10,12 +10,17 @@
 mod boosted;
 mod constant;
 mod linear;
+mod multinomial;
 mod quadratic;
 mod shared;
 
 pub use boosted::Boosted;
 pub use constant::Constant;
 pub use linear::{logistic_fit, ridge_fit, Linear, LinearFit};
+pub use multinomial::{
+    default_arm_library, multinomial_fit, ArmFitted, ArmLearner, MultinomialFit,
+    MultinomialLogistic, SoftmaxBoosted,
+};
 pub use quadratic::Quadratic;
 pub use shared::SharedFeatures;
 

@@ -19,6 +19,11 @@ pub use keys::UnitKeys;
 use crate::domain::{OutcomeRecord, PredictionRecord, StoredModel, UnitRecord};
 
 /// One model's predictions, aligned with the units.
+///
+/// `effects` holds the effect of arm 1 against arm 0: on a binary dataset
+/// the treatment effect, the only column. A dataset with arms keeps arms
+/// 2, 3, ... in `further_arms`, so the binary path reads exactly the
+/// columns it always did.
 #[derive(Debug, Clone)]
 pub struct ModelColumn {
     pub model: StoredModel,
@@ -29,20 +34,85 @@ pub struct ModelColumn {
     /// ordering rules.
     pub predicted_at_ms: Stamps,
     pub count: u64,
+    /// `further_arms[j]`: the predictions for arm j + 2.
+    pub further_arms: Vec<ArmEffects>,
+    /// For a registered blend, its members' positions in the cache's
+    /// models and their weights; None for a model whose predictions are
+    /// sent (or a blend whose members the cache does not hold, which then
+    /// predicts nothing). A blend derives arm 1's predictions only: the
+    /// blends a board offers are of its binary models.
+    pub members: Option<Vec<(usize, f64)>>,
 }
 
-impl ModelColumn {
-    pub fn new(model: StoredModel, units: usize) -> Self {
+/// One model's predictions of one further arm's effect, as in
+/// [`ModelColumn`].
+#[derive(Debug, Clone)]
+pub struct ArmEffects {
+    pub effects: ChunkedColumn<f64>,
+    pub predicted_at_ms: Stamps,
+    pub count: u64,
+}
+
+impl ArmEffects {
+    fn new(units: usize) -> Self {
         Self {
-            model,
             effects: ChunkedColumn::filled(units, f64::NAN),
             predicted_at_ms: Stamps::zeros(units),
             count: 0,
         }
     }
+}
+
+impl ModelColumn {
+    /// `arms`: the dataset's declared arms (0 for a binary dataset).
+    pub fn new(model: StoredModel, units: usize, arms: usize) -> Self {
+        Self {
+            model,
+            effects: ChunkedColumn::filled(units, f64::NAN),
+            predicted_at_ms: Stamps::zeros(units),
+            count: 0,
+            further_arms: (2..arms).map(|_| ArmEffects::new(units)).collect(),
+            members: None,
+        }
+    }
 
     pub fn has(&self, unit: usize) -> bool {
         self.effects.get(unit).is_some_and(|v| !v.is_nan())
+    }
+
+    /// The effects and stamps of arm `arm` (1 the binary treatment), if the
+    /// dataset has it.
+    pub fn arm(&self, arm: usize) -> Option<(&ChunkedColumn<f64>, &Stamps)> {
+        match arm {
+            1 => Some((&self.effects, &self.predicted_at_ms)),
+            a if a >= 2 => self
+                .further_arms
+                .get(a - 2)
+                .map(|c| (&c.effects, &c.predicted_at_ms)),
+            _ => None,
+        }
+    }
+
+    /// Whether the model predicted arm `arm`'s effect for `unit`.
+    pub fn has_arm(&self, arm: usize, unit: usize) -> bool {
+        self.arm(arm)
+            .and_then(|(e, _)| e.get(unit))
+            .is_some_and(|v| !v.is_nan())
+    }
+
+    /// Every arm's (arm, effects, stamps), arm 1 first.
+    pub fn arms(&self) -> impl Iterator<Item = (usize, &ChunkedColumn<f64>, &Stamps)> {
+        std::iter::once((1, &self.effects, &self.predicted_at_ms)).chain(
+            self.further_arms
+                .iter()
+                .enumerate()
+                .map(|(j, c)| (j + 2, &c.effects, &c.predicted_at_ms)),
+        )
+    }
+
+    /// Predictions stored for this model, every arm together.
+    pub fn total(&self) -> u64 {
+        self.count + self.further_arms.iter().map(|c| c.count).sum::<u64>()
     }
 
     pub fn active(&self) -> bool {
@@ -70,6 +140,12 @@ pub struct DatasetCache {
     pub assigned_at_ms: Stamps,
     pub models: Vec<ModelColumn>,
     pub model_index: HashMap<String, usize>,
+    /// The dataset's declared arms, the reference first; empty for a
+    /// binary dataset. Intake maps arm labels to indices with it.
+    pub arms: Vec<String>,
+    /// Positions of the registered blends in `models`, whose predictions
+    /// the cache derives from their members' as these arrive.
+    derived: Vec<usize>,
     /// Bumped whenever a unit that already has an outcome gets a prediction
     /// (a historical backfill): scores kept from earlier recomputes no
     /// longer hold then.
@@ -87,8 +163,23 @@ impl DatasetCache {
             assigned_at_ms: Stamps::default(),
             models: Vec::new(),
             model_index: HashMap::new(),
+            arms: Vec::new(),
+            derived: Vec::new(),
             revision: 0,
         }
+    }
+
+    /// A cache for a dataset with these arms (empty: binary).
+    pub fn with_arms(features_per_unit: usize, arms: Vec<String>) -> Self {
+        Self {
+            arms,
+            ..Self::new(features_per_unit)
+        }
+    }
+
+    /// The index of the arm labelled `label`, on a dataset with arms.
+    pub fn arm_index(&self, label: &str) -> Option<usize> {
+        self.arms.iter().position(|a| a == label)
     }
 
     pub fn units(&self) -> usize {
@@ -104,8 +195,14 @@ impl DatasetCache {
         self.columns.outcomes()
     }
 
+    /// Predictions sent (and stored); a registered blend's derived ones are
+    /// not among them, as they are not stored.
     pub fn predictions(&self) -> u64 {
-        self.models.iter().map(|m| m.count).sum()
+        self.models
+            .iter()
+            .filter(|m| m.model.blend.is_none())
+            .map(ModelColumn::total)
+            .sum()
     }
 
     pub fn unit_features(&self, unit: usize) -> &[f64] {
@@ -147,6 +244,10 @@ impl DatasetCache {
         for m in &mut self.models {
             m.effects.extend_filled(units.len(), f64::NAN);
             m.predicted_at_ms.extend_zeros(units.len());
+            for c in &mut m.further_arms {
+                c.effects.extend_filled(units.len(), f64::NAN);
+                c.predicted_at_ms.extend_zeros(units.len());
+            }
         }
     }
 
@@ -174,6 +275,10 @@ impl DatasetCache {
         for m in &mut self.models {
             m.effects.truncate(mark.units);
             m.predicted_at_ms.truncate(mark.units);
+            for c in &mut m.further_arms {
+                c.effects.truncate(mark.units);
+                c.predicted_at_ms.truncate(mark.units);
+            }
         }
     }
 
@@ -183,27 +288,92 @@ impl DatasetCache {
             .add_outcome(o.unit_seq as usize, o.value, o.observed_at_ms);
     }
 
+    /// Adds a model; a registered blend gets at once every prediction its
+    /// members allow, and the rest as they arrive ([`Self::add_prediction`]).
     pub fn add_model(&mut self, model: StoredModel) {
-        self.model_index
-            .insert(model.name.clone(), self.models.len());
+        let m = self.models.len();
+        self.model_index.insert(model.name.clone(), m);
         let units = self.units();
-        self.models.push(ModelColumn::new(model, units));
+        let members = model.blend.as_ref().and_then(|b| {
+            b.members
+                .iter()
+                .map(|x| Some((self.model_by_id(x.model_id)?, x.weight)))
+                .collect::<Option<Vec<_>>>()
+        });
+        let derived = members.is_some();
+        self.models.push(ModelColumn {
+            members,
+            ..ModelColumn::new(model, units, self.arms.len())
+        });
+        if derived {
+            self.derived.push(m);
+            for u in 0..units {
+                self.derive(m, u);
+            }
+        }
+    }
+
+    /// Sets blend `d`'s prediction for unit `u` to the weighted sum of its
+    /// members' predictions, when every member has predicted the unit
+    /// (members' predictions are never replaced, so neither is this). The
+    /// sum runs in the definition's order, so it is the same number
+    /// whenever it is formed.
+    fn derive(&mut self, d: usize, u: usize) {
+        if self.models[d].has(u) {
+            return;
+        }
+        let Some(members) = &self.models[d].members else {
+            return;
+        };
+        let mut sum = 0.0;
+        for &(m, w) in members {
+            let e = self.models[m].effects.get(u).copied().unwrap_or(f64::NAN);
+            if e.is_nan() {
+                return;
+            }
+            sum += w * e;
+        }
+        let col = &mut self.models[d];
+        col.effects[u] = sum;
+        col.count += 1;
     }
 
     pub fn model_by_id(&self, id: i64) -> Option<usize> {
         self.models.iter().position(|m| m.model.id == id)
     }
 
+    /// Stores a checked prediction in its model's column of its arm (a
+    /// record for an arm the dataset lacks was refused by intake and never
+    /// stored; it is skipped here rather than trusted).
     pub fn add_prediction(&mut self, model: usize, p: &PredictionRecord) {
         let col = &mut self.models[model];
         let u = p.unit_seq as usize;
-        if col.effects[u].is_nan() {
-            col.count += 1;
+        let (effects, stamps, count) = match p.arm {
+            1 => (&mut col.effects, &mut col.predicted_at_ms, &mut col.count),
+            a => match col.further_arms.get_mut(usize::from(a).wrapping_sub(2)) {
+                Some(c) => (&mut c.effects, &mut c.predicted_at_ms, &mut c.count),
+                None => return,
+            },
+        };
+        if effects[u].is_nan() {
+            *count += 1;
         }
-        col.effects[u] = p.effect;
-        col.predicted_at_ms.set(u, p.predicted_at_ms);
+        effects[u] = p.effect;
+        stamps.set(u, p.predicted_at_ms);
         if self.columns.outcome_of(u).is_some() {
             self.revision += 1;
+        }
+        // Blends derive arm 1's predictions only.
+        let derived = if p.arm == 1 { self.derived.len() } else { 0 };
+        for i in 0..derived {
+            let d = self.derived[i];
+            let member = self.models[d]
+                .members
+                .as_ref()
+                .is_some_and(|ms| ms.iter().any(|&(k, _)| k == model));
+            if member {
+                self.derive(d, u);
+            }
         }
     }
 
@@ -244,7 +414,66 @@ mod tests {
             description: String::new(),
             registered_at_ms: 0,
             retired_at_ms: 0,
+            blend: None,
         }
+    }
+
+    fn prediction(model_id: i64, unit: usize, effect: f64) -> PredictionRecord {
+        PredictionRecord {
+            model_id,
+            unit_seq: unit as i64,
+            seq: 0,
+            effect,
+            predicted_at_ms: 0,
+            arm: 1,
+        }
+    }
+
+    /// A registered blend predicts exactly the units every member has
+    /// predicted, with the weighted sum, whether the members' predictions
+    /// came before its registration or after; it is not counted among the
+    /// predictions sent, which number the stored ones.
+    #[test]
+    fn a_blend_predicts_the_weighted_sum_where_every_member_has_predicted() {
+        use crate::domain::{BlendDefinition, BlendMember};
+        let mut cache = DatasetCache::new(2);
+        for id in 0..2 {
+            cache.add_model(model(id));
+        }
+        for u in 0..4 {
+            cache.add_unit(&unit(u, "spring"));
+        }
+        // Before: unit 0 by both, unit 1 by m0 only.
+        cache.add_prediction(0, &prediction(0, 0, 1.5));
+        cache.add_prediction(1, &prediction(1, 0, -2.0));
+        cache.add_prediction(0, &prediction(0, 1, 3.0));
+        let member = |id: i64, weight: f64| BlendMember {
+            model_id: id,
+            model: format!("m{id}"),
+            weight,
+        };
+        cache.add_model(StoredModel {
+            id: 9,
+            name: "b".into(),
+            blend: Some(BlendDefinition {
+                snapshot_id: 4,
+                window: crate::domain::Window::Cumulative,
+                members: vec![member(0, 0.75), member(1, 0.25)],
+            }),
+            ..model(9)
+        });
+        let b = cache.model_index["b"];
+        assert_eq!(cache.models[b].effects[0], 0.75 * 1.5 + 0.25 * -2.0);
+        assert!(!cache.models[b].has(1) && !cache.models[b].has(2));
+        assert_eq!(cache.models[b].count, 1);
+        // After: unit 1 completed, unit 2 half done.
+        cache.add_prediction(1, &prediction(1, 1, 0.5));
+        cache.add_prediction(1, &prediction(1, 2, 7.0));
+        assert_eq!(cache.models[b].effects[1], 0.75 * 3.0 + 0.25 * 0.5);
+        assert!(!cache.models[b].has(2) && !cache.models[b].has(3));
+        assert_eq!(cache.models[b].count, 2);
+        assert_eq!(cache.predictions(), 5);
+        assert_eq!(cache.next_prediction_seq(), 5);
     }
 
     #[test]

@@ -19,6 +19,10 @@ pub struct RecomputeInput {
     pub cohort_names: Vec<String>,
     /// Active models: name and effects (NaN = missing), in registration order.
     pub models: Vec<(String, ChunkedColumn<f64>)>,
+    /// On a dataset with arms, active models: name and effects per arm
+    /// other than the reference (`[c]` for arm c + 1); empty on a binary
+    /// dataset.
+    pub arm_models: Vec<(String, Vec<ChunkedColumn<f64>>)>,
     /// The cache's revision (see [`ScoringMemo`](super::ScoringMemo)).
     pub revision: u64,
     pub nuisance: Option<NuisanceState>,
@@ -26,6 +30,9 @@ pub struct RecomputeInput {
     /// (`limits.max_fit_units`); None fits every unit. A fit reproduced at
     /// start-up uses the cap it recorded instead.
     pub max_fit_units: Option<usize>,
+    /// The most models a window's blend takes, the first by rank
+    /// (`limits.max_blend_models`).
+    pub blend_models: usize,
     pub now_ms: i64,
     /// The cumulative window's rank metrics are refreshed on every
     /// recompute below this many units ([`RANKS_ALWAYS_FRESH_BELOW`](super::RANKS_ALWAYS_FRESH_BELOW)).

@@ -3,7 +3,11 @@
 use std::collections::HashMap;
 
 use super::WindowResult;
+use crate::estimate::blend::{BlendReport, FoldGrams};
 use crate::estimate::incremental::GrowingWindow;
+use crate::estimate::level::LevelReport;
+use crate::estimate::stats::Estimate;
+use crate::estimate::{CONSTANT_EFFECT, ZERO_EFFECT};
 use crate::monitor::cache::Columns;
 
 /// What a recompute keeps for the next one under the same nuisance fit.
@@ -22,6 +26,30 @@ pub struct ScoringMemo {
     /// Kept across refits and revisions: it depends only on the arrival
     /// order of outcomes, which only grows.
     pub(super) cohort_index: CohortIndex,
+}
+
+impl ScoringMemo {
+    /// Corrected PEHE of `first` minus that of `second` (ranked models or
+    /// baselines, by name) in the cumulative window, from the co-moments
+    /// this memo keeps; None when it keeps no cumulative window, when
+    /// either is not ranked there, or when its window is not of `units`
+    /// units (the board a caller holds is from another recompute).
+    pub fn cumulative_difference(&self, units: u64, first: &str, second: &str) -> Option<Estimate> {
+        let c = self.cumulative.as_ref()?;
+        if c.units.len() as u64 != units {
+            return None;
+        }
+        let column = |name: &str| match name {
+            ZERO_EFFECT => Some(0),
+            CONSTANT_EFFECT => Some(1),
+            _ => c
+                .ranked
+                .iter()
+                .position(|&k| self.models.get(k).is_some_and(|m| m == name))
+                .map(|j| j + 2),
+        };
+        Some(c.window.difference(column(first)?, column(second)?))
+    }
 }
 
 /// Each cohort's units with outcomes, in unit order, extended as outcomes
@@ -81,4 +109,22 @@ pub(super) struct CumulativeMemo {
     pub(super) units: Vec<u32>,
     /// The scoreboard's parts over `units` and the `ranked` models.
     pub(super) window: GrowingWindow,
+    /// The error bounds, as of the last rank refresh (they do not merge;
+    /// see `refresh_levels`).
+    pub(super) levels: LevelReport,
+    /// The blend's sums and report; None with fewer than two models.
+    pub(super) blend: Option<WindowBlend>,
+}
+
+/// A growing window's blend: per-fold sums of the blended models' products
+/// (merged as units arrive: no per-unit data), and the report as of the
+/// last rank refresh.
+#[derive(Clone)]
+pub(super) struct WindowBlend {
+    /// Positions in the window's ranked models of the blended ones.
+    pub(super) models: Vec<usize>,
+    pub(super) grams: FoldGrams,
+    /// None when every unit is in one fold (no weights can be fitted
+    /// without it).
+    pub(super) report: Option<BlendReport>,
 }

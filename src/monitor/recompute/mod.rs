@@ -19,6 +19,7 @@
 //! arrivals, `windows.rs` each window's board, `memo.rs` what is kept for
 //! the next recompute; this file runs them in order.
 
+mod arms;
 mod input;
 mod memo;
 mod nuisance;
@@ -35,11 +36,12 @@ use crate::estimate::scoreboard::{Scoreboard, Settings};
 use crate::estimate::watch::{Signal, Watch};
 use crate::estimate::EstimateError;
 
+pub use arms::ArmWindowResult;
 pub use input::RecomputeInput;
 pub use memo::ScoringMemo;
 use nuisance::Fixed;
 pub use nuisance::{recorded_max_fit_units, NuisanceState, RefitReason};
-pub use windows::RANKS_ALWAYS_FRESH_BELOW;
+pub use windows::{BLEND_MODELS, RANKS_ALWAYS_FRESH_BELOW};
 
 /// What a recompute was asked for beyond its schedule.
 #[derive(Debug, Clone, Copy, Default, PartialEq)]

@@ -9,7 +9,7 @@ use serde::Deserialize;
 
 use super::{settings, RecomputeInput, ScoringMemo};
 use crate::estimate::crossfit::{
-    fit_nuisance_models_on, FittedNuisance, NuisanceReport, NuisanceSettings,
+    assign_folds, fit_nuisance_models_on, FittedNuisance, NuisanceReport, NuisanceSettings,
 };
 use crate::estimate::EstimateError;
 use crate::monitor::cache::ChunkedColumn;
@@ -30,10 +30,33 @@ pub struct NuisanceState {
     /// unit has not been scored yet. Chunked like the cache's columns, so
     /// scoring new units copies only the chunks they fall in.
     pub values: ChunkedColumn<[f64; 3]>,
+    /// Per unit (by sequence): the cross-fit fold whose models gave the
+    /// unit its values, [`NO_FOLD`] for a unit scored after the fit. The
+    /// error bounds and the blend need each unit's fold (see
+    /// [`NuisanceState::fold_of`]); the fit's folds are those
+    /// `plumbline score` draws on the same units and seed.
+    pub folds: ChunkedColumn<u8>,
     /// Every unit among the first this many outcomes to arrive has values.
     pub scored_outcomes: usize,
     /// What the last recompute under this fit keeps for the next one.
     pub memo: Arc<ScoringMemo>,
+}
+
+/// The fold of a unit the fit did not see (see [`NuisanceState::folds`]).
+pub const NO_FOLD: u8 = u8::MAX;
+
+impl NuisanceState {
+    /// The fold unit `u` is held out in, in 0..`folds`: the fit's own for
+    /// the units it was fitted on; for a unit scored after the fit (its
+    /// values the average of every fold's models, which saw none of these
+    /// units), its sequence number modulo `folds`, a rule that never moves
+    /// a unit as others arrive, so a growing window keeps its folds.
+    pub fn fold_of(&self, u: usize, folds: usize) -> usize {
+        match self.folds.get(u) {
+            Some(&f) if f != NO_FOLD => f as usize,
+            _ => u % folds.max(1),
+        }
+    }
 }
 
 /// Nuisance values fixed for the units the watch took this recompute, by
@@ -143,6 +166,17 @@ impl RecomputeInput {
         for (i, &u) in scorable.iter().enumerate() {
             all[u] = [values.propensity[i], values.mu0[i], values.mu1[i]];
         }
+        // The fit's folds, drawn again as the fit drew them (the same
+        // seed, treatments and number of folds; a cap does not move them).
+        let k = nuisance_settings.folds;
+        let mut folds = ChunkedColumn::filled(self.columns.units(), NO_FOLD);
+        for (&u, f) in
+            scorable
+                .iter()
+                .zip(assign_folds(table.treatment(), k, nuisance_settings.seed))
+        {
+            folds[u] = f as u8;
+        }
         let last_outcome_seq = scorable.len() as i64 - 1;
         Ok((
             NuisanceState {
@@ -154,6 +188,7 @@ impl RecomputeInput {
                 fitted_at_ms: self.now_ms,
                 logged,
                 values: all,
+                folds,
                 scored_outcomes: scorable.len(),
                 memo: Arc::default(),
             },

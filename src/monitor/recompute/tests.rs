@@ -37,6 +37,7 @@ fn input(units: usize, nuisance: Option<NuisanceState>) -> RecomputeInput {
     }
     RecomputeInput {
         spec,
+        arm_models: Vec::new(),
         columns,
         cohort_names: (0..cohorts).map(|c| format!("c{c}")).collect(),
         models: models
@@ -51,6 +52,7 @@ fn input(units: usize, nuisance: Option<NuisanceState>) -> RecomputeInput {
         revision: 0,
         nuisance,
         max_fit_units: None,
+        blend_models: BLEND_MODELS,
         now_ms: 0,
         ranks_fresh_below: RANKS_ALWAYS_FRESH_BELOW,
         watch: Watch::default(),
@@ -95,11 +97,57 @@ fn merged_cumulative_equals_a_from_scratch_pass() {
     let scratch = input(5000, Some(cleared))
         .compute(RecomputeOptions::default())
         .expect("scratch");
-    assert_close(
-        &board(&second, "cumulative"),
-        &board(&scratch, "cumulative"),
-        "",
-    );
+    let (merged_board, scratch_board) =
+        (board(&second, "cumulative"), board(&scratch, "cumulative"));
+    // The error bounds are on both (zero-effect, constant-effect and the
+    // three models), and are compared with everything else below: the
+    // 2,000 units scored after the fit keep their folds as units arrive.
+    // So is the blend of the three models, its per-fold sums merged on the
+    // one side and summed afresh on the other.
+    for b in [&merged_board, &scratch_board] {
+        let levels = b["levels"]["models"].as_array().expect("levels");
+        assert_eq!(levels.len(), 5);
+        assert!(levels.iter().all(|l| l["rmse_lower_bound"].is_number()));
+        assert_eq!(b["blend"]["weights"].as_array().map(Vec::len), Some(3));
+        assert_eq!(b["blend"]["fold_units"].as_array().map(Vec::len), Some(5));
+    }
+    assert_close(&merged_board, &scratch_board, "");
+    // Any pair of the merged window answers from its co-moments, equal
+    // to the board's own pairs and differences from constant-effect (the
+    // same sums read the same way: 1e-12 relative).
+    let memo = &second.nuisance.memo;
+    let units = merged_board["n_units"].as_u64().expect("units");
+    let near = |a: f64, b: &serde_json::Value| {
+        let b = b.as_f64().expect("number");
+        assert!((a - b).abs() <= 1e-12 * b.abs().max(1.0), "{a} vs {b}");
+    };
+    let pairs = merged_board["pairwise"].as_array().expect("pairs");
+    assert!(!pairs.is_empty());
+    for p in pairs {
+        let (first, second) = (
+            p["first"].as_str().expect("name"),
+            p["second"].as_str().expect("name"),
+        );
+        let d = memo
+            .cumulative_difference(units, first, second)
+            .expect("a ranked pair");
+        near(d.estimate, &p["estimate"]);
+        near(d.se, &p["se"]);
+    }
+    for m in merged_board["models"].as_array().expect("models") {
+        let d = memo
+            .cumulative_difference(units, m["name"].as_str().expect("name"), "constant-effect")
+            .expect("a ranked model");
+        near(d.estimate, &m["vs_constant"]["estimate"]);
+        near(d.se, &m["vs_constant"]["se"]);
+    }
+    // Not for a board of another size, nor a model it does not rank.
+    assert!(memo
+        .cumulative_difference(units - 1, "sharp", "noisy")
+        .is_none());
+    assert!(memo
+        .cumulative_difference(units, "sharp", "absent")
+        .is_none());
     for c in 0..5 {
         let key = format!("cohort:c{c}");
         assert_close(&board(&second, &key), &board(&scratch, &key), &key);
@@ -109,10 +157,12 @@ fn merged_cumulative_equals_a_from_scratch_pass() {
 }
 
 /// The board without the rank and calibration metrics (and the count of
-/// units they cover).
+/// units they cover) and the error bounds, which are refreshed with them.
 fn without_rank_metrics(mut v: serde_json::Value) -> serde_json::Value {
     if let Some(o) = v.as_object_mut() {
         o.remove("rank_metrics_units");
+        o.remove("levels");
+        o.remove("blend");
     }
     for m in v["models"].as_array_mut().into_iter().flatten() {
         if let Some(o) = m.as_object_mut() {
@@ -178,6 +228,10 @@ fn cumulative_rank_metrics_wait_for_the_set_growth_and_the_rest_is_exact() {
         rank_metrics_of(&board(&first, "cumulative"))
     );
     assert_ne!(rank_metrics_of(&carried), rank_metrics_of(&fresh));
+    // The error bounds are carried with them, from the same 4,000 units.
+    assert_eq!(carried["levels"], board(&first, "cumulative")["levels"]);
+    assert_ne!(carried["levels"], fresh["levels"]);
+    assert_eq!(carried["blend"], board(&first, "cumulative")["blend"]);
     // Everything else is the from-scratch figure.
     assert_close(
         &without_rank_metrics(carried),
@@ -274,4 +328,33 @@ fn a_capped_fit_is_reproduced_from_its_record_whatever_the_setting_now() {
         nuisance_values(&uncapped, units)
     );
     assert!(recorded_max_fit_units("not json").is_err());
+}
+
+/// With `limits.max_blend_models` below the number of ranked models, the
+/// blend takes the first by rank, in registration order.
+#[test]
+fn the_blend_takes_the_leading_models_up_to_the_limit() {
+    let mut capped = input(3000, None);
+    capped.blend_models = 2;
+    let computed = capped
+        .compute(RecomputeOptions::default())
+        .expect("first fit");
+    let b = board(&computed, "cumulative");
+    let mut leading: Vec<&str> = b["models"]
+        .as_array()
+        .expect("models")
+        .iter()
+        .filter(|m| m["baseline"] == false)
+        .take(2)
+        .map(|m| m["name"].as_str().expect("name"))
+        .collect();
+    let mut blended: Vec<&str> = b["blend"]["weights"]
+        .as_array()
+        .expect("blend")
+        .iter()
+        .map(|w| w["model"].as_str().expect("model"))
+        .collect();
+    leading.sort_unstable();
+    blended.sort_unstable();
+    assert_eq!(blended, leading);
 }

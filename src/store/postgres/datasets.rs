@@ -6,11 +6,12 @@ use tokio_stream::StreamExt;
 
 use super::{PgStore, INSERT_CHUNK};
 use crate::domain::{
-    DatasetSpec, OutcomeRecord, PredictionRecord, StoredDataset, StoredModel, UnitRecord,
+    BlendDefinition, DatasetSpec, OutcomeRecord, PredictionRecord, StoredDataset, StoredModel,
+    UnitRecord,
 };
 use crate::store::sqlite::{pack_features, unpack_features};
 use crate::store::Numbered;
-use crate::store::{DatasetLog, RowStream, StoreError, StoreResult, Tip};
+use crate::store::{arm_of, DatasetLog, RowStream, StoreError, StoreResult, Tip};
 
 const NEXT_UNIT: &str = "SELECT COALESCE(MAX(seq) + 1, 0) FROM units WHERE dataset_id = $1";
 const NEXT_OUTCOME: &str = "SELECT COALESCE(MAX(seq) + 1, 0) FROM outcomes WHERE dataset_id = $1";
@@ -99,26 +100,21 @@ impl DatasetLog for PgStore {
         description: &str,
         now_ms: i64,
     ) -> StoreResult<StoredModel> {
-        let id: i64 = sqlx::query_scalar(
-            "INSERT INTO models (dataset_id, name, version, description, registered_at_ms) \
-             VALUES ($1, $2, $3, $4, $5) RETURNING id",
-        )
-        .bind(dataset_id)
-        .bind(name)
-        .bind(version)
-        .bind(description)
-        .bind(now_ms)
-        .fetch_one(&self.pool)
-        .await?;
-        Ok(StoredModel {
-            id,
-            dataset_id,
-            name: name.into(),
-            version: version.into(),
-            description: description.into(),
-            registered_at_ms: now_ms,
-            retired_at_ms: 0,
-        })
+        self.insert_model(dataset_id, name, version, description, now_ms, None)
+            .await
+    }
+
+    async fn register_blend_model(
+        &self,
+        dataset_id: i64,
+        name: &str,
+        version: &str,
+        description: &str,
+        now_ms: i64,
+        blend: &BlendDefinition,
+    ) -> StoreResult<StoredModel> {
+        self.insert_model(dataset_id, name, version, description, now_ms, Some(blend))
+            .await
     }
 
     async fn retire_model(&self, model_id: i64, now_ms: i64) -> StoreResult<()> {
@@ -132,24 +128,26 @@ impl DatasetLog for PgStore {
 
     async fn models(&self, dataset_id: i64) -> StoreResult<Vec<StoredModel>> {
         let rows = sqlx::query(
-            "SELECT id, name, version, description, registered_at_ms, retired_at_ms \
+            "SELECT id, name, version, description, registered_at_ms, retired_at_ms, blend_json \
              FROM models WHERE dataset_id = $1 ORDER BY id",
         )
         .bind(dataset_id)
         .fetch_all(&self.pool)
         .await?;
-        Ok(rows
-            .into_iter()
-            .map(|r| StoredModel {
-                id: r.get(0),
-                dataset_id,
-                name: r.get(1),
-                version: r.get(2),
-                description: r.get(3),
-                registered_at_ms: r.get(4),
-                retired_at_ms: r.get(5),
+        rows.into_iter()
+            .map(|r| {
+                Ok(StoredModel {
+                    id: r.get(0),
+                    dataset_id,
+                    name: r.get(1),
+                    version: r.get(2),
+                    description: r.get(3),
+                    registered_at_ms: r.get(4),
+                    retired_at_ms: r.get(5),
+                    blend: blend_of(r.get(6))?,
+                })
             })
-            .collect())
+            .collect()
     }
 
     async fn insert_units(
@@ -240,13 +238,14 @@ impl DatasetLog for PgStore {
             let seq: Vec<i64> = chunk.iter().map(|p| p.seq + shift).collect();
             let effect: Vec<f64> = chunk.iter().map(|p| p.effect).collect();
             let predicted: Vec<i64> = chunk.iter().map(|p| p.predicted_at_ms).collect();
+            let arm: Vec<i16> = chunk.iter().map(|p| i16::from(p.arm)).collect();
             sqlx::query(
                 "INSERT INTO predictions (dataset_id, model_id, unit_seq, seq, effect, \
-                 predicted_at_ms, received_at_ms) \
-                 SELECT $1, p.model_id, p.unit_seq, p.seq, p.effect, p.predicted_at_ms, $2 \
+                 predicted_at_ms, received_at_ms, arm) \
+                 SELECT $1, p.model_id, p.unit_seq, p.seq, p.effect, p.predicted_at_ms, $2, p.arm \
                  FROM UNNEST($3::BIGINT[], $4::BIGINT[], $5::BIGINT[], \
-                             $6::DOUBLE PRECISION[], $7::BIGINT[]) \
-                      AS p (model_id, unit_seq, seq, effect, predicted_at_ms)",
+                             $6::DOUBLE PRECISION[], $7::BIGINT[], $8::SMALLINT[]) \
+                      AS p (model_id, unit_seq, seq, effect, predicted_at_ms, arm)",
             )
             .bind(dataset_id)
             .bind(now_ms)
@@ -255,6 +254,7 @@ impl DatasetLog for PgStore {
             .bind(seq)
             .bind(effect)
             .bind(predicted)
+            .bind(arm)
             .execute(&mut *tx)
             .await?;
         }
@@ -277,7 +277,7 @@ impl DatasetLog for PgStore {
                     seq: r.get(0),
                     key: r.get(1),
                     features: unpack_features(r.get::<&[u8], _>(2))?,
-                    treatment: r.get::<i16, _>(3) as u8,
+                    treatment: arm_of(i64::from(r.get::<i16, _>(3)))?,
                     propensity: r.get(4),
                     cohort: r.get(5),
                     assigned_at_ms: r.get(6),
@@ -310,7 +310,7 @@ impl DatasetLog for PgStore {
     fn predictions(&self, dataset_id: i64, from: i64) -> RowStream<'_, PredictionRecord> {
         Box::pin(
             sqlx::query(
-                "SELECT model_id, unit_seq, seq, effect, predicted_at_ms FROM predictions \
+                "SELECT model_id, unit_seq, seq, effect, predicted_at_ms, arm FROM predictions \
                  WHERE dataset_id = $1 AND seq >= $2 ORDER BY seq",
             )
             .bind(dataset_id)
@@ -324,6 +324,7 @@ impl DatasetLog for PgStore {
                     seq: r.get(2),
                     effect: r.get(3),
                     predicted_at_ms: r.get(4),
+                    arm: arm_of(i64::from(r.get::<i16, _>(5)))?,
                 })
             }),
         )
@@ -371,4 +372,53 @@ impl DatasetLog for PgStore {
             retired: row.get(4),
         })
     }
+}
+
+impl PgStore {
+    /// One model row, with its blend definition as JSON when it is a blend.
+    async fn insert_model(
+        &self,
+        dataset_id: i64,
+        name: &str,
+        version: &str,
+        description: &str,
+        now_ms: i64,
+        blend: Option<&BlendDefinition>,
+    ) -> StoreResult<StoredModel> {
+        let blend_json = blend
+            .map(serde_json::to_string)
+            .transpose()
+            .map_err(|e| StoreError::Corrupt(format!("blend definition: {e}")))?;
+        let id: i64 = sqlx::query_scalar(
+            "INSERT INTO models (dataset_id, name, version, description, registered_at_ms, \
+             blend_json) VALUES ($1, $2, $3, $4, $5, $6) RETURNING id",
+        )
+        .bind(dataset_id)
+        .bind(name)
+        .bind(version)
+        .bind(description)
+        .bind(now_ms)
+        .bind(blend_json)
+        .fetch_one(&self.pool)
+        .await?;
+        Ok(StoredModel {
+            id,
+            dataset_id,
+            name: name.into(),
+            version: version.into(),
+            description: description.into(),
+            registered_at_ms: now_ms,
+            retired_at_ms: 0,
+            blend: blend.cloned(),
+        })
+    }
+}
+
+/// A stored blend definition (NULL for a model whose predictions are sent).
+fn blend_of(json: Option<String>) -> StoreResult<Option<BlendDefinition>> {
+    json.map(|j| {
+        serde_json::from_str(&j)
+            .map_err(|e| StoreError::Corrupt(format!("model blend definition: {e}")))
+    })
+    .transpose()
 }

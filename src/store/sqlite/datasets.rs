@@ -6,9 +6,10 @@ use tokio_stream::StreamExt;
 
 use super::{pack_features, unpack_features, SqliteStore, INSERT_CHUNK};
 use crate::domain::{
-    DatasetSpec, OutcomeRecord, PredictionRecord, StoredDataset, StoredModel, UnitRecord,
+    BlendDefinition, DatasetSpec, OutcomeRecord, PredictionRecord, StoredDataset, StoredModel,
+    UnitRecord,
 };
-use crate::store::{DatasetLog, RowStream, StoreError, StoreResult, Tip};
+use crate::store::{arm_of, DatasetLog, RowStream, StoreError, StoreResult, Tip};
 
 #[async_trait]
 impl DatasetLog for SqliteStore {
@@ -54,26 +55,21 @@ impl DatasetLog for SqliteStore {
         description: &str,
         now_ms: i64,
     ) -> StoreResult<StoredModel> {
-        let id: i64 = sqlx::query_scalar(
-            "INSERT INTO models (dataset_id, name, version, description, registered_at_ms) \
-             VALUES (?, ?, ?, ?, ?) RETURNING id",
-        )
-        .bind(dataset_id)
-        .bind(name)
-        .bind(version)
-        .bind(description)
-        .bind(now_ms)
-        .fetch_one(&self.pool)
-        .await?;
-        Ok(StoredModel {
-            id,
-            dataset_id,
-            name: name.into(),
-            version: version.into(),
-            description: description.into(),
-            registered_at_ms: now_ms,
-            retired_at_ms: 0,
-        })
+        self.insert_model(dataset_id, name, version, description, now_ms, None)
+            .await
+    }
+
+    async fn register_blend_model(
+        &self,
+        dataset_id: i64,
+        name: &str,
+        version: &str,
+        description: &str,
+        now_ms: i64,
+        blend: &BlendDefinition,
+    ) -> StoreResult<StoredModel> {
+        self.insert_model(dataset_id, name, version, description, now_ms, Some(blend))
+            .await
     }
 
     async fn retire_model(&self, model_id: i64, now_ms: i64) -> StoreResult<()> {
@@ -87,24 +83,26 @@ impl DatasetLog for SqliteStore {
 
     async fn models(&self, dataset_id: i64) -> StoreResult<Vec<StoredModel>> {
         let rows = sqlx::query(
-            "SELECT id, name, version, description, registered_at_ms, retired_at_ms \
+            "SELECT id, name, version, description, registered_at_ms, retired_at_ms, blend_json \
              FROM models WHERE dataset_id = ? ORDER BY id",
         )
         .bind(dataset_id)
         .fetch_all(&self.pool)
         .await?;
-        Ok(rows
-            .into_iter()
-            .map(|r| StoredModel {
-                id: r.get(0),
-                dataset_id,
-                name: r.get(1),
-                version: r.get(2),
-                description: r.get(3),
-                registered_at_ms: r.get(4),
-                retired_at_ms: r.get(5),
+        rows.into_iter()
+            .map(|r| {
+                Ok(StoredModel {
+                    id: r.get(0),
+                    dataset_id,
+                    name: r.get(1),
+                    version: r.get(2),
+                    description: r.get(3),
+                    registered_at_ms: r.get(4),
+                    retired_at_ms: r.get(5),
+                    blend: blend_of(r.get(6))?,
+                })
             })
-            .collect())
+            .collect()
     }
 
     /// Writes a batch of new units in one transaction.
@@ -175,7 +173,7 @@ impl DatasetLog for SqliteStore {
         let mut tx = self.pool.begin().await?;
         for chunk in rows.chunks(INSERT_CHUNK) {
             let mut q: QueryBuilder<Sqlite> = QueryBuilder::new(
-                "INSERT INTO predictions (dataset_id, model_id, unit_seq, seq, effect, \
+                "INSERT INTO predictions (dataset_id, model_id, unit_seq, seq, arm, effect, \
                  predicted_at_ms, received_at_ms) ",
             );
             q.push_values(chunk, |mut b, p| {
@@ -183,6 +181,7 @@ impl DatasetLog for SqliteStore {
                     .push_bind(p.model_id)
                     .push_bind(p.unit_seq)
                     .push_bind(p.seq)
+                    .push_bind(i64::from(p.arm))
                     .push_bind(p.effect)
                     .push_bind(p.predicted_at_ms)
                     .push_bind(now_ms);
@@ -210,7 +209,7 @@ impl DatasetLog for SqliteStore {
                     seq: r.get(0),
                     key: r.get(1),
                     features: unpack_features(r.get::<&[u8], _>(2))?,
-                    treatment: r.get::<i64, _>(3) as u8,
+                    treatment: arm_of(r.get(3))?,
                     propensity: r.get(4),
                     cohort: r.get(5),
                     assigned_at_ms: r.get(6),
@@ -245,10 +244,10 @@ impl DatasetLog for SqliteStore {
     /// every prediction batch, and a sort would slow every start).
     fn predictions(&self, dataset_id: i64, from: i64) -> RowStream<'_, PredictionRecord> {
         let sql = if from == 0 {
-            "SELECT model_id, unit_seq, seq, effect, predicted_at_ms FROM predictions \
+            "SELECT model_id, unit_seq, seq, effect, predicted_at_ms, arm FROM predictions \
              WHERE dataset_id = ? AND seq >= ?"
         } else {
-            "SELECT model_id, unit_seq, seq, effect, predicted_at_ms FROM predictions \
+            "SELECT model_id, unit_seq, seq, effect, predicted_at_ms, arm FROM predictions \
              WHERE dataset_id = ? AND seq >= ? ORDER BY seq"
         };
         Box::pin(
@@ -264,6 +263,7 @@ impl DatasetLog for SqliteStore {
                         seq: r.get(2),
                         effect: r.get(3),
                         predicted_at_ms: r.get(4),
+                        arm: arm_of(r.get(5))?,
                     })
                 }),
         )
@@ -317,4 +317,53 @@ impl DatasetLog for SqliteStore {
             retired: row.get(1),
         })
     }
+}
+
+impl SqliteStore {
+    /// One model row, with its blend definition as JSON when it is a blend.
+    async fn insert_model(
+        &self,
+        dataset_id: i64,
+        name: &str,
+        version: &str,
+        description: &str,
+        now_ms: i64,
+        blend: Option<&BlendDefinition>,
+    ) -> StoreResult<StoredModel> {
+        let blend_json = blend
+            .map(serde_json::to_string)
+            .transpose()
+            .map_err(|e| StoreError::Corrupt(format!("blend definition: {e}")))?;
+        let id: i64 = sqlx::query_scalar(
+            "INSERT INTO models (dataset_id, name, version, description, registered_at_ms, \
+             blend_json) VALUES (?, ?, ?, ?, ?, ?) RETURNING id",
+        )
+        .bind(dataset_id)
+        .bind(name)
+        .bind(version)
+        .bind(description)
+        .bind(now_ms)
+        .bind(blend_json)
+        .fetch_one(&self.pool)
+        .await?;
+        Ok(StoredModel {
+            id,
+            dataset_id,
+            name: name.into(),
+            version: version.into(),
+            description: description.into(),
+            registered_at_ms: now_ms,
+            retired_at_ms: 0,
+            blend: blend.cloned(),
+        })
+    }
+}
+
+/// A stored blend definition (NULL for a model whose predictions are sent).
+fn blend_of(json: Option<String>) -> StoreResult<Option<BlendDefinition>> {
+    json.map(|j| {
+        serde_json::from_str(&j)
+            .map_err(|e| StoreError::Corrupt(format!("model blend definition: {e}")))
+    })
+    .transpose()
 }

@@ -16,12 +16,17 @@
 //! The work is split by job: `boost.rs` runs the rounds and stops them
 //! early, `grow.rs` grows one tree from histograms, `tree.rs` holds a grown
 //! tree and the walks that take a row to its leaf, and `model.rs` is the
-//! fitted model that predicts with the trees.
+//! fitted model that predicts with the trees. `softmax.rs` runs the same
+//! rounds on the multinomial loss, one tree per arm and round, for the
+//! generalized propensity of several arms.
 
 mod boost;
 mod grow;
 mod model;
+mod softmax;
 mod tree;
+
+pub(crate) use softmax::SoftmaxFit;
 
 #[cfg(test)]
 mod tests;

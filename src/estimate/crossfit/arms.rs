@@ -1,0 +1,280 @@
+//! The cross-fit of a dataset with several arms: the generalized
+//! propensity P(W = k | x) and one outcome model per arm, E[Y | x, W = k].
+//!
+//! The outcome models run through the same queue and the same choice by
+//! out-of-fold loss as the binary components (one component per arm, fitted
+//! on that arm's units and predicted for every held-out unit); the
+//! generalized propensity chooses among the [`ArmLearner`]s by out-of-fold
+//! log-loss, -log P(W_i | x_i). Folds are stratified by arm, as in the
+//! binary fit.
+
+use rand::seq::SliceRandom;
+use rand::SeedableRng;
+use rand_chacha::ChaCha8Rng;
+use rayon::prelude::*;
+use serde::Serialize;
+
+use super::choose::choose;
+use super::fitting::{out_of_fold, Component};
+use super::folds::Folds;
+use super::report::ComponentReport;
+use super::settings::NuisanceSettings;
+use crate::estimate::data::{FeatureRows, OutcomeKind};
+use crate::estimate::error::{Degenerate, EstimateError};
+use crate::estimate::learner::{
+    default_arm_library, default_library, ArmFitted, ArmLearner, SharedFeatures, Task,
+};
+
+/// Probabilities are kept this far from 0 when scoring log-loss.
+const LOG_LOSS_EPS: f64 = 1e-15;
+
+/// Cross-fitted nuisance values of a dataset with `K` arms, one per unit.
+#[derive(Debug, Clone)]
+pub struct ArmNuisance {
+    /// `propensity[k][i]` = P(W = k | x_i), out of fold, before clipping.
+    pub propensity: Vec<Vec<f64>>,
+    /// `outcome[k][i]` = E[Y | x_i, W = k], out of fold.
+    pub outcome: Vec<Vec<f64>>,
+}
+
+/// One generalized-propensity learner's out-of-fold log-loss.
+#[derive(Debug, Clone, Serialize)]
+pub struct ArmCandidateLoss {
+    pub learner: String,
+    pub oof_loss: f64,
+    /// Why the learner could not be used, when one of its fold fits failed.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub failed: Option<String>,
+}
+
+/// What the generalized propensity's fit reports.
+#[derive(Debug, Clone, Serialize)]
+pub struct ArmPropensityReport {
+    pub learner: String,
+    pub loss: &'static str,
+    pub oof_loss: f64,
+    pub candidates: Vec<ArmCandidateLoss>,
+}
+
+/// What an arms cross-fit reports: the learners chosen and their losses.
+#[derive(Debug, Clone, Serialize)]
+pub struct ArmNuisanceReport {
+    pub folds: usize,
+    pub seed: u64,
+    pub propensity: ArmPropensityReport,
+    /// One per arm, in the arms' order (the reference first).
+    pub outcome: Vec<ComponentReport>,
+}
+
+/// Fold of each unit, stratified by arm: each arm shuffled once (seeded),
+/// a unit's fold its position in the shuffle modulo `k`.
+pub fn assign_arm_folds(arm: &[usize], arms: usize, k: usize, seed: u64) -> Vec<usize> {
+    let mut rng = ChaCha8Rng::seed_from_u64(seed);
+    let k = k.max(1);
+    let mut fold = vec![0; arm.len()];
+    for a in 0..arms {
+        let mut idx: Vec<usize> = (0..arm.len()).filter(|&i| arm[i] == a).collect();
+        idx.shuffle(&mut rng);
+        for (pos, &i) in idx.iter().enumerate() {
+            fold[i] = pos % k;
+        }
+    }
+    fold
+}
+
+/// Cross-fits the generalized propensity and every arm's outcome model.
+/// `arm[i]` is unit i's arm, an index into `arm_names` (0 the reference);
+/// the names only label errors.
+pub fn fit_arm_nuisance(
+    features: FeatureRows<'_>,
+    arm: &[usize],
+    arm_names: &[String],
+    outcome: &[f64],
+    kind: OutcomeKind,
+    settings: &NuisanceSettings,
+    propensity_learners: Vec<Box<dyn ArmLearner>>,
+) -> Result<(ArmNuisance, ArmNuisanceReport), EstimateError> {
+    settings.check()?;
+    let arms = arm_names.len();
+    let n = arm.len();
+    if features.len() != n || outcome.len() != n {
+        return Err(EstimateError::invalid(format!(
+            "{} feature rows and {} outcomes for {n} units",
+            features.len(),
+            outcome.len()
+        )));
+    }
+    let k = settings.folds;
+    let needed = k * settings.min_units_per_fold;
+    for (a, name) in arm_names.iter().enumerate() {
+        let units = arm.iter().filter(|&&w| w == a).count();
+        if units < needed {
+            return Err(Degenerate::TooFewUnitsPerFold {
+                arm: name.clone(),
+                units,
+                folds: k,
+                per_fold: settings.min_units_per_fold,
+                needed,
+            }
+            .into());
+        }
+    }
+    let fold_of_unit = assign_arm_folds(arm, arms, k, settings.seed);
+    let folds = Folds {
+        of_unit: &fold_of_unit,
+        count: k,
+    };
+    let x = SharedFeatures::new(features);
+    let outcome_learners = if settings.outcome_learners.is_empty() {
+        default_library(features.width())
+    } else {
+        settings
+            .outcome_learners
+            .iter()
+            .map(|l| l.boxed_clone())
+            .collect()
+    };
+    for learner in &outcome_learners {
+        learner.prepare(&x);
+    }
+    let task = match kind {
+        OutcomeKind::Continuous => Task::Regression,
+        OutcomeKind::Binary => Task::Classification,
+    };
+    let masks: Vec<Vec<bool>> = (0..arms)
+        .map(|a| arm.iter().map(|&w| w == a).collect())
+        .collect();
+    let components: Vec<Component<'_>> = masks
+        .iter()
+        .enumerate()
+        .map(|(a, mask)| Component {
+            target: outcome,
+            train_mask: mask,
+            learners: &outcome_learners,
+            task,
+            seed: settings.seed.wrapping_add(1 + a as u64),
+        })
+        .collect();
+    let fitted = out_of_fold(&x, &folds, &components, settings.screening_z);
+    let mut outcome_values = Vec::with_capacity(arms);
+    let mut outcome_reports = Vec::with_capacity(arms);
+    for (oof, mask) in fitted.into_iter().zip(&masks) {
+        let (values, _, report) = choose(&outcome_learners, oof?, outcome, mask, task);
+        outcome_values.push(values);
+        outcome_reports.push(report);
+    }
+    let library = if propensity_learners.is_empty() {
+        default_arm_library()
+    } else {
+        propensity_learners
+    };
+    let (propensity, propensity_report) =
+        fit_generalized_propensity(&x, &library, arm, arms, &fold_of_unit, k, settings.seed)?;
+    Ok((
+        ArmNuisance {
+            propensity,
+            outcome: outcome_values,
+        },
+        ArmNuisanceReport {
+            folds: k,
+            seed: settings.seed,
+            propensity: propensity_report,
+            outcome: outcome_reports,
+        },
+    ))
+}
+
+/// One fold model's held-out units and, per arm, their probabilities.
+type HeldOut = (Vec<usize>, Vec<Vec<f64>>);
+
+/// Every arm learner on every fold (in parallel), the one with the lowest
+/// out-of-fold log-loss kept.
+fn fit_generalized_propensity(
+    x: &SharedFeatures<'_>,
+    library: &[Box<dyn ArmLearner>],
+    arm: &[usize],
+    arms: usize,
+    fold_of_unit: &[usize],
+    k: usize,
+    seed: u64,
+) -> Result<(Vec<Vec<f64>>, ArmPropensityReport), EstimateError> {
+    for learner in library {
+        learner.check()?;
+    }
+    let n = arm.len();
+    let jobs: Vec<(usize, usize)> = (0..library.len())
+        .flat_map(|l| (0..k).map(move |f| (l, f)))
+        .collect();
+    let fits: Vec<Result<HeldOut, EstimateError>> = jobs
+        .par_iter()
+        .map(|&(l, f)| {
+            let train: Vec<usize> = (0..n).filter(|&i| fold_of_unit[i] != f).collect();
+            let labels: Vec<usize> = train.iter().map(|&i| arm[i]).collect();
+            let model: Box<dyn ArmFitted> =
+                library[l].fit(x, &train, &labels, arms, seed.wrapping_add(f as u64))?;
+            let held: Vec<usize> = (0..n).filter(|&i| fold_of_unit[i] == f).collect();
+            let columns = model.probabilities_rows(x, &held, arms);
+            Ok((held, columns))
+        })
+        .collect();
+    let mut per_learner: Vec<Result<Vec<Vec<f64>>, String>> =
+        vec![Ok(vec![vec![f64::NAN; n]; arms]); library.len()];
+    for (&(l, _), fit) in jobs.iter().zip(fits) {
+        match (fit, &mut per_learner[l]) {
+            (Ok((held, columns)), Ok(table)) => {
+                for (column, values) in table.iter_mut().zip(columns) {
+                    for (&i, v) in held.iter().zip(values) {
+                        column[i] = v;
+                    }
+                }
+            }
+            (Err(e), slot @ Ok(_)) => *slot = Err(e.to_string()),
+            (_, Err(_)) => {}
+        }
+    }
+    let candidates: Vec<ArmCandidateLoss> = library
+        .iter()
+        .zip(&per_learner)
+        .map(|(learner, values)| match values {
+            Ok(p) => ArmCandidateLoss {
+                learner: learner.name().to_string(),
+                oof_loss: (0..n)
+                    .map(|i| -p[arm[i]][i].max(LOG_LOSS_EPS).ln())
+                    .sum::<f64>()
+                    / n.max(1) as f64,
+                failed: None,
+            },
+            Err(reason) => ArmCandidateLoss {
+                learner: learner.name().to_string(),
+                oof_loss: f64::INFINITY,
+                failed: Some(reason.clone()),
+            },
+        })
+        .collect();
+    let best = candidates
+        .iter()
+        .enumerate()
+        .filter(|(_, c)| c.failed.is_none())
+        .min_by(|a, b| a.1.oof_loss.total_cmp(&b.1.oof_loss))
+        .map(|(i, _)| i)
+        .ok_or_else(|| EstimateError::Learner {
+            learner: "generalized propensity".into(),
+            reason: candidates
+                .iter()
+                .filter_map(|c| c.failed.clone())
+                .collect::<Vec<_>>()
+                .join("; "),
+        })?;
+    let report = ArmPropensityReport {
+        learner: candidates[best].learner.clone(),
+        loss: "log_loss",
+        oof_loss: candidates[best].oof_loss,
+        candidates,
+    };
+    let chosen = per_learner
+        .into_iter()
+        .nth(best)
+        .and_then(Result::ok)
+        .unwrap_or_default();
+    Ok((chosen, report))
+}

@@ -1,0 +1,91 @@
+//! A recompute of a dataset with arms, published: the job (a full
+//! cross-fitted fit and every window's boards, see
+//! `recompute/arms.rs`) runs on the blocking pool, its snapshot is stored
+//! and its boards installed. Alerts, history values and per-contrast
+//! metrics are not produced for such a dataset yet; its boards are what
+//! `GetScoreboard` serves.
+
+use std::collections::BTreeMap;
+use std::sync::Arc;
+use std::time::Instant;
+
+use tracing::info;
+
+use super::board;
+use super::publish::RecomputeSummary;
+use super::recompute::RecomputeInput;
+use super::{DatasetHandle, Monitor, MonitorError, MonitorResult};
+use crate::metrics::KindLabels;
+use crate::store::{Fence, NewSnapshot};
+
+impl Monitor {
+    pub(super) async fn publish_arms(
+        &self,
+        h: &Arc<DatasetHandle>,
+        fence: Fence,
+        input: RecomputeInput,
+        started: Instant,
+        now: i64,
+    ) -> MonitorResult<RecomputeSummary> {
+        let spec = input.spec.clone();
+        // The stream watch does not look at a dataset with arms: the
+        // snapshot keeps it as it was.
+        let watch_json = serde_json::to_string(&input.watch)
+            .map_err(|e| MonitorError::Internal(format!("stream watch: {e}")))?;
+        let windows = tokio::task::spawn_blocking(move || input.compute_arms())
+            .await
+            .map_err(|e| MonitorError::Internal(e.to_string()))??;
+        let snapshot_id = self.store.next_snapshot_id().await?;
+        let mut boards = BTreeMap::new();
+        for w in windows {
+            let parts = board::BoardParts {
+                dataset: &h.name,
+                window: w.window.clone(),
+                snapshot_id: snapshot_id as u64,
+                computed_at_ms: now,
+                incomplete: w.incomplete,
+                max_extreme_share: spec.overlap_max_extreme_share,
+                min_effective_share: spec.overlap_min_effective_share,
+            };
+            let b = match &w.board {
+                Ok(b) => board::arms_board(parts, b),
+                Err(state) => board::degenerate(parts, w.units as u64, state.clone()),
+            };
+            boards.insert(w.key, b);
+        }
+        let changed: Vec<_> = boards.values().cloned().collect();
+        let millis = started.elapsed().as_secs_f64() * 1000.0;
+        self.store
+            .insert_snapshot(&NewSnapshot {
+                id: snapshot_id,
+                fence,
+                computed_at_ms: now,
+                fit_id: None,
+                refitted: true,
+                millis,
+                boards: &changed,
+                scores: &[],
+                watch: &watch_json,
+            })
+            .await?;
+        let units = boards.get("cumulative").map(|b| b.units).unwrap_or(0);
+        h.publish(boards);
+        self.metrics
+            .recompute_seconds
+            .get_or_create(&KindLabels {
+                dataset: h.name.clone(),
+                kind: "refit".into(),
+            })
+            .observe(millis / 1000.0);
+        info!(
+            snapshot = snapshot_id,
+            millis, "recompute of a dataset with arms done"
+        );
+        Ok(RecomputeSummary {
+            snapshot_id: snapshot_id as u64,
+            refitted: true,
+            units,
+            millis,
+        })
+    }
+}

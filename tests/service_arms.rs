@@ -1,0 +1,431 @@
+//! A dataset with three arms through the real `plumbline serve` on a
+//! loopback socket and the `plumbline` command line: created with its
+//! arms and costs, ingested from CSV files (arm labels in `treatment`,
+//! `MODEL:ARM` prediction columns), recomputed, and read back. The
+//! service's boards (one per contrast) and arm-choice values must equal
+//! `plumbline score --arms` on the same files; bad rows are refused whole
+//! with their field and row.
+
+mod common;
+
+use std::path::{Path, PathBuf};
+use std::process::Command;
+
+use common::service::{assert_json_close, serve_binary, ServeBinary, TempDir};
+use plumbline::api::pb;
+use plumbline::api::status::receipt_of;
+use rand::SeedableRng;
+use rand_chacha::ChaCha8Rng;
+use serde_json::Value;
+
+/// The served binary, stopped when the test ends however it ends.
+struct Served(ServeBinary);
+
+impl Drop for Served {
+    fn drop(&mut self) {
+        let _ = self.0.child.kill();
+        let _ = self.0.child.wait();
+    }
+}
+
+fn plumbline(args: &[&str]) -> (Option<i32>, String, String) {
+    let mut c = Command::new(env!("CARGO_BIN_EXE_plumbline"));
+    for v in [
+        "PLUMBLINE_TOKEN",
+        "PLUMBLINE_DATA_DIR",
+        "PLUMBLINE_STORE_URL",
+        "PLUMBLINE_CA_CERT",
+    ] {
+        c.env_remove(v);
+    }
+    let out = c.args(args).output().expect("run plumbline");
+    (
+        out.status.code(),
+        String::from_utf8_lossy(&out.stdout).into_owned(),
+        String::from_utf8_lossy(&out.stderr).into_owned(),
+    )
+}
+
+fn json(args: &[&str]) -> Value {
+    let (code, out, err) = plumbline(args);
+    assert_eq!(code, Some(0), "{args:?}: {err}");
+    serde_json::from_str(&out).unwrap_or_else(|e| panic!("{args:?}: {e}: {out}"))
+}
+
+const ARMS: [&str; 3] = ["none", "text", "mail"];
+
+/// 1,200 units in two cohorts, arms drawn by a softmax of x1 (so the
+/// propensity must be modelled), effects of text 1 + x1 and of mail
+/// 0.5 - x2; "good" predicts the true effects, "flat" 0.2 on both arms,
+/// "text-only" only the text contrast (the design of tests/cli_arms.rs).
+/// Returns the units file the service ingests (with a cohort column), the
+/// same units without it for `plumbline score` (which reads every other
+/// column as a feature), and the predictions.
+fn files(dir: &Path) -> (PathBuf, PathBuf, PathBuf) {
+    let mut rng = ChaCha8Rng::seed_from_u64(29);
+    let mut units = String::from("unit_id,treatment,outcome,x1,x2,cohort\n");
+    let mut plain = String::from("unit_id,treatment,outcome,x1,x2\n");
+    let mut preds =
+        String::from("unit_id,good:text,good:mail,flat:text,flat:mail,text-only:text\n");
+    for i in 0..1200 {
+        let (x1, x2, arm, y, tau) = common::three_arm_unit(&mut rng);
+        let cohort = if i < 600 { "first" } else { "second" };
+        let row = format!("u{i},{},{y:.6},{x1:.6},{x2:.6}", ARMS[arm]);
+        units.push_str(&format!("{row},{cohort}\n"));
+        plain.push_str(&format!("{row}\n"));
+        preds.push_str(&format!(
+            "u{i},{:.6},{:.6},0.2,0.2,{:.6}\n",
+            tau[1],
+            tau[2],
+            tau[1] + 0.3
+        ));
+    }
+    let (u, o, p) = (
+        dir.join("units.csv"),
+        dir.join("offline_units.csv"),
+        dir.join("preds.csv"),
+    );
+    std::fs::write(&u, units).expect("units file");
+    std::fs::write(&o, plain).expect("offline units file");
+    std::fs::write(&p, preds).expect("predictions file");
+    (u, o, p)
+}
+
+#[test]
+fn a_three_arm_dataset_served_gives_the_offline_boards_and_policy_values() {
+    let dir = TempDir::new("arms-serve");
+    let srv = Served(serve_binary(&dir, &[], "warn", false));
+    let server = format!("http://{}", srv.0.grpc);
+    let files_dir = TempDir::new("arms-files");
+    let (units, offline_units, preds) = files(&files_dir.0);
+    let [units, offline_units, preds] =
+        [units, offline_units, preds].map(|p| p.display().to_string());
+    let with = |args: &[&str]| -> Vec<String> {
+        args.iter()
+            .map(|s| s.to_string())
+            .chain(["--server".into(), server.clone()])
+            .collect()
+    };
+    let call_json = |args: &[&str]| -> Value {
+        let mut v = with(args);
+        v.extend(["--format".into(), "json".into()]);
+        json(&v.iter().map(String::as_str).collect::<Vec<_>>())
+    };
+    let call =
+        |args: &[&str]| plumbline(&with(args).iter().map(String::as_str).collect::<Vec<_>>());
+
+    // Arms in the --spec file, the cost by flag.
+    let spec = files_dir.0.join("arms.toml");
+    std::fs::write(
+        &spec,
+        "features = [\"x1\", \"x2\"]\noutcome_kind = \"continuous\"\narms = [\"none\", \"text\", \
+         \"mail\"]\nseed = 7\nrecompute_every_outcomes = 1000000\nrecompute_every_seconds = 3600\n",
+    )
+    .expect("spec file");
+    let spec = spec.display().to_string();
+    let created = call_json(&[
+        "dataset",
+        "create",
+        "offers",
+        "--spec",
+        &spec,
+        "--arm-cost",
+        "mail=0.1",
+    ]);
+    assert_eq!(created["arms"], serde_json::json!(["none", "text", "mail"]));
+    assert_eq!(created["arm_cost"], "mail=0.1");
+    let (code, _, err) = call(&[
+        "model",
+        "register",
+        "--dataset",
+        "offers",
+        "--version",
+        "1",
+        "good",
+        "flat",
+        "text-only",
+    ]);
+    assert_eq!(code, Some(0), "{err}");
+    for (kind, file, rows) in [
+        ("units", &units, 1200),
+        ("predictions", &preds, 6000),
+        ("outcomes", &units, 1200),
+    ] {
+        let receipt = call_json(&["ingest", kind, "--dataset", "offers", file]);
+        assert_eq!(receipt["accepted"], rows, "{kind}: {receipt}");
+    }
+    let r = call_json(&["recompute", "--dataset", "offers"]);
+    assert_eq!(r["units"], 1200, "{r}");
+
+    let board = call_json(&["scoreboard", "--dataset", "offers"]);
+    let (code, offline, err) = plumbline(&[
+        "score",
+        "--units",
+        &offline_units,
+        "--predictions",
+        &preds,
+        "--arms",
+        "none,text,mail",
+        "--arm-cost",
+        "mail=0.1",
+        "--seed",
+        "7",
+        "--folds",
+        "5",
+        "--format",
+        "json",
+    ]);
+    assert_eq!(code, Some(0), "{err}");
+    let offline: Value = serde_json::from_str(&offline).expect("score json");
+    // The same fit (folds and seed) and the same passes on the same rows in
+    // the same order: the documents agree but for rounding. 1e-9 (relative
+    // above 1) is the bound tests/cli_job.rs holds the binary service to.
+    assert_json_close(&board["scoreboard"], &offline, 1e-9, "arms");
+    let contrasts = offline["contrasts"].as_array().expect("contrasts");
+    assert_eq!(contrasts.len(), 2);
+    let good = offline["policy"]["models"]
+        .as_array()
+        .expect("policies")
+        .iter()
+        .find(|m| m["model"] == "good")
+        .cloned()
+        .expect("good's policy");
+    println!(
+        "served = offline; good's arm choice vs everyone none: {}",
+        good["vs_reference"]
+    );
+
+    // The wire message carries the same contrasts and policy values.
+    let rt = tokio::runtime::Runtime::new().expect("runtime");
+    let wire = rt.block_on(async {
+        let mut scoring = pb::scoring_client::ScoringClient::new(srv.0.channel().await)
+            .max_decoding_message_size(64 << 20);
+        scoring
+            .get_scoreboard(pb::GetScoreboardRequest {
+                dataset: "offers".into(),
+                window: Some(pb::Window {
+                    kind: pb::window::Kind::Cumulative as i32,
+                    cohort: String::new(),
+                }),
+            })
+            .await
+            .expect("board")
+            .into_inner()
+    });
+    assert_eq!(wire.reference_arm, "none");
+    assert_eq!(
+        wire.contrasts
+            .iter()
+            .map(|c| c.arm.as_str())
+            .collect::<Vec<_>>(),
+        vec!["text", "mail"]
+    );
+    for (c, off) in wire.contrasts.iter().zip(contrasts) {
+        assert_eq!(c.front_runner, off["board"]["front_runner"], "{}", c.arm);
+        for m in &c.models {
+            let o = off["board"]["models"]
+                .as_array()
+                .expect("models")
+                .iter()
+                .find(|o| o["name"] == m.name.as_str())
+                .expect("the same models");
+            let pehe = m.scores[0].estimate;
+            let want = o["corrected_pehe"]["estimate"].as_f64().expect("number");
+            assert!(
+                (pehe - want).abs() <= 1e-9 * want.abs().max(1.0),
+                "{}",
+                m.name
+            );
+        }
+    }
+    let p = wire.arm_policy.as_ref().expect("arm policy");
+    let value = p
+        .models
+        .iter()
+        .find(|m| m.model == "good")
+        .and_then(|m| m.vs_reference)
+        .expect("good");
+    let want = good["vs_reference"]["estimate"].as_f64().expect("number");
+    assert!((value.estimate - want).abs() <= 1e-9 * want.abs().max(1.0));
+    assert_eq!(p.pairwise.len(), 3, "three models, three pairs");
+
+    // A comparison names its contrast, and reads that contrast's board.
+    let mail = &contrasts[1]["board"]["pairwise"];
+    let pair = mail
+        .as_array()
+        .expect("pairs")
+        .iter()
+        .find(|p| p["first"] == "good" && p["second"] == "flat")
+        .cloned()
+        .expect("good and flat are a kept pair on the mail board");
+    let cmp = call_json(&[
+        "compare",
+        "--dataset",
+        "offers",
+        "--arm",
+        "mail",
+        "good",
+        "flat",
+    ]);
+    let (got, want) = (
+        cmp["estimate"].as_f64().expect("number"),
+        pair["estimate"].as_f64().expect("number"),
+    );
+    assert!(
+        (got - want).abs() <= 1e-9 * want.abs().max(1.0),
+        "{cmp} {pair}"
+    );
+    let (code, _, err) = call(&["compare", "--dataset", "offers", "good", "flat"]);
+    assert_eq!(code, Some(2), "{err}");
+    assert!(err.contains("arm") && err.contains("text, mail"), "{err}");
+    let (code, _, err) = call(&[
+        "compare",
+        "--dataset",
+        "offers",
+        "--arm",
+        "none",
+        "good",
+        "flat",
+    ]);
+    assert_eq!(code, Some(2), "{err}");
+    assert!(err.contains("\"none\""), "{err}");
+
+    // The recent window holds every unit here (1,200 < 5,000), so its
+    // boards are the cumulative ones, scored from the same values.
+    let recent = call_json(&["scoreboard", "--dataset", "offers", "--window", "recent"]);
+    assert_json_close(&recent["scoreboard"], &offline, 1e-9, "recent");
+    let cohort = call_json(&[
+        "scoreboard",
+        "--dataset",
+        "offers",
+        "--window",
+        "cohort:first",
+    ]);
+    assert_eq!(cohort["scoreboard"]["n_units"], 600, "{cohort}");
+
+    // The table for a person: a board per contrast and the choice table.
+    let (code, table, err) = call(&["scoreboard", "--dataset", "offers"]);
+    assert_eq!(code, Some(0), "{err}");
+    for needle in [
+        "=== Contrast text against none ===",
+        "=== Contrast mail against none ===",
+        "best single arm",
+        "vs everyone none",
+    ] {
+        assert!(table.contains(needle), "{needle}:\n{table}");
+    }
+    let widest = table.lines().map(|l| l.chars().count()).max().unwrap_or(0);
+    assert!(widest <= 100, "{widest} columns:\n{table}");
+
+    // A restart reads the stored boards back, and a recompute on the
+    // stored rows gives the same numbers again.
+    drop(rt);
+    drop(srv);
+    let srv = Served(serve_binary(&dir, &[], "warn", false));
+    let server = format!("http://{}", srv.0.grpc);
+    let read = |args: &[&str]| -> Value {
+        let mut v: Vec<&str> = args.to_vec();
+        v.extend(["--server", &server, "--format", "json"]);
+        json(&v)
+    };
+    let again = read(&["scoreboard", "--dataset", "offers"]);
+    assert_json_close(&again["scoreboard"], &offline, 1e-9, "after restart");
+    let r = read(&["recompute", "--dataset", "offers"]);
+    assert_eq!(r["units"], 1200, "{r}");
+    let again = read(&["scoreboard", "--dataset", "offers"]);
+    assert_json_close(
+        &again["scoreboard"],
+        &offline,
+        1e-9,
+        "recomputed after restart",
+    );
+}
+
+#[test]
+fn bad_rows_of_a_three_arm_dataset_are_refused_whole_with_field_and_row() {
+    let dir = TempDir::new("arms-refuse");
+    let srv = Served(serve_binary(&dir, &[], "warn", false));
+    let rt = tokio::runtime::Runtime::new().expect("runtime");
+    rt.block_on(async {
+        let mut c = common::service::clients(srv.0.grpc).await;
+        let spec = pb::DatasetSpec {
+            arms: ARMS.iter().map(|a| a.to_string()).collect(),
+            ..common::service::continuous_spec("offers", 1)
+        };
+        c.datasets
+            .create_dataset(pb::CreateDatasetRequest { spec: Some(spec) })
+            .await
+            .expect("create");
+        common::service::register(&mut c, "offers", "m").await;
+        let unit = |key: &str, treatment: u32, arm: &str| pb::UnitRow {
+            key: key.into(),
+            features: vec![0.5],
+            treatment,
+            arm: arm.into(),
+            ..Default::default()
+        };
+        let refused = |status: tonic::Status| -> Vec<(u32, String)> {
+            let receipt = receipt_of(&status).expect("receipt in details");
+            assert_eq!(receipt.accepted, 0, "nothing of the batch is written");
+            receipt
+                .rejections
+                .iter()
+                .map(|r| (r.row, r.field.clone()))
+                .collect()
+        };
+        let err = c
+            .intake
+            .send_units(tokio_stream::iter(vec![pb::UnitBatch {
+                dataset: "offers".into(),
+                rows: vec![unit("a", 0, "text"), unit("b", 0, "sms"), unit("c", 1, "")],
+            }]))
+            .await
+            .expect_err("an unknown arm and a binary-style row");
+        assert_eq!(
+            refused(err),
+            vec![
+                (1, "arm".into()),
+                (2, "treatment".into()),
+                (2, "arm".into())
+            ]
+        );
+        let d = c
+            .datasets
+            .get_dataset(pb::GetDatasetRequest {
+                name: "offers".into(),
+            })
+            .await
+            .expect("dataset")
+            .into_inner();
+        assert_eq!(d.units, 0, "the refused batch left nothing");
+        common::service::send_units(
+            &mut c,
+            "offers",
+            vec![unit("a", 0, "text"), unit("b", 0, "none")],
+        )
+        .await;
+        let prediction = |arm: &str| pb::PredictionRow {
+            model: "m".into(),
+            unit_key: "a".into(),
+            effect: 0.5,
+            arm: arm.into(),
+            ..Default::default()
+        };
+        let err = c
+            .intake
+            .send_predictions(tokio_stream::iter(vec![pb::PredictionBatch {
+                dataset: "offers".into(),
+                rows: vec![prediction("mail"), prediction("none"), prediction("")],
+            }]))
+            .await
+            .expect_err("the reference and no arm");
+        assert_eq!(refused(err), vec![(1, "arm".into()), (2, "arm".into())]);
+        let receipt = common::service::send_predictions(
+            &mut c,
+            "offers",
+            vec![prediction("text"), prediction("mail")],
+        )
+        .await;
+        assert_eq!(receipt.accepted, 2, "one model, one unit, two arms");
+    });
+}
