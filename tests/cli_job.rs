@@ -332,6 +332,65 @@ fn the_readme_job_runs_through_the_command_line_alone() {
         unknown.stderr
     );
 
+    // Policy comparisons: every row but the front-runner's carries its
+    // policy gain minus the front-runner's (checked against the offline
+    // board above, to 1e-9, with the rest of the document). CompareModels
+    // gives the board's number for a pair with the front-runner, joint
+    // interval included, and for any other pair the difference of the two
+    // (means are linear: (x - f) - (y - f) = x - y) with a pointwise
+    // interval of its own.
+    let front = offline["front_runner"].as_str().expect("front-runner");
+    let policy_of = |name: &str| -> Value {
+        offline["models"]
+            .as_array()
+            .expect("models")
+            .iter()
+            .find(|m| m["name"] == name)
+            .map(|m| m["policy_vs_front_runner"].clone())
+            .unwrap_or(Value::Null)
+    };
+    assert!(policy_of(front).is_null(), "none on the front-runner's row");
+    let others: Vec<&str> = names
+        .iter()
+        .map(String::as_str)
+        .filter(|n| *n != front)
+        .collect();
+    for n in &others {
+        assert!(
+            policy_of(n)["se"].as_f64().is_some(),
+            "{n}: {}",
+            policy_of(n)
+        );
+    }
+    let with_front = call_json(&["compare", "--dataset", "job", others[0], front]);
+    let kept = policy_of(others[0]);
+    let served = &with_front["policy_difference"];
+    for key in ["estimate", "se", "joint_low", "joint_high"] {
+        assert!(
+            (num(&served[key]) - num(&kept[key])).abs() < 1e-9,
+            "{key}: {served} {kept}"
+        );
+    }
+    let (x, y) = (others[others.len() - 1], others[others.len() - 2]);
+    let pair = call_json(&["compare", "--dataset", "job", x, y]);
+    let served = &pair["policy_difference"];
+    let want = num(&policy_of(x)["estimate"]) - num(&policy_of(y)["estimate"]);
+    assert!(
+        (num(&served["estimate"]) - want).abs() < 1e-9,
+        "{x} minus {y}: {served}, want {want}"
+    );
+    assert!(num(&served["se"]) > 0.0 || want == 0.0, "{served}");
+    assert!(
+        served["joint_low"].is_null(),
+        "a pair taken alone: {served}"
+    );
+    let text = call(&["compare", "--dataset", "job", x, y]);
+    assert!(
+        text.stdout.contains("policy gain per unit"),
+        "{}",
+        text.stdout
+    );
+
     // History: two recomputes in the last hour, none in the future; the
     // table has its header.
     let hist = call_json(&["history", "--dataset", "job", "--model", a, "--since", "1h"]);

@@ -422,7 +422,10 @@ async fn a_gated_page_wants_a_token_that_reads_everything_by_header_or_cookie() 
     // change at all for one token in the alphabet's size).
     let last = everything.chars().last().expect("a token");
     let other = if last == '0' { '1' } else { '0' };
-    let stale = format!("plumbline_token={}{other}", &everything[..everything.len() - 1]);
+    let stale = format!(
+        "plumbline_token={}{other}",
+        &everything[..everything.len() - 1]
+    );
     let (status, headers, _) = get("/", &[("Cookie", &stale)]);
     assert_eq!(status, 401);
     assert!(header(&headers, "set-cookie").is_some_and(|c| c.contains("Max-Age=0")));

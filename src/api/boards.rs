@@ -119,6 +119,7 @@ impl From<BoardModel> for pb::ModelScore {
             in_best_set: m.in_best_set,
             policy_gain: Some(m.policy_gain.into()),
             treated_share: m.treated_share,
+            policy_vs_front_runner: m.policy_vs_front_runner.map(Into::into),
             autoc: Some(m.autoc.into()),
             qini: Some(m.qini.into()),
             blp_slope: m.blp_slope.map(Into::into),

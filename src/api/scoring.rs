@@ -12,6 +12,7 @@ use crate::domain::board::history_keys;
 use crate::domain::{Board, Window};
 use crate::estimate::compare;
 use crate::estimate::scoreboard::CI_LEVEL;
+use crate::estimate::stats::Estimate;
 use crate::monitor::Monitor;
 use crate::monitor::RecomputeOptions;
 use crate::store::HistoryQuery;
@@ -202,37 +203,34 @@ impl pb::scoring_server::Scoring for ScoringService {
                 "the window has no scores (see its degenerate state)",
             ));
         }
-        if let Some(d) = board.compare(&r.first, &r.second) {
-            return Ok(Response::new(pb::CompareModelsResponse {
-                difference: Some(d.into()),
-                units: board.units,
-            }));
-        }
-        // Any other pair of the cumulative window, from the co-moments its
-        // last recompute keeps: the board's pair interval taken alone (the
-        // joint one is for the family of pairs the board keeps). A
-        // contrast's board keeps no co-moments.
-        if board.window == Window::Cumulative && r.arm.is_empty() {
-            if let Some(e) = self
+        let mut difference = board.compare(&r.first, &r.second).map(pb::Difference::from);
+        let mut policy_difference = board
+            .compare_policy(&r.first, &r.second)
+            .map(pb::Difference::from);
+        // Any other pair of the cumulative window, from the co-moments and
+        // decisions its last recompute keeps: the intervals taken alone
+        // (the joint ones are for the families a board keeps). A
+        // contrast's board keeps neither.
+        if (difference.is_none() || policy_difference.is_none())
+            && board.window == Window::Cumulative
+            && r.arm.is_empty()
+        {
+            if let Some((pehe, policy)) = self
                 .monitor
                 .cumulative_difference(&r.dataset, board.units, &r.first, &r.second)
                 .await
                 .map_err(from_monitor)?
             {
-                let d = compare::Difference::from_estimate(e, CI_LEVEL);
-                return Ok(Response::new(pb::CompareModelsResponse {
-                    difference: Some(pb::Difference {
-                        estimate: d.estimate,
-                        se: d.se,
-                        ci_low: d.ci_low,
-                        ci_high: d.ci_high,
-                        p_value: d.p_value,
-                        joint_low: None,
-                        joint_high: None,
-                    }),
-                    units: board.units,
-                }));
+                difference = difference.or_else(|| Some(pointwise(pehe)));
+                policy_difference = policy_difference.or_else(|| Some(pointwise(policy)));
             }
+        }
+        if let Some(difference) = difference {
+            return Ok(Response::new(pb::CompareModelsResponse {
+                difference: Some(difference),
+                units: board.units,
+                policy_difference,
+            }));
         }
         Err(Status::not_found(format!(
             "no difference of {:?} and {:?} is kept in this window: both must be ranked; the \
@@ -240,5 +238,19 @@ impl pb::scoring_server::Scoring for ScoringService {
              pair among their top-ranked models and the front-runner against each of the others",
             r.first, r.second
         )))
+    }
+}
+
+/// A difference taken alone: its pointwise interval, no joint one.
+fn pointwise(e: Estimate) -> pb::Difference {
+    let d = compare::Difference::from_estimate(e, CI_LEVEL);
+    pb::Difference {
+        estimate: d.estimate,
+        se: d.se,
+        ci_low: d.ci_low,
+        ci_high: d.ci_high,
+        p_value: d.p_value,
+        joint_low: None,
+        joint_high: None,
     }
 }

@@ -754,6 +754,17 @@ fn compare_verdict(first: &str, second: &str, d: &pb::Difference) -> String {
     }
 }
 
+/// What a policy-gain difference says, in words.
+fn policy_verdict(first: &str, second: &str, d: &pb::Difference) -> String {
+    if d.ci_low > 0.0 {
+        format!("{first}'s targeting is worth more")
+    } else if d.ci_high < 0.0 {
+        format!("{second}'s targeting is worth more")
+    } else {
+        "the two policies are not distinguishable on these units".into()
+    }
+}
+
 /// CompareModels: the first model's corrected PEHE minus the second's on
 /// the units both cover. When the server cannot answer (no recompute yet,
 /// a model not ranked in the window) its own message is printed.
@@ -775,12 +786,22 @@ pub fn compare(c: &Connection, a: &CompareArgs) -> ExitCode {
             .into_inner();
         let d = r.difference.unwrap_or_default();
         match c.format {
-            Output::Json => print_json(json!({
-                "dataset": a.dataset.dataset, "window": a.window.window,
-                "first": a.first, "second": a.second, "units": r.units,
-                "estimate": d.estimate, "se": d.se, "ci_low": d.ci_low, "ci_high": d.ci_high,
-                "p_value": d.p_value, "joint_low": d.joint_low, "joint_high": d.joint_high,
-            })),
+            Output::Json => {
+                let policy = r.policy_difference.map(|p| {
+                    json!({
+                        "estimate": p.estimate, "se": p.se, "ci_low": p.ci_low,
+                        "ci_high": p.ci_high, "p_value": p.p_value,
+                        "joint_low": p.joint_low, "joint_high": p.joint_high,
+                    })
+                });
+                print_json(json!({
+                    "dataset": a.dataset.dataset, "window": a.window.window,
+                    "first": a.first, "second": a.second, "units": r.units,
+                    "estimate": d.estimate, "se": d.se, "ci_low": d.ci_low, "ci_high": d.ci_high,
+                    "p_value": d.p_value, "joint_low": d.joint_low, "joint_high": d.joint_high,
+                    "policy_difference": policy,
+                }))
+            }
             Output::Table => {
                 println!(
                     "{} minus {}, corrected PEHE ({} window, {} units both predicted):",
@@ -791,6 +812,18 @@ pub fn compare(c: &Connection, a: &CompareArgs) -> ExitCode {
                     d.estimate, d.se, d.ci_low, d.ci_high, d.p_value
                 );
                 println!("  {}", compare_verdict(&a.first, &a.second, &d));
+                if let Some(p) = r.policy_difference {
+                    println!(
+                        "{} minus {}, policy gain per unit (treating where the predicted effect \
+                         exceeds the cost):",
+                        a.first, a.second
+                    );
+                    println!(
+                        "  difference {:+.4} (se {:.4}), 95% CI [{:+.4}, {:+.4}], p {:.3}",
+                        p.estimate, p.se, p.ci_low, p.ci_high, p.p_value
+                    );
+                    println!("  {}", policy_verdict(&a.first, &a.second, &p));
+                }
             }
         }
         Ok(())

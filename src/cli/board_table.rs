@@ -38,6 +38,10 @@ pub struct Row {
     /// One-sided 95% lower bound on the model's RMSE (the wide view's "RMSE
     /// at least"); absent on boards without it.
     pub rmse_at_least: Option<f64>,
+    /// Policy gain minus the front-runner's and its joint interval (the
+    /// wide view's "policy vs front-runner"); absent on the front-runner's
+    /// row and on boards without it.
+    pub policy_vs_front_runner: Option<(f64, (f64, f64))>,
 }
 
 impl Row {
@@ -55,6 +59,10 @@ impl Row {
             in_best_set: m.in_best_set,
             front_runner: m.name == front_runner,
             rmse_at_least: None,
+            policy_vs_front_runner: m
+                .policy_vs_front_runner
+                .as_ref()
+                .map(|d| (d.estimate, (d.joint_low, d.joint_high))),
         }
     }
 
@@ -72,6 +80,10 @@ impl Row {
             in_best_set: m.in_best_set,
             front_runner: m.name == front_runner,
             rmse_at_least: m.rmse_lower_bound,
+            policy_vs_front_runner: m.policy_vs_front_runner.map(|d| {
+                let joint = d.joint_low.zip(d.joint_high);
+                (d.estimate, joint.unwrap_or((d.ci_low, d.ci_high)))
+            }),
         }
     }
 
@@ -142,6 +154,9 @@ pub fn chance(c: Option<f64>) -> String {
     c.map_or_else(|| "-".to_string(), |c| format!("{c:.3}"))
 }
 
+/// The wide view's column of policy gains against the front-runner's.
+const POLICY_LABEL: &str = "policy vs front-runner (joint 95%)";
+
 /// Longest name given its own column; longer names push their row wider.
 const NAME_WIDTH: usize = 28;
 
@@ -188,15 +203,30 @@ pub fn render(rows: &[Row], wide: bool, indent: &str) -> String {
         .max()
         .unwrap_or(0)
         .max("95% alone".len());
+    let policy: Vec<String> = rows
+        .iter()
+        .map(|r| {
+            r.policy_vs_front_runner.map_or_else(
+                || "-".to_string(),
+                |(e, i)| format!("{} {}", signed(e), interval(i)),
+            )
+        })
+        .collect();
+    let policy_w = policy
+        .iter()
+        .map(String::len)
+        .max()
+        .unwrap_or(0)
+        .max(POLICY_LABEL.len());
     if wide {
         let _ = write!(
             s,
-            "  {:>8}  {:<alone_w$}  {:<19}  {:>13}",
-            "se", "95% alone", "verdict", "RMSE at least"
+            "  {:>8}  {:<alone_w$}  {:<19}  {:>13}  {:<policy_w$}",
+            "se", "95% alone", "verdict", "RMSE at least", POLICY_LABEL
         );
     }
     let _ = writeln!(s, "  note");
-    for ((r, (est, shown)), alone) in rows.iter().zip(&cells).zip(&alone) {
+    for (((r, (est, shown)), alone), policy) in rows.iter().zip(&cells).zip(&alone).zip(&policy) {
         let mut line = format!(
             "{indent}{:>4}  {:<name_w$}  {est:>est_w$}  {shown:<int_w$}  {:>6}",
             r.rank,
@@ -206,7 +236,7 @@ pub fn render(rows: &[Row], wide: bool, indent: &str) -> String {
         if wide {
             let _ = write!(
                 line,
-                "  {:>8}  {alone:<alone_w$}  {:<19}  {:>13}",
+                "  {:>8}  {alone:<alone_w$}  {:<19}  {:>13}  {policy:<policy_w$}",
                 num(r.se),
                 r.verdict(),
                 r.rmse_at_least.map_or_else(|| "-".to_string(), num)
@@ -313,6 +343,7 @@ mod tests {
             in_best_set: rank == 1,
             front_runner: rank == 1,
             rmse_at_least: Some(0.25),
+            policy_vs_front_runner: (rank > 1).then_some((-0.05, (-0.12, 0.02))),
         }
     }
 
@@ -349,6 +380,13 @@ mod tests {
         assert!(wide.contains("not distinguishable"), "{wide}");
         assert!(
             wide.contains("RMSE at least") && wide.contains("0.2500"),
+            "{wide}"
+        );
+        // The policy comparisons with the front-runner: on every row but
+        // its own, which says "-".
+        assert!(
+            wide.contains("policy vs front-runner")
+                && wide.matches("-0.0500 [-0.1200, +0.0200]").count() == 2,
             "{wide}"
         );
     }
@@ -425,6 +463,7 @@ mod tests {
                 in_best_set: true,
                 front_runner: true,
                 rmse_at_least: None,
+                policy_vs_front_runner: None,
             },
             row(2, "constant-effect", 0.0, (0.0, 0.0), (0.0, 0.0)),
             row(3, "tiny", 1.5e-5, (-2.5e-5, 5.5e-5), (-3.5e-5, 6.5e-5)),

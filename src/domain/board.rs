@@ -57,6 +57,19 @@ pub struct Difference {
     pub joint: Option<(f64, f64)>,
 }
 
+impl Difference {
+    /// The same difference read the other way round (second minus first).
+    pub fn flipped(self) -> Self {
+        Self {
+            estimate: -self.estimate,
+            ci_low: -self.ci_high,
+            ci_high: -self.ci_low,
+            joint: self.joint.map(|(low, high)| (-high, -low)),
+            ..self
+        }
+    }
+}
+
 /// An estimate with an interval that is not estimate +- z se: the
 /// front-runner's difference from constant-effect, adjusted for its selection.
 #[derive(Debug, Clone, Copy, Default, PartialEq, Serialize, Deserialize)]
@@ -91,6 +104,12 @@ pub struct BoardModel {
     /// Per unit over treating nobody, at the dataset's cost.
     pub policy_gain: Estimate,
     pub treated_share: f64,
+    /// Policy gain minus the front-runner's (above 0: this model's
+    /// targeting is worth more), its joint interval over the board's
+    /// comparisons with the front-runner (Bonferroni); absent on the
+    /// front-runner's row and on boards stored before it existed.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub policy_vs_front_runner: Option<Difference>,
     pub autoc: Estimate,
     pub qini: Estimate,
     /// None when the predictions do not vary.
@@ -362,18 +381,30 @@ impl Board {
             if p.first == first && p.second == second {
                 Some(p.difference)
             } else if p.first == second && p.second == first {
-                let d = p.difference;
-                Some(Difference {
-                    estimate: -d.estimate,
-                    ci_low: -d.ci_high,
-                    ci_high: -d.ci_low,
-                    joint: d.joint.map(|(low, high)| (-high, -low)),
-                    ..d
-                })
+                Some(p.difference.flipped())
             } else {
                 None
             }
         })
+    }
+
+    /// The policy gain of `first` minus that of `second` when one of them
+    /// is the front-runner (the board keeps every model's comparison with
+    /// it), None otherwise.
+    pub fn compare_policy(&self, first: &str, second: &str) -> Option<Difference> {
+        let versus = |name: &str| {
+            self.models
+                .iter()
+                .find(|m| m.name == name)
+                .and_then(|m| m.policy_vs_front_runner)
+        };
+        if second == self.front_runner {
+            versus(first)
+        } else if first == self.front_runner {
+            versus(second).map(Difference::flipped)
+        } else {
+            None
+        }
     }
 }
 

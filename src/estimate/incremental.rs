@@ -22,7 +22,7 @@ use super::crossfit::{Nuisance, NuisanceReport};
 use super::data::{FeatureRows, UnitTable, CONSTANT_EFFECT, ZERO_EFFECT};
 use super::estimators::RANKED_BY;
 use super::overlap::OverlapSums;
-use super::policy::{uniform_policy_gain, PolicySums};
+use super::policy::{uniform_policy_gain, Decisions, PolicySums};
 use super::pseudo::aipw_pseudo_outcome;
 use super::scoreboard::{
     assemble, column_rank_metrics, column_sums, Column, Parts, RankMetrics, Scoreboard, Scored,
@@ -108,6 +108,9 @@ pub struct GrowingWindow {
     sums: Vec<ScoreSums>,
     /// Per registered model.
     policy: Vec<PolicySums>,
+    /// Per registered model, its decision for every unit (the policy
+    /// comparisons with the front-runner; appended as units join).
+    decisions: Decisions,
     overlap: OverlapSums,
     /// The rank metrics were computed on the first `rank_units` units.
     rank_units: usize,
@@ -139,6 +142,7 @@ impl GrowingWindow {
             basis,
             sums: basis_sums(table, nuisance, &scored.phi, basis, models),
             policy: scored.policy[2..].to_vec(),
+            decisions: scored.decisions,
             ate: Moments::of(&scored.phi),
             rank_units: table.len(),
             rank: scored.rank,
@@ -169,6 +173,7 @@ impl GrowingWindow {
         for (p, e) in self.policy.iter_mut().zip(models) {
             p.add(&phi, e, settings.cost);
         }
+        self.decisions.extend(models);
         self.ate.merge(&Moments::of(&phi));
         self.phi.extend_from_slice(&phi);
         self.treated += table.n_treated();
@@ -206,6 +211,15 @@ impl GrowingWindow {
                 .resolve(sums, self.ate())
                 .difference(first, second),
         }
+    }
+
+    /// Policy gain of scored column `first` minus that of `second`
+    /// (zero-effect, constant-effect, then the registered models in the
+    /// order the window was started with), over every unit of the window:
+    /// any pair, as the board's comparisons with the front-runner are.
+    pub fn policy_difference(&self, first: usize, second: usize) -> Estimate {
+        self.decisions
+            .difference(&self.phi, self.ate(), first, second)
     }
 
     /// The window's ATE (constant-effect's prediction).
@@ -290,6 +304,8 @@ impl GrowingWindow {
             uniform_policy_gain(ate, ate.estimate > cost, cost),
         ];
         policy.extend(self.policy.iter().map(PolicySums::gain));
+        let decisions =
+            (self.decisions.units() == self.phi.len()).then_some((&self.decisions, &self.phi[..]));
         let mut names = vec![
             (ZERO_EFFECT.to_string(), true),
             (CONSTANT_EFFECT.to_string(), true),
@@ -307,6 +323,7 @@ impl GrowingWindow {
                     .map(|s| self.basis.resolve(s, ate.estimate))
                     .collect(),
                 policy,
+                decisions,
                 rank: &self.rank,
                 rank_units: self.rank_units,
                 overlap: self.overlap.report(feature_names),

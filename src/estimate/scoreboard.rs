@@ -14,9 +14,9 @@ use super::error::EstimateError;
 use super::estimators::{self, Scores, UnitView};
 use super::level::{level_report, LevelReport};
 use super::overlap::{overlap_report, OverlapReport};
-use super::policy::{PolicyGain, PolicySums};
+use super::policy::{Decisions, PolicyGain, PolicySums};
 use super::pseudo::{aipw_ate, aipw_pseudo_outcome};
-use super::stats::{holm_reject, p_greater, Estimate};
+use super::stats::{holm_reject, normal_quantile, p_greater, Estimate};
 use super::sums::ScoreSums;
 use super::targeting::{descending_order, targeting_ranked, Ranked, Targeting};
 
@@ -149,6 +149,13 @@ pub struct ModelScore {
     pub chance_lowest: f64,
     pub in_best_set: bool,
     pub policy_gain: PolicyGain,
+    /// This model's policy gain minus the front-runner's (above 0: its
+    /// targeting is worth more per unit), with a pointwise interval and a
+    /// joint one over the board's comparisons with the front-runner
+    /// (Bonferroni); None on the front-runner's own row and where a pass
+    /// keeps no decisions.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub policy_vs_front_runner: Option<Difference>,
     pub autoc: Estimate,
     pub qini: Estimate,
     /// BLP slope; null when the predictions do not vary.
@@ -530,6 +537,9 @@ pub struct Parts<'a> {
     pub sums: Vec<ScoreSums>,
     /// Per column.
     pub policy: Vec<PolicyGain>,
+    /// The registered models' decisions and the pseudo-outcomes of the same
+    /// units, for the policy comparisons with the front-runner.
+    pub decisions: Option<(&'a Decisions, &'a [f64])>,
     /// Per column, computed on the first `rank_units` units.
     pub rank: &'a [RankMetrics],
     pub rank_units: usize,
@@ -586,6 +596,8 @@ pub struct Scored {
     pub rank: Vec<RankMetrics>,
     /// Per column, as for `rank`.
     pub policy: Vec<PolicySums>,
+    /// The registered models' decisions, in `models` order.
+    pub decisions: Decisions,
 }
 
 /// [`score`], keeping the pseudo-outcomes, the models' orders, rank
@@ -607,7 +619,7 @@ pub fn score_keeping(
     let (y, w) = (table.outcome(), table.treatment());
     let phi = aipw_pseudo_outcome(y, w, nuisance);
     let units = UnitColumns::new(table, nuisance, &phi);
-    let (board, orders, rank, policy) = score_pass(
+    let (board, orders, rank, policy, decisions) = score_pass(
         Pass {
             units,
             binary_units: None,
@@ -631,6 +643,7 @@ pub fn score_keeping(
         orders,
         rank,
         policy,
+        decisions,
     }
 }
 
@@ -662,9 +675,15 @@ pub struct BinaryUnits<'a> {
     pub index: &'a [usize],
 }
 
-/// A pass's board, the registered models' orders, and the rank metrics and
-/// policy sums per column.
-type PassResult = (Scoreboard, Vec<Vec<u32>>, Vec<RankMetrics>, Vec<PolicySums>);
+/// A pass's board, the registered models' orders, the rank metrics and
+/// policy sums per column, and the registered models' decisions.
+type PassResult = (
+    Scoreboard,
+    Vec<Vec<u32>>,
+    Vec<RankMetrics>,
+    Vec<PolicySums>,
+    Decisions,
+);
 
 /// Scores every model of `models` (after the two baselines) on a pass's
 /// units.
@@ -694,7 +713,10 @@ pub fn score_pass(pass: Pass<'_>, models: &[ScoredColumn<'_>], settings: &Settin
             }
         }
     }
-    type Whole = (Vec<Vec<u32>>, (Vec<RankMetrics>, Vec<PolicySums>));
+    type Whole = (
+        Vec<Vec<u32>>,
+        (Vec<RankMetrics>, Vec<(PolicySums, Decisions)>),
+    );
     let (mut orders, (rank, policy)): Whole = columns
         .par_iter()
         .enumerate()
@@ -704,10 +726,17 @@ pub fn score_pass(pass: Pass<'_>, models: &[ScoredColumn<'_>], settings: &Settin
             let rank = column_rank_metrics(phi, &tau, &order, k, settings);
             let mut policy = PolicySums::default();
             policy.add(phi, &tau, pass.cost);
-            (order, (rank, policy))
+            // One model's bits, joined with the others' below.
+            let mut decided = Decisions::new(usize::from(k >= 2), pass.cost);
+            if k >= 2 {
+                decided.extend(&[&tau]);
+            }
+            (order, (rank, (policy, decided)))
         })
         .unzip();
     orders.drain(..2);
+    let (policy, decided): (Vec<PolicySums>, Vec<Decisions>) = policy.into_iter().unzip();
+    let decisions = Decisions::join(n, pass.cost, decided);
     let mut names = vec![
         (ZERO_EFFECT.to_string(), true),
         (CONSTANT_EFFECT.to_string(), true),
@@ -721,6 +750,7 @@ pub fn score_pass(pass: Pass<'_>, models: &[ScoredColumn<'_>], settings: &Settin
             n_treated: pass.n_treated,
             sums,
             policy: policy.iter().map(PolicySums::gain).collect(),
+            decisions: Some((&decisions, phi)),
             rank: &rank,
             rank_units: n,
             overlap: pass.overlap,
@@ -729,7 +759,32 @@ pub fn score_pass(pass: Pass<'_>, models: &[ScoredColumn<'_>], settings: &Settin
         settings,
     );
     board.cost = pass.cost;
-    (board, orders, rank, policy)
+    (board, orders, rank, policy, decisions)
+}
+
+/// Each of `m` scored columns' policy gain minus the front-runner's, with
+/// a joint interval over the m - 1 comparisons (Bonferroni: their
+/// correlations would cost a pass per pair); None for the front-runner
+/// and for every column without decisions.
+fn policy_vs_front_runner(
+    decisions: Option<(&Decisions, &[f64])>,
+    front_runner: usize,
+    m: usize,
+    ate: f64,
+) -> Vec<Option<Difference>> {
+    let Some((decisions, phi)) = decisions else {
+        return vec![None; m];
+    };
+    let family = m.saturating_sub(1).max(1) as f64;
+    let critical = normal_quantile(1.0 - (1.0 - CI_LEVEL) / (2.0 * family));
+    (0..m)
+        .map(|k| {
+            (k != front_runner).then(|| {
+                let e = decisions.difference(phi, ate, k, front_runner);
+                Difference::from_estimate(e, CI_LEVEL).with_joint(critical)
+            })
+        })
+        .collect()
 }
 
 /// Ranks, compares and summarizes the models from a pass's parts.
@@ -741,6 +796,7 @@ pub fn assemble(parts: Parts<'_>, settings: &Settings) -> Scoreboard {
         n_treated,
         sums,
         policy,
+        decisions,
         rank: rank_metrics,
         rank_units,
         overlap,
@@ -762,6 +818,7 @@ pub fn assemble(parts: Parts<'_>, settings: &Settings) -> Scoreboard {
         },
     );
     let joint = ranking.joint_critical;
+    let policy_vs = policy_vs_front_runner(decisions, ranking.front_runner, m, ate.estimate);
 
     let registered: Vec<usize> = (2..m).collect();
     let p_beats: Vec<f64> = registered
@@ -780,34 +837,38 @@ pub fn assemble(parts: Parts<'_>, settings: &Settings) -> Scoreboard {
         .iter()
         .zip(policy)
         .zip(rank_metrics)
+        .zip(policy_vs)
         .enumerate()
-        .map(|(k, (((name, baseline), policy_gain), r))| {
-            let d = corrected.difference(k, constant);
-            let (ci_low, ci_high) = d.interval(CI_LEVEL);
-            ModelScore {
-                name: name.clone(),
-                baseline: *baseline,
-                rank: ranking.rank[k],
-                scores: Scores::from_fn(|e| sums[e].estimate(k)),
-                vs_constant: VsConstant {
-                    estimate: d.estimate,
-                    se: d.se,
-                    ci_low,
-                    ci_high,
-                    p_value: p_greater(Estimate::new(-d.estimate, d.se)),
-                    joint_low: d.estimate - joint * d.se,
-                    joint_high: d.estimate + joint * d.se,
-                },
-                draw_share: ranking.draw_share[k],
-                chance_lowest: ranking.chance_lowest[k],
-                in_best_set: ranking.in_best_set[k],
-                policy_gain,
-                autoc: r.targeting.autoc,
-                qini: r.targeting.qini,
-                blp_slope: r.calibration.slope,
-                calibration: r.calibration.clone(),
-            }
-        })
+        .map(
+            |(k, ((((name, baseline), policy_gain), r), policy_vs_front_runner))| {
+                let d = corrected.difference(k, constant);
+                let (ci_low, ci_high) = d.interval(CI_LEVEL);
+                ModelScore {
+                    name: name.clone(),
+                    baseline: *baseline,
+                    rank: ranking.rank[k],
+                    scores: Scores::from_fn(|e| sums[e].estimate(k)),
+                    vs_constant: VsConstant {
+                        estimate: d.estimate,
+                        se: d.se,
+                        ci_low,
+                        ci_high,
+                        p_value: p_greater(Estimate::new(-d.estimate, d.se)),
+                        joint_low: d.estimate - joint * d.se,
+                        joint_high: d.estimate + joint * d.se,
+                    },
+                    draw_share: ranking.draw_share[k],
+                    chance_lowest: ranking.chance_lowest[k],
+                    in_best_set: ranking.in_best_set[k],
+                    policy_gain,
+                    policy_vs_front_runner,
+                    autoc: r.targeting.autoc,
+                    qini: r.targeting.qini,
+                    blp_slope: r.calibration.slope,
+                    calibration: r.calibration.clone(),
+                }
+            },
+        )
         .collect();
 
     let pairwise = ranking

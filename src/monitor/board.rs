@@ -39,6 +39,10 @@ fn model(m: &ModelScore, levels: Option<&LevelReport>) -> BoardModel {
         in_best_set: m.in_best_set,
         policy_gain: Estimate::new(m.policy_gain.estimate, m.policy_gain.se),
         treated_share: m.policy_gain.treated_share,
+        policy_vs_front_runner: m.policy_vs_front_runner.as_ref().map(|d| Difference {
+            joint: Some((d.joint_low, d.joint_high)),
+            ..difference(d)
+        }),
         autoc: m.autoc,
         qini: m.qini,
         blp_slope: m.blp_slope,

@@ -21,7 +21,8 @@ impl Monitor {
 
     /// Corrected PEHE of `first` minus that of `second` in the cumulative
     /// window whose board has `units` units, for any two ranked models (or
-    /// baselines), from the co-moments the last recompute kept; None when
+    /// baselines), from the co-moments the last recompute kept, and their
+    /// policy gains' difference from the decisions it kept; None when
     /// they are not at hand (a recompute is running, or the kept window is
     /// not that board's). Waits for the dataset's lock, which intake and a
     /// recompute's set-up hold only briefly.
@@ -31,13 +32,15 @@ impl Monitor {
         units: u64,
         first: &str,
         second: &str,
-    ) -> MonitorResult<Option<Estimate>> {
+    ) -> MonitorResult<Option<(Estimate, Estimate)>> {
         let h = self.handle(dataset)?;
         let st = h.state.lock().await;
-        Ok(st
-            .nuisance
-            .as_ref()
-            .and_then(|n| n.memo.cumulative_difference(units, first, second)))
+        Ok(st.nuisance.as_ref().and_then(|n| {
+            Some((
+                n.memo.cumulative_difference(units, first, second)?,
+                n.memo.cumulative_policy_difference(units, first, second)?,
+            ))
+        }))
     }
 
     pub fn dataset_id(&self, dataset: &str) -> MonitorResult<i64> {

@@ -101,6 +101,10 @@ SCOREBOARD_COLUMNS = [
     "policy_gain",
     "policy_gain_se",
     "treated_share",
+    "policy_vs_front_runner",
+    "policy_vs_front_runner_se",
+    "policy_vs_front_runner_joint_low",
+    "policy_vs_front_runner_joint_high",
     "autoc",
     "autoc_se",
     "qini",
@@ -712,6 +716,12 @@ class Client:
         * ``policy_gain`` and ``policy_gain_se`` (value per unit of treating
           whoever the model predicts an effect above the cost),
           ``treated_share``;
+        * ``policy_vs_front_runner``, ``_se``, ``_joint_low``,
+          ``_joint_high``: the model's policy gain minus the front-runner's
+          (above 0 = its targeting is worth more), with an interval that
+          holds over all the board's comparisons with the front-runner
+          (Bonferroni); NaN on the front-runner's row and from a server that
+          predates it;
         * ``autoc``, ``autoc_se``, ``qini``, ``qini_se``, ``blp_slope`` (NaN
           when the predictions do not vary);
         * ``rmse_lower_bound``: a one-sided 95% lower confidence bound on the
@@ -787,7 +797,11 @@ class Client:
         """Corrected PEHE of ``first`` minus ``second`` on the units both cover.
 
         Returns a dict with estimate, se, ci_low, ci_high, p_value (two-sided)
-        and units; below 0 means ``first`` has lower error.
+        and units; below 0 means ``first`` has lower error. ``policy`` holds
+        the policy gain of ``first`` minus that of ``second`` (estimate, se,
+        ci_low, ci_high, p_value; above 0 means ``first``'s targeting is
+        worth more), or None where the window keeps no decisions for the
+        pair.
         """
         r = self._call(
             "Scoring.CompareModels",
@@ -795,6 +809,7 @@ class Client:
             pb.CompareModelsRequest(dataset=dataset, first=first, second=second, window=_window(window, cohort)),
         )
         d = r.difference
+        p = r.policy_difference if r.HasField("policy_difference") else None
         return {
             "estimate": d.estimate,
             "se": d.se,
@@ -802,6 +817,9 @@ class Client:
             "ci_high": d.ci_high,
             "p_value": d.p_value,
             "units": r.units,
+            "policy": None
+            if p is None
+            else {"estimate": p.estimate, "se": p.se, "ci_low": p.ci_low, "ci_high": p.ci_high, "p_value": p.p_value},
         }
 
     def overlap_message(
@@ -865,6 +883,20 @@ class Client:
 def _optional(message: Any, field: str) -> float:
     """An optional double, or NaN when the server did not send it."""
     return getattr(message, field) if message.HasField(field) else float("nan")
+
+
+def _policy_vs_front_runner(m: "pb.ModelScore") -> Dict[str, float]:
+    """The four policy-comparison columns of a board row (NaN when absent)."""
+    nan = float("nan")
+    if not m.HasField("policy_vs_front_runner"):
+        return {k: nan for k in SCOREBOARD_COLUMNS if k.startswith("policy_vs_front_runner")}
+    d = m.policy_vs_front_runner
+    return {
+        "policy_vs_front_runner": d.estimate,
+        "policy_vs_front_runner_se": d.se,
+        "policy_vs_front_runner_joint_low": _optional(d, "joint_low"),
+        "policy_vs_front_runner_joint_high": _optional(d, "joint_high"),
+    }
 
 
 def _blend(b: "pb.Blend") -> Dict[str, Any]:
@@ -957,6 +989,7 @@ def scoreboard_frame(board: "pb.Scoreboard") -> pd.DataFrame:
                 "policy_gain": m.policy_gain.estimate,
                 "policy_gain_se": m.policy_gain.se,
                 "treated_share": m.treated_share,
+                **_policy_vs_front_runner(m),
                 "autoc": m.autoc.estimate,
                 "autoc_se": m.autoc.se,
                 "qini": m.qini.estimate,

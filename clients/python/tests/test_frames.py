@@ -97,7 +97,10 @@ class Frames(unittest.TestCase):
             rmse_lower_bound=0.7,
         )
         old = pb.ModelScore(name="m0", rank=2,
-                            vs_constant=pb.Difference(estimate=0.1, se=0.1, ci_low=-0.1, ci_high=0.3))
+                            vs_constant=pb.Difference(estimate=0.1, se=0.1, ci_low=-0.1, ci_high=0.3),
+                            policy_vs_front_runner=pb.Difference(estimate=-0.03, se=0.01, ci_low=-0.05,
+                                                                 ci_high=-0.01, joint_low=-0.06,
+                                                                 joint_high=0.0))
         board = pb.Scoreboard(
             dataset="a", models=[new, old], front_runner="m1", joint_critical_value=2.4,
             front_runner_vs_constant=pb.AdjustedInterval(estimate=-0.5, ci_low=-0.9, ci_high=-0.1),
@@ -127,6 +130,26 @@ class Frames(unittest.TestCase):
         self.assertEqual(df.attrs["front_runner"], "m1")
         self.assertEqual(df.attrs["front_runner_vs_constant"], {"estimate": -0.5, "ci_low": -0.9, "ci_high": -0.1})
         self.assertEqual(df.attrs["joint_critical_value"], 2.4)
+        # The policy comparison with the front-runner: on the other rows,
+        # NaN on the front-runner's own.
+        self.assertEqual((df.loc[1, "policy_vs_front_runner"], df.loc[1, "policy_vs_front_runner_joint_low"]),
+                         (-0.03, -0.06))
+        self.assertTrue(math.isnan(df.loc[0, "policy_vs_front_runner"]))
+
+    def test_a_comparison_carries_the_policy_difference_when_sent(self):
+        c = client()
+        both = pb.CompareModelsResponse(
+            difference=pb.Difference(estimate=-0.2, se=0.1, ci_low=-0.4, ci_high=0.0, p_value=0.05),
+            units=100,
+            policy_difference=pb.Difference(estimate=0.04, se=0.01, ci_low=0.02, ci_high=0.06, p_value=0.001),
+        )
+        c.scoring = Stub(CompareModels=Answer(both))
+        r = c.compare_models("a", "m1", "m0")
+        self.assertEqual((r["estimate"], r["units"]), (-0.2, 100))
+        self.assertEqual(r["policy"]["estimate"], 0.04)
+        self.assertEqual(r["policy"]["ci_low"], 0.02)
+        c.scoring = Stub(CompareModels=Answer(pb.CompareModelsResponse(difference=both.difference, units=100)))
+        self.assertIsNone(c.compare_models("a", "m1", "m0")["policy"])
 
 
 class Defaults(unittest.TestCase):

@@ -35,6 +35,31 @@ impl ScoringMemo {
     /// either is not ranked there, or when its window is not of `units`
     /// units (the board a caller holds is from another recompute).
     pub fn cumulative_difference(&self, units: u64, first: &str, second: &str) -> Option<Estimate> {
+        let (c, a, b) = self.cumulative_pair(units, first, second)?;
+        Some(c.window.difference(a, b))
+    }
+
+    /// Policy gain of `first` minus that of `second` in the cumulative
+    /// window, from the decisions it keeps; None as for
+    /// [`Self::cumulative_difference`].
+    pub fn cumulative_policy_difference(
+        &self,
+        units: u64,
+        first: &str,
+        second: &str,
+    ) -> Option<Estimate> {
+        let (c, a, b) = self.cumulative_pair(units, first, second)?;
+        Some(c.window.policy_difference(a, b))
+    }
+
+    /// The cumulative window of `units` units and the scored columns of
+    /// `first` and `second` in it.
+    fn cumulative_pair(
+        &self,
+        units: u64,
+        first: &str,
+        second: &str,
+    ) -> Option<(&CumulativeMemo, usize, usize)> {
         let c = self.cumulative.as_ref()?;
         if c.units.len() as u64 != units {
             return None;
@@ -48,7 +73,7 @@ impl ScoringMemo {
                 .position(|&k| self.models.get(k).is_some_and(|m| m == name))
                 .map(|j| j + 2),
         };
-        Some(c.window.difference(column(first)?, column(second)?))
+        Some((c, column(first)?, column(second)?))
     }
 }
 
