@@ -320,6 +320,7 @@ async fn snapshots_keep_each_windows_latest_board_and_the_history() {
             model: "m".into(),
             estimator: "dr_loss".into(),
             window: window.into(),
+            arm: String::new(),
             estimate,
             se: 0.1,
             rank: 1,
@@ -371,7 +372,19 @@ async fn snapshots_keep_each_windows_latest_board_and_the_history() {
             refitted: false,
             millis: 2.0,
             boards: &second,
-            scores: &[row("cumulative", 1.5)],
+            // The same model, estimator and window on two contrasts' boards
+            // besides its binary value: the arm is part of a row's identity.
+            scores: &[
+                row("cumulative", 1.5),
+                ScoreRow {
+                    arm: "text".into(),
+                    ..row("cumulative", 2.5)
+                },
+                ScoreRow {
+                    arm: "mail".into(),
+                    ..row("cumulative", 3.5)
+                },
+            ],
             watch: "{\"looks\":2}",
         })
         .await
@@ -411,6 +424,7 @@ async fn snapshots_keep_each_windows_latest_board_and_the_history() {
             model: "m",
             key: "dr_loss",
             window,
+            arm: "",
             from_ms,
             to_ms,
         };
@@ -430,6 +444,18 @@ async fn snapshots_keep_each_windows_latest_board_and_the_history() {
             .await
             .expect("history");
         assert_eq!(points.len(), 1, "{name}: by window");
+        for (arm, want) in [("text", 2.5), ("mail", 3.5), ("sms", f64::NAN)] {
+            let points = s
+                .history(&HistoryQuery {
+                    arm,
+                    ..history("cumulative", 0, i64::MAX)
+                })
+                .await
+                .expect("history");
+            let got: Vec<(i64, f64)> = points.iter().map(|p| (p.snapshot_id, p.estimate)).collect();
+            let expected = if want.is_nan() { vec![] } else { vec![(s3, want)] };
+            assert_eq!(got, expected, "{name}: the contrast {arm}'s rows only");
+        }
         s.close().await;
     }
 }

@@ -224,6 +224,7 @@ pub(crate) mod tests {
                     in_best_set: i == 0,
                     policy_gain: Estimate::new(0.0, 0.0),
                     treated_share: 0.5,
+                    policy_vs_front_runner: None,
                     autoc: Estimate::new(0.0, 0.0),
                     qini: Estimate::new(0.0, 0.0),
                     blp_slope: None,
