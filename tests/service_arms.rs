@@ -372,7 +372,11 @@ fn a_three_arm_dataset_served_gives_the_offline_boards_and_policy_values() {
             "{got} {want}"
         );
     }
-    println!("good's corrected PEHE on mail, both recomputes: {points:?} (offline {want})");
+    let got: Vec<f64> = points
+        .iter()
+        .filter_map(|p| p["estimate"].as_f64())
+        .collect();
+    println!("good's corrected PEHE on mail, both recomputes: {got:?} (offline {want})");
 }
 
 /// What history keeps of a wire model, keyed as `GetHistory` asks for it:

@@ -1058,6 +1058,8 @@ async fn a_sqlite_store_from_before_arms_reads_back_its_binary_rows() {
             "INSERT INTO units VALUES (1, 1, 'b', x'000000000000F03F', 0, NULL, 'c', 3, 4)",
             "INSERT INTO predictions VALUES (1, 1, 0, 0.5, 5, 6, 0)",
             "INSERT INTO predictions VALUES (1, 1, 1, -0.5, 5, 6, 1)",
+            "INSERT INTO snapshot_scores VALUES (1, 'm', 'dr_loss', 'cumulative', 7, 8, 0.25, \
+             0.5, 1, 2)",
         ] {
             sqlx::query(sql).execute(&pool).await.expect(sql);
         }
@@ -1084,5 +1086,24 @@ async fn a_sqlite_store_from_before_arms_reads_back_its_binary_rows() {
         vec![(0, 0, 1, 0.5), (1, 1, 1, -0.5)],
         "predictions stored before arms are the treatment's, arm 1"
     );
+    let history = |arm: &'static str| HistoryQuery {
+        dataset_id: d.id,
+        model: "m",
+        key: "dr_loss",
+        window: "cumulative",
+        arm,
+        from_ms: 0,
+        to_ms: i64::MAX,
+    };
+    let points = s.history(&history("")).await.expect("history");
+    assert_eq!(
+        points
+            .iter()
+            .map(|p| (p.snapshot_id, p.estimate, p.se, p.rank, p.units))
+            .collect::<Vec<_>>(),
+        vec![(7, 0.25, 0.5, 1, 2)],
+        "history stored before contrasts reads as a binary dataset's, arm \"\""
+    );
+    assert!(s.history(&history("text")).await.expect("history").is_empty());
     s.close().await;
 }
