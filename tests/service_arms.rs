@@ -377,6 +377,31 @@ fn a_three_arm_dataset_served_gives_the_offline_boards_and_policy_values() {
         .filter_map(|p| p["estimate"].as_f64())
         .collect();
     println!("good's corrected PEHE on mail, both recomputes: {got:?} (offline {want})");
+
+    // A retired model's series go at once, every contrast's too.
+    let rt = tokio::runtime::Runtime::new().expect("runtime");
+    let of_model = |model: &str| -> usize {
+        let (status, text) = common::service::http_get(srv.0.http, "/metrics");
+        assert_eq!(status, 200);
+        common::service::parse_metrics(&text)
+            .iter()
+            .filter(|(_, l, _)| l.contains(&("model".into(), model.into())))
+            .count()
+    };
+    let before = of_model("flat");
+    assert!(before > 0, "flat has series before it is retired");
+    rt.block_on(async {
+        let mut c = common::service::clients(srv.0.grpc).await;
+        c.models
+            .retire_model(pb::RetireModelRequest {
+                dataset: "offers".into(),
+                name: "flat".into(),
+            })
+            .await
+            .expect("retire")
+    });
+    assert_eq!(of_model("flat"), 0, "{before} series before");
+    println!("retiring flat took down its {before} series");
 }
 
 /// What history keeps of a wire model, keyed as `GetHistory` asks for it:
@@ -408,7 +433,9 @@ fn sample(samples: &[common::service::Sample], name: &str, labels: &[(&str, &str
         .filter(|(n, l, _)| {
             n == name
                 && l.len() == labels.len()
-                && l.iter().zip(labels).all(|((k, v), (wk, wv))| k == wk && v == wv)
+                && l.iter()
+                    .zip(labels)
+                    .all(|((k, v), (wk, wv))| k == wk && v == wv)
         })
         .map(|s| s.2)
         .collect();
@@ -451,7 +478,11 @@ async fn contrast_series_and_history(srv: &ServeBinary, offline: &Value) {
         assert_eq!(board.contrasts.len(), 2, "{window}");
         for b in &board.contrasts {
             let arm = b.arm.as_str();
-            let wl = [("dataset", "offers"), ("window", *window), ("contrast", arm)];
+            let wl = [
+                ("dataset", "offers"),
+                ("window", *window),
+                ("contrast", arm),
+            ];
             let front_runner = [
                 ("dataset", "offers"),
                 ("model", b.front_runner.as_str()),
@@ -598,9 +629,17 @@ async fn contrast_series_and_history(srv: &ServeBinary, offline: &Value) {
         refused.message()
     );
     for arm in ["none", "sms"] {
-        let refused = c.scoring.get_history(ask(arm)).await.expect_err("no contrast");
+        let refused = c
+            .scoring
+            .get_history(ask(arm))
+            .await
+            .expect_err("no contrast");
         assert_eq!(refused.code(), tonic::Code::NotFound, "{arm}");
-        assert!(refused.message().starts_with("arm:"), "{}", refused.message());
+        assert!(
+            refused.message().starts_with("arm:"),
+            "{}",
+            refused.message()
+        );
     }
 
     // A binary dataset beside it: its series carry no contrast label.
@@ -616,7 +655,13 @@ async fn contrast_series_and_history(srv: &ServeBinary, offline: &Value) {
     for i in 0..400 {
         let (x1, _, arm, y, tau) = common::three_arm_unit(&mut rng);
         let key = format!("c{i}");
-        units.push(common::service::unit_row(&key, &[x1], f64::from(u8::from(arm > 0)), None, ""));
+        units.push(common::service::unit_row(
+            &key,
+            &[x1],
+            f64::from(u8::from(arm > 0)),
+            None,
+            "",
+        ));
         preds.push(pb::PredictionRow {
             model: "m".into(),
             unit_key: key.clone(),
@@ -642,17 +687,30 @@ async fn contrast_series_and_history(srv: &ServeBinary, offline: &Value) {
         .collect();
     assert!(of_clicks.len() > 20, "{}", of_clicks.len());
     assert!(
-        of_clicks.iter().all(|(_, l, _)| l.iter().all(|(k, _)| k != "contrast")),
+        of_clicks
+            .iter()
+            .all(|(_, l, _)| l.iter().all(|(k, _)| k != "contrast")),
         "a binary dataset's series have no contrast label"
     );
     let m = binary.models.iter().find(|m| m.name == "m").expect("m");
-    let rank = [("dataset", "clicks"), ("model", "m"), ("window", "cumulative")];
-    assert_eq!(sample(&samples, "plumbline_model_rank", &rank), f64::from(m.rank));
+    let rank = [
+        ("dataset", "clicks"),
+        ("model", "m"),
+        ("window", "cumulative"),
+    ];
+    assert_eq!(
+        sample(&samples, "plumbline_model_rank", &rank),
+        f64::from(m.rank)
+    );
     for arm in ["treated", "control"] {
         sample(
             &samples,
             "plumbline_overlap_effective_share",
-            &[("dataset", "clicks"), ("window", "cumulative"), ("arm", arm)],
+            &[
+                ("dataset", "clicks"),
+                ("window", "cumulative"),
+                ("arm", arm),
+            ],
         );
     }
     let refused = c
@@ -664,7 +722,11 @@ async fn contrast_series_and_history(srv: &ServeBinary, offline: &Value) {
         .await
         .expect_err("an arm on a binary dataset");
     assert_eq!(refused.code(), tonic::Code::InvalidArgument);
-    assert!(refused.message().starts_with("arm:"), "{}", refused.message());
+    assert!(
+        refused.message().starts_with("arm:"),
+        "{}",
+        refused.message()
+    );
     let points = c
         .scoring
         .get_history(pb::GetHistoryRequest {

@@ -453,7 +453,11 @@ async fn snapshots_keep_each_windows_latest_board_and_the_history() {
                 .await
                 .expect("history");
             let got: Vec<(i64, f64)> = points.iter().map(|p| (p.snapshot_id, p.estimate)).collect();
-            let expected = if want.is_nan() { vec![] } else { vec![(s3, want)] };
+            let expected = if want.is_nan() {
+                vec![]
+            } else {
+                vec![(s3, want)]
+            };
             assert_eq!(got, expected, "{name}: the contrast {arm}'s rows only");
         }
         s.close().await;
@@ -1104,6 +1108,10 @@ async fn a_sqlite_store_from_before_arms_reads_back_its_binary_rows() {
         vec![(7, 0.25, 0.5, 1, 2)],
         "history stored before contrasts reads as a binary dataset's, arm \"\""
     );
-    assert!(s.history(&history("text")).await.expect("history").is_empty());
+    assert!(s
+        .history(&history("text"))
+        .await
+        .expect("history")
+        .is_empty());
     s.close().await;
 }

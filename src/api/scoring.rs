@@ -149,7 +149,11 @@ impl pb::scoring_server::Scoring for ScoringService {
                 history_keys().collect::<Vec<_>>().join(", ")
             )));
         }
-        let info = self.monitor.dataset(&r.dataset).await.map_err(from_monitor)?;
+        let info = self
+            .monitor
+            .dataset(&r.dataset)
+            .await
+            .map_err(from_monitor)?;
         history_arm(&info.stored.spec.arms, &r.arm)?;
         let id = info.stored.id;
         let to = if r.to_ms == 0 { i64::MAX } else { r.to_ms };

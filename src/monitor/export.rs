@@ -128,9 +128,8 @@ impl Monitor {
                 }
                 continue;
             };
-            let old_contrast = |arm: &str| {
-                old_board.and_then(|o| o.contrasts.iter().find(|c| c.arm == arm))
-            };
+            let old_contrast =
+                |arm: &str| old_board.and_then(|o| o.contrasts.iter().find(|c| c.arm == arm));
             for c in &b.contrasts {
                 let before = old_contrast(&c.arm);
                 if let Some(before) = before {
@@ -257,11 +256,9 @@ impl Monitor {
         };
         m.front_runner_uncertain.remove(&wl);
         m.no_heterogeneity.remove(&wl);
+        // The front-runner is one of the ranked models.
         let models: Vec<String> = c.models.iter().map(|x| x.name.clone()).collect();
         self.forget_models_in(dataset, window, &c.arm, &models);
-        if !c.front_runner.is_empty() {
-            self.forget_models_in(dataset, window, &c.arm, &[c.front_runner.clone()]);
-        }
     }
 
     /// Takes down every series of a dataset with arms' board in a window:
