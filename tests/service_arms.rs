@@ -3,8 +3,10 @@
 //! arms and costs, ingested from CSV files (arm labels in `treatment`,
 //! `MODEL:ARM` prediction columns), recomputed, and read back. The
 //! service's boards (one per contrast) and arm-choice values must equal
-//! `plumbline score --arms` on the same files; bad rows are refused whole
-//! with their field and row.
+//! `plumbline score --arms` on the same files; each contrast's board
+//! reaches /metrics (label `contrast`) and GetHistory (field `arm`) with
+//! the board's numbers; bad rows are refused whole with their field and
+//! row.
 
 mod common;
 
