@@ -12,5 +12,7 @@ fn main() -> Result<(), Box<dyn std::error::Error>> {
         .file_descriptor_set_path(out.join("plumbline_descriptor.bin"))
         .compile_protos(&["proto/plumbline/v1/plumbline.proto"], &["proto"])?;
     println!("cargo:rerun-if-changed=proto");
+    // sqlx::migrate! embeds the migrations: a new one must rebuild.
+    println!("cargo:rerun-if-changed=migrations");
     Ok(())
 }

@@ -1511,6 +1511,7 @@ async fn every_estimator_reaches_the_board_metrics_history_and_table() {
                 window: None,
                 from_ms: 0,
                 to_ms: 0,
+                arm: String::new(),
             })
             .await
             .expect("history")
@@ -1534,6 +1535,7 @@ async fn every_estimator_reaches_the_board_metrics_history_and_table() {
             window: None,
             from_ms: 0,
             to_ms: 0,
+            arm: String::new(),
         })
         .await
         .expect_err("an unknown estimator is refused");

@@ -3,8 +3,10 @@
 //! arms and costs, ingested from CSV files (arm labels in `treatment`,
 //! `MODEL:ARM` prediction columns), recomputed, and read back. The
 //! service's boards (one per contrast) and arm-choice values must equal
-//! `plumbline score --arms` on the same files; bad rows are refused whole
-//! with their field and row.
+//! `plumbline score --arms` on the same files; each contrast's board
+//! reaches /metrics (label `contrast`) and GetHistory (field `arm`) with
+//! the board's numbers; bad rows are refused whole with their field and
+//! row.
 
 mod common;
 
@@ -303,6 +305,10 @@ fn a_three_arm_dataset_served_gives_the_offline_boards_and_policy_values() {
     ]);
     assert_eq!(cohort["scoreboard"]["n_units"], 600, "{cohort}");
 
+    // Every contrast's board reaches /metrics, labelled by its arm, with
+    // the board's numbers; and its models' history, read per contrast.
+    rt.block_on(contrast_series_and_history(&srv.0, &offline));
+
     // The table for a person: a board per contrast and the choice table.
     let (code, table, err) = call(&["scoreboard", "--dataset", "offers"]);
     assert_eq!(code, Some(0), "{err}");
@@ -338,6 +344,407 @@ fn a_three_arm_dataset_served_gives_the_offline_boards_and_policy_values() {
         &offline,
         1e-9,
         "recomputed after restart",
+    );
+    // History kept both recomputes of each contrast, across the restart.
+    let history = read(&[
+        "history",
+        "--dataset",
+        "offers",
+        "--model",
+        "good",
+        "--estimator",
+        "corrected_pehe",
+        "--arm",
+        "mail",
+    ]);
+    let points = history.as_array().expect("points");
+    assert_eq!(points.len(), 2, "{history}");
+    let want = contrasts[1]["board"]["models"]
+        .as_array()
+        .expect("models")
+        .iter()
+        .find(|m| m["name"] == "good")
+        .map(|m| m["corrected_pehe"]["estimate"].as_f64().expect("number"))
+        .expect("good on the mail board");
+    for p in points {
+        let got = p["estimate"].as_f64().expect("number");
+        // Both recomputes give the offline board to 1e-9 (checked above).
+        assert!(
+            (got - want).abs() <= 1e-9 * want.abs().max(1.0),
+            "{got} {want}"
+        );
+    }
+    let got: Vec<f64> = points
+        .iter()
+        .filter_map(|p| p["estimate"].as_f64())
+        .collect();
+    println!("good's corrected PEHE on mail, both recomputes: {got:?} (offline {want})");
+
+    // A retired model's series go at once, every contrast's too.
+    let rt = tokio::runtime::Runtime::new().expect("runtime");
+    let of_model = |model: &str| -> usize {
+        let (status, text) = common::service::http_get(srv.0.http, "/metrics");
+        assert_eq!(status, 200);
+        common::service::parse_metrics(&text)
+            .iter()
+            .filter(|(_, l, _)| l.contains(&("model".into(), model.into())))
+            .count()
+    };
+    let before = of_model("flat");
+    assert!(before > 0, "flat has series before it is retired");
+    rt.block_on(async {
+        let mut c = common::service::clients(srv.0.grpc).await;
+        c.models
+            .retire_model(pb::RetireModelRequest {
+                dataset: "offers".into(),
+                name: "flat".into(),
+            })
+            .await
+            .expect("retire")
+    });
+    assert_eq!(of_model("flat"), 0, "{before} series before");
+    println!("retiring flat took down its {before} series");
+}
+
+/// What history keeps of a wire model, keyed as `GetHistory` asks for it:
+/// every estimator's score, then vs_constant, policy_gain, autoc, qini.
+fn history_values(m: &pb::ModelScore) -> Vec<(String, f64, f64)> {
+    let mut out: Vec<(String, f64, f64)> = m
+        .scores
+        .iter()
+        .map(|s| (s.estimator.clone(), s.estimate, s.se))
+        .collect();
+    let v = m.vs_constant.unwrap_or_default();
+    out.push(("vs_constant".into(), v.estimate, v.se));
+    for (key, e) in [
+        ("policy_gain", m.policy_gain),
+        ("autoc", m.autoc),
+        ("qini", m.qini),
+    ] {
+        let e = e.unwrap_or_default();
+        out.push((key.into(), e.estimate, e.se));
+    }
+    out
+}
+
+/// The value of the one sample of `name` whose labels are exactly
+/// `labels`, in that order.
+fn sample(samples: &[common::service::Sample], name: &str, labels: &[(&str, &str)]) -> f64 {
+    let found: Vec<f64> = samples
+        .iter()
+        .filter(|(n, l, _)| {
+            n == name
+                && l.len() == labels.len()
+                && l.iter()
+                    .zip(labels)
+                    .all(|((k, v), (wk, wv))| k == wk && v == wv)
+        })
+        .map(|s| s.2)
+        .collect();
+    assert_eq!(found.len(), 1, "{name} {labels:?}: {found:?}");
+    found[0]
+}
+
+/// The metrics text carries a float's shortest round-trip form, and the
+/// wire an exact f64: a series equals its board's number to within the
+/// last bit (1e-12 relative leaves room for no more than that).
+fn assert_same(got: f64, want: f64, what: &str) {
+    assert!(
+        (got - want).abs() <= 1e-12 * want.abs().max(1.0),
+        "{what}: {got} on /metrics, {want} on the board"
+    );
+}
+
+/// After a recompute of the three-arm dataset: /metrics has each
+/// contrast's series in both exported windows, equal to the served
+/// boards' numbers, and each arm's effective share under the generalized
+/// propensity equal to `plumbline score --arms`'s; `GetHistory` answers
+/// per contrast with the board's values, and refuses a request without an
+/// arm (INVALID_ARGUMENT) or with an arm that has no contrast (NOT_FOUND).
+/// A binary dataset on the same server exports its series without a
+/// `contrast` label, and refuses an arm in a history request.
+async fn contrast_series_and_history(srv: &ServeBinary, offline: &Value) {
+    let mut c = common::service::clients(srv.grpc).await;
+    let mut boards = Vec::new();
+    for (window, kind) in [
+        ("cumulative", pb::window::Kind::Cumulative),
+        ("recent", pb::window::Kind::Recent),
+    ] {
+        boards.push((window, common::service::board(&mut c, "offers", kind).await));
+    }
+    let (status, text) = common::service::http_get(srv.http, "/metrics");
+    assert_eq!(status, 200, "{text}");
+    let samples = common::service::parse_metrics(&text);
+    let mut checked = 0;
+    for (window, board) in &boards {
+        assert_eq!(board.contrasts.len(), 2, "{window}");
+        for b in &board.contrasts {
+            let arm = b.arm.as_str();
+            let wl = [
+                ("dataset", "offers"),
+                ("window", *window),
+                ("contrast", arm),
+            ];
+            let front_runner = [
+                ("dataset", "offers"),
+                ("model", b.front_runner.as_str()),
+                ("window", *window),
+                ("contrast", arm),
+            ];
+            assert_eq!(
+                sample(&samples, "plumbline_front_runner_info", &front_runner),
+                1.0
+            );
+            let front_runners = samples
+                .iter()
+                .filter(|(n, l, _)| {
+                    n == "plumbline_front_runner_info"
+                        && l.contains(&("dataset".into(), "offers".into()))
+                        && l.contains(&("window".into(), window.to_string()))
+                        && l.contains(&("contrast".into(), arm.into()))
+                })
+                .count();
+            assert_eq!(front_runners, 1, "{window} {arm}: one front-runner");
+            let uncertain = b.best_set.len() > 1 && b.models.iter().any(|m| !m.baseline);
+            assert_eq!(
+                sample(&samples, "plumbline_front_runner_uncertain", &wl),
+                f64::from(u8::from(uncertain))
+            );
+            assert_eq!(
+                sample(&samples, "plumbline_no_detectable_heterogeneity", &wl),
+                f64::from(u8::from(b.no_detectable_heterogeneity))
+            );
+            for m in &b.models {
+                let ml = [
+                    ("dataset", "offers"),
+                    ("model", m.name.as_str()),
+                    ("window", *window),
+                    ("contrast", arm),
+                ];
+                let what = format!("{window} {arm} {}", m.name);
+                assert_eq!(
+                    sample(&samples, "plumbline_model_rank", &ml),
+                    f64::from(m.rank)
+                );
+                assert_same(
+                    sample(&samples, "plumbline_model_draw_share", &ml),
+                    m.draw_share,
+                    &what,
+                );
+                if let Some(bound) = m.rmse_lower_bound {
+                    assert_same(
+                        sample(&samples, "plumbline_model_rmse_lower_bound", &ml),
+                        bound,
+                        &what,
+                    );
+                }
+                for (key, estimate, se) in history_values(m) {
+                    let sl = [
+                        ("dataset", "offers"),
+                        ("model", m.name.as_str()),
+                        ("estimator", key.as_str()),
+                        ("window", *window),
+                        ("contrast", arm),
+                    ];
+                    assert_same(
+                        sample(&samples, "plumbline_model_score", &sl),
+                        estimate,
+                        &format!("{what} {key}"),
+                    );
+                    assert_same(
+                        sample(&samples, "plumbline_model_score_se", &sl),
+                        se,
+                        &format!("{what} {key} se"),
+                    );
+                    checked += 2;
+                }
+            }
+        }
+    }
+    // "text-only" predicts one contrast: it has no mail series.
+    assert!(!samples.iter().any(|(_, l, _)| {
+        l.contains(&("model".into(), "text-only".into()))
+            && l.contains(&("contrast".into(), "mail".into()))
+    }));
+    for (k, p) in offline["propensity"]
+        .as_array()
+        .expect("propensity per arm")
+        .iter()
+        .enumerate()
+    {
+        let arm = p["arm"].as_str().expect("arm");
+        assert_eq!(arm, ARMS[k]);
+        let want = p["effective_share"].as_f64().expect("number");
+        for window in ["cumulative", "recent"] {
+            let got = sample(
+                &samples,
+                "plumbline_overlap_effective_share",
+                &[("dataset", "offers"), ("window", window), ("arm", arm)],
+            );
+            // The service's board equals the offline document to 1e-9.
+            assert!(
+                (got - want).abs() <= 1e-9,
+                "{window} {arm}: {got} vs {want}"
+            );
+        }
+        println!("arm {arm}: effective share {want:.4} on /metrics and offline");
+    }
+    println!("{checked} per-contrast score and se series equal to the boards");
+
+    // History per contrast: the one recompute's values, as on the board.
+    for b in &boards[0].1.contrasts {
+        for m in &b.models {
+            for (key, estimate, se) in history_values(m) {
+                let points = c
+                    .scoring
+                    .get_history(pb::GetHistoryRequest {
+                        dataset: "offers".into(),
+                        model: m.name.clone(),
+                        estimator: key.clone(),
+                        arm: b.arm.clone(),
+                        ..Default::default()
+                    })
+                    .await
+                    .expect("history of a contrast")
+                    .into_inner()
+                    .points;
+                assert_eq!(points.len(), 1, "{} {} {key}", b.arm, m.name);
+                let v = points[0].value.unwrap_or_default();
+                // Stored as a double and read back: the same number.
+                assert_eq!((v.estimate, v.se), (estimate, se), "{} {key}", m.name);
+                assert_eq!(points[0].rank, m.rank);
+            }
+        }
+    }
+    let ask = |arm: &str| pb::GetHistoryRequest {
+        dataset: "offers".into(),
+        model: "good".into(),
+        estimator: "corrected_pehe".into(),
+        arm: arm.into(),
+        ..Default::default()
+    };
+    let refused = c.scoring.get_history(ask("")).await.expect_err("no arm");
+    assert_eq!(refused.code(), tonic::Code::InvalidArgument);
+    assert!(
+        refused.message().starts_with("arm:") && refused.message().contains("text, mail"),
+        "{}",
+        refused.message()
+    );
+    for arm in ["none", "sms"] {
+        let refused = c
+            .scoring
+            .get_history(ask(arm))
+            .await
+            .expect_err("no contrast");
+        assert_eq!(refused.code(), tonic::Code::NotFound, "{arm}");
+        assert!(
+            refused.message().starts_with("arm:"),
+            "{}",
+            refused.message()
+        );
+    }
+
+    // A binary dataset beside it: its series carry no contrast label.
+    let mut spec = common::service::continuous_spec("clicks", 1);
+    spec.folds = 3;
+    c.datasets
+        .create_dataset(pb::CreateDatasetRequest { spec: Some(spec) })
+        .await
+        .expect("create");
+    common::service::register(&mut c, "clicks", "m").await;
+    let mut rng = ChaCha8Rng::seed_from_u64(5);
+    let (mut units, mut preds, mut outcomes) = (Vec::new(), Vec::new(), Vec::new());
+    for i in 0..400 {
+        let (x1, _, arm, y, tau) = common::three_arm_unit(&mut rng);
+        let key = format!("c{i}");
+        units.push(common::service::unit_row(
+            &key,
+            &[x1],
+            f64::from(u8::from(arm > 0)),
+            None,
+            "",
+        ));
+        preds.push(pb::PredictionRow {
+            model: "m".into(),
+            unit_key: key.clone(),
+            effect: tau[1],
+            ..Default::default()
+        });
+        outcomes.push(pb::OutcomeRow {
+            unit_key: key,
+            value: y,
+            observed_at_ms: 0,
+        });
+    }
+    common::service::send_units(&mut c, "clicks", units).await;
+    common::service::send_predictions(&mut c, "clicks", preds).await;
+    common::service::send_outcomes(&mut c, "clicks", outcomes).await;
+    common::service::recompute(&mut c, "clicks", false).await;
+    let binary = common::service::board(&mut c, "clicks", pb::window::Kind::Cumulative).await;
+    let (_, text) = common::service::http_get(srv.http, "/metrics");
+    let samples = common::service::parse_metrics(&text);
+    let of_clicks: Vec<_> = samples
+        .iter()
+        .filter(|(_, l, _)| l.first() == Some(&("dataset".into(), "clicks".into())))
+        .collect();
+    assert!(of_clicks.len() > 20, "{}", of_clicks.len());
+    assert!(
+        of_clicks
+            .iter()
+            .all(|(_, l, _)| l.iter().all(|(k, _)| k != "contrast")),
+        "a binary dataset's series have no contrast label"
+    );
+    let m = binary.models.iter().find(|m| m.name == "m").expect("m");
+    let rank = [
+        ("dataset", "clicks"),
+        ("model", "m"),
+        ("window", "cumulative"),
+    ];
+    assert_eq!(
+        sample(&samples, "plumbline_model_rank", &rank),
+        f64::from(m.rank)
+    );
+    for arm in ["treated", "control"] {
+        sample(
+            &samples,
+            "plumbline_overlap_effective_share",
+            &[
+                ("dataset", "clicks"),
+                ("window", "cumulative"),
+                ("arm", arm),
+            ],
+        );
+    }
+    let refused = c
+        .scoring
+        .get_history(pb::GetHistoryRequest {
+            dataset: "clicks".into(),
+            ..ask("text")
+        })
+        .await
+        .expect_err("an arm on a binary dataset");
+    assert_eq!(refused.code(), tonic::Code::InvalidArgument);
+    assert!(
+        refused.message().starts_with("arm:"),
+        "{}",
+        refused.message()
+    );
+    let points = c
+        .scoring
+        .get_history(pb::GetHistoryRequest {
+            dataset: "clicks".into(),
+            model: "m".into(),
+            estimator: "corrected_pehe".into(),
+            ..Default::default()
+        })
+        .await
+        .expect("binary history")
+        .into_inner()
+        .points;
+    assert_eq!(points.len(), 1);
+    println!(
+        "binary dataset: {} series without a contrast label",
+        of_clicks.len()
     );
 }
 

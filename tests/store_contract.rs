@@ -320,6 +320,7 @@ async fn snapshots_keep_each_windows_latest_board_and_the_history() {
             model: "m".into(),
             estimator: "dr_loss".into(),
             window: window.into(),
+            arm: String::new(),
             estimate,
             se: 0.1,
             rank: 1,
@@ -371,7 +372,19 @@ async fn snapshots_keep_each_windows_latest_board_and_the_history() {
             refitted: false,
             millis: 2.0,
             boards: &second,
-            scores: &[row("cumulative", 1.5)],
+            // The same model, estimator and window on two contrasts' boards
+            // besides its binary value: the arm is part of a row's identity.
+            scores: &[
+                row("cumulative", 1.5),
+                ScoreRow {
+                    arm: "text".into(),
+                    ..row("cumulative", 2.5)
+                },
+                ScoreRow {
+                    arm: "mail".into(),
+                    ..row("cumulative", 3.5)
+                },
+            ],
             watch: "{\"looks\":2}",
         })
         .await
@@ -411,6 +424,7 @@ async fn snapshots_keep_each_windows_latest_board_and_the_history() {
             model: "m",
             key: "dr_loss",
             window,
+            arm: "",
             from_ms,
             to_ms,
         };
@@ -430,6 +444,22 @@ async fn snapshots_keep_each_windows_latest_board_and_the_history() {
             .await
             .expect("history");
         assert_eq!(points.len(), 1, "{name}: by window");
+        for (arm, want) in [("text", 2.5), ("mail", 3.5), ("sms", f64::NAN)] {
+            let points = s
+                .history(&HistoryQuery {
+                    arm,
+                    ..history("cumulative", 0, i64::MAX)
+                })
+                .await
+                .expect("history");
+            let got: Vec<(i64, f64)> = points.iter().map(|p| (p.snapshot_id, p.estimate)).collect();
+            let expected = if want.is_nan() {
+                vec![]
+            } else {
+                vec![(s3, want)]
+            };
+            assert_eq!(got, expected, "{name}: the contrast {arm}'s rows only");
+        }
         s.close().await;
     }
 }
@@ -1032,6 +1062,8 @@ async fn a_sqlite_store_from_before_arms_reads_back_its_binary_rows() {
             "INSERT INTO units VALUES (1, 1, 'b', x'000000000000F03F', 0, NULL, 'c', 3, 4)",
             "INSERT INTO predictions VALUES (1, 1, 0, 0.5, 5, 6, 0)",
             "INSERT INTO predictions VALUES (1, 1, 1, -0.5, 5, 6, 1)",
+            "INSERT INTO snapshot_scores VALUES (1, 'm', 'dr_loss', 'cumulative', 7, 8, 0.25, \
+             0.5, 1, 2)",
         ] {
             sqlx::query(sql).execute(&pool).await.expect(sql);
         }
@@ -1058,5 +1090,28 @@ async fn a_sqlite_store_from_before_arms_reads_back_its_binary_rows() {
         vec![(0, 0, 1, 0.5), (1, 1, 1, -0.5)],
         "predictions stored before arms are the treatment's, arm 1"
     );
+    let history = |arm: &'static str| HistoryQuery {
+        dataset_id: d.id,
+        model: "m",
+        key: "dr_loss",
+        window: "cumulative",
+        arm,
+        from_ms: 0,
+        to_ms: i64::MAX,
+    };
+    let points = s.history(&history("")).await.expect("history");
+    assert_eq!(
+        points
+            .iter()
+            .map(|p| (p.snapshot_id, p.estimate, p.se, p.rank, p.units))
+            .collect::<Vec<_>>(),
+        vec![(7, 0.25, 0.5, 1, 2)],
+        "history stored before contrasts reads as a binary dataset's, arm \"\""
+    );
+    assert!(s
+        .history(&history("text"))
+        .await
+        .expect("history")
+        .is_empty());
     s.close().await;
 }

@@ -66,6 +66,33 @@ fn contrast(board: Board, arm: &str) -> Result<Board, Status> {
         })
 }
 
+/// Checks a history request's `arm` against the dataset's declared arms
+/// (the reference first; none on a binary dataset): required on a dataset
+/// with arms, where it names a contrast (any arm but the reference), and
+/// refused on a binary one.
+fn history_arm(arms: &[String], arm: &str) -> Result<(), Status> {
+    let Some((reference, contrasts)) = arms.split_first() else {
+        if arm.is_empty() {
+            return Ok(());
+        }
+        return Err(Status::invalid_argument(format!(
+            "arm: {arm:?} given, but the dataset declares no arms"
+        )));
+    };
+    let named = contrasts.join(", ");
+    if arm.is_empty() {
+        return Err(Status::invalid_argument(format!(
+            "arm: the dataset has arms; name the contrast whose history to read (one of {named})"
+        )));
+    }
+    if !contrasts.iter().any(|a| a == arm) {
+        return Err(Status::not_found(format!(
+            "arm: {arm:?} has no contrast against {reference} (one of {named})"
+        )));
+    }
+    Ok(())
+}
+
 #[tonic::async_trait]
 impl pb::scoring_server::Scoring for ScoringService {
     #[tracing::instrument(skip_all, fields(rpc = "Recompute"))]
@@ -122,7 +149,13 @@ impl pb::scoring_server::Scoring for ScoringService {
                 history_keys().collect::<Vec<_>>().join(", ")
             )));
         }
-        let id = self.monitor.dataset_id(&r.dataset).map_err(from_monitor)?;
+        let info = self
+            .monitor
+            .dataset(&r.dataset)
+            .await
+            .map_err(from_monitor)?;
+        history_arm(&info.stored.spec.arms, &r.arm)?;
+        let id = info.stored.id;
         let to = if r.to_ms == 0 { i64::MAX } else { r.to_ms };
         let rows = self
             .monitor
@@ -132,6 +165,7 @@ impl pb::scoring_server::Scoring for ScoringService {
                 model: &r.model,
                 key: &r.estimator,
                 window: &window_of(&r.window)?.key(),
+                arm: &r.arm,
                 from_ms: r.from_ms,
                 to_ms: to,
             })

@@ -531,6 +531,10 @@ pub struct HistoryArgs {
     /// Only snapshots at or before this time (the same forms as --since).
     #[arg(long, value_name = "TIME")]
     pub until: Option<String>,
+    /// On a dataset with arms, the contrast whose history to read: the arm
+    /// whose board against the reference holds the values.
+    #[arg(long, value_name = "ARM")]
+    pub arm: Option<String>,
 }
 
 /// `--since` / `--until` as the request's bounds (0 = open), checked so a
@@ -573,6 +577,7 @@ pub fn history(c: &Connection, a: &HistoryArgs) -> ExitCode {
                     window: Some(window(&a.window.window)?),
                     from_ms,
                     to_ms,
+                    arm: a.arm.clone().unwrap_or_default(),
                 },
             )?)
             .await
@@ -590,8 +595,13 @@ pub fn history(c: &Connection, a: &HistoryArgs) -> ExitCode {
                 .collect::<Vec<_>>()));
             return Ok(());
         }
+        let contrast = a
+            .arm
+            .as_deref()
+            .map(|arm| format!(", contrast {arm}"))
+            .unwrap_or_default();
         println!(
-            "{} / {} / {} ({} window)",
+            "{} / {} / {} ({} window{contrast})",
             a.dataset.dataset, a.model, a.estimator, a.window.window
         );
         println!(

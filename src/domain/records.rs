@@ -102,6 +102,10 @@ pub struct ScoreRow {
     pub model: String,
     pub estimator: String,
     pub window: String,
+    /// On a dataset with arms, the arm of the contrast whose board the
+    /// value is on (that arm against the reference); empty on a binary
+    /// dataset, as on every row stored before arms.
+    pub arm: String,
     pub estimate: f64,
     pub se: f64,
     pub rank: i64,

@@ -12,12 +12,21 @@
 //! - `plumbline_drift_standardized_difference` {quantity}: a feature's or
 //!   the propensity's drift from the watch's reference population
 //!
+//! On a dataset with arms every board-derived series above and below
+//! (`cumulative` and `recent` windows) comes once per contrast, with a
+//! `contrast` label naming the arm compared with the reference (e.g.
+//! `contrast="text"`); a binary dataset's series have no `contrast` label.
+//! `plumbline_overlap_effective_share` {window, arm} then holds each arm's
+//! share under the generalized (multi-arm) propensity, `arm` the arm's
+//! label.
+//!
 //! `window="stream"` series come from the stream watch behind the alerts
 //! (anytime-valid: see `estimate::watch`); `cumulative` and `recent`
 //! series are the boards' point estimates of the latest look.
 //! - `plumbline_front_runner_uncertain`, `plumbline_no_detectable_heterogeneity`,
 //!   `plumbline_overlap_degraded`, `plumbline_overlap_extreme_share` {window}
-//! - `plumbline_overlap_effective_share` {window, arm}
+//! - `plumbline_overlap_effective_share` {window, arm}: `treated` and
+//!   `control` on a binary dataset
 //! - `plumbline_ingest_rows_total` {kind, result}
 //! - `plumbline_ingest_conflicts_total` {kind}: batches another server
 //!   numbered first (shared store), checked and numbered again
@@ -33,7 +42,7 @@
 use std::sync::atomic::AtomicU64;
 use std::sync::Arc;
 
-use prometheus_client::encoding::EncodeLabelSet;
+use prometheus_client::encoding::{EncodeLabel, EncodeLabelSet, LabelSetEncoder};
 use prometheus_client::metrics::counter::Counter;
 use prometheus_client::metrics::family::Family;
 use prometheus_client::metrics::gauge::Gauge;
@@ -46,19 +55,58 @@ pub mod process;
 pub type FloatGaugeType = Gauge<f64, AtomicU64>;
 type FloatGauge = FloatGaugeType;
 
-#[derive(Clone, Debug, Hash, PartialEq, Eq, EncodeLabelSet)]
+/// Writes `label="value"`, as the derived encoders do.
+fn label(encoder: &mut LabelSetEncoder, key: &str, value: &str) -> Result<(), std::fmt::Error> {
+    (key, value).encode(encoder.encode_label())
+}
+
+/// Writes the `contrast` label only on a contrast's series: a binary
+/// dataset's series keep exactly the labels they had before contrasts.
+fn contrast_label(encoder: &mut LabelSetEncoder, contrast: &str) -> Result<(), std::fmt::Error> {
+    if contrast.is_empty() {
+        return Ok(());
+    }
+    label(encoder, "contrast", contrast)
+}
+
+/// A board's per-model, per-estimator series. `contrast` is the arm of a
+/// contrast's board on a dataset with arms (that arm against the
+/// reference), empty on a binary dataset, where it is not written.
+#[derive(Clone, Debug, Hash, PartialEq, Eq)]
 pub struct ScoreLabels {
     pub dataset: String,
     pub model: String,
     pub estimator: String,
     pub window: String,
+    pub contrast: String,
 }
 
-#[derive(Clone, Debug, Hash, PartialEq, Eq, EncodeLabelSet)]
+impl EncodeLabelSet for ScoreLabels {
+    fn encode(&self, encoder: &mut LabelSetEncoder) -> Result<(), std::fmt::Error> {
+        label(encoder, "dataset", &self.dataset)?;
+        label(encoder, "model", &self.model)?;
+        label(encoder, "estimator", &self.estimator)?;
+        label(encoder, "window", &self.window)?;
+        contrast_label(encoder, &self.contrast)
+    }
+}
+
+/// A board's per-model series; `contrast` as in [`ScoreLabels`].
+#[derive(Clone, Debug, Hash, PartialEq, Eq)]
 pub struct ModelLabels {
     pub dataset: String,
     pub model: String,
     pub window: String,
+    pub contrast: String,
+}
+
+impl EncodeLabelSet for ModelLabels {
+    fn encode(&self, encoder: &mut LabelSetEncoder) -> Result<(), std::fmt::Error> {
+        label(encoder, "dataset", &self.dataset)?;
+        label(encoder, "model", &self.model)?;
+        label(encoder, "window", &self.window)?;
+        contrast_label(encoder, &self.contrast)
+    }
 }
 
 #[derive(Clone, Debug, Hash, PartialEq, Eq, EncodeLabelSet)]
@@ -67,10 +115,20 @@ pub struct QuantityLabels {
     pub quantity: String,
 }
 
-#[derive(Clone, Debug, Hash, PartialEq, Eq, EncodeLabelSet)]
+/// A window's series; `contrast` as in [`ScoreLabels`].
+#[derive(Clone, Debug, Hash, PartialEq, Eq)]
 pub struct WindowLabels {
     pub dataset: String,
     pub window: String,
+    pub contrast: String,
+}
+
+impl EncodeLabelSet for WindowLabels {
+    fn encode(&self, encoder: &mut LabelSetEncoder) -> Result<(), std::fmt::Error> {
+        label(encoder, "dataset", &self.dataset)?;
+        label(encoder, "window", &self.window)?;
+        contrast_label(encoder, &self.contrast)
+    }
 }
 
 #[derive(Clone, Debug, Hash, PartialEq, Eq, EncodeLabelSet)]
@@ -305,5 +363,65 @@ impl Metrics {
             out.clear();
         }
         out
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// The `contrast` label is written on a contrast's series and left out
+    /// entirely (not written empty) on a binary dataset's, whose lines stay
+    /// what the derived encoder wrote before the label existed.
+    #[test]
+    fn the_contrast_label_is_written_only_on_a_contrast() {
+        let mut registry = Registry::default();
+        let ranks: Family<ModelLabels, FloatGauge> = Family::default();
+        let scores: Family<ScoreLabels, FloatGauge> = Family::default();
+        let windows: Family<WindowLabels, FloatGauge> = Family::default();
+        registry.register("rank", "r", ranks.clone());
+        registry.register("score", "s", scores.clone());
+        registry.register("uncertain", "u", windows.clone());
+        let model = |contrast: &str| ModelLabels {
+            dataset: "d".into(),
+            model: "m".into(),
+            window: "cumulative".into(),
+            contrast: contrast.into(),
+        };
+        ranks.get_or_create(&model("")).set(1.0);
+        ranks.get_or_create(&model("text")).set(2.0);
+        scores
+            .get_or_create(&ScoreLabels {
+                dataset: "d".into(),
+                model: "m".into(),
+                estimator: "corrected_pehe".into(),
+                window: "recent".into(),
+                contrast: "mail".into(),
+            })
+            .set(0.5);
+        windows
+            .get_or_create(&WindowLabels {
+                dataset: "d".into(),
+                window: "recent".into(),
+                contrast: String::new(),
+            })
+            .set(0.0);
+        let mut text = String::new();
+        prometheus_client::encoding::text::encode(&mut text, &registry).expect("encode");
+        println!("{text}");
+        for line in [
+            "rank{dataset=\"d\",model=\"m\",window=\"cumulative\"} 1.0",
+            "rank{dataset=\"d\",model=\"m\",window=\"cumulative\",contrast=\"text\"} 2.0",
+            "score{dataset=\"d\",model=\"m\",estimator=\"corrected_pehe\",window=\"recent\",\
+             contrast=\"mail\"} 0.5",
+            "uncertain{dataset=\"d\",window=\"recent\"} 0.0",
+        ] {
+            assert!(text.lines().any(|l| l == line), "{line} in\n{text}");
+        }
+        assert!(!text.contains("contrast=\"\""), "{text}");
+        // Series differing only in their contrast are distinct.
+        assert_eq!(ranks.get_or_create(&model("")).get(), 1.0);
+        assert!(ranks.remove(&model("text")));
+        assert_eq!(ranks.get_or_create(&model("")).get(), 1.0);
     }
 }

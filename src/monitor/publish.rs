@@ -211,6 +211,7 @@ impl Monitor {
                     scores.push(ScoreRow {
                         model: m.name.clone(),
                         window: w.key.clone(),
+                        arm: String::new(),
                         estimate: e.estimate,
                         se: e.se,
                         rank: i64::from(m.rank),
@@ -278,6 +279,7 @@ impl Monitor {
                     .get_or_create(&WindowLabels {
                         dataset: h.name.clone(),
                         window: alerts::STREAM.into(),
+                        contrast: String::new(),
                     })
                     .inc();
             }
@@ -319,7 +321,7 @@ impl Monitor {
                 .into(),
             })
             .observe(seconds);
-        self.forget_models(&h.name, &gone);
+        self.forget_models(&h.name, &[], &gone);
         self.export_boards(&h.name, &boards, &previous, &nuisance);
         self.export_watch(&h.name, watched_front_runner, &computed.watch);
         info!(

@@ -1,9 +1,10 @@
 //! A recompute of a dataset with arms, published: the job (a full
 //! cross-fitted fit and every window's boards, see
 //! `recompute/arms.rs`) runs on the blocking pool, its snapshot is stored
-//! and its boards installed. Alerts, history values and per-contrast
-//! metrics are not produced for such a dataset yet; its boards are what
-//! `GetScoreboard` serves.
+//! and its boards installed. Every contrast's models get history rows
+//! (labelled by the contrast's arm, which `GetHistory` reads with `arm`)
+//! and every contrast's board its series (`monitor/export.rs`, labelled
+//! `contrast`). Alerts are not produced for such a dataset yet.
 
 use std::collections::BTreeMap;
 use std::sync::Arc;
@@ -15,6 +16,7 @@ use super::board;
 use super::publish::RecomputeSummary;
 use super::recompute::RecomputeInput;
 use super::{DatasetHandle, Monitor, MonitorError, MonitorResult};
+use crate::domain::{Board, ScoreRow};
 use crate::metrics::KindLabels;
 use crate::store::{Fence, NewSnapshot};
 
@@ -37,6 +39,7 @@ impl Monitor {
             .map_err(|e| MonitorError::Internal(e.to_string()))??;
         let snapshot_id = self.store.next_snapshot_id().await?;
         let mut boards = BTreeMap::new();
+        let mut scores = Vec::new();
         for w in windows {
             let parts = board::BoardParts {
                 dataset: &h.name,
@@ -51,6 +54,9 @@ impl Monitor {
                 Ok(b) => board::arms_board(parts, b),
                 Err(state) => board::degenerate(parts, w.units as u64, state.clone()),
             };
+            for c in &b.contrasts {
+                scores.extend(contrast_score_rows(&w.key, c));
+            }
             boards.insert(w.key, b);
         }
         let changed: Vec<_> = boards.values().cloned().collect();
@@ -64,12 +70,16 @@ impl Monitor {
                 refitted: true,
                 millis,
                 boards: &changed,
-                scores: &[],
+                scores: &scores,
                 watch: &watch_json,
             })
             .await?;
         let units = boards.get("cumulative").map(|b| b.units).unwrap_or(0);
-        h.publish(boards);
+        // One recompute of a dataset at a time (the caller holds its
+        // recompute lock), so the boards read here are the ones replaced.
+        let old = h.boards();
+        h.publish(boards.clone());
+        self.export_arms_boards(&h.name, &boards, &old);
         self.metrics
             .recompute_seconds
             .get_or_create(&KindLabels {
@@ -88,4 +98,29 @@ impl Monitor {
             millis,
         })
     }
+}
+
+/// The history rows of one contrast's board in a window: every model's
+/// history values, labelled by the contrast's arm.
+fn contrast_score_rows(window: &str, c: &Board) -> Vec<ScoreRow> {
+    let mut rows = Vec::new();
+    for m in &c.models {
+        for (estimator, e) in m.history_values() {
+            rows.push(ScoreRow {
+                model: m.name.clone(),
+                window: window.into(),
+                arm: c.arm.clone(),
+                estimate: e.estimate,
+                se: e.se,
+                rank: i64::from(m.rank),
+                units: if matches!(estimator.as_str(), "autoc" | "qini") {
+                    c.rank_metrics_units as i64
+                } else {
+                    c.units as i64
+                },
+                estimator,
+            });
+        }
+    }
+    rows
 }

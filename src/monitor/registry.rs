@@ -333,10 +333,12 @@ impl Monitor {
             .await?;
         st.cache.models[m].model.retired_at_ms = at;
         let out = (st.cache.models[m].model.clone(), st.cache.models[m].total());
+        let contrasts: Vec<String> = st.cache.arms.iter().skip(1).cloned().collect();
         drop(st);
-        // Its series go at once (the next recompute leaves it off the
-        // boards; a server that does not own the dataset exports none).
-        self.forget_models(dataset, &[name.to_string()]);
+        // Its series go at once, every contrast's too (the next recompute
+        // leaves it off the boards; a server that does not own the dataset
+        // exports none).
+        self.forget_models(dataset, &contrasts, &[name.to_string()]);
         self.raise(
             &h,
             None,

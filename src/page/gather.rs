@@ -167,6 +167,7 @@ async fn histories(
                 model: &m.name,
                 key: HISTORY_KEY,
                 window: WINDOW,
+                arm: "",
                 from_ms: board.computed_at_ms.saturating_sub(HISTORY_SPAN_MS),
                 to_ms: i64::MAX,
             })

@@ -577,6 +577,8 @@ pub struct HistoryQuery<'a> {
     pub key: &'a str,
     /// A window's key (`cumulative`, `recent`, `cohort:<label>`).
     pub window: &'a str,
+    /// The contrast's arm on a dataset with arms; empty on a binary one.
+    pub arm: &'a str,
     pub from_ms: i64,
     pub to_ms: i64,
 }

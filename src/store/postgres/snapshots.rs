@@ -109,18 +109,20 @@ impl SnapshotLog for PgStore {
             let model: Vec<&str> = chunk.iter().map(|s| s.model.as_str()).collect();
             let estimator: Vec<&str> = chunk.iter().map(|s| s.estimator.as_str()).collect();
             let window: Vec<&str> = chunk.iter().map(|s| s.window.as_str()).collect();
+            let arm: Vec<&str> = chunk.iter().map(|s| s.arm.as_str()).collect();
             let estimate: Vec<f64> = chunk.iter().map(|s| s.estimate).collect();
             let se: Vec<f64> = chunk.iter().map(|s| s.se).collect();
             let rank: Vec<i64> = chunk.iter().map(|s| s.rank).collect();
             let units: Vec<i64> = chunk.iter().map(|s| s.units).collect();
             sqlx::query(
                 "INSERT INTO snapshot_scores (dataset_id, model, estimator, window_key, \
-                 snapshot_id, computed_at_ms, estimate, se, rank, units) \
+                 snapshot_id, computed_at_ms, estimate, se, rank, units, arm) \
                  SELECT $1, s.model, s.estimator, s.window_key, $2, $3, s.estimate, s.se, \
-                        s.rank, s.units \
+                        s.rank, s.units, s.arm \
                  FROM UNNEST($4::TEXT[], $5::TEXT[], $6::TEXT[], $7::DOUBLE PRECISION[], \
-                             $8::DOUBLE PRECISION[], $9::BIGINT[], $10::BIGINT[]) \
-                      AS s (model, estimator, window_key, estimate, se, rank, units)",
+                             $8::DOUBLE PRECISION[], $9::BIGINT[], $10::BIGINT[], \
+                             $11::TEXT[]) \
+                      AS s (model, estimator, window_key, estimate, se, rank, units, arm)",
             )
             .bind(dataset_id)
             .bind(id)
@@ -132,6 +134,7 @@ impl SnapshotLog for PgStore {
             .bind(se)
             .bind(rank)
             .bind(units)
+            .bind(arm)
             .execute(&mut *tx)
             .await?;
         }
@@ -198,7 +201,8 @@ impl SnapshotLog for PgStore {
         let rows = sqlx::query(
             "SELECT snapshot_id, computed_at_ms, estimate, se, rank, units FROM snapshot_scores \
              WHERE dataset_id = $1 AND model = $2 AND estimator = $3 AND window_key = $4 \
-             AND computed_at_ms >= $5 AND computed_at_ms <= $6 ORDER BY snapshot_id",
+             AND computed_at_ms >= $5 AND computed_at_ms <= $6 AND arm = $7 \
+             ORDER BY snapshot_id",
         )
         .bind(q.dataset_id)
         .bind(q.model)
@@ -206,6 +210,7 @@ impl SnapshotLog for PgStore {
         .bind(q.window)
         .bind(q.from_ms)
         .bind(q.to_ms)
+        .bind(q.arm)
         .fetch_all(&self.pool)
         .await?;
         Ok(rows

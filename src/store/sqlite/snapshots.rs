@@ -105,12 +105,13 @@ impl SnapshotLog for SqliteStore {
         }
         for chunk in scores.chunks(INSERT_CHUNK) {
             let mut q: QueryBuilder<Sqlite> = QueryBuilder::new(
-                "INSERT INTO snapshot_scores (dataset_id, model, estimator, window, snapshot_id, \
-                 computed_at_ms, estimate, se, rank, units) ",
+                "INSERT INTO snapshot_scores (dataset_id, model, arm, estimator, window, \
+                 snapshot_id, computed_at_ms, estimate, se, rank, units) ",
             );
             q.push_values(chunk, |mut b, s| {
                 b.push_bind(dataset_id)
                     .push_bind(&s.model)
+                    .push_bind(&s.arm)
                     .push_bind(&s.estimator)
                     .push_bind(&s.window)
                     .push_bind(id)
@@ -188,11 +189,12 @@ impl SnapshotLog for SqliteStore {
     async fn history(&self, q: &HistoryQuery<'_>) -> StoreResult<Vec<HistoryRow>> {
         let rows = sqlx::query(
             "SELECT snapshot_id, computed_at_ms, estimate, se, rank, units FROM snapshot_scores \
-             WHERE dataset_id = ? AND model = ? AND estimator = ? AND window = ? \
+             WHERE dataset_id = ? AND model = ? AND arm = ? AND estimator = ? AND window = ? \
              AND computed_at_ms >= ? AND computed_at_ms <= ? ORDER BY snapshot_id",
         )
         .bind(q.dataset_id)
         .bind(q.model)
+        .bind(q.arm)
         .bind(q.key)
         .bind(q.window)
         .bind(q.from_ms)
