@@ -402,12 +402,9 @@ pub async fn run(c: &mut Client, seed: u64) -> DemoResult<Value> {
         interval(&policy.best_single_arm_value)
     );
     println!(
-        "    {:<14}{:<28}{:<28}{:>6}  {}",
-        "model",
+        "    model          {:<28}{:<28} true  no/credit/pass",
         format!("vs everyone {reference}"),
         format!("vs everyone {}", policy.best_single_arm),
-        "true",
-        "no/credit/pass"
     );
     let mut models = Vec::new();
     for p in &policy.models {
