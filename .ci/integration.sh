@@ -14,6 +14,10 @@
 #     recomputes with a refit and gets a scoreboard ranking every model plus
 #     the two baselines;
 #   - the Python client's unit tests (clients/python/tests) pass;
+#   - a three-arm dataset streamed through the client (arm labels, costs,
+#     predictions per arm) gets a board for each contrast with the model
+#     that predicts the true effects first on both, an arm policy report
+#     and a per-contrast comparison;
 #   - a recompute of a dataset with no outcomes fails as documented
 #     (FAILED_PRECONDITION), which the service counts in
 #     plumbline_recompute_failures_total;
@@ -198,6 +202,80 @@ if PLUMBLINE_BIN="$bin" python3 -m unittest discover -s "$client_dir/tests"; the
     pass "clients/python/tests (frames and defaults)"
 else
     fail "clients/python/tests (frames and defaults)"
+fi
+
+# A three-arm dataset through the client: arms drawn by a softmax of x1
+# (confounded, the probabilities logged), effects of text 1 + x1 and of mail
+# 0.5 - x2; "good" predicts them, "flat" says 0.2 for both.
+if PYTHONPATH="$root/$client_dir" python3 - "$grpc_addr" <<'EOF'; then
+import math
+import random
+import sys
+
+import pandas as pd
+import plumbline_client as pc
+
+rng = random.Random(3)
+arms = ["none", "text", "mail"]
+rows = []
+for i in range(1500):
+    x1, x2 = rng.uniform(-1, 1), rng.uniform(-1, 1)
+    w = [1.0, math.exp(0.5 * x1), math.exp(-0.5 * x1)]
+    p = [v / sum(w) for v in w]
+    a = rng.choices(range(3), weights=p)[0]
+    tau = [0.0, 1.0 + x1, 0.5 - x2]
+    y = x1 + x2 + tau[a] + rng.uniform(-1, 1)
+    rows.append({"unit_id": f"a{i}", "x1": x1, "x2": x2, "arm": arms[a], "p": p[a], "outcome": y,
+                 "good:text": tau[1], "good:mail": tau[2]})
+df = pd.DataFrame(rows)
+name = "integration-three-arms"
+with pc.connect(sys.argv[1]) as client:
+    client.create_dataset(name, ["x1", "x2"], arms=arms, arm_costs={"mail": 0.1}, seed=7,
+                          recompute_every_outcomes=1_000_000, recompute_every_seconds=3600)
+    for m in ("good", "flat"):
+        client.register_model(name, m)
+    client.send_units(name, df, arm="arm", propensity="p")
+    for arm in ("text", "mail"):
+        preds = pd.DataFrame({"unit_id": df["unit_id"], "good": df[f"good:{arm}"], "flat": 0.2})
+        client.send_predictions(name, preds, arm=arm)
+    client.send_outcomes(name, df)
+    client.recompute(name, refit=True)
+    board = client.scoreboard(name)
+    policy = client.arm_policy(name)
+    pairs = client.arm_policy_pairwise(name)
+    text = client.compare_models(name, "good", "flat", arm="text")
+print(board[["arm", "rank", "model", "vs_constant_estimate", "vs_constant_ci_low", "vs_constant_ci_high"]]
+      .to_string(index=False))
+print(policy[["model", "vs_reference", "vs_reference_ci_low", "vs_reference_ci_high", "share_none",
+              "share_text", "share_mail"]].to_string(index=False))
+print(pairs.to_string(index=False))
+print(f"compare good - flat on text: {text['estimate']:+.4f} [{text['ci_low']:+.4f}, {text['ci_high']:+.4f}]"
+      f" over {text['units']} units")
+failures = []
+if list(board["arm"].unique()) != ["text", "mail"]:
+    failures.append(f"contrasts {list(board['arm'].unique())}")
+for arm in ("text", "mail"):
+    b = board[board["arm"] == arm]
+    first = b.loc[b["rank"] == 1, "model"].tolist()
+    if first != ["good"] or board.attrs["contrasts"][arm]["front_runner"] != "good":
+        failures.append(f"{arm}: ranked first {first}")
+if sorted(policy["model"]) != ["flat", "good"]:
+    failures.append(f"policy models {list(policy['model'])}")
+good = policy.set_index("model").loc["good"]
+if not good["vs_reference_ci_low"] > 0:
+    failures.append(f"good's choice vs everyone none {good['vs_reference']}")
+shares = policy[[f"share_{a}" for a in arms]].sum(axis=1)
+if not all(abs(s - 1) < 1e-9 for s in shares):
+    failures.append(f"shares sum to {list(shares)}")
+if len(pairs) != 1 or text["units"] != 1500 or not text["estimate"] < 0:
+    failures.append(f"pairs {len(pairs)}, compare {text}")
+if failures:
+    print("integration: three arms: " + "; ".join(failures), file=sys.stderr)
+    sys.exit(1)
+EOF
+    pass "a three-arm dataset through the client: a board per contrast, good first on both, the arm policy"
+else
+    fail "a three-arm dataset through the client: a board per contrast, good first on both, the arm policy"
 fi
 
 # A recompute of a dataset without outcomes must fail with

@@ -135,7 +135,7 @@ pub fn num(v: f64) -> String {
 }
 
 /// A signed number in the same format, for differences.
-fn signed(v: f64) -> String {
+pub fn signed(v: f64) -> String {
     let s = num(v);
     if s.starts_with('-') {
         s

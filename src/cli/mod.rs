@@ -6,6 +6,7 @@ mod board_table;
 mod client;
 mod clock;
 mod demo;
+mod demo_arms;
 mod ingest;
 mod loadtest;
 mod progress;

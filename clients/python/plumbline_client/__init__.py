@@ -36,7 +36,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field
-from typing import Any, Callable, Dict, Iterable, Iterator, List, Optional, Sequence
+from typing import Any, Callable, Dict, Iterable, Iterator, List, Mapping, Optional, Sequence
 
 import grpc
 import pandas as pd
@@ -57,7 +57,10 @@ __all__ = [
     "Receipt",
     "RecomputeResult",
     "Rejection",
+    "arm_policy_frame",
     "connect",
+    "policy_pairwise_frame",
+    "scoreboard_frame",
     "pb",
 ]
 
@@ -114,6 +117,27 @@ SCOREBOARD_COLUMNS = [
     "top_minus_bottom_se",
     "rmse_lower_bound",
 ]
+
+#: Columns of :meth:`Client.arm_policy`, around one ``share_<arm>`` column
+#: per arm (reference first), which come after ``vs_best_single_arm_ci_high``.
+ARM_POLICY_COLUMNS = [
+    "model",
+    "value",
+    "value_se",
+    "value_ci_low",
+    "value_ci_high",
+    "vs_reference",
+    "vs_reference_se",
+    "vs_reference_ci_low",
+    "vs_reference_ci_high",
+    "vs_best_single_arm",
+    "vs_best_single_arm_se",
+    "vs_best_single_arm_ci_low",
+    "vs_best_single_arm_ci_high",
+]
+
+#: Columns of :meth:`Client.arm_policy_pairwise`.
+POLICY_PAIRWISE_COLUMNS = ["first", "second", "estimate", "se", "ci_low", "ci_high"]
 
 #: Columns of :meth:`Client.list_datasets`.
 DATASET_COLUMNS = [
@@ -348,6 +372,8 @@ class Client:
         min_coverage: float = 0.0,
         alpha: float = 0.0,
         seed: int = 0,
+        arms: Optional[Sequence[str]] = None,
+        arm_costs: Optional[Mapping[str, float]] = None,
     ) -> "pb.Dataset":
         """Creates a dataset (``DatasetRegistry.CreateDataset``).
 
@@ -358,11 +384,28 @@ class Client:
         alpha 0.05, seed 0). Re-sending identical settings returns the
         existing dataset; other settings under the same name raise
         ``ALREADY_EXISTS``.
+
+        ``arms`` declares a dataset with more than two arms: the reference
+        arm first, then 2 to 15 others (every arm's effect is scored against
+        the reference). ``arm_costs`` maps an arm to the cost of giving it to
+        one unit, in outcome units (arms not named cost 0); with arms,
+        ``treatment_cost`` must stay 0. Units then carry an arm label
+        (``send_units(..., arm="arm")``) and predictions name the arm whose
+        effect they predict (``send_predictions(..., arm="text")``).
         """
         try:
             kind = _OUTCOME_KINDS[outcome_kind]
         except KeyError:
             raise ValueError(f"outcome_kind must be 'continuous' or 'binary', not {outcome_kind!r}") from None
+        arm_list = [str(a) for a in arms] if arms is not None else []
+        costs = []
+        for arm, cost in (arm_costs or {}).items():
+            if str(arm) not in arm_list:
+                raise ValueError(f"create_dataset: arm_costs: {arm!r} is not one of the arms {arm_list}")
+            c = float(cost)
+            if not math.isfinite(c):
+                raise ValueError(f"create_dataset: arm_costs: the cost of {arm!r} must be finite, not {cost!r}")
+            costs.append(pb.ArmCost(arm=str(arm), cost=c))
         spec = pb.DatasetSpec(
             name=name,
             feature_names=list(feature_names),
@@ -384,6 +427,8 @@ class Client:
             min_coverage=min_coverage,
             alpha=alpha,
             seed=seed,
+            arms=arm_list,
+            arm_costs=costs,
         )
         return self._call(
             "DatasetRegistry.CreateDataset",
@@ -506,6 +551,7 @@ class Client:
         propensity: Optional[str] = None,
         cohort: Optional[str] = None,
         assigned_at: Optional[str] = None,
+        arm: Optional[str] = None,
         batch_size: int = DEFAULT_BATCH,
         timeout: Optional[float] = None,
     ) -> Receipt:
@@ -523,16 +569,24 @@ class Client:
             assigned_at: optional column of assignment times: datetimes
                 (naive ones are taken as UTC), or integers already in Unix
                 milliseconds.
+            arm: on a dataset with arms, the column of arm labels (each one
+                of the dataset's arms); ``treatment`` is then not read, and
+                ``propensity`` is the logged probability of the unit's arm.
             batch_size: rows per batch (one server transaction each).
         """
         _check_batch(batch_size)
         if features is None:
             features = list(self.get_dataset(dataset).spec.feature_names)
-        cols = [key, treatment, *features]
+        cols = [key, *features] + ([treatment] if arm is None else [arm])
         cols += [c for c in (propensity, cohort, assigned_at) if c is not None]
         _require(df, cols, "send_units")
         keys = df[key].astype(str).tolist()
-        treat = [_treatment(t, i) for i, t in enumerate(df[treatment].tolist())]
+        if arm is None:
+            treat = [_treatment(t, i) for i, t in enumerate(df[treatment].tolist())]
+            arms = None
+        else:
+            treat = [0] * len(keys)
+            arms = [_arm_label(a, i, arm) for i, a in enumerate(df[arm].tolist())]
         feats = df[list(features)].to_numpy(dtype=float).tolist()
         props = df[propensity].astype(float).tolist() if propensity else None
         cohorts = df[cohort].astype(str).tolist() if cohort else None
@@ -549,6 +603,8 @@ class Client:
                         row.cohort = cohorts[i]
                     if times is not None:
                         row.assigned_at_ms = times[i]
+                    if arms is not None:
+                        row.arm = arms[i]
                     rows.append(row)
                 yield pb.UnitBatch(dataset=dataset, rows=rows)
 
@@ -603,6 +659,7 @@ class Client:
         model_column: Optional[str] = None,
         effect_column: str = "effect",
         predicted_at: Optional[str] = None,
+        arm: str = "",
         batch_size: int = DEFAULT_BATCH,
         timeout: Optional[float] = None,
     ) -> Receipt:
@@ -622,8 +679,13 @@ class Client:
         predictions before the outcomes of their units: the service refuses a
         prediction for a unit whose outcome it holds, unless both are stamped
         and the prediction is earlier.
+
+        On a dataset with arms, ``arm`` names the arm whose effect against
+        the reference arm every row of this call predicts; send one call per
+        arm (each model needs a prediction for every non-reference arm).
         """
         _check_batch(batch_size)
+        arm = str(arm)
         if model_column is not None:
             cols = [key, model_column, effect_column] + ([predicted_at] if predicted_at else [])
             _require(df, cols, "send_predictions")
@@ -658,6 +720,7 @@ class Client:
                             unit_key=flat[i][1],
                             effect=flat[i][2],
                             predicted_at_ms=flat[i][3],
+                            arm=arm,
                         )
                         for i in idx
                     ],
@@ -694,6 +757,16 @@ class Client:
 
     def scoreboard(self, dataset: str, window: str = "cumulative", cohort: Optional[str] = None) -> pd.DataFrame:
         """The latest scoreboard of a window as a DataFrame, one row per ranked model.
+
+        On a dataset with arms there is one board per contrast (each
+        non-reference arm against the reference); they come as one long
+        frame with a first column ``arm`` (the contrast's arm, in the arms'
+        order, then by rank within it), so ``df[df.arm == "text"]`` or
+        ``df.groupby("arm")`` gives one board. ``df.attrs`` then holds the
+        dataset-wide values (dataset, window, snapshot_id, units,
+        ``reference_arm``, ``arms``) and ``contrasts``: arm -> that board's
+        attrs as below (front_runner, ate, blend, ...). The arm policy
+        report is :meth:`arm_policy`.
 
         ``window`` is ``"cumulative"`` (default), ``"recent"``, or pass
         ``cohort="LABEL"`` for one cohort. Columns (see
@@ -791,10 +864,48 @@ class Client:
         )
         return df
 
+    def arm_policy(self, dataset: str, window: str = "cumulative", cohort: Optional[str] = None) -> pd.DataFrame:
+        """The value of each model's arm choice on a dataset with arms, one row per model.
+
+        A model's choice gives each unit the arm with the largest predicted
+        effect net of its cost (the reference when none is positive); it is
+        valued by the mean doubly robust score of the arm chosen, net of
+        cost. Columns (``ARM_POLICY_COLUMNS``): ``model``; ``value`` (per
+        unit, net of cost), ``vs_reference`` (minus giving everyone the
+        reference arm) and ``vs_best_single_arm`` (minus giving everyone the
+        best single arm), each with ``_se``, ``_ci_low`` and ``_ci_high``
+        (95%); then ``share_<arm>`` for every arm, the share of units the
+        choice gives it. ``df.attrs``: reference_arm, reference_value and
+        best_single_arm_value (dicts of estimate, se, ci_low, ci_high),
+        best_single_arm, costs (arm -> cost), note, and ``pairwise``: every
+        pair's difference as a list of dicts
+        (``POLICY_PAIRWISE_COLUMNS``; as a frame: :meth:`arm_policy_pairwise`
+        or :func:`policy_pairwise_frame`). Raises ``ValueError`` on a
+        dataset without arms.
+        """
+        return arm_policy_frame(self.scoreboard_message(dataset, window, cohort))
+
+    def arm_policy_pairwise(
+        self, dataset: str, window: str = "cumulative", cohort: Optional[str] = None
+    ) -> pd.DataFrame:
+        """Every pair of models' arm-choice values, first's minus second's
+        (``POLICY_PAIRWISE_COLUMNS``: first, second, estimate, se, ci_low,
+        ci_high; above 0 = first's choice is worth more per unit)."""
+        return policy_pairwise_frame(self.arm_policy(dataset, window, cohort))
+
     def compare_models(
-        self, dataset: str, first: str, second: str, window: str = "cumulative", cohort: Optional[str] = None
+        self,
+        dataset: str,
+        first: str,
+        second: str,
+        window: str = "cumulative",
+        cohort: Optional[str] = None,
+        arm: str = "",
     ) -> dict:
         """Corrected PEHE of ``first`` minus ``second`` on the units both cover.
+
+        On a dataset with arms, ``arm`` names the contrast (the arm whose
+        board against the reference holds the pair); it is required there.
 
         Returns a dict with estimate, se, ci_low, ci_high, p_value (two-sided)
         and units; below 0 means ``first`` has lower error. ``policy`` holds
@@ -806,7 +917,9 @@ class Client:
         r = self._call(
             "Scoring.CompareModels",
             self.scoring.CompareModels,
-            pb.CompareModelsRequest(dataset=dataset, first=first, second=second, window=_window(window, cohort)),
+            pb.CompareModelsRequest(
+                dataset=dataset, first=first, second=second, window=_window(window, cohort), arm=str(arm)
+            ),
         )
         d = r.difference
         p = r.policy_difference if r.HasField("policy_difference") else None
@@ -878,6 +991,13 @@ class Client:
         except grpc.RpcError as e:
             if e.code() != grpc.StatusCode.CANCELLED:
                 raise PlumblineError.from_rpc_error("EventFeed.WatchEvents", e) from None
+
+
+def _arm_label(a: Any, i: int, column: str) -> str:
+    """An arm label from a cell; a missing or empty one is refused here."""
+    if a is None or (isinstance(a, float) and math.isnan(a)) or str(a) == "":
+        raise ValueError(f"send_units: row {i}: {column} (the arm) is missing")
+    return str(a)
 
 
 def _optional(message: Any, field: str) -> float:
@@ -964,8 +1084,58 @@ def overlap_frame(report: "pb.OverlapReport") -> pd.DataFrame:
     return df
 
 
+def _interval(v: "pb.IntervalValue") -> Dict[str, float]:
+    return {"estimate": v.estimate, "se": v.se, "ci_low": v.ci_low, "ci_high": v.ci_high}
+
+
+def arm_policy_frame(board: "pb.Scoreboard") -> pd.DataFrame:
+    """Turns the arm policy report of a ``Scoreboard`` message into the
+    DataFrame of :meth:`Client.arm_policy`."""
+    if not board.HasField("arm_policy"):
+        raise ValueError(f"arm_policy: dataset {board.dataset!r} has no arms (or no arm policy report yet)")
+    p = board.arm_policy
+    arms = [c.arm for c in p.costs] or [board.reference_arm] + [c.arm for c in board.contrasts]
+    rows = []
+    for m in p.models:
+        row: Dict[str, Any] = {"model": m.model}
+        for name in ("value", "vs_reference", "vs_best_single_arm"):
+            v = _interval(getattr(m, name))
+            row[name] = v["estimate"]
+            row.update({f"{name}_{k}": v[k] for k in ("se", "ci_low", "ci_high")})
+        shares = {s.arm: s.share for s in m.shares}
+        row.update({f"share_{a}": shares.get(a, 0.0) for a in arms})
+        rows.append(row)
+    df = pd.DataFrame(rows, columns=ARM_POLICY_COLUMNS + [f"share_{a}" for a in arms])
+    df.attrs.update(
+        {
+            "dataset": board.dataset,
+            "snapshot_id": board.snapshot_id,
+            "units": board.units,
+            "reference_arm": board.reference_arm,
+            "reference_value": _interval(p.reference_value),
+            "best_single_arm": p.best_single_arm,
+            "best_single_arm_value": _interval(p.best_single_arm_value),
+            "costs": {c.arm: c.cost for c in p.costs},
+            "note": p.note,
+            "pairwise": [{"first": d.first, "second": d.second, **_interval(d.difference)} for d in p.pairwise],
+        }
+    )
+    return df
+
+
+def policy_pairwise_frame(policy: pd.DataFrame) -> pd.DataFrame:
+    """The pairwise differences kept in an :func:`arm_policy_frame`'s attrs, as a frame."""
+    return pd.DataFrame(policy.attrs.get("pairwise", []), columns=POLICY_PAIRWISE_COLUMNS)
+
+
 def scoreboard_frame(board: "pb.Scoreboard") -> pd.DataFrame:
-    """Turns a ``Scoreboard`` message into the DataFrame of :meth:`Client.scoreboard`."""
+    """Turns a ``Scoreboard`` message into the DataFrame of :meth:`Client.scoreboard`.
+
+    A board with contrasts (a dataset with arms) becomes one frame with a
+    first column ``arm``, as :meth:`Client.scoreboard` describes.
+    """
+    if board.contrasts:
+        return _contrasts_frame(board)
     rows = []
     for m in board.models:
         rows.append(
@@ -1060,6 +1230,35 @@ def scoreboard_frame(board: "pb.Scoreboard") -> pd.DataFrame:
             },
         }
     )
+    return df
+
+
+def _contrasts_frame(board: "pb.Scoreboard") -> pd.DataFrame:
+    frames = []
+    contrasts = {}
+    for c in board.contrasts:
+        f = scoreboard_frame(c)
+        contrasts[c.arm] = dict(f.attrs)
+        f.attrs = {}
+        f.insert(0, "arm", c.arm)
+        frames.append(f)
+    # Every contrast ranks the same models with the same estimators, so the
+    # columns agree; reindex keeps the first board's order regardless.
+    columns = ["arm"] + [c for c in frames[0].columns if c != "arm"]
+    df = pd.concat([f.reindex(columns=columns) for f in frames], ignore_index=True)
+    kind = pb.Window.Kind.Name(board.window.kind) if board.HasField("window") else "KIND_CUMULATIVE"
+    df.attrs = {
+        "dataset": board.dataset,
+        "window": {"KIND_RECENT": "recent", "KIND_COHORT": f"cohort:{board.window.cohort}"}.get(kind, "cumulative"),
+        "snapshot_id": board.snapshot_id,
+        "computed_at_ms": board.computed_at_ms,
+        "units": board.units,
+        "reference_arm": board.reference_arm,
+        "arms": [board.reference_arm] + [c.arm for c in board.contrasts],
+        "contrasts": contrasts,
+        "degenerate": board.degenerate,
+        "caveat": board.caveat,
+    }
     return df
 
 

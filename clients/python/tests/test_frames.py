@@ -152,6 +152,112 @@ class Frames(unittest.TestCase):
         self.assertIsNone(c.compare_models("a", "m1", "m0")["policy"])
 
 
+    def test_a_board_with_arms_is_one_frame_with_an_arm_column(self):
+        def contrast(arm, first, second):
+            return pb.Scoreboard(
+                dataset="offers", arm=arm, reference_arm="none", front_runner=first,
+                ate=pb.Estimate(estimate=1.0 if arm == "text" else 0.5, se=0.1),
+                models=[
+                    pb.ModelScore(name=second, rank=2, vs_constant=pb.Difference(estimate=0.2)),
+                    pb.ModelScore(name=first, rank=1, vs_constant=pb.Difference(estimate=-0.4)),
+                ],
+            )
+
+        board = pb.Scoreboard(
+            dataset="offers", units=1200, reference_arm="none",
+            contrasts=[contrast("text", "good", "flat"), contrast("mail", "flat", "good")],
+        )
+        df = pc.scoreboard_frame(board)
+        self.assertEqual(list(df.columns), ["arm"] + pc.SCOREBOARD_COLUMNS)
+        self.assertEqual(list(df["arm"]), ["text", "text", "mail", "mail"])
+        # Ranked within each contrast.
+        self.assertEqual(list(df["model"]), ["good", "flat", "flat", "good"])
+        self.assertEqual(list(df["rank"]), [1, 2, 1, 2])
+        self.assertEqual(df.attrs["arms"], ["none", "text", "mail"])
+        self.assertEqual((df.attrs["reference_arm"], df.attrs["units"]), ("none", 1200))
+        self.assertEqual(df.attrs["contrasts"]["mail"]["front_runner"], "flat")
+        self.assertEqual(df.attrs["contrasts"]["text"]["ate"], 1.0)
+        one = df[df.arm == "mail"]
+        self.assertEqual(one.loc[one["rank"] == 1, "vs_constant_estimate"].item(), -0.4)
+
+    def test_the_arm_policy_report_is_a_frame_with_shares_and_pairs(self):
+        def iv(e):
+            return pb.IntervalValue(estimate=e, se=0.1, ci_low=e - 0.2, ci_high=e + 0.2)
+
+        report = pb.ArmPolicyReport(
+            costs=[pb.ArmCost(arm="none"), pb.ArmCost(arm="text"), pb.ArmCost(arm="mail", cost=0.1)],
+            reference_value=iv(1.0), best_single_arm="text", best_single_arm_value=iv(1.6), note="n",
+            models=[
+                pb.ArmPolicy(model="good", value=iv(2.0), vs_reference=iv(1.0), vs_best_single_arm=iv(0.4),
+                             shares=[pb.ArmShare(arm="text", share=0.6), pb.ArmShare(arm="mail", share=0.3),
+                                     pb.ArmShare(arm="none", share=0.1)]),
+                pb.ArmPolicy(model="flat", value=iv(1.6), vs_reference=iv(0.6), vs_best_single_arm=iv(0.0),
+                             shares=[pb.ArmShare(arm="text", share=1.0)]),
+            ],
+            pairwise=[pb.PolicyDifference(first="good", second="flat", difference=iv(0.4))],
+        )
+        board = pb.Scoreboard(dataset="offers", reference_arm="none", arm_policy=report)
+        df = pc.arm_policy_frame(board)
+        shares = ["share_none", "share_text", "share_mail"]
+        self.assertEqual(list(df.columns), pc.ARM_POLICY_COLUMNS + shares)
+        self.assertEqual(list(df["model"]), ["good", "flat"])
+        self.assertAlmostEqual(df.loc[0, "vs_reference"], 1.0)
+        self.assertAlmostEqual(df.loc[0, "vs_reference_ci_low"], 0.8)
+        self.assertAlmostEqual(df.loc[1, "vs_best_single_arm_ci_high"], 0.2)
+        self.assertEqual(list(df.loc[0, shares]), [0.1, 0.6, 0.3])
+        # An arm a policy never gives has share 0, not NaN.
+        self.assertEqual(list(df.loc[1, shares]), [0.0, 1.0, 0.0])
+        self.assertEqual(df.attrs["best_single_arm"], "text")
+        self.assertEqual(df.attrs["costs"], {"none": 0.0, "text": 0.0, "mail": 0.1})
+        self.assertAlmostEqual(df.attrs["reference_value"]["ci_high"], 1.2)
+        pairs = pc.policy_pairwise_frame(df)
+        self.assertEqual(list(pairs.columns), pc.POLICY_PAIRWISE_COLUMNS)
+        self.assertEqual((pairs.loc[0, "first"], pairs.loc[0, "second"]), ("good", "flat"))
+        self.assertAlmostEqual(pairs.loc[0, "estimate"], 0.4)
+        with self.assertRaisesRegex(ValueError, "has no arms"):
+            pc.arm_policy_frame(pb.Scoreboard(dataset="plain"))
+
+
+class Arms(unittest.TestCase):
+    """What the arm arguments put on the wire."""
+
+    def test_create_dataset_sends_arms_and_costs_and_checks_the_cost_names(self):
+        c = client()
+        ans = Answer(pb.Dataset())
+        c.datasets = Stub(CreateDataset=ans)
+        c.create_dataset("offers", ["x1"], arms=["none", "text", "mail"], arm_costs={"mail": 0.1})
+        spec = ans.requests[0].spec
+        self.assertEqual(list(spec.arms), ["none", "text", "mail"])
+        self.assertEqual([(a.arm, a.cost) for a in spec.arm_costs], [("mail", 0.1)])
+        with self.assertRaisesRegex(ValueError, "arm_costs: 'post' is not one of the arms"):
+            c.create_dataset("offers", ["x1"], arms=["none", "text"], arm_costs={"post": 1.0})
+
+    def test_units_carry_their_arm_and_a_missing_label_names_its_row(self):
+        c = client()
+        ans = Answer(pb.IntakeReceipt(batches=1, accepted=2))
+        c.intake = Stub(SendUnits=lambda batches, timeout=None: ans(list(batches)))
+        df = pd.DataFrame({"unit_id": [1, 2], "x1": [0.1, 0.2], "arm": ["text", "none"], "p": [0.3, 0.5]})
+        c.send_units("offers", df, features=["x1"], arm="arm", propensity="p")
+        rows = ans.requests[0][0].rows
+        self.assertEqual([(r.key, r.arm, r.treatment, r.propensity) for r in rows],
+                         [("1", "text", 0, 0.3), ("2", "none", 0, 0.5)])
+        bad = df.assign(arm=["text", None])
+        with self.assertRaisesRegex(ValueError, r"row 1: arm \(the arm\) is missing"):
+            c.send_units("offers", bad, features=["x1"], arm="arm")
+
+    def test_predictions_and_comparisons_name_their_arm(self):
+        c = client()
+        ans = Answer(pb.IntakeReceipt(batches=1, accepted=2))
+        c.intake = Stub(SendPredictions=lambda batches, timeout=None: ans(list(batches)))
+        c.send_predictions("offers", pd.DataFrame({"unit_id": [1, 2], "good": [0.5, 0.7]}), arm="mail")
+        rows = ans.requests[0][0].rows
+        self.assertEqual([(r.model, r.unit_key, r.arm) for r in rows], [("good", "1", "mail"), ("good", "2", "mail")])
+        cmp = Answer(pb.CompareModelsResponse(difference=pb.Difference(estimate=-0.1), units=10))
+        c.scoring = Stub(CompareModels=cmp)
+        c.compare_models("offers", "good", "flat", arm="text")
+        self.assertEqual(cmp.requests[0].arm, "text")
+
+
 class Defaults(unittest.TestCase):
     def test_history_asks_for_what_the_command_line_asks_for(self):
         default = inspect.signature(pc.Client.history).parameters["estimator"].default
