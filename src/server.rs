@@ -46,6 +46,7 @@ impl Running {
         if let Some(r) = self.refresher {
             r.await.map_err(|e| e.to_string())?;
         }
+        self.monitor.leases_released().await;
         self.store.close().await;
         grpc.map_err(|e| e.to_string())?;
         http.map_err(|e| e.to_string())?;

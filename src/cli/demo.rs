@@ -529,11 +529,7 @@ pub fn run(args: &DemoArgs) -> ExitCode {
         );
         return ExitCode::from(super::EXIT_BAD_INPUT);
     }
-    // The demo's store is a temporary directory removed when it ends, so a
-    // lease the shutdown could not hand back in it (the lease keeper can
-    // still be releasing when the store closes, more likely with the
-    // second dataset) matters to no one: that warning alone is left out.
-    super::serve::init_logging(LogFormat::Human, "warn,plumbline::monitor::leases=error");
+    super::serve::init_logging(LogFormat::Human, "warn");
     let dir: PathBuf = std::env::temp_dir().join(format!("plumbline-demo-{}", std::process::id()));
     let config = Config {
         listen: "127.0.0.1:0"

@@ -33,6 +33,9 @@ use crate::store::{Fence, RecomputeAsk};
 /// owner's answer.
 const ASK_WAIT: Duration = Duration::from_secs(600);
 
+/// How long a stopping server waits for its leases to be handed back.
+const LEASE_RELEASE_WAIT: Duration = Duration::from_secs(10);
+
 /// An owner's answer to a recompute asked at another server, as stored.
 #[derive(Debug, serde::Serialize, serde::Deserialize)]
 #[serde(rename_all = "snake_case")]
@@ -233,8 +236,7 @@ impl Monitor {
 
     /// Renews, takes and gives up leases until shutdown, then lets the held
     /// ones lapse at once so another server takes over without waiting.
-    pub(super) async fn keep_leases(self: Arc<Self>) {
-        let mut shutdown = self.shutdown.subscribe();
+    pub(super) async fn keep_leases(self: Arc<Self>, mut shutdown: crate::shutdown::Shutdown) {
         let mut tick = tokio::time::interval(self.replica.tick());
         tick.set_missed_tick_behavior(tokio::time::MissedTickBehavior::Delay);
         loop {
@@ -252,6 +254,29 @@ impl Monitor {
                 if let Err(e) = self.store.release_lease(fence, &self.replica.holder).await {
                     warn!(dataset = %h.name, error = %e, "could not release the lease");
                 }
+            }
+        }
+    }
+
+    /// Waits, after the shutdown has fired, for the lease keeper to hand
+    /// this server's leases back (at most `LEASE_RELEASE_WAIT`: a store
+    /// that does not answer must not hold the shutdown, and its leases
+    /// lapse by themselves). Call before closing the store.
+    pub async fn leases_released(&self) {
+        let keeper = self
+            .lease_keeper
+            .lock()
+            .unwrap_or_else(|e| e.into_inner())
+            .take();
+        if let Some(keeper) = keeper {
+            if tokio::time::timeout(LEASE_RELEASE_WAIT, keeper)
+                .await
+                .is_err()
+            {
+                warn!(
+                    seconds = LEASE_RELEASE_WAIT.as_secs(),
+                    "the leases were not handed back in time; they lapse by themselves"
+                );
             }
         }
     }

@@ -226,6 +226,10 @@ pub struct Monitor {
     max_fit_units: usize,
     /// The most models a window's blend takes (`limits.max_blend_models`).
     blend_models: usize,
+    /// The lease keeper, which hands every lease back once the shutdown
+    /// fires: [`Monitor::leases_released`] waits for it, so the store is
+    /// not closed under it.
+    lease_keeper: std::sync::Mutex<Option<tokio::task::JoinHandle<()>>>,
 }
 
 impl Monitor {
@@ -253,10 +257,16 @@ impl Monitor {
             replica,
             max_fit_units,
             blend_models,
+            lease_keeper: std::sync::Mutex::new(None),
         });
         // Renewals run from the start: rebuilding a large dataset can take
-        // longer than its lease.
-        tokio::spawn(Arc::clone(&monitor).keep_leases());
+        // longer than its lease. The keeper subscribes to the shutdown
+        // before it is spawned, so a shutdown fired at once still reaches it.
+        let keeper = tokio::spawn(Arc::clone(&monitor).keep_leases(monitor.shutdown.subscribe()));
+        *monitor
+            .lease_keeper
+            .lock()
+            .unwrap_or_else(|e| e.into_inner()) = Some(keeper);
         for stored in monitor.store.datasets().await? {
             monitor.adopt(stored).await?;
         }

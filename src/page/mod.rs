@@ -231,7 +231,6 @@ pub(crate) mod tests {
                     top_minus_bottom: None,
                     rmse_lower_bound: None,
                     registered_blend: false,
-                    policy_vs_front_runner: None,
                 }
             })
             .collect();
