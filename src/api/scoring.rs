@@ -13,8 +13,8 @@ use crate::domain::{Board, Window};
 use crate::estimate::compare;
 use crate::estimate::scoreboard::CI_LEVEL;
 use crate::estimate::stats::Estimate;
-use crate::monitor::Monitor;
 use crate::monitor::RecomputeOptions;
+use crate::monitor::{board, Monitor};
 use crate::store::HistoryQuery;
 
 pub struct ScoringService {
@@ -277,14 +277,5 @@ impl pb::scoring_server::Scoring for ScoringService {
 
 /// A difference taken alone: its pointwise interval, no joint one.
 fn pointwise(e: Estimate) -> pb::Difference {
-    let d = compare::Difference::from_estimate(e, CI_LEVEL);
-    pb::Difference {
-        estimate: d.estimate,
-        se: d.se,
-        ci_low: d.ci_low,
-        ci_high: d.ci_high,
-        p_value: d.p_value,
-        joint_low: None,
-        joint_high: None,
-    }
+    board::difference(&compare::Difference::from_estimate(e, CI_LEVEL)).into()
 }

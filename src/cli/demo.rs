@@ -218,24 +218,36 @@ async fn send_week(c: &mut Client, week: usize, members: &[Member]) -> DemoResul
 }
 
 async fn send_outcomes(c: &mut Client, members: &[Member]) -> DemoResult<u64> {
-    let batches: Vec<pb::OutcomeBatch> = members
+    let rides = members.iter().map(|m| (m.key.clone(), m.rides));
+    send_rides(c, DATASET, rides, "outcomes").await
+}
+
+/// Streams ride counts (member key, rides) to `dataset` in batches of
+/// 1,000; returns how many were accepted.
+pub(super) async fn send_rides(
+    c: &mut Client,
+    dataset: &str,
+    rides: impl Iterator<Item = (String, f64)>,
+    what: &str,
+) -> DemoResult<u64> {
+    let rows: Vec<pb::OutcomeRow> = rides
+        .map(|(unit_key, value)| pb::OutcomeRow {
+            unit_key,
+            value,
+            observed_at_ms: 0,
+        })
+        .collect();
+    let batches: Vec<pb::OutcomeBatch> = rows
         .chunks(1000)
         .map(|chunk| pb::OutcomeBatch {
-            dataset: DATASET.into(),
-            rows: chunk
-                .iter()
-                .map(|m| pb::OutcomeRow {
-                    unit_key: m.key.clone(),
-                    value: m.rides,
-                    observed_at_ms: 0,
-                })
-                .collect(),
+            dataset: dataset.into(),
+            rows: chunk.to_vec(),
         })
         .collect();
     Ok(c.intake
         .send_outcomes(tokio_stream::iter(batches))
         .await
-        .map_err(status("outcomes"))?
+        .map_err(status(what))?
         .into_inner()
         .accepted)
 }

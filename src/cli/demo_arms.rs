@@ -16,7 +16,7 @@ use crate::api::pb;
 use crate::synth::standard_normal;
 
 use super::board_table::{self, Row};
-use super::demo::{say, status, Client, DemoResult};
+use super::demo::{say, send_rides, status, Client, DemoResult};
 
 pub const DATASET: &str = "ride-offers";
 /// The reference first.
@@ -153,26 +153,8 @@ async fn send(c: &mut Client, members: &[Member]) -> DemoResult<u64> {
         .send_predictions(tokio_stream::iter(preds))
         .await
         .map_err(status("arm predictions"))?;
-    let outcomes: Vec<pb::OutcomeBatch> = members
-        .chunks(1000)
-        .map(|chunk| pb::OutcomeBatch {
-            dataset: DATASET.into(),
-            rows: chunk
-                .iter()
-                .map(|m| pb::OutcomeRow {
-                    unit_key: m.key.clone(),
-                    value: m.rides,
-                    observed_at_ms: 0,
-                })
-                .collect(),
-        })
-        .collect();
-    Ok(c.intake
-        .send_outcomes(tokio_stream::iter(outcomes))
-        .await
-        .map_err(status("arm outcomes"))?
-        .into_inner()
-        .accepted)
+    let rides = members.iter().map(|m| (m.key.clone(), m.rides));
+    send_rides(c, DATASET, rides, "arm outcomes").await
 }
 
 /// The arm a model's predictions give a member: the largest predicted

@@ -57,7 +57,8 @@ fn model(m: &ModelScore, levels: Option<&LevelReport>) -> BoardModel {
     }
 }
 
-fn difference(d: &compare::Difference) -> Difference {
+/// A difference with its pointwise interval, without a joint one.
+pub fn difference(d: &compare::Difference) -> Difference {
     Difference {
         estimate: d.estimate,
         se: d.se,
