@@ -222,6 +222,27 @@ async fn send_outcomes(c: &mut Client, members: &[Member]) -> DemoResult<u64> {
     send_rides(c, DATASET, rides, "outcomes").await
 }
 
+/// Registers `models` (name, description) on `dataset`, each as version 1.
+pub(super) async fn register_models(
+    c: &mut Client,
+    dataset: &str,
+    models: &[(&str, &str)],
+    what: &str,
+) -> DemoResult<()> {
+    for (name, description) in models {
+        c.models
+            .register_model(pb::RegisterModelRequest {
+                dataset: dataset.into(),
+                name: (*name).into(),
+                version: "1".into(),
+                description: (*description).into(),
+            })
+            .await
+            .map_err(status(what))?;
+    }
+    Ok(())
+}
+
 /// Streams ride counts (member key, rides) to `dataset` in batches of
 /// 1,000; returns how many were accepted.
 pub(super) async fn send_rides(
@@ -373,17 +394,7 @@ async fn drive(
         })
         .await
         .map_err(status("create dataset"))?;
-    for (name, description) in MODELS {
-        c.models
-            .register_model(pb::RegisterModelRequest {
-                dataset: DATASET.into(),
-                name: name.into(),
-                version: "1".into(),
-                description: description.into(),
-            })
-            .await
-            .map_err(status("register model"))?;
-    }
+    register_models(&mut c, DATASET, &MODELS, "register model").await?;
     println!(
         "dataset {DATASET}: {} features, {} models; outcomes arrive one week after the offers\n",
         FEATURES.len(),

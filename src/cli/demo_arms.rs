@@ -16,7 +16,7 @@ use crate::api::pb;
 use crate::synth::standard_normal;
 
 use super::board_table::{self, Row};
-use super::demo::{say, send_rides, status, Client, DemoResult};
+use super::demo::{register_models, say, send_rides, status, Client, DemoResult};
 
 pub const DATASET: &str = "ride-offers";
 /// The reference first.
@@ -240,17 +240,7 @@ pub async fn run(c: &mut Client, seed: u64) -> DemoResult<Value> {
         })
         .await
         .map_err(status("create arm dataset"))?;
-    for (name, description) in MODELS {
-        c.models
-            .register_model(pb::RegisterModelRequest {
-                dataset: DATASET.into(),
-                name: name.into(),
-                version: "1".into(),
-                description: description.into(),
-            })
-            .await
-            .map_err(status("register arm model"))?;
-    }
+    register_models(c, DATASET, &MODELS, "register arm model").await?;
     println!("\nthree offers: the scheme now chooses among no offer, a single-ride credit and a week pass");
     say(
         "",

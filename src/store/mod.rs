@@ -107,6 +107,24 @@ pub(crate) fn arm_of(v: i64) -> StoreResult<u8> {
     u8::try_from(v).map_err(|_| StoreError::Corrupt(format!("arm index {v} is out of range")))
 }
 
+/// A blend definition as the models table stores it (NULL for a model
+/// whose predictions are sent).
+pub(crate) fn blend_json(blend: Option<&BlendDefinition>) -> StoreResult<Option<String>> {
+    blend
+        .map(serde_json::to_string)
+        .transpose()
+        .map_err(|e| StoreError::Corrupt(format!("blend definition: {e}")))
+}
+
+/// A stored blend definition, read back.
+pub(crate) fn blend_of(json: Option<String>) -> StoreResult<Option<BlendDefinition>> {
+    json.map(|j| {
+        serde_json::from_str(&j)
+            .map_err(|e| StoreError::Corrupt(format!("model blend definition: {e}")))
+    })
+    .transpose()
+}
+
 /// A stream of stored rows, for rebuilding state at start without holding
 /// a whole table at once.
 pub type RowStream<'a, T> = Pin<Box<dyn Stream<Item = StoreResult<T>> + Send + 'a>>;

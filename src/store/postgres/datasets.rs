@@ -11,7 +11,9 @@ use crate::domain::{
 };
 use crate::store::sqlite::{pack_features, unpack_features};
 use crate::store::Numbered;
-use crate::store::{arm_of, DatasetLog, RowStream, StoreError, StoreResult, Tip};
+use crate::store::{
+    arm_of, blend_json, blend_of, DatasetLog, RowStream, StoreError, StoreResult, Tip,
+};
 
 const NEXT_UNIT: &str = "SELECT COALESCE(MAX(seq) + 1, 0) FROM units WHERE dataset_id = $1";
 const NEXT_OUTCOME: &str = "SELECT COALESCE(MAX(seq) + 1, 0) FROM outcomes WHERE dataset_id = $1";
@@ -385,10 +387,7 @@ impl PgStore {
         now_ms: i64,
         blend: Option<&BlendDefinition>,
     ) -> StoreResult<StoredModel> {
-        let blend_json = blend
-            .map(serde_json::to_string)
-            .transpose()
-            .map_err(|e| StoreError::Corrupt(format!("blend definition: {e}")))?;
+        let blend_json = blend_json(blend)?;
         let id: i64 = sqlx::query_scalar(
             "INSERT INTO models (dataset_id, name, version, description, registered_at_ms, \
              blend_json) VALUES ($1, $2, $3, $4, $5, $6) RETURNING id",
@@ -412,13 +411,4 @@ impl PgStore {
             blend: blend.cloned(),
         })
     }
-}
-
-/// A stored blend definition (NULL for a model whose predictions are sent).
-fn blend_of(json: Option<String>) -> StoreResult<Option<BlendDefinition>> {
-    json.map(|j| {
-        serde_json::from_str(&j)
-            .map_err(|e| StoreError::Corrupt(format!("model blend definition: {e}")))
-    })
-    .transpose()
 }

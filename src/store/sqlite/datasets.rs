@@ -9,7 +9,9 @@ use crate::domain::{
     BlendDefinition, DatasetSpec, OutcomeRecord, PredictionRecord, StoredDataset, StoredModel,
     UnitRecord,
 };
-use crate::store::{arm_of, DatasetLog, RowStream, StoreError, StoreResult, Tip};
+use crate::store::{
+    arm_of, blend_json, blend_of, DatasetLog, RowStream, StoreError, StoreResult, Tip,
+};
 
 #[async_trait]
 impl DatasetLog for SqliteStore {
@@ -330,10 +332,7 @@ impl SqliteStore {
         now_ms: i64,
         blend: Option<&BlendDefinition>,
     ) -> StoreResult<StoredModel> {
-        let blend_json = blend
-            .map(serde_json::to_string)
-            .transpose()
-            .map_err(|e| StoreError::Corrupt(format!("blend definition: {e}")))?;
+        let blend_json = blend_json(blend)?;
         let id: i64 = sqlx::query_scalar(
             "INSERT INTO models (dataset_id, name, version, description, registered_at_ms, \
              blend_json) VALUES (?, ?, ?, ?, ?, ?) RETURNING id",
@@ -357,13 +356,4 @@ impl SqliteStore {
             blend: blend.cloned(),
         })
     }
-}
-
-/// A stored blend definition (NULL for a model whose predictions are sent).
-fn blend_of(json: Option<String>) -> StoreResult<Option<BlendDefinition>> {
-    json.map(|j| {
-        serde_json::from_str(&j)
-            .map_err(|e| StoreError::Corrupt(format!("model blend definition: {e}")))
-    })
-    .transpose()
 }
