@@ -484,3 +484,186 @@ async fn degraded_front_runner_is_replaced_promptly() {
         "change: median delay {median} recomputes (at most {CHANGE_MAX_MEDIAN_DELAY} allowed)"
     );
 }
+
+/// A dataset with three arms (the design of `common::three_arm_unit`:
+/// arms by a softmax of x1, effects 1 + x1 for text and 0.5 - x2 for mail)
+/// and two models per contrast: "good" predicts the true effects, "flat"
+/// 0.2 on both. Four cohorts of 600 units, a recompute after each; the
+/// first only fits the first nuisance models. The watch keeps one view per
+/// contrast: each contrast's first watched look appoints a front-runner
+/// and, with two models, raises `front_runner_uncertain` naming the
+/// contrast's arm; every contrast's board carries its own alert view, and
+/// /metrics its states under `window="stream"` with the `contrast` label.
+/// After a restart the watch resumes where the store left it (no fold
+/// models survive a restart: the first look after it fits on the units
+/// already watched).
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_dataset_with_arms_is_watched_per_contrast_across_a_restart() {
+    const PER_COHORT: usize = 600;
+    let dir = TempDir::new("alerts-arms");
+    let name = "arms-watch";
+    let arms = ["none", "text", "mail"];
+    let mut rng = ChaCha8Rng::seed_from_u64(41);
+    let mut send_cohort = |k: usize| {
+        let draws: Vec<_> = (0..PER_COHORT)
+            .map(|_| common::three_arm_unit(&mut rng))
+            .collect();
+        let key = move |i: usize| format!("c{k}-{i}");
+        let units: Vec<pb::UnitRow> = draws
+            .iter()
+            .enumerate()
+            .map(|(i, (x1, x2, arm, _, _))| pb::UnitRow {
+                arm: arms[*arm].into(),
+                ..unit_row(&key(i), &[*x1, *x2], 0.0, None, &k.to_string())
+            })
+            .collect();
+        let mut preds = Vec::new();
+        for (i, (_, _, _, _, tau)) in draws.iter().enumerate() {
+            for (c, arm) in ["text", "mail"].iter().enumerate() {
+                for (model, effect) in [("good", tau[c + 1]), ("flat", 0.2)] {
+                    preds.push(pb::PredictionRow {
+                        model: model.into(),
+                        unit_key: key(i),
+                        effect,
+                        predicted_at_ms: 0,
+                        arm: (*arm).into(),
+                    });
+                }
+            }
+        }
+        let outcomes: Vec<pb::OutcomeRow> = draws
+            .iter()
+            .enumerate()
+            .map(|(i, (_, _, _, y, _))| pb::OutcomeRow {
+                unit_key: key(i),
+                value: *y,
+                observed_at_ms: 0,
+            })
+            .collect();
+        (units, preds, outcomes)
+    };
+    let srv = server(&dir).await;
+    let mut c = clients(srv.grpc_addr).await;
+    let mut spec = continuous_spec(name, 2);
+    spec.arms = arms.iter().map(|a| a.to_string()).collect();
+    spec.folds = 3;
+    c.datasets
+        .create_dataset(pb::CreateDatasetRequest { spec: Some(spec) })
+        .await
+        .expect("create dataset with arms");
+    for m in ["good", "flat"] {
+        register(&mut c, name, m).await;
+    }
+    let mut feed = |c: &mut Clients, k: usize| {
+        let (units, preds, outcomes) = send_cohort(k);
+        let mut c = Clients {
+            datasets: c.datasets.clone(),
+            models: c.models.clone(),
+            intake: c.intake.clone(),
+            scoring: c.scoring.clone(),
+            events: c.events.clone(),
+        };
+        async move {
+            assert_eq!(
+                send_units(&mut c, name, units).await.accepted,
+                PER_COHORT as u64
+            );
+            send_predictions(&mut c, name, preds).await;
+            send_outcomes(&mut c, name, outcomes).await;
+            recompute(&mut c, name, false).await
+        }
+    };
+    for k in 1..=2 {
+        feed(&mut c, k).await;
+    }
+    let b = board(&mut c, name, pb::window::Kind::Cumulative).await;
+    assert_eq!(b.contrasts.len(), 2);
+    for contrast in &b.contrasts {
+        let view = contrast.alerts.as_ref().expect("a contrast's alert view");
+        println!(
+            "after two cohorts, contrast {}: watched front-runner {:?}, {} units over {} look(s)",
+            contrast.arm, view.front_runner, view.units, view.looks
+        );
+        // The first cohort only fit the first models: the second is watched.
+        assert_eq!(view.units, PER_COHORT as u64, "{}", contrast.arm);
+        assert_eq!(view.looks, 1, "{}", contrast.arm);
+        assert!(
+            ["good", "flat"].contains(&view.front_runner.as_str()),
+            "{}: {view:?}",
+            contrast.arm
+        );
+    }
+    let top = b.alerts.as_ref().expect("the dataset's alert view");
+    assert_eq!(top.units, PER_COHORT as u64);
+    let events = all_events(&mut c, name).await;
+    for arm in ["text", "mail"] {
+        let uncertain: Vec<&pb::Event> = events
+            .iter()
+            .filter(|e| e.kind == "front_runner_uncertain")
+            .filter(|e| {
+                serde_json::from_str::<serde_json::Value>(&e.details_json)
+                    .is_ok_and(|d| d["arm"] == arm)
+            })
+            .collect();
+        assert_eq!(uncertain.len(), 1, "{arm}: {events:?}");
+        assert!(
+            uncertain[0]
+                .summary
+                .starts_with(&format!("{name} ({arm} against none)")),
+            "{}",
+            uncertain[0].summary
+        );
+        println!("event: {}", uncertain[0].summary);
+    }
+    let (status, text) = http_get(srv.metrics_addr, "/metrics");
+    assert_eq!(status, 200);
+    let samples = parse_metrics(&text);
+    for contrast in &b.contrasts {
+        let view = contrast.alerts.as_ref().expect("alert view");
+        let has = |metric: &str, extra: Option<(&str, &str)>| {
+            samples.iter().any(|(n, labels, _)| {
+                n == metric
+                    && labels.iter().any(|(k, v)| k == "dataset" && v == name)
+                    && labels.iter().any(|(k, v)| k == "window" && v == "stream")
+                    && labels
+                        .iter()
+                        .any(|(k, v)| k == "contrast" && *v == contrast.arm)
+                    && extra.is_none_or(|(ek, ev)| labels.iter().any(|(k, v)| k == ek && v == ev))
+            })
+        };
+        assert!(has("plumbline_front_runner_uncertain", None), "{text}");
+        assert!(
+            has(
+                "plumbline_front_runner_info",
+                Some(("model", &view.front_runner))
+            ),
+            "{}: {text}",
+            contrast.arm
+        );
+    }
+    srv.stop().await.expect("stop");
+
+    // A restart: the watch resumes from the store.
+    let srv = server(&dir).await;
+    let mut c = clients(srv.grpc_addr).await;
+    feed(&mut c, 3).await;
+    let b = board(&mut c, name, pb::window::Kind::Cumulative).await;
+    for contrast in &b.contrasts {
+        let view = contrast.alerts.as_ref().expect("alert view");
+        println!(
+            "after a restart and a third cohort, contrast {}: {} units over {} looks",
+            contrast.arm, view.units, view.looks
+        );
+        assert_eq!(view.units, 2 * PER_COHORT as u64, "{}", contrast.arm);
+        assert_eq!(view.looks, 2, "{}", contrast.arm);
+    }
+    // The front-runner is appointed once per contrast: no second
+    // `front_runner_uncertain` after the restart.
+    let events = all_events(&mut c, name).await;
+    let uncertain = events
+        .iter()
+        .filter(|e| e.kind == "front_runner_uncertain")
+        .count();
+    assert_eq!(uncertain, 2, "{events:?}");
+    srv.stop().await.expect("stop");
+}

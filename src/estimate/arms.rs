@@ -330,10 +330,30 @@ pub struct DrScores {
 }
 
 pub fn dr_scores(table: &ArmTable, nuisance: &ArmNuisance, clip: f64) -> DrScores {
-    let arms = table.arms.len();
+    dr_scores_of(
+        &table.arm,
+        &table.outcome,
+        &table.logged,
+        table.arms.len(),
+        nuisance,
+        clip,
+    )
+}
+
+/// [`dr_scores`] on columns: unit i got arm `arm[i]` (below `arms`), with
+/// outcome `outcome[i]` and, when logged, the probability `logged[i]` of
+/// that arm.
+pub fn dr_scores_of(
+    arm: &[usize],
+    outcome: &[f64],
+    logged: &[Option<f64>],
+    arms: usize,
+    nuisance: &ArmNuisance,
+    clip: f64,
+) -> DrScores {
     let mut clipped = vec![0; arms];
     let mut propensity = nuisance.propensity.clone();
-    for (i, (&w, logged)) in table.arm.iter().zip(&table.logged).enumerate() {
+    for (i, (&w, logged)) in arm.iter().zip(logged).enumerate() {
         if let Some(p) = logged {
             propensity[w][i] = *p;
         }
@@ -342,7 +362,7 @@ pub fn dr_scores(table: &ArmTable, nuisance: &ArmNuisance, clip: f64) -> DrScore
         for (i, v) in column.iter_mut().enumerate() {
             if *v < clip {
                 *v = clip;
-                if table.arm[i] == k {
+                if arm[i] == k {
                     clipped[k] += 1;
                 }
             }
@@ -350,11 +370,11 @@ pub fn dr_scores(table: &ArmTable, nuisance: &ArmNuisance, clip: f64) -> DrScore
     }
     let gamma = (0..arms)
         .map(|k| {
-            (0..table.len())
+            (0..arm.len())
                 .map(|i| {
                     let mu = nuisance.outcome[k][i];
-                    if table.arm[i] == k {
-                        mu + (table.outcome[i] - mu) / propensity[k][i]
+                    if arm[i] == k {
+                        mu + (outcome[i] - mu) / propensity[k][i]
                     } else {
                         mu
                     }

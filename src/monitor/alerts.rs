@@ -11,7 +11,7 @@
 
 use serde_json::json;
 
-use crate::estimate::watch::{Evidence, Route, Signal};
+use crate::estimate::watch::{ArmSignal, Evidence, Route, Signal};
 
 /// An event to store and broadcast.
 #[derive(Debug, Clone, PartialEq)]
@@ -136,4 +136,19 @@ pub fn event(dataset: &str, signal: &Signal) -> Option<Raised> {
             json!({ "quantity": quantity, "evidence": evidence }),
         ),
     }
+}
+
+/// The event for a decision of a dataset with arms: a contrast's says
+/// which arm against which reference, in its summary and as `arm` in its
+/// details.
+pub fn arm_event(dataset: &str, reference: &str, s: &ArmSignal) -> Option<Raised> {
+    if s.arm.is_empty() {
+        return event(dataset, &s.signal);
+    }
+    let mut raised = event(
+        &format!("{dataset} ({} against {reference})", s.arm),
+        &s.signal,
+    )?;
+    raised.details["arm"] = json!(s.arm);
+    Some(raised)
 }

@@ -10,7 +10,7 @@ use super::alerts;
 use super::recompute::NuisanceState;
 use super::{Boards, Monitor};
 use crate::domain::Board;
-use crate::estimate::watch::Watch;
+use crate::estimate::watch::{Watch, WatchState};
 use crate::metrics::{
     ArmLabels, ComponentLabels, DatasetLabels, ModelLabels, ScoreLabels, WindowLabels,
 };
@@ -280,18 +280,47 @@ impl Monitor {
     /// alert rules fire from (the board windows' series are point
     /// estimates of one look, for dashboards).
     pub(super) fn export_watch(&self, dataset: &str, previous: Option<String>, watch: &Watch) {
-        let m = &self.metrics;
         let state = watch.state();
+        self.export_verdicts(dataset, "", previous, &state);
+        self.export_watched(dataset, &state);
+    }
+
+    /// The watch of a dataset with arms: each contrast's states, labelled
+    /// `contrast`, beside the dataset's watched units and drift.
+    /// `previous` holds each contrast's watched front-runner before this
+    /// recompute.
+    pub(super) fn export_arms_watch(
+        &self,
+        dataset: &str,
+        previous: &BTreeMap<String, String>,
+        watch: &Watch,
+    ) {
+        for (arm, w) in &watch.contrasts {
+            self.export_verdicts(dataset, arm, previous.get(arm).cloned(), &w.state());
+        }
+        self.export_watched(dataset, &watch.state());
+    }
+
+    /// One watch's verdicts under `window="stream"` (and `contrast`, on a
+    /// dataset with arms).
+    fn export_verdicts(
+        &self,
+        dataset: &str,
+        contrast: &str,
+        previous: Option<String>,
+        state: &WatchState,
+    ) {
+        let m = &self.metrics;
         let wl = WindowLabels {
             dataset: dataset.into(),
             window: alerts::STREAM.into(),
-            contrast: String::new(),
+            contrast: contrast.into(),
         };
         let front_runner_labels = |model: String| ModelLabels {
             dataset: dataset.into(),
             model,
             window: alerts::STREAM.into(),
-            contrast: String::new(),
+            contrast: contrast.into(),
         };
         if let Some(old) = previous.filter(|old| state.front_runner.as_ref() != Some(old)) {
             m.front_runner_info.remove(&front_runner_labels(old));
@@ -315,6 +344,11 @@ impl Monitor {
         m.overlap_degraded
             .get_or_create(&wl)
             .set(flag(state.overlap_degraded));
+    }
+
+    /// The units a dataset's watch has watched and its features' drift.
+    fn export_watched(&self, dataset: &str, state: &WatchState) {
+        let m = &self.metrics;
         m.watched_units
             .get_or_create(&DatasetLabels {
                 dataset: dataset.into(),
@@ -364,6 +398,18 @@ impl Monitor {
             }
             self.forget_models_in(dataset, window, "", &models);
         }
+        for (arm, w) in &watch.contrasts {
+            let wl = WindowLabels {
+                dataset: dataset.into(),
+                window: alerts::STREAM.into(),
+                contrast: arm.clone(),
+            };
+            m.front_runner_uncertain.remove(&wl);
+            m.no_heterogeneity.remove(&wl);
+            m.overlap_degraded.remove(&wl);
+            let front_runner: Vec<String> = w.state().front_runner.into_iter().collect();
+            self.forget_models_in(dataset, alerts::STREAM, arm, &front_runner);
+        }
         for component in ["outcome_control", "outcome_treated", "propensity"] {
             m.nuisance_loss.remove(&ComponentLabels {
                 dataset: dataset.into(),
@@ -389,7 +435,7 @@ impl Monitor {
         for window in ["cumulative", "recent", alerts::STREAM] {
             self.forget_models_in(dataset, window, "", models);
         }
-        for window in EXPORTED_WINDOWS {
+        for window in EXPORTED_WINDOWS.iter().chain(&[alerts::STREAM]) {
             for contrast in contrasts {
                 self.forget_models_in(dataset, window, contrast, models);
             }

@@ -104,6 +104,9 @@ struct DatasetState {
     stored: StoredDataset,
     cache: DatasetCache,
     nuisance: Option<NuisanceState>,
+    /// On a dataset with arms: the fold models of the last recompute's fit,
+    /// which the stream watch's next look scores the arrivals with.
+    arm_fit: Option<Arc<crate::estimate::crossfit::ArmFittedNuisance>>,
     /// The stream watch behind the alerts, as the last recompute left it.
     watch: Watch,
     /// Outcomes accepted since the last recompute started.
@@ -120,6 +123,7 @@ impl DatasetState {
             ),
             stored,
             nuisance: None,
+            arm_fit: None,
             watch: Watch::default(),
             pending_outcomes: 0,
         }
@@ -163,6 +167,7 @@ impl DatasetState {
             },
             revision: c.revision,
             nuisance,
+            arm_fit: self.arm_fit.clone(),
             max_fit_units: Some(max_fit_units),
             blend_models,
             now_ms: now,

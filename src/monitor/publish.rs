@@ -49,6 +49,29 @@ fn fitted_on(fitted: usize, units: usize) -> String {
 }
 
 impl Monitor {
+    /// Raises an event of the stream watch (of `contrast`, on a dataset
+    /// with arms; empty on a binary one), counting front-runner changes.
+    pub(super) async fn raise_watched(
+        &self,
+        h: &DatasetHandle,
+        fence: Fence,
+        snapshot_id: u64,
+        contrast: &str,
+        r: Raised,
+    ) {
+        if r.kind == "front_runner_changed" {
+            self.metrics
+                .front_runner_changes
+                .get_or_create(&WindowLabels {
+                    dataset: h.name.clone(),
+                    window: alerts::STREAM.into(),
+                    contrast: contrast.into(),
+                })
+                .inc();
+        }
+        self.raise(h, Some(fence), snapshot_id, r).await;
+    }
+
     /// Recomputes a dataset now, with a refit or a rank refresh if
     /// `options` ask for one.
     pub async fn recompute(
@@ -273,17 +296,8 @@ impl Monitor {
         };
         // The watch looked before any refit: its events come first.
         for r in raised {
-            if r.kind == "front_runner_changed" {
-                self.metrics
-                    .front_runner_changes
-                    .get_or_create(&WindowLabels {
-                        dataset: h.name.clone(),
-                        window: alerts::STREAM.into(),
-                        contrast: String::new(),
-                    })
-                    .inc();
-            }
-            self.raise(h, Some(fence), snapshot_id as u64, r).await;
+            self.raise_watched(h, fence, snapshot_id as u64, "", r)
+                .await;
         }
         if let Some(reason) = computed.refit {
             let report = &nuisance.report;

@@ -4,7 +4,10 @@
 //! and its boards installed. Every contrast's models get history rows
 //! (labelled by the contrast's arm, which `GetHistory` reads with `arm`)
 //! and every contrast's board its series (`monitor/export.rs`, labelled
-//! `contrast`). Alerts are not produced for such a dataset yet.
+//! `contrast`). The stream watch looked first (one watch per contrast,
+//! `estimate/watch/arms.rs`): its decisions become events naming the
+//! contrast, and its states series under `window="stream"` with the
+//! `contrast` label.
 
 use std::collections::BTreeMap;
 use std::sync::Arc;
@@ -12,6 +15,7 @@ use std::time::Instant;
 
 use tracing::info;
 
+use super::alerts::{self, Raised};
 use super::board;
 use super::publish::RecomputeSummary;
 use super::recompute::RecomputeInput;
@@ -30,17 +34,15 @@ impl Monitor {
         now: i64,
     ) -> MonitorResult<RecomputeSummary> {
         let spec = input.spec.clone();
-        // The stream watch does not look at a dataset with arms: the
-        // snapshot keeps it as it was.
-        let watch_json = serde_json::to_string(&input.watch)
-            .map_err(|e| MonitorError::Internal(format!("stream watch: {e}")))?;
-        let windows = tokio::task::spawn_blocking(move || input.compute_arms())
+        let computed = tokio::task::spawn_blocking(move || input.compute_arms())
             .await
             .map_err(|e| MonitorError::Internal(e.to_string()))??;
+        let watch_json = serde_json::to_string(&computed.watch)
+            .map_err(|e| MonitorError::Internal(format!("stream watch: {e}")))?;
         let snapshot_id = self.store.next_snapshot_id().await?;
         let mut boards = BTreeMap::new();
         let mut scores = Vec::new();
-        for w in windows {
+        for w in computed.windows {
             let parts = board::BoardParts {
                 dataset: &h.name,
                 window: w.window.clone(),
@@ -50,11 +52,13 @@ impl Monitor {
                 max_extreme_share: spec.overlap_max_extreme_share,
                 min_effective_share: spec.overlap_min_effective_share,
             };
-            let b = match &w.board {
+            let mut b = match &w.board {
                 Ok(b) => board::arms_board(parts, b),
                 Err(state) => board::degenerate(parts, w.units as u64, state.clone()),
             };
-            for c in &b.contrasts {
+            b.alerts = Some(board::alert_view(&computed.watch));
+            for c in &mut b.contrasts {
+                c.alerts = computed.watch.contrasts.get(&c.arm).map(board::alert_view);
                 scores.extend(contrast_score_rows(&w.key, c));
             }
             boards.insert(w.key, b);
@@ -77,9 +81,32 @@ impl Monitor {
         let units = boards.get("cumulative").map(|b| b.units).unwrap_or(0);
         // One recompute of a dataset at a time (the caller holds its
         // recompute lock), so the boards read here are the ones replaced.
-        let old = h.boards();
-        h.publish(boards.clone());
+        let (old, previous) = {
+            let mut st = h.state.lock().await;
+            let previous: BTreeMap<String, String> = st
+                .watch
+                .contrasts
+                .iter()
+                .filter_map(|(arm, w)| w.state().front_runner.map(|f| (arm.clone(), f)))
+                .collect();
+            st.watch = computed.watch.clone();
+            st.arm_fit = computed.fit.clone();
+            let old = h.boards();
+            h.publish(boards.clone());
+            (old, previous)
+        };
+        let reference = spec.arms.first().cloned().unwrap_or_default();
+        let raised: Vec<(String, Raised)> = computed
+            .signals
+            .iter()
+            .filter_map(|s| alerts::arm_event(&h.name, &reference, s).map(|r| (s.arm.clone(), r)))
+            .collect();
+        for (arm, r) in raised {
+            self.raise_watched(h, fence, snapshot_id as u64, &arm, r)
+                .await;
+        }
         self.export_arms_boards(&h.name, &boards, &old);
+        self.export_arms_watch(&h.name, &previous, &computed.watch);
         self.metrics
             .recompute_seconds
             .get_or_create(&KindLabels {

@@ -22,7 +22,7 @@ use super::settings::NuisanceSettings;
 use crate::estimate::data::{FeatureRows, OutcomeKind};
 use crate::estimate::error::{Degenerate, EstimateError};
 use crate::estimate::learner::{
-    default_arm_library, default_library, ArmFitted, ArmLearner, SharedFeatures, Task,
+    default_arm_library, default_library, ArmFitted, ArmLearner, Fitted, SharedFeatures, Task,
 };
 
 /// Probabilities are kept this far from 0 when scoring log-loss.
@@ -35,6 +35,62 @@ pub struct ArmNuisance {
     pub propensity: Vec<Vec<f64>>,
     /// `outcome[k][i]` = E[Y | x_i, W = k], out of fold.
     pub outcome: Vec<Vec<f64>>,
+}
+
+/// The fold models of an arms cross-fit's chosen learners, kept so that
+/// units arriving after it get values from models that never saw them: a
+/// new unit gets the average of the K fold models' predictions.
+pub struct ArmFittedNuisance {
+    /// The generalized propensity's fold models.
+    pub propensity: Vec<Box<dyn ArmFitted>>,
+    /// `outcome[k]`: arm k's outcome fold models.
+    pub outcome: Vec<Vec<Box<dyn Fitted>>>,
+}
+
+impl ArmFittedNuisance {
+    /// Values for new units, `x` row-major with the fit's width: the fold
+    /// models' average per arm, for the propensity and for the outcome.
+    pub fn predict(&self, x: FeatureRows<'_>) -> ArmNuisance {
+        let n = x.len();
+        let arms = self.outcome.len();
+        let rows: Vec<usize> = (0..n).collect();
+        let shared = SharedFeatures::new(x);
+        let mut propensity = vec![vec![0.0; n]; arms];
+        for model in &self.propensity {
+            for (sum, column) in propensity
+                .iter_mut()
+                .zip(model.probabilities_rows(&shared, &rows, arms))
+            {
+                for (s, p) in sum.iter_mut().zip(column) {
+                    *s += p;
+                }
+            }
+        }
+        let k = self.propensity.len().max(1) as f64;
+        for column in &mut propensity {
+            for v in column.iter_mut() {
+                *v /= k;
+            }
+        }
+        let outcome = self
+            .outcome
+            .iter()
+            .map(|models| {
+                let mut sum = vec![0.0; n];
+                for m in models {
+                    for (s, v) in sum.iter_mut().zip(m.predict_rows(&shared, &rows)) {
+                        *s += v;
+                    }
+                }
+                let k = models.len().max(1) as f64;
+                sum.iter().map(|s| s / k).collect()
+            })
+            .collect();
+        ArmNuisance {
+            propensity,
+            outcome,
+        }
+    }
 }
 
 /// One generalized-propensity learner's out-of-fold log-loss.
@@ -94,6 +150,28 @@ pub fn fit_arm_nuisance(
     settings: &NuisanceSettings,
     propensity_learners: Vec<Box<dyn ArmLearner>>,
 ) -> Result<(ArmNuisance, ArmNuisanceReport), EstimateError> {
+    fit_arm_nuisance_models(
+        features,
+        arm,
+        arm_names,
+        outcome,
+        kind,
+        settings,
+        propensity_learners,
+    )
+    .map(|(values, report, _)| (values, report))
+}
+
+/// [`fit_arm_nuisance`], keeping the chosen learners' fold models.
+pub fn fit_arm_nuisance_models(
+    features: FeatureRows<'_>,
+    arm: &[usize],
+    arm_names: &[String],
+    outcome: &[f64],
+    kind: OutcomeKind,
+    settings: &NuisanceSettings,
+    propensity_learners: Vec<Box<dyn ArmLearner>>,
+) -> Result<(ArmNuisance, ArmNuisanceReport, ArmFittedNuisance), EstimateError> {
     settings.check()?;
     let arms = arm_names.len();
     let n = arm.len();
@@ -158,17 +236,19 @@ pub fn fit_arm_nuisance(
     let fitted = out_of_fold(&x, &folds, &components, settings.screening_z);
     let mut outcome_values = Vec::with_capacity(arms);
     let mut outcome_reports = Vec::with_capacity(arms);
+    let mut outcome_models = Vec::with_capacity(arms);
     for (oof, mask) in fitted.into_iter().zip(&masks) {
-        let (values, _, report) = choose(&outcome_learners, oof?, outcome, mask, task);
+        let (values, models, report) = choose(&outcome_learners, oof?, outcome, mask, task);
         outcome_values.push(values);
         outcome_reports.push(report);
+        outcome_models.push(models);
     }
     let library = if propensity_learners.is_empty() {
         default_arm_library()
     } else {
         propensity_learners
     };
-    let (propensity, propensity_report) =
+    let (propensity, propensity_report, propensity_models) =
         fit_generalized_propensity(&x, &library, arm, arms, &fold_of_unit, k, settings.seed)?;
     Ok((
         ArmNuisance {
@@ -181,11 +261,19 @@ pub fn fit_arm_nuisance(
             propensity: propensity_report,
             outcome: outcome_reports,
         },
+        ArmFittedNuisance {
+            propensity: propensity_models,
+            outcome: outcome_models,
+        },
     ))
 }
 
-/// One fold model's held-out units and, per arm, their probabilities.
-type HeldOut = (Vec<usize>, Vec<Vec<f64>>);
+/// One fold model, its held-out units and, per arm, their probabilities.
+type HeldOut = (Box<dyn ArmFitted>, Vec<usize>, Vec<Vec<f64>>);
+
+/// The chosen learner's out-of-fold probabilities, its report and its fold
+/// models.
+type Chosen = (Vec<Vec<f64>>, ArmPropensityReport, Vec<Box<dyn ArmFitted>>);
 
 /// Every arm learner on every fold (in parallel), the one with the lowest
 /// out-of-fold log-loss kept.
@@ -197,7 +285,7 @@ fn fit_generalized_propensity(
     fold_of_unit: &[usize],
     k: usize,
     seed: u64,
-) -> Result<(Vec<Vec<f64>>, ArmPropensityReport), EstimateError> {
+) -> Result<Chosen, EstimateError> {
     for learner in library {
         learner.check()?;
     }
@@ -214,19 +302,21 @@ fn fit_generalized_propensity(
                 library[l].fit(x, &train, &labels, arms, seed.wrapping_add(f as u64))?;
             let held: Vec<usize> = (0..n).filter(|&i| fold_of_unit[i] == f).collect();
             let columns = model.probabilities_rows(x, &held, arms);
-            Ok((held, columns))
+            Ok((model, held, columns))
         })
         .collect();
     let mut per_learner: Vec<Result<Vec<Vec<f64>>, String>> =
         vec![Ok(vec![vec![f64::NAN; n]; arms]); library.len()];
+    let mut models: Vec<Vec<Box<dyn ArmFitted>>> = (0..library.len()).map(|_| Vec::new()).collect();
     for (&(l, _), fit) in jobs.iter().zip(fits) {
         match (fit, &mut per_learner[l]) {
-            (Ok((held, columns)), Ok(table)) => {
+            (Ok((model, held, columns)), Ok(table)) => {
                 for (column, values) in table.iter_mut().zip(columns) {
                     for (&i, v) in held.iter().zip(values) {
                         column[i] = v;
                     }
                 }
+                models[l].push(model);
             }
             (Err(e), slot @ Ok(_)) => *slot = Err(e.to_string()),
             (_, Err(_)) => {}
@@ -276,5 +366,6 @@ fn fit_generalized_propensity(
         .nth(best)
         .and_then(Result::ok)
         .unwrap_or_default();
-    Ok((chosen, report))
+    let fold_models = models.into_iter().nth(best).unwrap_or_default();
+    Ok((chosen, report, fold_models))
 }

@@ -34,37 +34,37 @@ impl Watch {
         s: &WatchSettings,
         out: &mut Vec<Signal>,
     ) {
-        let n = a.treatment.len();
-        let d = a.features.len().checked_div(n).unwrap_or(0);
-        let column = |j: usize| -> Vec<f64> {
-            if j < d {
-                (0..n).map(|i| a.features[i * d + j]).collect()
-            } else {
-                a.nuisance.propensity.clone()
-            }
-        };
-        let name = |j: usize| -> String {
-            if j < d {
-                feature_name(a.feature_names, j)
-            } else {
-                "propensity".into()
-            }
-        };
+        let mut columns = feature_columns(a.features, a.feature_names, a.treatment.len());
+        columns.push(("propensity".into(), a.nuisance.propensity.clone()));
+        self.check_drift_of(&columns, s, out);
+    }
+
+    /// The drift checks on named columns of the arriving units' values
+    /// (the same columns, in the same order, at every look).
+    pub(super) fn check_drift_of(
+        &mut self,
+        columns: &[(String, Vec<f64>)],
+        s: &WatchSettings,
+        out: &mut Vec<Signal>,
+    ) {
+        let q = columns.len();
+        let column = |j: usize| -> &Vec<f64> { &columns[j].1 };
+        let name = |j: usize| -> String { columns[j].0.clone() };
         let w = &mut self.drift;
-        if w.reference.len() != d + 1 {
+        if w.reference.len() != q {
             *w = DriftWatch {
-                reference: vec![Moments::default(); d + 1],
+                reference: vec![Moments::default(); q],
                 checks: BTreeMap::new(),
             };
         }
-        let log_a = log_threshold(s.alpha, s.horizon, 2 * (d + 1));
-        let alpha = s.alpha / (2 * (d + 1)) as f64;
+        let log_a = log_threshold(s.alpha, s.horizon, 2 * q.max(1));
+        let alpha = s.alpha / (2 * q.max(1)) as f64;
         let tol = s.drift_tolerance;
         let mut fired = None;
-        for j in 0..=d {
+        for j in 0..q {
             // Until a quantity's reference is complete, the look builds it.
             if w.reference[j].count() < DRIFT_REFERENCE_UNITS {
-                w.reference[j].merge(&Moments::of(&column(j)));
+                w.reference[j].merge(&Moments::of(column(j)));
                 continue;
             }
             let (mean, sd) = (w.reference[j].mean(), w.reference[j].sd());
@@ -92,4 +92,21 @@ impl Watch {
             *w = DriftWatch::default();
         }
     }
+}
+
+/// The features of `n` row-major units as named columns.
+pub(super) fn feature_columns(
+    features: &[f64],
+    names: &[String],
+    n: usize,
+) -> Vec<(String, Vec<f64>)> {
+    let d = features.len().checked_div(n).unwrap_or(0);
+    (0..d)
+        .map(|j| {
+            (
+                feature_name(names, j),
+                (0..n).map(|i| features[i * d + j]).collect(),
+            )
+        })
+        .collect()
 }

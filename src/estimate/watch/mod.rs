@@ -46,6 +46,7 @@
 //! `settings.rs`, and `tracked.rs`, the running mean with a detector that
 //! every check is built from.
 
+mod arms;
 mod drift;
 mod front_runner;
 mod heterogeneity;
@@ -58,12 +59,15 @@ mod tracked;
 #[cfg(test)]
 mod tests;
 
+use std::collections::BTreeMap;
+
 use serde::{Deserialize, Serialize};
 
 use super::crossfit::Nuisance;
 use super::pseudo::aipw_pseudo_outcome;
 use super::stats::Moments;
 
+pub use arms::{ArmArrivals, ArmSignal};
 pub use drift::DRIFT_REFERENCE_UNITS;
 pub use heterogeneity::Heterogeneity;
 pub use settings::{
@@ -94,6 +98,17 @@ pub struct Arrivals<'a> {
     pub models: &'a [(String, Vec<f64>)],
 }
 
+/// One contrast's arrivals on a dataset with arms: its pseudo-outcomes
+/// (Gamma_k - Gamma_0, from nuisance models fitted only on earlier units),
+/// each unit's extreme-propensity indicator for the contrast (1 when e_0 or
+/// e_k is below the overlap threshold), and the active models' predictions
+/// of the contrast (NaN: none).
+pub struct ContrastArrivals<'a> {
+    pub pseudo: &'a [f64],
+    pub extreme: &'a [f64],
+    pub models: &'a [(String, Vec<f64>)],
+}
+
 /// The watch of one dataset's stream; small (a few numbers per model), kept
 /// with every snapshot so that a restart resumes it.
 #[derive(Debug, Clone, PartialEq, Default, Serialize, Deserialize)]
@@ -119,6 +134,10 @@ pub struct Watch {
     fit: FitWatch,
     #[serde(default)]
     drift: DriftWatch,
+    /// On a dataset with arms, one watch per contrast, by its arm (this
+    /// watch then counts the looks and units, and checks nothing itself).
+    #[serde(default, skip_serializing_if = "BTreeMap::is_empty")]
+    pub contrasts: BTreeMap<String, Watch>,
 }
 
 /// The public state of a watch, for boards and metrics.
@@ -196,10 +215,48 @@ impl Watch {
         self.check_fit(a, s, &mut out);
         self.check_overlap(a, s, &mut out);
         self.check_drift(a, s, &mut out);
+        self.judge_models(&phi, a.models, s, &mut out);
+        self.ate.merge(&Moments::of(&phi));
+        self.outcome.merge(&Moments::of(a.outcome));
+        let d = a.features.len().checked_div(n).unwrap_or(0);
+        if self.features.len() != d {
+            self.features = vec![Moments::default(); d];
+        }
+        for (j, m) in self.features.iter_mut().enumerate() {
+            let column: Vec<f64> = (0..n).map(|i| a.features[i * d + j]).collect();
+            m.merge(&Moments::of(&column));
+        }
+        out
+    }
+
+    /// Folds one contrast's look in (a watch in [`Watch::contrasts`]): the
+    /// front-runner, heterogeneity and overlap checks on the values given.
+    pub fn observe_contrast(&mut self, a: &ContrastArrivals<'_>, s: &WatchSettings) -> Vec<Signal> {
+        let n = a.pseudo.len();
+        self.units += n as u64;
+        if n == 0 {
+            return Vec::new();
+        }
+        self.looks += 1;
+        let mut out = Vec::new();
+        self.check_extreme_share(a.extreme, s, &mut out);
+        self.judge_models(a.pseudo, a.models, s, &mut out);
+        self.ate.merge(&Moments::of(a.pseudo));
+        out
+    }
+
+    /// The front-runner and heterogeneity checks on one look's
+    /// pseudo-outcomes `phi` and the models' predictions.
+    fn judge_models(
+        &mut self,
+        phi: &[f64],
+        models: &[(String, Vec<f64>)],
+        s: &WatchSettings,
+        out: &mut Vec<Signal>,
+    ) {
         // Squared pseudo-outcome errors: differences of them are the
         // differences of corrected PEHE contributions.
-        let losses: Vec<(&str, Vec<f64>)> = a
-            .models
+        let losses: Vec<(&str, Vec<f64>)> = models
             .iter()
             .map(|(name, effects)| {
                 let l = phi
@@ -217,24 +274,13 @@ impl Watch {
             })
             .filter(|(_, l): &(&str, Vec<f64>)| l.iter().any(|v| !v.is_nan()))
             .collect();
-        self.check_front_runner(&losses, a.models, s, &mut out);
+        self.check_front_runner(&losses, models, s, out);
         if self.ate.count() >= 2 {
             let constant = self.ate.mean();
             let baseline: Vec<f64> = phi.iter().map(|p| (p - constant).powi(2)).collect();
             let front_runner = self.front_runner.as_ref().map(|l| l.name.clone());
-            self.check_heterogeneity(&losses, &baseline, front_runner.as_deref(), s, &mut out);
+            self.check_heterogeneity(&losses, &baseline, front_runner.as_deref(), s, out);
         }
-        self.ate.merge(&Moments::of(&phi));
-        self.outcome.merge(&Moments::of(a.outcome));
-        let d = a.features.len().checked_div(n).unwrap_or(0);
-        if self.features.len() != d {
-            self.features = vec![Moments::default(); d];
-        }
-        for (j, m) in self.features.iter_mut().enumerate() {
-            let column: Vec<f64> = (0..n).map(|i| a.features[i * d + j]).collect();
-            m.merge(&Moments::of(&column));
-        }
-        out
     }
 }
 

@@ -40,8 +40,19 @@ impl Watch {
             .iter()
             .map(|&p| f64::from(u8::from(p < eps || p > 1.0 - eps)))
             .collect();
+        self.check_extreme_share(&extreme, s, out);
+    }
+
+    /// The detector on arriving units' extreme-propensity indicators (1:
+    /// extreme, 0: not).
+    pub(super) fn check_extreme_share(
+        &mut self,
+        extreme: &[f64],
+        s: &WatchSettings,
+        out: &mut Vec<Signal>,
+    ) {
         let o = &mut self.overlap;
-        o.share.fold_indicators(&extreme, s.max_extreme_share);
+        o.share.fold_indicators(extreme, s.max_extreme_share);
         let log_a = log_threshold(s.alpha, s.horizon, 1);
         if o.share.fired(log_a) {
             let evidence = o.share.evidence(

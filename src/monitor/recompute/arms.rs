@@ -7,17 +7,28 @@
 //! the same units in the same order: the cumulative boards are that
 //! command's. The recent and cohort windows are scored with those units'
 //! cross-fitted values (each from fits that did not see the unit), so a
-//! window needs no fit of its own. The binary path's incremental machinery
-//! (kept fold models, merged sums, the stream watch) does not apply here
-//! yet: a recompute costs a full fit.
+//! window needs no fit of its own. The binary path's incremental scoring
+//! (merged sums, kept windows) does not apply here yet: a recompute costs a
+//! full fit.
+//!
+//! The stream watch looks first, at the units whose outcomes arrived since
+//! its last look, with values from the fold models of the previous
+//! recompute's fit (kept in memory), which never saw them. After a restart
+//! there are none: the models are fitted once on the units the watch has
+//! already seen, which are all earlier than the arrivals, so every watched
+//! value still depends on the past alone.
 
 use std::collections::HashMap;
+use std::sync::Arc;
 
 use super::{settings, RecomputeInput};
 use crate::domain::{IncompleteModel, Window};
 use crate::estimate::arms::{score_arms, ArmModelPredictions, ArmTable, ArmsScoreboard};
-use crate::estimate::crossfit::{fit_arm_nuisance, ArmNuisance, ArmNuisanceReport};
-use crate::estimate::EstimateError;
+use crate::estimate::crossfit::{
+    fit_arm_nuisance_models, ArmFittedNuisance, ArmNuisance, ArmNuisanceReport,
+};
+use crate::estimate::watch::{ArmArrivals, ArmSignal, Watch};
+use crate::estimate::{EstimateError, FeatureRows};
 
 /// One window's result on a dataset with arms.
 pub struct ArmWindowResult {
@@ -29,6 +40,17 @@ pub struct ArmWindowResult {
     /// column).
     pub units: usize,
     pub incomplete: Vec<IncompleteModel>,
+}
+
+/// A recompute of a dataset with arms.
+pub struct ArmsComputed {
+    pub windows: Vec<ArmWindowResult>,
+    /// The watch after this recompute's arrivals, and what it decided.
+    pub watch: Watch,
+    pub signals: Vec<ArmSignal>,
+    /// The cumulative fit's fold models, for the watch's next look (None
+    /// when the cumulative window could not be fitted).
+    pub fit: Option<Arc<ArmFittedNuisance>>,
 }
 
 /// The cumulative fit, kept for the other windows: each fitted unit's
@@ -49,29 +71,120 @@ struct Chosen {
 }
 
 impl RecomputeInput {
-    /// Every window's boards. An error here is one the dataset's settings
-    /// cause (e.g. folds); data that cannot support scores gives a window a
-    /// named state instead.
-    pub fn compute_arms(&self) -> Result<Vec<ArmWindowResult>, EstimateError> {
+    /// The watch's look, then every window's boards. An error here is one
+    /// the dataset's settings cause (e.g. folds); data that cannot support
+    /// scores gives a window a named state instead.
+    pub fn compute_arms(mut self) -> Result<ArmsComputed, EstimateError> {
+        settings(&self.spec).check()?;
+        let signals = self.watch_arms()?;
+        let (windows, fit) = self.arm_windows()?;
+        Ok(ArmsComputed {
+            windows,
+            watch: self.watch,
+            signals,
+            fit: fit.map(Arc::new),
+        })
+    }
+
+    /// Hands the watch the units whose outcomes arrived since its last
+    /// look, with values from fold models that never saw them.
+    fn watch_arms(&mut self) -> Result<Vec<ArmSignal>, EstimateError> {
+        let outcomes = self.columns.outcomes();
+        let from = usize::try_from(self.watch.units)
+            .unwrap_or(usize::MAX)
+            .min(outcomes);
+        let units = self.columns.arrived(from..outcomes);
+        if units.is_empty() {
+            return Ok(Vec::new());
+        }
+        let fit = match self.arm_fit.clone() {
+            Some(fit) => Some(fit),
+            None => self.fit_on(&self.columns.arrived(0..from)).map(Arc::new),
+        };
+        let Some(fit) = fit else {
+            // Nothing earlier to fit on (the first look, or too few units
+            // per arm): these units only fit the first models.
+            self.watch.skip_baseline(units.len() as u64);
+            return Ok(Vec::new());
+        };
+        let x = self.rows(&units);
+        let width = x.ncols();
+        let nuisance = fit.predict(FeatureRows::dense(x.as_slice().unwrap_or(&[]), width));
+        let arm: Vec<usize> = units
+            .iter()
+            .map(|&u| usize::from(self.columns.treatment[u]))
+            .collect();
+        let outcome: Vec<f64> = units
+            .iter()
+            .map(|&u| self.columns.outcome_of(u).unwrap_or(0.0))
+            .collect();
+        let logged: Vec<Option<f64>> = units
+            .iter()
+            .map(|&u| self.columns.propensity_of(u))
+            .collect();
+        let models: Vec<(String, Vec<Vec<f64>>)> = self
+            .arm_models
+            .iter()
+            .map(|(name, columns)| {
+                let per_contrast = columns
+                    .iter()
+                    .map(|c| units.iter().map(|&u| c[u]).collect())
+                    .collect();
+                (name.clone(), per_contrast)
+            })
+            .collect();
         let s = settings(&self.spec);
-        s.check()?;
+        Ok(self.watch.observe_arms(
+            &ArmArrivals {
+                arm: &arm,
+                outcome: &outcome,
+                logged: &logged,
+                arms: &self.spec.arms,
+                nuisance: &nuisance,
+                clip: s.nuisance.clip,
+                features: x.as_slice().unwrap_or(&[]),
+                feature_names: &self.spec.feature_names,
+                models: &models,
+            },
+            &self.watch_settings,
+        ))
+    }
+
+    /// The fold models of a cross-fit on `units`, when they support one.
+    fn fit_on(&self, units: &[usize]) -> Option<ArmFittedNuisance> {
+        let table = self.arm_table(units).ok()?;
+        self.fit_table(&table).ok().map(|(_, _, models)| models)
+    }
+
+    /// The dataset's cross-fit (its folds and seed) of a table's units.
+    fn fit_table(
+        &self,
+        table: &ArmTable,
+    ) -> Result<(ArmNuisance, ArmNuisanceReport, ArmFittedNuisance), EstimateError> {
+        fit_arm_nuisance_models(
+            table.rows(),
+            table.arm(),
+            table.arms(),
+            table.outcome(),
+            table.outcome_kind(),
+            &settings(&self.spec).nuisance,
+            Vec::new(),
+        )
+    }
+
+    /// Every window's boards, and the cumulative fit's fold models.
+    fn arm_windows(
+        &self,
+    ) -> Result<(Vec<ArmWindowResult>, Option<ArmFittedNuisance>), EstimateError> {
         let scorable = self.scorable();
         let chosen = self.choose_columns(&scorable);
         let mut out = Vec::new();
         let fitted = self.arm_table(&chosen.common).and_then(|table| {
-            let (nuisance, report) = fit_arm_nuisance(
-                table.rows(),
-                table.arm(),
-                table.arms(),
-                table.outcome(),
-                table.outcome_kind(),
-                &s.nuisance,
-                Vec::new(),
-            )?;
-            Ok((table, nuisance, report))
+            let (nuisance, report, models) = self.fit_table(&table)?;
+            Ok((table, nuisance, report, models))
         });
-        let fit = match fitted {
-            Ok((table, nuisance, report)) => {
+        let (fit, models) = match fitted {
+            Ok((table, nuisance, report, models)) => {
                 let board = self.score(&table, &chosen, &nuisance, Some(report.clone()));
                 out.push(ArmWindowResult {
                     key: Window::Cumulative.key(),
@@ -80,7 +193,7 @@ impl RecomputeInput {
                     units: chosen.common.len(),
                     incomplete: chosen.incomplete,
                 });
-                Fit {
+                let fit = Fit {
                     position: chosen
                         .common
                         .iter()
@@ -89,7 +202,8 @@ impl RecomputeInput {
                         .collect(),
                     nuisance,
                     report,
-                }
+                };
+                (fit, models)
             }
             Err(e) => {
                 // Without the cumulative fit no window has values.
@@ -102,7 +216,7 @@ impl RecomputeInput {
                     incomplete: chosen.incomplete,
                 });
                 out.push(self.unscored(Window::Recent, state));
-                return Ok(out);
+                return Ok((out, None));
             }
         };
         out.push(self.sub_window(Window::Recent, &self.recent(), &fit));
@@ -117,7 +231,7 @@ impl RecomputeInput {
                 out.push(self.sub_window(Window::Cohort(name.clone()), units, &fit));
             }
         }
-        Ok(out)
+        Ok((out, Some(models)))
     }
 
     fn unscored(&self, window: Window, state: String) -> ArmWindowResult {

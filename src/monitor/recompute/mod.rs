@@ -36,7 +36,7 @@ use crate::estimate::scoreboard::{Scoreboard, Settings};
 use crate::estimate::watch::{Signal, Watch};
 use crate::estimate::EstimateError;
 
-pub use arms::ArmWindowResult;
+pub use arms::{ArmWindowResult, ArmsComputed};
 pub use input::RecomputeInput;
 pub use memo::ScoringMemo;
 use nuisance::Fixed;
