@@ -827,6 +827,13 @@ fn the_demo_three_arm_section_ranks_the_right_model_first_and_values_its_choice(
         assert_eq!(c["front_runner"], "offer-forest", "{c}");
         assert_eq!(first["name"], "offer-forest", "{c}");
         assert_eq!(first["rank"], 1, "{c}");
+        // The first month's 1,000 members fit the first nuisance models;
+        // the alerts watch the other two months' on each contrast.
+        println!(
+            "{}: the alerts watched {} members, front-runner {}",
+            c["arm"], c["watched"]["units"], c["watched"]["front_runner"]
+        );
+        assert_eq!(c["watched"]["units"], 2000, "{c}");
     }
     let policy = &arms["policy"];
     let forest = policy["models"]
@@ -857,6 +864,11 @@ fn the_demo_three_arm_section_ranks_the_right_model_first_and_values_its_choice(
         .expect("the three-arm section on stderr");
     assert!(
         section.contains("contrast week-pass against no-offer"),
+        "{section}"
+    );
+    // The alerts' events name their contrast.
+    assert!(
+        section.contains("ride-offers (week-pass against no-offer): front-runner"),
         "{section}"
     );
     for line in section.lines() {

@@ -330,11 +330,18 @@ fn print_board(b: &pb::Scoreboard) {
     }
 }
 
-async fn new_events(c: &mut Client, after: &mut u64, all: &mut Vec<pb::Event>) -> DemoResult<()> {
+/// Prints the dataset's events after `after` (registrations left out) and
+/// keeps them in `all`.
+pub(super) async fn new_events(
+    c: &mut Client,
+    dataset: &str,
+    after: &mut u64,
+    all: &mut Vec<pb::Event>,
+) -> DemoResult<()> {
     let events = c
         .events
         .list_events(pb::ListEventsRequest {
-            dataset: DATASET.into(),
+            dataset: dataset.into(),
             after_id: *after,
             limit: 1000,
         })
@@ -403,7 +410,7 @@ async fn drive(
     let mut rng = ChaCha8Rng::seed_from_u64(args.seed);
     let mut waiting: Option<(usize, Vec<Member>)> = None;
     let (mut after, mut events) = (0u64, Vec::new());
-    new_events(&mut c, &mut after, &mut events).await?;
+    new_events(&mut c, DATASET, &mut after, &mut events).await?;
     for week in 1..=args.weeks + 1 {
         if week <= args.weeks {
             let members = cohort(week, args.members, &mut rng);
@@ -541,7 +548,7 @@ async fn deliver(
         .map_err(status("scoreboard"))?
         .into_inner();
     print_board(&board);
-    new_events(c, after, events).await
+    new_events(c, DATASET, after, events).await
 }
 
 pub fn run(args: &DemoArgs) -> ExitCode {

@@ -16,13 +16,15 @@ use crate::api::pb;
 use crate::synth::standard_normal;
 
 use super::board_table::{self, Row};
-use super::demo::{register_models, say, send_rides, status, Client, DemoResult};
+use super::demo::{new_events, register_models, say, send_rides, status, Client, DemoResult};
 
 pub const DATASET: &str = "ride-offers";
 /// The reference first.
 pub const ARMS: [&str; 3] = ["no-offer", "ride-credit", "week-pass"];
 /// Cost of each arm in rides (what the scheme gives up per offer).
 const COSTS: [f64; 3] = [0.0, 0.5, 2.0];
+/// The season's ride counts arrive in this many months, a recompute after each.
+const MONTHS: usize = 3;
 const FEATURES: [&str; 3] = ["rides_90d", "weekday_share", "dock_km"];
 const MODELS: [(&str, &str); 3] = [
     ("offer-forest", "forest fitted on both offers' trial"),
@@ -106,7 +108,7 @@ fn season(rng: &mut ChaCha8Rng) -> Vec<Member> {
         .collect()
 }
 
-async fn send(c: &mut Client, members: &[Member]) -> DemoResult<u64> {
+async fn send(c: &mut Client, members: &[Member], cohort: &str) -> DemoResult<u64> {
     let units: Vec<pb::UnitBatch> = members
         .chunks(1000)
         .map(|chunk| pb::UnitBatch {
@@ -118,7 +120,7 @@ async fn send(c: &mut Client, members: &[Member]) -> DemoResult<u64> {
                     features: m.x.to_vec(),
                     treatment: 0,
                     propensity: Some(m.propensity),
-                    cohort: "season-1".into(),
+                    cohort: cohort.into(),
                     assigned_at_ms: 0,
                     arm: ARMS[m.arm].into(),
                 })
@@ -273,20 +275,31 @@ pub async fn run(c: &mut Client, seed: u64) -> DemoResult<Value> {
                 .join(", ")
         ),
     );
-    let n = send(c, &members).await?;
-    let r = c
-        .scoring
-        .recompute(pb::RecomputeRequest {
-            dataset: DATASET.into(),
-            ..Default::default()
-        })
-        .await
-        .map_err(status("arm recompute"))?
-        .into_inner();
-    println!(
-        "  ride counts arrived ({n}); recompute {} in {:.0} ms",
-        r.snapshot_id, r.millis
-    );
+    // The season's ride counts arrive in three months, a recompute after
+    // each: the first month's members fit the first nuisance models, and
+    // the stream watch judges each contrast on the later months' members as
+    // they arrive. Every recompute fits afresh on all members so far, so
+    // the final boards are those of one recompute on the whole season.
+    let (mut after, mut events) = (0u64, Vec::new());
+    for (i, month) in members.chunks(members.len().div_ceil(MONTHS)).enumerate() {
+        let n = send(c, month, &format!("month-{}", i + 1)).await?;
+        let r = c
+            .scoring
+            .recompute(pb::RecomputeRequest {
+                dataset: DATASET.into(),
+                ..Default::default()
+            })
+            .await
+            .map_err(status("arm recompute"))?
+            .into_inner();
+        println!(
+            "  month {}: ride counts of {n} members arrived; recompute {} in {:.0} ms",
+            i + 1,
+            r.snapshot_id,
+            r.millis
+        );
+        new_events(c, DATASET, &mut after, &mut events).await?;
+    }
     let board = c
         .scoring
         .get_scoreboard(pb::GetScoreboardRequest {
@@ -340,10 +353,33 @@ pub async fn run(c: &mut Client, seed: u64) -> DemoResult<Value> {
                     .join(", ")
             ),
         );
+        let view = c.alerts.clone().unwrap_or_default();
+        say(
+            "    ",
+            &format!(
+                "front-runner per the alerts: {} ({}; {} members watched as they arrived)",
+                if view.front_runner.is_empty() {
+                    "none yet"
+                } else {
+                    view.front_runner.as_str()
+                },
+                if view.front_runner_settled {
+                    "settled"
+                } else {
+                    "not yet separated from every other model"
+                },
+                view.units
+            ),
+        );
         contrasts.push(json!({
             "arm": c.arm,
             "reference_arm": c.reference_arm,
             "front_runner": c.front_runner,
+            "watched": {
+                "front_runner": view.front_runner,
+                "settled": view.front_runner_settled,
+                "units": view.units,
+            },
             "ate": {"estimate": ate.estimate, "se": ate.se},
             "true_ate": true_ate,
             "models": rows.iter().map(|r| json!({
