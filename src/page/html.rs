@@ -7,7 +7,12 @@ use std::fmt::Write;
 use super::conditions::{Condition, State};
 use super::scale;
 use super::svg::{self, Colors};
-use super::{url_segment, DatasetSummary, DatasetView, Esc, Frame, HISTORY_SPAN_MS, WINDOW};
+use super::{
+    arm_propensities, url_segment, DatasetSummary, DatasetView, Esc, Frame, Thresholds,
+    HISTORY_SPAN_MS, WINDOW,
+};
+use crate::domain::Board;
+use crate::estimate::arms::Valued;
 
 macro_rules! put {
     ($($t:tt)*) => {{ let _ = write!($($t)*); }};
@@ -300,7 +305,15 @@ pub fn dataset_page(v: &DatasetView, f: &Frame) -> String {
     }
     body.push_str("</section>");
 
+    // A dataset with arms: a board per contrast, the arm choice, each
+    // arm's generalized propensity; then history and events as always.
+    let arms_board = v.board.as_ref().filter(|b| !b.contrasts.is_empty());
+    if let Some(b) = arms_board {
+        arms_sections(&mut body, b, &colors, &v.thresholds);
+    }
+
     // The board.
+    if arms_board.is_none() {
     body.push_str(r#"<section id="board"><h2>Board</h2>"#);
     match &v.board {
         None => body.push_str(r#"<p class="note" data-kind="no-data">Not scored yet: send outcomes or call Recompute.</p>"#),
@@ -325,6 +338,7 @@ pub fn dataset_page(v: &DatasetView, f: &Frame) -> String {
         }
     }
     body.push_str("</section>");
+    }
 
     // History.
     put!(
@@ -335,7 +349,8 @@ pub fn dataset_page(v: &DatasetView, f: &Frame) -> String {
     body.push_str(&svg::history_chart(&v.history, &colors));
     body.push_str("</section>");
 
-    // Overlap.
+    // Overlap (a dataset with arms drew its own above).
+    if arms_board.is_none() {
     body.push_str(r#"<section id="overlap"><h2>Propensity by arm</h2>"#);
     let t = &v.thresholds;
     put!(
@@ -398,6 +413,7 @@ pub fn dataset_page(v: &DatasetView, f: &Frame) -> String {
         body.push_str("</ul>");
     }
     body.push_str("</section>");
+    }
 
     // Events.
     body.push_str(r#"<section id="events"><h2>Events</h2>"#);
@@ -431,6 +447,169 @@ pub fn dataset_page(v: &DatasetView, f: &Frame) -> String {
         &body,
         &footer(f),
     )
+}
+
+/// An estimate and its 95% interval as table cells: the value (signed
+/// for a difference), then the interval.
+fn valued_cells(v: &Valued, difference: bool) -> String {
+    let show = |x: f64| if difference { scale::signed(x) } else { scale::sig(x) };
+    format!(
+        r#"<td class="num" data-value="{}">{}</td><td class="num">[{}, {}]</td>"#,
+        v.estimate,
+        show(v.estimate),
+        show(v.ci_low),
+        show(v.ci_high)
+    )
+}
+
+/// The sections of a dataset with arms: one board per contrast (the
+/// binary board's chart, on that arm against the reference), the value of
+/// each model's arm choice, and each arm's generalized propensity against
+/// the overlap threshold.
+fn arms_sections(body: &mut String, b: &Board, colors: &Colors, t: &Thresholds) {
+    put!(
+        body,
+        r#"<section id="board"><h2>Boards per contrast</h2><p class="lede">One board per arm against the reference arm <b>{}</b>: each ranked model's corrected PEHE on that contrast minus constant-effect's, with its 95% interval; left of the dashed zero line a model errs less than predicting the contrast's average effect for everyone.</p>"#,
+        Esc(&b.reference_arm)
+    );
+    for c in &b.contrasts {
+        put!(
+            body,
+            r#"<div data-kind="contrast-board" data-arm="{}" data-front-runner="{}"><h3>{} against {}</h3><ul class="facts">"#,
+            Esc(&c.arm),
+            Esc(&c.front_runner),
+            Esc(&c.arm),
+            Esc(&c.reference_arm)
+        );
+        if let Some(ate) = c.ate {
+            put!(
+                body,
+                "<li>average effect <b>{}</b> (se {})</li>",
+                scale::signed(ate.estimate),
+                scale::sig(ate.se)
+            );
+        }
+        if !c.front_runner.is_empty() {
+            put!(
+                body,
+                "<li>front-runner <b>{}</b></li>",
+                Esc(&c.front_runner)
+            );
+        }
+        body.push_str("</ul>");
+        body.push_str(&svg::board_chart(c, colors));
+        body.push_str("</div>");
+    }
+    if let Some(c) = b.contrasts.first().filter(|c| !c.caveat.is_empty()) {
+        put!(body, r#"<p class="note">{}</p>"#, Esc(&c.caveat));
+    }
+    body.push_str("</section>");
+
+    body.push_str(r#"<section id="arm-policy"><h2>Choosing an arm</h2>"#);
+    match &b.arm_policy {
+        None => body.push_str(r#"<p class="note" data-kind="no-data">No arm-choice values on this board.</p>"#),
+        Some(p) => {
+            let reference = p
+                .costs
+                .first()
+                .map(|c| c.arm.as_str())
+                .unwrap_or(b.reference_arm.as_str());
+            let costs: Vec<String> = p
+                .costs
+                .iter()
+                .map(|c| format!("{} {}", Esc(&c.arm), scale::sig(c.cost)))
+                .collect();
+            put!(
+                body,
+                r#"<p class="lede">Each model's targeting rule gives every unit the arm with the largest predicted effect net of its cost (costs: {}), the reference when none is positive. Its value is the mean outcome per unit net of costs, from doubly robust scores, with 95% intervals; beside it, its difference from giving everyone <b>{}</b> and from giving everyone the best single arm, <b>{}</b>.</p>"#,
+                costs.join(", "),
+                Esc(reference),
+                Esc(&p.best_single_arm)
+            );
+            let arms: Vec<&str> = p.costs.iter().map(|c| c.arm.as_str()).collect();
+            put!(
+                body,
+                r#"<table data-kind="arm-policy"><thead><tr><th>policy</th><th>value</th><th>95% interval</th><th>vs everyone {}</th><th>95% interval</th><th>vs everyone {}</th><th>95% interval</th><th>arms given</th></tr></thead><tbody>"#,
+                Esc(reference),
+                Esc(&p.best_single_arm)
+            );
+            for (name, v) in [
+                (format!("everyone {reference}"), &p.reference_value),
+                (
+                    format!("everyone {} (best single arm)", p.best_single_arm),
+                    &p.best_single_arm_value,
+                ),
+            ] {
+                put!(
+                    body,
+                    r#"<tr data-kind="arm-policy-fixed"><td class="note">{}</td>{}<td></td><td></td><td></td><td></td><td></td></tr>"#,
+                    Esc(&name),
+                    valued_cells(v, false)
+                );
+            }
+            for m in &p.models {
+                let shares: Vec<String> = arms
+                    .iter()
+                    .map(|a| {
+                        let share = m
+                            .shares
+                            .iter()
+                            .find(|s| s.arm == *a)
+                            .map(|s| s.share)
+                            .unwrap_or(0.0);
+                        format!("{} {}", Esc(a), scale::percent(share))
+                    })
+                    .collect();
+                put!(
+                    body,
+                    r#"<tr data-kind="arm-policy-row" data-model="{}" data-value="{}" data-vs-reference="{}" data-vs-best-single-arm="{}"><td><span class="dot" style="background:{}"></span>{}</td>{}{}{}<td>{}</td></tr>"#,
+                    Esc(&m.model),
+                    m.value.estimate,
+                    m.vs_reference.estimate,
+                    m.vs_best_single_arm.estimate,
+                    colors.get(&m.model),
+                    Esc(&m.model),
+                    valued_cells(&m.value, false),
+                    valued_cells(&m.vs_reference, true),
+                    valued_cells(&m.vs_best_single_arm, true),
+                    shares.join(", ")
+                );
+            }
+            body.push_str("</tbody></table>");
+            if !p.note.is_empty() {
+                put!(body, r#"<p class="note">Note: {}</p>"#, Esc(&p.note));
+            }
+        }
+    }
+    body.push_str("</section>");
+
+    body.push_str(r#"<section id="overlap"><h2>Propensity by arm</h2>"#);
+    put!(
+        body,
+        r#"<p class="lede">How likely each unit was to get each arm, with every arm modelled at once (the generalized propensity). Units whose chance of an arm is below eps = {} (the shaded band) have that arm's effect resting on extrapolation; an arm's effective sample is the share of its units that the weights 1 / propensity leave in effect (limit {}).</p>"#,
+        t.eps,
+        scale::percent(t.min_effective_share)
+    );
+    body.push_str(&svg::arm_propensity_chart(
+        &arm_propensities(&b.detail_json),
+        t,
+    ));
+    body.push_str(r#"<ul class="facts" data-kind="overlap-facts">"#);
+    for c in &b.contrasts {
+        if let Some(o) = &c.overlap {
+            put!(
+                body,
+                r#"<li data-arm="{}">{} against {}: effective sample <b>{}</b> / <b>{}</b>{}</li>"#,
+                Esc(&c.arm),
+                Esc(&c.arm),
+                Esc(&c.reference_arm),
+                scale::percent(o.treated_effective_share),
+                scale::percent(o.control_effective_share),
+                if o.degraded { ", beyond a limit" } else { "" }
+            );
+        }
+    }
+    body.push_str("</ul></section>");
 }
 
 /// What a browser without an acceptable token gets: why, and a form that
