@@ -525,12 +525,22 @@ async fn the_page_of_a_dataset_with_arms_draws_each_contrast_arm_and_choice() {
     send_predictions(&mut c, "offers", predictions).await;
     send_outcomes(&mut c, "offers", outcomes).await;
     recompute(&mut c, "offers", true).await;
+    recompute(&mut c, "offers", false).await;
     let board = common::service::board(&mut c, "offers", pb::window::Kind::Cumulative).await;
     assert_eq!(board.contrasts.len(), 2, "{}", board.degenerate);
 
     let (status, _, html) = http(server.http, "GET", "/datasets/offers", &[], "");
     assert_eq!(status, 200, "{html}");
     check_arms_page(&html, &board, "served HTML");
+    // Each contrast's history: a line of two points per registered model.
+    assert_eq!(count(&html, "contrast-history", None), 2);
+    for arm in ["text", "mail"] {
+        assert_eq!(
+            count(&html, "contrast-history", Some(("data-arm", arm))),
+            1
+        );
+    }
+    assert_eq!(count(&html, "history-line", Some(("data-points", "2"))), 4);
 
     let Some(chromium) = chromium(test) else {
         server.terminate();

@@ -346,7 +346,20 @@ pub fn dataset_page(v: &DatasetView, f: &Frame) -> String {
         r#"<section id="history"><h2>Scores over time</h2><p class="lede">Each model's difference from constant-effect after every recompute of the last {} days before the latest board, with its 95% band (± 1.96 standard errors) shaded. Baselines are left out: the dashed zero line is constant-effect.</p>"#,
         HISTORY_SPAN_MS / 86_400_000
     );
-    body.push_str(&svg::history_chart(&v.history, &colors));
+    if v.contrast_history.is_empty() {
+        body.push_str(&svg::history_chart(&v.history, &colors));
+    }
+    for (arm, lines) in &v.contrast_history {
+        let reference = arms_board.map(|b| b.reference_arm.as_str()).unwrap_or("");
+        put!(
+            body,
+            r#"<div data-kind="contrast-history" data-arm="{}"><h3>{} against {}</h3>{}</div>"#,
+            Esc(arm),
+            Esc(arm),
+            Esc(reference),
+            svg::history_chart(lines, &colors)
+        );
+    }
     body.push_str("</section>");
 
     // Overlap (a dataset with arms drew its own above).
@@ -691,6 +704,7 @@ mod tests {
                 control: vec![2, 1],
             }),
             history: vec![],
+            contrast_history: vec![],
             events: vec![],
             recompute_failures: 0,
         }

@@ -205,6 +205,10 @@ pub struct DatasetView {
     /// The ranked models' histories, by rank, baselines left out (the
     /// chart's zero line is constant-effect).
     pub history: Vec<ModelHistory>,
+    /// On a dataset with arms, each contrast's arm with its models'
+    /// histories on that contrast's board, as `history` is for a binary
+    /// dataset (which leaves this empty).
+    pub contrast_history: Vec<(String, Vec<ModelHistory>)>,
     /// The latest events, oldest first.
     pub events: Vec<EventRecord>,
     pub conditions: Vec<Condition>,

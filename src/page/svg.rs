@@ -30,6 +30,10 @@ const ZERO: &str = "#444";
 const TREATED: &str = "#B5533C";
 const CONTROL: &str = "#3A6EA5";
 const THRESHOLD: &str = "#C0392B";
+/// Arms' colours on the generalized-propensity chart, the reference
+/// first: the binary chart's control and treated colours, then muted
+/// tones apart from the models' palette.
+const ARM_COLORS: [&str; 6] = [CONTROL, TREATED, "#6B5B95", "#5B8C5A", "#8C6D31", "#7A7A7A"];
 
 /// The shortest time axis (a history of recomputes seconds apart still
 /// gets readable ticks).
@@ -761,11 +765,7 @@ pub fn arm_propensity_chart(arms: &[ArmPropensity], t: &Thresholds) -> String {
     }
     for (i, a) in arms.iter().enumerate() {
         let y = TOP + ROW * i as f64 + ROW / 2.0;
-        let color = if i == 0 {
-            CONTROL
-        } else {
-            PALETTE[(i - 1) % PALETTE.len()]
-        };
+        let color = ARM_COLORS[i % ARM_COLORS.len()];
         let q = |p: f64| a.quantile(p).filter(|v| v.is_finite());
         put!(
             out,
