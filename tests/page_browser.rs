@@ -393,7 +393,11 @@ fn check_arms_page(doc: &str, board: &pb::Scoreboard, what: &str) {
     for c in &board.contrasts {
         assert_eq!(count(doc, "contrast-board", Some(("data-arm", &c.arm))), 1);
         assert_eq!(
-            count(doc, "contrast-board", Some(("data-front-runner", &c.front_runner))),
+            count(
+                doc,
+                "contrast-board",
+                Some(("data-front-runner", &c.front_runner))
+            ),
             board
                 .contrasts
                 .iter()
@@ -407,7 +411,10 @@ fn check_arms_page(doc: &str, board: &pb::Scoreboard, what: &str) {
     assert_eq!(count(doc, "interval", None), ranked);
     for c in &board.contrasts {
         let start = doc
-            .find(&format!("data-kind=\"contrast-board\" data-arm=\"{}\"", c.arm))
+            .find(&format!(
+                "data-kind=\"contrast-board\" data-arm=\"{}\"",
+                c.arm
+            ))
             .expect("contrast section");
         let section = &doc[start..];
         let section = &section[..section[1..]
@@ -445,8 +452,14 @@ fn check_arms_page(doc: &str, board: &pb::Scoreboard, what: &str) {
             ("data-q05", quantile(0.05)),
             ("data-median", quantile(0.5)),
             ("data-q95", quantile(0.95)),
-            ("data-extreme-share", a["extreme_share"].as_f64().expect("share")),
-            ("data-effective-share", a["effective_share"].as_f64().expect("share")),
+            (
+                "data-extreme-share",
+                a["extreme_share"].as_f64().expect("share"),
+            ),
+            (
+                "data-effective-share",
+                a["effective_share"].as_f64().expect("share"),
+            ),
         ] {
             assert_same(
                 number(doc, "arm-propensity", ("data-arm", arm), attr),
@@ -535,10 +548,7 @@ async fn the_page_of_a_dataset_with_arms_draws_each_contrast_arm_and_choice() {
     // Each contrast's history: a line of two points per registered model.
     assert_eq!(count(&html, "contrast-history", None), 2);
     for arm in ["text", "mail"] {
-        assert_eq!(
-            count(&html, "contrast-history", Some(("data-arm", arm))),
-            1
-        );
+        assert_eq!(count(&html, "contrast-history", Some(("data-arm", arm))), 1);
     }
     assert_eq!(count(&html, "history-line", Some(("data-points", "2"))), 4);
 
@@ -547,7 +557,11 @@ async fn the_page_of_a_dataset_with_arms_draws_each_contrast_arm_and_choice() {
         return;
     };
     let base = format!("http://{}", server.http);
-    let dom = browse(&chromium, &["--dump-dom"], &format!("{base}/datasets/offers"));
+    let dom = browse(
+        &chromium,
+        &["--dump-dom"],
+        &format!("{base}/datasets/offers"),
+    );
     check_arms_page(&dom, &board, "browser DOM");
     let shot = target_dir().join("page-arms-screenshot.png");
     let _ = std::fs::remove_file(&shot);

@@ -773,7 +773,9 @@ async fn arm_overlap_and_nuisance(
     boards: &[(&str, pb::Scoreboard)],
     offline: &Value,
 ) {
-    let per_arm = offline["propensity"].as_array().expect("propensity per arm");
+    let per_arm = offline["propensity"]
+        .as_array()
+        .expect("propensity per arm");
     for ((window, board), kind) in boards
         .iter()
         .zip([pb::window::Kind::Cumulative, pb::window::Kind::Recent])
@@ -906,13 +908,21 @@ async fn arm_overlap_and_nuisance(
         let outcome = sample(
             samples,
             "plumbline_nuisance_oof_loss",
-            &[("dataset", "offers"), ("component", "outcome"), ("arm", arm)],
+            &[
+                ("dataset", "offers"),
+                ("component", "outcome"),
+                ("arm", arm),
+            ],
         );
         assert_same(outcome, component(&format!("outcome_{arm}")), arm);
         let got = sample(
             samples,
             "plumbline_nuisance_oof_loss",
-            &[("dataset", "offers"), ("component", "propensity"), ("arm", arm)],
+            &[
+                ("dataset", "offers"),
+                ("component", "propensity"),
+                ("arm", arm),
+            ],
         );
         let want = off_nuisance["arm_oof_loss"][k].as_f64().expect("number");
         assert!(
@@ -949,7 +959,11 @@ async fn binary_overlap_and_series(
     assert!(doc.get("treated").is_some() && doc.get("generalized_propensity").is_none());
     let refused = c
         .scoring
-        .get_overlap(overlap_request("clicks", pb::window::Kind::Cumulative, "text"))
+        .get_overlap(overlap_request(
+            "clicks",
+            pb::window::Kind::Cumulative,
+            "text",
+        ))
         .await
         .expect_err("an arm on a binary dataset");
     assert_eq!(refused.code(), tonic::Code::InvalidArgument);
@@ -991,8 +1005,10 @@ async fn binary_overlap_and_series(
             );
         }
     }
-    assert!(!samples.iter().any(|(n, l, _)| n == "plumbline_overlap_arm_extreme_share"
-        && l.first() == Some(&("dataset".into(), "clicks".into()))));
+    assert!(!samples
+        .iter()
+        .any(|(n, l, _)| n == "plumbline_overlap_arm_extreme_share"
+            && l.first() == Some(&("dataset".into(), "clicks".into()))));
 }
 
 #[test]

@@ -218,11 +218,7 @@ impl pb::scoring_server::Scoring for ScoringService {
             .dataset(&r.dataset)
             .await
             .map_err(from_monitor)?;
-        declared_arm(
-            &info.stored.spec.arms,
-            &r.arm,
-            "whose overlap to read",
-        )?;
+        declared_arm(&info.stored.spec.arms, &r.arm, "whose overlap to read")?;
         let board = self.latest(&r.dataset, &r.window).await?;
         if r.arm.is_empty() {
             let json = detail(&board)
@@ -325,7 +321,10 @@ fn contrast_overlap_json(top: &Board, contrast: &Board) -> String {
             .unwrap_or(serde_json::Value::Null)
     };
     doc.insert("arm".into(), contrast.arm.clone().into());
-    doc.insert("reference_arm".into(), contrast.reference_arm.clone().into());
+    doc.insert(
+        "reference_arm".into(),
+        contrast.reference_arm.clone().into(),
+    );
     doc.insert(
         "generalized_propensity".into(),
         serde_json::Value::Array(vec![entry(&contrast.reference_arm), entry(&contrast.arm)]),

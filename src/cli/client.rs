@@ -858,9 +858,8 @@ pub fn overlap(c: &Connection, d: &DatasetArg, w: &WindowArg, arm: Option<&str>)
                     a["quantiles"]
                         .as_array()
                         .and_then(|qs| {
-                            qs.iter().find(|pair| {
-                                pair[0].as_f64().is_some_and(|x| (x - p).abs() < 1e-9)
-                            })
+                            qs.iter()
+                                .find(|pair| pair[0].as_f64().is_some_and(|x| (x - p).abs() < 1e-9))
                         })
                         .and_then(|pair| pair[1].as_f64())
                         .map(|v| format!("{v:.3}"))

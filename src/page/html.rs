@@ -314,8 +314,8 @@ pub fn dataset_page(v: &DatasetView, f: &Frame) -> String {
 
     // The board.
     if arms_board.is_none() {
-    body.push_str(r#"<section id="board"><h2>Board</h2>"#);
-    match &v.board {
+        body.push_str(r#"<section id="board"><h2>Board</h2>"#);
+        match &v.board {
         None => body.push_str(r#"<p class="note" data-kind="no-data">Not scored yet: send outcomes or call Recompute.</p>"#),
         Some(b) => {
             body.push_str(r#"<p class="lede">Each ranked model's corrected PEHE minus constant-effect's, with its 95% interval; left of the dashed zero line a model errs less than predicting the average effect for everyone. "Chance lowest" is each model's chance of having the lowest error of all.</p>"#);
@@ -337,7 +337,7 @@ pub fn dataset_page(v: &DatasetView, f: &Frame) -> String {
             }
         }
     }
-    body.push_str("</section>");
+        body.push_str("</section>");
     }
 
     // History.
@@ -364,68 +364,70 @@ pub fn dataset_page(v: &DatasetView, f: &Frame) -> String {
 
     // Overlap (a dataset with arms drew its own above).
     if arms_board.is_none() {
-    body.push_str(r#"<section id="overlap"><h2>Propensity by arm</h2>"#);
-    let t = &v.thresholds;
-    put!(
-        body,
-        r#"<p class="lede">How likely each unit was to be treated, for treated units (above) and control units (below). Units in the shaded ends, outside [{}, {}], have an extreme propensity: their effects rest on extrapolation.</p>"#,
-        t.eps,
-        1.0 - t.eps
-    );
-    match &v.propensities {
-        Some(p) => body.push_str(&svg::propensity_chart(p, t)),
-        None => body.push_str(r#"<p class="note" data-kind="no-data">No propensities yet.</p>"#),
-    }
-    if let Some(o) = v.board.as_ref().and_then(|b| b.overlap.as_ref()) {
-        body.push_str(r#"<ul class="facts" data-kind="overlap-facts">"#);
+        body.push_str(r#"<section id="overlap"><h2>Propensity by arm</h2>"#);
+        let t = &v.thresholds;
         put!(
             body,
-            "<li>extreme share <b>{}</b> (limit {})</li>",
-            scale::percent(o.extreme_share),
-            scale::percent(t.max_extreme_share)
+            r#"<p class="lede">How likely each unit was to be treated, for treated units (above) and control units (below). Units in the shaded ends, outside [{}, {}], have an extreme propensity: their effects rest on extrapolation.</p>"#,
+            t.eps,
+            1.0 - t.eps
         );
-        put!(
-            body,
-            "<li>effective sample <b>{}</b> of treated, <b>{}</b> of control (least {})</li>",
-            scale::percent(o.treated_effective_share),
-            scale::percent(o.control_effective_share),
-            scale::percent(t.min_effective_share)
-        );
-        put!(
-            body,
-            "<li>outside [0.1, 0.9] <b>{}</b></li>",
-            scale::percent(o.outside_crump_share)
-        );
-        put!(
-            body,
-            "<li>largest weight <b>{}</b> treated, <b>{}</b> control</li>",
-            scale::percent(o.treated_max_weight),
-            scale::percent(o.control_max_weight)
-        );
-        put!(
-            body,
-            "<li>at this look <b>{}</b></li>",
-            if o.degraded {
-                "beyond a limit"
-            } else {
-                "within limits"
+        match &v.propensities {
+            Some(p) => body.push_str(&svg::propensity_chart(p, t)),
+            None => {
+                body.push_str(r#"<p class="note" data-kind="no-data">No propensities yet.</p>"#)
             }
-        );
-        if !o.imbalanced_features.is_empty() {
-            let names: Vec<String> = o
-                .imbalanced_features
-                .iter()
-                .map(|n| Esc(n).to_string())
-                .collect();
+        }
+        if let Some(o) = v.board.as_ref().and_then(|b| b.overlap.as_ref()) {
+            body.push_str(r#"<ul class="facts" data-kind="overlap-facts">"#);
             put!(
                 body,
-                "<li>imbalanced after weighting <b>{}</b></li>",
-                names.join(", ")
+                "<li>extreme share <b>{}</b> (limit {})</li>",
+                scale::percent(o.extreme_share),
+                scale::percent(t.max_extreme_share)
             );
+            put!(
+                body,
+                "<li>effective sample <b>{}</b> of treated, <b>{}</b> of control (least {})</li>",
+                scale::percent(o.treated_effective_share),
+                scale::percent(o.control_effective_share),
+                scale::percent(t.min_effective_share)
+            );
+            put!(
+                body,
+                "<li>outside [0.1, 0.9] <b>{}</b></li>",
+                scale::percent(o.outside_crump_share)
+            );
+            put!(
+                body,
+                "<li>largest weight <b>{}</b> treated, <b>{}</b> control</li>",
+                scale::percent(o.treated_max_weight),
+                scale::percent(o.control_max_weight)
+            );
+            put!(
+                body,
+                "<li>at this look <b>{}</b></li>",
+                if o.degraded {
+                    "beyond a limit"
+                } else {
+                    "within limits"
+                }
+            );
+            if !o.imbalanced_features.is_empty() {
+                let names: Vec<String> = o
+                    .imbalanced_features
+                    .iter()
+                    .map(|n| Esc(n).to_string())
+                    .collect();
+                put!(
+                    body,
+                    "<li>imbalanced after weighting <b>{}</b></li>",
+                    names.join(", ")
+                );
+            }
+            body.push_str("</ul>");
         }
-        body.push_str("</ul>");
-    }
-    body.push_str("</section>");
+        body.push_str("</section>");
     }
 
     // Events.
@@ -465,7 +467,13 @@ pub fn dataset_page(v: &DatasetView, f: &Frame) -> String {
 /// An estimate and its 95% interval as table cells: the value (signed
 /// for a difference), then the interval.
 fn valued_cells(v: &Valued, difference: bool) -> String {
-    let show = |x: f64| if difference { scale::signed(x) } else { scale::sig(x) };
+    let show = |x: f64| {
+        if difference {
+            scale::signed(x)
+        } else {
+            scale::sig(x)
+        }
+    };
     format!(
         r#"<td class="num" data-value="{}">{}</td><td class="num">[{}, {}]</td>"#,
         v.estimate,
@@ -520,7 +528,9 @@ fn arms_sections(body: &mut String, b: &Board, colors: &Colors, t: &Thresholds) 
 
     body.push_str(r#"<section id="arm-policy"><h2>Choosing an arm</h2>"#);
     match &b.arm_policy {
-        None => body.push_str(r#"<p class="note" data-kind="no-data">No arm-choice values on this board.</p>"#),
+        None => body.push_str(
+            r#"<p class="note" data-kind="no-data">No arm-choice values on this board.</p>"#,
+        ),
         Some(p) => {
             let reference = p
                 .costs
@@ -730,6 +740,86 @@ mod tests {
                 "{banned} found: the page must fetch nothing"
             );
         }
+    }
+
+    /// A dataset with arms: a board chart per contrast under its arm, the
+    /// generalized propensity per arm with the report's numbers, the
+    /// arm-choice rows with the policy report's, and no binary board or
+    /// histograms.
+    #[test]
+    fn a_dataset_with_arms_gets_a_board_per_contrast_its_arms_and_the_choice() {
+        use crate::domain::ArmPolicyBoard;
+        use crate::estimate::arms::{ArmCost, ArmPolicy, ArmShare};
+        let contrast = |arm: &str, models: &[&str]| Board {
+            arm: arm.into(),
+            reference_arm: "none".into(),
+            ..board("offers", models)
+        };
+        let valued = |estimate: f64| Valued {
+            estimate,
+            se: 0.1,
+            ci_low: estimate - 0.196,
+            ci_high: estimate + 0.196,
+        };
+        let top = Board {
+            models: vec![],
+            front_runner: String::new(),
+            reference_arm: "none".into(),
+            contrasts: vec![contrast("text", &["good", "flat"]), contrast("mail", &["flat", "good"])],
+            detail_json: r#"{"propensity":[
+                {"arm":"none","units":400,"quantiles":[[0.05,0.21],[0.5,0.33],[0.95,0.41]],
+                 "effective_sample_size":390.0,"effective_share":0.975,"extreme_share":0.0,"clipped":0},
+                {"arm":"text","units":300,"quantiles":[[0.05,0.125],[0.5,0.3],[0.95,0.5]],
+                 "effective_sample_size":270.0,"effective_share":0.9,"extreme_share":0.0125,"clipped":2}]}"#
+                .into(),
+            arm_policy: Some(ArmPolicyBoard {
+                costs: vec![
+                    ArmCost { arm: "none".into(), cost: 0.0 },
+                    ArmCost { arm: "text".into(), cost: 0.5 },
+                ],
+                reference_value: valued(1.0),
+                best_single_arm: "text".into(),
+                best_single_arm_value: valued(1.25),
+                note: "n".into(),
+                models: vec![ArmPolicy {
+                    model: "good".into(),
+                    value: valued(1.5),
+                    vs_reference: valued(0.5),
+                    vs_best_single_arm: valued(0.25),
+                    shares: vec![ArmShare { arm: "text".into(), share: 0.75 }],
+                }],
+                pairwise: vec![],
+            }),
+            ..board("offers", &["x"])
+        };
+        let mut v = view("offers", &["x"]);
+        v.board = Some(top);
+        v.propensities = None;
+        let s = dataset_page(&v, &frame());
+        for arm in ["text", "mail"] {
+            assert_eq!(
+                s.matches(&format!(r#"data-kind="contrast-board" data-arm="{arm}""#))
+                    .count(),
+                1
+            );
+        }
+        assert_eq!(s.matches(r#"data-kind="board-chart""#).count(), 2);
+        // Two registered models and constant-effect on each contrast.
+        assert_eq!(s.matches(r#"data-kind="interval""#).count(), 6);
+        assert!(s.contains(
+            r#"data-kind="arm-propensity" data-arm="text" data-units="300" data-extreme-share="0.0125" data-effective-share="0.9" data-q05="0.125" data-median="0.3" data-q95="0.5""#
+        ));
+        assert_eq!(s.matches(r#"data-kind="arm-propensity""#).count(), 2);
+        assert!(s.contains(
+            r#"data-kind="arm-policy-row" data-model="good" data-value="1.5" data-vs-reference="0.5" data-vs-best-single-arm="0.25""#
+        ));
+        assert!(s.contains("text 75.0%"), "the arms a model's rule gives");
+        assert_eq!(s.matches(r#"data-kind="arm-policy-fixed""#).count(), 2);
+        assert!(!s.contains(r#"data-kind="propensity-chart""#));
+        assert!(
+            !s.contains(r#"data-model="x""#),
+            "the top board has no models"
+        );
     }
 
     #[test]
