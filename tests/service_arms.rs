@@ -292,6 +292,28 @@ fn a_three_arm_dataset_served_gives_the_offline_boards_and_policy_values() {
     assert_eq!(code, Some(2), "{err}");
     assert!(err.contains("\"none\""), "{err}");
 
+    // The overlap of one contrast, by the command line: its document has
+    // the contrast's arms and both arms' generalized propensity, equal to
+    // the offline document's; the table names the two arms.
+    let overlap = call_json(&["overlap", "--dataset", "offers", "--arm", "mail"]);
+    assert_eq!(overlap["arm"], "mail");
+    assert_json_close(
+        &overlap["generalized_propensity"],
+        &serde_json::json!([offline["propensity"][0], offline["propensity"][2]]),
+        1e-9,
+        "overlap --arm mail",
+    );
+    let (code, table, err) = call(&["overlap", "--dataset", "offers", "--arm", "mail"]);
+    assert_eq!(code, Some(0), "{err}");
+    assert!(
+        table.contains("contrast mail against none") && table.contains("generalized propensity"),
+        "{table}"
+    );
+    println!("{table}");
+    let (code, _, err) = call(&["overlap", "--dataset", "offers"]);
+    assert_eq!(code, Some(2), "{err}");
+    assert!(err.contains("arm") && err.contains("text, mail"), "{err}");
+
     // The recent window holds every unit here (1,200 < 5,000), so its
     // boards are the cumulative ones, scored from the same values.
     let recent = call_json(&["scoreboard", "--dataset", "offers", "--window", "recent"]);
@@ -862,10 +884,21 @@ async fn arm_overlap_and_nuisance(
         );
     }
 
-    // Each arm's extreme share, beside its effective share.
+    // Each arm's extreme share, beside its effective share. The share
+    // below eps is 0 exactly when the arm's smallest propensity (its 0%
+    // quantile, over the same units) is at least eps.
+    let eps = boards[0].1.contrasts[0]
+        .overlap
+        .as_ref()
+        .expect("overlap")
+        .eps;
     for p in per_arm {
         let arm = p["arm"].as_str().expect("arm");
         let want = p["extreme_share"].as_f64().expect("number");
+        let smallest = p["quantiles"][0][1].as_f64().expect("0% quantile");
+        assert_eq!(p["quantiles"][0][0].as_f64(), Some(0.0));
+        assert_eq!(want == 0.0, smallest >= eps, "{arm}: {want} {smallest}");
+        println!("arm {arm}: smallest propensity {smallest:.4} against eps {eps}");
         for window in ["cumulative", "recent"] {
             let got = sample(
                 samples,
