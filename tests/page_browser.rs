@@ -551,6 +551,17 @@ async fn the_page_of_a_dataset_with_arms_draws_each_contrast_arm_and_choice() {
         assert_eq!(count(&html, "contrast-history", Some(("data-arm", arm))), 1);
     }
     assert_eq!(count(&html, "history-line", Some(("data-points", "2"))), 4);
+    // The index names each contrast's front-runner.
+    let (_, _, index) = http(server.http, "GET", "/", &[], "");
+    for c in &board.contrasts {
+        assert!(
+            index.contains(&format!(
+                r#"data-kind="contrast-front-runner" data-arm="{}">{}: {}<"#,
+                c.arm, c.arm, c.front_runner
+            )),
+            "{index}"
+        );
+    }
 
     let Some(chromium) = chromium(test) else {
         server.terminate();

@@ -502,3 +502,80 @@ impl Monitor {
         }
     }
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::domain::{NuisanceComponent, Window};
+
+    fn component(name: &str, oof_loss: f64) -> NuisanceComponent {
+        NuisanceComponent {
+            component: name.into(),
+            learner: "ridge".into(),
+            oof_loss,
+            loss: "squared_error".into(),
+        }
+    }
+
+    /// A top board of a dataset with arms gives each arm's shares and the
+    /// losses per arm from its components and document; a binary board
+    /// (no contrasts) gives none, so its series are the binary ones only.
+    #[test]
+    fn per_arm_series_come_from_the_top_board_only() {
+        let mut top = crate::monitor::board::degenerate(
+            crate::monitor::board::BoardParts {
+                dataset: "offers",
+                window: Window::Cumulative,
+                snapshot_id: 1,
+                computed_at_ms: 0,
+                incomplete: vec![],
+                max_extreme_share: 0.1,
+                min_effective_share: 0.2,
+            },
+            10,
+            String::new(),
+        );
+        let mut contrast = top.clone();
+        contrast.arm = "text".into();
+        top.contrasts = vec![contrast];
+        top.nuisance = vec![
+            component("propensity", 0.9),
+            component("outcome_none", 0.25),
+            component("outcome_text", 0.5),
+        ];
+        top.detail_json = r#"{"arms":["none","text"],
+            "propensity":[{"arm":"none","effective_share":0.75,"extreme_share":0.0},
+                          {"arm":"text","effective_share":0.5,"extreme_share":0.125}],
+            "nuisance":{"propensity":{"oof_loss":0.9,"arm_oof_loss":[0.5,1.3]}}}"#
+            .into();
+        assert_eq!(
+            arm_overlaps(&top),
+            vec![
+                ArmOverlap {
+                    arm: "none".into(),
+                    effective_share: 0.75,
+                    extreme_share: 0.0
+                },
+                ArmOverlap {
+                    arm: "text".into(),
+                    effective_share: 0.5,
+                    extreme_share: 0.125
+                },
+            ]
+        );
+        assert_eq!(
+            arm_nuisance_losses(&top),
+            vec![
+                ("propensity", String::new(), 0.9),
+                ("outcome", "none".into(), 0.25),
+                ("propensity", "none".into(), 0.5),
+                ("outcome", "text".into(), 0.5),
+                ("propensity", "text".into(), 1.3),
+            ]
+        );
+        let mut binary = top.clone();
+        binary.contrasts.clear();
+        assert!(arm_overlaps(&binary).is_empty());
+        assert!(arm_nuisance_losses(&binary).is_empty());
+    }
+}

@@ -173,6 +173,20 @@ pub fn index_page(list: &[DatasetSummary], f: &Frame) -> String {
             Some(b) => {
                 let front = if !b.degenerate.is_empty() {
                     format!(r#"<span class="note">no scores: {}</span>"#, Esc(&b.degenerate))
+                } else if !b.contrast_front_runners.is_empty() {
+                    let parts: Vec<String> = b
+                        .contrast_front_runners
+                        .iter()
+                        .map(|(arm, front)| {
+                            format!(
+                                r#"<span data-kind="contrast-front-runner" data-arm="{}">{}: {}</span>"#,
+                                Esc(arm),
+                                Esc(arm),
+                                if front.is_empty() { "–".to_string() } else { Esc(front).to_string() }
+                            )
+                        })
+                        .collect();
+                    parts.join("; ")
                 } else if b.front_runner.is_empty() {
                     "–".into()
                 } else {
@@ -860,6 +874,7 @@ mod tests {
                     front_runner: EVIL.into(),
                     computed_at_ms: 0,
                     degenerate: String::new(),
+                    contrast_front_runners: vec![],
                 }),
                 conditions: vec![],
             }],

@@ -232,6 +232,9 @@ pub struct BoardFacts {
     pub front_runner: String,
     pub computed_at_ms: i64,
     pub degenerate: String,
+    /// On a dataset with arms, each contrast's arm and front-runner (the
+    /// top board has none of its own); empty otherwise.
+    pub contrast_front_runners: Vec<(String, String)>,
 }
 
 impl BoardFacts {
@@ -241,6 +244,11 @@ impl BoardFacts {
             front_runner: b.front_runner.clone(),
             computed_at_ms: b.computed_at_ms,
             degenerate: b.degenerate.clone(),
+            contrast_front_runners: b
+                .contrasts
+                .iter()
+                .map(|c| (c.arm.clone(), c.front_runner.clone()))
+                .collect(),
         }
     }
 }
