@@ -447,6 +447,27 @@ mod tests {
             assert!(text.lines().any(|l| l == line), "{line} in\n{text}");
         }
         assert!(!text.contains("contrast=\"\""), "{text}");
+        // A nuisance loss: `arm` written only on a dataset with arms.
+        let losses: Family<ComponentLabels, FloatGauge> = Family::default();
+        registry.register("loss", "l", losses.clone());
+        let component = |component: &str, arm: &str| ComponentLabels {
+            dataset: "d".into(),
+            component: component.into(),
+            arm: arm.into(),
+        };
+        losses
+            .get_or_create(&component("outcome_control", ""))
+            .set(0.25);
+        losses.get_or_create(&component("outcome", "text")).set(0.5);
+        let mut text = String::new();
+        prometheus_client::encoding::text::encode(&mut text, &registry).expect("encode");
+        for line in [
+            "loss{dataset=\"d\",component=\"outcome_control\"} 0.25",
+            "loss{dataset=\"d\",component=\"outcome\",arm=\"text\"} 0.5",
+        ] {
+            assert!(text.lines().any(|l| l == line), "{line} in\n{text}");
+        }
+        assert!(!text.contains("arm=\"\""), "{text}");
         // Series differing only in their contrast are distinct.
         assert_eq!(ranks.get_or_create(&model("")).get(), 1.0);
         assert!(ranks.remove(&model("text")));
