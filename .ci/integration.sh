@@ -16,8 +16,8 @@
 #   - the Python client's unit tests (clients/python/tests) pass;
 #   - a three-arm dataset streamed through the client (arm labels, costs,
 #     predictions per arm) gets a board for each contrast with the model
-#     that predicts the true effects first on both, an arm policy report
-#     and a per-contrast comparison;
+#     that predicts the true effects first on both, an arm policy report,
+#     a per-contrast comparison and a per-contrast overlap report;
 #   - a recompute of a dataset with no outcomes fails as documented
 #     (FAILED_PRECONDITION), which the service counts in
 #     plumbline_recompute_failures_total;
@@ -244,6 +244,7 @@ with pc.connect(sys.argv[1]) as client:
     policy = client.arm_policy(name)
     pairs = client.arm_policy_pairwise(name)
     text = client.compare_models(name, "good", "flat", arm="text")
+    overlap = {arm: client.overlap(name, arm=arm) for arm in ("text", "mail")}
 print(board[["arm", "rank", "model", "vs_constant_estimate", "vs_constant_ci_low", "vs_constant_ci_high"]]
       .to_string(index=False))
 print(policy[["model", "vs_reference", "vs_reference_ci_low", "vs_reference_ci_high", "share_none",
@@ -269,6 +270,13 @@ if not all(abs(s - 1) < 1e-9 for s in shares):
     failures.append(f"shares sum to {list(shares)}")
 if len(pairs) != 1 or text["units"] != 1500 or not text["estimate"] < 0:
     failures.append(f"pairs {len(pairs)}, compare {text}")
+for arm, o in overlap.items():
+    gp = o.attrs.get("generalized_propensity", [])
+    print(f"overlap {arm} vs none: effective share {o.loc[0, 'effective_share']:.3f} / "
+          f"{o.loc[1, 'effective_share']:.3f}; generalized propensity of "
+          + ", ".join(f"{a['arm']} below eps {a['extreme_share']:.3f}" for a in gp))
+    if list(o["arm"]) != [arm, "none"] or [a["arm"] for a in gp] != ["none", arm]:
+        failures.append(f"overlap of {arm}: rows {list(o['arm'])}, arms {[a['arm'] for a in gp]}")
 if failures:
     print("integration: three arms: " + "; ".join(failures), file=sys.stderr)
     sys.exit(1)

@@ -349,6 +349,247 @@ async fn the_page_draws_board_history_overlap_and_events_in_a_browser() {
     server.terminate();
 }
 
+/// The number in attribute `attr` of the one element with
+/// `data-kind="kind"` and the attribute `key` equal to `value`.
+fn number(dom: &str, kind: &str, key: (&str, &str), attr: &str) -> f64 {
+    let tags: Vec<&str> = dom
+        .split('<')
+        .filter(|tag| tag.contains(&format!("data-kind=\"{kind}\"")))
+        .filter(|tag| tag.contains(&format!("{}=\"{}\"", key.0, key.1)))
+        .collect();
+    assert_eq!(tags.len(), 1, "one {kind} with {key:?}");
+    let start = format!("{attr}=\"");
+    let at = tags[0]
+        .find(&start)
+        .unwrap_or_else(|| panic!("{kind} {key:?} has no {attr}"))
+        + start.len();
+    let rest = &tags[0][at..];
+    let text = &rest[..rest.find('"').unwrap_or(rest.len())];
+    text.parse()
+        .unwrap_or_else(|e| panic!("{kind} {key:?} {attr}={text:?}: {e}"))
+}
+
+/// The page writes each number in its shortest round-trip form, so a
+/// drawn number reads back as the board's double: 1e-12 relative leaves
+/// room for nothing more than that.
+fn assert_same(got: f64, want: f64, what: &str) {
+    assert!(
+        (got - want).abs() <= 1e-12 * want.abs().max(1.0),
+        "{what}: {got} on the page, {want} on the board"
+    );
+    println!("{what}: {got} on the page and the board");
+}
+
+/// A dataset with three arms on the page: a board per contrast with one
+/// interval per ranked model at the board's bounds, each arm's
+/// generalized propensity (5%, 50%, 95% quantiles, extreme and effective
+/// shares) as the board's detail document has it, and the arm-choice
+/// table with each model's value and differences from the board's policy
+/// report. `doc` is the server's HTML or the browser's DOM.
+fn check_arms_page(doc: &str, board: &pb::Scoreboard, what: &str) {
+    println!("{what}:");
+    assert_eq!(count(doc, "contrast-board", None), board.contrasts.len());
+    assert_eq!(count(doc, "board-chart", None), board.contrasts.len());
+    for c in &board.contrasts {
+        assert_eq!(count(doc, "contrast-board", Some(("data-arm", &c.arm))), 1);
+        assert_eq!(
+            count(
+                doc,
+                "contrast-board",
+                Some(("data-front-runner", &c.front_runner))
+            ),
+            board
+                .contrasts
+                .iter()
+                .filter(|o| o.front_runner == c.front_runner)
+                .count()
+        );
+    }
+    // Intervals: one per ranked model and contrast. Each contrast's chart
+    // is its own section, so its rows are found after its heading.
+    let ranked: usize = board.contrasts.iter().map(|c| c.models.len()).sum();
+    assert_eq!(count(doc, "interval", None), ranked);
+    for c in &board.contrasts {
+        let start = doc
+            .find(&format!(
+                "data-kind=\"contrast-board\" data-arm=\"{}\"",
+                c.arm
+            ))
+            .expect("contrast section");
+        let section = &doc[start..];
+        let section = &section[..section[1..]
+            .find("data-kind=\"contrast-board\"")
+            .map(|i| i + 1)
+            .unwrap_or(section.len())];
+        for m in &c.models {
+            let v = m.vs_constant.unwrap_or_default();
+            for (attr, want) in [("data-low", v.ci_low), ("data-high", v.ci_high)] {
+                assert_same(
+                    number(section, "interval", ("data-model", &m.name), attr),
+                    want,
+                    &format!("{} {} {attr}", c.arm, m.name),
+                );
+            }
+        }
+    }
+    // Each arm's generalized propensity, from the top board's document.
+    let detail: serde_json::Value = serde_json::from_str(&board.json).expect("board json");
+    let arms = detail["propensity"].as_array().expect("propensity per arm");
+    assert_eq!(count(doc, "arm-propensity", None), arms.len());
+    assert_eq!(count(doc, "arm-propensity-box", None), arms.len());
+    for a in arms {
+        let arm = a["arm"].as_str().expect("arm");
+        let quantile = |p: f64| {
+            a["quantiles"]
+                .as_array()
+                .expect("quantiles")
+                .iter()
+                .find(|q| q[0].as_f64() == Some(p))
+                .and_then(|q| q[1].as_f64())
+                .expect("quantile")
+        };
+        for (attr, want) in [
+            ("data-q05", quantile(0.05)),
+            ("data-median", quantile(0.5)),
+            ("data-q95", quantile(0.95)),
+            (
+                "data-extreme-share",
+                a["extreme_share"].as_f64().expect("share"),
+            ),
+            (
+                "data-effective-share",
+                a["effective_share"].as_f64().expect("share"),
+            ),
+        ] {
+            assert_same(
+                number(doc, "arm-propensity", ("data-arm", arm), attr),
+                want,
+                &format!("arm {arm} {attr}"),
+            );
+        }
+    }
+    assert_eq!(count(doc, "overlap-threshold", None), 1);
+    // The arm choice: each model's value and its two differences.
+    let p = board.arm_policy.as_ref().expect("arm policy");
+    assert_eq!(count(doc, "arm-policy-row", None), p.models.len());
+    assert_eq!(count(doc, "arm-policy-fixed", None), 2);
+    for m in &p.models {
+        for (attr, want) in [
+            ("data-value", m.value),
+            ("data-vs-reference", m.vs_reference),
+            ("data-vs-best-single-arm", m.vs_best_single_arm),
+        ] {
+            assert_same(
+                number(doc, "arm-policy-row", ("data-model", &m.model), attr),
+                want.unwrap_or_default().estimate,
+                &format!("{} {attr}", m.model),
+            );
+        }
+    }
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn the_page_of_a_dataset_with_arms_draws_each_contrast_arm_and_choice() {
+    let test = "the_page_of_a_dataset_with_arms_draws_each_contrast_arm_and_choice";
+    let dir = TempDir::new("page-arms");
+    let server = serve_binary(&dir, &[], "warn", false);
+    let mut c = clients(server.grpc).await;
+    let arms = ["none", "text", "mail"];
+    let spec = pb::DatasetSpec {
+        arms: arms.iter().map(|a| a.to_string()).collect(),
+        ..common::service::continuous_spec("offers", 2)
+    };
+    c.datasets
+        .create_dataset(pb::CreateDatasetRequest { spec: Some(spec) })
+        .await
+        .expect("create");
+    for m in ["good", "flat"] {
+        common::service::register(&mut c, "offers", m).await;
+    }
+    let mut rng = ChaCha8Rng::seed_from_u64(41);
+    let (mut units, mut predictions, mut outcomes) = (Vec::new(), Vec::new(), Vec::new());
+    for i in 0..900 {
+        let (x1, x2, arm, y, tau) = common::three_arm_unit(&mut rng);
+        let key = format!("u{i}");
+        units.push(pb::UnitRow {
+            key: key.clone(),
+            features: vec![x1, x2],
+            arm: arms[arm].into(),
+            ..Default::default()
+        });
+        for (k, arm) in arms.iter().enumerate().skip(1) {
+            for (model, effect) in [("good", tau[k]), ("flat", 0.3)] {
+                predictions.push(pb::PredictionRow {
+                    model: model.into(),
+                    unit_key: key.clone(),
+                    effect,
+                    arm: (*arm).into(),
+                    ..Default::default()
+                });
+            }
+        }
+        outcomes.push(pb::OutcomeRow {
+            unit_key: key,
+            value: y,
+            observed_at_ms: 0,
+        });
+    }
+    send_units(&mut c, "offers", units).await;
+    send_predictions(&mut c, "offers", predictions).await;
+    send_outcomes(&mut c, "offers", outcomes).await;
+    recompute(&mut c, "offers", true).await;
+    recompute(&mut c, "offers", false).await;
+    let board = common::service::board(&mut c, "offers", pb::window::Kind::Cumulative).await;
+    assert_eq!(board.contrasts.len(), 2, "{}", board.degenerate);
+
+    let (status, _, html) = http(server.http, "GET", "/datasets/offers", &[], "");
+    assert_eq!(status, 200, "{html}");
+    check_arms_page(&html, &board, "served HTML");
+    // Each contrast's history: a line of two points per registered model.
+    assert_eq!(count(&html, "contrast-history", None), 2);
+    for arm in ["text", "mail"] {
+        assert_eq!(count(&html, "contrast-history", Some(("data-arm", arm))), 1);
+    }
+    assert_eq!(count(&html, "history-line", Some(("data-points", "2"))), 4);
+    // The index names each contrast's front-runner.
+    let (_, _, index) = http(server.http, "GET", "/", &[], "");
+    for c in &board.contrasts {
+        assert!(
+            index.contains(&format!(
+                r#"data-kind="contrast-front-runner" data-arm="{}">{}: {}<"#,
+                c.arm, c.arm, c.front_runner
+            )),
+            "{index}"
+        );
+    }
+
+    let Some(chromium) = chromium(test) else {
+        server.terminate();
+        return;
+    };
+    let base = format!("http://{}", server.http);
+    let dom = browse(
+        &chromium,
+        &["--dump-dom"],
+        &format!("{base}/datasets/offers"),
+    );
+    check_arms_page(&dom, &board, "browser DOM");
+    let shot = target_dir().join("page-arms-screenshot.png");
+    let _ = std::fs::remove_file(&shot);
+    browse(
+        &chromium,
+        &[
+            &format!("--screenshot={}", shot.display()),
+            "--window-size=1400,2600",
+        ],
+        &format!("{base}/datasets/offers"),
+    );
+    let png = std::fs::read(&shot).expect("screenshot written");
+    assert!(png.starts_with(b"\x89PNG\r\n\x1a\n"), "a PNG");
+    eprintln!("screenshot: {}", shot.display());
+    server.terminate();
+}
+
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn a_gated_page_wants_a_token_that_reads_everything_by_header_or_cookie() {
     let test = "a_gated_page_wants_a_token_that_reads_everything_by_header_or_cookie";

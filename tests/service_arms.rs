@@ -292,6 +292,28 @@ fn a_three_arm_dataset_served_gives_the_offline_boards_and_policy_values() {
     assert_eq!(code, Some(2), "{err}");
     assert!(err.contains("\"none\""), "{err}");
 
+    // The overlap of one contrast, by the command line: its document has
+    // the contrast's arms and both arms' generalized propensity, equal to
+    // the offline document's; the table names the two arms.
+    let overlap = call_json(&["overlap", "--dataset", "offers", "--arm", "mail"]);
+    assert_eq!(overlap["arm"], "mail");
+    assert_json_close(
+        &overlap["generalized_propensity"],
+        &serde_json::json!([offline["propensity"][0], offline["propensity"][2]]),
+        1e-9,
+        "overlap --arm mail",
+    );
+    let (code, table, err) = call(&["overlap", "--dataset", "offers", "--arm", "mail"]);
+    assert_eq!(code, Some(0), "{err}");
+    assert!(
+        table.contains("contrast mail against none") && table.contains("generalized propensity"),
+        "{table}"
+    );
+    println!("{table}");
+    let (code, _, err) = call(&["overlap", "--dataset", "offers"]);
+    assert_eq!(code, Some(2), "{err}");
+    assert!(err.contains("arm") && err.contains("text, mail"), "{err}");
+
     // The recent window holds every unit here (1,200 < 5,000), so its
     // boards are the cumulative ones, scored from the same values.
     let recent = call_json(&["scoreboard", "--dataset", "offers", "--window", "recent"]);
@@ -590,6 +612,7 @@ async fn contrast_series_and_history(srv: &ServeBinary, offline: &Value) {
         println!("arm {arm}: effective share {want:.4} on /metrics and offline");
     }
     println!("{checked} per-contrast score and se series equal to the boards");
+    arm_overlap_and_nuisance(&mut c, &samples, &boards, offline).await;
 
     // History per contrast: the one recompute's values, as on the board.
     for b in &boards[0].1.contrasts {
@@ -742,10 +765,283 @@ async fn contrast_series_and_history(srv: &ServeBinary, offline: &Value) {
         .into_inner()
         .points;
     assert_eq!(points.len(), 1);
+    binary_overlap_and_series(&mut c, &samples, &binary).await;
     println!(
         "binary dataset: {} series without a contrast label",
         of_clicks.len()
     );
+}
+
+fn overlap_request(dataset: &str, kind: pb::window::Kind, arm: &str) -> pb::GetOverlapRequest {
+    pb::GetOverlapRequest {
+        dataset: dataset.into(),
+        window: Some(pb::Window {
+            kind: kind as i32,
+            cohort: String::new(),
+        }),
+        arm: arm.into(),
+    }
+}
+
+/// GetOverlap per contrast: the summary is the contrast board's own (the
+/// same doubles), the JSON its report with both arms' generalized
+/// propensity equal to `plumbline score --arms`'s; the request's arm is
+/// required (INVALID_ARGUMENT), and the reference or an undeclared arm is
+/// NOT_FOUND. /metrics has each arm's extreme share beside its effective
+/// share and the nuisance losses per arm, equal to the board's.
+async fn arm_overlap_and_nuisance(
+    c: &mut common::service::Clients,
+    samples: &[common::service::Sample],
+    boards: &[(&str, pb::Scoreboard)],
+    offline: &Value,
+) {
+    let per_arm = offline["propensity"]
+        .as_array()
+        .expect("propensity per arm");
+    for ((window, board), kind) in boards
+        .iter()
+        .zip([pb::window::Kind::Cumulative, pb::window::Kind::Recent])
+    {
+        for b in &board.contrasts {
+            let r = c
+                .scoring
+                .get_overlap(overlap_request("offers", kind, &b.arm))
+                .await
+                .expect("overlap of a contrast")
+                .into_inner();
+            // The same record converted twice: equal to the last bit.
+            assert_eq!(r.summary, b.overlap, "{window} {}", b.arm);
+            let s = r.summary.unwrap_or_default();
+            let doc: Value = serde_json::from_str(&r.json).expect("overlap json");
+            assert_eq!(doc["arm"], b.arm.as_str());
+            assert_eq!(doc["reference_arm"], "none");
+            assert_eq!(
+                doc["treated"]["effective_share"].as_f64(),
+                Some(s.treated_effective_share)
+            );
+            assert_eq!(
+                doc["control"]["effective_share"].as_f64(),
+                Some(s.control_effective_share)
+            );
+            assert_eq!(doc["share_outside_eps"].as_f64(), Some(s.extreme_share));
+            let pair = doc["generalized_propensity"]
+                .as_array()
+                .expect("two arms' generalized propensity");
+            assert_eq!(pair.len(), 2);
+            for (entry, arm) in pair.iter().zip(["none", b.arm.as_str()]) {
+                assert_eq!(entry["arm"], arm);
+                let off = per_arm
+                    .iter()
+                    .find(|p| p["arm"] == arm)
+                    .expect("offline arm");
+                for key in ["effective_share", "extreme_share", "effective_sample_size"] {
+                    let (got, want) = (
+                        entry[key].as_f64().expect("number"),
+                        off[key].as_f64().expect("number"),
+                    );
+                    // The served board equals the offline document to 1e-9.
+                    assert!(
+                        (got - want).abs() <= 1e-9 * want.abs().max(1.0),
+                        "{window} {arm} {key}: {got} vs {want}"
+                    );
+                }
+                assert_json_close(&entry["quantiles"], &off["quantiles"], 1e-9, "quantiles");
+            }
+            println!(
+                "{window} {} vs none: effective share {:.4} / {:.4}, outside eps {:.4}; \
+                 generalized propensity effective share {} / {}",
+                b.arm,
+                s.treated_effective_share,
+                s.control_effective_share,
+                s.extreme_share,
+                pair[1]["effective_share"],
+                pair[0]["effective_share"]
+            );
+        }
+    }
+    let refused = c
+        .scoring
+        .get_overlap(overlap_request("offers", pb::window::Kind::Cumulative, ""))
+        .await
+        .expect_err("no arm");
+    assert_eq!(refused.code(), tonic::Code::InvalidArgument);
+    assert!(
+        refused.message().starts_with("arm: ") && refused.message().contains("text, mail"),
+        "{}",
+        refused.message()
+    );
+    for arm in ["none", "sms"] {
+        let refused = c
+            .scoring
+            .get_overlap(overlap_request("offers", pb::window::Kind::Cumulative, arm))
+            .await
+            .expect_err("no contrast");
+        assert_eq!(refused.code(), tonic::Code::NotFound, "{arm}");
+        assert!(
+            refused.message().starts_with("arm: "),
+            "{}",
+            refused.message()
+        );
+    }
+
+    // Each arm's extreme share, beside its effective share. The share
+    // below eps is 0 exactly when the arm's smallest propensity (its 0%
+    // quantile, over the same units) is at least eps.
+    let eps = boards[0].1.contrasts[0]
+        .overlap
+        .as_ref()
+        .expect("overlap")
+        .eps;
+    for p in per_arm {
+        let arm = p["arm"].as_str().expect("arm");
+        let want = p["extreme_share"].as_f64().expect("number");
+        let smallest = p["quantiles"][0][1].as_f64().expect("0% quantile");
+        assert_eq!(p["quantiles"][0][0].as_f64(), Some(0.0));
+        assert_eq!(want == 0.0, smallest >= eps, "{arm}: {want} {smallest}");
+        println!("arm {arm}: smallest propensity {smallest:.4} against eps {eps}");
+        for window in ["cumulative", "recent"] {
+            let got = sample(
+                samples,
+                "plumbline_overlap_arm_extreme_share",
+                &[("dataset", "offers"), ("window", window), ("arm", arm)],
+            );
+            assert!(
+                (got - want).abs() <= 1e-9,
+                "{window} {arm}: {got} vs {want}"
+            );
+        }
+        println!("arm {arm}: extreme share {want:.4} on /metrics and offline");
+    }
+
+    // The nuisance losses: the generalized propensity's, and per arm its
+    // outcome model's and the propensity's over the arm's units.
+    let top = &boards[0].1;
+    let component = |name: &str| {
+        top.nuisance
+            .iter()
+            .find(|n| n.component == name)
+            .unwrap_or_else(|| panic!("{name} on the board"))
+            .oof_loss
+    };
+    let overall = component("propensity");
+    assert_same(
+        sample(
+            samples,
+            "plumbline_nuisance_oof_loss",
+            &[("dataset", "offers"), ("component", "propensity")],
+        ),
+        overall,
+        "propensity",
+    );
+    let off_nuisance = &offline["nuisance"]["propensity"];
+    let units = offline["units_per_arm"].as_array().expect("units per arm");
+    let n: f64 = units.iter().filter_map(Value::as_f64).sum();
+    let mut weighted = 0.0;
+    for (k, arm) in ARMS.iter().enumerate() {
+        let outcome = sample(
+            samples,
+            "plumbline_nuisance_oof_loss",
+            &[
+                ("dataset", "offers"),
+                ("component", "outcome"),
+                ("arm", arm),
+            ],
+        );
+        assert_same(outcome, component(&format!("outcome_{arm}")), arm);
+        let got = sample(
+            samples,
+            "plumbline_nuisance_oof_loss",
+            &[
+                ("dataset", "offers"),
+                ("component", "propensity"),
+                ("arm", arm),
+            ],
+        );
+        let want = off_nuisance["arm_oof_loss"][k].as_f64().expect("number");
+        assert!(
+            (got - want).abs() <= 1e-9 * want.abs().max(1.0),
+            "{arm}: {got} vs {want}"
+        );
+        weighted += units[k].as_f64().expect("units") / n * got;
+        println!("arm {arm}: outcome loss {outcome:.4}, propensity log-loss {got:.4}");
+    }
+    // The per-arm log-losses are the overall one regrouped by arm.
+    assert!(
+        (weighted - overall).abs() <= 1e-9,
+        "{weighted} vs {overall}"
+    );
+    println!("propensity log-loss {overall:.5}; per arm, weighted by share {weighted:.5}");
+}
+
+/// A binary dataset: GetOverlap with no arm gives the board's summary and
+/// its plain report, an arm is INVALID_ARGUMENT; its nuisance series carry
+/// exactly the labels they always had, and it has no per-arm series.
+async fn binary_overlap_and_series(
+    c: &mut common::service::Clients,
+    samples: &[common::service::Sample],
+    binary: &pb::Scoreboard,
+) {
+    let r = c
+        .scoring
+        .get_overlap(overlap_request("clicks", pb::window::Kind::Cumulative, ""))
+        .await
+        .expect("binary overlap")
+        .into_inner();
+    assert_eq!(r.summary, binary.overlap);
+    let doc: Value = serde_json::from_str(&r.json).expect("overlap json");
+    assert!(doc.get("treated").is_some() && doc.get("generalized_propensity").is_none());
+    let refused = c
+        .scoring
+        .get_overlap(overlap_request(
+            "clicks",
+            pb::window::Kind::Cumulative,
+            "text",
+        ))
+        .await
+        .expect_err("an arm on a binary dataset");
+    assert_eq!(refused.code(), tonic::Code::InvalidArgument);
+    assert!(
+        refused.message().starts_with("arm: "),
+        "{}",
+        refused.message()
+    );
+    let losses: Vec<_> = samples
+        .iter()
+        .filter(|(n, l, _)| {
+            n == "plumbline_nuisance_oof_loss"
+                && l.first() == Some(&("dataset".into(), "clicks".into()))
+        })
+        .collect();
+    let mut components: Vec<&str> = losses
+        .iter()
+        .map(|(_, l, _)| {
+            let keys: Vec<&str> = l.iter().map(|(k, _)| k.as_str()).collect();
+            assert_eq!(keys, ["dataset", "component"], "{l:?}");
+            l[1].1.as_str()
+        })
+        .collect();
+    components.sort_unstable();
+    assert_eq!(
+        components,
+        ["outcome_control", "outcome_treated", "propensity"]
+    );
+    for (component, want) in binary.nuisance.iter().map(|n| (&n.component, n.oof_loss)) {
+        if want > 0.0 {
+            assert_same(
+                sample(
+                    samples,
+                    "plumbline_nuisance_oof_loss",
+                    &[("dataset", "clicks"), ("component", component)],
+                ),
+                want,
+                component,
+            );
+        }
+    }
+    assert!(!samples
+        .iter()
+        .any(|(n, l, _)| n == "plumbline_overlap_arm_extreme_share"
+            && l.first() == Some(&("dataset".into(), "clicks".into()))));
 }
 
 #[test]

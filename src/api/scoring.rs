@@ -66,11 +66,12 @@ fn contrast(board: Board, arm: &str) -> Result<Board, Status> {
         })
 }
 
-/// Checks a history request's `arm` against the dataset's declared arms
-/// (the reference first; none on a binary dataset): required on a dataset
-/// with arms, where it names a contrast (any arm but the reference), and
-/// refused on a binary one.
-fn history_arm(arms: &[String], arm: &str) -> Result<(), Status> {
+/// Checks a request's `arm` against the dataset's declared arms (the
+/// reference first; none on a binary dataset): required on a dataset with
+/// arms, where it names a contrast (any arm but the reference; another is
+/// NOT_FOUND), and refused on a binary one. `what` ends the message that
+/// asks for it ("whose history to read").
+fn declared_arm(arms: &[String], arm: &str, what: &str) -> Result<(), Status> {
     let Some((reference, contrasts)) = arms.split_first() else {
         if arm.is_empty() {
             return Ok(());
@@ -82,7 +83,7 @@ fn history_arm(arms: &[String], arm: &str) -> Result<(), Status> {
     let named = contrasts.join(", ");
     if arm.is_empty() {
         return Err(Status::invalid_argument(format!(
-            "arm: the dataset has arms; name the contrast whose history to read (one of {named})"
+            "arm: the dataset has arms; name the contrast {what} (one of {named})"
         )));
     }
     if !contrasts.iter().any(|a| a == arm) {
@@ -154,7 +155,7 @@ impl pb::scoring_server::Scoring for ScoringService {
             .dataset(&r.dataset)
             .await
             .map_err(from_monitor)?;
-        history_arm(&info.stored.spec.arms, &r.arm)?;
+        declared_arm(&info.stored.spec.arms, &r.arm, "whose history to read")?;
         let id = info.stored.id;
         let to = if r.to_ms == 0 { i64::MAX } else { r.to_ms };
         let rows = self
@@ -212,14 +213,30 @@ impl pb::scoring_server::Scoring for ScoringService {
         let who = caller(&request)?;
         let r = request.into_inner();
         who.require(Access::Read, &r.dataset)?;
+        let info = self
+            .monitor
+            .dataset(&r.dataset)
+            .await
+            .map_err(from_monitor)?;
+        declared_arm(&info.stored.spec.arms, &r.arm, "whose overlap to read")?;
         let board = self.latest(&r.dataset, &r.window).await?;
-        let json = serde_json::from_str::<serde_json::Value>(&board.detail_json)
-            .ok()
-            .and_then(|v| v.get("overlap").map(|o| o.to_string()))
-            .unwrap_or_default();
+        if r.arm.is_empty() {
+            let json = detail(&board)
+                .and_then(|v| v.get("overlap").map(|o| o.to_string()))
+                .unwrap_or_default();
+            return Ok(Response::new(pb::OverlapReport {
+                summary: board.overlap.map(Into::into),
+                json,
+            }));
+        }
+        // A window of a dataset with arms that has no scores keeps no
+        // contrast boards: like a binary window without scores, no summary.
+        let Some(c) = board.contrasts.iter().find(|c| c.arm == r.arm) else {
+            return Ok(Response::new(pb::OverlapReport::default()));
+        };
         Ok(Response::new(pb::OverlapReport {
-            summary: board.overlap.map(Into::into),
-            json,
+            summary: c.overlap.clone().map(Into::into),
+            json: contrast_overlap_json(&board, c),
         }))
     }
 
@@ -273,6 +290,46 @@ impl pb::scoring_server::Scoring for ScoringService {
             r.first, r.second
         )))
     }
+}
+
+/// A board's detail document, parsed; None when it has none.
+fn detail(board: &Board) -> Option<serde_json::Value> {
+    serde_json::from_str(&board.detail_json).ok()
+}
+
+/// The overlap document of one contrast of a dataset with arms: the
+/// contrast board's overlap report (its treated arm the contrast's arm,
+/// its control arm the reference, under the conditional propensity
+/// e_k / (e_k + e_0)) with the contrast's arms and, as
+/// `generalized_propensity`, the two arms' entries of the top board's
+/// generalized propensity (the reference first). Empty when the contrast
+/// board has no report.
+fn contrast_overlap_json(top: &Board, contrast: &Board) -> String {
+    let Some(serde_json::Value::Object(mut doc)) =
+        detail(contrast).and_then(|v| v.get("overlap").cloned())
+    else {
+        return String::new();
+    };
+    let per_arm: Vec<serde_json::Value> = detail(top)
+        .and_then(|v| v.get("propensity").and_then(|p| p.as_array()).cloned())
+        .unwrap_or_default();
+    let entry = |arm: &str| {
+        per_arm
+            .iter()
+            .find(|p| p.get("arm").and_then(|a| a.as_str()) == Some(arm))
+            .cloned()
+            .unwrap_or(serde_json::Value::Null)
+    };
+    doc.insert("arm".into(), contrast.arm.clone().into());
+    doc.insert(
+        "reference_arm".into(),
+        contrast.reference_arm.clone().into(),
+    );
+    doc.insert(
+        "generalized_propensity".into(),
+        serde_json::Value::Array(vec![entry(&contrast.reference_arm), entry(&contrast.arm)]),
+    );
+    serde_json::Value::Object(doc).to_string()
 }
 
 /// A difference taken alone: its pointwise interval, no joint one.

@@ -766,7 +766,10 @@ pub fn events(c: &Connection, a: &EventsArgs) -> ExitCode {
     })
 }
 
-pub fn overlap(c: &Connection, d: &DatasetArg, w: &WindowArg) -> ExitCode {
+/// `arm`: on a dataset with arms, the contrast (that arm against the
+/// reference) whose overlap to print, with the two arms' generalized
+/// propensities.
+pub fn overlap(c: &Connection, d: &DatasetArg, w: &WindowArg, arm: Option<&str>) -> ExitCode {
     run_async(async {
         let mut client = pb::scoring_client::ScoringClient::new(connect(c).await?);
         let r = client
@@ -775,6 +778,7 @@ pub fn overlap(c: &Connection, d: &DatasetArg, w: &WindowArg) -> ExitCode {
                 pb::GetOverlapRequest {
                     dataset: d.dataset.clone(),
                     window: Some(window(&w.window)?),
+                    arm: arm.unwrap_or_default().to_string(),
                 },
             )?)
             .await
@@ -787,8 +791,18 @@ pub fn overlap(c: &Connection, d: &DatasetArg, w: &WindowArg) -> ExitCode {
             return Ok(());
         }
         let s = r.summary.unwrap_or_default();
+        // A contrast's two arms: its arm is the report's treated arm, the
+        // reference its control arm.
+        let (treated, control, contrast) = match (arm, full["reference_arm"].as_str()) {
+            (Some(arm), Some(reference)) => (
+                arm.to_string(),
+                reference.to_string(),
+                format!(", contrast {arm} against {reference}"),
+            ),
+            _ => ("treated".into(), "control".into(), String::new()),
+        };
         println!(
-            "{} / {} window{}",
+            "{} / {} window{contrast}{}",
             d.dataset,
             w.window,
             if s.degraded { ": DEGRADED" } else { "" }
@@ -803,7 +817,7 @@ pub fn overlap(c: &Connection, d: &DatasetArg, w: &WindowArg) -> ExitCode {
             s.clipped
         );
         println!(
-            "  effective sample share: treated {:.1}%, control {:.1}%; largest weight {:.2}% / {:.2}%",
+            "  effective sample share: {treated} {:.1}%, {control} {:.1}%; largest weight {:.2}% / {:.2}%",
             100.0 * s.treated_effective_share,
             100.0 * s.control_effective_share,
             100.0 * s.treated_max_weight,
@@ -825,6 +839,41 @@ pub fn overlap(c: &Connection, d: &DatasetArg, w: &WindowArg) -> ExitCode {
                     } else {
                         ""
                     }
+                );
+            }
+        }
+        if let Some(arms) = full
+            .get("generalized_propensity")
+            .and_then(|g| g.as_array())
+        {
+            println!(
+                "  generalized propensity (every unit's chance of the arm, all arms modelled):"
+            );
+            println!(
+                "  {:<16} {:>8} {:>8} {:>8} {:>10} {:>10} {:>8}",
+                "arm", "q05", "median", "q95", "eff.share", "< eps", "clipped"
+            );
+            for a in arms {
+                let q = |p: f64| {
+                    a["quantiles"]
+                        .as_array()
+                        .and_then(|qs| {
+                            qs.iter()
+                                .find(|pair| pair[0].as_f64().is_some_and(|x| (x - p).abs() < 1e-9))
+                        })
+                        .and_then(|pair| pair[1].as_f64())
+                        .map(|v| format!("{v:.3}"))
+                        .unwrap_or_else(|| "-".into())
+                };
+                println!(
+                    "  {:<16} {:>8} {:>8} {:>8} {:>9.1}% {:>9.1}% {:>8}",
+                    a["arm"].as_str().unwrap_or(""),
+                    q(0.05),
+                    q(0.5),
+                    q(0.95),
+                    100.0 * a["effective_share"].as_f64().unwrap_or(0.0),
+                    100.0 * a["extreme_share"].as_f64().unwrap_or(0.0),
+                    a["clipped"].as_u64().unwrap_or(0)
                 );
             }
         }

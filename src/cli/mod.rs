@@ -129,6 +129,10 @@ pub enum Command {
         dataset: client::DatasetArg,
         #[command(flatten)]
         window: client::WindowArg,
+        /// On a dataset with arms, the contrast whose overlap to read: the
+        /// arm compared with the reference.
+        #[arg(long, value_name = "ARM")]
+        arm: Option<String>,
     },
     /// Drive a server on this machine with concurrent clients, recomputes and a refit; report throughput and read latency.
     Loadtest(loadtest::LoadtestArgs),
@@ -230,7 +234,8 @@ pub fn run() -> ExitCode {
             connection,
             dataset,
             window,
-        } => client::overlap(&connection, &dataset, &window),
+            arm,
+        } => client::overlap(&connection, &dataset, &window, arm.as_deref()),
         Command::Ingest { connection, args } => ingest::run(&connection, &args),
         Command::Score(args) => score::run(&args),
         Command::Simulate(args) => simulate::run(&args),

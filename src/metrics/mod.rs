@@ -18,7 +18,8 @@
 //! `contrast="text"`); a binary dataset's series have no `contrast` label.
 //! `plumbline_overlap_effective_share` {window, arm} then holds each arm's
 //! share under the generalized (multi-arm) propensity, `arm` the arm's
-//! label.
+//! label, and `plumbline_overlap_arm_extreme_share` {window, arm} the share
+//! of every unit whose propensity of that arm is below `eps`.
 //!
 //! `window="stream"` series come from the stream watch behind the alerts
 //! (anytime-valid: see `estimate::watch`); `cumulative` and `recent`
@@ -32,7 +33,10 @@
 //!   numbered first (shared store), checked and numbered again
 //! - `plumbline_recompute_duration_seconds` {kind} (histogram),
 //!   `plumbline_recompute_failures_total`
-//! - `plumbline_nuisance_oof_loss` {component}
+//! - `plumbline_nuisance_oof_loss` {component}; on a dataset with arms
+//!   `component="propensity"` (the generalized propensity's log-loss) and,
+//!   per arm, {component="outcome", arm} (that arm's outcome model) and
+//!   {component="propensity", arm} (the log-loss over that arm's units)
 //! - `plumbline_units`, `plumbline_outcomes`,
 //!   `plumbline_last_outcome_timestamp_seconds`
 //! - `plumbline_events_total` {kind}
@@ -151,10 +155,27 @@ pub struct KindLabels {
     pub kind: String,
 }
 
-#[derive(Clone, Debug, Hash, PartialEq, Eq, EncodeLabelSet)]
+/// A nuisance component's series. `arm` names the arm of a dataset with
+/// arms that the value belongs to (`component="outcome"`: that arm's
+/// outcome model; `component="propensity"`: the generalized propensity's
+/// log-loss over that arm's units), empty otherwise, where it is not
+/// written: a binary dataset's series keep exactly the labels they had.
+#[derive(Clone, Debug, Hash, PartialEq, Eq)]
 pub struct ComponentLabels {
     pub dataset: String,
     pub component: String,
+    pub arm: String,
+}
+
+impl EncodeLabelSet for ComponentLabels {
+    fn encode(&self, encoder: &mut LabelSetEncoder) -> Result<(), std::fmt::Error> {
+        label(encoder, "dataset", &self.dataset)?;
+        label(encoder, "component", &self.component)?;
+        if self.arm.is_empty() {
+            return Ok(());
+        }
+        label(encoder, "arm", &self.arm)
+    }
 }
 
 #[derive(Clone, Debug, Hash, PartialEq, Eq, EncodeLabelSet)]
@@ -182,6 +203,7 @@ pub struct Metrics {
     pub overlap_degraded: Family<WindowLabels, FloatGauge>,
     pub overlap_extreme_share: Family<WindowLabels, FloatGauge>,
     pub overlap_effective_share: Family<ArmLabels, FloatGauge>,
+    pub overlap_arm_extreme_share: Family<ArmLabels, FloatGauge>,
     pub ingest_rows: Family<IngestLabels, Counter>,
     pub ingest_conflicts: Family<KindLabels, Counter>,
     pub recompute_seconds: Family<KindLabels, Histogram>,
@@ -214,6 +236,7 @@ impl Metrics {
             overlap_degraded: Family::default(),
             overlap_extreme_share: Family::default(),
             overlap_effective_share: Family::default(),
+            overlap_arm_extreme_share: Family::default(),
             ingest_rows: Family::default(),
             ingest_conflicts: Family::default(),
             recompute_seconds: Family::new_with_constructor(|| {
@@ -289,6 +312,11 @@ impl Metrics {
             "overlap_effective_share",
             "Kish effective sample size as a share of the arm",
             m.overlap_effective_share.clone(),
+        );
+        registry.register(
+            "overlap_arm_extreme_share",
+            "Share of every unit whose generalized propensity of the arm is below eps (datasets with arms)",
+            m.overlap_arm_extreme_share.clone(),
         );
         registry.register(
             "ingest_rows",
@@ -419,6 +447,27 @@ mod tests {
             assert!(text.lines().any(|l| l == line), "{line} in\n{text}");
         }
         assert!(!text.contains("contrast=\"\""), "{text}");
+        // A nuisance loss: `arm` written only on a dataset with arms.
+        let losses: Family<ComponentLabels, FloatGauge> = Family::default();
+        registry.register("loss", "l", losses.clone());
+        let component = |component: &str, arm: &str| ComponentLabels {
+            dataset: "d".into(),
+            component: component.into(),
+            arm: arm.into(),
+        };
+        losses
+            .get_or_create(&component("outcome_control", ""))
+            .set(0.25);
+        losses.get_or_create(&component("outcome", "text")).set(0.5);
+        let mut text = String::new();
+        prometheus_client::encoding::text::encode(&mut text, &registry).expect("encode");
+        for line in [
+            "loss{dataset=\"d\",component=\"outcome_control\"} 0.25",
+            "loss{dataset=\"d\",component=\"outcome\",arm=\"text\"} 0.5",
+        ] {
+            assert!(text.lines().any(|l| l == line), "{line} in\n{text}");
+        }
+        assert!(!text.contains("arm=\"\""), "{text}");
         // Series differing only in their contrast are distinct.
         assert_eq!(ranks.get_or_create(&model("")).get(), 1.0);
         assert!(ranks.remove(&model("text")));

@@ -1,8 +1,8 @@
 //! The Prometheus export of a recompute's boards and of the stream watch.
 //! A binary dataset's board-derived series carry no `contrast` label; a
 //! dataset with arms exports the same series once per contrast's board,
-//! labelled `contrast=<arm>`, and its generalized propensity's effective
-//! share per arm.
+//! labelled `contrast=<arm>`, its generalized propensity's effective and
+//! extreme shares per arm, and its nuisance losses per arm (`arm` label).
 
 use std::collections::BTreeMap;
 
@@ -18,16 +18,32 @@ use crate::metrics::{
 /// The windows whose boards are exported (cohort windows are not).
 const EXPORTED_WINDOWS: [&str; 2] = ["cumulative", "recent"];
 
-/// Each arm's effective share (Kish effective sample size of the arm's
-/// units under weights 1 / e_k, over the arm's units) under the
-/// generalized propensity, as the top board of a window of a dataset with
-/// arms carries it in its detail document (`propensity`, one entry per
-/// arm, the reference first). Empty on any other board.
-pub(super) fn arm_effective_shares(b: &Board) -> Vec<(String, f64)> {
+/// One arm's overlap under the generalized propensity, as the top board
+/// of a window of a dataset with arms carries it in its detail document
+/// (`propensity`, one entry per arm, the reference first).
+#[derive(Debug, Clone, PartialEq)]
+pub(super) struct ArmOverlap {
+    pub arm: String,
+    /// Kish effective sample size of the arm's units under weights 1 / e_k,
+    /// over the arm's units.
+    pub effective_share: f64,
+    /// Share of every unit whose e_k is below the overlap threshold.
+    pub extreme_share: f64,
+}
+
+/// A board's detail document, parsed, on the top board of a dataset with
+/// arms only.
+fn arms_detail(b: &Board) -> Option<serde_json::Value> {
     if b.contrasts.is_empty() {
-        return Vec::new();
+        return None;
     }
-    let Ok(doc) = serde_json::from_str::<serde_json::Value>(&b.detail_json) else {
+    serde_json::from_str(&b.detail_json).ok()
+}
+
+/// Each arm's [`ArmOverlap`]; empty on any board but the top board of a
+/// dataset with arms.
+pub(super) fn arm_overlaps(b: &Board) -> Vec<ArmOverlap> {
+    let Some(doc) = arms_detail(b) else {
         return Vec::new();
     };
     doc.get("propensity")
@@ -35,14 +51,50 @@ pub(super) fn arm_effective_shares(b: &Board) -> Vec<(String, f64)> {
         .map(|arms| {
             arms.iter()
                 .filter_map(|a| {
-                    Some((
-                        a.get("arm")?.as_str()?.to_string(),
-                        a.get("effective_share")?.as_f64()?,
-                    ))
+                    Some(ArmOverlap {
+                        arm: a.get("arm")?.as_str()?.to_string(),
+                        effective_share: a.get("effective_share")?.as_f64()?,
+                        extreme_share: a.get("extreme_share")?.as_f64()?,
+                    })
                 })
                 .collect()
         })
         .unwrap_or_default()
+}
+
+/// The nuisance losses of a dataset with arms, as (component, arm, loss):
+/// the generalized propensity's log-loss (no arm), then per arm its
+/// outcome model's loss (`outcome`) and the propensity's log-loss over the
+/// arm's units (`propensity`), from the top board's nuisance components
+/// and detail document. Empty on any other board.
+pub(super) fn arm_nuisance_losses(b: &Board) -> Vec<(&'static str, String, f64)> {
+    let Some(doc) = arms_detail(b) else {
+        return Vec::new();
+    };
+    let mut out = Vec::new();
+    if let Some(p) = b.nuisance.iter().find(|c| c.component == "propensity") {
+        out.push(("propensity", String::new(), p.oof_loss));
+    }
+    let arms: Vec<&str> = doc
+        .get("arms")
+        .and_then(serde_json::Value::as_array)
+        .map(|a| a.iter().filter_map(serde_json::Value::as_str).collect())
+        .unwrap_or_default();
+    let per_arm: Vec<f64> = doc
+        .pointer("/nuisance/propensity/arm_oof_loss")
+        .and_then(serde_json::Value::as_array)
+        .map(|a| a.iter().filter_map(serde_json::Value::as_f64).collect())
+        .unwrap_or_default();
+    for (k, arm) in arms.iter().enumerate() {
+        let outcome = format!("outcome_{arm}");
+        if let Some(c) = b.nuisance.iter().find(|c| c.component == outcome) {
+            out.push(("outcome", arm.to_string(), c.oof_loss));
+        }
+        if let Some(&loss) = per_arm.get(k) {
+            out.push(("propensity", arm.to_string(), loss));
+        }
+    }
+    out
 }
 
 impl Monitor {
@@ -107,14 +159,16 @@ impl Monitor {
                 .get_or_create(&ComponentLabels {
                     dataset: dataset.into(),
                     component: component.into(),
+                    arm: String::new(),
                 })
                 .set(loss);
         }
     }
 
     /// A dataset with arms: every contrast's board in each exported
-    /// window, labelled by its arm, and each arm's effective share under
-    /// the generalized propensity. `old` are the boards this recompute
+    /// window, labelled by its arm, each arm's effective and extreme
+    /// shares under the generalized propensity, and the nuisance
+    /// components' losses per arm. `old` are the boards this recompute
     /// replaces: a contrast's series for models no longer on its board, or
     /// for a contrast no longer on the window's board (a window that lost
     /// its scores), are taken down.
@@ -155,23 +209,46 @@ impl Monitor {
                         self.forget_contrast(dataset, window, oc);
                     }
                 }
-                for (arm, _) in arm_effective_shares(o) {
-                    m.overlap_effective_share.remove(&ArmLabels {
-                        dataset: dataset.into(),
-                        window: window.into(),
-                        arm,
-                    });
-                }
+                self.forget_arm_overlaps(dataset, window, o);
             }
-            for (arm, share) in arm_effective_shares(b) {
+            for a in arm_overlaps(b) {
+                let al = ArmLabels {
+                    dataset: dataset.into(),
+                    window: window.into(),
+                    arm: a.arm,
+                };
                 m.overlap_effective_share
-                    .get_or_create(&ArmLabels {
+                    .get_or_create(&al)
+                    .set(a.effective_share);
+                m.overlap_arm_extreme_share
+                    .get_or_create(&al)
+                    .set(a.extreme_share);
+            }
+        }
+        // One fit serves every window; the cumulative board reports it.
+        if let Some(b) = boards.get("cumulative") {
+            for (component, arm, loss) in arm_nuisance_losses(b) {
+                m.nuisance_loss
+                    .get_or_create(&ComponentLabels {
                         dataset: dataset.into(),
-                        window: window.into(),
+                        component: component.into(),
                         arm,
                     })
-                    .set(share);
+                    .set(loss);
             }
+        }
+    }
+
+    /// Takes down each arm's overlap series of a board in a window.
+    fn forget_arm_overlaps(&self, dataset: &str, window: &str, b: &Board) {
+        for a in arm_overlaps(b) {
+            let al = ArmLabels {
+                dataset: dataset.into(),
+                window: window.into(),
+                arm: a.arm,
+            };
+            self.metrics.overlap_effective_share.remove(&al);
+            self.metrics.overlap_arm_extreme_share.remove(&al);
         }
     }
 
@@ -262,18 +339,12 @@ impl Monitor {
     }
 
     /// Takes down every series of a dataset with arms' board in a window:
-    /// its contrasts' and its arms' effective shares.
+    /// its contrasts' and its arms' effective and extreme shares.
     fn forget_arms_board(&self, dataset: &str, window: &str, b: &Board) {
         for c in &b.contrasts {
             self.forget_contrast(dataset, window, c);
         }
-        for (arm, _) in arm_effective_shares(b) {
-            self.metrics.overlap_effective_share.remove(&ArmLabels {
-                dataset: dataset.into(),
-                window: window.into(),
-                arm,
-            });
-        }
+        self.forget_arm_overlaps(dataset, window, b);
     }
 
     /// The watch's states under `window="stream"`: the series the shipped
@@ -395,6 +466,13 @@ impl Monitor {
             if let Some(b) = boards.get(window) {
                 models.extend(b.models.iter().map(|model| model.name.clone()));
                 self.forget_arms_board(dataset, window, b);
+                for (component, arm, _) in arm_nuisance_losses(b) {
+                    m.nuisance_loss.remove(&ComponentLabels {
+                        dataset: dataset.into(),
+                        component: component.into(),
+                        arm,
+                    });
+                }
             }
             self.forget_models_in(dataset, window, "", &models);
         }
@@ -414,6 +492,7 @@ impl Monitor {
             m.nuisance_loss.remove(&ComponentLabels {
                 dataset: dataset.into(),
                 component: component.into(),
+                arm: String::new(),
             });
         }
         m.watched_units.remove(&DatasetLabels {
@@ -467,5 +546,82 @@ impl Monitor {
                 m.model_score_se.remove(&sl);
             }
         }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::domain::{NuisanceComponent, Window};
+
+    fn component(name: &str, oof_loss: f64) -> NuisanceComponent {
+        NuisanceComponent {
+            component: name.into(),
+            learner: "ridge".into(),
+            oof_loss,
+            loss: "squared_error".into(),
+        }
+    }
+
+    /// A top board of a dataset with arms gives each arm's shares and the
+    /// losses per arm from its components and document; a binary board
+    /// (no contrasts) gives none, so its series are the binary ones only.
+    #[test]
+    fn per_arm_series_come_from_the_top_board_only() {
+        let mut top = crate::monitor::board::degenerate(
+            crate::monitor::board::BoardParts {
+                dataset: "offers",
+                window: Window::Cumulative,
+                snapshot_id: 1,
+                computed_at_ms: 0,
+                incomplete: vec![],
+                max_extreme_share: 0.1,
+                min_effective_share: 0.2,
+            },
+            10,
+            String::new(),
+        );
+        let mut contrast = top.clone();
+        contrast.arm = "text".into();
+        top.contrasts = vec![contrast];
+        top.nuisance = vec![
+            component("propensity", 0.9),
+            component("outcome_none", 0.25),
+            component("outcome_text", 0.5),
+        ];
+        top.detail_json = r#"{"arms":["none","text"],
+            "propensity":[{"arm":"none","effective_share":0.75,"extreme_share":0.0},
+                          {"arm":"text","effective_share":0.5,"extreme_share":0.125}],
+            "nuisance":{"propensity":{"oof_loss":0.9,"arm_oof_loss":[0.5,1.3]}}}"#
+            .into();
+        assert_eq!(
+            arm_overlaps(&top),
+            vec![
+                ArmOverlap {
+                    arm: "none".into(),
+                    effective_share: 0.75,
+                    extreme_share: 0.0
+                },
+                ArmOverlap {
+                    arm: "text".into(),
+                    effective_share: 0.5,
+                    extreme_share: 0.125
+                },
+            ]
+        );
+        assert_eq!(
+            arm_nuisance_losses(&top),
+            vec![
+                ("propensity", String::new(), 0.9),
+                ("outcome", "none".into(), 0.25),
+                ("propensity", "none".into(), 0.5),
+                ("outcome", "text".into(), 0.5),
+                ("propensity", "text".into(), 1.3),
+            ]
+        );
+        let mut binary = top.clone();
+        binary.contrasts.clear();
+        assert!(arm_overlaps(&binary).is_empty());
+        assert!(arm_nuisance_losses(&binary).is_empty());
     }
 }

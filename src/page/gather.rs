@@ -120,9 +120,13 @@ pub async fn dataset(
             min_effective_share: spec::DEFAULT_MIN_EFFECTIVE_SHARE,
         });
     let history = match &board {
-        Some(b) => histories(store, id, b).await?,
+        Some(b) => histories(store, id, b, "").await?,
         None => Vec::new(),
     };
+    let mut contrast_history = Vec::new();
+    for c in board.iter().flat_map(|b| &b.contrasts) {
+        contrast_history.push((c.arm.clone(), histories(store, id, c, &c.arm).await?));
+    }
     let events = latest_events(store, id, EVENTS_SHOWN).await?;
     Ok(DatasetView {
         name: name.into(),
@@ -145,17 +149,20 @@ pub async fn dataset(
         recompute_failures: recompute_failures(metrics, name),
         board,
         history,
+        contrast_history,
         events,
     })
 }
 
 /// The history of the board's registered models (by rank, at most
 /// [`HISTORY_LINES`]) over [`HISTORY_SPAN_MS`] before the board, each
-/// thinned to [`HISTORY_POINTS`].
+/// thinned to [`HISTORY_POINTS`]. `arm` names a contrast's board of a
+/// dataset with arms (its history rows carry the arm), empty otherwise.
 async fn histories(
     store: &Store,
     dataset_id: i64,
     board: &Board,
+    arm: &str,
 ) -> StoreResult<Vec<ModelHistory>> {
     let mut models: Vec<_> = board.models.iter().filter(|m| !m.baseline).collect();
     models.sort_by_key(|m| m.rank);
@@ -167,7 +174,7 @@ async fn histories(
                 model: &m.name,
                 key: HISTORY_KEY,
                 window: WINDOW,
-                arm: "",
+                arm,
                 from_ms: board.computed_at_ms.saturating_sub(HISTORY_SPAN_MS),
                 to_ms: i64::MAX,
             })

@@ -7,7 +7,12 @@ use std::fmt::Write;
 use super::conditions::{Condition, State};
 use super::scale;
 use super::svg::{self, Colors};
-use super::{url_segment, DatasetSummary, DatasetView, Esc, Frame, HISTORY_SPAN_MS, WINDOW};
+use super::{
+    arm_propensities, url_segment, DatasetSummary, DatasetView, Esc, Frame, Thresholds,
+    HISTORY_SPAN_MS, WINDOW,
+};
+use crate::domain::Board;
+use crate::estimate::arms::Valued;
 
 macro_rules! put {
     ($($t:tt)*) => {{ let _ = write!($($t)*); }};
@@ -168,6 +173,20 @@ pub fn index_page(list: &[DatasetSummary], f: &Frame) -> String {
             Some(b) => {
                 let front = if !b.degenerate.is_empty() {
                     format!(r#"<span class="note">no scores: {}</span>"#, Esc(&b.degenerate))
+                } else if !b.contrast_front_runners.is_empty() {
+                    let parts: Vec<String> = b
+                        .contrast_front_runners
+                        .iter()
+                        .map(|(arm, front)| {
+                            format!(
+                                r#"<span data-kind="contrast-front-runner" data-arm="{}">{}: {}</span>"#,
+                                Esc(arm),
+                                Esc(arm),
+                                if front.is_empty() { "–".to_string() } else { Esc(front).to_string() }
+                            )
+                        })
+                        .collect();
+                    parts.join("; ")
                 } else if b.front_runner.is_empty() {
                     "–".into()
                 } else {
@@ -300,9 +319,17 @@ pub fn dataset_page(v: &DatasetView, f: &Frame) -> String {
     }
     body.push_str("</section>");
 
+    // A dataset with arms: a board per contrast, the arm choice, each
+    // arm's generalized propensity; then history and events as always.
+    let arms_board = v.board.as_ref().filter(|b| !b.contrasts.is_empty());
+    if let Some(b) = arms_board {
+        arms_sections(&mut body, b, &colors, &v.thresholds);
+    }
+
     // The board.
-    body.push_str(r#"<section id="board"><h2>Board</h2>"#);
-    match &v.board {
+    if arms_board.is_none() {
+        body.push_str(r#"<section id="board"><h2>Board</h2>"#);
+        match &v.board {
         None => body.push_str(r#"<p class="note" data-kind="no-data">Not scored yet: send outcomes or call Recompute.</p>"#),
         Some(b) => {
             body.push_str(r#"<p class="lede">Each ranked model's corrected PEHE minus constant-effect's, with its 95% interval; left of the dashed zero line a model errs less than predicting the average effect for everyone. "Chance lowest" is each model's chance of having the lowest error of all.</p>"#);
@@ -324,7 +351,8 @@ pub fn dataset_page(v: &DatasetView, f: &Frame) -> String {
             }
         }
     }
-    body.push_str("</section>");
+        body.push_str("</section>");
+    }
 
     // History.
     put!(
@@ -332,72 +360,89 @@ pub fn dataset_page(v: &DatasetView, f: &Frame) -> String {
         r#"<section id="history"><h2>Scores over time</h2><p class="lede">Each model's difference from constant-effect after every recompute of the last {} days before the latest board, with its 95% band (± 1.96 standard errors) shaded. Baselines are left out: the dashed zero line is constant-effect.</p>"#,
         HISTORY_SPAN_MS / 86_400_000
     );
-    body.push_str(&svg::history_chart(&v.history, &colors));
+    if v.contrast_history.is_empty() {
+        body.push_str(&svg::history_chart(&v.history, &colors));
+    }
+    for (arm, lines) in &v.contrast_history {
+        let reference = arms_board.map(|b| b.reference_arm.as_str()).unwrap_or("");
+        put!(
+            body,
+            r#"<div data-kind="contrast-history" data-arm="{}"><h3>{} against {}</h3>{}</div>"#,
+            Esc(arm),
+            Esc(arm),
+            Esc(reference),
+            svg::history_chart(lines, &colors)
+        );
+    }
     body.push_str("</section>");
 
-    // Overlap.
-    body.push_str(r#"<section id="overlap"><h2>Propensity by arm</h2>"#);
-    let t = &v.thresholds;
-    put!(
-        body,
-        r#"<p class="lede">How likely each unit was to be treated, for treated units (above) and control units (below). Units in the shaded ends, outside [{}, {}], have an extreme propensity: their effects rest on extrapolation.</p>"#,
-        t.eps,
-        1.0 - t.eps
-    );
-    match &v.propensities {
-        Some(p) => body.push_str(&svg::propensity_chart(p, t)),
-        None => body.push_str(r#"<p class="note" data-kind="no-data">No propensities yet.</p>"#),
-    }
-    if let Some(o) = v.board.as_ref().and_then(|b| b.overlap.as_ref()) {
-        body.push_str(r#"<ul class="facts" data-kind="overlap-facts">"#);
+    // Overlap (a dataset with arms drew its own above).
+    if arms_board.is_none() {
+        body.push_str(r#"<section id="overlap"><h2>Propensity by arm</h2>"#);
+        let t = &v.thresholds;
         put!(
             body,
-            "<li>extreme share <b>{}</b> (limit {})</li>",
-            scale::percent(o.extreme_share),
-            scale::percent(t.max_extreme_share)
+            r#"<p class="lede">How likely each unit was to be treated, for treated units (above) and control units (below). Units in the shaded ends, outside [{}, {}], have an extreme propensity: their effects rest on extrapolation.</p>"#,
+            t.eps,
+            1.0 - t.eps
         );
-        put!(
-            body,
-            "<li>effective sample <b>{}</b> of treated, <b>{}</b> of control (least {})</li>",
-            scale::percent(o.treated_effective_share),
-            scale::percent(o.control_effective_share),
-            scale::percent(t.min_effective_share)
-        );
-        put!(
-            body,
-            "<li>outside [0.1, 0.9] <b>{}</b></li>",
-            scale::percent(o.outside_crump_share)
-        );
-        put!(
-            body,
-            "<li>largest weight <b>{}</b> treated, <b>{}</b> control</li>",
-            scale::percent(o.treated_max_weight),
-            scale::percent(o.control_max_weight)
-        );
-        put!(
-            body,
-            "<li>at this look <b>{}</b></li>",
-            if o.degraded {
-                "beyond a limit"
-            } else {
-                "within limits"
+        match &v.propensities {
+            Some(p) => body.push_str(&svg::propensity_chart(p, t)),
+            None => {
+                body.push_str(r#"<p class="note" data-kind="no-data">No propensities yet.</p>"#)
             }
-        );
-        if !o.imbalanced_features.is_empty() {
-            let names: Vec<String> = o
-                .imbalanced_features
-                .iter()
-                .map(|n| Esc(n).to_string())
-                .collect();
+        }
+        if let Some(o) = v.board.as_ref().and_then(|b| b.overlap.as_ref()) {
+            body.push_str(r#"<ul class="facts" data-kind="overlap-facts">"#);
             put!(
                 body,
-                "<li>imbalanced after weighting <b>{}</b></li>",
-                names.join(", ")
+                "<li>extreme share <b>{}</b> (limit {})</li>",
+                scale::percent(o.extreme_share),
+                scale::percent(t.max_extreme_share)
             );
+            put!(
+                body,
+                "<li>effective sample <b>{}</b> of treated, <b>{}</b> of control (least {})</li>",
+                scale::percent(o.treated_effective_share),
+                scale::percent(o.control_effective_share),
+                scale::percent(t.min_effective_share)
+            );
+            put!(
+                body,
+                "<li>outside [0.1, 0.9] <b>{}</b></li>",
+                scale::percent(o.outside_crump_share)
+            );
+            put!(
+                body,
+                "<li>largest weight <b>{}</b> treated, <b>{}</b> control</li>",
+                scale::percent(o.treated_max_weight),
+                scale::percent(o.control_max_weight)
+            );
+            put!(
+                body,
+                "<li>at this look <b>{}</b></li>",
+                if o.degraded {
+                    "beyond a limit"
+                } else {
+                    "within limits"
+                }
+            );
+            if !o.imbalanced_features.is_empty() {
+                let names: Vec<String> = o
+                    .imbalanced_features
+                    .iter()
+                    .map(|n| Esc(n).to_string())
+                    .collect();
+                put!(
+                    body,
+                    "<li>imbalanced after weighting <b>{}</b></li>",
+                    names.join(", ")
+                );
+            }
+            body.push_str("</ul>");
         }
-        body.push_str("</ul>");
+        body.push_str("</section>");
     }
-    body.push_str("</section>");
 
     // Events.
     body.push_str(r#"<section id="events"><h2>Events</h2>"#);
@@ -431,6 +476,177 @@ pub fn dataset_page(v: &DatasetView, f: &Frame) -> String {
         &body,
         &footer(f),
     )
+}
+
+/// An estimate and its 95% interval as table cells: the value (signed
+/// for a difference), then the interval.
+fn valued_cells(v: &Valued, difference: bool) -> String {
+    let show = |x: f64| {
+        if difference {
+            scale::signed(x)
+        } else {
+            scale::sig(x)
+        }
+    };
+    format!(
+        r#"<td class="num" data-value="{}">{}</td><td class="num">[{}, {}]</td>"#,
+        v.estimate,
+        show(v.estimate),
+        show(v.ci_low),
+        show(v.ci_high)
+    )
+}
+
+/// The sections of a dataset with arms: one board per contrast (the
+/// binary board's chart, on that arm against the reference), the value of
+/// each model's arm choice, and each arm's generalized propensity against
+/// the overlap threshold.
+fn arms_sections(body: &mut String, b: &Board, colors: &Colors, t: &Thresholds) {
+    put!(
+        body,
+        r#"<section id="board"><h2>Boards per contrast</h2><p class="lede">One board per arm against the reference arm <b>{}</b>: each ranked model's corrected PEHE on that contrast minus constant-effect's, with its 95% interval; left of the dashed zero line a model errs less than predicting the contrast's average effect for everyone.</p>"#,
+        Esc(&b.reference_arm)
+    );
+    for c in &b.contrasts {
+        put!(
+            body,
+            r#"<div data-kind="contrast-board" data-arm="{}" data-front-runner="{}"><h3>{} against {}</h3><ul class="facts">"#,
+            Esc(&c.arm),
+            Esc(&c.front_runner),
+            Esc(&c.arm),
+            Esc(&c.reference_arm)
+        );
+        if let Some(ate) = c.ate {
+            put!(
+                body,
+                "<li>average effect <b>{}</b> (se {})</li>",
+                scale::signed(ate.estimate),
+                scale::sig(ate.se)
+            );
+        }
+        if !c.front_runner.is_empty() {
+            put!(
+                body,
+                "<li>front-runner <b>{}</b></li>",
+                Esc(&c.front_runner)
+            );
+        }
+        body.push_str("</ul>");
+        body.push_str(&svg::board_chart(c, colors));
+        body.push_str("</div>");
+    }
+    if let Some(c) = b.contrasts.first().filter(|c| !c.caveat.is_empty()) {
+        put!(body, r#"<p class="note">{}</p>"#, Esc(&c.caveat));
+    }
+    body.push_str("</section>");
+
+    body.push_str(r#"<section id="arm-policy"><h2>Choosing an arm</h2>"#);
+    match &b.arm_policy {
+        None => body.push_str(
+            r#"<p class="note" data-kind="no-data">No arm-choice values on this board.</p>"#,
+        ),
+        Some(p) => {
+            let reference = p
+                .costs
+                .first()
+                .map(|c| c.arm.as_str())
+                .unwrap_or(b.reference_arm.as_str());
+            let costs: Vec<String> = p
+                .costs
+                .iter()
+                .map(|c| format!("{} {}", Esc(&c.arm), scale::sig(c.cost)))
+                .collect();
+            put!(
+                body,
+                r#"<p class="lede">Each model's targeting rule gives every unit the arm with the largest predicted effect net of its cost (costs: {}), the reference when none is positive. Its value is the mean outcome per unit net of costs, from doubly robust scores, with 95% intervals; beside it, its difference from giving everyone <b>{}</b> and from giving everyone the best single arm, <b>{}</b>.</p>"#,
+                costs.join(", "),
+                Esc(reference),
+                Esc(&p.best_single_arm)
+            );
+            let arms: Vec<&str> = p.costs.iter().map(|c| c.arm.as_str()).collect();
+            put!(
+                body,
+                r#"<table data-kind="arm-policy"><thead><tr><th>policy</th><th>value</th><th>95% interval</th><th>vs everyone {}</th><th>95% interval</th><th>vs everyone {}</th><th>95% interval</th><th>arms given</th></tr></thead><tbody>"#,
+                Esc(reference),
+                Esc(&p.best_single_arm)
+            );
+            for (name, v) in [
+                (format!("everyone {reference}"), &p.reference_value),
+                (
+                    format!("everyone {} (best single arm)", p.best_single_arm),
+                    &p.best_single_arm_value,
+                ),
+            ] {
+                put!(
+                    body,
+                    r#"<tr data-kind="arm-policy-fixed"><td class="note">{}</td>{}<td></td><td></td><td></td><td></td><td></td></tr>"#,
+                    Esc(&name),
+                    valued_cells(v, false)
+                );
+            }
+            for m in &p.models {
+                let shares: Vec<String> = arms
+                    .iter()
+                    .map(|a| {
+                        let share = m
+                            .shares
+                            .iter()
+                            .find(|s| s.arm == *a)
+                            .map(|s| s.share)
+                            .unwrap_or(0.0);
+                        format!("{} {}", Esc(a), scale::percent(share))
+                    })
+                    .collect();
+                put!(
+                    body,
+                    r#"<tr data-kind="arm-policy-row" data-model="{}" data-value="{}" data-vs-reference="{}" data-vs-best-single-arm="{}"><td><span class="dot" style="background:{}"></span>{}</td>{}{}{}<td>{}</td></tr>"#,
+                    Esc(&m.model),
+                    m.value.estimate,
+                    m.vs_reference.estimate,
+                    m.vs_best_single_arm.estimate,
+                    colors.get(&m.model),
+                    Esc(&m.model),
+                    valued_cells(&m.value, false),
+                    valued_cells(&m.vs_reference, true),
+                    valued_cells(&m.vs_best_single_arm, true),
+                    shares.join(", ")
+                );
+            }
+            body.push_str("</tbody></table>");
+            if !p.note.is_empty() {
+                put!(body, r#"<p class="note">Note: {}</p>"#, Esc(&p.note));
+            }
+        }
+    }
+    body.push_str("</section>");
+
+    body.push_str(r#"<section id="overlap"><h2>Propensity by arm</h2>"#);
+    put!(
+        body,
+        r#"<p class="lede">How likely each unit was to get each arm, with every arm modelled at once (the generalized propensity). Units whose chance of an arm is below eps = {} (the shaded band) have that arm's effect resting on extrapolation; an arm's effective sample is the share of its units that the weights 1 / propensity leave in effect (limit {}).</p>"#,
+        t.eps,
+        scale::percent(t.min_effective_share)
+    );
+    body.push_str(&svg::arm_propensity_chart(
+        &arm_propensities(&b.detail_json),
+        t,
+    ));
+    body.push_str(r#"<ul class="facts" data-kind="overlap-facts">"#);
+    for c in &b.contrasts {
+        if let Some(o) = &c.overlap {
+            put!(
+                body,
+                r#"<li data-arm="{}">{} against {}: effective sample <b>{}</b> / <b>{}</b>{}</li>"#,
+                Esc(&c.arm),
+                Esc(&c.arm),
+                Esc(&c.reference_arm),
+                scale::percent(o.treated_effective_share),
+                scale::percent(o.control_effective_share),
+                if o.degraded { ", beyond a limit" } else { "" }
+            );
+        }
+    }
+    body.push_str("</ul></section>");
 }
 
 /// What a browser without an acceptable token gets: why, and a form that
@@ -512,6 +728,7 @@ mod tests {
                 control: vec![2, 1],
             }),
             history: vec![],
+            contrast_history: vec![],
             events: vec![],
             recompute_failures: 0,
         }
@@ -537,6 +754,86 @@ mod tests {
                 "{banned} found: the page must fetch nothing"
             );
         }
+    }
+
+    /// A dataset with arms: a board chart per contrast under its arm, the
+    /// generalized propensity per arm with the report's numbers, the
+    /// arm-choice rows with the policy report's, and no binary board or
+    /// histograms.
+    #[test]
+    fn a_dataset_with_arms_gets_a_board_per_contrast_its_arms_and_the_choice() {
+        use crate::domain::ArmPolicyBoard;
+        use crate::estimate::arms::{ArmCost, ArmPolicy, ArmShare};
+        let contrast = |arm: &str, models: &[&str]| Board {
+            arm: arm.into(),
+            reference_arm: "none".into(),
+            ..board("offers", models)
+        };
+        let valued = |estimate: f64| Valued {
+            estimate,
+            se: 0.1,
+            ci_low: estimate - 0.196,
+            ci_high: estimate + 0.196,
+        };
+        let top = Board {
+            models: vec![],
+            front_runner: String::new(),
+            reference_arm: "none".into(),
+            contrasts: vec![contrast("text", &["good", "flat"]), contrast("mail", &["flat", "good"])],
+            detail_json: r#"{"propensity":[
+                {"arm":"none","units":400,"quantiles":[[0.05,0.21],[0.5,0.33],[0.95,0.41]],
+                 "effective_sample_size":390.0,"effective_share":0.975,"extreme_share":0.0,"clipped":0},
+                {"arm":"text","units":300,"quantiles":[[0.05,0.125],[0.5,0.3],[0.95,0.5]],
+                 "effective_sample_size":270.0,"effective_share":0.9,"extreme_share":0.0125,"clipped":2}]}"#
+                .into(),
+            arm_policy: Some(ArmPolicyBoard {
+                costs: vec![
+                    ArmCost { arm: "none".into(), cost: 0.0 },
+                    ArmCost { arm: "text".into(), cost: 0.5 },
+                ],
+                reference_value: valued(1.0),
+                best_single_arm: "text".into(),
+                best_single_arm_value: valued(1.25),
+                note: "n".into(),
+                models: vec![ArmPolicy {
+                    model: "good".into(),
+                    value: valued(1.5),
+                    vs_reference: valued(0.5),
+                    vs_best_single_arm: valued(0.25),
+                    shares: vec![ArmShare { arm: "text".into(), share: 0.75 }],
+                }],
+                pairwise: vec![],
+            }),
+            ..board("offers", &["x"])
+        };
+        let mut v = view("offers", &["x"]);
+        v.board = Some(top);
+        v.propensities = None;
+        let s = dataset_page(&v, &frame());
+        for arm in ["text", "mail"] {
+            assert_eq!(
+                s.matches(&format!(r#"data-kind="contrast-board" data-arm="{arm}""#))
+                    .count(),
+                1
+            );
+        }
+        assert_eq!(s.matches(r#"data-kind="board-chart""#).count(), 2);
+        // Two registered models and constant-effect on each contrast.
+        assert_eq!(s.matches(r#"data-kind="interval""#).count(), 6);
+        assert!(s.contains(
+            r#"data-kind="arm-propensity" data-arm="text" data-units="300" data-extreme-share="0.0125" data-effective-share="0.9" data-q05="0.125" data-median="0.3" data-q95="0.5""#
+        ));
+        assert_eq!(s.matches(r#"data-kind="arm-propensity""#).count(), 2);
+        assert!(s.contains(
+            r#"data-kind="arm-policy-row" data-model="good" data-value="1.5" data-vs-reference="0.5" data-vs-best-single-arm="0.25""#
+        ));
+        assert!(s.contains("text 75.0%"), "the arms a model's rule gives");
+        assert_eq!(s.matches(r#"data-kind="arm-policy-fixed""#).count(), 2);
+        assert!(!s.contains(r#"data-kind="propensity-chart""#));
+        assert!(
+            !s.contains(r#"data-model="x""#),
+            "the top board has no models"
+        );
     }
 
     #[test]
@@ -577,6 +874,7 @@ mod tests {
                     front_runner: EVIL.into(),
                     computed_at_ms: 0,
                     degenerate: String::new(),
+                    contrast_front_runners: vec![],
                 }),
                 conditions: vec![],
             }],

@@ -15,7 +15,10 @@
 //! `conditions.rs` for the alerts' state) is pure functions from domain
 //! records to strings; `gather.rs` reads those records from the monitor
 //! and the store, and `handlers.rs` holds the HTTP handlers, which apply
-//! the same token rule as `/metrics` (`metrics::http::admit`). Every
+//! the same token rule as `/metrics` (`metrics::http::admit`). A dataset
+//! with arms shows one board per contrast, each arm's generalized
+//! propensity against the overlap threshold and the arm-choice policy
+//! table instead of the binary board and histograms. Every
 //! element a test looks for carries a `data-kind` attribute (and
 //! `data-model`, `data-arm`, ... where it belongs to one).
 
@@ -119,6 +122,60 @@ pub fn propensities(detail_json: &str) -> Option<Propensities> {
         .then_some(Propensities { treated, control })
 }
 
+/// One arm's generalized propensity (P(arm | features) with every arm
+/// modelled), as the top board of a dataset with arms carries it.
+#[derive(Debug, Clone, PartialEq)]
+pub struct ArmPropensity {
+    pub arm: String,
+    /// Units that got the arm.
+    pub units: u64,
+    /// (probability, quantile) pairs of the arm's propensity over every
+    /// unit, by probability.
+    pub quantiles: Vec<(f64, f64)>,
+    pub effective_share: f64,
+    /// Share of every unit whose propensity of the arm is below eps.
+    pub extreme_share: f64,
+    pub clipped: u64,
+}
+
+impl ArmPropensity {
+    /// The quantile at probability `p`, when the report has it.
+    pub fn quantile(&self, p: f64) -> Option<f64> {
+        self.quantiles
+            .iter()
+            .find(|(q, _)| (q - p).abs() < 1e-9)
+            .map(|&(_, v)| v)
+    }
+}
+
+/// Each arm's generalized propensity in a top board's detail document
+/// (`propensity`, the reference first); empty when it has none.
+pub fn arm_propensities(detail_json: &str) -> Vec<ArmPropensity> {
+    let Ok(doc) = serde_json::from_str::<serde_json::Value>(detail_json) else {
+        return Vec::new();
+    };
+    let Some(arms) = doc.get("propensity").and_then(|p| p.as_array()) else {
+        return Vec::new();
+    };
+    arms.iter()
+        .filter_map(|a| {
+            Some(ArmPropensity {
+                arm: a.get("arm")?.as_str()?.to_string(),
+                units: a.get("units")?.as_u64()?,
+                quantiles: a
+                    .get("quantiles")?
+                    .as_array()?
+                    .iter()
+                    .filter_map(|pair| Some((pair.get(0)?.as_f64()?, pair.get(1)?.as_f64()?)))
+                    .collect(),
+                effective_share: a.get("effective_share")?.as_f64()?,
+                extreme_share: a.get("extreme_share")?.as_f64()?,
+                clipped: a.get("clipped")?.as_u64()?,
+            })
+        })
+        .collect()
+}
+
 /// One model's history of [`HISTORY_KEY`], oldest first.
 #[derive(Debug, Clone)]
 pub struct ModelHistory {
@@ -148,6 +205,10 @@ pub struct DatasetView {
     /// The ranked models' histories, by rank, baselines left out (the
     /// chart's zero line is constant-effect).
     pub history: Vec<ModelHistory>,
+    /// On a dataset with arms, each contrast's arm with its models'
+    /// histories on that contrast's board, as `history` is for a binary
+    /// dataset (which leaves this empty).
+    pub contrast_history: Vec<(String, Vec<ModelHistory>)>,
     /// The latest events, oldest first.
     pub events: Vec<EventRecord>,
     pub conditions: Vec<Condition>,
@@ -171,6 +232,9 @@ pub struct BoardFacts {
     pub front_runner: String,
     pub computed_at_ms: i64,
     pub degenerate: String,
+    /// On a dataset with arms, each contrast's arm and front-runner (the
+    /// top board has none of its own); empty otherwise.
+    pub contrast_front_runners: Vec<(String, String)>,
 }
 
 impl BoardFacts {
@@ -180,6 +244,11 @@ impl BoardFacts {
             front_runner: b.front_runner.clone(),
             computed_at_ms: b.computed_at_ms,
             degenerate: b.degenerate.clone(),
+            contrast_front_runners: b
+                .contrasts
+                .iter()
+                .map(|c| (c.arm.clone(), c.front_runner.clone()))
+                .collect(),
         }
     }
 }

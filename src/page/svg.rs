@@ -10,7 +10,7 @@ use std::collections::BTreeMap;
 use std::fmt::Write;
 
 use super::scale::{self, Linear};
-use super::{Esc, ModelHistory, Propensities, Thresholds, BOARD_ROWS};
+use super::{ArmPropensity, Esc, ModelHistory, Propensities, Thresholds, BOARD_ROWS};
 use crate::domain::{Board, EventRecord};
 
 /// Writes formatted text into a String (which cannot fail).
@@ -30,6 +30,10 @@ const ZERO: &str = "#444";
 const TREATED: &str = "#B5533C";
 const CONTROL: &str = "#3A6EA5";
 const THRESHOLD: &str = "#C0392B";
+/// Arms' colours on the generalized-propensity chart, the reference
+/// first: the binary chart's control and treated colours, then muted
+/// tones apart from the models' palette.
+const ARM_COLORS: [&str; 6] = [CONTROL, TREATED, "#6B5B95", "#5B8C5A", "#8C6D31", "#7A7A7A"];
 
 /// The shortest time axis (a history of recomputes seconds apart still
 /// gets readable ticks).
@@ -44,14 +48,17 @@ const Z95: f64 = 1.959_963_984_540_054;
 pub struct Colors(BTreeMap<String, &'static str>);
 
 impl Colors {
+    /// On a dataset with arms, the models of every contrast's board: a
+    /// model keeps its colour from one contrast to the next.
     pub fn of(board: &Board) -> Self {
-        let mut names: Vec<&str> = board
-            .models
-            .iter()
+        let mut names: Vec<&str> = std::iter::once(board)
+            .chain(&board.contrasts)
+            .flat_map(|b| &b.models)
             .filter(|m| !m.baseline)
             .map(|m| m.name.as_str())
             .collect();
         names.sort_unstable();
+        names.dedup();
         Colors(
             names
                 .into_iter()
@@ -704,6 +711,155 @@ pub fn propensity_chart(p: &Propensities, t: &Thresholds) -> String {
         left + 10.0 + x.at(eps) - left,
         bottom - 8.0,
         nc as u64
+    );
+    out.push_str("</svg>");
+    out
+}
+
+/// Each arm's generalized propensity over every unit, one row per arm:
+/// its whole range as a thin line, the 1% to 99% quantiles thicker, the
+/// 5% to 95% quantiles as a box with the median marked, on one [0, 1]
+/// axis with the region below eps shaded and the threshold drawn; beside
+/// each row its share below eps and its effective sample share.
+pub fn arm_propensity_chart(arms: &[ArmPropensity], t: &Thresholds) -> String {
+    if arms.is_empty() {
+        return note("No generalized propensities on this board.");
+    }
+    const WIDTH: f64 = 1260.0;
+    const TOP: f64 = 44.0;
+    const ROW: f64 = 46.0;
+    let (left, right) = (190.0, 900.0);
+    let bottom = TOP + ROW * arms.len() as f64;
+    let height = bottom + 62.0;
+    let x = Linear::new((0.0, 1.0), (left, right));
+    let eps = t.eps.clamp(0.0, 1.0);
+    let mut out = String::new();
+    open(
+        &mut out,
+        "arm-propensity-chart",
+        WIDTH,
+        height,
+        "each arm's generalized propensity against the overlap threshold",
+    );
+    put!(
+        out,
+        r#"<text class="head" x="16" y="18">arm (units)</text><text class="head" x="{:.1}" y="18" text-anchor="middle">chance of the arm given the features, over every unit</text><text class="head" x="930" y="18">below eps</text><text class="head" x="1070" y="18">effective sample</text>"#,
+        (left + right) / 2.0
+    );
+    put!(
+        out,
+        r##"<rect data-kind="extreme-region" x="{left}" y="{:.1}" width="{:.1}" height="{:.1}" fill="#fbe9e7"/>"##,
+        TOP - 8.0,
+        x.at(eps) - left,
+        bottom - TOP + 8.0
+    );
+    for i in 0..=10 {
+        let v = i as f64 / 10.0;
+        let px = x.at(v);
+        put!(
+            out,
+            r#"<line x1="{px:.1}" y1="{:.1}" x2="{px:.1}" y2="{bottom:.1}" stroke="{GRID}"/><text class="tick" x="{px:.1}" y="{:.1}" text-anchor="middle">{v:.1}</text>"#,
+            TOP - 8.0,
+            bottom + 18.0
+        );
+    }
+    for (i, a) in arms.iter().enumerate() {
+        let y = TOP + ROW * i as f64 + ROW / 2.0;
+        let color = ARM_COLORS[i % ARM_COLORS.len()];
+        let q = |p: f64| a.quantile(p).filter(|v| v.is_finite());
+        put!(
+            out,
+            r#"<g data-kind="arm-propensity" data-arm="{}" data-units="{}" data-extreme-share="{}" data-effective-share="{}""#,
+            Esc(&a.arm),
+            a.units,
+            a.extreme_share,
+            a.effective_share
+        );
+        for (name, p) in [("q05", 0.05), ("median", 0.5), ("q95", 0.95)] {
+            if let Some(v) = q(p) {
+                put!(out, r#" data-{name}="{v}""#);
+            }
+        }
+        out.push('>');
+        put!(
+            out,
+            "<title>{}: 5% to 95% of units between {} and {}, median {}; {} below eps {eps}</title>",
+            Esc(&a.arm),
+            q(0.05).map(scale::sig).unwrap_or_default(),
+            q(0.95).map(scale::sig).unwrap_or_default(),
+            q(0.5).map(scale::sig).unwrap_or_default(),
+            scale::percent(a.extreme_share)
+        );
+        put!(
+            out,
+            r#"<rect x="16" y="{:.1}" width="10" height="10" rx="2" fill="{color}"/><text class="name" x="32" y="{:.1}">{}{} <tspan class="muted">({})</tspan></text>"#,
+            y - 5.0,
+            y + 4.5,
+            Esc(&short(&a.arm, 16)),
+            if i == 0 { " (reference)" } else { "" },
+            a.units
+        );
+        if let (Some(lo), Some(hi)) = (q(0.0), q(1.0)) {
+            put!(
+                out,
+                r#"<line data-kind="arm-propensity-range" x1="{:.1}" y1="{y:.1}" x2="{:.1}" y2="{y:.1}" stroke="{color}" stroke-width="1.5"/>"#,
+                x.at(lo),
+                x.at(hi)
+            );
+        }
+        if let (Some(lo), Some(hi)) = (q(0.01), q(0.99)) {
+            put!(
+                out,
+                r#"<line x1="{:.1}" y1="{y:.1}" x2="{:.1}" y2="{y:.1}" stroke="{color}" stroke-width="4"/>"#,
+                x.at(lo),
+                x.at(hi)
+            );
+        }
+        if let (Some(lo), Some(hi)) = (q(0.05), q(0.95)) {
+            put!(
+                out,
+                r#"<rect data-kind="arm-propensity-box" data-arm="{}" x="{:.1}" y="{:.1}" width="{:.1}" height="16" rx="3" fill="{color}" fill-opacity="0.85"/>"#,
+                Esc(&a.arm),
+                x.at(lo),
+                y - 8.0,
+                (x.at(hi) - x.at(lo)).max(1.5)
+            );
+        }
+        if let Some(m) = q(0.5) {
+            put!(
+                out,
+                r#"<line x1="{:.1}" y1="{:.1}" x2="{:.1}" y2="{:.1}" stroke="{INK}" stroke-width="2.5"/>"#,
+                x.at(m),
+                y - 10.0,
+                x.at(m),
+                y + 10.0
+            );
+        }
+        let over = a.extreme_share > t.max_extreme_share;
+        let thin = a.effective_share < t.min_effective_share;
+        put!(
+            out,
+            r#"<text class="num{}" x="930" y="{:.1}">{}</text><text class="num{}" x="1070" y="{:.1}">{} of the arm</text></g>"#,
+            if over { " threshold" } else { "" },
+            y + 4.5,
+            scale::percent(a.extreme_share),
+            if thin { " threshold" } else { "" },
+            y + 4.5,
+            scale::percent(a.effective_share)
+        );
+    }
+    let px = x.at(eps);
+    put!(
+        out,
+        r#"<line data-kind="overlap-threshold" data-at="{eps}" x1="{px:.1}" y1="{:.1}" x2="{px:.1}" y2="{bottom:.1}" stroke="{THRESHOLD}" stroke-width="1.8" stroke-dasharray="6 3"/><text class="small threshold" x="{px:.1}" y="{:.1}" text-anchor="middle">eps = {eps}</text>"#,
+        TOP - 14.0,
+        TOP - 18.0
+    );
+    put!(
+        out,
+        r#"<line x1="{left}" y1="{bottom:.1}" x2="{right}" y2="{bottom:.1}" stroke="{INK}"/><text class="axis" x="{:.1}" y="{:.1}" text-anchor="middle">generalized propensity (thin: every unit; thick: 1% to 99%; box: 5% to 95%; bar: median)</text>"#,
+        (left + right) / 2.0,
+        bottom + 44.0
     );
     out.push_str("</svg>");
     out

@@ -34,6 +34,7 @@ The gRPC stubs are generated, not committed: run ``generate.sh`` (or
 
 from __future__ import annotations
 
+import json
 import math
 from dataclasses import dataclass, field
 from typing import Any, Callable, Dict, Iterable, Iterator, List, Mapping, Optional, Sequence
@@ -936,23 +937,34 @@ class Client:
         }
 
     def overlap_message(
-        self, dataset: str, window: str = "cumulative", cohort: Optional[str] = None
+        self, dataset: str, window: str = "cumulative", cohort: Optional[str] = None, arm: str = ""
     ) -> "pb.OverlapReport":
-        """The latest overlap report as the raw protobuf message."""
+        """The latest overlap report as the raw protobuf message.
+
+        On a dataset with arms, ``arm`` names the contrast (the arm compared
+        with the reference); it is required there."""
         return self._call(
             "Scoring.GetOverlap",
             self.scoring.GetOverlap,
-            pb.GetOverlapRequest(dataset=dataset, window=_window(window, cohort)),
+            pb.GetOverlapRequest(dataset=dataset, window=_window(window, cohort), arm=str(arm)),
         )
 
-    def overlap(self, dataset: str, window: str = "cumulative", cohort: Optional[str] = None) -> pd.DataFrame:
+    def overlap(
+        self, dataset: str, window: str = "cumulative", cohort: Optional[str] = None, arm: str = ""
+    ) -> pd.DataFrame:
         """The latest overlap report as a DataFrame, one row per arm
         (``OVERLAP_COLUMNS``: arm, effective_share, max_weight). The summary
         travels in ``df.attrs``: eps, extreme_share (units outside
         [eps, 1 - eps]), outside_crump_share, imbalanced_features,
         propensity_auc, clipped, degraded and json (the full report, with the
-        histograms)."""
-        return overlap_frame(self.overlap_message(dataset, window, cohort))
+        histograms).
+
+        On a dataset with arms, ``arm`` names the contrast (required there):
+        the rows are that arm and the reference, under the contrast's
+        propensity, and ``df.attrs["generalized_propensity"]`` holds both
+        arms' generalized propensity (quantiles, effective_share,
+        extreme_share, clipped), the reference first."""
+        return overlap_frame(self.overlap_message(dataset, window, cohort, arm))
 
     # -- events
 
@@ -1062,13 +1074,19 @@ def datasets_frame(datasets: Iterable["pb.Dataset"]) -> pd.DataFrame:
 def overlap_frame(report: "pb.OverlapReport") -> pd.DataFrame:
     """Turns an ``OverlapReport`` message into the DataFrame of :meth:`Client.overlap`."""
     o = report.summary
+    doc = json.loads(report.json) if report.json else {}
+    # A contrast's report names its two arms: the arm is the treated one.
+    treated = doc.get("arm") or "treated"
+    control = doc.get("reference_arm") or "control"
     df = pd.DataFrame(
         [
-            {"arm": "treated", "effective_share": o.treated_effective_share, "max_weight": o.treated_max_weight},
-            {"arm": "control", "effective_share": o.control_effective_share, "max_weight": o.control_max_weight},
+            {"arm": treated, "effective_share": o.treated_effective_share, "max_weight": o.treated_max_weight},
+            {"arm": control, "effective_share": o.control_effective_share, "max_weight": o.control_max_weight},
         ],
         columns=OVERLAP_COLUMNS,
     )
+    if "generalized_propensity" in doc:
+        df.attrs["generalized_propensity"] = doc["generalized_propensity"]
     df.attrs.update(
         {
             "eps": o.eps,

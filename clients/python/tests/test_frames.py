@@ -88,6 +88,21 @@ class Frames(unittest.TestCase):
         self.assertEqual(df.attrs["imbalanced_features"], ["x2"])
         self.assertAlmostEqual(df.attrs["extreme_share"], 0.3)
 
+    def test_overlap_of_a_contrast_names_its_two_arms(self):
+        c = client()
+        summary = pb.OverlapSummary(eps=0.05, treated_effective_share=0.6, control_effective_share=0.8)
+        doc = ('{"treated": {}, "control": {}, "arm": "text", "reference_arm": "none", '
+               '"generalized_propensity": [{"arm": "none", "extreme_share": 0.01}, '
+               '{"arm": "text", "extreme_share": 0.12}]}')
+        answer = Answer(pb.OverlapReport(summary=summary, json=doc))
+        c.scoring = Stub(GetOverlap=answer)
+        df = c.overlap("offers", arm="text")
+        self.assertEqual(answer.requests[0].arm, "text")
+        self.assertEqual(list(df["arm"]), ["text", "none"])
+        self.assertAlmostEqual(df.loc[0, "effective_share"], 0.6)
+        self.assertEqual([a["arm"] for a in df.attrs["generalized_propensity"]], ["none", "text"])
+        self.assertAlmostEqual(df.attrs["generalized_propensity"][1]["extreme_share"], 0.12)
+
     def test_scoreboard_carries_the_joint_interval_chance_and_contrast(self):
         new = pb.ModelScore(
             name="m1", rank=1, chance_lowest=0.4, draw_share=0.6,

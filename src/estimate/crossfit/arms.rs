@@ -109,6 +109,12 @@ pub struct ArmPropensityReport {
     pub learner: String,
     pub loss: &'static str,
     pub oof_loss: f64,
+    /// The chosen learner's log-loss per arm, in the arms' order (the
+    /// reference first): the mean of -log e_k(x_i) over arm k's units, out
+    /// of fold. Weighted by the arms' shares of the units they sum to
+    /// `oof_loss`; an arm whose loss stands out is the one the propensity
+    /// model finds hard to tell from the others.
+    pub arm_oof_loss: Vec<f64>,
     pub candidates: Vec<ArmCandidateLoss>,
 }
 
@@ -268,6 +274,23 @@ pub fn fit_arm_nuisance_models(
     ))
 }
 
+/// Mean -log p[k][i] over the units i of each arm k (0 for an arm with no
+/// units, which a fit never has).
+fn arm_log_loss(p: &[Vec<f64>], arm: &[usize], arms: usize) -> Vec<f64> {
+    let mut sum = vec![0.0; arms];
+    let mut count = vec![0usize; arms];
+    for (i, &k) in arm.iter().enumerate() {
+        if let Some(v) = p.get(k).and_then(|column| column.get(i)) {
+            sum[k] -= v.max(LOG_LOSS_EPS).ln();
+            count[k] += 1;
+        }
+    }
+    sum.iter()
+        .zip(&count)
+        .map(|(s, &c)| if c == 0 { 0.0 } else { s / c as f64 })
+        .collect()
+}
+
 /// One fold model, its held-out units and, per arm, their probabilities.
 type HeldOut = (Box<dyn ArmFitted>, Vec<usize>, Vec<Vec<f64>>);
 
@@ -355,17 +378,88 @@ fn fit_generalized_propensity(
                 .collect::<Vec<_>>()
                 .join("; "),
         })?;
-    let report = ArmPropensityReport {
-        learner: candidates[best].learner.clone(),
-        loss: "log_loss",
-        oof_loss: candidates[best].oof_loss,
-        candidates,
-    };
     let chosen = per_learner
         .into_iter()
         .nth(best)
         .and_then(Result::ok)
         .unwrap_or_default();
+    let report = ArmPropensityReport {
+        learner: candidates[best].learner.clone(),
+        loss: "log_loss",
+        oof_loss: candidates[best].oof_loss,
+        arm_oof_loss: arm_log_loss(&chosen, arm, arms),
+        candidates,
+    };
     let fold_models = models.into_iter().nth(best).unwrap_or_default();
     Ok((chosen, report, fold_models))
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::estimate::stats::standard_normal;
+
+    /// Each arm's log-loss is the mean over its own units, by hand.
+    #[test]
+    fn arm_log_loss_is_the_mean_over_each_arms_units() {
+        let p = vec![vec![0.5, 0.25, 0.2], vec![0.5, 0.75, 0.8]];
+        let got = arm_log_loss(&p, &[0, 1, 1], 2);
+        let want = [-(0.5f64.ln()), -(0.75f64.ln() + 0.8f64.ln()) / 2.0];
+        println!("per-arm log-loss {got:?}, by hand {want:?}");
+        assert!((got[0] - want[0]).abs() < 1e-15 && (got[1] - want[1]).abs() < 1e-15);
+    }
+
+    /// On a real three-arm fit the per-arm losses, weighted by the arms'
+    /// shares, give back the reported log-loss (the same sum regrouped:
+    /// 1e-12 leaves room for the order of additions only).
+    #[test]
+    fn per_arm_losses_weighted_by_share_sum_to_the_fit_loss() {
+        let mut rng = ChaCha8Rng::seed_from_u64(11);
+        let n = 600;
+        let mut x = Vec::with_capacity(2 * n);
+        let mut arm = Vec::with_capacity(n);
+        let mut y = Vec::with_capacity(n);
+        for _ in 0..n {
+            let (x1, x2) = (standard_normal(&mut rng), standard_normal(&mut rng));
+            x.extend([x1, x2]);
+            let scores = [0.0, x1, -x1];
+            let total: f64 = scores.iter().map(|s: &f64| s.exp()).sum();
+            let u: f64 = rand::Rng::gen(&mut rng);
+            let mut acc = 0.0;
+            let mut k = 2;
+            for (j, s) in scores.iter().enumerate() {
+                acc += s.exp() / total;
+                if u < acc {
+                    k = j;
+                    break;
+                }
+            }
+            arm.push(k);
+            y.push(x2 + k as f64 + standard_normal(&mut rng));
+        }
+        let names: Vec<String> = ["none", "text", "mail"].map(String::from).to_vec();
+        let (_, report) = fit_arm_nuisance(
+            FeatureRows::dense(&x, 2),
+            &arm,
+            &names,
+            &y,
+            OutcomeKind::Continuous,
+            &NuisanceSettings::default(),
+            Vec::new(),
+        )
+        .expect("fit");
+        let p = &report.propensity;
+        assert_eq!(p.arm_oof_loss.len(), 3);
+        let weighted: f64 = (0..3)
+            .map(|k| {
+                let share = arm.iter().filter(|&&w| w == k).count() as f64 / n as f64;
+                share * p.arm_oof_loss[k]
+            })
+            .sum();
+        println!(
+            "per-arm log-loss {:?}; share-weighted {weighted}, reported {}",
+            p.arm_oof_loss, p.oof_loss
+        );
+        assert!((weighted - p.oof_loss).abs() <= 1e-12 * p.oof_loss.max(1.0));
+    }
 }
