@@ -469,6 +469,34 @@ fn check_arms_page(doc: &str, board: &pb::Scoreboard, what: &str) {
         }
     }
     assert_eq!(count(doc, "overlap-threshold", None), 1);
+    // The alerts: the watch's three conditions once per contrast, each as
+    // that contrast's alert view has it.
+    for c in &board.contrasts {
+        let view = c.alerts.as_ref().expect("a contrast's alert view");
+        assert_eq!(count(doc, "alert", Some(("data-arm", &c.arm))), 3);
+        let tags: Vec<&str> = doc
+            .split('<')
+            .filter(|t| t.contains("data-alert=\"front-runner-not-separated\""))
+            .filter(|t| t.contains(&format!("data-arm=\"{}\"", c.arm)))
+            .filter(|t| t.contains("data-kind=\"alert\""))
+            .collect();
+        assert_eq!(tags.len(), 1, "{}", c.arm);
+        let want = if view.front_runner_settled {
+            "clear"
+        } else {
+            "active"
+        };
+        println!(
+            "  contrast {}: watched front-runner {} over {} units, condition {want}",
+            c.arm, view.front_runner, view.units
+        );
+        assert!(
+            tags[0].contains(&format!("data-state=\"{want}\"")),
+            "{}: {}",
+            c.arm,
+            tags[0]
+        );
+    }
     // The arm choice: each model's value and its two differences.
     let p = board.arm_policy.as_ref().expect("arm policy");
     assert_eq!(count(doc, "arm-policy-row", None), p.models.len());
@@ -534,11 +562,21 @@ async fn the_page_of_a_dataset_with_arms_draws_each_contrast_arm_and_choice() {
             observed_at_ms: 0,
         });
     }
-    send_units(&mut c, "offers", units).await;
-    send_predictions(&mut c, "offers", predictions).await;
-    send_outcomes(&mut c, "offers", outcomes).await;
-    recompute(&mut c, "offers", true).await;
-    recompute(&mut c, "offers", false).await;
+    // In two halves, a recompute after each: the first half fits the
+    // first nuisance models, the alerts watch the second.
+    let per = predictions.len() / units.len();
+    for half in 0..2 {
+        let range = half * 450..(half + 1) * 450;
+        send_units(&mut c, "offers", units[range.clone()].to_vec()).await;
+        send_predictions(
+            &mut c,
+            "offers",
+            predictions[range.start * per..range.end * per].to_vec(),
+        )
+        .await;
+        send_outcomes(&mut c, "offers", outcomes[range].to_vec()).await;
+        recompute(&mut c, "offers", half == 0).await;
+    }
     let board = common::service::board(&mut c, "offers", pb::window::Kind::Cumulative).await;
     assert_eq!(board.contrasts.len(), 2, "{}", board.degenerate);
 

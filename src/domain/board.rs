@@ -222,7 +222,7 @@ pub struct Drift {
 
 /// The alerts' view of a dataset: the stream watch's states, which every
 /// board of a recompute carries.
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[derive(Debug, Clone, Default, PartialEq, Serialize, Deserialize)]
 pub struct AlertView {
     /// Empty until the watch appoints one. (Records stored before the
     /// rename carry the older keys; the aliases read them.)

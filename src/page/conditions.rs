@@ -7,7 +7,7 @@
 //! The Prometheus rules add durations (`for: 6h`, `for: 5m`); the page
 //! shows the state as it is now, and says so.
 
-use crate::domain::{Board, EventRecord};
+use crate::domain::{AlertView, Board, EventRecord};
 
 /// The event kind of a front-runner change (`monitor::alerts`).
 pub const FRONT_RUNNER_CHANGED: &str = "front_runner_changed";
@@ -40,20 +40,24 @@ pub struct Condition {
     /// Stable key, used in the page's `data-alert` attributes.
     pub key: &'static str,
     pub title: &'static str,
+    /// On a dataset with arms, the contrast's arm the condition is about
+    /// (empty: the dataset's).
+    pub arm: String,
     pub state: State,
     pub detail: String,
 }
 
 /// The conditions of one dataset, in a fixed order. `events` are the
 /// dataset's recent events (any order); `last_outcome_ms` is when the last
-/// outcome was accepted, if this server knows.
+/// outcome was accepted, if this server knows. On a dataset with arms the
+/// watch's conditions (front-runner, heterogeneity, overlap) come once per
+/// contrast, from that contrast's board.
 pub fn conditions(
     board: Option<&Board>,
     events: &[EventRecord],
     last_outcome_ms: Option<i64>,
     now_ms: i64,
 ) -> Vec<Condition> {
-    let view = board.and_then(|b| b.alerts.as_ref());
     let mut out = Vec::with_capacity(5);
 
     let change = events
@@ -63,6 +67,7 @@ pub fn conditions(
     out.push(Condition {
         key: "front-runner-changed",
         title: "Front-runner changed in the last 30 minutes",
+        arm: String::new(),
         state: if change.is_some() {
             State::Active
         } else {
@@ -74,6 +79,48 @@ pub fn conditions(
         },
     });
 
+    match board.filter(|b| !b.contrasts.is_empty()) {
+        Some(b) => {
+            for c in &b.contrasts {
+                watch_conditions(c.alerts.as_ref(), &c.arm, &mut out);
+            }
+        }
+        None => watch_conditions(board.and_then(|b| b.alerts.as_ref()), "", &mut out),
+    }
+
+    let (state, detail) = match last_outcome_ms {
+        None => (
+            State::Unknown,
+            "no outcome accepted since this server started".into(),
+        ),
+        Some(t) if now_ms - t > STALE_OUTCOMES_MS => (
+            State::Active,
+            format!(
+                "the last outcome arrived {} ago",
+                super::scale::ago(now_ms - t)
+            ),
+        ),
+        Some(t) => (
+            State::Clear,
+            format!(
+                "the last outcome arrived {} ago",
+                super::scale::ago(now_ms - t)
+            ),
+        ),
+    };
+    out.push(Condition {
+        key: "no-outcomes",
+        title: "No outcomes for 24 hours",
+        arm: String::new(),
+        state,
+        detail,
+    });
+    out
+}
+
+/// The watch's conditions from one alert view (a contrast's, when `arm`
+/// is set).
+fn watch_conditions(view: Option<&AlertView>, arm: &str, out: &mut Vec<Condition>) {
     let (state, detail) = match view {
         None => (
             State::Unknown,
@@ -98,6 +145,7 @@ pub fn conditions(
     out.push(Condition {
         key: "front-runner-not-separated",
         title: "Front-runner not yet separated from the others",
+        arm: arm.into(),
         state,
         detail,
     });
@@ -125,6 +173,7 @@ pub fn conditions(
     out.push(Condition {
         key: "no-heterogeneity",
         title: "No model shown to beat constant-effect",
+        arm: arm.into(),
         state,
         detail,
     });
@@ -146,43 +195,15 @@ pub fn conditions(
     out.push(Condition {
         key: "overlap-degraded",
         title: "Overlap degraded",
+        arm: arm.into(),
         state,
         detail,
     });
-
-    let (state, detail) = match last_outcome_ms {
-        None => (
-            State::Unknown,
-            "no outcome accepted since this server started".into(),
-        ),
-        Some(t) if now_ms - t > STALE_OUTCOMES_MS => (
-            State::Active,
-            format!(
-                "the last outcome arrived {} ago",
-                super::scale::ago(now_ms - t)
-            ),
-        ),
-        Some(t) => (
-            State::Clear,
-            format!(
-                "the last outcome arrived {} ago",
-                super::scale::ago(now_ms - t)
-            ),
-        ),
-    };
-    out.push(Condition {
-        key: "no-outcomes",
-        title: "No outcomes for 24 hours",
-        state,
-        detail,
-    });
-    out
 }
 
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::domain::AlertView;
 
     fn event(id: i64, kind: &str, at_ms: i64) -> EventRecord {
         EventRecord {
@@ -194,6 +215,44 @@ mod tests {
             summary: format!("{kind} {id}"),
             details_json: "{}".into(),
         }
+    }
+
+    /// On a dataset with arms the watch's conditions come once per
+    /// contrast, each from its contrast's alert view, and the top board's
+    /// view (which judges nothing) is not read.
+    #[test]
+    fn a_dataset_with_arms_has_the_watch_conditions_per_contrast() {
+        let mut top = crate::page::tests::board("d", &["good"]);
+        let view = |front_runner: &str, settled: bool| AlertView {
+            front_runner: front_runner.into(),
+            front_runner_settled: settled,
+            heterogeneity: "detected".into(),
+            looks: 2,
+            units: 900,
+            ..AlertView::default()
+        };
+        for (arm, settled) in [("text", true), ("mail", false)] {
+            let mut c = crate::page::tests::board("d", &["good"]);
+            c.arm = arm.into();
+            c.alerts = Some(view("good", settled));
+            top.contrasts.push(c);
+        }
+        top.alerts = Some(AlertView::default());
+        let c = conditions(Some(&top), &[], Some(0), 1);
+        let of = |key: &str, arm: &str| {
+            c.iter()
+                .find(|x| x.key == key && x.arm == arm)
+                .map(|x| x.state)
+        };
+        assert_eq!(c.len(), 2 + 3 * 2);
+        assert_eq!(of("front-runner-not-separated", "text"), Some(State::Clear));
+        assert_eq!(
+            of("front-runner-not-separated", "mail"),
+            Some(State::Active)
+        );
+        assert_eq!(of("no-heterogeneity", "mail"), Some(State::Clear));
+        assert_eq!(of("front-runner-not-separated", ""), None);
+        assert_eq!(of("no-outcomes", ""), Some(State::Clear));
     }
 
     fn state(c: &[Condition], key: &str) -> State {

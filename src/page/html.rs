@@ -128,14 +128,33 @@ fn conditions_grid(out: &mut String, list: &[Condition]) {
     for c in list {
         put!(
             out,
-            r#"<div class="condition {state}" data-kind="alert" data-alert="{}" data-state="{state}"><div class="state">{state}</div><div class="title">{}</div><div class="detail">{}</div></div>"#,
+            r#"<div class="condition {state}" data-kind="alert" data-alert="{}"{} data-state="{state}"><div class="state">{state}</div><div class="title">{}</div><div class="detail">{}</div></div>"#,
             c.key,
-            Esc(c.title),
+            arm_attribute(&c.arm),
+            Esc(&condition_title(c)),
             Esc(&c.detail),
             state = c.state.word()
         );
     }
     out.push_str("</div>");
+}
+
+/// A condition's title, naming its contrast on a dataset with arms.
+fn condition_title(c: &Condition) -> String {
+    if c.arm.is_empty() {
+        c.title.to_string()
+    } else {
+        format!("{}: {}", c.arm, c.title)
+    }
+}
+
+/// ` data-arm="..."` for a condition of a contrast, nothing otherwise.
+fn arm_attribute(arm: &str) -> String {
+    if arm.is_empty() {
+        String::new()
+    } else {
+        format!(r#" data-arm="{}""#, Esc(arm))
+    }
 }
 
 /// The index: each dataset with its latest board's facts and the alert
@@ -213,9 +232,10 @@ pub fn index_page(list: &[DatasetSummary], f: &Frame) -> String {
         for c in active {
             put!(
                 body,
-                r#"<span class="chip" data-kind="alert-chip" data-alert="{}">{}</span>"#,
+                r#"<span class="chip" data-kind="alert-chip" data-alert="{}"{}>{}</span>"#,
                 c.key,
-                Esc(c.title)
+                arm_attribute(&c.arm),
+                Esc(&condition_title(c))
             );
         }
         body.push_str("</td></tr>");
@@ -280,9 +300,10 @@ pub fn dataset_page(v: &DatasetView, f: &Frame) -> String {
     if let Some(view) = v.board.as_ref().and_then(|b| b.alerts.as_ref()) {
         put!(
             body,
-            r#"<p class="note">The watch has taken {} units over {} looks."#,
+            r#"<p class="note">The watch has taken {} units over {} look{}."#,
             view.units,
-            view.looks
+            view.looks,
+            if view.looks == 1 { "" } else { "s" }
         );
         if !view.drift.is_empty() {
             let mut drift: Vec<_> = view.drift.iter().collect();
