@@ -824,6 +824,25 @@ async fn arm_overlap_and_nuisance(
                 Some(s.control_effective_share)
             );
             assert_eq!(doc["share_outside_eps"].as_f64(), Some(s.extreme_share));
+            if *window == "cumulative" {
+                // The conditional propensity's AUC on the two arms' units:
+                // the offline document's, and above chance here (arms drawn
+                // by a softmax of x1).
+                let off = offline["contrasts"]
+                    .as_array()
+                    .expect("contrasts")
+                    .iter()
+                    .find(|c| c["arm"] == b.arm.as_str())
+                    .expect("offline contrast");
+                let want = off["propensity_auc"].as_f64().expect("auc");
+                println!(
+                    "{} vs none: conditional propensity AUC {:.4} (offline {want:.4}), {} clipped",
+                    b.arm, s.propensity_auc, s.clipped
+                );
+                assert!((s.propensity_auc - want).abs() <= 1e-9, "{}", b.arm);
+                assert_eq!(Some(s.clipped), off["clipped"].as_u64(), "{}", b.arm);
+                assert!(s.propensity_auc > 0.55, "{}: {}", b.arm, s.propensity_auc);
+            }
             let pair = doc["generalized_propensity"]
                 .as_array()
                 .expect("two arms' generalized propensity");

@@ -41,7 +41,7 @@ use super::scoreboard::{
     check_model_name, score_pass, BinaryUnits, Column, Pass, Progress, Scoreboard, ScoredColumn,
     Settings, UnitColumns, CI_LEVEL,
 };
-use super::stats::{mean_se, sorted_quantile, Estimate};
+use super::stats::{auc, mean_se, sorted_quantile, Estimate};
 
 /// Units of a dataset with several arms, one row each.
 ///
@@ -217,6 +217,12 @@ pub struct ContrastBoard {
     pub reference: String,
     pub note: &'static str,
     pub board: Scoreboard,
+    /// The conditional propensity e_k / (e_k + e_0) on the contrast's two
+    /// arms' units: its AUC for telling arm k from the reference (0.5: no
+    /// better than chance, near 1: the arms barely overlap), and the units
+    /// whose value was held at the clip.
+    pub propensity_auc: f64,
+    pub clipped: usize,
 }
 
 /// The generalized propensity of one arm, over every unit.
@@ -559,11 +565,8 @@ fn score_contrast(
         .map(|&w| f64::from(u8::from(w == k)))
         .collect();
     let (e0, ek) = (&scores.propensity[0], &scores.propensity[k]);
-    let conditional: Vec<f64> = ek
-        .iter()
-        .zip(e0)
-        .map(|(a, b)| (a / (a + b)).clamp(clip, 1.0 - clip))
-        .collect();
+    let raw: Vec<f64> = ek.iter().zip(e0).map(|(a, b)| a / (a + b)).collect();
+    let conditional: Vec<f64> = raw.iter().map(|p| p.clamp(clip, 1.0 - clip)).collect();
     let units = UnitColumns {
         outcome: &table.outcome,
         treatment: &treatment,
@@ -642,6 +645,11 @@ fn score_contrast(
         reference: table.arms[0].clone(),
         note: BINARY_ESTIMATORS_NOTE,
         board,
+        propensity_auc: auc(&pp, &pw),
+        clipped: index
+            .iter()
+            .filter(|&&i| raw[i] < clip || raw[i] > 1.0 - clip)
+            .count(),
     }
 }
 

@@ -326,11 +326,18 @@ pub fn arms_board(parts: BoardParts<'_>, b: &ArmsScoreboard) -> Board {
                 max_extreme_share: parts.max_extreme_share,
                 min_effective_share: parts.min_effective_share,
             };
-            Board {
+            let mut board = Board {
                 arm: c.arm.clone(),
                 reference_arm: c.reference.clone(),
                 ..scoreboard(parts, &c.board)
+            };
+            // The contrast's board has no binary nuisance report: its
+            // propensity is the conditional one of its two arms.
+            if let Some(o) = board.overlap.as_mut() {
+                o.propensity_auc = c.propensity_auc;
+                o.clipped = c.clipped as u64;
             }
+            board
         })
         .collect();
     let nuisance = b
