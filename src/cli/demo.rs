@@ -330,6 +330,24 @@ fn print_board(b: &pb::Scoreboard) {
     }
 }
 
+/// What the alerts' watch says of the front-runner, for the narration.
+pub(super) fn watched_line(view: &pb::AlertView) -> String {
+    format!(
+        "front-runner per the alerts: {} ({}; {} members watched as they arrived)",
+        if view.front_runner.is_empty() {
+            "none yet"
+        } else {
+            view.front_runner.as_str()
+        },
+        if view.front_runner_settled {
+            "settled"
+        } else {
+            "not yet separated from every other model"
+        },
+        view.units
+    )
+}
+
 /// Prints the dataset's events after `after` (registrations left out) and
 /// keeps them in `all`.
 pub(super) async fn new_events(
@@ -457,20 +475,7 @@ async fn drive(
         "  {} members with ride counts; lowest error over all weeks: {}",
         cumulative.units, cumulative.front_runner
     );
-    println!(
-        "  front-runner per the alerts: {} ({}; {} members watched as they arrived)",
-        if view.front_runner.is_empty() {
-            "none yet"
-        } else {
-            view.front_runner.as_str()
-        },
-        if view.front_runner_settled {
-            "settled"
-        } else {
-            "not yet separated from every other model"
-        },
-        view.units
-    );
+    println!("  {}", watched_line(&view));
     // The cross-fitted blend of the ranked models, as `scoreboard` shows it.
     if let Some(blend) = &cumulative.blend {
         say("  ", &board_table::blend_line(blend));

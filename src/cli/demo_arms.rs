@@ -16,7 +16,9 @@ use crate::api::pb;
 use crate::synth::standard_normal;
 
 use super::board_table::{self, Row};
-use super::demo::{new_events, register_models, say, send_rides, status, Client, DemoResult};
+use super::demo::{
+    new_events, register_models, say, send_rides, status, watched_line, Client, DemoResult,
+};
 
 pub const DATASET: &str = "ride-offers";
 /// The reference first.
@@ -354,23 +356,7 @@ pub async fn run(c: &mut Client, seed: u64) -> DemoResult<Value> {
             ),
         );
         let view = c.alerts.clone().unwrap_or_default();
-        say(
-            "    ",
-            &format!(
-                "front-runner per the alerts: {} ({}; {} members watched as they arrived)",
-                if view.front_runner.is_empty() {
-                    "none yet"
-                } else {
-                    view.front_runner.as_str()
-                },
-                if view.front_runner_settled {
-                    "settled"
-                } else {
-                    "not yet separated from every other model"
-                },
-                view.units
-            ),
-        );
+        say("    ", &watched_line(&view));
         contrasts.push(json!({
             "arm": c.arm,
             "reference_arm": c.reference_arm,

@@ -89,11 +89,7 @@ impl RecomputeInput {
     /// Hands the watch the units whose outcomes arrived since its last
     /// look, with values from fold models that never saw them.
     fn watch_arms(&mut self) -> Result<Vec<ArmSignal>, EstimateError> {
-        let outcomes = self.columns.outcomes();
-        let from = usize::try_from(self.watch.units)
-            .unwrap_or(usize::MAX)
-            .min(outcomes);
-        let units = self.columns.arrived(from..outcomes);
+        let (from, units) = self.unwatched();
         if units.is_empty() {
             return Ok(Vec::new());
         }

@@ -5,6 +5,16 @@ use crate::estimate::watch::{Arrivals, Signal};
 use crate::estimate::EstimateError;
 
 impl RecomputeInput {
+    /// The units whose outcomes arrived since the watch last looked, in
+    /// arrival order, after the first `from` it has seen.
+    pub(super) fn unwatched(&self) -> (usize, Vec<usize>) {
+        let outcomes = self.columns.outcomes();
+        let from = usize::try_from(self.watch.units)
+            .unwrap_or(usize::MAX)
+            .min(outcomes);
+        (from, self.columns.arrived(from..outcomes))
+    }
+
     /// Hands the watch the units whose outcomes arrived since it last
     /// looked, with nuisance values from the fold models in place before
     /// this recompute (which never saw them); returns what it decided and
@@ -12,11 +22,7 @@ impl RecomputeInput {
     /// Before the first fit there are no such models: those units only fit
     /// it, and the watch starts after them.
     pub(super) fn watch_arrivals(&mut self) -> Result<(Vec<Signal>, Fixed), EstimateError> {
-        let outcomes = self.columns.outcomes();
-        let from = usize::try_from(self.watch.units)
-            .unwrap_or(usize::MAX)
-            .min(outcomes);
-        let units = self.columns.arrived(from..outcomes);
+        let (_, units) = self.unwatched();
         if units.is_empty() {
             return Ok((Vec::new(), Fixed::new()));
         }
