@@ -331,6 +331,47 @@ fn population_pehe(truth: &Truth, c: usize, name: &str, psi: f64) -> f64 {
     }
 }
 
+/// Units of contrast `c`'s two arms (the reference and arm c + 1), as the
+/// binary pipeline sees them: their indices, their table (treated: arm
+/// c + 1) and every candidate's predictions of the contrast.
+fn two_arms(d: &Data, c: usize) -> (Vec<usize>, UnitTable, Vec<ModelPredictions>) {
+    let k = c + 1;
+    let pair: Vec<usize> = (0..UNITS)
+        .filter(|&i| d.arm[i] == 0 || d.arm[i] == k)
+        .collect();
+    let rows: Vec<[f64; 3]> = pair.iter().map(|&i| d.x[i]).collect();
+    let binary = UnitTable::new(
+        matrix(&rows),
+        pair.iter()
+            .map(|&i| f64::from(u8::from(d.arm[i] == k)))
+            .collect(),
+        pair.iter().map(|&i| d.y[i]).collect(),
+        None,
+        OutcomeKind::Continuous,
+    )
+    .expect("binary table");
+    let preds = (0..CANDIDATES)
+        .map(|m| ModelPredictions::new(NAMES[m], pair.iter().map(|&i| d.pred[m][c][i]).collect()))
+        .collect();
+    (pair, binary, preds)
+}
+
+/// A board's ranked estimates and its models' population PEHE (contrast
+/// `c`), in the board's order.
+fn ranked_and_true(b: &Scoreboard, truth: &Truth, c: usize) -> (Vec<f64>, Vec<f64>) {
+    let estimated = b
+        .models
+        .iter()
+        .map(|m| m.scores.ranked().estimate)
+        .collect();
+    let truths = b
+        .models
+        .iter()
+        .map(|m| population_pehe(truth, c, &m.name, b.ate.estimate))
+        .collect();
+    (estimated, truths)
+}
+
 /// Kendall's tau of both pipelines against the population's ranking, per
 /// contrast, with the true nuisance values: the generalized propensity
 /// and outcome models for the arms pipeline, P(W = k | x, W in {0, k})
@@ -361,35 +402,13 @@ fn oracle_taus(
         &[0.0; ARMS],
     );
     let tau_of = |b: &Scoreboard, c: usize| {
-        let estimated: Vec<f64> = b
-            .models
-            .iter()
-            .map(|m| m.scores.ranked().estimate)
-            .collect();
-        let truths: Vec<f64> = b
-            .models
-            .iter()
-            .map(|m| population_pehe(truth, c, &m.name, b.ate.estimate))
-            .collect();
+        let (estimated, truths) = ranked_and_true(b, truth, c);
         kendall_tau(&estimated, &truths)
     };
     let mut out = [(0.0, 0.0); 2];
     for (c, slot) in out.iter_mut().enumerate() {
         let k = c + 1;
-        let pair: Vec<usize> = (0..UNITS)
-            .filter(|&i| d.arm[i] == 0 || d.arm[i] == k)
-            .collect();
-        let rows: Vec<[f64; 3]> = pair.iter().map(|&i| d.x[i]).collect();
-        let binary = UnitTable::new(
-            matrix(&rows),
-            pair.iter()
-                .map(|&i| f64::from(u8::from(d.arm[i] == k)))
-                .collect(),
-            pair.iter().map(|&i| d.y[i]).collect(),
-            None,
-            OutcomeKind::Continuous,
-        )
-        .expect("binary table");
+        let (pair, binary, preds) = two_arms(d, c);
         let (true_nuisance, _) = Nuisance::from_parts(
             pair.iter()
                 .map(|&i| {
@@ -403,11 +422,6 @@ fn oracle_taus(
                 .collect(),
             settings.nuisance.clip,
         );
-        let preds: Vec<ModelPredictions> = (0..CANDIDATES)
-            .map(|m| {
-                ModelPredictions::new(NAMES[m], pair.iter().map(|&i| d.pred[m][c][i]).collect())
-            })
-            .collect();
         let bb = score(&binary, names, &true_nuisance, None, &preds, settings);
         *slot = (tau_of(&board.contrasts[c].board, c), tau_of(&bb, c));
     }
@@ -474,16 +488,7 @@ fn one_rep(truth: &Truth, seed: u64) -> Rep {
                 rep.covered[c] += 1;
             }
         }
-        let estimated: Vec<f64> = b
-            .models
-            .iter()
-            .map(|m| m.scores.ranked().estimate)
-            .collect();
-        let true_values: Vec<f64> = b
-            .models
-            .iter()
-            .map(|m| pehe_of(&m.name, b.ate.estimate))
-            .collect();
+        let (estimated, true_values) = ranked_and_true(b, truth, c);
         rep.tau_arms[c] = kendall_tau(&estimated, &true_values);
         let everyone: Vec<usize> = (0..UNITS).collect();
         let own: Vec<f64> = b
@@ -521,38 +526,10 @@ fn one_rep(truth: &Truth, seed: u64) -> Rep {
         rep.blend_covered[c] = blend.vs_best.ci_low <= gap && gap <= blend.vs_best.ci_high;
 
         // The binary pipeline on this contrast's two arms alone.
-        let k = c + 1;
-        let pair: Vec<usize> = (0..UNITS)
-            .filter(|&i| d.arm[i] == 0 || d.arm[i] == k)
-            .collect();
-        let rows: Vec<[f64; 3]> = pair.iter().map(|&i| d.x[i]).collect();
-        let binary = UnitTable::new(
-            matrix(&rows),
-            pair.iter()
-                .map(|&i| f64::from(u8::from(d.arm[i] == k)))
-                .collect(),
-            pair.iter().map(|&i| d.y[i]).collect(),
-            None,
-            OutcomeKind::Continuous,
-        )
-        .expect("binary table");
+        let (pair, binary, preds) = two_arms(&d, c);
         let (nuisance, report) = fit_nuisance(&binary, &settings.nuisance).expect("binary fit");
-        let preds: Vec<ModelPredictions> = (0..CANDIDATES)
-            .map(|m| {
-                ModelPredictions::new(NAMES[m], pair.iter().map(|&i| d.pred[m][c][i]).collect())
-            })
-            .collect();
         let bb = score(&binary, &names, &nuisance, Some(report), &preds, &settings);
-        let estimated: Vec<f64> = bb
-            .models
-            .iter()
-            .map(|m| m.scores.ranked().estimate)
-            .collect();
-        let true_values: Vec<f64> = bb
-            .models
-            .iter()
-            .map(|m| pehe_of(&m.name, bb.ate.estimate))
-            .collect();
+        let (estimated, true_values) = ranked_and_true(&bb, truth, c);
         rep.tau_binary[c] = kendall_tau(&estimated, &true_values);
         let own: Vec<f64> = bb
             .models

@@ -31,7 +31,7 @@
 //! probability above 99%. The detection rate of the planted change must
 //! be at least 0.9; its median delay is printed.
 
-use plumbline::estimate::crossfit::{fit_arm_nuisance_models, ArmFittedNuisance, NuisanceSettings};
+use plumbline::estimate::crossfit::{fit_arm_nuisance, ArmFittedNuisance, NuisanceSettings};
 use plumbline::estimate::learner::{ArmLearner, Learner, Linear, MultinomialLogistic};
 use plumbline::estimate::stats::standard_normal;
 use plumbline::estimate::watch::{ArmArrivals, Signal, Watch, WatchSettings};
@@ -109,7 +109,7 @@ fn fit(b: &Batch, seed: u64) -> ArmFittedNuisance {
         ..NuisanceSettings::default()
     };
     let library: Vec<Box<dyn ArmLearner>> = vec![Box::new(MultinomialLogistic::default())];
-    fit_arm_nuisance_models(
+    fit_arm_nuisance(
         FeatureRows::dense(&b.x, 3),
         &b.arm,
         &arms,

@@ -330,6 +330,22 @@ fn print_board(b: &pb::Scoreboard) {
     }
 }
 
+/// Recomputes `dataset` (`what` names the step in an error).
+pub(super) async fn recompute(
+    c: &mut Client,
+    dataset: &str,
+    what: &'static str,
+) -> DemoResult<pb::RecomputeResponse> {
+    Ok(c.scoring
+        .recompute(pb::RecomputeRequest {
+            dataset: dataset.into(),
+            ..Default::default()
+        })
+        .await
+        .map_err(status(what))?
+        .into_inner())
+}
+
 /// What the alerts' watch says of the front-runner, for the narration.
 pub(super) fn watched_line(view: &pb::AlertView) -> String {
     format!(
@@ -521,15 +537,7 @@ async fn deliver(
     events: &mut Vec<pb::Event>,
 ) -> DemoResult<()> {
     let n = send_outcomes(c, members).await?;
-    let r = c
-        .scoring
-        .recompute(pb::RecomputeRequest {
-            dataset: DATASET.into(),
-            ..Default::default()
-        })
-        .await
-        .map_err(status("recompute"))?
-        .into_inner();
+    let r = recompute(c, DATASET, "recompute").await?;
     println!(
         "  ride counts for week {week} arrived ({n}); recompute {} in {:.0} ms{}",
         r.snapshot_id,

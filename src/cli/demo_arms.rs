@@ -17,7 +17,8 @@ use crate::synth::standard_normal;
 
 use super::board_table::{self, Row};
 use super::demo::{
-    new_events, register_models, say, send_rides, status, watched_line, Client, DemoResult,
+    new_events, recompute, register_models, say, send_rides, status, watched_line, Client,
+    DemoResult,
 };
 
 pub const DATASET: &str = "ride-offers";
@@ -285,15 +286,7 @@ pub async fn run(c: &mut Client, seed: u64) -> DemoResult<Value> {
     let (mut after, mut events) = (0u64, Vec::new());
     for (i, month) in members.chunks(members.len().div_ceil(MONTHS)).enumerate() {
         let n = send(c, month, &format!("month-{}", i + 1)).await?;
-        let r = c
-            .scoring
-            .recompute(pb::RecomputeRequest {
-                dataset: DATASET.into(),
-                ..Default::default()
-            })
-            .await
-            .map_err(status("arm recompute"))?
-            .into_inner();
+        let r = recompute(c, DATASET, "arm recompute").await?;
         println!(
             "  month {}: ride counts of {n} members arrived; recompute {} in {:.0} ms",
             i + 1,

@@ -414,7 +414,7 @@ pub fn evaluate_arms(
         .iter()
         .map(|l| l.boxed_clone())
         .collect();
-    let (nuisance, report) = fit_arm_nuisance(
+    let (nuisance, report, _) = fit_arm_nuisance(
         table.rows(),
         &table.arm,
         &table.arms,

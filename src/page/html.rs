@@ -268,21 +268,7 @@ pub fn dataset_page(v: &DatasetView, f: &Frame) -> String {
         None => body.push_str("<li>not scored yet: send outcomes or call Recompute</li>"),
         Some(b) => {
             put!(body, "<li>units with outcomes <b>{}</b></li>", b.units);
-            if let Some(ate) = b.ate {
-                put!(
-                    body,
-                    "<li>average effect <b>{}</b> (se {})</li>",
-                    scale::signed(ate.estimate),
-                    scale::sig(ate.se)
-                );
-            }
-            if !b.front_runner.is_empty() {
-                put!(
-                    body,
-                    "<li>front-runner <b>{}</b></li>",
-                    Esc(&b.front_runner)
-                );
-            }
+            effect_and_front_runner(&mut body, b);
             put!(
                 body,
                 "<li>last recompute <b>{}</b> ({} ago), snapshot {}</li>",
@@ -518,6 +504,25 @@ fn valued_cells(v: &Valued, difference: bool) -> String {
     )
 }
 
+/// A board's average effect and front-runner, as list items of its facts.
+fn effect_and_front_runner(body: &mut String, b: &Board) {
+    if let Some(ate) = b.ate {
+        put!(
+            body,
+            "<li>average effect <b>{}</b> (se {})</li>",
+            scale::signed(ate.estimate),
+            scale::sig(ate.se)
+        );
+    }
+    if !b.front_runner.is_empty() {
+        put!(
+            body,
+            "<li>front-runner <b>{}</b></li>",
+            Esc(&b.front_runner)
+        );
+    }
+}
+
 /// The sections of a dataset with arms: one board per contrast (the
 /// binary board's chart, on that arm against the reference), the value of
 /// each model's arm choice, and each arm's generalized propensity against
@@ -537,21 +542,7 @@ fn arms_sections(body: &mut String, b: &Board, colors: &Colors, t: &Thresholds) 
             Esc(&c.arm),
             Esc(&c.reference_arm)
         );
-        if let Some(ate) = c.ate {
-            put!(
-                body,
-                "<li>average effect <b>{}</b> (se {})</li>",
-                scale::signed(ate.estimate),
-                scale::sig(ate.se)
-            );
-        }
-        if !c.front_runner.is_empty() {
-            put!(
-                body,
-                "<li>front-runner <b>{}</b></li>",
-                Esc(&c.front_runner)
-            );
-        }
+        effect_and_front_runner(body, c);
         body.push_str("</ul>");
         body.push_str(&svg::board_chart(c, colors));
         body.push_str("</div>");

@@ -144,32 +144,10 @@ pub fn assign_arm_folds(arm: &[usize], arms: usize, k: usize, seed: u64) -> Vec<
     fold
 }
 
-/// Cross-fits the generalized propensity and every arm's outcome model.
-/// `arm[i]` is unit i's arm, an index into `arm_names` (0 the reference);
-/// the names only label errors.
+/// Cross-fits the generalized propensity and every arm's outcome model,
+/// keeping the chosen learners' fold models. `arm[i]` is unit i's arm, an
+/// index into `arm_names` (0 the reference); the names only label errors.
 pub fn fit_arm_nuisance(
-    features: FeatureRows<'_>,
-    arm: &[usize],
-    arm_names: &[String],
-    outcome: &[f64],
-    kind: OutcomeKind,
-    settings: &NuisanceSettings,
-    propensity_learners: Vec<Box<dyn ArmLearner>>,
-) -> Result<(ArmNuisance, ArmNuisanceReport), EstimateError> {
-    fit_arm_nuisance_models(
-        features,
-        arm,
-        arm_names,
-        outcome,
-        kind,
-        settings,
-        propensity_learners,
-    )
-    .map(|(values, report, _)| (values, report))
-}
-
-/// [`fit_arm_nuisance`], keeping the chosen learners' fold models.
-pub fn fit_arm_nuisance_models(
     features: FeatureRows<'_>,
     arm: &[usize],
     arm_names: &[String],
@@ -438,7 +416,7 @@ mod tests {
             y.push(x2 + k as f64 + standard_normal(&mut rng));
         }
         let names: Vec<String> = ["none", "text", "mail"].map(String::from).to_vec();
-        let (_, report) = fit_arm_nuisance(
+        let (_, report, _) = fit_arm_nuisance(
             FeatureRows::dense(&x, 2),
             &arm,
             &names,

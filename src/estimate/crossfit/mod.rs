@@ -37,8 +37,8 @@ use super::stats::auc;
 use rayon::prelude::*;
 
 pub use arms::{
-    assign_arm_folds, fit_arm_nuisance, fit_arm_nuisance_models, ArmCandidateLoss,
-    ArmFittedNuisance, ArmNuisance, ArmNuisanceReport, ArmPropensityReport,
+    assign_arm_folds, fit_arm_nuisance, ArmCandidateLoss, ArmFittedNuisance, ArmNuisance,
+    ArmNuisanceReport, ArmPropensityReport,
 };
 pub use fold_models::FittedNuisance;
 pub use folds::{assign_fit, assign_folds, FitAssignment};

@@ -25,7 +25,7 @@ use super::{settings, RecomputeInput};
 use crate::domain::{IncompleteModel, Window};
 use crate::estimate::arms::{score_arms, ArmModelPredictions, ArmTable, ArmsScoreboard};
 use crate::estimate::crossfit::{
-    fit_arm_nuisance_models, ArmFittedNuisance, ArmNuisance, ArmNuisanceReport,
+    fit_arm_nuisance, ArmFittedNuisance, ArmNuisance, ArmNuisanceReport,
 };
 use crate::estimate::watch::{ArmArrivals, ArmSignal, Watch};
 use crate::estimate::{EstimateError, FeatureRows};
@@ -157,7 +157,7 @@ impl RecomputeInput {
         &self,
         table: &ArmTable,
     ) -> Result<(ArmNuisance, ArmNuisanceReport, ArmFittedNuisance), EstimateError> {
-        fit_arm_nuisance_models(
+        fit_arm_nuisance(
             table.rows(),
             table.arm(),
             table.arms(),
