@@ -1115,3 +1115,87 @@ async fn a_sqlite_store_from_before_arms_reads_back_its_binary_rows() {
         .is_empty());
     s.close().await;
 }
+
+/// A rebuild reads every stored prediction of a dataset, at a thousand
+/// models over a hundred million rows, so SQLite's read goes in chunks on a
+/// connection of its own (`src/store/sqlite/bulk.rs`). Here: rows of three
+/// models spanning several chunks (8,192 rows each) come back whole and
+/// only the dataset's own, and a reader that stops after a few rows leaves
+/// the store writable and closable.
+#[tokio::test]
+async fn a_rebuild_reads_many_models_predictions_whole_and_can_stop_early() {
+    for Backend { name, store: s, .. } in backends("bulk").await {
+        let d = s.create_dataset(&spec("a"), 1).await.expect("create");
+        let other = s.create_dataset(&spec("b"), 1).await.expect("create");
+        let units: Vec<UnitRecord> = (0..7_000).map(|i| unit(i, &format!("k{i}"))).collect();
+        s.insert_units(d.id, &units, 2).await.expect("units");
+        s.insert_units(other.id, &units[..10], 2)
+            .await
+            .expect("other's units");
+        let mut written = Vec::new();
+        for (k, model) in ["m1", "m2", "m3"].into_iter().enumerate() {
+            let m = s
+                .register_model(d.id, model, "1", "", 3)
+                .await
+                .expect("model");
+            let batch: Vec<PredictionRecord> = (0..7_000)
+                .map(|u| PredictionRecord {
+                    model_id: m.id,
+                    unit_seq: u,
+                    seq: k as i64 * 7_000 + u,
+                    effect: (u as f64).sin() / (k + 1) as f64,
+                    predicted_at_ms: 10 + u,
+                    arm: 1,
+                })
+                .collect();
+            s.insert_predictions(d.id, &batch, 4)
+                .await
+                .expect("predictions");
+            written.extend(batch);
+        }
+        let o = s
+            .register_model(other.id, "o", "1", "", 3)
+            .await
+            .expect("other's model");
+        let stray = PredictionRecord {
+            model_id: o.id,
+            unit_seq: 0,
+            seq: 0,
+            effect: 9.0,
+            predicted_at_ms: 1,
+            arm: 1,
+        };
+        s.insert_predictions(other.id, std::slice::from_ref(&stray), 5)
+            .await
+            .expect("other's prediction");
+
+        let mut read = collect(s.predictions(d.id, 0)).await;
+        read.sort_by_key(|p| p.seq);
+        assert_eq!(read.len(), 21_000, "{name}: every row, once");
+        assert_eq!(read, written, "{name}: read back bit for bit");
+
+        let mut stream = s.predictions(d.id, 0);
+        for _ in 0..5 {
+            stream
+                .next()
+                .await
+                .expect("a row")
+                .expect("read without error");
+        }
+        drop(stream);
+        let next = PredictionRecord {
+            seq: 1,
+            unit_seq: 1,
+            ..stray
+        };
+        s.insert_predictions(other.id, &[next], 6)
+            .await
+            .expect("the store takes writes after a reader stopped early");
+        assert_eq!(
+            collect(s.predictions(other.id, 0)).await.len(),
+            2,
+            "{name}: the other dataset's rows only"
+        );
+        s.close().await;
+    }
+}

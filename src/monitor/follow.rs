@@ -156,15 +156,19 @@ impl Monitor {
         }
         if tip.predictions > st.cache.next_prediction_seq() {
             let mut predictions = self.store.predictions(id, st.cache.next_prediction_seq());
+            // A rebuild reads the rows model by model: the last model found
+            // saves a search of the model list per row.
+            let mut last: Option<(i64, usize)> = None;
             while let Some(p) = predictions.next().await {
                 let p = p?;
-                let Some(m) = st
-                    .cache
-                    .model_by_id(p.model_id)
-                    .filter(|_| p.unit_seq < known_units)
-                else {
+                let m = match last {
+                    Some((model_id, m)) if model_id == p.model_id => Some(m),
+                    _ => st.cache.model_by_id(p.model_id),
+                };
+                let Some(m) = m.filter(|_| p.unit_seq < known_units) else {
                     break;
                 };
+                last = Some((p.model_id, m));
                 st.cache.add_prediction(m, &p);
             }
         }

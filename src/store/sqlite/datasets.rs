@@ -243,31 +243,31 @@ impl DatasetLog for SqliteStore {
 
     /// One server writes a SQLite store, so only a rebuild reads this, from
     /// 0: in the table's order then (an index on the arrival order would slow
-    /// every prediction batch, and a sort would slow every start).
+    /// every prediction batch, and a sort would slow every start), stepped
+    /// in place on a connection of its own (`bulk.rs`).
     fn predictions(&self, dataset_id: i64, from: i64) -> RowStream<'_, PredictionRecord> {
-        let sql = if from == 0 {
-            "SELECT model_id, unit_seq, seq, effect, predicted_at_ms, arm FROM predictions \
-             WHERE dataset_id = ? AND seq >= ?"
-        } else {
-            "SELECT model_id, unit_seq, seq, effect, predicted_at_ms, arm FROM predictions \
-             WHERE dataset_id = ? AND seq >= ? ORDER BY seq"
-        };
+        if from == 0 {
+            return super::bulk::predictions(self.path.clone(), dataset_id);
+        }
         Box::pin(
-            sqlx::query(sql)
-                .bind(dataset_id)
-                .bind(from)
-                .fetch(&self.pool)
-                .map(|r| {
-                    let r = r?;
-                    Ok(PredictionRecord {
-                        model_id: r.get(0),
-                        unit_seq: r.get(1),
-                        seq: r.get(2),
-                        effect: r.get(3),
-                        predicted_at_ms: r.get(4),
-                        arm: arm_of(r.get(5))?,
-                    })
-                }),
+            sqlx::query(
+                "SELECT model_id, unit_seq, seq, effect, predicted_at_ms, arm FROM predictions \
+                 WHERE dataset_id = ? AND seq >= ? ORDER BY seq",
+            )
+            .bind(dataset_id)
+            .bind(from)
+            .fetch(&self.pool)
+            .map(|r| {
+                let r = r?;
+                Ok(PredictionRecord {
+                    model_id: r.get(0),
+                    unit_seq: r.get(1),
+                    seq: r.get(2),
+                    effect: r.get(3),
+                    predicted_at_ms: r.get(4),
+                    arm: arm_of(r.get(5))?,
+                })
+            }),
         )
     }
 

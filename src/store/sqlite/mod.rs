@@ -32,6 +32,7 @@ use sqlx::SqliteConnection;
 
 use super::{Backend, Durability, Fence, StoreConfig, StoreError, StoreResult};
 
+mod bulk;
 mod claim;
 mod datasets;
 mod events;
@@ -112,6 +113,8 @@ async fn checkpoints(pool: SqlitePool, alive: Weak<()>, wal: PathBuf, limit: u64
 
 pub struct SqliteStore {
     pool: SqlitePool,
+    /// The database file, for a rebuild's bulk reads (`bulk.rs`).
+    path: PathBuf,
     /// The checkpoint task stops when this goes.
     _alive: Arc<()>,
     /// The data directory's claim, for a server; released on close (or
@@ -175,6 +178,7 @@ impl SqliteStore {
         ));
         Ok(Self {
             pool,
+            path: path.to_path_buf(),
             _alive: alive,
             claim: std::sync::Mutex::new(claim),
             next_snapshot: AtomicI64::new(largest + 1),
