@@ -31,8 +31,11 @@ fn how(e: &Evidence) -> String {
             e.lower, e.upper, e.units
         ),
         Route::Detector => format!(
-            "change detector at {:.1} against its threshold {:.1} (log scale) after {} looks",
-            e.log_statistic, e.log_threshold, e.looks
+            "change detector at {:.1} against its threshold {:.1} (log scale) after {} look{}",
+            e.log_statistic,
+            e.log_threshold,
+            e.looks,
+            if e.looks == 1 { "" } else { "s" }
         ),
         Route::Gone => "the previous front-runner no longer predicts".into(),
     }
