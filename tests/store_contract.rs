@@ -1120,8 +1120,10 @@ async fn a_sqlite_store_from_before_arms_reads_back_its_binary_rows() {
 /// models over a hundred million rows, so SQLite's read goes in chunks on a
 /// connection of its own (`src/store/sqlite/bulk.rs`). Here: rows of three
 /// models spanning several chunks (8,192 rows each) come back whole and
-/// only the dataset's own, and a reader that stops after a few rows leaves
-/// the store writable and closable.
+/// only the dataset's own, and a reader dropped after a few rows (its
+/// thread then stops at its next chunk) neither errors nor holds up the
+/// writes and the close that follow (a thread left blocked would hang
+/// the suite here).
 #[tokio::test]
 async fn a_rebuild_reads_many_models_predictions_whole_and_can_stop_early() {
     for Backend { name, store: s, .. } in backends("bulk").await {

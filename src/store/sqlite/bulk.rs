@@ -15,11 +15,10 @@
 //! meets a row naming a unit it has not read), the channel closes and the
 //! thread stops at its next chunk.
 
-use std::path::PathBuf;
-use std::time::Duration;
-
+use std::path::{Path, PathBuf};
 use std::pin::Pin;
 use std::task::{Context, Poll};
+use std::time::Duration;
 
 use rusqlite::{Connection, OpenFlags};
 use tokio::sync::mpsc;
@@ -76,43 +75,47 @@ impl Stream for Chunks {
     }
 }
 
-fn backend(path: &std::path::Path, e: rusqlite::Error) -> StoreError {
-    StoreError::Backend(format!("reading predictions from {}: {e}", path.display()))
-}
-
 /// Steps the query, sending full chunks; returns when the table is read or
 /// the consumer has gone.
 fn read(
-    path: &std::path::Path,
+    path: &Path,
     dataset_id: i64,
     tx: &mpsc::Sender<StoreResult<Vec<PredictionRecord>>>,
 ) -> StoreResult<()> {
+    let failed = |e: rusqlite::Error| {
+        StoreError::Backend(format!("reading predictions from {}: {e}", path.display()))
+    };
     let conn = Connection::open_with_flags(
         path,
         OpenFlags::SQLITE_OPEN_READ_ONLY | OpenFlags::SQLITE_OPEN_NO_MUTEX,
     )
-    .map_err(|e| backend(path, e))?;
-    conn.busy_timeout(Duration::from_secs(10))
-        .map_err(|e| backend(path, e))?;
+    .map_err(failed)?;
+    conn.busy_timeout(Duration::from_secs(10)).map_err(failed)?;
     let mut statement = conn
         .prepare(
             "SELECT model_id, unit_seq, seq, effect, predicted_at_ms, arm FROM predictions \
              WHERE dataset_id = ?1",
         )
-        .map_err(|e| backend(path, e))?;
-    let mut rows = statement
-        .query([dataset_id])
-        .map_err(|e| backend(path, e))?;
+        .map_err(failed)?;
+    let rows = statement
+        .query_map([dataset_id], |row| {
+            let record = PredictionRecord {
+                model_id: row.get(0)?,
+                unit_seq: row.get(1)?,
+                seq: row.get(2)?,
+                effect: row.get(3)?,
+                predicted_at_ms: row.get(4)?,
+                arm: 0,
+            };
+            Ok((record, row.get::<_, i64>(5)?))
+        })
+        .map_err(failed)?;
     let mut chunk = Vec::with_capacity(CHUNK);
-    while let Some(row) = rows.next().map_err(|e| backend(path, e))? {
-        let field = |i: usize| row.get::<_, i64>(i).map_err(|e| backend(path, e));
+    for row in rows {
+        let (record, arm) = row.map_err(failed)?;
         chunk.push(PredictionRecord {
-            model_id: field(0)?,
-            unit_seq: field(1)?,
-            seq: field(2)?,
-            effect: row.get::<_, f64>(3).map_err(|e| backend(path, e))?,
-            predicted_at_ms: field(4)?,
-            arm: arm_of(field(5)?)?,
+            arm: arm_of(arm)?,
+            ..record
         });
         if chunk.len() == CHUNK {
             let full = std::mem::replace(&mut chunk, Vec::with_capacity(CHUNK));
