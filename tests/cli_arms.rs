@@ -189,7 +189,6 @@ fn bad_arm_input_is_refused_naming_field_and_row() {
     for extra in [
         &["--fold-repeats", "3"][..],
         &["--recalibrate-propensity"][..],
-        &["--max-fit-units", "5000"][..],
     ] {
         let args: Vec<&str> = ["--arms", "none,text,mail"]
             .iter()

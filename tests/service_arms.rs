@@ -56,6 +56,24 @@ fn json(args: &[&str]) -> Value {
 
 const ARMS: [&str; 3] = ["none", "text", "mail"];
 
+/// Registers the three models the files predict for, on dataset `offers`.
+fn register_models(server: &str) {
+    let (code, _, err) = plumbline(&[
+        "model",
+        "register",
+        "--dataset",
+        "offers",
+        "--version",
+        "1",
+        "good",
+        "flat",
+        "text-only",
+        "--server",
+        server,
+    ]);
+    assert_eq!(code, Some(0), "{err}");
+}
+
 /// 1,200 units in two cohorts, arms drawn by a softmax of x1 (so the
 /// propensity must be modelled), effects of text 1 + x1 and of mail
 /// 0.5 - x2; "good" predicts the true effects, "flat" 0.2 on both arms,
@@ -136,18 +154,7 @@ fn a_three_arm_dataset_served_gives_the_offline_boards_and_policy_values() {
     ]);
     assert_eq!(created["arms"], serde_json::json!(["none", "text", "mail"]));
     assert_eq!(created["arm_cost"], "mail=0.1");
-    let (code, _, err) = call(&[
-        "model",
-        "register",
-        "--dataset",
-        "offers",
-        "--version",
-        "1",
-        "good",
-        "flat",
-        "text-only",
-    ]);
-    assert_eq!(code, Some(0), "{err}");
+    register_models(&server);
     for (kind, file, rows) in [
         ("units", &units, 1200),
         ("predictions", &preds, 6000),
@@ -1061,6 +1068,94 @@ async fn binary_overlap_and_series(
         .iter()
         .any(|(n, l, _)| n == "plumbline_overlap_arm_extreme_share"
             && l.first() == Some(&("dataset".into(), "clicks".into()))));
+}
+
+/// Under `limits.max_fit_units` a three-arm dataset's fit takes a sample,
+/// as a binary refit does: the served board's nuisance report says how
+/// many units the models saw (1,000 of 1,200, each arm's share kept), and
+/// the board is `plumbline score --arms --max-fit-units 1000`'s on the
+/// same files.
+#[test]
+fn a_three_arm_dataset_under_a_refit_cap_fits_a_sample_as_score_does() {
+    let dir = TempDir::new("arms-cap");
+    let config = dir.0.join("plumbline.toml");
+    std::fs::write(&config, "[limits]\nmax_fit_units = 1000\n").expect("config");
+    let config = config.display().to_string();
+    let srv = Served(serve_binary(&dir, &["--config", &config], "warn", false));
+    let server = format!("http://{}", srv.0.grpc);
+    let files_dir = TempDir::new("arms-cap-files");
+    let (units, offline_units, preds) = files(&files_dir.0);
+    let [units, offline_units, preds] =
+        [units, offline_units, preds].map(|p| p.display().to_string());
+    let call_json = |args: &[&str]| -> Value {
+        let v: Vec<&str> = args
+            .iter()
+            .copied()
+            .chain(["--server", &server, "--format", "json"])
+            .collect();
+        json(&v)
+    };
+    call_json(&[
+        "dataset",
+        "create",
+        "offers",
+        "--features",
+        "x1,x2",
+        "--arms",
+        "none,text,mail",
+        "--outcome-kind",
+        "continuous",
+        "--seed",
+        "7",
+    ]);
+    register_models(&server);
+    for (kind, file) in [
+        ("units", &units),
+        ("predictions", &preds),
+        ("outcomes", &units),
+    ] {
+        call_json(&["ingest", kind, "--dataset", "offers", file]);
+    }
+    let r = call_json(&["recompute", "--dataset", "offers"]);
+    assert_eq!(r["units"], 1200, "{r}");
+    let board = call_json(&["scoreboard", "--dataset", "offers"]);
+    let nuisance = &board["scoreboard"]["nuisance"];
+    println!(
+        "served nuisance report: fitted_units {}, units {}",
+        nuisance["fitted_units"], nuisance["units"]
+    );
+    assert_eq!(nuisance["max_fit_units"], 1000, "{nuisance}");
+    assert_eq!(nuisance["fitted_units"], 1000, "{nuisance}");
+    assert_eq!(nuisance["units"], 1200, "{nuisance}");
+    let outcome_units: u64 = nuisance["outcome"]
+        .as_array()
+        .expect("outcome reports")
+        .iter()
+        .filter_map(|o| o["units"].as_u64())
+        .sum();
+    assert_eq!(outcome_units, 1000, "each arm's model on its sample units");
+
+    let score = [
+        "score",
+        "--units",
+        &offline_units,
+        "--predictions",
+        &preds,
+        "--arms",
+        "none,text,mail",
+        "--seed",
+        "7",
+        "--max-fit-units",
+        "1000",
+    ];
+    let offline = json(&[&score[..], &["--format", "json"]].concat());
+    assert_json_close(&board["scoreboard"], &offline, 1e-9, "capped arms");
+    let (code, text, err) = plumbline(&score);
+    assert_eq!(code, Some(0), "{err}");
+    assert!(
+        text.contains("fitted on a sample of 1000 of 1200 units"),
+        "{text}"
+    );
 }
 
 #[test]

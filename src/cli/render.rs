@@ -142,15 +142,7 @@ pub fn table(b: &Scoreboard, kind: OutcomeKind, folds: usize, wide: bool) -> Str
     overlap(&mut s, &b.overlap);
     if let Some(n) = &b.nuisance {
         let _ = writeln!(s);
-        // A capped fit says so: its models saw a sample, every unit was scored.
-        let sample = if n.fitted_units < n.units {
-            format!(
-                "; fitted on a sample of {} of {} units",
-                n.fitted_units, n.units
-            )
-        } else {
-            String::new()
-        };
+        let sample = sample_note(n.fitted_units, n.units);
         // Repeated splits say so, and that the losses below are the
         // first split's.
         let repeats = if n.fold_repeats > 1 {
@@ -468,6 +460,16 @@ pub(crate) fn wrap_prose(text: &str, width: usize) -> String {
         }
     }
     out
+}
+
+/// What a capped fit adds to its nuisance line: its models saw a sample,
+/// every unit was scored. Empty for a fit on every unit.
+pub(super) fn sample_note(fitted_units: usize, units: usize) -> String {
+    if fitted_units < units {
+        format!("; fitted on a sample of {fitted_units} of {units} units")
+    } else {
+        String::new()
+    }
 }
 
 #[cfg(test)]

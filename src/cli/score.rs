@@ -90,7 +90,6 @@ pub fn run(args: &ScoreArgs) -> ExitCode {
         // The arms fit has one split and no recalibration yet: refuse
         // rather than ignore a setting the user asked for.
         let unsupported = [
-            (args.max_fit_units.is_some(), "--max-fit-units"),
             (args.fold_repeats != 1, "--fold-repeats"),
             (args.recalibrate_propensity, "--recalibrate-propensity"),
         ];

@@ -98,6 +98,7 @@ pub fn run(args: &ScoreArgs, arms: &[String], kind: Option<OutcomeKind>) -> Exit
         nuisance: NuisanceSettings {
             folds: args.folds,
             seed: args.seed,
+            max_fit_units: args.max_fit_units,
             ..NuisanceSettings::default()
         },
         alpha: args.alpha,
@@ -187,9 +188,10 @@ pub fn table(b: &ArmsScoreboard, kind: OutcomeKind, folds: usize, wide: bool) ->
         );
     }
     if let Some(n) = &b.nuisance {
+        let sample = super::render::sample_note(n.fitted_units, n.units);
         let _ = writeln!(
             s,
-            "  propensity learner {} (out-of-fold log-loss {}); outcome learners: {}",
+            "  propensity learner {} (out-of-fold log-loss {}); outcome learners: {}{sample}",
             n.propensity.learner,
             num(n.propensity.oof_loss),
             b.arms

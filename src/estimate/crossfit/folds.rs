@@ -47,27 +47,45 @@ pub fn assign_fit(
     max_fit_units: Option<usize>,
     min_per_arm: usize,
 ) -> FitAssignment {
+    let arm: Vec<usize> = treatment.iter().map(|&w| usize::from(w == 1.0)).collect();
+    assign_arm_fit(&arm, 2, k, seed, max_fit_units, min_per_arm)
+}
+
+/// [`assign_fit`] for any number of arms, `arm[i]` unit i's arm in
+/// 0..`arms` (0 the reference): each arm shuffled once in turn from one
+/// seeded generator, a unit's fold its position in its arm's shuffle
+/// modulo k, the sample the first m_a units of each arm's shuffle. The
+/// non-reference arms take m_a = round(m n_a / n) and the reference the
+/// rest, which with two arms is the rule above, so a binary fit draws
+/// exactly what it drew before arms existed.
+pub fn assign_arm_fit(
+    arm: &[usize],
+    arms: usize,
+    k: usize,
+    seed: u64,
+    max_fit_units: Option<usize>,
+    min_per_arm: usize,
+) -> FitAssignment {
     let mut rng = ChaCha8Rng::seed_from_u64(seed);
     let k = k.max(1);
-    let mut fold_of_unit = vec![0; treatment.len()];
-    let mut arms: Vec<Vec<usize>> = Vec::with_capacity(2);
-    for arm in [0.0, 1.0] {
-        let mut idx: Vec<usize> = (0..treatment.len())
-            .filter(|&i| treatment[i] == arm)
-            .collect();
+    let mut fold_of_unit = vec![0; arm.len()];
+    let mut shuffles: Vec<Vec<usize>> = Vec::with_capacity(arms);
+    for a in 0..arms {
+        let mut idx: Vec<usize> = (0..arm.len()).filter(|&i| arm[i] == a).collect();
         idx.shuffle(&mut rng);
         for (pos, &i) in idx.iter().enumerate() {
             fold_of_unit[i] = pos % k;
         }
-        arms.push(idx);
+        shuffles.push(idx);
     }
+    let counts: Vec<usize> = shuffles.iter().map(Vec::len).collect();
     let sample = max_fit_units
-        .and_then(|cap| sample_sizes([arms[0].len(), arms[1].len()], cap, min_per_arm))
+        .and_then(|cap| sample_sizes(&counts, cap, min_per_arm))
         .map(|sizes| {
-            let mut units: Vec<usize> = arms
+            let mut units: Vec<usize> = shuffles
                 .iter()
                 .zip(sizes)
-                .flat_map(|(arm, m)| arm[..m].iter().copied())
+                .flat_map(|(idx, m)| idx[..m].iter().copied())
                 .collect();
             units.sort_unstable();
             units
@@ -78,13 +96,13 @@ pub fn assign_fit(
     }
 }
 
-/// How many units of each arm (control, treated) a sample of at most `cap`
-/// units takes; None when the sample would hold every unit.
-pub(super) fn sample_sizes(arms: [usize; 2], cap: usize, min_per_arm: usize) -> Option<[usize; 2]> {
+/// How many units of each arm (the reference first) a sample of at most
+/// `cap` units takes; None when the sample would hold every unit.
+pub(super) fn sample_sizes(counts: &[usize], cap: usize, min_per_arm: usize) -> Option<Vec<usize>> {
     // u128: a cap set near usize::MAX must not overflow the products.
-    let n = (arms[0] + arms[1]) as u128;
+    let n: u128 = counts.iter().map(|&c| c as u128).sum();
     let mut m = cap as u128;
-    for &a in &arms {
+    for &a in counts {
         if a > 0 {
             // Smallest m whose share of this arm, m a / n, reaches the minimum.
             m = m.max((min_per_arm as u128 * n).div_ceil(a as u128));
@@ -93,11 +111,24 @@ pub(super) fn sample_sizes(arms: [usize; 2], cap: usize, min_per_arm: usize) -> 
     if m >= n {
         return None;
     }
-    // round(m n_1 / n), halves up, in integers.
-    let treated = ((2 * m * arms[1] as u128 + n) / (2 * n)) as usize;
-    let treated = treated.min(arms[1]);
-    let control = (m as usize - treated).min(arms[0]);
-    Some([control, treated])
+    // round(m n_a / n), halves up, in integers; the reference the rest.
+    let mut sizes: Vec<usize> = counts
+        .iter()
+        .map(|&a| (((2 * m * a as u128 + n) / (2 * n)) as usize).min(a))
+        .collect();
+    let others: usize = sizes.iter().skip(1).sum();
+    if let Some(first) = sizes.first_mut() {
+        *first = (m as usize).saturating_sub(others).min(counts[0]);
+    }
+    // With three or more arms the others' roundings can leave the
+    // reference a unit or two short of the minimum its share reached
+    // before rounding: top it up (the sample then exceeds the cap by those
+    // units). With two arms it never is short: m - round(m n_1 / n) is an
+    // integer at least m n_0 / n - 1/2, itself at least the minimum.
+    for (size, &a) in sizes.iter_mut().zip(counts) {
+        *size = (*size).max(min_per_arm.min(a));
+    }
+    Some(sizes)
 }
 
 /// The folds of one cross-fit: which fold each unit is in, and how many.

@@ -41,7 +41,7 @@ pub use arms::{
     ArmNuisanceReport, ArmPropensityReport,
 };
 pub use fold_models::FittedNuisance;
-pub use folds::{assign_fit, assign_folds, FitAssignment};
+pub use folds::{assign_arm_fit, assign_fit, assign_folds, FitAssignment};
 pub use nuisance::Nuisance;
 pub use recalibrate::{
     recalibrate_propensity, PropensityMap, Recalibration, RecalibrationChoice, RecalibrationReport,
@@ -330,7 +330,7 @@ fn fit_one_split(
 }
 
 /// Rows predicted per task when the units outside a sample are scored.
-const SPREAD_BLOCK_ROWS: usize = 8192;
+pub(super) const SPREAD_BLOCK_ROWS: usize = 8192;
 
 /// One component's values for every unit: `fitted[j]` is the out-of-fold
 /// value of sample unit `sample[j]`; every other unit `i` gets the
@@ -338,7 +338,7 @@ const SPREAD_BLOCK_ROWS: usize = 8192;
 /// units outside that fold and so never saw it. The rest are predicted in
 /// blocks on every worker thread, from their raw feature values (`rows`
 /// is never binned).
-fn spread_to_every_unit(
+pub(super) fn spread_to_every_unit(
     fitted: Vec<f64>,
     sample: &[usize],
     fold_of_unit: &[usize],

@@ -237,10 +237,10 @@ fn the_sample_is_stratified_seeded_and_leaves_the_folds_alone() {
     // folds can be fitted: 20 treated of 10,000 under a cap of 1,000 would
     // get 2; 15 need a sample of 15 x 10,000 / 20 = 7,500.
     assert_eq!(
-        folds::sample_sizes([9_980, 20], 1_000, 15),
-        Some([7_485, 15])
+        folds::sample_sizes(&[9_980, 20], 1_000, 15),
+        Some(vec![7_485, 15])
     );
-    assert_eq!(folds::sample_sizes([9_980, 20], 10_000, 15), None);
+    assert_eq!(folds::sample_sizes(&[9_980, 20], 10_000, 15), None);
 }
 
 /// A learner that remembers which units it was fitted on (feature 0 is

@@ -7,7 +7,11 @@
 //! the same units in the same order: the cumulative boards are that
 //! command's. The recent and cohort windows are scored with those units'
 //! cross-fitted values (each from fits that did not see the unit), so a
-//! window needs no fit of its own. The binary path's incremental scoring
+//! window needs no fit of its own. Above `limits.max_fit_units` units the
+//! models are fitted on a seeded sample stratified by arm, as a binary
+//! refit's are (`plumbline score --arms --max-fit-units` draws the same
+//! one), and every unit still gets values from a fold model that never saw
+//! it. The binary path's incremental scoring
 //! (merged sums, kept windows) does not apply here yet: a recompute costs a
 //! full fit.
 //!
@@ -25,7 +29,7 @@ use super::{settings, RecomputeInput};
 use crate::domain::{IncompleteModel, Window};
 use crate::estimate::arms::{score_arms, ArmModelPredictions, ArmTable, ArmsScoreboard};
 use crate::estimate::crossfit::{
-    fit_arm_nuisance, ArmFittedNuisance, ArmNuisance, ArmNuisanceReport,
+    fit_arm_nuisance, ArmFittedNuisance, ArmNuisance, ArmNuisanceReport, NuisanceSettings,
 };
 use crate::estimate::watch::{ArmArrivals, ArmSignal, Watch};
 use crate::estimate::{EstimateError, FeatureRows};
@@ -163,7 +167,10 @@ impl RecomputeInput {
             table.arms(),
             table.outcome(),
             table.outcome_kind(),
-            &settings(&self.spec).nuisance,
+            &NuisanceSettings {
+                max_fit_units: self.max_fit_units,
+                ..settings(&self.spec).nuisance
+            },
             Vec::new(),
         )
     }
