@@ -142,6 +142,13 @@ pub fn assign_arm_folds(arm: &[usize], arms: usize, k: usize, seed: u64) -> Vec<
 /// Cross-fits the generalized propensity and every arm's outcome model,
 /// keeping the chosen learners' fold models. `arm[i]` is unit i's arm, an
 /// index into `arm_names` (0 the reference); the names only label errors.
+///
+/// With `settings.max_fit_units` below the number of units, the models are
+/// fitted on a seeded sample ([`assign_arm_fit`]: stratified by arm, each
+/// arm's share kept), the learners chosen by their out-of-fold loss on it,
+/// and every unit outside it gets its values from its own fold's chosen
+/// models. A cap at or above the number of units is the uncapped fit, bit
+/// for bit.
 pub fn fit_arm_nuisance(
     features: FeatureRows<'_>,
     arm: &[usize],
