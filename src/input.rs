@@ -427,7 +427,7 @@ pub fn read_units(file: &Path, kind: Option<OutcomeKind>) -> Result<UnitsFile, I
 pub struct PredictionsFile {
     pub ids: Vec<String>,
     pub models: Vec<String>,
-    /// values[model][row]
+    /// `values[model][row]`
     pub values: Vec<Vec<f64>>,
 }
 

@@ -12,7 +12,7 @@
 //! phi_k = Gamma_k - Gamma_0 (E[phi_k | x] = tau_k(x) when either the
 //! propensity or the two outcome models are right), and its plug-in effect
 //! mu_k - mu_0. A contrast's board is then the binary board run on those
-//! values ([`scoreboard::score_pass`]): the estimators that read only the
+//! values ([`super::scoreboard::score_pass`]): the estimators that read only the
 //! pseudo-outcome and the outcome models run on every unit; those that need
 //! a binary treatment (R-loss, IPW loss) run on the units of the
 //! contrast's two arms with the conditional propensity e_k / (e_k + e_0),

@@ -4,7 +4,7 @@
 //!
 //! The corrected PEHE contribution of a prediction t for unit i is
 //! c_i(t) = (phi_i - t)^2 - (phi_i - tau_tilde_i)^2 (see
-//! [`estimators::corrected_pehe`](super::estimators::corrected_pehe)). For a
+//! [`estimators::CorrectedPehe`](super::estimators::CorrectedPehe)). For a
 //! blend t_w = sum_k w_k tau_hat_k its mean over units is
 //!
 //!   w' A w - 2 w' b + const,  A = mean(tau_hat tau_hat'),  b = mean(tau_hat phi),

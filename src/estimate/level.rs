@@ -7,14 +7,14 @@
 //! B(X) for the product of propensity and outcome-model errors
 //! (see `estimators/corrected_pehe.rs`). Then
 //!
-//!   E[c_k] = PEHE_k - E[delta^2] + 2 E[(tau_tilde - tau_hat_k) B],
+//!   E\[c_k\] = PEHE_k - E[delta^2] + 2 E[(tau_tilde - tau_hat_k) B],
 //!
 //! low by the plug-in's own error E[delta^2], which is unknown and can be
 //! large. But E[delta^2] is at least the squared norm of delta's
 //! projection on any fixed function class G (a sieve):
 //! E[delta^2] >= ||Pi_G delta||^2. So
 //!
-//!   PEHE_k >= E[c_k] + ||Pi_G delta||^2   (up to the product term),
+//!   PEHE_k >= E\[c_k\] + ||Pi_G delta||^2   (up to the product term),
 //!
 //! with equality when delta lies in G, and the right side is estimable
 //! without bias because the residual pseudo-outcome r = phi - tau_tilde has

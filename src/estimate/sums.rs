@@ -202,7 +202,7 @@ impl ScoreSums {
 
     /// The aggregate of columns formed from this one's: first the
     /// combinations `mix[j]` of its leading `q = mix[j].len()` columns
-    /// (output column j is sum_a mix[j][a] c_a), then its columns q.. as
+    /// (output column j is sum_a `mix[j][a]` c_a), then its columns q.. as
     /// they are. Means map linearly and co-moments as W C W', exactly up to
     /// rounding; the output keeps every co-moment this one kept (its
     /// leading columns are the combinations and the columns q..lead).

@@ -85,9 +85,9 @@ pub fn merge_orders(tau_hat: &[f64], earlier: &[u32], later: &[u32]) -> Vec<u32>
 /// front to back instead of jumping through the order, which at a million
 /// units is the difference between cache hits and misses.
 pub struct Ranked {
-    /// phi[order[k]].
+    /// `phi[order[k]]`.
     pub phi: Vec<f64>,
-    /// tau_hat[order[k]].
+    /// `tau_hat[order[k]]`.
     pub tau: Vec<f64>,
     /// (start, end) positions of runs of equal predictions, as u32: there
     /// can be as many runs as units.

@@ -139,7 +139,7 @@ impl SnapshotLog for SqliteStore {
     }
 
     /// Each window's latest board: a snapshot stores only the windows its
-    /// recompute changed (see [`Store::insert_snapshot`]).
+    /// recompute changed (see [`SnapshotLog::insert_snapshot`]).
     async fn latest_boards(&self, dataset_id: i64) -> StoreResult<Vec<Board>> {
         let rows = sqlx::query(
             "SELECT b.window, b.board FROM snapshot_boards b JOIN ( \
