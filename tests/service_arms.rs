@@ -1246,3 +1246,176 @@ fn bad_rows_of_a_three_arm_dataset_are_refused_whole_with_field_and_row() {
         assert_eq!(receipt.accepted, 2, "one model, one unit, two arms");
     });
 }
+
+/// Rows `rows` (counted after the header) of a CSV file, with its header,
+/// as a new file `name` beside it.
+fn csv_part(file: &str, rows: std::ops::Range<usize>, name: &str) -> String {
+    let text = std::fs::read_to_string(file).expect("read csv");
+    let mut lines = text.lines();
+    let header = lines.next().expect("header");
+    let mut out = format!("{header}\n");
+    for line in lines.skip(rows.start).take(rows.len()) {
+        out.push_str(line);
+        out.push('\n');
+    }
+    let path = Path::new(file).with_file_name(name);
+    std::fs::write(&path, out).expect("write csv part");
+    path.display().to_string()
+}
+
+/// A dataset with arms keeps its nuisance fit between recomputes as a
+/// binary one does: the first recompute fits (and equals `score --arms` on
+/// those units); outcomes that grow the data by less than
+/// `refit_growth` are scored with the kept fit's fold models, not a new
+/// fit; a restart reproduces the recorded fit, under the cap it was
+/// fitted with, so the boards after it are the boards before it; and an
+/// asked-for refit equals `score --arms` on every unit.
+#[test]
+fn a_three_arm_dataset_keeps_its_fit_between_refits_and_across_a_restart() {
+    let dir = TempDir::new("arms-refit");
+    let config = dir.0.join("plumbline.toml");
+    std::fs::write(&config, "[limits]\nmax_fit_units = 1000\n").expect("config");
+    let config = config.display().to_string();
+    let srv = serve_binary(&dir, &["--config", &config], "warn", false);
+    let files_dir = TempDir::new("arms-refit-files");
+    let (units, offline_units, preds) = files(&files_dir.0);
+    let [units, offline_units, preds] =
+        [units, offline_units, preds].map(|p| p.display().to_string());
+    let first = csv_part(&units, 0..1100, "first.csv");
+    let rest = csv_part(&units, 1100..1200, "rest.csv");
+    let offline_first = csv_part(&offline_units, 0..1100, "offline_first.csv");
+    let preds_first = csv_part(&preds, 0..1100, "preds_first.csv");
+    let call_json = |server: &str, args: &[&str]| -> Value {
+        let v: Vec<&str> = args
+            .iter()
+            .copied()
+            .chain(["--server", server, "--format", "json"])
+            .collect();
+        json(&v)
+    };
+    let offline = |units: &str, preds: &str, cap: &str| -> Value {
+        json(&[
+            "score",
+            "--units",
+            units,
+            "--predictions",
+            preds,
+            "--arms",
+            "none,text,mail",
+            "--seed",
+            "7",
+            "--max-fit-units",
+            cap,
+            "--format",
+            "json",
+        ])
+    };
+
+    let server = format!("http://{}", srv.grpc);
+    call_json(
+        &server,
+        &[
+            "dataset",
+            "create",
+            "offers",
+            "--features",
+            "x1,x2",
+            "--arms",
+            "none,text,mail",
+            "--outcome-kind",
+            "continuous",
+            "--seed",
+            "7",
+            "--refit-growth",
+            "0.5",
+            "--recompute-every-outcomes",
+            "1000000",
+            "--recompute-every-seconds",
+            "3600",
+        ],
+    );
+    register_models(&server);
+    for (kind, file) in [
+        ("units", &units),
+        ("predictions", &preds),
+        ("outcomes", &first),
+    ] {
+        call_json(&server, &["ingest", kind, "--dataset", "offers", file]);
+    }
+    let r = call_json(&server, &["recompute", "--dataset", "offers"]);
+    assert_eq!(
+        (&r["refitted"], &r["units"]),
+        (&Value::Bool(true), &1100.into()),
+        "{r}"
+    );
+    let fitted = call_json(&server, &["scoreboard", "--dataset", "offers"]);
+    assert_json_close(
+        &fitted["scoreboard"],
+        &offline(&offline_first, &preds_first, "1000"),
+        1e-9,
+        "first fit",
+    );
+
+    // 100 more outcomes: 9% growth, under refit_growth's 50%.
+    call_json(
+        &server,
+        &["ingest", "outcomes", "--dataset", "offers", &rest],
+    );
+    let r = call_json(&server, &["recompute", "--dataset", "offers"]);
+    assert_eq!(
+        (&r["refitted"], &r["units"]),
+        (&Value::Bool(false), &1200.into()),
+        "{r}"
+    );
+    let extended = call_json(&server, &["scoreboard", "--dataset", "offers"]);
+    let report = &extended["scoreboard"]["nuisance"];
+    println!(
+        "between refits: nuisance fitted on {} of {} units, board on {}",
+        report["fitted_units"], report["units"], extended["scoreboard"]["units"]
+    );
+    assert_eq!(
+        report, &fitted["scoreboard"]["nuisance"],
+        "the kept fit's report"
+    );
+    assert_eq!(
+        (&report["fitted_units"], &report["units"]),
+        (&1000.into(), &1100.into())
+    );
+
+    // A restart without the cap: the recorded fit is drawn again under
+    // the cap it was fitted with, and scores the later units as before.
+    let stopped = srv.terminate();
+    assert!(stopped.status.success(), "{stopped:?}");
+    let srv = serve_binary(&dir, &[], "warn", false);
+    let server = format!("http://{}", srv.grpc);
+    let r = call_json(&server, &["recompute", "--dataset", "offers"]);
+    assert_eq!(r["refitted"], false, "{r}");
+    let restarted = call_json(&server, &["scoreboard", "--dataset", "offers"]);
+    assert_json_close(
+        &restarted["scoreboard"],
+        &extended["scoreboard"],
+        1e-12,
+        "after the restart",
+    );
+
+    let r = call_json(&server, &["recompute", "--dataset", "offers", "--refit"]);
+    assert_eq!(r["refitted"], true, "{r}");
+    let refitted = call_json(&server, &["scoreboard", "--dataset", "offers"]);
+    assert_json_close(
+        &refitted["scoreboard"],
+        &offline(&offline_units, &preds, "200000"),
+        1e-9,
+        "asked-for refit",
+    );
+    let events = call_json(
+        &server,
+        &["events", "--dataset", "offers", "--kind", "nuisance_refit"],
+    );
+    let reasons: Vec<&str> = events
+        .as_array()
+        .expect("events")
+        .iter()
+        .filter_map(|e| e["details"]["reason"].as_str())
+        .collect();
+    assert_eq!(reasons, ["first_fit", "requested"], "{events}");
+}

@@ -489,7 +489,7 @@ impl Monitor {
         }
         let mut st = h.state.lock().await;
         st.nuisance = None;
-        st.arm_fit = None;
+        st.arm_nuisance = None;
         self.forget_exports(&h.name, &h.boards(), &st.watch);
         drop(st);
         self.export_ownership(h);

@@ -104,9 +104,8 @@ struct DatasetState {
     stored: StoredDataset,
     cache: DatasetCache,
     nuisance: Option<NuisanceState>,
-    /// On a dataset with arms: the fold models of the last recompute's fit,
-    /// which the stream watch's next look scores the arrivals with.
-    arm_fit: Option<Arc<crate::estimate::crossfit::ArmFittedNuisance>>,
+    /// On a dataset with arms: its nuisance state (`nuisance` is None).
+    arm_nuisance: Option<recompute::ArmNuisanceState>,
     /// The stream watch behind the alerts, as the last recompute left it.
     watch: Watch,
     /// Outcomes accepted since the last recompute started.
@@ -123,10 +122,18 @@ impl DatasetState {
             ),
             stored,
             nuisance: None,
-            arm_fit: None,
+            arm_nuisance: None,
             watch: Watch::default(),
             pending_outcomes: 0,
         }
+    }
+
+    /// The units the kept nuisance fit gave values to, binary or arms.
+    fn fit_units(&self) -> Option<usize> {
+        self.nuisance
+            .as_ref()
+            .map(|n| n.fit_units)
+            .or_else(|| self.arm_nuisance.as_ref().map(|n| n.fit_units))
     }
 
     /// What a recompute reads. The scoring memo moves into the input (the
@@ -167,7 +174,7 @@ impl DatasetState {
             },
             revision: c.revision,
             nuisance,
-            arm_fit: self.arm_fit.clone(),
+            arm_nuisance: self.arm_nuisance.clone(),
             max_fit_units: Some(max_fit_units),
             blend_models,
             now_ms: now,

@@ -10,11 +10,23 @@ use tracing::{info, info_span, warn, Instrument};
 
 use super::alerts::{self, Raised};
 use super::board;
-use super::recompute::RecomputeOptions;
+use super::recompute::{NuisanceState, RecomputeOptions, RefitReason};
 use super::{now_ms, Boards, DatasetHandle, Monitor, MonitorError, MonitorResult};
 use crate::domain::ScoreRow;
+use crate::estimate::crossfit::NuisanceReport;
 use crate::metrics::{DatasetLabels, KindLabels, WindowLabels};
 use crate::store::{Fence, NewSnapshot, StoreError};
+
+/// A refit as recorded and announced.
+pub(super) struct FitRecord<'a, R> {
+    /// Units given values (every unit with an outcome at the fit).
+    pub units: usize,
+    /// Units the models were fitted on (fewer under a cap).
+    pub fitted_units: usize,
+    pub last_outcome_seq: i64,
+    pub seed: u64,
+    pub report: &'a R,
+}
 
 /// What a recompute did.
 #[derive(Debug, Clone, Copy, PartialEq)]
@@ -48,6 +60,17 @@ fn fitted_on(fitted: usize, units: usize) -> String {
     }
 }
 
+/// A binary refit's record.
+fn binary_fit(n: &NuisanceState, seed: u64) -> FitRecord<'_, NuisanceReport> {
+    FitRecord {
+        units: n.fit_units,
+        fitted_units: n.report.fitted_units,
+        last_outcome_seq: n.last_outcome_seq,
+        seed,
+        report: &n.report,
+    }
+}
+
 impl Monitor {
     /// Raises an event of the stream watch (of `contrast`, on a dataset
     /// with arms; empty on a binary one), counting front-runner changes.
@@ -70,6 +93,72 @@ impl Monitor {
                 .inc();
         }
         self.raise(h, Some(fence), snapshot_id, r).await;
+    }
+
+    /// Stores a refit's record (what a restart needs to draw it again: its
+    /// units, last outcome sequence number, seed, and the report with its
+    /// cap); the record's id.
+    pub(super) async fn record_fit(
+        &self,
+        fence: Fence,
+        now: i64,
+        fit: FitRecord<'_, impl serde::Serialize>,
+    ) -> MonitorResult<i64> {
+        // The report carries the cap the fit used, which a restart needs
+        // to draw the fit again: a record without it would be reproduced
+        // without a cap.
+        let report = serde_json::to_string(fit.report)
+            .map_err(|e| MonitorError::Internal(format!("nuisance fit report: {e}")))?;
+        Ok(self
+            .store
+            .insert_fit(
+                fence,
+                now,
+                fit.units as i64,
+                fit.last_outcome_seq,
+                fit.seed as i64,
+                &report,
+            )
+            .await?)
+    }
+
+    /// Raises a refit's event: why, on how many units, and the
+    /// propensity's fit in `quality`'s words.
+    pub(super) async fn raise_refit(
+        &self,
+        h: &DatasetHandle,
+        fence: Fence,
+        snapshot_id: u64,
+        reason: RefitReason,
+        fit: FitRecord<'_, impl serde::Serialize>,
+        quality: String,
+    ) {
+        let raised = Raised {
+            kind: "nuisance_refit",
+            summary: format!(
+                "{}: nuisance models refitted on {} ({reason}); {quality}",
+                h.name,
+                fitted_on(fit.fitted_units, fit.units)
+            ),
+            details: serde_json::json!({
+                "reason": reason.code(),
+                "units": fit.units,
+                "report": fit.report,
+            }),
+        };
+        self.raise(h, Some(fence), snapshot_id, raised).await;
+    }
+
+    /// Counts a recompute's duration under its kind: "refit" or
+    /// "incremental".
+    pub(super) fn observe_recompute(&self, dataset: &str, refitted: bool, seconds: f64) {
+        self.metrics
+            .recompute_seconds
+            .get_or_create(&KindLabels {
+                dataset: dataset.into(),
+                kind: if refitted { "refit" } else { "incremental" }.into(),
+            })
+            .observe(seconds);
     }
 
     /// Recomputes a dataset now, with a refit or a rank refresh if
@@ -168,7 +257,9 @@ impl Monitor {
             )));
         }
         if input.spec.has_arms() {
-            return self.publish_arms(h, fence, input, started, now).await;
+            return self
+                .publish_arms(h, fence, input, options, started, now)
+                .await;
         }
         let spec = input.spec.clone();
         let computed = tokio::task::spawn_blocking(move || {
@@ -182,21 +273,8 @@ impl Monitor {
         .map_err(|e| MonitorError::Internal(e.to_string()))??;
         let mut nuisance = computed.nuisance;
         if computed.refit.is_some() {
-            // The report carries the cap the fit used, which a restart needs
-            // to draw the fit again: a record without it would be reproduced
-            // without a cap.
-            let report = serde_json::to_string(&nuisance.report)
-                .map_err(|e| MonitorError::Internal(format!("nuisance fit report: {e}")))?;
             nuisance.fit_id = self
-                .store
-                .insert_fit(
-                    fence,
-                    now,
-                    nuisance.fit_units as i64,
-                    nuisance.last_outcome_seq,
-                    spec.seed as i64,
-                    &report,
-                )
+                .record_fit(fence, now, binary_fit(&nuisance, spec.seed))
                 .await?;
             nuisance.fitted_at_ms = now;
         }
@@ -300,41 +378,13 @@ impl Monitor {
                 .await;
         }
         if let Some(reason) = computed.refit {
-            let report = &nuisance.report;
-            self.raise(
-                h,
-                Some(fence),
-                snapshot_id as u64,
-                Raised {
-                    kind: "nuisance_refit",
-                    summary: format!(
-                        "{}: nuisance models refitted on {} ({reason}); propensity AUC {:.3}",
-                        h.name,
-                        fitted_on(report.fitted_units, report.units),
-                        report.propensity.auc
-                    ),
-                    details: serde_json::json!({
-                        "reason": reason.code(),
-                        "units": nuisance.fit_units,
-                        "report": report,
-                    }),
-                },
-            )
-            .await;
+            let quality = format!("propensity AUC {:.3}", nuisance.report.propensity.auc);
+            let fit = binary_fit(&nuisance, spec.seed);
+            self.raise_refit(h, fence, snapshot_id as u64, reason, fit, quality)
+                .await;
         }
         let seconds = started.elapsed().as_secs_f64();
-        self.metrics
-            .recompute_seconds
-            .get_or_create(&KindLabels {
-                dataset: h.name.clone(),
-                kind: if computed.refit.is_some() {
-                    "refit"
-                } else {
-                    "incremental"
-                }
-                .into(),
-            })
-            .observe(seconds);
+        self.observe_recompute(&h.name, computed.refit.is_some(), seconds);
         self.forget_models(&h.name, &[], &gone);
         self.export_boards(&h.name, &boards, &previous, &nuisance);
         self.export_watch(&h.name, watched_front_runner, &computed.watch);

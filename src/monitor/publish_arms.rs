@@ -1,7 +1,7 @@
-//! A recompute of a dataset with arms, published: the job (a full
-//! cross-fitted fit and every window's boards, see
-//! `recompute/arms.rs`) runs on the blocking pool, its snapshot is stored
-//! and its boards installed. Every contrast's models get history rows
+//! A recompute of a dataset with arms, published: the job (the nuisance
+//! values, refitted when due, and every window's boards, see
+//! `recompute/arms.rs`) runs on the blocking pool, its fit (when it
+//! refitted) and snapshot are stored and its boards installed. Every contrast's models get history rows
 //! (labelled by the contrast's arm, which `GetHistory` reads with `arm`)
 //! and every contrast's board its series (`monitor/export.rs`, labelled
 //! `contrast`). The stream watch looked first (one watch per contrast,
@@ -17,11 +17,11 @@ use tracing::info;
 
 use super::alerts::{self, Raised};
 use super::board;
-use super::publish::RecomputeSummary;
-use super::recompute::RecomputeInput;
+use super::publish::{FitRecord, RecomputeSummary};
+use super::recompute::{ArmNuisanceState, RecomputeInput, RecomputeOptions};
 use super::{DatasetHandle, Monitor, MonitorError, MonitorResult};
 use crate::domain::{Board, ScoreRow};
-use crate::metrics::KindLabels;
+use crate::estimate::crossfit::ArmNuisanceReport;
 use crate::store::{Fence, NewSnapshot};
 
 impl Monitor {
@@ -30,13 +30,19 @@ impl Monitor {
         h: &Arc<DatasetHandle>,
         fence: Fence,
         input: RecomputeInput,
+        options: RecomputeOptions,
         started: Instant,
         now: i64,
     ) -> MonitorResult<RecomputeSummary> {
         let spec = input.spec.clone();
-        let computed = tokio::task::spawn_blocking(move || input.compute_arms())
+        let mut computed = tokio::task::spawn_blocking(move || input.compute_arms(options))
             .await
             .map_err(|e| MonitorError::Internal(e.to_string()))??;
+        let refit = computed.refit;
+        if let (Some(_), Some(n)) = (refit, computed.nuisance.as_mut()) {
+            n.fit_id = self.record_fit(fence, now, arms_fit(n, spec.seed)).await?;
+            n.fitted_at_ms = now;
+        }
         let watch_json = serde_json::to_string(&computed.watch)
             .map_err(|e| MonitorError::Internal(format!("stream watch: {e}")))?;
         let snapshot_id = self.store.next_snapshot_id().await?;
@@ -70,8 +76,8 @@ impl Monitor {
                 id: snapshot_id,
                 fence,
                 computed_at_ms: now,
-                fit_id: None,
-                refitted: true,
+                fit_id: computed.nuisance.as_ref().map(|n| n.fit_id),
+                refitted: refit.is_some(),
                 millis,
                 boards: &changed,
                 scores: &scores,
@@ -90,7 +96,7 @@ impl Monitor {
                 .filter_map(|(arm, w)| w.state().front_runner.map(|f| (arm.clone(), f)))
                 .collect();
             st.watch = computed.watch.clone();
-            st.arm_fit = computed.fit.clone();
+            st.arm_nuisance = computed.nuisance.clone();
             let old = h.boards();
             h.publish(boards.clone());
             (old, previous)
@@ -105,25 +111,38 @@ impl Monitor {
             self.raise_watched(h, fence, snapshot_id as u64, &arm, r)
                 .await;
         }
+        if let (Some(reason), Some(n)) = (refit, &computed.nuisance) {
+            let quality = format!("propensity log-loss {:.3}", n.report.propensity.oof_loss);
+            let fit = arms_fit(n, spec.seed);
+            self.raise_refit(h, fence, snapshot_id as u64, reason, fit, quality)
+                .await;
+        }
         self.export_arms_boards(&h.name, &boards, &old);
         self.export_arms_watch(&h.name, &previous, &computed.watch);
-        self.metrics
-            .recompute_seconds
-            .get_or_create(&KindLabels {
-                dataset: h.name.clone(),
-                kind: "refit".into(),
-            })
-            .observe(millis / 1000.0);
+        self.observe_recompute(&h.name, refit.is_some(), millis / 1000.0);
         info!(
             snapshot = snapshot_id,
-            millis, "recompute of a dataset with arms done"
+            refitted = refit.is_some(),
+            millis,
+            "recompute of a dataset with arms done"
         );
         Ok(RecomputeSummary {
             snapshot_id: snapshot_id as u64,
-            refitted: true,
+            refitted: refit.is_some(),
             units,
             millis,
         })
+    }
+}
+
+/// An arms refit's record.
+fn arms_fit(n: &ArmNuisanceState, seed: u64) -> FitRecord<'_, ArmNuisanceReport> {
+    FitRecord {
+        units: n.fit_units,
+        fitted_units: n.report.fitted_units,
+        last_outcome_seq: n.last_outcome_seq,
+        seed,
+        report: &n.report,
     }
 }
 

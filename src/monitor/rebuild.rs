@@ -1,5 +1,5 @@
 //! A dataset restored from the store at start-up: its cache, its latest
-//! nuisance fit (reproduced), boards and stream watch.
+//! nuisance fit (reproduced, binary or arms), boards and stream watch.
 
 use tracing::{info, info_span, Instrument};
 
@@ -47,15 +47,25 @@ impl Monitor {
                 })?;
                 let input = state.recompute_input(now_ms(), self.max_fit_units, self.blend_models);
                 let limit = fit.last_outcome_seq;
-                let reproduced =
-                    tokio::task::spawn_blocking(move || input.reproduce_fit(limit, cap))
-                        .await
-                        .map_err(|e| MonitorError::Internal(e.to_string()))??;
-                state.nuisance = Some(NuisanceState {
-                    fit_id: fit.id,
-                    fitted_at_ms: fit.fitted_at_ms,
-                    ..reproduced
-                });
+                if stored.spec.has_arms() {
+                    let mut reproduced =
+                        tokio::task::spawn_blocking(move || input.reproduce_arm_fit(limit, cap))
+                            .await
+                            .map_err(|e| MonitorError::Internal(e.to_string()))??;
+                    reproduced.fit_id = fit.id;
+                    reproduced.fitted_at_ms = fit.fitted_at_ms;
+                    state.arm_nuisance = Some(reproduced);
+                } else {
+                    let reproduced =
+                        tokio::task::spawn_blocking(move || input.reproduce_fit(limit, cap))
+                            .await
+                            .map_err(|e| MonitorError::Internal(e.to_string()))??;
+                    state.nuisance = Some(NuisanceState {
+                        fit_id: fit.id,
+                        fitted_at_ms: fit.fitted_at_ms,
+                        ..reproduced
+                    });
+                }
             }
             match self.store.latest_watch(stored.id).await? {
                 Some(json) => {
@@ -65,7 +75,7 @@ impl Monitor {
                 // A dataset scored without a stored watch (a store older
                 // than migrations/sqlite/0004): the watch starts after the units
                 // already scored.
-                None if state.nuisance.is_some() || !latest.is_empty() => {
+                None if state.fit_units().is_some() || !latest.is_empty() => {
                     state.watch.skip_baseline(state.cache.outcomes() as u64);
                 }
                 None => {}
@@ -73,7 +83,7 @@ impl Monitor {
             state.pending_outcomes = state
                 .cache
                 .outcomes()
-                .saturating_sub(state.nuisance.as_ref().map(|n| n.fit_units).unwrap_or(0))
+                .saturating_sub(state.fit_units().unwrap_or(0))
                 as u64;
             // Outcomes but no boards (migrations/sqlite/0005 drops boards stored
             // in another format): the scheduler recomputes them at start.

@@ -1,36 +1,28 @@
 //! The recompute of a dataset with arms: every window's boards, one per
 //! contrast, and the value of each model's arm choice.
 //!
-//! Each recompute fits the multinomial propensity and the per-arm outcome
-//! models afresh, cross-fitted on the cumulative window's units with the
-//! dataset's folds and seed, exactly as `plumbline score --arms` does on
-//! the same units in the same order: the cumulative boards are that
-//! command's. The recent and cohort windows are scored with those units'
-//! cross-fitted values (each from fits that did not see the unit), so a
-//! window needs no fit of its own. Above `limits.max_fit_units` units the
-//! models are fitted on a seeded sample stratified by arm, as a binary
-//! refit's are (`plumbline score --arms --max-fit-units` draws the same
-//! one), and every unit still gets values from a fold model that never saw
-//! it. The binary path's incremental scoring
-//! (merged sums, kept windows) does not apply here yet: a recompute costs a
-//! full fit.
+//! The nuisance values come from `arm_nuisance.rs`: a cross-fitted refit
+//! when the dataset's refit rule says one is due, otherwise the kept fit's
+//! fold models applied to the new units. Every window is scored with its
+//! units' values (each from models that did not see the unit), so a window
+//! needs no fit of its own; the scoring of the boards itself is from
+//! scratch on every recompute (the binary path's merged sums and kept
+//! windows do not apply here yet).
 //!
 //! The stream watch looks first, at the units whose outcomes arrived since
-//! its last look, with values from the fold models of the previous
-//! recompute's fit (kept in memory), which never saw them. After a restart
-//! there are none: the models are fitted once on the units the watch has
-//! already seen, which are all earlier than the arrivals, so every watched
-//! value still depends on the past alone.
+//! its last look, with values from the kept fit's fold models, which never
+//! saw them; the extension reuses those values. Without a kept fit (a store
+//! written before arms fits were recorded) the models are fitted once on
+//! the units the watch has already seen, which are all earlier than the
+//! arrivals, so every watched value still depends on the past alone.
 
-use std::collections::HashMap;
 use std::sync::Arc;
 
-use super::{settings, RecomputeInput};
+use super::arm_nuisance::{ArmFixed, ArmNuisanceState};
+use super::{settings, RecomputeInput, RecomputeOptions, RefitReason};
 use crate::domain::{IncompleteModel, Window};
 use crate::estimate::arms::{score_arms, ArmModelPredictions, ArmTable, ArmsScoreboard};
-use crate::estimate::crossfit::{
-    fit_arm_nuisance, ArmFittedNuisance, ArmNuisance, ArmNuisanceReport, NuisanceSettings,
-};
+use crate::estimate::crossfit::{ArmFittedNuisance, ArmNuisance, ArmNuisanceReport};
 use crate::estimate::watch::{ArmArrivals, ArmSignal, Watch};
 use crate::estimate::{EstimateError, FeatureRows};
 
@@ -52,17 +44,11 @@ pub struct ArmsComputed {
     /// The watch after this recompute's arrivals, and what it decided.
     pub watch: Watch,
     pub signals: Vec<ArmSignal>,
-    /// The cumulative fit's fold models, for the watch's next look (None
-    /// when the cumulative window could not be fitted).
-    pub fit: Option<Arc<ArmFittedNuisance>>,
-}
-
-/// The cumulative fit, kept for the other windows: each fitted unit's
-/// position in it, its values and its report.
-struct Fit {
-    position: HashMap<usize, usize>,
-    nuisance: ArmNuisance,
-    report: ArmNuisanceReport,
+    /// The nuisance values to keep for the next recompute (None when the
+    /// units could not support a fit: every window then names why).
+    pub nuisance: Option<ArmNuisanceState>,
+    /// Set when this recompute refitted (the fit still needs a record id).
+    pub refit: Option<RefitReason>,
 }
 
 /// Which (model, arm) columns a window scores and on which units.
@@ -75,29 +61,43 @@ struct Chosen {
 }
 
 impl RecomputeInput {
-    /// The watch's look, then every window's boards. An error here is one
-    /// the dataset's settings cause (e.g. folds); data that cannot support
-    /// scores gives a window a named state instead.
-    pub fn compute_arms(mut self) -> Result<ArmsComputed, EstimateError> {
+    /// The watch's look, the nuisance values, then every window's boards.
+    /// An error here is one the dataset's settings cause (e.g. folds); data
+    /// that cannot support scores gives a window a named state instead.
+    pub fn compute_arms(
+        mut self,
+        options: RecomputeOptions,
+    ) -> Result<ArmsComputed, EstimateError> {
         settings(&self.spec).check()?;
-        let signals = self.watch_arms()?;
-        let (windows, fit) = self.arm_windows()?;
+        let (signals, fixed) = self.watch_arms()?;
+        let (nuisance, refit) = match self.arm_nuisance(options.refit, fixed) {
+            Ok((state, refit)) => (Ok(state), refit),
+            Err(e) => (Err(e.to_string()), None),
+        };
+        // No `Watch::refitted` here: the watch of a dataset with arms
+        // checks neither the fit nor the fitted propensities' drift, only
+        // the features', which a refit does not move.
+        let windows = self.arm_windows(nuisance.as_ref().map_err(Clone::clone));
         Ok(ArmsComputed {
             windows,
             watch: self.watch,
             signals,
-            fit: fit.map(Arc::new),
+            nuisance: nuisance.ok(),
+            refit,
         })
     }
 
     /// Hands the watch the units whose outcomes arrived since its last
-    /// look, with values from fold models that never saw them.
-    fn watch_arms(&mut self) -> Result<Vec<ArmSignal>, EstimateError> {
+    /// look, with values from fold models that never saw them; the values
+    /// when they came from the kept fit's models.
+    fn watch_arms(&mut self) -> Result<(Vec<ArmSignal>, ArmFixed), EstimateError> {
         let (from, units) = self.unwatched();
         if units.is_empty() {
-            return Ok(Vec::new());
+            return Ok((Vec::new(), ArmFixed::default()));
         }
-        let fit = match self.arm_fit.clone() {
+        let kept = self.arm_nuisance.as_ref().map(|s| s.fitted.clone());
+        let from_kept = kept.is_some();
+        let fit = match kept {
             Some(fit) => Some(fit),
             None => self.fit_on(&self.columns.arrived(0..from)).map(Arc::new),
         };
@@ -105,7 +105,7 @@ impl RecomputeInput {
             // Nothing earlier to fit on (the first look, or too few units
             // per arm): these units only fit the first models.
             self.watch.skip_baseline(units.len() as u64);
-            return Ok(Vec::new());
+            return Ok((Vec::new(), ArmFixed::default()));
         };
         let x = self.rows(&units);
         let width = x.ncols();
@@ -134,7 +134,7 @@ impl RecomputeInput {
             })
             .collect();
         let s = settings(&self.spec);
-        Ok(self.watch.observe_arms(
+        let signals = self.watch.observe_arms(
             &ArmArrivals {
                 arm: &arm,
                 outcome: &outcome,
@@ -147,82 +147,50 @@ impl RecomputeInput {
                 models: &models,
             },
             &self.watch_settings,
-        ))
+        );
+        let fixed = if from_kept {
+            ArmFixed {
+                units,
+                values: Some(nuisance),
+            }
+        } else {
+            ArmFixed::default()
+        };
+        Ok((signals, fixed))
     }
 
     /// The fold models of a cross-fit on `units`, when they support one.
     fn fit_on(&self, units: &[usize]) -> Option<ArmFittedNuisance> {
         let table = self.arm_table(units).ok()?;
-        self.fit_table(&table).ok().map(|(_, _, models)| models)
+        self.fit_arm_table(&table, self.max_fit_units)
+            .ok()
+            .map(|(_, _, models)| models)
     }
 
-    /// The dataset's cross-fit (its folds and seed) of a table's units.
-    fn fit_table(
-        &self,
-        table: &ArmTable,
-    ) -> Result<(ArmNuisance, ArmNuisanceReport, ArmFittedNuisance), EstimateError> {
-        fit_arm_nuisance(
-            table.rows(),
-            table.arm(),
-            table.arms(),
-            table.outcome(),
-            table.outcome_kind(),
-            &NuisanceSettings {
-                max_fit_units: self.max_fit_units,
-                ..settings(&self.spec).nuisance
-            },
-            Vec::new(),
-        )
-    }
-
-    /// Every window's boards, and the cumulative fit's fold models.
-    fn arm_windows(
-        &self,
-    ) -> Result<(Vec<ArmWindowResult>, Option<ArmFittedNuisance>), EstimateError> {
+    /// Every window's boards, from `nuisance` (or, when the units could not
+    /// be fitted, why: the state of every window).
+    fn arm_windows(&self, nuisance: Result<&ArmNuisanceState, String>) -> Vec<ArmWindowResult> {
         let scorable = self.scorable();
-        let chosen = self.choose_columns(&scorable);
-        let mut out = Vec::new();
-        let fitted = self.arm_table(&chosen.common).and_then(|table| {
-            let (nuisance, report, models) = self.fit_table(&table)?;
-            Ok((table, nuisance, report, models))
-        });
-        let (fit, models) = match fitted {
-            Ok((table, nuisance, report, models)) => {
-                let board = self.score(&table, &chosen, &nuisance, Some(report.clone()));
-                out.push(ArmWindowResult {
-                    key: Window::Cumulative.key(),
-                    window: Window::Cumulative,
-                    board: Ok(board),
-                    units: chosen.common.len(),
-                    incomplete: chosen.incomplete,
-                });
-                let fit = Fit {
-                    position: chosen
-                        .common
-                        .iter()
-                        .enumerate()
-                        .map(|(i, &u)| (u, i))
-                        .collect(),
-                    nuisance,
-                    report,
-                };
-                (fit, models)
-            }
-            Err(e) => {
-                // Without the cumulative fit no window has values.
-                let state = e.to_string();
-                out.push(ArmWindowResult {
-                    key: Window::Cumulative.key(),
-                    window: Window::Cumulative,
-                    board: Err(state.clone()),
-                    units: chosen.common.len(),
-                    incomplete: chosen.incomplete,
-                });
-                out.push(self.unscored(Window::Recent, state));
-                return Ok((out, None));
+        let nuisance = match nuisance {
+            Ok(n) => n,
+            Err(state) => {
+                let chosen = self.choose_columns(&scorable);
+                return vec![
+                    ArmWindowResult {
+                        key: Window::Cumulative.key(),
+                        window: Window::Cumulative,
+                        board: Err(state.clone()),
+                        units: chosen.common.len(),
+                        incomplete: chosen.incomplete,
+                    },
+                    self.unscored(Window::Recent, state),
+                ];
             }
         };
-        out.push(self.sub_window(Window::Recent, &self.recent(), &fit));
+        let mut out = vec![
+            self.window(Window::Cumulative, &scorable, nuisance),
+            self.window(Window::Recent, &self.recent(), nuisance),
+        ];
         let mut cohorts: Vec<Vec<usize>> = vec![Vec::new(); self.cohort_names.len()];
         for &u in &scorable {
             if let Some(c) = cohorts.get_mut(self.columns.cohort[u] as usize) {
@@ -231,10 +199,10 @@ impl RecomputeInput {
         }
         for (name, units) in self.cohort_names.iter().zip(&cohorts) {
             if !units.is_empty() {
-                out.push(self.sub_window(Window::Cohort(name.clone()), units, &fit));
+                out.push(self.window(Window::Cohort(name.clone()), units, nuisance));
             }
         }
-        Ok((out, Some(models)))
+        out
     }
 
     fn unscored(&self, window: Window, state: String) -> ArmWindowResult {
@@ -247,26 +215,22 @@ impl RecomputeInput {
         }
     }
 
-    /// A window scored with the cumulative fit's values of its units.
-    fn sub_window(&self, window: Window, units: &[usize], fit: &Fit) -> ArmWindowResult {
-        let fitted: Vec<usize> = units
+    /// A window scored with its units' nuisance values.
+    fn window(
+        &self,
+        window: Window,
+        units: &[usize],
+        nuisance: &ArmNuisanceState,
+    ) -> ArmWindowResult {
+        let scored: Vec<usize> = units
             .iter()
             .copied()
-            .filter(|u| fit.position.contains_key(u))
+            .filter(|&u| nuisance.scored(u))
             .collect();
-        let chosen = self.choose_columns(&fitted);
+        let chosen = self.choose_columns(&scored);
         let board = self.arm_table(&chosen.common).map(|table| {
-            let pick = |values: &[Vec<f64>]| -> Vec<Vec<f64>> {
-                values
-                    .iter()
-                    .map(|v| chosen.common.iter().map(|u| v[fit.position[u]]).collect())
-                    .collect()
-            };
-            let nuisance = ArmNuisance {
-                propensity: pick(&fit.nuisance.propensity),
-                outcome: pick(&fit.nuisance.outcome),
-            };
-            self.score(&table, &chosen, &nuisance, Some(fit.report.clone()))
+            let values = nuisance.of(&chosen.common);
+            self.score(&table, &chosen, &values, Some(nuisance.report.clone()))
         });
         ArmWindowResult {
             key: window.key(),
@@ -310,7 +274,7 @@ impl RecomputeInput {
     }
 
     /// The window's units as an [`ArmTable`] (features copied dense).
-    fn arm_table(&self, units: &[usize]) -> Result<ArmTable, EstimateError> {
+    pub(super) fn arm_table(&self, units: &[usize]) -> Result<ArmTable, EstimateError> {
         ArmTable::new(
             self.rows(units),
             units

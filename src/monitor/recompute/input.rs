@@ -3,13 +3,10 @@
 //! models' predictions, the nuisance state and the watch; and the reads of
 //! it every part of the job shares.
 
-use std::sync::Arc;
-
 use ndarray::Array2;
 
-use super::NuisanceState;
+use super::{ArmNuisanceState, NuisanceState};
 use crate::domain::DatasetSpec;
-use crate::estimate::crossfit::ArmFittedNuisance;
 use crate::estimate::watch::{Watch, WatchSettings};
 use crate::estimate::{EstimateError, FeatureRows, UnitTable};
 use crate::monitor::cache::{ChunkedColumn, Columns, CHUNK_ROWS};
@@ -29,10 +26,10 @@ pub struct RecomputeInput {
     /// The cache's revision (see [`ScoringMemo`](super::ScoringMemo)).
     pub revision: u64,
     pub nuisance: Option<NuisanceState>,
-    /// On a dataset with arms: the fold models of the last recompute's fit,
-    /// for the stream watch's next look (None before the first, or after a
-    /// restart).
-    pub arm_fit: Option<Arc<ArmFittedNuisance>>,
+    /// On a dataset with arms: the nuisance state the last recompute left
+    /// (its fit's fold models also give the stream watch's next look its
+    /// values); None before the first fit.
+    pub arm_nuisance: Option<ArmNuisanceState>,
     /// The most units a refit fits the nuisance models on
     /// (`limits.max_fit_units`); None fits every unit. A fit reproduced at
     /// start-up uses the cap it recorded instead.

@@ -15,10 +15,12 @@
 //! computation, equal to `plumbline score` on the same data.
 //!
 //! `input.rs` holds what the job reads, `nuisance.rs` the refit decision
-//! and the nuisance values, `watch.rs` the stream watch's look at the
+//! and the nuisance values (`arm_nuisance.rs` those of a dataset with
+//! arms, `arms.rs` its boards), `watch.rs` the stream watch's look at the
 //! arrivals, `windows.rs` each window's board, `memo.rs` what is kept for
 //! the next recompute; this file runs them in order.
 
+mod arm_nuisance;
 mod arms;
 mod input;
 mod memo;
@@ -36,6 +38,7 @@ use crate::estimate::scoreboard::{Scoreboard, Settings};
 use crate::estimate::watch::{Signal, Watch};
 use crate::estimate::EstimateError;
 
+pub use arm_nuisance::ArmNuisanceState;
 pub use arms::{ArmWindowResult, ArmsComputed};
 pub use input::RecomputeInput;
 pub use memo::ScoringMemo;

@@ -249,6 +249,23 @@ impl RecomputeInput {
             .arrived(state.scored_outcomes.min(outcomes)..outcomes)
     }
 
+    /// The dataset's own refit rule for a fit on `fit_units` units made at
+    /// `fitted_at_ms`: the outcomes have grown by `recompute.refit_growth`
+    /// since, or `recompute.refit_every_seconds` have passed. Binary and
+    /// arms datasets share it.
+    pub(super) fn refit_due(&self, fit_units: usize, fitted_at_ms: i64) -> Option<RefitReason> {
+        let outcomes = self.columns.outcomes() as f64;
+        if outcomes >= (fit_units as f64) * (1.0 + self.spec.refit_growth) {
+            Some(RefitReason::Growth)
+        } else if self.spec.refit_every_seconds > 0
+            && self.now_ms - fitted_at_ms >= i64::from(self.spec.refit_every_seconds) * 1000
+        {
+            Some(RefitReason::Schedule)
+        } else {
+            None
+        }
+    }
+
     /// Decides whether to refit, then brings nuisance values up to date.
     /// Without a refit this reads only the outcomes that arrived since the
     /// last recompute.
@@ -258,7 +275,6 @@ impl RecomputeInput {
         misfit: bool,
         fixed: &Fixed,
     ) -> Result<(NuisanceState, Option<RefitReason>, usize), EstimateError> {
-        let outcomes = self.columns.outcomes();
         let arrivals = self
             .nuisance
             .as_ref()
@@ -276,19 +292,7 @@ impl RecomputeInput {
             {
                 Some(RefitReason::PropensitySource)
             }
-            Some(s)
-                if (outcomes as f64) >= (s.fit_units as f64) * (1.0 + self.spec.refit_growth) =>
-            {
-                Some(RefitReason::Growth)
-            }
-            Some(s)
-                if self.spec.refit_every_seconds > 0
-                    && self.now_ms - s.fitted_at_ms
-                        >= i64::from(self.spec.refit_every_seconds) * 1000 =>
-            {
-                Some(RefitReason::Schedule)
-            }
-            Some(_) => None,
+            Some(s) => self.refit_due(s.fit_units, s.fitted_at_ms),
         };
         match (reason, &self.nuisance) {
             (None, Some(state)) => {

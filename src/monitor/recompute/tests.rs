@@ -51,7 +51,7 @@ fn input(units: usize, nuisance: Option<NuisanceState>) -> RecomputeInput {
             .collect(),
         revision: 0,
         nuisance,
-        arm_fit: None,
+        arm_nuisance: None,
         max_fit_units: None,
         blend_models: BLEND_MODELS,
         now_ms: 0,
