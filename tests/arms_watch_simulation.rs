@@ -9,10 +9,10 @@
 //! with tau_0 = 0, tau_1 = 0.5 + 0.8 x1, tau_2 = 0.3 - 0.6 x2 + 0.4 x3.
 //! Nuisance models: the multinomial logistic propensity and a ridge
 //! outcome model per arm, cross-fitted on 3,000 units that arrive before
-//! the watch starts, then frozen (the service refits at every recompute;
-//! a frozen fit is the harder case for the overlap and misfit of values,
-//! and refits do not change what the watch may claim, since every value
-//! comes from a fit on earlier units).
+//! the watch starts, then frozen (the service refits when its refit rule or
+//! the misfit check says so; a frozen fit is the harder case for the
+//! overlap and misfit of values, and refits do not change what the watch
+//! may claim, since every value comes from a fit on earlier units).
 //!
 //! Two models predict each contrast:
 //! - **tied**: on both contrasts in the first configuration, each model's
@@ -24,6 +24,11 @@
 //!   1.0, while "steady" keeps noise of sd 0.5: the front-runner should pass
 //!   from fading to steady on mail, and the text contrast (tied) should not
 //!   move.
+//!
+//! - **shifted assignment**: from look 50 the text arm's linear predictor
+//!   rises by 0.3 (its share from 0.428 to 0.490, by Monte Carlo over
+//!   2,000,000 draws; the tolerance is 0.02) while the fit stays frozen:
+//!   the misfit check must ask for a refit, and must not before.
 //!
 //! Replications: 300 streams a configuration. At a true false-alarm rate
 //! of 5% per contrast the binomial standard error is 1.3%, so the bound
@@ -56,10 +61,14 @@ fn tau(k: usize, x: &[f64]) -> f64 {
     }
 }
 
-fn propensity(x: &[f64]) -> [f64; ARMS] {
+/// The text arm's linear predictor rises by this from look [`CHANGE_AT`]
+/// of a shifted stream.
+const SHIFT: f64 = 0.3;
+
+fn propensity(x: &[f64], shift: f64) -> [f64; ARMS] {
     let eta = [
         0.0,
-        0.3 + 0.6 * x[0] - 0.4 * x[1],
+        0.3 + shift + 0.6 * x[0] - 0.4 * x[1],
         -0.2 - 0.5 * x[0] + 0.5 * x[2],
     ];
     let e = eta.map(f64::exp);
@@ -73,7 +82,7 @@ struct Batch {
     y: Vec<f64>,
 }
 
-fn draw(rng: &mut ChaCha8Rng, n: usize) -> Batch {
+fn draw(rng: &mut ChaCha8Rng, n: usize, shift: f64) -> Batch {
     let mut b = Batch {
         x: Vec::with_capacity(3 * n),
         arm: Vec::with_capacity(n),
@@ -85,7 +94,7 @@ fn draw(rng: &mut ChaCha8Rng, n: usize) -> Batch {
             standard_normal(rng),
             standard_normal(rng),
         ];
-        let e = propensity(&x);
+        let e = propensity(&x, shift);
         let u: f64 = rng.gen();
         let w = if u < e[0] {
             0
@@ -124,15 +133,18 @@ fn fit(b: &Batch, seed: u64) -> ArmFittedNuisance {
 
 /// What one stream's watch decided: per contrast (text, mail), the look of
 /// each front-runner change and whom it appointed; the looks of drift
-/// alarms.
+/// alarms; the first look that asked for a refit.
 struct Stream {
     changes: [Vec<(usize, String)>; 2],
     drift: usize,
+    misfit: Option<usize>,
 }
 
-fn run(seed: u64, planted: bool) -> Stream {
+/// One stream: `planted`, the mail model's fading from look CHANGE_AT;
+/// `shifted`, the assignment's shift from then.
+fn run(seed: u64, planted: bool, shifted: bool) -> Stream {
     let mut rng = ChaCha8Rng::seed_from_u64(seed);
-    let burn = draw(&mut rng, BURN_IN);
+    let burn = draw(&mut rng, BURN_IN, 0.0);
     let fitted = fit(&burn, seed);
     let arms: Vec<String> = ["none", "text", "mail"].map(String::from).to_vec();
     let names: Vec<String> = ["x1", "x2", "x3"].map(String::from).to_vec();
@@ -144,9 +156,15 @@ fn run(seed: u64, planted: bool) -> Stream {
     let mut out = Stream {
         changes: [Vec::new(), Vec::new()],
         drift: 0,
+        misfit: None,
     };
     for look in 0..LOOKS {
-        let b = draw(&mut rng, BATCH);
+        let shift = if shifted && look >= CHANGE_AT {
+            SHIFT
+        } else {
+            0.0
+        };
+        let b = draw(&mut rng, BATCH, shift);
         let nuisance = fitted.predict(FeatureRows::dense(&b.x, 3));
         let mut steady: Vec<Vec<f64>> = vec![Vec::new(); 2];
         let mut fading: Vec<Vec<f64>> = vec![Vec::new(); 2];
@@ -195,6 +213,9 @@ fn run(seed: u64, planted: bool) -> Stream {
                     out.changes[1].push((look, new.clone()))
                 }
                 (Signal::PopulationDrift { .. }, "") => out.drift += 1,
+                (Signal::NuisanceMisfit { .. }, "") => {
+                    out.misfit.get_or_insert(look);
+                }
                 _ => {}
             }
         }
@@ -208,7 +229,7 @@ fn run(seed: u64, planted: bool) -> Stream {
 fn tied_models_raise_no_change_on_either_contrast() {
     let streams: Vec<Stream> = (0..STREAMS)
         .into_par_iter()
-        .map(|s| run(7000 + s, false))
+        .map(|s| run(7000 + s, false, false))
         .collect();
     let r = STREAMS as f64;
     let mut failures = Vec::new();
@@ -228,14 +249,52 @@ fn tied_models_raise_no_change_on_either_contrast() {
     if drift > ALPHA + 0.02 {
         failures.push(format!("false drift rate {drift:.3}"));
     }
+    // The fit is well specified (multinomial logit, linear outcomes) and
+    // the world does not move: any refit asked for is a false one.
+    let misfit = streams.iter().filter(|s| s.misfit.is_some()).count() as f64 / r;
+    println!("a fit that still fits: a refit asked for in {misfit:.3} of {STREAMS} streams");
+    if misfit > ALPHA + 0.02 {
+        failures.push(format!("false misfit rate {misfit:.3}"));
+    }
     assert!(failures.is_empty(), "{}", failures.join("; "));
+}
+
+#[test]
+fn a_shifted_assignment_asks_for_a_refit() {
+    let streams: Vec<Stream> = (0..STREAMS)
+        .into_par_iter()
+        .map(|s| run(11000 + s, false, true))
+        .collect();
+    let r = STREAMS as f64;
+    let early = streams
+        .iter()
+        .filter(|s| s.misfit.is_some_and(|l| l < CHANGE_AT))
+        .count() as f64
+        / r;
+    let mut delays: Vec<usize> = streams
+        .iter()
+        .filter_map(|s| s.misfit.filter(|&l| l >= CHANGE_AT).map(|l| l - CHANGE_AT))
+        .collect();
+    let detected = delays.len() as f64 / r;
+    delays.sort_unstable();
+    let median = delays.get(delays.len() / 2).copied();
+    println!(
+        "assignment shifted at look {CHANGE_AT}: a refit asked for in {detected:.3} of \
+         {STREAMS} streams, median delay {median:?} looks of {BATCH} units; before the shift \
+         in {early:.3}"
+    );
+    assert!(detected >= 0.9, "detection rate {detected:.3} < 0.9");
+    assert!(
+        early <= ALPHA + 0.02,
+        "refits asked before the shift in {early:.3}"
+    );
 }
 
 #[test]
 fn a_fading_model_is_replaced_on_its_contrast_only() {
     let streams: Vec<Stream> = (0..STREAMS)
         .into_par_iter()
-        .map(|s| run(9000 + s, true))
+        .map(|s| run(9000 + s, true, false))
         .collect();
     let r = STREAMS as f64;
     // Mail: a change to steady after the planted change.

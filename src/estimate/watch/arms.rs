@@ -5,8 +5,8 @@
 //! arriving units whose e_0 or e_k is below the threshold. Each contrast's
 //! watch makes the binary watch's claims about that contrast, with the
 //! same error rates per check; the features' drift is watched once, for
-//! the dataset. The nuisance misfit check does not run: every recompute of
-//! such a dataset refits.
+//! the dataset, and the nuisance models' misfit once, per arm
+//! (`misfit.rs`): a detection asks for a refit.
 
 use super::drift::feature_columns;
 use super::signal::Signal;
@@ -54,13 +54,15 @@ impl Watch {
         }
         self.looks += 1;
         let mut out = Vec::new();
-        let mut drift = Vec::new();
+        // The dataset's own checks: the features' drift, the fit's misfit.
+        let mut dataset = Vec::new();
         self.check_drift_of(
             &feature_columns(a.features, a.feature_names, n),
             s,
-            &mut drift,
+            &mut dataset,
         );
-        out.extend(drift.into_iter().map(|signal| ArmSignal {
+        self.check_arm_fit(a, s, &mut dataset);
+        out.extend(dataset.into_iter().map(|signal| ArmSignal {
             arm: String::new(),
             signal,
         }));
@@ -101,6 +103,7 @@ impl Watch {
                 signal,
             }));
         }
+        self.remember(a.outcome, a.features, n);
         out
     }
 }

@@ -188,6 +188,13 @@ impl Watch {
         self.baseline_units += units;
     }
 
+    /// The nuisance models of a dataset with arms were refitted: the
+    /// misfit checks restart (its drift checks watch only the features,
+    /// which a refit does not move).
+    pub fn arms_refitted(&mut self) {
+        self.fit = FitWatch::default();
+    }
+
     /// The nuisance models were refitted: the misfit checks restart.
     pub fn refitted(&mut self) {
         self.fit = FitWatch::default();
@@ -217,16 +224,22 @@ impl Watch {
         self.check_drift(a, s, &mut out);
         self.judge_models(&phi, a.models, s, &mut out);
         self.ate.merge(&Moments::of(&phi));
-        self.outcome.merge(&Moments::of(a.outcome));
-        let d = a.features.len().checked_div(n).unwrap_or(0);
+        self.remember(a.outcome, a.features, n);
+        out
+    }
+
+    /// Merges a look's outcomes and features (row-major, `n` rows) into the
+    /// scales the misfit checks use.
+    fn remember(&mut self, outcome: &[f64], features: &[f64], n: usize) {
+        self.outcome.merge(&Moments::of(outcome));
+        let d = features.len().checked_div(n).unwrap_or(0);
         if self.features.len() != d {
             self.features = vec![Moments::default(); d];
         }
         for (j, m) in self.features.iter_mut().enumerate() {
-            let column: Vec<f64> = (0..n).map(|i| a.features[i * d + j]).collect();
+            let column: Vec<f64> = (0..n).map(|i| features[i * d + j]).collect();
             m.merge(&Moments::of(&column));
         }
-        out
     }
 
     /// Folds one contrast's look in (a watch in [`Watch::contrasts`]): the

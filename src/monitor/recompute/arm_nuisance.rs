@@ -1,7 +1,8 @@
 //! The nuisance values a recompute of a dataset with arms scores with, kept
 //! between recomputes as a binary dataset's are (`nuisance.rs`): a full
 //! cross-fitted refit of the multinomial propensity and the per-arm outcome
-//! models when one is due (asked for, the first fit, the outcomes grown by
+//! models when one is due (asked for, the first fit, the stream watch found
+//! the arriving units no longer fit them, the outcomes grown by
 //! `recompute.refit_growth`, `recompute.refit_every_seconds` elapsed), and
 //! between refits the current fold models applied to the units whose
 //! outcomes arrived since, which they never saw. So a recompute between
@@ -190,11 +191,13 @@ impl RecomputeInput {
     pub(super) fn arm_nuisance(
         &self,
         requested: bool,
+        misfit: bool,
         fixed: ArmFixed,
     ) -> Result<(ArmNuisanceState, Option<RefitReason>), EstimateError> {
         let reason = match &self.arm_nuisance {
             _ if requested => Some(RefitReason::Requested),
             None => Some(RefitReason::FirstFit),
+            Some(_) if misfit => Some(RefitReason::Misfit),
             Some(s) => self.refit_due(s.fit_units, s.fitted_at_ms),
         };
         match (reason, &self.arm_nuisance) {

@@ -23,7 +23,7 @@ use super::{settings, RecomputeInput, RecomputeOptions, RefitReason};
 use crate::domain::{IncompleteModel, Window};
 use crate::estimate::arms::{score_arms, ArmModelPredictions, ArmTable, ArmsScoreboard};
 use crate::estimate::crossfit::{ArmFittedNuisance, ArmNuisance, ArmNuisanceReport};
-use crate::estimate::watch::{ArmArrivals, ArmSignal, Watch};
+use crate::estimate::watch::{ArmArrivals, ArmSignal, Signal, Watch};
 use crate::estimate::{EstimateError, FeatureRows};
 
 /// One window's result on a dataset with arms.
@@ -70,13 +70,16 @@ impl RecomputeInput {
     ) -> Result<ArmsComputed, EstimateError> {
         settings(&self.spec).check()?;
         let (signals, fixed) = self.watch_arms()?;
-        let (nuisance, refit) = match self.arm_nuisance(options.refit, fixed) {
+        let misfit = signals
+            .iter()
+            .any(|s| matches!(s.signal, Signal::NuisanceMisfit { .. }));
+        let (nuisance, refit) = match self.arm_nuisance(options.refit, misfit, fixed) {
             Ok((state, refit)) => (Ok(state), refit),
             Err(e) => (Err(e.to_string()), None),
         };
-        // No `Watch::refitted` here: the watch of a dataset with arms
-        // checks neither the fit nor the fitted propensities' drift, only
-        // the features', which a refit does not move.
+        if refit.is_some() {
+            self.watch.arms_refitted();
+        }
         let windows = self.arm_windows(nuisance.as_ref().map_err(Clone::clone));
         Ok(ArmsComputed {
             windows,
