@@ -1419,3 +1419,121 @@ fn a_three_arm_dataset_keeps_its_fit_between_refits_and_across_a_restart() {
         .collect();
     assert_eq!(reasons, ["first_fit", "requested"], "{events}");
 }
+
+/// The assignment switches from an even draw of the three arms to one
+/// driven by x1 (text above zero, mail below), with no logged
+/// probabilities: the fitted generalized propensity goes stale. The
+/// dataset's watch finds the misfit on the units scored with it and the
+/// same recompute refits, as a binary dataset's does
+/// (tests/service.rs, `a_policy_switch_is_found_and_refits`); nothing is
+/// raised before the switch.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn an_arms_policy_switch_is_found_and_refits() {
+    use common::service::{
+        all_events, clients, continuous_spec, recompute, register, send_outcomes, send_predictions,
+        send_units, server,
+    };
+    use plumbline::synth::standard_normal;
+    use rand::Rng;
+    let dir = TempDir::new("arms-switch");
+    let srv = server(&dir).await;
+    let mut c = clients(srv.grpc_addr).await;
+    let name = "switch";
+    c.datasets
+        .create_dataset(pb::CreateDatasetRequest {
+            spec: Some(pb::DatasetSpec {
+                arms: ARMS.map(String::from).to_vec(),
+                ..continuous_spec(name, 3)
+            }),
+        })
+        .await
+        .expect("create");
+    register(&mut c, name, "m").await;
+    let mut rng = ChaCha8Rng::seed_from_u64(23);
+    let switch_at = 4;
+    let mut refitted = Vec::new();
+    for k in 0..7 {
+        let (mut units, mut preds, mut outcomes) = (Vec::new(), Vec::new(), Vec::new());
+        for i in 0..1000 {
+            let key = format!("c{k}-{i}");
+            let x: Vec<f64> = (0..3).map(|_| standard_normal(&mut rng)).collect();
+            let eta = if k >= switch_at {
+                [0.0, 1.5 * x[0], -1.5 * x[0]]
+            } else {
+                [0.0; 3]
+            };
+            let total: f64 = eta.iter().map(|v| v.exp()).sum();
+            let u = rng.gen::<f64>() * total;
+            let arm = if u < 1.0 {
+                0
+            } else if u < 1.0 + eta[1].exp() {
+                1
+            } else {
+                2
+            };
+            let tau = [0.0, 1.0 + x[1], 0.5 - x[2]];
+            units.push(pb::UnitRow {
+                key: key.clone(),
+                features: x.clone(),
+                cohort: format!("c{k}"),
+                arm: ARMS[arm].into(),
+                ..Default::default()
+            });
+            for (a, t) in [(1, tau[1]), (2, tau[2])] {
+                preds.push(pb::PredictionRow {
+                    model: "m".into(),
+                    unit_key: key.clone(),
+                    effect: t,
+                    predicted_at_ms: 0,
+                    arm: ARMS[a].into(),
+                });
+            }
+            outcomes.push(pb::OutcomeRow {
+                unit_key: key,
+                value: x[0] + tau[arm] + standard_normal(&mut rng),
+                observed_at_ms: 0,
+            });
+        }
+        send_units(&mut c, name, units).await;
+        send_predictions(&mut c, name, preds).await;
+        send_outcomes(&mut c, name, outcomes).await;
+        refitted.push(recompute(&mut c, name, false).await.refitted);
+    }
+    let events = all_events(&mut c, name).await;
+    let misfits: Vec<&pb::Event> = events
+        .iter()
+        .filter(|e| e.kind == "nuisance_misfit")
+        .collect();
+    println!("refitted by recompute: {refitted:?}; misfit events: {misfits:#?}");
+    // Growth refits (50%) come after cohorts 0 to 2; none is due at 3.
+    assert_eq!(&refitted[..switch_at], &[true, true, true, false]);
+    assert!(!misfits.is_empty());
+    assert!(
+        misfits.iter().all(|m| m.snapshot_id > switch_at as u64),
+        "{misfits:?}"
+    );
+    let details: Value = serde_json::from_str(&misfits[0].details_json).expect("json");
+    assert!(
+        details["component"]
+            .as_str()
+            .is_some_and(|c| c.starts_with("propensity")),
+        "{details}"
+    );
+    // Found within two cohorts of the switch; that recompute refits with
+    // the misfit as its reason.
+    let found = refitted
+        .iter()
+        .enumerate()
+        .skip(switch_at)
+        .find(|(_, r)| **r)
+        .map(|(k, _)| k)
+        .expect("a refit after the switch");
+    assert!(found <= switch_at + 1, "refit only after cohort {found}");
+    let reasons: Vec<Value> = events
+        .iter()
+        .filter(|e| e.kind == "nuisance_refit" && e.snapshot_id == misfits[0].snapshot_id)
+        .map(|e| serde_json::from_str::<Value>(&e.details_json).expect("json")["reason"].clone())
+        .collect();
+    assert_eq!(reasons, ["misfit"]);
+    srv.stop().await.expect("stop");
+}
