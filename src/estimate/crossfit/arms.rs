@@ -16,7 +16,7 @@ use super::fitting::{out_of_fold, Component};
 use super::folds::{assign_arm_fit, Folds};
 use super::report::ComponentReport;
 use super::settings::NuisanceSettings;
-use super::{spread_to_every_unit, SPREAD_BLOCK_ROWS};
+use super::{spread_columns, spread_to_every_unit};
 use crate::estimate::data::{FeatureRows, OutcomeKind};
 use crate::estimate::error::{Degenerate, EstimateError};
 use crate::estimate::learner::{
@@ -306,39 +306,10 @@ fn spread_probabilities(
     models: &[Box<dyn ArmFitted>],
     rows: &SharedFeatures<'_>,
 ) -> Vec<Vec<f64>> {
-    let n = fold_of_unit.len();
     let arms = fitted.len();
-    let mut in_sample = vec![false; n];
-    let mut all: Vec<Vec<f64>> = fitted
-        .into_iter()
-        .map(|column| {
-            let mut spread = vec![f64::NAN; n];
-            for (v, &i) in column.into_iter().zip(sample) {
-                spread[i] = v;
-            }
-            spread
-        })
-        .collect();
-    for &i in sample {
-        in_sample[i] = true;
-    }
-    for (f, model) in models.iter().enumerate() {
-        let rest: Vec<usize> = (0..n)
-            .filter(|&i| !in_sample[i] && fold_of_unit[i] == f)
-            .collect();
-        let blocks: Vec<Vec<Vec<f64>>> = rest
-            .par_chunks(SPREAD_BLOCK_ROWS)
-            .map(|block| model.probabilities_rows(rows, block, arms))
-            .collect();
-        for (block, columns) in rest.chunks(SPREAD_BLOCK_ROWS).zip(blocks) {
-            for (column, values) in all.iter_mut().zip(columns) {
-                for (&i, v) in block.iter().zip(values) {
-                    column[i] = v;
-                }
-            }
-        }
-    }
-    all
+    spread_columns(fitted, sample, fold_of_unit, models.len(), |f, block| {
+        models[f].probabilities_rows(rows, block, arms)
+    })
 }
 
 /// Mean -log p[k][i] over the units i of each arm k (0 for an arm with no

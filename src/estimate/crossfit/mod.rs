@@ -345,23 +345,58 @@ pub(super) fn spread_to_every_unit(
     models: &[Box<dyn Fitted>],
     rows: &SharedFeatures<'_>,
 ) -> Vec<f64> {
+    spread_columns(
+        vec![fitted],
+        sample,
+        fold_of_unit,
+        models.len(),
+        |f, block| vec![models[f].predict_rows(rows, block)],
+    )
+    .pop()
+    .unwrap_or_default()
+}
+
+/// The shared part of spreading sample values to every unit, for a model
+/// with one or several output columns: `fitted[c][j]` is column c's value
+/// of sample unit `sample[j]`; every other unit gets, in each column,
+/// `predict(fold, block)`'s value from its own fold's model, predicted in
+/// blocks of [`SPREAD_BLOCK_ROWS`] on every worker thread.
+pub(super) fn spread_columns(
+    fitted: Vec<Vec<f64>>,
+    sample: &[usize],
+    fold_of_unit: &[usize],
+    folds: usize,
+    predict: impl Fn(usize, &[usize]) -> Vec<Vec<f64>> + Sync,
+) -> Vec<Vec<f64>> {
     let n = fold_of_unit.len();
-    let mut all = vec![f64::NAN; n];
+    let mut all: Vec<Vec<f64>> = fitted
+        .into_iter()
+        .map(|column| {
+            let mut spread = vec![f64::NAN; n];
+            for (v, &i) in column.into_iter().zip(sample) {
+                spread[i] = v;
+            }
+            spread
+        })
+        .collect();
     let mut in_sample = vec![false; n];
-    for (v, &i) in fitted.into_iter().zip(sample) {
-        all[i] = v;
+    for &i in sample {
         in_sample[i] = true;
     }
-    for (f, model) in models.iter().enumerate() {
+    for f in 0..folds {
         let rest: Vec<usize> = (0..n)
             .filter(|&i| !in_sample[i] && fold_of_unit[i] == f)
             .collect();
-        let predicted: Vec<Vec<f64>> = rest
+        let blocks: Vec<Vec<Vec<f64>>> = rest
             .par_chunks(SPREAD_BLOCK_ROWS)
-            .map(|block| model.predict_rows(rows, block))
+            .map(|block| predict(f, block))
             .collect();
-        for (&i, v) in rest.iter().zip(predicted.into_iter().flatten()) {
-            all[i] = v;
+        for (block, columns) in rest.chunks(SPREAD_BLOCK_ROWS).zip(blocks) {
+            for (column, values) in all.iter_mut().zip(columns) {
+                for (&i, v) in block.iter().zip(values) {
+                    column[i] = v;
+                }
+            }
         }
     }
     all
