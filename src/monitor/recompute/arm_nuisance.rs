@@ -166,7 +166,24 @@ impl RecomputeInput {
             }
         }
         if let Some(values) = &fixed.values {
-            next.write(&fixed.units, values);
+            // Only units without values: a fitted unit keeps its own
+            // fold's out-of-fold values (the watch never looks at one,
+            // but a value the fit gave is never rewritten).
+            let fresh: Vec<usize> = (0..fixed.units.len())
+                .filter(|&i| !next.scored(fixed.units[i]))
+                .collect();
+            let pick = |columns: &[Vec<f64>]| -> Vec<Vec<f64>> {
+                columns
+                    .iter()
+                    .map(|c| fresh.iter().map(|&i| c[i]).collect())
+                    .collect()
+            };
+            let units: Vec<usize> = fresh.iter().map(|&i| fixed.units[i]).collect();
+            let values = ArmNuisance {
+                propensity: pick(&values.propensity),
+                outcome: pick(&values.outcome),
+            };
+            next.write(&units, &values);
         }
         let new: Vec<usize> = self
             .columns
