@@ -1349,6 +1349,14 @@ fn a_three_arm_dataset_keeps_its_fit_between_refits_and_across_a_restart() {
         "{r}"
     );
     let fitted = call_json(&server, &["scoreboard", "--dataset", "offers"]);
+    let cohort = |server: &str, name: &str| {
+        let window = format!("cohort:{name}");
+        call_json(
+            server,
+            &["scoreboard", "--dataset", "offers", "--window", &window],
+        )
+    };
+    let first_cohort = cohort(&server, "first");
     assert_json_close(
         &fitted["scoreboard"],
         &offline(&offline_first, &preds_first, "1000"),
@@ -1380,6 +1388,20 @@ fn a_three_arm_dataset_keeps_its_fit_between_refits_and_across_a_restart() {
     assert_eq!(
         (&report["fitted_units"], &report["units"]),
         (&1000.into(), &1100.into())
+    );
+    // The new outcomes are all in cohort "second": "first" keeps its
+    // board, snapshot included; "second" is scored again.
+    assert_eq!(
+        cohort(&server, "first"),
+        first_cohort,
+        "an unchanged cohort"
+    );
+    let second = cohort(&server, "second");
+    assert_eq!(
+        (&second["snapshot_id"], &second["scoreboard"]["n_units"]),
+        (&extended["snapshot_id"], &600.into()),
+        "{}",
+        second["scoreboard"]
     );
 
     // A restart without the cap: the recorded fit is drawn again under

@@ -47,8 +47,16 @@ impl Monitor {
             .map_err(|e| MonitorError::Internal(format!("stream watch: {e}")))?;
         let snapshot_id = self.store.next_snapshot_id().await?;
         let mut boards = BTreeMap::new();
+        let mut changed = Vec::new();
         let mut scores = Vec::new();
+        // A window the recompute did not change keeps its published board
+        // (and snapshot id) and is not stored again, as on a binary dataset.
+        let published = h.boards();
         for w in computed.windows {
+            if let Some(kept) = w.reused.then(|| published.get(&w.key)).flatten() {
+                boards.insert(w.key, kept.clone());
+                continue;
+            }
             let parts = board::BoardParts {
                 dataset: &h.name,
                 window: w.window.clone(),
@@ -67,9 +75,9 @@ impl Monitor {
                 c.alerts = computed.watch.contrasts.get(&c.arm).map(board::alert_view);
                 scores.extend(contrast_score_rows(&w.key, c));
             }
+            changed.push(b.clone());
             boards.insert(w.key, b);
         }
-        let changed: Vec<_> = boards.values().cloned().collect();
         let millis = started.elapsed().as_secs_f64() * 1000.0;
         self.store
             .insert_snapshot(&NewSnapshot {

@@ -18,6 +18,7 @@
 
 use std::sync::Arc;
 
+use super::arms::ArmMemo;
 use super::{settings, RecomputeInput, RefitReason};
 use crate::estimate::arms::ArmTable;
 use crate::estimate::crossfit::{
@@ -47,6 +48,8 @@ pub struct ArmNuisanceState {
     values: Vec<ChunkedColumn<f64>>,
     /// Every unit among the first this many outcomes to arrive has values.
     pub scored_outcomes: usize,
+    /// What the last recompute under this fit keeps for the next one.
+    pub memo: Arc<ArmMemo>,
 }
 
 impl ArmNuisanceState {
@@ -135,6 +138,7 @@ impl RecomputeInput {
                 .map(|_| ChunkedColumn::filled(self.columns.units(), f64::NAN))
                 .collect(),
             scored_outcomes: scorable.len(),
+            memo: Arc::default(),
         };
         state.write(scorable, &values);
         Ok(state)

@@ -5,9 +5,10 @@
 //! when the dataset's refit rule says one is due, otherwise the kept fit's
 //! fold models applied to the new units. Every window is scored with its
 //! units' values (each from models that did not see the unit), so a window
-//! needs no fit of its own; the scoring of the boards itself is from
-//! scratch on every recompute (the binary path's merged sums and kept
-//! windows do not apply here yet).
+//! needs no fit of its own. Between refits a cohort window whose units did
+//! not change keeps its result ([`ArmMemo`]), as on a binary dataset; the
+//! cumulative and recent windows are scored from scratch on every
+//! recompute (the binary path's merged sums do not apply here yet).
 //!
 //! The stream watch looks first, at the units whose outcomes arrived since
 //! its last look, with values from the kept fit's fold models, which never
@@ -16,6 +17,7 @@
 //! the units the watch has already seen, which are all earlier than the
 //! arrivals, so every watched value still depends on the past alone.
 
+use std::collections::HashMap;
 use std::sync::Arc;
 
 use super::arm_nuisance::{ArmFixed, ArmNuisanceState};
@@ -27,6 +29,7 @@ use crate::estimate::watch::{ArmArrivals, ArmSignal, Signal, Watch};
 use crate::estimate::{EstimateError, FeatureRows};
 
 /// One window's result on a dataset with arms.
+#[derive(Clone)]
 pub struct ArmWindowResult {
     pub key: String,
     pub window: Window,
@@ -36,6 +39,22 @@ pub struct ArmWindowResult {
     /// column).
     pub units: usize,
     pub incomplete: Vec<IncompleteModel>,
+    /// Kept from the previous recompute: the window's units did not change.
+    pub reused: bool,
+}
+
+/// What a recompute of a dataset with arms keeps for the next one under
+/// the same fit: each cohort window's result with the number of units it
+/// was scored on (outcomes are only ever added and a unit's values never
+/// change under one fit, so an equal count is an equal board). Valid only
+/// while the cache revision (bumped when a unit with an outcome gets a
+/// prediction) and the active models are the ones it was computed under;
+/// a refit starts a new one.
+#[derive(Clone, Default)]
+pub struct ArmMemo {
+    revision: u64,
+    models: Vec<String>,
+    cohorts: HashMap<String, (usize, ArmWindowResult)>,
 }
 
 /// A recompute of a dataset with arms.
@@ -80,12 +99,32 @@ impl RecomputeInput {
         if refit.is_some() {
             self.watch.arms_refitted();
         }
-        let windows = self.arm_windows(nuisance.as_ref().map_err(Clone::clone));
+        let names: Vec<String> = self.arm_models.iter().map(|(n, _)| n.clone()).collect();
+        let previous = match &nuisance {
+            Ok(state)
+                if refit.is_none()
+                    && state.memo.revision == self.revision
+                    && state.memo.models == names =>
+            {
+                Some(Arc::clone(&state.memo))
+            }
+            _ => None,
+        };
+        let (windows, cohorts) =
+            self.arm_windows(nuisance.as_ref().map_err(Clone::clone), previous.as_deref());
+        let nuisance = nuisance.ok().map(|mut state| {
+            state.memo = Arc::new(ArmMemo {
+                revision: self.revision,
+                models: names,
+                cohorts,
+            });
+            state
+        });
         Ok(ArmsComputed {
             windows,
             watch: self.watch,
             signals,
-            nuisance: nuisance.ok(),
+            nuisance,
             refit,
         })
     }
@@ -171,23 +210,36 @@ impl RecomputeInput {
     }
 
     /// Every window's boards, from `nuisance` (or, when the units could not
-    /// be fitted, why: the state of every window).
-    fn arm_windows(&self, nuisance: Result<&ArmNuisanceState, String>) -> Vec<ArmWindowResult> {
+    /// be fitted, why: the state of every window), with each cohort
+    /// window's result and unit count for the next recompute's memo. A
+    /// cohort window whose units did not change since `previous` is not
+    /// scored again.
+    fn arm_windows(
+        &self,
+        nuisance: Result<&ArmNuisanceState, String>,
+        previous: Option<&ArmMemo>,
+    ) -> (
+        Vec<ArmWindowResult>,
+        HashMap<String, (usize, ArmWindowResult)>,
+    ) {
         let scorable = self.scorable();
+        let mut kept = HashMap::new();
         let nuisance = match nuisance {
             Ok(n) => n,
             Err(state) => {
                 let chosen = self.choose_columns(&scorable);
-                return vec![
+                let windows = vec![
                     ArmWindowResult {
                         key: Window::Cumulative.key(),
                         window: Window::Cumulative,
                         board: Err(state.clone()),
                         units: chosen.common.len(),
                         incomplete: chosen.incomplete,
+                        reused: false,
                     },
                     self.unscored(Window::Recent, state),
                 ];
+                return (windows, kept);
             }
         };
         let mut out = vec![
@@ -201,11 +253,30 @@ impl RecomputeInput {
             }
         }
         for (name, units) in self.cohort_names.iter().zip(&cohorts) {
-            if !units.is_empty() {
-                out.push(self.window(Window::Cohort(name.clone()), units, nuisance));
+            if units.is_empty() {
+                continue;
             }
+            let window = Window::Cohort(name.clone());
+            let result = match previous.and_then(|p| p.cohorts.get(&window.key())) {
+                Some((count, r)) if *count == units.len() => ArmWindowResult {
+                    reused: true,
+                    ..r.clone()
+                },
+                _ => self.window(window, units, nuisance),
+            };
+            kept.insert(
+                result.key.clone(),
+                (
+                    units.len(),
+                    ArmWindowResult {
+                        reused: false,
+                        ..result.clone()
+                    },
+                ),
+            );
+            out.push(result);
         }
-        out
+        (out, kept)
     }
 
     fn unscored(&self, window: Window, state: String) -> ArmWindowResult {
@@ -215,6 +286,7 @@ impl RecomputeInput {
             board: Err(state),
             units: 0,
             incomplete: Vec::new(),
+            reused: false,
         }
     }
 
@@ -241,6 +313,7 @@ impl RecomputeInput {
             board: board.map_err(|e| e.to_string()),
             units: chosen.common.len(),
             incomplete: chosen.incomplete,
+            reused: false,
         }
     }
 
