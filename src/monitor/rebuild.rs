@@ -5,7 +5,7 @@ use tracing::{info, info_span, Instrument};
 
 use super::recompute::{recorded_max_fit_units, NuisanceState};
 use super::{now_ms, Boards, DatasetState, Monitor, MonitorError, MonitorResult};
-use crate::domain::StoredDataset;
+use crate::domain::{StoredDataset, Window};
 use crate::metrics::DatasetLabels;
 use crate::store::StoreError;
 
@@ -27,6 +27,10 @@ impl Monitor {
             for board in self.store.latest_boards(stored.id).await? {
                 latest.insert(board.window.key(), board);
             }
+            // A window of the units sent without a cohort, which no request
+            // can name, was scored and stored before they were left out of
+            // cohort windows: it is not served.
+            latest.remove(&Window::Cohort(String::new()).key());
             if !owner {
                 info!(
                     units = state.cache.units(),

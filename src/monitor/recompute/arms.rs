@@ -253,7 +253,8 @@ impl RecomputeInput {
             }
         }
         for (name, units) in self.cohort_names.iter().zip(&cohorts) {
-            if units.is_empty() {
+            // Units sent without a cohort are in no cohort window.
+            if units.is_empty() || name.is_empty() {
                 continue;
             }
             let window = Window::Cohort(name.clone());

@@ -151,7 +151,12 @@ impl RecomputeInput {
             Window::Recent,
         ));
         for (c, units) in cohort_index.units.iter().enumerate() {
-            let Some(name) = self.cohort_names.get(c).filter(|_| !units.is_empty()) else {
+            // Units sent without a cohort are in no cohort window.
+            let Some(name) = self
+                .cohort_names
+                .get(c)
+                .filter(|name| !units.is_empty() && !name.is_empty())
+            else {
                 continue;
             };
             let key = format!("cohort:{name}");

@@ -359,3 +359,19 @@ fn the_blend_takes_the_leading_models_up_to_the_limit() {
     blended.sort_unstable();
     assert_eq!(blended, leading);
 }
+
+/// Units sent without a cohort (cohort name "") are in the cumulative and
+/// recent windows and in no cohort window: none that no request could name
+/// is scored or stored.
+#[test]
+fn units_without_a_cohort_are_in_no_cohort_window() {
+    let mut unlabelled = input(3000, None);
+    unlabelled.cohort_names[0] = String::new();
+    let computed = unlabelled
+        .compute(RecomputeOptions::default())
+        .expect("fit");
+    let keys: Vec<&str> = computed.windows.iter().map(|w| w.key.as_str()).collect();
+    assert_eq!(keys, ["cumulative", "recent", "cohort:c1", "cohort:c2"]);
+    let cumulative = board(&computed, "cumulative");
+    assert_eq!(cumulative["n_units"], 3000);
+}
