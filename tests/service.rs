@@ -721,48 +721,7 @@ async fn a_policy_switch_is_found_and_refits() {
         send_outcomes(&mut c, name, outcomes).await;
         refitted.push(recompute(&mut c, name, false).await.refitted);
     }
-    let events = all_events(&mut c, name).await;
-    let misfits: Vec<&pb::Event> = events
-        .iter()
-        .filter(|e| e.kind == "nuisance_misfit")
-        .collect();
-    println!("refitted by recompute: {refitted:?}; misfit events: {misfits:#?}");
-    // Growth refits (50%) come after cohorts 0 to 2; none is due at 3.
-    assert_eq!(&refitted[..switch_at], &[true, true, true, false]);
-    // A refit on the whole history blends the two policies, so misfits may
-    // recur until the new policy's units dominate; none comes before the
-    // switch (snapshots are numbered from 1, one per recompute).
-    assert!(!misfits.is_empty());
-    assert!(
-        misfits.iter().all(|m| m.snapshot_id > switch_at as u64),
-        "{misfits:?}"
-    );
-    let details: serde_json::Value = serde_json::from_str(&misfits[0].details_json).expect("json");
-    assert!(
-        details["component"]
-            .as_str()
-            .is_some_and(|c| c.starts_with("propensity")),
-        "{details}"
-    );
-    let evidence = &details["evidence"];
-    assert!(evidence["log_statistic"].as_f64() >= evidence["log_threshold"].as_f64());
-    // The misfit is found within two cohorts of the switch, and that same
-    // recompute refits with the misfit as its reason.
-    let found = refitted
-        .iter()
-        .enumerate()
-        .skip(switch_at)
-        .find(|(_, r)| **r)
-        .map(|(k, _)| k)
-        .expect("a refit after the switch");
-    assert!(found <= switch_at + 1, "refit only after cohort {found}");
-    let refit_events: Vec<serde_json::Value> = events
-        .iter()
-        .filter(|e| e.kind == "nuisance_refit" && e.snapshot_id == misfits[0].snapshot_id)
-        .map(|e| serde_json::from_str(&e.details_json).expect("json"))
-        .collect();
-    assert_eq!(refit_events.len(), 1);
-    assert_eq!(refit_events[0]["reason"], "misfit");
+    assert_switch_found(&mut c, name, &refitted, switch_at).await;
     srv.stop().await.expect("stop");
 }
 

@@ -1452,8 +1452,8 @@ fn a_three_arm_dataset_keeps_its_fit_between_refits_and_across_a_restart() {
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn an_arms_policy_switch_is_found_and_refits() {
     use common::service::{
-        all_events, clients, continuous_spec, recompute, register, send_outcomes, send_predictions,
-        send_units, server,
+        assert_switch_found, clients, continuous_spec, recompute, register, send_outcomes,
+        send_predictions, send_units, server,
     };
     use plumbline::synth::standard_normal;
     use rand::Rng;
@@ -1521,41 +1521,6 @@ async fn an_arms_policy_switch_is_found_and_refits() {
         send_outcomes(&mut c, name, outcomes).await;
         refitted.push(recompute(&mut c, name, false).await.refitted);
     }
-    let events = all_events(&mut c, name).await;
-    let misfits: Vec<&pb::Event> = events
-        .iter()
-        .filter(|e| e.kind == "nuisance_misfit")
-        .collect();
-    println!("refitted by recompute: {refitted:?}; misfit events: {misfits:#?}");
-    // Growth refits (50%) come after cohorts 0 to 2; none is due at 3.
-    assert_eq!(&refitted[..switch_at], &[true, true, true, false]);
-    assert!(!misfits.is_empty());
-    assert!(
-        misfits.iter().all(|m| m.snapshot_id > switch_at as u64),
-        "{misfits:?}"
-    );
-    let details: Value = serde_json::from_str(&misfits[0].details_json).expect("json");
-    assert!(
-        details["component"]
-            .as_str()
-            .is_some_and(|c| c.starts_with("propensity")),
-        "{details}"
-    );
-    // Found within two cohorts of the switch; that recompute refits with
-    // the misfit as its reason.
-    let found = refitted
-        .iter()
-        .enumerate()
-        .skip(switch_at)
-        .find(|(_, r)| **r)
-        .map(|(k, _)| k)
-        .expect("a refit after the switch");
-    assert!(found <= switch_at + 1, "refit only after cohort {found}");
-    let reasons: Vec<Value> = events
-        .iter()
-        .filter(|e| e.kind == "nuisance_refit" && e.snapshot_id == misfits[0].snapshot_id)
-        .map(|e| serde_json::from_str::<Value>(&e.details_json).expect("json")["reason"].clone())
-        .collect();
-    assert_eq!(reasons, ["misfit"]);
+    assert_switch_found(&mut c, name, &refitted, switch_at).await;
     srv.stop().await.expect("stop");
 }

@@ -470,3 +470,58 @@ pub async fn all_events(c: &mut Clients, dataset: &str) -> Vec<pb::Event> {
         out.extend(page);
     }
 }
+
+/// What a policy switch at cohort `switch_at` must leave, one recompute per
+/// cohort: growth refits after cohorts 0 to 2 and none at 3; a
+/// `nuisance_misfit` event after the switch and none before, naming a
+/// propensity check with its evidence; a refit within two cohorts of the
+/// switch, whose `nuisance_refit` event has the misfit as its reason.
+pub async fn assert_switch_found(
+    c: &mut Clients,
+    dataset: &str,
+    refitted: &[bool],
+    switch_at: usize,
+) {
+    let events = all_events(c, dataset).await;
+    let misfits: Vec<&pb::Event> = events
+        .iter()
+        .filter(|e| e.kind == "nuisance_misfit")
+        .collect();
+    println!("refitted by recompute: {refitted:?}; misfit events: {misfits:#?}");
+    // Growth refits (50%) come after cohorts 0 to 2; none is due at 3.
+    assert_eq!(&refitted[..switch_at], &[true, true, true, false]);
+    // A refit on the whole history blends the two policies, so misfits may
+    // recur until the new policy's units dominate; none comes before the
+    // switch (snapshots are numbered from 1, one per recompute).
+    assert!(!misfits.is_empty());
+    assert!(
+        misfits.iter().all(|m| m.snapshot_id > switch_at as u64),
+        "{misfits:?}"
+    );
+    let details: serde_json::Value = serde_json::from_str(&misfits[0].details_json).expect("json");
+    assert!(
+        details["component"]
+            .as_str()
+            .is_some_and(|c| c.starts_with("propensity")),
+        "{details}"
+    );
+    let evidence = &details["evidence"];
+    assert!(evidence["log_statistic"].as_f64() >= evidence["log_threshold"].as_f64());
+    let found = refitted
+        .iter()
+        .enumerate()
+        .skip(switch_at)
+        .find(|(_, r)| **r)
+        .map(|(k, _)| k)
+        .expect("a refit after the switch");
+    assert!(found <= switch_at + 1, "refit only after cohort {found}");
+    let reasons: Vec<serde_json::Value> = events
+        .iter()
+        .filter(|e| e.kind == "nuisance_refit" && e.snapshot_id == misfits[0].snapshot_id)
+        .map(|e| {
+            serde_json::from_str::<serde_json::Value>(&e.details_json).expect("json")["reason"]
+                .clone()
+        })
+        .collect();
+    assert_eq!(reasons, ["misfit"]);
+}
