@@ -74,6 +74,31 @@ fn register_models(server: &str) {
     assert_eq!(code, Some(0), "{err}");
 }
 
+/// Creates dataset `offers` on `server` (features x1 and x2, arms none,
+/// text and mail, continuous outcomes, seed 7, and the `extra` flags) and
+/// registers the three models the files predict for.
+fn create_offers(server: &str, extra: &[&str]) {
+    let args: Vec<&str> = [
+        "dataset",
+        "create",
+        "offers",
+        "--features",
+        "x1,x2",
+        "--arms",
+        "none,text,mail",
+        "--outcome-kind",
+        "continuous",
+        "--seed",
+        "7",
+    ]
+    .into_iter()
+    .chain(extra.iter().copied())
+    .chain(["--server", server, "--format", "json"])
+    .collect();
+    json(&args);
+    register_models(server);
+}
+
 /// 1,200 units in two cohorts, arms drawn by a softmax of x1 (so the
 /// propensity must be modelled), effects of text 1 + x1 and of mail
 /// 0.5 - x2; "good" predicts the true effects, "flat" 0.2 on both arms,
@@ -1095,20 +1120,7 @@ fn a_three_arm_dataset_under_a_refit_cap_fits_a_sample_as_score_does() {
             .collect();
         json(&v)
     };
-    call_json(&[
-        "dataset",
-        "create",
-        "offers",
-        "--features",
-        "x1,x2",
-        "--arms",
-        "none,text,mail",
-        "--outcome-kind",
-        "continuous",
-        "--seed",
-        "7",
-    ]);
-    register_models(&server);
+    create_offers(&server, &[]);
     for (kind, file) in [
         ("units", &units),
         ("predictions", &preds),
@@ -1312,20 +1324,9 @@ fn a_three_arm_dataset_keeps_its_fit_between_refits_and_across_a_restart() {
     };
 
     let server = format!("http://{}", srv.grpc);
-    call_json(
+    create_offers(
         &server,
         &[
-            "dataset",
-            "create",
-            "offers",
-            "--features",
-            "x1,x2",
-            "--arms",
-            "none,text,mail",
-            "--outcome-kind",
-            "continuous",
-            "--seed",
-            "7",
             "--refit-growth",
             "0.5",
             "--recompute-every-outcomes",
@@ -1334,7 +1335,6 @@ fn a_three_arm_dataset_keeps_its_fit_between_refits_and_across_a_restart() {
             "3600",
         ],
     );
-    register_models(&server);
     for (kind, file) in [
         ("units", &units),
         ("predictions", &preds),

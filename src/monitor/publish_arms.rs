@@ -1,7 +1,8 @@
 //! A recompute of a dataset with arms, published: the job (the nuisance
 //! values, refitted when due, and every window's boards, see
 //! `recompute/arms.rs`) runs on the blocking pool, its fit (when it
-//! refitted) and snapshot are stored and its boards installed. Every contrast's models get history rows
+//! refitted) and snapshot are stored and its boards installed. Every
+//! contrast's models get history rows
 //! (labelled by the contrast's arm, which `GetHistory` reads with `arm`)
 //! and every contrast's board its series (`monitor/export.rs`, labelled
 //! `contrast`). The stream watch looked first (one watch per contrast,

@@ -188,16 +188,16 @@ impl Watch {
         self.baseline_units += units;
     }
 
-    /// The nuisance models of a dataset with arms were refitted: the
-    /// misfit checks restart (its drift checks watch only the features,
-    /// which a refit does not move).
-    pub fn arms_refitted(&mut self) {
+    /// The misfit checks restart, after any refit. It is all a refit of a
+    /// dataset with arms changes here: that watch's drift checks watch
+    /// only the features, which a refit does not move.
+    pub fn restart_fit_checks(&mut self) {
         self.fit = FitWatch::default();
     }
 
     /// The nuisance models were refitted: the misfit checks restart.
     pub fn refitted(&mut self) {
-        self.fit = FitWatch::default();
+        self.restart_fit_checks();
         // A new propensity model moves the fitted propensities by itself:
         // their drift reference starts again from the new model's values.
         if let Some(r) = self.drift.reference.last_mut() {

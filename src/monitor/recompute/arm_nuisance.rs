@@ -75,12 +75,17 @@ impl ArmNuisanceState {
         }
     }
 
-    /// Writes `n`'s values of unit `units[i]` for every i.
-    fn write(&mut self, units: &[usize], n: &ArmNuisance) {
+    /// Writes `n`'s values of unit `units[i]` for every i that has none
+    /// yet: a value once given (a fitted unit's out-of-fold one) is never
+    /// rewritten.
+    fn fill(&mut self, units: &[usize], n: &ArmNuisance) {
+        let open: Vec<bool> = units.iter().map(|&u| !self.scored(u)).collect();
         let columns = n.propensity.iter().chain(&n.outcome);
         for (to, from) in self.values.iter_mut().zip(columns) {
-            for (&u, &v) in units.iter().zip(from) {
-                to[u] = v;
+            for ((&u, &v), &open) in units.iter().zip(from).zip(&open) {
+                if open {
+                    to[u] = v;
+                }
             }
         }
     }
@@ -140,7 +145,7 @@ impl RecomputeInput {
             scored_outcomes: scorable.len(),
             memo: Arc::default(),
         };
-        state.write(scorable, &values);
+        state.fill(scorable, &values);
         Ok(state)
     }
 
@@ -170,24 +175,7 @@ impl RecomputeInput {
             }
         }
         if let Some(values) = &fixed.values {
-            // Only units without values: a fitted unit keeps its own
-            // fold's out-of-fold values (the watch never looks at one,
-            // but a value the fit gave is never rewritten).
-            let fresh: Vec<usize> = (0..fixed.units.len())
-                .filter(|&i| !next.scored(fixed.units[i]))
-                .collect();
-            let pick = |columns: &[Vec<f64>]| -> Vec<Vec<f64>> {
-                columns
-                    .iter()
-                    .map(|c| fresh.iter().map(|&i| c[i]).collect())
-                    .collect()
-            };
-            let units: Vec<usize> = fresh.iter().map(|&i| fixed.units[i]).collect();
-            let values = ArmNuisance {
-                propensity: pick(&values.propensity),
-                outcome: pick(&values.outcome),
-            };
-            next.write(&units, &values);
+            next.fill(&fixed.units, values);
         }
         let new: Vec<usize> = self
             .columns
@@ -201,7 +189,7 @@ impl RecomputeInput {
             let values = state
                 .fitted
                 .predict(FeatureRows::dense(x.as_slice().unwrap_or(&[]), width));
-            next.write(&new, &values);
+            next.fill(&new, &values);
         }
         next.scored_outcomes = outcomes;
         next

@@ -97,7 +97,7 @@ impl RecomputeInput {
             Err(e) => (Err(e.to_string()), None),
         };
         if refit.is_some() {
-            self.watch.arms_refitted();
+            self.watch.restart_fit_checks();
         }
         let names: Vec<String> = self.arm_models.iter().map(|(n, _)| n.clone()).collect();
         let previous = match &nuisance {
