@@ -185,21 +185,70 @@ fn bad_arm_input_is_refused_naming_field_and_row() {
     assert_eq!(code, 2, "{err}");
     assert!(err.contains("call"), "{err}");
 
-    // Settings the arms fit does not take yet are refused, not ignored.
-    for extra in [
-        &["--fold-repeats", "3"][..],
-        &["--recalibrate-propensity"][..],
-    ] {
-        let args: Vec<&str> = ["--arms", "none,text,mail"]
-            .iter()
-            .chain(extra)
-            .copied()
-            .collect();
-        let (code, _, err) = score(&units, &preds, &args);
-        assert_eq!(code, 2, "{extra:?}: {err}");
-        assert!(
-            err.contains(extra[0]) && err.contains("not yet supported with --arms"),
-            "{err}"
+    // A setting the arms fit does not take yet is refused, not ignored.
+    let (code, _, err) = score(
+        &units,
+        &preds,
+        &["--arms", "none,text,mail", "--recalibrate-propensity"],
+    );
+    assert_eq!(code, 2, "{err}");
+    assert!(
+        err.contains("--recalibrate-propensity") && err.contains("not yet supported with --arms"),
+        "{err}"
+    );
+}
+
+/// `--fold-repeats` with arms: the JSON report and the table say how many
+/// fold splits the nuisance values were averaged over, the learners'
+/// losses are the first split's, the averaged values move the estimates,
+/// and a count outside 1..=20 is refused as on a binary run.
+#[test]
+fn fold_repeats_average_the_arms_fit() {
+    let dir = Dir::new("arms-repeats");
+    let (units, preds) = files(&dir);
+    let json = |repeats: &str| -> serde_json::Value {
+        let (code, out, err) = score(
+            &units,
+            &preds,
+            &[
+                "--arms",
+                "none,text,mail",
+                "--format",
+                "json",
+                "--fold-repeats",
+                repeats,
+            ],
         );
+        assert_eq!(code, 0, "{err}");
+        serde_json::from_str(&out).expect("json")
+    };
+    let (one, three) = (json("1"), json("3"));
+    assert_eq!(one["nuisance"]["fold_repeats"], 1, "{}", one["nuisance"]);
+    assert_eq!(three["nuisance"]["fold_repeats"], 3);
+    assert_eq!(
+        one["nuisance"]["propensity"]["oof_loss"],
+        three["nuisance"]["propensity"]["oof_loss"]
+    );
+    let ate =
+        |v: &serde_json::Value, c: usize| v["contrasts"][c]["board"]["ate"]["estimate"].clone();
+    for c in 0..2 {
+        assert!(ate(&one, c).is_f64(), "{}", one["contrasts"][c]);
+        assert_ne!(ate(&one, c), ate(&three, c), "contrast {c}");
+    }
+    let (code, table, err) = score(
+        &units,
+        &preds,
+        &["--arms", "none,text,mail", "--fold-repeats", "2"],
+    );
+    assert_eq!(code, 0, "{err}");
+    assert!(table.contains("averaged over 2 fold splits"), "{table}");
+    for bad in ["0", "21"] {
+        let (code, _, err) = score(
+            &units,
+            &preds,
+            &["--arms", "none,text,mail", "--fold-repeats", bad],
+        );
+        assert_eq!(code, 2, "--fold-repeats {bad}: {err}");
+        assert!(err.contains("--fold-repeats"), "{err}");
     }
 }

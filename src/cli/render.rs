@@ -143,16 +143,7 @@ pub fn table(b: &Scoreboard, kind: OutcomeKind, folds: usize, wide: bool) -> Str
     if let Some(n) = &b.nuisance {
         let _ = writeln!(s);
         let sample = sample_note(n.fitted_units, n.units);
-        // Repeated splits say so, and that the losses below are the
-        // first split's.
-        let repeats = if n.fold_repeats > 1 {
-            format!(
-                "; values averaged over {} fold splits, losses of the first",
-                n.fold_repeats
-            )
-        } else {
-            String::new()
-        };
+        let repeats = repeats_note(n.fold_repeats);
         let _ = writeln!(
             s,
             "Nuisance models ({}-fold cross-fit, seed {}{sample}{repeats})",
@@ -464,6 +455,16 @@ pub(crate) fn wrap_prose(text: &str, width: usize) -> String {
 
 /// What a capped fit adds to its nuisance line: its models saw a sample,
 /// every unit was scored. Empty for a fit on every unit.
+/// Repeated splits say so, and that the learners and losses shown are the
+/// first split's; nothing for one split.
+pub(super) fn repeats_note(fold_repeats: usize) -> String {
+    if fold_repeats > 1 {
+        format!("; values averaged over {fold_repeats} fold splits, losses of the first")
+    } else {
+        String::new()
+    }
+}
+
 pub(super) fn sample_note(fitted_units: usize, units: usize) -> String {
     if fitted_units < units {
         format!("; fitted on a sample of {fitted_units} of {units} units")

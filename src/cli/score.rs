@@ -87,14 +87,10 @@ pub fn run(args: &ScoreArgs) -> ExitCode {
         KindArg::Binary => OutcomeKind::Binary,
     });
     if let Some(arms) = &args.arms {
-        // The arms fit has one split and no recalibration yet: refuse
-        // rather than ignore a setting the user asked for.
-        let unsupported = [
-            (args.fold_repeats != 1, "--fold-repeats"),
-            (args.recalibrate_propensity, "--recalibrate-propensity"),
-        ];
-        if let Some((_, flag)) = unsupported.iter().find(|(given, _)| *given) {
-            eprintln!("plumbline score: {flag} is not yet supported with --arms");
+        // The arms fit has no recalibration stage yet: refuse rather than
+        // ignore a setting the user asked for.
+        if args.recalibrate_propensity {
+            eprintln!("plumbline score: --recalibrate-propensity is not yet supported with --arms");
             return ExitCode::from(EXIT_BAD_INPUT);
         }
         return super::score_arms::run(args, &arms.0, kind);

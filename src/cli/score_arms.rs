@@ -99,6 +99,7 @@ pub fn run(args: &ScoreArgs, arms: &[String], kind: Option<OutcomeKind>) -> Exit
             folds: args.folds,
             seed: args.seed,
             max_fit_units: args.max_fit_units,
+            fold_repeats: args.fold_repeats as usize,
             ..NuisanceSettings::default()
         },
         alpha: args.alpha,
@@ -189,9 +190,10 @@ pub fn table(b: &ArmsScoreboard, kind: OutcomeKind, folds: usize, wide: bool) ->
     }
     if let Some(n) = &b.nuisance {
         let sample = super::render::sample_note(n.fitted_units, n.units);
+        let repeats = super::render::repeats_note(n.fold_repeats);
         let _ = writeln!(
             s,
-            "  propensity learner {} (out-of-fold log-loss {}); outcome learners: {}{sample}",
+            "  propensity learner {} (out-of-fold log-loss {}); outcome learners: {}{sample}{repeats}",
             n.propensity.learner,
             num(n.propensity.oof_loss),
             b.arms

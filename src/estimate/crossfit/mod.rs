@@ -104,10 +104,8 @@ pub fn fit_nuisance_models_on(
     report.fold_repeats = repeats;
     if repeats > 1 {
         for split in 1..repeats {
-            let seed = settings
-                .seed
-                .wrapping_add((split as u64).wrapping_mul(SPLIT_SEED_STEP));
-            let (more, _, _) = fit_one_split(table, features, settings, seed)?;
+            let (more, _, _) =
+                fit_one_split(table, features, settings, split_seed(settings.seed, split))?;
             for (sum, v) in [
                 (&mut nuisance.propensity, &more.propensity),
                 (&mut nuisance.mu0, &more.mu0),
@@ -138,6 +136,12 @@ pub fn fit_nuisance_models_on(
 /// small numbers, so that split seeds never meet the `seed + 1` and
 /// `seed + 2` the outcome components of a split derive from its seed.
 const SPLIT_SEED_STEP: u64 = 0x9e37_79b9_7f4a_7c15;
+
+/// The seed of fold split `split` (0 is the first) of a repeated cross-fit
+/// seeded with `seed`, binary or with arms.
+fn split_seed(seed: u64, split: usize) -> u64 {
+    seed.wrapping_add((split as u64).wrapping_mul(SPLIT_SEED_STEP))
+}
 
 /// One cross-fit on one fold split, drawn from `seed`.
 fn fit_one_split(

@@ -585,9 +585,7 @@ fn repeated_splits_average_the_single_splits() {
     )
     .expect("fit");
     assert_eq!(report.fold_repeats, 3);
-    let splits: Vec<Nuisance> = (0..3u64)
-        .map(|s| one(4u64.wrapping_add(s.wrapping_mul(SPLIT_SEED_STEP))).0)
-        .collect();
+    let splits: Vec<Nuisance> = (0..3usize).map(|s| one(split_seed(4, s)).0).collect();
     // Different splits give different values, or the test could not tell
     // an average from a copy.
     assert_ne!(splits[0].mu0, splits[1].mu0);
