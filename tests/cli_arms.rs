@@ -184,17 +184,49 @@ fn bad_arm_input_is_refused_naming_field_and_row() {
     );
     assert_eq!(code, 2, "{err}");
     assert!(err.contains("call"), "{err}");
+}
 
-    // A setting the arms fit does not take yet is refused, not ignored.
-    let (code, _, err) = score(
+/// The generalized propensity's last stage: by default chosen by
+/// out-of-fold log-loss between the raw probabilities and matrix scaling,
+/// both reported; `--recalibrate-propensity` fixes matrix scaling; the
+/// table names the stage.
+#[test]
+fn the_propensity_last_stage_is_reported_and_can_be_fixed() {
+    let dir = Dir::new("arms-stage");
+    let (units, preds) = files(&dir);
+    let json = |extra: &[&str]| -> serde_json::Value {
+        let args: Vec<&str> = ["--arms", "none,text,mail", "--format", "json"]
+            .iter()
+            .chain(extra)
+            .copied()
+            .collect();
+        let (code, out, err) = score(&units, &preds, &args);
+        assert_eq!(code, 0, "{err}");
+        serde_json::from_str(&out).expect("json")
+    };
+    let chosen = json(&[]);
+    let stage = &chosen["nuisance"]["propensity"]["recalibration"];
+    assert_eq!(stage["how"], "chosen by loss", "{stage}");
+    let names: Vec<&str> = stage["candidates"]
+        .as_array()
+        .expect("candidates")
+        .iter()
+        .filter_map(|c| c["stage"].as_str())
+        .collect();
+    assert_eq!(names, ["raw", "matrix_scaling"], "{stage}");
+    let fixed = json(&["--recalibrate-propensity"]);
+    let stage = &fixed["nuisance"]["propensity"]["recalibration"];
+    assert_eq!(stage["chosen"], "matrix_scaling", "{stage}");
+    assert_eq!(stage["how"], "fixed", "{stage}");
+    let (code, table, err) = score(
         &units,
         &preds,
         &["--arms", "none,text,mail", "--recalibrate-propensity"],
     );
-    assert_eq!(code, 2, "{err}");
+    assert_eq!(code, 0, "{err}");
     assert!(
-        err.contains("--recalibrate-propensity") && err.contains("not yet supported with --arms"),
-        "{err}"
+        table.contains("propensity last stage matrix_scaling (fixed"),
+        "{table}"
     );
 }
 

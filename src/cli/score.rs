@@ -49,7 +49,7 @@ pub struct ScoreArgs {
     /// Fold splits the cross-fit is repeated on, each unit's nuisance values averaged over them (less dependence on one split; each split costs a whole cross-fit).
     #[arg(long, value_name = "SPLITS", default_value_t = 1, value_parser = clap::value_parser!(u64).range(1..=20))]
     pub fold_repeats: u64,
-    /// Recalibrate the fitted propensity fold by fold (a logistic curve in its logit, fitted on the other folds' out-of-fold propensities): for a propensity whose report shows a calibration error well above its noise level.
+    /// Recalibrate the fitted propensity fold by fold (a logistic curve in its logit, fitted on the other folds' out-of-fold propensities; with --arms, matrix scaling, its several-arm form): for a propensity whose report shows a calibration error well above its noise level.
     #[arg(long)]
     pub recalibrate_propensity: bool,
     /// Cost of treating one unit, in outcome units (for policy gain).
@@ -72,6 +72,16 @@ pub struct ScoreArgs {
     pub wide: bool,
 }
 
+/// The propensity's last stage: chosen by out-of-fold loss, or the logistic
+/// curve (matrix scaling with arms, its several-arm form) when asked for.
+pub(super) fn recalibration(args: &ScoreArgs) -> RecalibrationChoice {
+    if args.recalibrate_propensity {
+        RecalibrationChoice::Fixed(Recalibration::Platt)
+    } else {
+        RecalibrationChoice::ByLoss
+    }
+}
+
 /// The same floor as the server's `limits.max_fit_units`.
 fn parse_max_fit_units(v: &str) -> Result<usize, String> {
     let units: usize = v.parse().map_err(|e| format!("{e}"))?;
@@ -87,12 +97,6 @@ pub fn run(args: &ScoreArgs) -> ExitCode {
         KindArg::Binary => OutcomeKind::Binary,
     });
     if let Some(arms) = &args.arms {
-        // The arms fit has no recalibration stage yet: refuse rather than
-        // ignore a setting the user asked for.
-        if args.recalibrate_propensity {
-            eprintln!("plumbline score: --recalibrate-propensity is not yet supported with --arms");
-            return ExitCode::from(EXIT_BAD_INPUT);
-        }
         return super::score_arms::run(args, &arms.0, kind);
     }
     // The two files are independent until they are aligned: read them at
@@ -123,11 +127,7 @@ pub fn run(args: &ScoreArgs) -> ExitCode {
             seed: args.seed,
             max_fit_units: args.max_fit_units,
             fold_repeats: args.fold_repeats as usize,
-            propensity_recalibration: if args.recalibrate_propensity {
-                RecalibrationChoice::Fixed(Recalibration::Platt)
-            } else {
-                RecalibrationChoice::ByLoss
-            },
+            propensity_recalibration: recalibration(args),
             ..NuisanceSettings::default()
         },
         cost: args.cost,

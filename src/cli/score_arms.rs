@@ -100,6 +100,7 @@ pub fn run(args: &ScoreArgs, arms: &[String], kind: Option<OutcomeKind>) -> Exit
             seed: args.seed,
             max_fit_units: args.max_fit_units,
             fold_repeats: args.fold_repeats as usize,
+            propensity_recalibration: super::score::recalibration(args),
             ..NuisanceSettings::default()
         },
         alpha: args.alpha,
@@ -203,6 +204,20 @@ pub fn table(b: &ArmsScoreboard, kind: OutcomeKind, folds: usize, wide: bool) ->
                 .collect::<Vec<_>>()
                 .join(", ")
         );
+        if let Some(r) = &n.propensity.recalibration {
+            let losses: Vec<String> = r
+                .candidates
+                .iter()
+                .map(|c| format!("{} {}", c.stage.name(), num(c.oof_loss)))
+                .collect();
+            let _ = writeln!(
+                s,
+                "  propensity last stage {} ({}; out-of-fold log-loss {})",
+                r.chosen.name(),
+                r.how,
+                losses.join(", ")
+            );
+        }
     }
     let p = &b.policy;
     let _ = writeln!(s);

@@ -11,6 +11,9 @@
 use rayon::prelude::*;
 use serde::Serialize;
 
+use super::arm_recalibrate::{
+    apply_arm_maps, arm_last_stage, ArmPropensityMap, ArmRecalibrationReport,
+};
 use super::choose::choose;
 use super::fitting::{out_of_fold, Component};
 use super::folds::{assign_arm_fit, Folds};
@@ -41,6 +44,10 @@ pub struct ArmNuisance {
 pub struct ArmFittedNuisance {
     /// The generalized propensity's fold models.
     pub propensity: Vec<Box<dyn ArmFitted>>,
+    /// Each propensity fold model's last stage (the map fitted for its
+    /// fold), so that later units get probabilities on the scale the
+    /// fitted units were weighted with. Empty: the raw probabilities.
+    pub propensity_maps: Vec<ArmPropensityMap>,
     /// `outcome[k]`: arm k's outcome fold models.
     pub outcome: Vec<Vec<Box<dyn Fitted>>>,
 }
@@ -54,11 +61,12 @@ impl ArmFittedNuisance {
         let rows: Vec<usize> = (0..n).collect();
         let shared = SharedFeatures::new(x);
         let mut propensity = vec![vec![0.0; n]; arms];
-        for model in &self.propensity {
-            for (sum, column) in propensity
-                .iter_mut()
-                .zip(model.probabilities_rows(&shared, &rows, arms))
-            {
+        for (f, model) in self.propensity.iter().enumerate() {
+            let mut columns = model.probabilities_rows(&shared, &rows, arms);
+            if let Some(map) = self.propensity_maps.get(f) {
+                columns = map.apply_columns(&columns);
+            }
+            for (sum, column) in propensity.iter_mut().zip(columns) {
                 for (s, p) in sum.iter_mut().zip(column) {
                     *s += p;
                 }
@@ -114,6 +122,10 @@ pub struct ArmPropensityReport {
     /// model finds hard to tell from the others.
     pub arm_oof_loss: Vec<f64>,
     pub candidates: Vec<ArmCandidateLoss>,
+    /// The last stage the probabilities got (`arm_recalibrate.rs`); the
+    /// losses above are the learner's, before it.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub recalibration: Option<ArmRecalibrationReport>,
 }
 
 /// What an arms cross-fit reports: the learners chosen and their losses.
@@ -316,18 +328,36 @@ fn fit_arm_split(
         outcome_reports.push(report);
         outcome_models.push(models);
     }
-    let (propensity, propensity_report, propensity_models) =
+    let (raw, mut propensity_report, propensity_models) =
         fit_generalized_propensity(&x, library, arm, arms, fold_of_unit, k, seed)?;
-    let propensity = match sample {
-        None => propensity,
-        Some(s) => spread_probabilities(
-            propensity,
-            s,
-            &assignment.fold_of_unit,
-            &propensity_models,
-            &all_rows,
-        ),
+    // The last stage's maps are fitted on the fitted units' out-of-fold
+    // probabilities; a unit outside the sample gets its fold model's
+    // probabilities through its fold's map.
+    let (propensity, propensity_maps, recalibration) = match sample {
+        None => arm_last_stage(settings.propensity_recalibration, raw, arm, fold_of_unit, k)?,
+        Some(s) => {
+            let (_, maps, report) = arm_last_stage(
+                settings.propensity_recalibration,
+                raw.clone(),
+                arm,
+                fold_of_unit,
+                k,
+            )?;
+            let every = spread_probabilities(
+                raw,
+                s,
+                &assignment.fold_of_unit,
+                &propensity_models,
+                &all_rows,
+            );
+            (
+                apply_arm_maps(&every, &assignment.fold_of_unit, &maps),
+                maps,
+                report,
+            )
+        }
     };
+    propensity_report.recalibration = Some(recalibration);
     Ok((
         ArmNuisance {
             propensity,
@@ -347,6 +377,7 @@ fn fit_arm_split(
         },
         ArmFittedNuisance {
             propensity: propensity_models,
+            propensity_maps,
             outcome: outcome_models,
         },
     ))
@@ -483,6 +514,7 @@ fn fit_generalized_propensity(
         oof_loss: candidates[best].oof_loss,
         arm_oof_loss: arm_log_loss(&chosen, arm, arms),
         candidates,
+        recalibration: None,
     };
     let fold_models = models.into_iter().nth(best).unwrap_or_default();
     Ok((chosen, report, fold_models))

@@ -16,6 +16,7 @@
 //! the fit reports) and `fold_models.rs` (the kept fold models, which score
 //! units that arrive later).
 
+mod arm_recalibrate;
 mod arms;
 mod choose;
 mod fitting;
@@ -36,6 +37,9 @@ use super::learner::{default_library, Fitted, Learner, SharedFeatures, Task};
 use super::stats::auc;
 use rayon::prelude::*;
 
+pub use arm_recalibrate::{
+    apply_arm_maps, ArmPropensityMap, ArmRecalibration, ArmRecalibrationReport, ArmStageLoss,
+};
 pub use arms::{
     assign_arm_folds, fit_arm_nuisance, ArmCandidateLoss, ArmFittedNuisance, ArmNuisance,
     ArmNuisanceReport, ArmPropensityReport,

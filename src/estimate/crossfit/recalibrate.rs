@@ -239,6 +239,25 @@ fn isotonic_value(blocks: &[(f64, f64, f64)], p: f64) -> f64 {
     before.2 + t * (here.2 - before.2)
 }
 
+/// The position of the lowest of the candidates' losses; ties (and NaN
+/// losses) keep the earlier, simpler stage. Binary and with arms.
+pub(super) fn lowest_loss(losses: impl Iterator<Item = f64>) -> usize {
+    let losses: Vec<f64> = losses.collect();
+    (0..losses.len())
+        .min_by(|&a, &b| losses[a].total_cmp(&losses[b]).then(a.cmp(&b)))
+        .unwrap_or(0)
+}
+
+impl RecalibrationChoice {
+    /// How a report says the stage was picked.
+    pub(super) fn how(self) -> &'static str {
+        match self {
+            RecalibrationChoice::ByLoss => "chosen by loss",
+            RecalibrationChoice::Fixed(_) => "fixed",
+        }
+    }
+}
+
 /// One map per fold, each fitted on the units of every other fold.
 fn fit_maps(
     kind: Recalibration,
@@ -346,17 +365,11 @@ pub(super) fn last_stage(
             oof_loss: *oof_loss,
         })
         .collect();
-    // Ties (and NaN losses) keep the earlier, simpler stage.
-    let best = (0..fits.len())
-        .min_by(|&a, &b| fits[a].3.total_cmp(&fits[b].3).then(a.cmp(&b)))
-        .unwrap_or(0);
+    let best = lowest_loss(fits.iter().map(|f| f.3));
     let (chosen, values, maps, _) = fits.swap_remove(best);
     let report = RecalibrationReport {
         chosen,
-        how: match choice {
-            RecalibrationChoice::ByLoss => "chosen by loss",
-            RecalibrationChoice::Fixed(_) => "fixed",
-        },
+        how: choice.how(),
         candidates,
     };
     (values, maps, report)
