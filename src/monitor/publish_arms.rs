@@ -22,7 +22,7 @@ use super::publish::{FitRecord, RecomputeSummary};
 use super::recompute::{ArmNuisanceState, RecomputeInput, RecomputeOptions};
 use super::{DatasetHandle, Monitor, MonitorError, MonitorResult};
 use crate::domain::{Board, ScoreRow};
-use crate::estimate::crossfit::ArmNuisanceReport;
+use crate::estimate::crossfit::{ArmNuisanceReport, ArmRecalibration};
 use crate::store::{Fence, NewSnapshot};
 
 impl Monitor {
@@ -121,7 +121,7 @@ impl Monitor {
                 .await;
         }
         if let (Some(reason), Some(n)) = (refit, &computed.nuisance) {
-            let quality = format!("propensity log-loss {:.3}", n.report.propensity.oof_loss);
+            let quality = fit_quality(&n.report);
             let fit = arms_fit(n, spec.seed);
             self.raise_refit(h, fence, snapshot_id as u64, reason, fit, quality)
                 .await;
@@ -141,6 +141,27 @@ impl Monitor {
             units,
             millis,
         })
+    }
+}
+
+/// What a refit event says of the generalized propensity's fit: its
+/// out-of-fold log-loss, and the raw learner's beside it when a last stage
+/// other than the raw one was kept.
+fn fit_quality(report: &ArmNuisanceReport) -> String {
+    let p = &report.propensity;
+    let stage = p
+        .recalibration
+        .as_ref()
+        .filter(|r| r.chosen != ArmRecalibration::Raw)
+        .and_then(|r| r.candidates.iter().find(|c| c.stage == r.chosen));
+    match stage {
+        Some(c) => format!(
+            "propensity log-loss {:.3} after {} (raw {:.3})",
+            c.oof_loss,
+            c.stage.name().replace('_', " "),
+            p.oof_loss
+        ),
+        None => format!("propensity log-loss {:.3}", p.oof_loss),
     }
 }
 
@@ -178,4 +199,57 @@ fn contrast_score_rows(window: &str, c: &Board) -> Vec<ScoreRow> {
         }
     }
     rows
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::estimate::crossfit::{ArmPropensityReport, ArmRecalibrationReport, ArmStageLoss};
+
+    fn report(chosen: ArmRecalibration) -> ArmNuisanceReport {
+        ArmNuisanceReport {
+            folds: 5,
+            seed: 0,
+            max_fit_units: None,
+            fold_repeats: 1,
+            fitted_units: 100,
+            units: 100,
+            propensity: ArmPropensityReport {
+                learner: "multinomial_logistic".into(),
+                loss: "log_loss",
+                oof_loss: 1.0474,
+                arm_oof_loss: Vec::new(),
+                candidates: Vec::new(),
+                recalibration: Some(ArmRecalibrationReport {
+                    chosen,
+                    how: "chosen by loss",
+                    candidates: vec![
+                        ArmStageLoss {
+                            stage: ArmRecalibration::Raw,
+                            oof_loss: 1.0474,
+                        },
+                        ArmStageLoss {
+                            stage: ArmRecalibration::MatrixScaling,
+                            oof_loss: 1.0312,
+                        },
+                    ],
+                }),
+            },
+            outcome: Vec::new(),
+        }
+    }
+
+    /// The event names the last stage only when it is not the raw one,
+    /// with the loss of the values the scores use first.
+    #[test]
+    fn a_refit_event_names_a_last_stage_that_is_not_raw() {
+        assert_eq!(
+            fit_quality(&report(ArmRecalibration::Raw)),
+            "propensity log-loss 1.047"
+        );
+        assert_eq!(
+            fit_quality(&report(ArmRecalibration::MatrixScaling)),
+            "propensity log-loss 1.031 after matrix scaling (raw 1.047)"
+        );
+    }
 }
