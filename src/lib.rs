@@ -39,7 +39,8 @@
 //!   draining the service; [`limits`]: what one client may ask of it.
 //! - [`input`]: reading units and predictions from CSV files, with errors that
 //!   name the file, row and column.
-//! - [`synth`]: published simulation designs with known effects, used by the
+//! - [`synth`]: published simulation designs with known effects (and a
+//!   three-arm design of our own), used by the
 //!   checks, the benchmarks and `plumbline simulate`.
 //! - [`cli`]: the `plumbline` command line: `serve`, `demo`, `score`,
 //!   `simulate`, `ingest`, `loadtest`, `token`, and the client commands

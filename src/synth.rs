@@ -1,4 +1,5 @@
-//! Published simulation designs with known effects, for checks and
+//! Published simulation designs with known effects (and one three-arm
+//! design of our own, [`draw_arms`]), for checks and
 //! benchmarks.
 //!
 //! Outcome model in every design: Y = b(X) + (W - 1/2) tau(X) + sigma eps,
@@ -157,6 +158,72 @@ pub fn draw(design: Design, n: usize, d: usize, sigma: f64, seed: u64) -> Draw {
         treatment,
         outcome,
         propensity,
+        tau,
+    }
+}
+
+/// The arms of [`draw_arms`], the reference first.
+pub const ARM_NAMES: [&str; 3] = ["none", "text", "mail"];
+
+/// Population mean and variance of each contrast's effect in
+/// [`draw_arms`] (text, then mail), exact: tau_text = 0.5 + 0.8 x1 and
+/// tau_mail = 0.3 - 0.6 x2 + 0.4 x3 with x ~ N(0, I).
+pub const ARM_EFFECT_MOMENTS: [(f64, f64); 2] = [(0.5, 0.64), (0.3, 0.52)];
+
+/// A three-arm draw with its truth.
+#[derive(Debug, Clone)]
+pub struct ArmDraw {
+    pub features: Array2<f64>,
+    /// Each unit's arm, an index into [`ARM_NAMES`].
+    pub arm: Vec<usize>,
+    pub outcome: Vec<f64>,
+    /// Each contrast's true effect per unit (text, then mail, against none).
+    pub tau: [Vec<f64>; 2],
+}
+
+/// Draws n units of a three-arm design of our own with d >= 5 features
+/// (only x1 to x3 matter): x ~ N(0, I_d); the arm drawn with probabilities
+/// softmax(0, 0.3 + 0.6 x1 - 0.4 x2, -0.2 - 0.5 x1 + 0.5 x3), so the
+/// features that drive the outcome drive the arm too; Y = x1 + 0.5 x2 -
+/// 0.5 x3 + tau_W(x) + sigma eps with tau_none = 0, tau_text = 0.5 + 0.8 x1
+/// and tau_mail = 0.3 - 0.6 x2 + 0.4 x3 (the design of
+/// tests/arms_simulation.rs).
+pub fn draw_arms(n: usize, d: usize, sigma: f64, seed: u64) -> ArmDraw {
+    let d = d.max(5);
+    let mut rng = ChaCha8Rng::seed_from_u64(seed);
+    let mut features = Array2::zeros((n, d));
+    let (mut arm, mut outcome) = (Vec::with_capacity(n), Vec::with_capacity(n));
+    let mut tau = [Vec::with_capacity(n), Vec::with_capacity(n)];
+    for i in 0..n {
+        for j in 0..d {
+            features[[i, j]] = standard_normal(&mut rng);
+        }
+        let x = |j: usize| features[[i, j]];
+        let eta = [
+            0.0,
+            0.3 + 0.6 * x(0) - 0.4 * x(1),
+            -0.2 - 0.5 * x(0) + 0.5 * x(2),
+        ];
+        let total: f64 = eta.iter().map(|v| v.exp()).sum();
+        let u = rng.gen::<f64>() * total;
+        let w = if u < eta[0].exp() {
+            0
+        } else if u < eta[0].exp() + eta[1].exp() {
+            1
+        } else {
+            2
+        };
+        let effects = [0.0, 0.5 + 0.8 * x(0), 0.3 - 0.6 * x(1) + 0.4 * x(2)];
+        let b = x(0) + 0.5 * x(1) - 0.5 * x(2);
+        arm.push(w);
+        outcome.push(b + effects[w] + sigma * standard_normal(&mut rng));
+        tau[0].push(effects[1]);
+        tau[1].push(effects[2]);
+    }
+    ArmDraw {
+        features,
+        arm,
+        outcome,
         tau,
     }
 }

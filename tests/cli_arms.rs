@@ -284,3 +284,89 @@ fn fold_repeats_average_the_arms_fit() {
         assert!(err.contains("--fold-repeats"), "{err}");
     }
 }
+
+/// `plumbline simulate --design three-arms` writes files `score --arms`
+/// reads, with each model's true PEHE per contrast, and the boards find
+/// that truth: every model's difference from constant-effect lies within
+/// four of its standard errors of the true one, true PEHE minus Var(tau)
+/// (constant-effect's PEHE, up to the square of the ATE's error, about
+/// 0.002 here against standard errors of 0.03 to 0.09). Eight such
+/// checks at four standard errors fail by chance with probability under
+/// 8 x 6.3e-5 = 5e-4 were the estimates right; the differences of one
+/// contrast share constant-effect's noise, so they move together
+/// (measured: within 1.2 standard errors of the truth, all eight).
+#[test]
+fn simulated_arms_are_scored_against_their_known_truth() {
+    let dir = Dir::new("arms-simulate");
+    let out = Command::new(env!("CARGO_BIN_EXE_plumbline"))
+        .args([
+            "simulate",
+            "--design",
+            "three-arms",
+            "--units",
+            "4000",
+            "--models",
+            "4",
+            "--seed",
+            "3",
+            "--format",
+            "json",
+            "--out",
+        ])
+        .arg(&dir.0)
+        .output()
+        .expect("simulate");
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    let written: serde_json::Value = serde_json::from_slice(&out.stdout).expect("json");
+    assert_eq!(written["arms"], serde_json::json!(["none", "text", "mail"]));
+    let truth = std::fs::read_to_string(dir.0.join("truth.csv")).expect("truth");
+    let mut rows = truth.lines();
+    assert_eq!(rows.next(), Some("model,arm,true_pehe"));
+    let truth: Vec<(String, String, f64)> = rows
+        .map(|line| {
+            let f: Vec<&str> = line.split(',').collect();
+            (f[0].into(), f[1].into(), f[2].parse().expect("number"))
+        })
+        .collect();
+    assert_eq!(truth.len(), 8, "{truth:?}");
+    // The sharp model's noise has sd 0.25 of the effect's sd: PEHE 0.0625
+    // Var(tau), with Var(tau) 0.64 for text and 0.52 for mail.
+    assert!((truth[0].2 - 0.0625 * 0.64).abs() < 1e-12, "{truth:?}");
+    assert!((truth[4].2 - 0.0625 * 0.52).abs() < 1e-12, "{truth:?}");
+
+    let (code, json, err) = score(
+        &dir.0.join("units.csv"),
+        &dir.0.join("predictions.csv"),
+        &["--arms", "none,text,mail", "--format", "json"],
+    );
+    assert_eq!(code, 0, "{err}");
+    let board: serde_json::Value = serde_json::from_str(&json).expect("json");
+    let variance = [("text", 0.64), ("mail", 0.52)];
+    let mut checked = 0;
+    for (c, (arm, var_tau)) in variance.iter().enumerate() {
+        let contrast = &board["contrasts"][c];
+        assert_eq!(contrast["arm"], *arm);
+        for (model, _, pehe) in truth.iter().filter(|(_, a, _)| a == arm) {
+            let m = contrast["board"]["models"]
+                .as_array()
+                .and_then(|ms| ms.iter().find(|m| m["name"] == model.as_str()))
+                .unwrap_or_else(|| panic!("{model} on {arm}"));
+            let (estimate, se) = (
+                m["vs_constant"]["estimate"].as_f64().expect("estimate"),
+                m["vs_constant"]["se"].as_f64().expect("se"),
+            );
+            let want = pehe - var_tau;
+            println!("{arm} {model}: vs constant {estimate:+.4} (se {se:.4}), true {want:+.4}");
+            assert!(
+                (estimate - want).abs() < 4.0 * se,
+                "{arm} {model}: {estimate} (se {se}) against {want}"
+            );
+            checked += 1;
+        }
+    }
+    assert_eq!(checked, 8);
+}

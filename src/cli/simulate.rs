@@ -9,14 +9,17 @@ use std::path::PathBuf;
 use std::process::ExitCode;
 
 use clap::Args;
+use ndarray::Array2;
 
 use super::client::{print_json, Output};
 use super::EXIT_BAD_INPUT;
-use crate::synth::{candidates, draw, effect_moments, Design};
+use crate::synth::{
+    candidates, draw, draw_arms, effect_moments, Candidate, Design, ARM_EFFECT_MOMENTS, ARM_NAMES,
+};
 
 #[derive(Debug, Args)]
 pub struct SimulateArgs {
-    /// nie-wager-a|b|c|d, wager-athey-heterogeneous, wager-athey-confounded.
+    /// nie-wager-a|b|c|d, wager-athey-heterogeneous, wager-athey-confounded, or three-arms (arms none, text and mail: score it with --arms none,text,mail).
     #[arg(long, default_value = "nie-wager-b")]
     pub design: String,
     #[arg(long, default_value_t = 5000)]
@@ -40,6 +43,101 @@ pub struct SimulateArgs {
     pub format: Output,
 }
 
+/// units.csv: `unit_id`, `treatment` (what `treatment(i)` writes: 0 or 1,
+/// or an arm's label), `outcome`, then the features x1, x2, ...
+fn write_units<T: std::fmt::Display>(
+    args: &SimulateArgs,
+    features: &Array2<f64>,
+    outcome: &[f64],
+    treatment: impl Fn(usize) -> T,
+) -> std::io::Result<()> {
+    let mut units = BufWriter::new(File::create(args.out.join("units.csv"))?);
+    write!(units, "unit_id,treatment,outcome")?;
+    for j in 0..features.ncols() {
+        write!(units, ",x{}", j + 1)?;
+    }
+    writeln!(units)?;
+    for (i, y) in outcome.iter().enumerate() {
+        write!(units, "u{i},{},{y}", treatment(i))?;
+        for v in features.row(i) {
+            write!(units, ",{v}")?;
+        }
+        writeln!(units)?;
+    }
+    units.flush()
+}
+
+/// The design key of the three-arm draw ([`draw_arms`]).
+const THREE_ARMS: &str = "three-arms";
+
+/// The three-arm files: units.csv with arm labels in `treatment`,
+/// predictions.csv with a `MODEL:ARM` column per model and contrast, and
+/// truth.csv with each model's true PEHE per contrast. Returns (model,
+/// arm, true PEHE) rows.
+fn write_arms(args: &SimulateArgs) -> std::io::Result<Vec<(String, String, f64)>> {
+    std::fs::create_dir_all(&args.out)?;
+    let data = draw_arms(args.units, args.features, args.sigma, args.seed);
+    // One set of candidates per contrast, under the same names.
+    let per_contrast: Vec<Vec<Candidate>> = data
+        .tau
+        .iter()
+        .zip(ARM_EFFECT_MOMENTS)
+        .enumerate()
+        .map(|(c, (tau, (_, var)))| {
+            candidates(
+                tau,
+                var,
+                args.models.clamp(1, 10),
+                args.seed ^ 0xfeed ^ (c as u64 + 1),
+            )
+        })
+        .collect();
+
+    write_units(args, &data.features, &data.outcome, |i| {
+        ARM_NAMES[data.arm[i]]
+    })?;
+
+    let mut preds = BufWriter::new(File::create(args.out.join("predictions.csv"))?);
+    write!(preds, "unit_id")?;
+    for (c, models) in per_contrast.iter().enumerate() {
+        for m in models {
+            write!(preds, ",{}:{}", m.predictions.name, ARM_NAMES[c + 1])?;
+        }
+    }
+    writeln!(preds)?;
+    for i in 0..args.units {
+        write!(preds, "u{i}")?;
+        for models in &per_contrast {
+            for m in models {
+                write!(preds, ",{}", m.predictions.effects[i])?;
+            }
+        }
+        writeln!(preds)?;
+    }
+    preds.flush()?;
+
+    let rows: Vec<(String, String, f64)> = per_contrast
+        .iter()
+        .enumerate()
+        .flat_map(|(c, models)| {
+            models.iter().map(move |m| {
+                (
+                    m.predictions.name.clone(),
+                    ARM_NAMES[c + 1].to_string(),
+                    m.true_pehe,
+                )
+            })
+        })
+        .collect();
+    let mut truth = BufWriter::new(File::create(args.out.join("truth.csv"))?);
+    writeln!(truth, "model,arm,true_pehe")?;
+    for (model, arm, pehe) in &rows {
+        writeln!(truth, "{model},{arm},{pehe}")?;
+    }
+    truth.flush()?;
+    Ok(rows)
+}
+
 /// Writes the three files; returns each model's name and true PEHE.
 fn write_all(args: &SimulateArgs, design: Design) -> std::io::Result<Vec<(String, f64)>> {
     std::fs::create_dir_all(&args.out)?;
@@ -52,20 +150,7 @@ fn write_all(args: &SimulateArgs, design: Design) -> std::io::Result<Vec<(String
         args.seed ^ 0xfeed,
     );
 
-    let mut units = BufWriter::new(File::create(args.out.join("units.csv"))?);
-    write!(units, "unit_id,treatment,outcome")?;
-    for j in 0..data.features.ncols() {
-        write!(units, ",x{}", j + 1)?;
-    }
-    writeln!(units)?;
-    for i in 0..args.units {
-        write!(units, "u{i},{},{}", data.treatment[i], data.outcome[i])?;
-        for v in data.features.row(i) {
-            write!(units, ",{v}")?;
-        }
-        writeln!(units)?;
-    }
-    units.flush()?;
+    write_units(args, &data.features, &data.outcome, |i| data.treatment[i])?;
 
     let mut preds = BufWriter::new(File::create(args.out.join("predictions.csv"))?);
     write!(preds, "unit_id")?;
@@ -95,6 +180,9 @@ fn write_all(args: &SimulateArgs, design: Design) -> std::io::Result<Vec<(String
 }
 
 pub fn run(args: &SimulateArgs) -> ExitCode {
+    if args.design == THREE_ARMS {
+        return run_arms(args);
+    }
     let Some(design) = Design::from_key(&args.design) else {
         eprintln!("plumbline simulate: unknown design {:?}", args.design);
         return ExitCode::from(EXIT_BAD_INPUT);
@@ -119,6 +207,40 @@ pub fn run(args: &SimulateArgs) -> ExitCode {
                 args.units,
                 args.models.clamp(1, 10),
                 args.out.display()
+            );
+            ExitCode::SUCCESS
+        }
+        Err(e) => {
+            eprintln!("plumbline simulate: {}: {e}", args.out.display());
+            ExitCode::FAILURE
+        }
+    }
+}
+
+fn run_arms(args: &SimulateArgs) -> ExitCode {
+    match write_arms(args) {
+        Ok(rows) if args.format == Output::Json => {
+            let file = |f: &str| args.out.join(f).display().to_string();
+            print_json(serde_json::json!({
+                "design": args.design, "units": args.units, "features": args.features,
+                "sigma": args.sigma, "seed": args.seed, "arms": ARM_NAMES,
+                "units_file": file("units.csv"), "predictions_file": file("predictions.csv"),
+                "truth_file": file("truth.csv"),
+                "models": rows.iter().map(|(name, arm, pehe)| serde_json::json!({
+                    "name": name, "arm": arm, "true_pehe": pehe,
+                })).collect::<Vec<_>>(),
+            }));
+            ExitCode::SUCCESS
+        }
+        Ok(_) => {
+            eprintln!(
+                "plumbline simulate: wrote {} units with arms {} and {} models per contrast to {} \
+                 (score with --arms {})",
+                args.units,
+                ARM_NAMES.join(", "),
+                args.models.clamp(1, 10),
+                args.out.display(),
+                ARM_NAMES.join(",")
             );
             ExitCode::SUCCESS
         }
