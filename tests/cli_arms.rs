@@ -35,6 +35,19 @@ fn score(units: &Path, preds: &Path, extra: &[&str]) -> (i32, String, String) {
     )
 }
 
+/// `score --arms none,text,mail --format json` plus `extra`, which must
+/// succeed; its JSON document.
+fn score_json(units: &Path, preds: &Path, extra: &[&str]) -> serde_json::Value {
+    let args: Vec<&str> = ["--arms", "none,text,mail", "--format", "json"]
+        .iter()
+        .chain(extra)
+        .copied()
+        .collect();
+    let (code, out, err) = score(units, preds, &args);
+    assert_eq!(code, 0, "{err}");
+    serde_json::from_str(&out).expect("json")
+}
+
 const ARMS: [&str; 3] = ["none", "text", "mail"];
 
 /// 900 units, arms drawn by a softmax of x1, effects of text 1 + x1 and of
@@ -65,20 +78,7 @@ fn files(dir: &Dir) -> (PathBuf, PathBuf) {
 fn three_arms_give_a_board_per_contrast_and_value_each_arm_choice() {
     let dir = Dir::new("ok");
     let (units, preds) = files(&dir);
-    let (code, out, err) = score(
-        &units,
-        &preds,
-        &[
-            "--arms",
-            "none,text,mail",
-            "--format",
-            "json",
-            "--arm-cost",
-            "mail=0.1",
-        ],
-    );
-    assert_eq!(code, 0, "{err}");
-    let v: serde_json::Value = serde_json::from_str(&out).expect("json");
+    let v = score_json(&units, &preds, &["--arm-cost", "mail=0.1"]);
     assert_eq!(v["reference"], "none");
     let contrasts = v["contrasts"].as_array().expect("contrasts");
     assert_eq!(contrasts.len(), 2);
@@ -194,17 +194,7 @@ fn bad_arm_input_is_refused_naming_field_and_row() {
 fn the_propensity_last_stage_is_reported_and_can_be_fixed() {
     let dir = Dir::new("arms-stage");
     let (units, preds) = files(&dir);
-    let json = |extra: &[&str]| -> serde_json::Value {
-        let args: Vec<&str> = ["--arms", "none,text,mail", "--format", "json"]
-            .iter()
-            .chain(extra)
-            .copied()
-            .collect();
-        let (code, out, err) = score(&units, &preds, &args);
-        assert_eq!(code, 0, "{err}");
-        serde_json::from_str(&out).expect("json")
-    };
-    let chosen = json(&[]);
+    let chosen = score_json(&units, &preds, &[]);
     let stage = &chosen["nuisance"]["propensity"]["recalibration"];
     assert_eq!(stage["how"], "chosen by loss", "{stage}");
     let names: Vec<&str> = stage["candidates"]
@@ -214,7 +204,7 @@ fn the_propensity_last_stage_is_reported_and_can_be_fixed() {
         .filter_map(|c| c["stage"].as_str())
         .collect();
     assert_eq!(names, ["raw", "matrix_scaling"], "{stage}");
-    let fixed = json(&["--recalibrate-propensity"]);
+    let fixed = score_json(&units, &preds, &["--recalibrate-propensity"]);
     let stage = &fixed["nuisance"]["propensity"]["recalibration"];
     assert_eq!(stage["chosen"], "matrix_scaling", "{stage}");
     assert_eq!(stage["how"], "fixed", "{stage}");
@@ -238,22 +228,7 @@ fn the_propensity_last_stage_is_reported_and_can_be_fixed() {
 fn fold_repeats_average_the_arms_fit() {
     let dir = Dir::new("arms-repeats");
     let (units, preds) = files(&dir);
-    let json = |repeats: &str| -> serde_json::Value {
-        let (code, out, err) = score(
-            &units,
-            &preds,
-            &[
-                "--arms",
-                "none,text,mail",
-                "--format",
-                "json",
-                "--fold-repeats",
-                repeats,
-            ],
-        );
-        assert_eq!(code, 0, "{err}");
-        serde_json::from_str(&out).expect("json")
-    };
+    let json = |repeats: &str| score_json(&units, &preds, &["--fold-repeats", repeats]);
     let (one, three) = (json("1"), json("3"));
     assert_eq!(one["nuisance"]["fold_repeats"], 1, "{}", one["nuisance"]);
     assert_eq!(three["nuisance"]["fold_repeats"], 3);
@@ -338,13 +313,11 @@ fn simulated_arms_are_scored_against_their_known_truth() {
     assert!((truth[0].2 - 0.0625 * 0.64).abs() < 1e-12, "{truth:?}");
     assert!((truth[4].2 - 0.0625 * 0.52).abs() < 1e-12, "{truth:?}");
 
-    let (code, json, err) = score(
+    let board = score_json(
         &dir.0.join("units.csv"),
         &dir.0.join("predictions.csv"),
-        &["--arms", "none,text,mail", "--format", "json"],
+        &[],
     );
-    assert_eq!(code, 0, "{err}");
-    let board: serde_json::Value = serde_json::from_str(&json).expect("json");
     let variance = [("text", 0.64), ("mail", 0.52)];
     let mut checked = 0;
     for (c, (arm, var_tau)) in variance.iter().enumerate() {

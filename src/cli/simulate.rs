@@ -72,9 +72,9 @@ const THREE_ARMS: &str = "three-arms";
 
 /// The three-arm files: units.csv with arm labels in `treatment`,
 /// predictions.csv with a `MODEL:ARM` column per model and contrast, and
-/// truth.csv with each model's true PEHE per contrast. Returns (model,
-/// arm, true PEHE) rows.
-fn write_arms(args: &SimulateArgs) -> std::io::Result<Vec<(String, String, f64)>> {
+/// truth.csv with each model's true PEHE per contrast. Returns what
+/// truth.csv holds.
+fn write_arms(args: &SimulateArgs) -> std::io::Result<Vec<ModelTruth>> {
     std::fs::create_dir_all(&args.out)?;
     let data = draw_arms(args.units, args.features, args.sigma, args.seed);
     // One set of candidates per contrast, under the same names.
@@ -116,30 +116,28 @@ fn write_arms(args: &SimulateArgs) -> std::io::Result<Vec<(String, String, f64)>
     }
     preds.flush()?;
 
-    let rows: Vec<(String, String, f64)> = per_contrast
+    let rows: Vec<ModelTruth> = per_contrast
         .iter()
         .enumerate()
         .flat_map(|(c, models)| {
-            models.iter().map(move |m| {
-                (
-                    m.predictions.name.clone(),
-                    ARM_NAMES[c + 1].to_string(),
-                    m.true_pehe,
-                )
+            models.iter().map(move |m| ModelTruth {
+                name: m.predictions.name.clone(),
+                arm: Some(ARM_NAMES[c + 1]),
+                true_pehe: m.true_pehe,
             })
         })
         .collect();
     let mut truth = BufWriter::new(File::create(args.out.join("truth.csv"))?);
     writeln!(truth, "model,arm,true_pehe")?;
-    for (model, arm, pehe) in &rows {
-        writeln!(truth, "{model},{arm},{pehe}")?;
+    for m in &rows {
+        writeln!(truth, "{},{},{}", m.name, m.arm.unwrap_or(""), m.true_pehe)?;
     }
     truth.flush()?;
     Ok(rows)
 }
 
-/// Writes the three files; returns each model's name and true PEHE.
-fn write_all(args: &SimulateArgs, design: Design) -> std::io::Result<Vec<(String, f64)>> {
+/// Writes the three files; returns what truth.csv holds.
+fn write_all(args: &SimulateArgs, design: Design) -> std::io::Result<Vec<ModelTruth>> {
     std::fs::create_dir_all(&args.out)?;
     let data = draw(design, args.units, args.features, args.sigma, args.seed);
     let (_, var_tau) = effect_moments(design, 200_000, args.seed ^ 0x5eed);
@@ -175,64 +173,56 @@ fn write_all(args: &SimulateArgs, design: Design) -> std::io::Result<Vec<(String
     truth.flush()?;
     Ok(models
         .iter()
-        .map(|m| (m.predictions.name.clone(), m.true_pehe))
+        .map(|m| ModelTruth {
+            name: m.predictions.name.clone(),
+            arm: None,
+            true_pehe: m.true_pehe,
+        })
         .collect())
 }
 
+/// One model's true PEHE as written to truth.csv: on a design with arms,
+/// per contrast (the arm it is for).
+struct ModelTruth {
+    name: String,
+    arm: Option<&'static str>,
+    true_pehe: f64,
+}
+
 pub fn run(args: &SimulateArgs) -> ExitCode {
-    if args.design == THREE_ARMS {
-        return run_arms(args);
-    }
-    let Some(design) = Design::from_key(&args.design) else {
-        eprintln!("plumbline simulate: unknown design {:?}", args.design);
-        return ExitCode::from(EXIT_BAD_INPUT);
+    let arms = args.design == THREE_ARMS;
+    let written = if arms {
+        write_arms(args)
+    } else {
+        let Some(design) = Design::from_key(&args.design) else {
+            eprintln!("plumbline simulate: unknown design {:?}", args.design);
+            return ExitCode::from(EXIT_BAD_INPUT);
+        };
+        write_all(args, design)
     };
-    match write_all(args, design) {
+    match written {
         Ok(models) if args.format == Output::Json => {
             let file = |f: &str| args.out.join(f).display().to_string();
-            print_json(serde_json::json!({
+            let mut doc = serde_json::json!({
                 "design": args.design, "units": args.units, "features": args.features,
                 "sigma": args.sigma, "seed": args.seed,
                 "units_file": file("units.csv"), "predictions_file": file("predictions.csv"),
                 "truth_file": file("truth.csv"),
-                "models": models.iter().map(|(name, pehe)| serde_json::json!({
-                    "name": name, "true_pehe": pehe,
-                })).collect::<Vec<_>>(),
-            }));
+                "models": models.iter().map(|m| {
+                    let mut row = serde_json::json!({"name": m.name, "true_pehe": m.true_pehe});
+                    if let Some(arm) = m.arm {
+                        row["arm"] = arm.into();
+                    }
+                    row
+                }).collect::<Vec<_>>(),
+            });
+            if arms {
+                doc["arms"] = serde_json::json!(ARM_NAMES);
+            }
+            print_json(doc);
             ExitCode::SUCCESS
         }
-        Ok(_) => {
-            eprintln!(
-                "plumbline simulate: wrote {} units and {} models to {}",
-                args.units,
-                args.models.clamp(1, 10),
-                args.out.display()
-            );
-            ExitCode::SUCCESS
-        }
-        Err(e) => {
-            eprintln!("plumbline simulate: {}: {e}", args.out.display());
-            ExitCode::FAILURE
-        }
-    }
-}
-
-fn run_arms(args: &SimulateArgs) -> ExitCode {
-    match write_arms(args) {
-        Ok(rows) if args.format == Output::Json => {
-            let file = |f: &str| args.out.join(f).display().to_string();
-            print_json(serde_json::json!({
-                "design": args.design, "units": args.units, "features": args.features,
-                "sigma": args.sigma, "seed": args.seed, "arms": ARM_NAMES,
-                "units_file": file("units.csv"), "predictions_file": file("predictions.csv"),
-                "truth_file": file("truth.csv"),
-                "models": rows.iter().map(|(name, arm, pehe)| serde_json::json!({
-                    "name": name, "arm": arm, "true_pehe": pehe,
-                })).collect::<Vec<_>>(),
-            }));
-            ExitCode::SUCCESS
-        }
-        Ok(_) => {
+        Ok(_) if arms => {
             eprintln!(
                 "plumbline simulate: wrote {} units with arms {} and {} models per contrast to {} \
                  (score with --arms {})",
@@ -241,6 +231,15 @@ fn run_arms(args: &SimulateArgs) -> ExitCode {
                 args.models.clamp(1, 10),
                 args.out.display(),
                 ARM_NAMES.join(",")
+            );
+            ExitCode::SUCCESS
+        }
+        Ok(_) => {
+            eprintln!(
+                "plumbline simulate: wrote {} units and {} models to {}",
+                args.units,
+                args.models.clamp(1, 10),
+                args.out.display()
             );
             ExitCode::SUCCESS
         }

@@ -87,6 +87,14 @@ impl ArmPropensityMap {
             Some(fit) => fit.probabilities_of(&log_odds(p)),
         }
     }
+
+    /// Every unit's probabilities (`p[k][i]`) mapped through this map.
+    pub fn apply_columns(&self, p: &[Vec<f64>]) -> Vec<Vec<f64>> {
+        if self.0.is_none() {
+            return p.to_vec();
+        }
+        map_units(p, |_| Some(self))
+    }
 }
 
 /// ln(p_k / p_0) for every arm k >= 1.
@@ -96,7 +104,7 @@ fn log_odds(p: &[f64]) -> Vec<f64> {
 }
 
 /// Each unit's probabilities (`p[k][i]`) mapped through its fold's map.
-pub fn apply_arm_maps(
+pub(super) fn apply_arm_maps(
     p: &[Vec<f64>],
     fold_of_unit: &[usize],
     maps: &[ArmPropensityMap],
@@ -105,16 +113,6 @@ pub fn apply_arm_maps(
         return p.to_vec();
     }
     map_units(p, |i| maps.get(fold_of_unit[i]))
-}
-
-impl ArmPropensityMap {
-    /// Every unit's probabilities (`p[k][i]`) mapped through this map.
-    pub fn apply_columns(&self, p: &[Vec<f64>]) -> Vec<Vec<f64>> {
-        if self.0.is_none() {
-            return p.to_vec();
-        }
-        map_units(p, |_| Some(self))
-    }
 }
 
 /// Unit i's probabilities mapped through `map_of(i)` (kept when None).

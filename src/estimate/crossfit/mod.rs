@@ -38,7 +38,7 @@ use super::stats::auc;
 use rayon::prelude::*;
 
 pub use arm_recalibrate::{
-    apply_arm_maps, ArmPropensityMap, ArmRecalibration, ArmRecalibrationReport, ArmStageLoss,
+    ArmPropensityMap, ArmRecalibration, ArmRecalibrationReport, ArmStageLoss,
 };
 pub use arms::{
     assign_arm_folds, fit_arm_nuisance, ArmCandidateLoss, ArmFittedNuisance, ArmNuisance,
